@@ -1,0 +1,584 @@
+"""Read and validate a case file (TOML) into frozen dataclasses.
+
+All checks on user input happen here, once; later stages trust what they receive.
+A numeric field holds either a number (a fixed value) or the name of a declared parameter
+(an uncertain value with a prior, unit and source).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import CaseError
+from .priors import DISTRIBUTIONS, Fixed, Prior, prior_problems
+
+Quantity = float | str  # a number, or the name of a parameter in [parameters]
+
+GROWTH_FORMS = ("logistic", "exponential", "none")
+RESPONSES = ("holling1", "holling2", "holling3")
+INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism")
+INTERVENTION_KINDS = (
+    "press-harvest",
+    "pulse-cull",
+    "eradication",
+    "fertility-control",
+    "introduction",
+    "habitat-change",
+)
+CARRION = "carrion"
+
+
+@dataclass(frozen=True)
+class Parameter:
+    name: str
+    prior: Prior
+    unit: str
+    source: str
+    description: str
+
+    @property
+    def uncertain(self) -> bool:
+        return not isinstance(self.prior, Fixed)
+
+
+@dataclass(frozen=True)
+class Species:
+    name: str
+    growth: str
+    growth_rate: Quantity
+    carrying_capacity: Quantity | None
+    mortality: Quantity
+    initial: Quantity
+    present: bool
+    noise_sd: Quantity
+    quasi_extinction: float
+    outbreak: float | None
+    generation_time: float | None
+    unit: str
+    carrion_yield: float
+    description: str
+
+
+@dataclass(frozen=True)
+class Feeding:
+    """Predation or scavenging: ``consumer`` eats ``resource`` (a species or the carrion pool)."""
+
+    kind: str
+    consumer: str
+    resource: str
+    response: str
+    attack_rate: Quantity
+    handling_time: Quantity
+    efficiency: Quantity
+
+
+@dataclass(frozen=True)
+class Competition:
+    """Lotka–Volterra competition: ``competitor`` reduces the logistic growth of ``species``."""
+
+    species: str
+    competitor: str
+    coefficient: Quantity
+
+
+@dataclass(frozen=True)
+class Mutualism:
+    """Saturating benefit of ``partner`` to the births of ``beneficiary``."""
+
+    beneficiary: str
+    partner: str
+    max_benefit: Quantity
+    half_saturation: Quantity
+
+
+@dataclass(frozen=True)
+class Carrion:
+    decay_rate: Quantity
+    initial: float
+
+
+@dataclass(frozen=True)
+class Observation:
+    species: str
+    low: float
+    high: float
+    source: str
+
+
+@dataclass(frozen=True)
+class Intervention:
+    name: str
+    kind: str
+    species: str
+    start: float
+    end: float
+    rate: Quantity | None = None
+    fraction: Quantity | None = None
+    times: tuple[float, ...] = ()
+    failure_probability: Quantity = 0.0
+    residual_fraction: Quantity = 0.0
+    amount: Quantity | None = None
+    factor: Quantity | None = None
+    carcasses_to_carrion: bool = False
+    description: str = ""
+
+    def event_times(self) -> tuple[float, ...]:
+        """Times at which the state jumps (culls, eradication, introduction)."""
+        if self.kind == "pulse-cull":
+            return self.times
+        if self.kind in ("eradication", "introduction"):
+            return (self.start,)
+        return ()
+
+
+@dataclass(frozen=True)
+class Option:
+    name: str
+    interventions: tuple[str, ...]
+    description: str
+
+
+@dataclass(frozen=True)
+class Risk:
+    horizons: tuple[float, ...]
+    recovery_fraction: float
+    confidence: float
+
+
+@dataclass(frozen=True)
+class Case:
+    path: str
+    sha256: str
+    title: str
+    analyst: str
+    description: str
+    invented: bool
+    time_unit: str
+    horizon: float
+    output_step: float
+    spinup: float
+    members: int
+    max_draws: int
+    seed: int
+    rtol: float
+    atol: float
+    parameters: tuple[Parameter, ...]
+    species: tuple[Species, ...]
+    feeding: tuple[Feeding, ...]
+    competition: tuple[Competition, ...]
+    mutualism: tuple[Mutualism, ...]
+    carrion: Carrion | None
+    observed: tuple[Observation, ...]
+    interventions: tuple[Intervention, ...]
+    options: tuple[Option, ...]
+    risk: Risk
+    notes: tuple[str, ...] = field(default=())
+
+    @property
+    def species_names(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self.species)
+
+    @property
+    def uncertain(self) -> tuple[Parameter, ...]:
+        return tuple(p for p in self.parameters if p.uncertain)
+
+    def parameter(self, name: str) -> Parameter:
+        for p in self.parameters:
+            if p.name == name:
+                return p
+        raise KeyError(name)
+
+    def intervention(self, name: str) -> Intervention:
+        for iv in self.interventions:
+            if iv.name == name:
+                return iv
+        raise KeyError(name)
+
+
+# --------------------------------------------------------------------------------------------
+# reading helpers
+
+
+class _Table:
+    """A TOML table being consumed: every key must be read, leftovers are typos."""
+
+    def __init__(self, reader: "_Reader", data: Any, path: str):
+        self.r = reader
+        self.path = path
+        if not isinstance(data, dict):
+            reader.fail(path, f"must be a table, got {type(data).__name__}")
+        self.data = dict(data)
+        self.allowed: list[str] = []
+
+    def _field(self, key: str) -> str:
+        return f"{self.path}.{key}" if self.path else key
+
+    def get(self, key: str, default: Any = ..., kind: str = "any") -> Any:
+        self.allowed.append(key)
+        if key not in self.data:
+            if default is ...:
+                self.r.fail(self._field(key), "is required but missing")
+            return default
+        value = self.data.pop(key)
+        return self.r.check_type(self._field(key), value, kind)
+
+    def number(self, key, default: Any = ..., *, low=None, high=None, low_open=False, integer=False):
+        present = key in self.data
+        v = self.get(key, default, "int" if integer else "number")
+        if present:
+            self.r.check_range(self._field(key), v, low, high, low_open)
+        return v
+
+    def quantity(self, key, default: Any = ..., *, low=None, high=None, low_open=False) -> Quantity:
+        """A number, or the name of a parameter whose prior support must respect the bounds."""
+        self.allowed.append(key)
+        if key not in self.data:
+            if default is ...:
+                self.r.fail(self._field(key), "is required but missing (a number or a parameter name)")
+            return default
+        v = self.data.pop(key)
+        f = self._field(key)
+        if isinstance(v, bool) or not isinstance(v, (int, float, str)):
+            self.r.fail(f, f"must be a number or the name of a parameter, got {type(v).__name__}")
+        if isinstance(v, str):
+            self.r.references.append((f, v, low, high, low_open))
+            return v
+        self.r.check_range(f, float(v), low, high, low_open)
+        return float(v)
+
+    def done(self):
+        if self.data:
+            extra = sorted(self.data)
+            self.r.fail(
+                self._field(extra[0]),
+                f"unknown key {extra[0]!r}; allowed keys here: {', '.join(sorted(set(self.allowed)))}",
+            )
+
+
+class _Reader:
+    def __init__(self, path: Path):
+        self.path = path
+        self.references: list[tuple[str, str, Any, Any, bool]] = []
+
+    def fail(self, field_path: str, message: str):
+        raise CaseError(str(self.path), field_path, message)
+
+    def check_type(self, f: str, v: Any, kind: str):
+        if kind == "number":
+            if isinstance(v, bool) or not isinstance(v, (int, float)):
+                self.fail(f, f"must be a number, got {v!r}")
+            if not math.isfinite(v):
+                self.fail(f, f"must be finite, got {v!r}")
+            return float(v)
+        if kind == "int":
+            if isinstance(v, bool) or not isinstance(v, int):
+                self.fail(f, f"must be a whole number, got {v!r}")
+            return v
+        if kind == "str":
+            if not isinstance(v, str):
+                self.fail(f, f"must be a text string, got {v!r}")
+            return v
+        if kind == "bool":
+            if not isinstance(v, bool):
+                self.fail(f, f"must be true or false, got {v!r}")
+            return v
+        if kind == "list":
+            if not isinstance(v, list):
+                self.fail(f, f"must be a list, got {v!r}")
+            return v
+        return v
+
+    def check_range(self, f, v, low, high, low_open):
+        if low is not None and (v <= low if low_open else v < low):
+            self.fail(f, f"must be {'>' if low_open else '>='} {low:g}, got {v:g}")
+        if high is not None and v > high:
+            self.fail(f, f"must be <= {high:g}, got {v:g}")
+
+    def choice(self, f: str, v: str, allowed):
+        if v not in allowed:
+            self.fail(f, f"{v!r} is not allowed; choose one of: {', '.join(allowed)}")
+        return v
+
+
+def _unique(reader: _Reader, items, key: str, what: str):
+    seen = set()
+    for i, item in enumerate(items):
+        name = getattr(item, key)
+        if name in seen:
+            reader.fail(f"{what}[{i}].{key}", f"duplicate name {name!r}; names must be unique")
+        seen.add(name)
+
+
+def _read_parameter(r: _Reader, name: str, data: Any) -> Parameter:
+    t = _Table(r, data, f"parameters.{name}")
+    dist = t.get("distribution", "fixed", "str")
+    r.choice(f"parameters.{name}.distribution", dist, tuple(DISTRIBUTIONS))
+    cls, required, optional = DISTRIBUTIONS[dist]
+    args = {k: t.number(k) for k in required}
+    for k, d in optional.items():
+        args[k] = t.number(k, d)
+    unit = t.get("unit", "", "str")
+    source = t.get("source", "", "str")
+    description = t.get("description", "", "str")
+    t.done()
+    prior = cls(**args)
+    for f, msg in prior_problems(prior):
+        r.fail(f"parameters.{name}.{f}", msg)
+    return Parameter(name, prior, unit, source, description)
+
+
+def load_case(path: str | Path) -> Case:
+    """Read, validate and freeze a case file.
+
+    Raises
+    ------
+    CaseError
+        Naming the file, the field path and what is allowed, for any problem.
+    """
+    path = Path(path)
+    try:
+        raw_bytes = path.read_bytes()
+    except OSError as exc:
+        raise CaseError(str(path), "", f"cannot read the case file ({exc.strerror or exc})") from None
+    try:
+        data = tomllib.loads(raw_bytes.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise CaseError(str(path), "", "is not UTF-8 text") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise CaseError(str(path), "", f"malformed TOML: {exc}") from None
+    return parse_case(data, path, hashlib.sha256(raw_bytes).hexdigest())
+
+
+def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
+    r = _Reader(path)
+    top = _Table(r, data, "")
+
+    meta = _Table(r, top.get("case"), "case")
+    title = meta.get("title", kind="str")
+    analyst = meta.get("analyst", "", "str")
+    description = meta.get("description", "", "str")
+    invented = meta.get("invented", False, "bool")
+    time_unit = meta.get("time_unit", kind="str")
+    horizon = meta.number("horizon", low=0, low_open=True)
+    output_step = meta.number("output_step", 1.0, low=0, low_open=True)
+    spinup = meta.number("spinup", 0.0, low=0)
+    members = meta.number("members", 1000, low=1, integer=True)
+    max_draws = meta.number("max_draws", 20 * members, low=members, integer=True)
+    seed = meta.number("seed", 0, low=0, integer=True)
+    rtol = meta.number("rtol", 1e-6, low=0, low_open=True, high=0.1)
+    atol = meta.number("atol", 1e-9, low=0, low_open=True)
+    notes = tuple(meta.get("assumptions", [], "list"))
+    meta.done()
+    if any(not isinstance(n, str) for n in notes):
+        r.fail("case.assumptions", "must be a list of text strings")
+    if output_step > horizon:
+        r.fail("case.output_step", f"must not exceed the horizon ({horizon:g})")
+
+    params_raw = top.get("parameters", {}, "any")
+    if not isinstance(params_raw, dict):
+        r.fail("parameters", "must be a table of named parameters")
+    parameters = tuple(_read_parameter(r, n, v) for n, v in params_raw.items())
+
+    species_raw = top.get("species", kind="list")
+    if not species_raw:
+        r.fail("species", "at least one species is required")
+    species = []
+    for i, raw in enumerate(species_raw):
+        t = _Table(r, raw, f"species[{i}]")
+        name = t.get("name", kind="str")
+        if name == CARRION:
+            r.fail(f"species[{i}].name", f"{CARRION!r} is reserved for the carrion pool")
+        t.path = f"species.{name}"
+        growth = r.choice(f"species.{name}.growth", t.get("growth", "none", "str"), GROWTH_FORMS)
+        if growth == "logistic":
+            gr = t.quantity("growth_rate", low=0, low_open=True)
+            k = t.quantity("carrying_capacity", low=0, low_open=True)
+        elif growth == "exponential":
+            gr = t.quantity("growth_rate")  # negative allowed: exponential decline
+            k = None
+        else:
+            gr, k = 0.0, None
+        mortality = t.quantity("mortality", 0.0, low=0)
+        present = t.get("present", True, "bool")
+        initial = t.quantity("initial", low=0) if present else t.quantity("initial", 0.0, low=0)
+        noise = t.quantity("noise_sd", 0.0, low=0)
+        qe = t.number("quasi_extinction", low=0)
+        outbreak = t.number("outbreak", None, low=0, low_open=True)
+        gen = t.number("generation_time", None, low=0, low_open=True)
+        unit = t.get("unit", "individuals", "str")
+        cy = t.number("carrion_yield", 1.0, low=0)
+        desc = t.get("description", "", "str")
+        t.done()
+        species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc))
+    species = tuple(species)
+    _unique(r, species, "name", "species")
+    names = {s.name for s in species}
+
+    def species_ref(f, v, allow_carrion=False):
+        if v == CARRION and allow_carrion:
+            return v
+        if v not in names:
+            allowed = sorted(names) + ([CARRION] if allow_carrion else [])
+            r.fail(f, f"unknown species {v!r}; declared species: {', '.join(allowed)}")
+        return v
+
+    feeding, competition, mutualism = [], [], []
+    for i, raw in enumerate(top.get("interactions", [], "list")):
+        t = _Table(r, raw, f"interactions[{i}]")
+        kind = r.choice(f"interactions[{i}].type", t.get("type", kind="str"), INTERACTION_KINDS)
+        if kind in ("predation", "scavenging"):
+            who = "predator" if kind == "predation" else "scavenger"
+            consumer = species_ref(f"interactions[{i}].{who}", t.get(who, kind="str"))
+            if kind == "predation":
+                resource = species_ref(f"interactions[{i}].prey", t.get("prey", kind="str"))
+                if resource == consumer:
+                    r.fail(f"interactions[{i}].prey", "a predator cannot be its own prey in this model")
+            else:
+                resource = CARRION
+            response = r.choice(f"interactions[{i}].response", t.get("response", "holling2", "str"), RESPONSES)
+            attack = t.quantity("attack_rate", low=0, low_open=True)
+            handling = t.quantity("handling_time", 0.0, low=0)
+            if response != "holling1" and handling == 0.0:
+                r.fail(f"interactions[{i}].handling_time", f"is required and must be > 0 for a {response} response")
+            eff = t.quantity("efficiency", low=0)
+            feeding.append(Feeding(kind, consumer, resource, response, attack, handling, eff))
+        elif kind == "competition":
+            sp = species_ref(f"interactions[{i}].species", t.get("species", kind="str"))
+            comp = species_ref(f"interactions[{i}].competitor", t.get("competitor", kind="str"))
+            if next(s for s in species if s.name == sp).growth != "logistic":
+                r.fail(f"interactions[{i}].species", f"competition acts on logistic growth; {sp!r} is not logistic")
+            coef = t.quantity("coefficient", low=0)
+            competition.append(Competition(sp, comp, coef))
+        else:
+            ben = species_ref(f"interactions[{i}].beneficiary", t.get("beneficiary", kind="str"))
+            par = species_ref(f"interactions[{i}].partner", t.get("partner", kind="str"))
+            mb = t.quantity("max_benefit", low=0)
+            hs = t.quantity("half_saturation", low=0, low_open=True)
+            mutualism.append(Mutualism(ben, par, mb, hs))
+        t.done()
+
+    carrion = None
+    if "carrion" in top.data:
+        t = _Table(r, top.get("carrion"), "carrion")
+        carrion = Carrion(t.quantity("decay_rate", low=0, low_open=True), t.number("initial", 0.0, low=0))
+        t.done()
+    if any(f.kind == "scavenging" for f in feeding) and carrion is None:
+        r.fail("carrion", "a scavenging interaction needs a [carrion] table with decay_rate")
+
+    observed = []
+    for i, raw in enumerate(top.get("observed", [], "list")):
+        t = _Table(r, raw, f"observed[{i}]")
+        sp = species_ref(f"observed[{i}].species", t.get("species", kind="str"))
+        lo = t.number("low", low=0)
+        hi = t.number("high", low=0)
+        if not lo < hi:
+            r.fail(f"observed[{i}].high", f"must be greater than low ({lo:g}); bounds reversed or equal")
+        observed.append(Observation(sp, lo, hi, t.get("source", "", "str")))
+        t.done()
+
+    interventions = []
+    for i, raw in enumerate(top.get("interventions", [], "list")):
+        t = _Table(r, raw, f"interventions[{i}]")
+        name = t.get("name", kind="str")
+        t.path = f"interventions.{name}"
+        base = f"interventions.{name}"
+        kind = r.choice(f"{base}.kind", t.get("kind", kind="str"), INTERVENTION_KINDS)
+        sp = species_ref(f"{base}.species", t.get("species", kind="str"))
+        kw: dict[str, Any] = {}
+        if kind in ("press-harvest", "fertility-control", "habitat-change"):
+            start = t.number("start", 0.0)
+            end = t.number("end", horizon)
+            if kind == "press-harvest":
+                kw["rate"] = t.quantity("rate", low=0)
+                kw["carcasses_to_carrion"] = t.get("carcasses_to_carrion", False, "bool")
+            elif kind == "fertility-control":
+                kw["fraction"] = t.quantity("fraction", low=0, high=1)
+            else:
+                if next(s for s in species if s.name == sp).growth != "logistic":
+                    r.fail(f"{base}.species", f"habitat change scales a carrying capacity; {sp!r} is not logistic")
+                kw["factor"] = t.quantity("factor", low=0, low_open=True)
+        elif kind == "pulse-cull":
+            times = t.get("times", kind="list")
+            if not times or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in times):
+                r.fail(f"{base}.times", "must be a non-empty list of numbers (times of each cull)")
+            times = tuple(sorted(float(x) for x in times))
+            kw["times"] = times
+            kw["fraction"] = t.quantity("fraction", low=0, high=1)
+            kw["carcasses_to_carrion"] = t.get("carcasses_to_carrion", False, "bool")
+            start, end = times[0], times[-1]
+        elif kind == "eradication":
+            start = t.number("time")
+            end = start
+            kw["failure_probability"] = t.quantity("failure_probability", 0.0, low=0, high=1)
+            kw["residual_fraction"] = t.quantity("residual_fraction", 0.0, low=0, high=1)
+        else:  # introduction
+            start = t.number("time")
+            end = start
+            kw["amount"] = t.quantity("amount", low=0, low_open=True)
+        for label, v in (("start" if kind not in ("eradication", "introduction") else "time", start), ("end", end)):
+            if not 0 <= v <= horizon:
+                r.fail(f"{base}.{label}" if kind != "pulse-cull" else f"{base}.times",
+                       f"{v:g} lies outside the assessment period [0, {horizon:g}] {time_unit}")
+        if end < start:
+            r.fail(f"{base}.end", f"must not be before start ({start:g})")
+        desc = t.get("description", "", "str")
+        t.done()
+        interventions.append(Intervention(name, kind, sp, start, end, description=desc, **kw))
+    interventions = tuple(interventions)
+    _unique(r, interventions, "name", "interventions")
+    iv_names = {iv.name for iv in interventions}
+
+    options = []
+    for i, raw in enumerate(top.get("options", [], "list")):
+        t = _Table(r, raw, f"options[{i}]")
+        name = t.get("name", kind="str")
+        if name == "baseline":
+            r.fail(f"options[{i}].name", "'baseline' is reserved for the no-intervention run")
+        ivs = t.get("interventions", kind="list")
+        if not ivs:
+            r.fail(f"options.{name}.interventions", "must list at least one intervention")
+        for iv in ivs:
+            if iv not in iv_names:
+                r.fail(f"options.{name}.interventions", f"unknown intervention {iv!r}; declared: {', '.join(sorted(iv_names)) or 'none'}")
+        options.append(Option(name, tuple(ivs), t.get("description", "", "str")))
+        t.done()
+    options = tuple(options)
+    _unique(r, options, "name", "options")
+    if not options:
+        r.fail("options", "at least one intervention option is required to compare with the baseline")
+
+    rt = _Table(r, top.get("risk", {}), "risk")
+    horizons = rt.get("horizons", [horizon], "list")
+    if not horizons or any(isinstance(h, bool) or not isinstance(h, (int, float)) or not 0 < h <= horizon for h in horizons):
+        r.fail("risk.horizons", f"must be a non-empty list of times in (0, {horizon:g}]")
+    risk = Risk(
+        tuple(sorted(float(h) for h in horizons)),
+        rt.number("recovery_fraction", 0.8, low=0, low_open=True, high=1),
+        rt.number("confidence", 0.95, low=0.5, high=0.999),
+    )
+    rt.done()
+    top.done()
+
+    pnames = {p.name: p for p in parameters}
+    for f, ref, low, high, low_open in r.references:
+        if ref not in pnames:
+            r.fail(f, f"refers to parameter {ref!r}, which is not declared in [parameters]; declared: {', '.join(sorted(pnames)) or 'none'}")
+        lo_s, hi_s = pnames[ref].prior.support()
+        if low is not None and (lo_s <= low if low_open else lo_s < low):
+            r.fail(f, f"parameter {ref!r} can take values down to {lo_s:g}, but this field must be {'>' if low_open else '>='} {low:g}")
+        if high is not None and hi_s > high:
+            r.fail(f, f"parameter {ref!r} can take values up to {hi_s:g}, but this field must be <= {high:g}")
+
+    return Case(
+        path=str(path), sha256=sha256, title=title, analyst=analyst, description=description,
+        invented=invented, time_unit=time_unit, horizon=horizon, output_step=output_step,
+        spinup=spinup, members=members, max_draws=max_draws, seed=seed, rtol=rtol, atol=atol,
+        parameters=parameters, species=species, feeding=tuple(feeding),
+        competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
+        observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
+    )

@@ -1,0 +1,198 @@
+"""Prior distributions for uncertain parameters.
+
+Every prior maps a unit-uniform number to a parameter value through its inverse CDF (``ppf``).
+That single path serves the ensemble draws (uniforms from each member's own stream) and the
+Sobol design (SALib's quasi-random unit hypercube), so both see the same distributions.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+
+@dataclass(frozen=True)
+class Fixed:
+    """A known value (no uncertainty)."""
+
+    value: float
+    kind = "fixed"
+
+    def ppf(self, u):
+        return np.full(np.shape(u), float(self.value))
+
+    def describe(self) -> str:
+        return f"{self.value:g}"
+
+    def support(self) -> tuple[float, float]:
+        return (self.value, self.value)
+
+
+@dataclass(frozen=True)
+class Uniform:
+    """Uniform on [low, high]."""
+
+    low: float
+    high: float
+    kind = "uniform"
+
+    def ppf(self, u):
+        return self.low + (self.high - self.low) * np.asarray(u, float)
+
+    def describe(self) -> str:
+        return f"uniform({self.low:g}, {self.high:g})"
+
+    def support(self):
+        return (self.low, self.high)
+
+
+@dataclass(frozen=True)
+class LogUniform:
+    """Log-uniform on [low, high], low > 0."""
+
+    low: float
+    high: float
+    kind = "log-uniform"
+
+    def ppf(self, u):
+        a, b = np.log(self.low), np.log(self.high)
+        return np.exp(a + (b - a) * np.asarray(u, float))
+
+    def describe(self) -> str:
+        return f"log-uniform({self.low:g}, {self.high:g})"
+
+    def support(self):
+        return (self.low, self.high)
+
+
+@dataclass(frozen=True)
+class Triangular:
+    """Triangular on [low, high] with the given mode."""
+
+    low: float
+    mode: float
+    high: float
+    kind = "triangular"
+
+    def ppf(self, u):
+        u = np.asarray(u, float)
+        a, c, b = self.low, self.mode, self.high
+        fc = (c - a) / (b - a)
+        left = a + np.sqrt(u * (b - a) * (c - a))
+        right = b - np.sqrt((1.0 - u) * (b - a) * (b - c))
+        return np.where(u < fc, left, right)
+
+    def describe(self) -> str:
+        return f"triangular({self.low:g}, {self.mode:g}, {self.high:g})"
+
+    def support(self):
+        return (self.low, self.high)
+
+
+@dataclass(frozen=True)
+class PERT:
+    """Beta-PERT on [low, high] with mode and shape weight ``lam`` (4 is the classic choice)."""
+
+    low: float
+    mode: float
+    high: float
+    lam: float = 4.0
+    kind = "pert"
+
+    def _shape(self):
+        span = self.high - self.low
+        alpha = 1.0 + self.lam * (self.mode - self.low) / span
+        beta = 1.0 + self.lam * (self.high - self.mode) / span
+        return alpha, beta
+
+    def ppf(self, u):
+        alpha, beta = self._shape()
+        return self.low + (self.high - self.low) * stats.beta.ppf(np.asarray(u, float), alpha, beta)
+
+    def describe(self) -> str:
+        return f"PERT({self.low:g}, {self.mode:g}, {self.high:g})"
+
+    def support(self):
+        return (self.low, self.high)
+
+
+@dataclass(frozen=True)
+class TruncatedNormal:
+    """Normal(mean, sd) truncated to [low, high]."""
+
+    mean: float
+    sd: float
+    low: float
+    high: float
+    kind = "truncated-normal"
+
+    def ppf(self, u):
+        a = (self.low - self.mean) / self.sd
+        b = (self.high - self.mean) / self.sd
+        return stats.truncnorm.ppf(np.asarray(u, float), a, b, loc=self.mean, scale=self.sd)
+
+    def describe(self) -> str:
+        return f"normal({self.mean:g}, sd {self.sd:g}) on [{self.low:g}, {self.high:g}]"
+
+    def support(self):
+        return (self.low, self.high)
+
+
+@dataclass(frozen=True)
+class LogNormal:
+    """Lognormal with the given median and standard deviation of log(value)."""
+
+    median: float
+    log_sd: float
+    kind = "lognormal"
+
+    def ppf(self, u):
+        return self.median * np.exp(self.log_sd * stats.norm.ppf(np.asarray(u, float)))
+
+    def describe(self) -> str:
+        return f"lognormal(median {self.median:g}, log-sd {self.log_sd:g})"
+
+    def support(self):
+        return (0.0, np.inf)
+
+
+Prior = Fixed | Uniform | LogUniform | Triangular | PERT | TruncatedNormal | LogNormal
+
+# distribution name -> (class, required fields, optional fields with defaults)
+DISTRIBUTIONS: dict[str, tuple[type, tuple[str, ...], dict[str, float]]] = {
+    "fixed": (Fixed, ("value",), {}),
+    "uniform": (Uniform, ("low", "high"), {}),
+    "log-uniform": (LogUniform, ("low", "high"), {}),
+    "triangular": (Triangular, ("low", "mode", "high"), {}),
+    "pert": (PERT, ("low", "mode", "high"), {"lam": 4.0}),
+    "truncated-normal": (TruncatedNormal, ("mean", "sd", "low", "high"), {}),
+    "lognormal": (LogNormal, ("median", "log_sd"), {}),
+}
+
+
+def prior_problems(prior: Prior) -> list[tuple[str, str]]:
+    """Return ``(field, message)`` pairs for inconsistent prior arguments (empty when valid)."""
+    out: list[tuple[str, str]] = []
+    vals = {k: getattr(prior, k) for k in ("low", "high", "mode", "sd", "log_sd", "median", "lam") if hasattr(prior, k)}
+    for k, v in vals.items():
+        if not np.isfinite(v):
+            out.append((k, f"must be a finite number, got {v!r}"))
+    if out:
+        return out
+    if "low" in vals and "high" in vals and not vals["low"] < vals["high"]:
+        out.append(("high", f"must be greater than low (low={vals['low']:g}, high={vals['high']:g}); bounds reversed or equal"))
+    if "mode" in vals and not vals["low"] <= vals["mode"] <= vals["high"]:
+        out.append(("mode", f"must lie within [low, high] = [{vals['low']:g}, {vals['high']:g}], got {vals['mode']:g}"))
+    if isinstance(prior, LogUniform) and prior.low <= 0:
+        out.append(("low", "log-uniform needs low > 0"))
+    if "sd" in vals and vals["sd"] <= 0:
+        out.append(("sd", "must be > 0"))
+    if "log_sd" in vals and vals["log_sd"] <= 0:
+        out.append(("log_sd", "must be > 0"))
+    if isinstance(prior, LogNormal) and prior.median <= 0:
+        out.append(("median", "must be > 0"))
+    if isinstance(prior, PERT) and prior.lam <= 0:
+        out.append(("lam", "must be > 0"))
+    return out
