@@ -1,0 +1,246 @@
+"""Command-line interface: the only module that parses arguments or prints."""
+
+from __future__ import annotations
+
+import argparse
+import platform
+import sys
+import time
+from datetime import datetime, timezone
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .case import Case, load_case
+from .errors import CaseError
+
+CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
+           "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
+
+
+class _Progress:
+    """Throttled progress lines on stderr."""
+
+    def __init__(self, quiet: bool):
+        self.quiet = quiet
+        self.t0 = time.monotonic()
+        self.last = 0.0
+
+    def __call__(self, msg: str, force: bool = False):
+        now = time.monotonic()
+        if self.quiet or (not force and now - self.last < 0.5):
+            return
+        self.last = now
+        print(f"[{now - self.t0:6.1f} s] {msg}", file=sys.stderr, flush=True)
+
+
+def package_versions() -> dict[str, str]:
+    out = {"python": platform.python_version(), "impact": __version__}
+    for name in ("numpy", "scipy", "pandas", "SALib", "jinja2", "weasyprint", "matplotlib"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def priors_table(case: Case) -> pd.DataFrame:
+    rows = []
+    for p in case.parameters:
+        args = {k: getattr(p.prior, k) for k in p.prior.__dataclass_fields__}
+        rows.append(dict(name=p.name, distribution=p.prior.kind, arguments=p.prior.describe(),
+                         unit=p.unit, source=p.source, description=p.description,
+                         uncertain=p.uncertain, **{f"arg_{k}": v for k, v in args.items()}))
+    return pd.DataFrame(rows)
+
+
+def describe_case(case: Case) -> str:
+    """What the tool understood from the case file, as text."""
+    L = [f"case: {case.title}", f"file: {case.path} (sha256 {case.sha256[:12]}…)"]
+    if case.invented:
+        L.append("marked INVENTED: an example, not real site data")
+    L.append(f"time: horizon {case.horizon:g} {case.time_unit}, output every {case.output_step:g}, spin-up {case.spinup:g}")
+    L.append(f"ensemble: {case.members} members wanted, at most {case.max_draws} draws, seed {case.seed}")
+    L.append(f"species ({len(case.species)}):")
+    for s in case.species:
+        bits = [s.growth]
+        if s.growth != "none":
+            bits.append(f"r={s.growth_rate}")
+        if s.carrying_capacity is not None:
+            bits.append(f"K={s.carrying_capacity}")
+        if s.mortality != 0.0:
+            bits.append(f"m={s.mortality}")
+        bits.append(f"initial={s.initial}")
+        if not s.present:
+            bits.append("absent today")
+        if s.noise_sd != 0.0:
+            bits.append(f"noise sd={s.noise_sd}")
+        bits.append(f"quasi-extinction<{s.quasi_extinction:g}")
+        if s.outbreak is not None:
+            bits.append(f"outbreak>{s.outbreak:g}")
+        L.append(f"  {s.name} [{s.unit}]: " + ", ".join(str(b) for b in bits))
+    L.append(f"interactions ({len(case.feeding) + len(case.competition) + len(case.mutualism)}):")
+    for f in case.feeding:
+        L.append(f"  {f.kind}: {f.consumer} eats {f.resource} ({f.response}; a={f.attack_rate}, h={f.handling_time}, e={f.efficiency})")
+    for c in case.competition:
+        L.append(f"  competition: {c.competitor} crowds {c.species} (alpha={c.coefficient})")
+    for u in case.mutualism:
+        L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, half-saturation={u.half_saturation})")
+    if case.carrion is not None:
+        L.append(f"carrion pool: decay rate {case.carrion.decay_rate}")
+    L.append(f"parameters ({len(case.parameters)}, {len(case.uncertain)} uncertain):")
+    for p in case.parameters:
+        L.append(f"  {p.name} = {p.prior.describe()} [{p.unit or 'no unit given'}]" + (f"  source: {p.source}" if p.source else "  (no source given)"))
+    L.append(f"observed today ({len(case.observed)}):")
+    for o in case.observed:
+        L.append(f"  {o.species} in [{o.low:g}, {o.high:g}]" + (f"  source: {o.source}" if o.source else ""))
+    L.append(f"interventions ({len(case.interventions)}):")
+    for iv in case.interventions:
+        when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"
+        if iv.kind == "pulse-cull":
+            when = "at " + ", ".join(f"{t:g}" for t in iv.times)
+        L.append(f"  {iv.name}: {iv.kind} of {iv.species} {when} {case.time_unit}")
+    L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))
+    L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
+             f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")
+    return "\n".join(L)
+
+
+def _fmt_p(v, lo, hi):
+    return f"{v:5.1%} [{lo:.1%}, {hi:.1%}]"
+
+
+def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict) -> str:
+    H = case.horizon
+    L = [f"{case.title}",
+         f"draws: {counts['tried']} tried, {counts['kept']} plausible kept "
+         f"({counts['failed']} failed numerically, {counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)"]
+    if counts["kept"] < counts["wanted"]:
+        L.append(f"WARNING: only {counts['kept']} of {counts['wanted']} wanted members were plausible within the draw limit")
+    for opt, f in failures.items():
+        if f["failed"]:
+            L.append(f"WARNING: {f['failed']} members failed numerically under {opt}: "
+                     + ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed"))
+    L.append(f"quasi-extinction probability by {H:g} {case.time_unit} [{case.risk.confidence:.0%} CI], and median change in mean abundance vs baseline:")
+    names = ["baseline", *[o.name for o in case.options]]
+    width = max(len(s) for s in case.species_names)
+    for sp in case.species_names:
+        cells = []
+        for opt in names:
+            r = risk[(risk.option == opt) & (risk.species == sp) & (risk.horizon == H)]
+            q = r[r.metric == "quasi_extinction"]
+            d = r[r.metric == "mean_change"]
+            cell = _fmt_p(*q[["value", "low", "high"]].iloc[0]) if len(q) else "   n/a"
+            if len(d):
+                cell += f" {d['value'].iloc[0]:+.0%}"
+            cells.append(f"{opt}: {cell}")
+        L.append(f"  {sp:<{width}}  " + " | ".join(cells))
+    L.append("CAUTION: " + CAUTION)
+    return "\n".join(L)
+
+
+def cmd_check(args) -> int:
+    case = load_case(args.case)
+    print(describe_case(case))
+    print("case file is valid.")
+    return 0
+
+
+def cmd_assess(args) -> int:
+    from .assess import bands_table, draw_ensemble, failure_counts, members_table, risk_table, run_options
+    from .model import equations
+    from .results import staged_directory, write_csv, write_json
+
+    case = load_case(args.case)
+    members = args.members if args.members is not None else case.members
+    seed = args.seed if args.seed is not None else case.seed
+    if members < 1:
+        raise CaseError("command line", "--members", "must be at least 1")
+    if seed < 0:
+        raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    progress = _Progress(args.quiet)
+    started = datetime.now(timezone.utc)
+    t0 = time.monotonic()
+    with staged_directory(Path(args.out)) as tmp:
+        ens = draw_ensemble(case, members, seed, progress=progress)
+        runs = run_options(case, ens, seed, progress=progress)
+        progress("tabulating risk", force=True)
+        risk = risk_table(case, runs)
+        failures = failure_counts(runs)
+        write_csv(risk, tmp / "risk.csv")
+        write_csv(bands_table(case, runs), tmp / "bands.csv")
+        write_csv(members_table(case, ens, runs), tmp / "members.csv")
+        params = pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}})
+        write_csv(params, tmp / "parameters.csv")
+        write_csv(priors_table(case), tmp / "priors.csv")
+        manifest = {
+            "tool": "impact", "version": __version__,
+            "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                     "analyst": case.analyst, "description": case.description, "invented": case.invented},
+            "command": sys.argv,
+            "started_utc": started.isoformat(timespec="seconds"),
+            "seconds": round(time.monotonic() - t0, 2),
+            "seed": seed,
+            "counts": {**ens.counts, "failed_by_option": failures},
+            "time_unit": case.time_unit, "horizon": case.horizon, "horizons": list(case.risk.horizons),
+            "confidence": case.risk.confidence, "recovery_fraction": case.risk.recovery_fraction,
+            "species": [dict(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
+                             generation_time=s.generation_time, present=s.present, growth=s.growth) for s in case.species],
+            "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description) for o in case.options],
+            "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
+                                   description=iv.description) for iv in case.interventions],
+            "equations": equations(case),
+            "assumptions": list(case.notes),
+            "plausibility": "kept draws whose deterministic spin-up keeps every species present today above its "
+                            "quasi-extinction level over the second half of spin-up and whose state today lies in "
+                            "every observed range",
+            "packages": package_versions(),
+            "platform": platform.platform(),
+            "stages": ["assess"],
+            "caution": CAUTION,
+        }
+        write_json(manifest, tmp / "manifest.json")
+        text = summary_text(case, risk, ens.counts, failures)
+        (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
+    print(text)
+    print(f"results written to {args.out}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="impact", description="Paired-ensemble risk assessment of interventions in food webs.")
+    ap.add_argument("--version", action="version", version=f"impact {__version__}")
+    sub = ap.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("check", help="validate a case file and print what was understood")
+    p.add_argument("case")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("assess", help="run the full assessment of a case")
+    p.add_argument("case")
+    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's)")
+    p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_assess)
+    return ap
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except CaseError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("interrupted; no results were written", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,281 @@
+"""Food-web model builder: from a validated case to a vectorised right-hand side.
+
+State layout: one column per declared species (in case order), then one column for the
+carrion pool when the case declares one.  For species i (abundance N_i)::
+
+    dN_i/dt =  φ_i (1 − f_i) [ r⁺_i N_i (1 + Σ_u β_u P_u/(H_u + P_u)) + Σ_{l: i eats} e_l I_l N_i ]
+             − [logistic]  r_i N_i (N_i + Σ_j α_ij N_j) / (κ_i K_i)
+             + r⁻_i N_i − m_i N_i − q_i N_i − Σ_{l: i eaten} I_l N_consumer(l)
+
+    dC/dt   =  Σ_i y_i (m_i N_i + c_i q_i N_i) − δ C − Σ_{l: carrion eaten} I_l N_consumer(l)
+
+with per-capita intake I_l of consumer j on resource R by Holling type I (a R),
+II (a R / D_j) or III (a R² / D_j), where D_j = 1 + Σ_{j's type II/III links} a h R^q
+shares handling time across all of j's resources (so omnivory uses the same machinery).
+φ is the environmental growth multiplier, f the fertility suppression, κ the habitat factor,
+q the harvest rate and c marks harvests that leave carcasses.  r⁺ = max(r, 0) are births,
+r⁻ = min(r, 0) an exponential decline that fertility control does not touch.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .case import CARRION, Case
+
+RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2}
+
+
+@dataclass(frozen=True)
+class Link:
+    consumer: int
+    resource: int  # state column (the carrion pool is column S)
+    response: str
+    kind: str
+
+
+@dataclass(frozen=True)
+class FoodWeb:
+    """Structure of the web: names, state layout and interaction index lists."""
+
+    species: tuple[str, ...]
+    has_carrion: bool
+    logistic: np.ndarray  # (S,) bool
+    links: tuple[Link, ...]
+    competition: tuple[tuple[int, int], ...]  # (species, competitor)
+    mutualism: tuple[tuple[int, int], ...]  # (beneficiary, partner)
+    carrion_yield: np.ndarray  # (S,)
+    unit: tuple[str, ...]
+
+    @property
+    def n_species(self) -> int:
+        return len(self.species)
+
+    @property
+    def n_state(self) -> int:
+        return self.n_species + int(self.has_carrion)
+
+    @property
+    def state_names(self) -> tuple[str, ...]:
+        return self.species + ((CARRION,) if self.has_carrion else ())
+
+
+@dataclass(frozen=True)
+class WebParams:
+    """Per-member parameter values, each an array with leading axis ``members``.
+
+    Attributes
+    ----------
+    r, K, m : ndarray (M, S)
+        Intrinsic growth rate, carrying capacity (inf where not logistic), mortality.
+    a, h, e : ndarray (M, L)
+        Attack rate, handling time and conversion efficiency per feeding link.
+    alpha : ndarray (M, Cc)
+        Competition coefficients; ``beta``, ``H`` : ndarray (M, U) mutualism benefit and
+        half-saturation; ``decay`` : ndarray (M,) carrion decay rate.
+    initial : ndarray (M, n_state)
+    noise_sd : ndarray (M, S)
+    """
+
+    r: np.ndarray
+    K: np.ndarray
+    m: np.ndarray
+    a: np.ndarray
+    h: np.ndarray
+    e: np.ndarray
+    alpha: np.ndarray
+    beta: np.ndarray
+    H: np.ndarray
+    decay: np.ndarray
+    initial: np.ndarray
+    noise_sd: np.ndarray
+
+
+@dataclass(frozen=True)
+class Controls:
+    """Piecewise-constant controls during one segment, each ``(M, S)``."""
+
+    phi: np.ndarray  # environmental growth multiplier
+    fertility: np.ndarray  # fraction of births suppressed
+    habitat: np.ndarray  # carrying-capacity factor
+    harvest: np.ndarray  # proportional removal rate
+    carcass: np.ndarray  # 1 where harvested animals are left as carrion
+
+    @staticmethod
+    def neutral(members: int, n_species: int) -> "Controls":
+        one, zero = np.ones((members, n_species)), np.zeros((members, n_species))
+        return Controls(one, zero, one.copy(), zero.copy(), zero.copy())
+
+
+def build_web(case: Case) -> FoodWeb:
+    """Index the case's species and interactions into a :class:`FoodWeb`."""
+    names = case.species_names
+    col = {n: i for i, n in enumerate(names)}
+    col[CARRION] = len(names)
+    links = tuple(Link(col[f.consumer], col[f.resource], f.response, f.kind) for f in case.feeding)
+    return FoodWeb(
+        species=names,
+        has_carrion=case.carrion is not None,
+        logistic=np.array([s.growth == "logistic" for s in case.species]),
+        links=links,
+        competition=tuple((col[c.species], col[c.competitor]) for c in case.competition),
+        mutualism=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism),
+        carrion_yield=np.array([s.carrion_yield for s in case.species], float),
+        unit=tuple(s.unit for s in case.species),
+    )
+
+
+def resolve(q, values: dict[str, np.ndarray], members: int) -> np.ndarray:
+    """Value of a case quantity for every member: ndarray (members,)."""
+    if q is None:
+        return np.zeros(members)
+    if isinstance(q, str):
+        return np.asarray(values[q], float)
+    return np.full(members, float(q))
+
+
+def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebParams:
+    """Assemble per-member arrays from parameter values.
+
+    Parameters
+    ----------
+    values : dict of str -> ndarray (members,)
+        Value of every declared parameter (fixed ones included) for each member.
+    """
+
+    def col(qs):
+        if not qs:
+            return np.zeros((members, 0))
+        return np.stack([resolve(q, values, members) for q in qs], axis=1)
+
+    sp = case.species
+    K = col([s.carrying_capacity if s.growth == "logistic" else np.inf for s in sp])
+    initial = col([s.initial for s in sp])
+    if case.carrion is not None:
+        initial = np.concatenate([initial, np.full((members, 1), case.carrion.initial)], axis=1)
+        decay = resolve(case.carrion.decay_rate, values, members)
+    else:
+        decay = np.zeros(members)
+    return WebParams(
+        r=col([s.growth_rate for s in sp]),
+        K=K,
+        m=col([s.mortality for s in sp]),
+        a=col([f.attack_rate for f in case.feeding]),
+        h=col([f.handling_time for f in case.feeding]),
+        e=col([f.efficiency for f in case.feeding]),
+        alpha=col([c.coefficient for c in case.competition]),
+        beta=col([u.max_benefit for u in case.mutualism]),
+        H=col([u.half_saturation for u in case.mutualism]),
+        decay=decay,
+        initial=initial,
+        noise_sd=col([s.noise_sd for s in sp]),
+    )
+
+
+def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
+    """Per-capita intake I_l of each feeding link: list of ndarray (m,)."""
+    S = web.n_species
+    denom = [None] * S
+    powered = []
+    for l, link in enumerate(web.links):
+        R = y[:, link.resource]
+        Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
+        powered.append(Rq)
+        if link.response != "holling1":
+            term = p.a[idx, l] * p.h[idx, l] * Rq
+            denom[link.consumer] = term if denom[link.consumer] is None else denom[link.consumer] + term
+    out = []
+    for l, link in enumerate(web.links):
+        flux = p.a[idx, l] * powered[l]
+        if link.response != "holling1":
+            flux = flux / (1.0 + denom[link.consumer])
+        out.append(flux)
+    return out
+
+
+def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarray:
+    """Right-hand side for members ``idx``.
+
+    Parameters
+    ----------
+    y : ndarray (m, n_state)
+    idx : int ndarray (m,)
+        Member indices into ``p`` and ``c``.
+
+    Returns
+    -------
+    ndarray (m, n_state)
+    """
+    S = web.n_species
+    N = y[:, :S]
+    r, m_ = p.r[idx], p.m[idx]
+    births = np.maximum(r, 0.0) * N
+    if web.mutualism:
+        boost = np.ones_like(N)
+        for u, (ben, par) in enumerate(web.mutualism):
+            P = N[:, par]
+            boost[:, ben] += p.beta[idx, u] * P / (p.H[idx, u] + P)
+        births = births * boost
+    loss = np.zeros_like(y)
+    if web.links:
+        I = intakes(web, p, y, idx)
+        gains = np.zeros_like(N)
+        for l, link in enumerate(web.links):
+            eaten = I[l] * N[:, link.consumer]
+            gains[:, link.consumer] += p.e[idx, l] * eaten
+            loss[:, link.resource] += eaten
+        births = births + gains
+    dN = c.phi[idx] * (1.0 - c.fertility[idx]) * births
+    if web.logistic.any():
+        crowd = N.copy()
+        for k, (i, j) in enumerate(web.competition):
+            crowd[:, i] += p.alpha[idx, k] * N[:, j]
+        dens = np.where(web.logistic, r * N * crowd / (c.habitat[idx] * p.K[idx]), 0.0)
+        dN = dN - dens
+    q = c.harvest[idx]
+    dN = dN + np.minimum(r, 0.0) * N - m_ * N - q * N - loss[:, :S]
+    if not web.has_carrion:
+        return dN
+    inflow = ((m_ + c.carcass[idx] * q) * N * web.carrion_yield).sum(axis=1)
+    dC = inflow - p.decay[idx] * y[:, S] - loss[:, S]
+    return np.concatenate([dN, dC[:, None]], axis=1)
+
+
+def equations(case: Case) -> list[str]:
+    """Human-readable equations of the built model, one line per state variable."""
+    web = build_web(case)
+    lines = []
+    for i, s in enumerate(case.species):
+        n = s.name
+        terms = []
+        birth = []
+        if s.growth in ("logistic", "exponential"):
+            ben = [case.mutualism[u].partner for u, (b, _) in enumerate(web.mutualism) if b == i]
+            g = f"r_{n}·{n}" + (f"·(1 + Σ benefit from {', '.join(ben)})" if ben else "")
+            birth.append(g)
+        for f in case.feeding:
+            if f.consumer == n:
+                birth.append(f"e·I({f.resource})·{n}")
+        if birth:
+            terms.append(f"φ·(1−f)·[{' + '.join(birth)}]")
+        if s.growth == "logistic":
+            comps = [c.competitor for c in case.competition if c.species == n]
+            crowd = n + "".join(f" + α·{x}" for x in comps)
+            terms.append(f"− r_{n}·{n}·({crowd})/(κ·K_{n})")
+        if s.mortality != 0.0:
+            terms.append(f"− m_{n}·{n}")
+        for f in case.feeding:
+            if f.resource == n:
+                terms.append(f"− I_{f.consumer}({n})·{f.consumer}")
+        harvested = any(iv.species == n and iv.kind == "press-harvest" for iv in case.interventions)
+        if harvested:
+            terms.append(f"− q·{n}")
+        lines.append(f"d{n}/dt = " + " ".join(terms) if terms else f"d{n}/dt = 0")
+    if case.carrion is not None:
+        scav = [f.consumer for f in case.feeding if f.resource == CARRION]
+        lines.append("dcarrion/dt = Σ yield·(m·N + harvest carcasses) − δ·carrion"
+                     + "".join(f" − I_{x}(carrion)·{x}" for x in scav))
+    lines.append("I = a·R (type I), a·R/(1+Σ a·h·R) (type II), a·R²/(1+Σ a·h·R²) (type III), summed over the consumer's resources")
+    return lines

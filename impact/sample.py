@@ -1,0 +1,79 @@
+"""Random draws of the ensemble: one path from the seed to every number.
+
+Each draw index ``i`` owns the streams ``SeedSequence(seed, spawn_key=(i, purpose, ...))``,
+so a member's parameters, noise and event outcomes depend only on the seed and its index,
+never on how many members were drawn or how they were batched.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+
+from .case import Case
+
+PURPOSE_PARAMETERS = 0
+PURPOSE_NOISE = 1
+PURPOSE_EVENTS = 2
+
+
+def _generator(seed: int, *key: int) -> np.random.Generator:
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key)))
+
+
+def member_uniforms(seed: int, draws: np.ndarray, n: int) -> np.ndarray:
+    """Unit-uniform numbers for the uncertain parameters: ndarray (len(draws), n)."""
+    out = np.empty((len(draws), n))
+    for k, i in enumerate(draws):
+        out[k] = _generator(seed, int(i), PURPOSE_PARAMETERS).random(n)
+    return out
+
+
+def parameter_values(case: Case, unit: np.ndarray) -> dict[str, np.ndarray]:
+    """Map unit-hypercube rows to parameter values through each prior's inverse CDF.
+
+    Parameters
+    ----------
+    unit : ndarray (M, D)
+        Columns follow ``case.uncertain``.
+
+    Returns
+    -------
+    dict of str -> ndarray (M,)
+        Every declared parameter, fixed ones broadcast.
+    """
+    M = unit.shape[0]
+    values = {}
+    uncertain = case.uncertain
+    for j, p in enumerate(uncertain):
+        values[p.name] = p.prior.ppf(unit[:, j])
+    for p in case.parameters:
+        if not p.uncertain:
+            values[p.name] = np.full(M, float(p.prior.value))
+    return values
+
+
+def noise_multipliers(seed: int, draws: np.ndarray, sd: np.ndarray, n_units: int) -> np.ndarray:
+    """Mean-one lognormal growth multipliers, one per member, time unit and species.
+
+    Parameters
+    ----------
+    sd : ndarray (M, S)
+        Standard deviation of log(multiplier); 0 gives exactly 1.
+
+    Returns
+    -------
+    ndarray (M, n_units, S)
+    """
+    M, S = sd.shape
+    z = np.empty((M, n_units, S))
+    for k, i in enumerate(draws):
+        z[k] = _generator(seed, int(i), PURPOSE_NOISE).standard_normal((n_units, S))
+    return np.exp(sd[:, None, :] * z - 0.5 * sd[:, None, :] ** 2)
+
+
+def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
+    """One unit-uniform per member for a chance event of the named intervention: (M,)."""
+    tag = zlib.crc32(name.encode("utf-8"))
+    return np.array([_generator(seed, int(i), PURPOSE_EVENTS, tag).random() for i in draws])

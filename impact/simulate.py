@@ -1,0 +1,242 @@
+"""Simulate the ensemble: spin-up, plausibility filter and paired option runs.
+
+Time is cut into segments at every output time, every time-unit boundary (where the
+environmental multipliers are redrawn) and every intervention start, end or event, so the
+right-hand side is smooth inside each segment and jumps happen only between segments.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from .case import Case, Option
+from .integrate import integrate_segment
+from .model import Controls, FoodWeb, WebParams, rhs
+
+REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
+                      "range": "outside an observed range today"}
+
+
+@dataclass(frozen=True)
+class Run:
+    """Result of one option on the ensemble.
+
+    Attributes
+    ----------
+    times : ndarray (T,)
+        Output times (see :func:`output_times`), from 0 to the horizon.
+    states : ndarray (M, T, n_state)
+        State at each recorded time (NaN after a member fails).
+    cummin, cummax : ndarray (M, T, n_state)
+        Running minimum / maximum over [0, t], including between recorded times.
+    failed : ndarray (M,) bool
+    reason : ndarray (M,) int8
+    nfev : int
+    """
+
+    times: np.ndarray
+    states: np.ndarray
+    cummin: np.ndarray
+    cummax: np.ndarray
+    failed: np.ndarray
+    reason: np.ndarray
+    nfev: int
+
+
+def output_times(case: Case) -> np.ndarray:
+    """Recorded times, shared by every option so runs pair point by point: (T,)."""
+    H = case.horizon
+    ts = set(np.round(np.arange(0.0, H + 1e-12, case.output_step), 12).tolist())
+    ts.update(case.risk.horizons)
+    ts.update((0.0, H))
+    return np.array(sorted(t for t in ts if 0.0 <= t <= H))
+
+
+def segment_times(case: Case, option: Option | None, with_noise: bool) -> np.ndarray:
+    """All segment boundaries over [0, horizon]."""
+    H = case.horizon
+    ts = set(output_times(case).tolist())
+    if with_noise:
+        ts.update(float(k) for k in range(int(np.floor(H)) + 1))
+    if option is not None:
+        for name in option.interventions:
+            iv = case.intervention(name)
+            ts.update((iv.start, iv.end))
+            ts.update(iv.event_times())
+    return np.array(sorted(t for t in ts if 0.0 <= t <= H))
+
+
+def _controls(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int) -> Controls:
+    from .model import resolve  # local: keeps the public surface of this module small
+
+    c = Controls.neutral(M, S)
+    c = replace(c, phi=phi)
+    if option is None:
+        return c
+    col = {n: i for i, n in enumerate(case.species_names)}
+    for name in option.interventions:
+        iv = case.intervention(name)
+        if not iv.start <= t_mid < iv.end:
+            continue
+        j = col[iv.species]
+        if iv.kind == "press-harvest":
+            c.harvest[:, j] += resolve(iv.rate, values, M)
+            if iv.carcasses_to_carrion:
+                c.carcass[:, j] = 1.0
+        elif iv.kind == "fertility-control":
+            # several suppressions combine multiplicatively on the surviving births
+            c.fertility[:, j] = 1.0 - (1.0 - c.fertility[:, j]) * (1.0 - resolve(iv.fraction, values, M))
+        elif iv.kind == "habitat-change":
+            c.habitat[:, j] *= resolve(iv.factor, values, M)
+    return c
+
+
+def _apply_events(case: Case, web: FoodWeb, option: Option | None, values, event_u, t: float, y: np.ndarray):
+    """Jumps at boundary time ``t`` (in place on ``y``)."""
+    if option is None:
+        return
+    from .model import resolve
+
+    M = y.shape[0]
+    col = {n: i for i, n in enumerate(case.species_names)}
+    for name in option.interventions:
+        iv = case.intervention(name)
+        if t not in iv.event_times():
+            continue
+        j = col[iv.species]
+        if iv.kind == "pulse-cull":
+            removed = y[:, j] * resolve(iv.fraction, values, M)
+            y[:, j] -= removed
+            if iv.carcasses_to_carrion and web.has_carrion:
+                y[:, web.n_species] += web.carrion_yield[j] * removed
+        elif iv.kind == "eradication":
+            fails = event_u[name] < resolve(iv.failure_probability, values, M)
+            y[:, j] = np.where(fails, y[:, j] * resolve(iv.residual_fraction, values, M), 0.0)
+        elif iv.kind == "introduction":
+            y[:, j] += resolve(iv.amount, values, M)
+
+
+def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
+               option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray]) -> Run:
+    """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline).
+
+    Parameters
+    ----------
+    y0 : ndarray (M, n_state)
+        State today (after spin-up).
+    noise : ndarray (M, n_units, S) or None
+        Environmental multipliers per time unit, shared by all options (paired).
+    event_u : dict of str -> ndarray (M,)
+        Uniforms deciding chance events (eradication failure), shared by all options.
+    """
+    M, n = y0.shape
+    S = web.n_species
+    times = segment_times(case, option, noise is not None)
+    out_t = output_times(case)
+    slot = {float(t): i for i, t in enumerate(out_t)}
+    T = len(out_t)
+    states = np.full((M, T, n), np.nan)
+    cummin = np.full((M, T, n), np.nan)
+    cummax = np.full((M, T, n), np.nan)
+    y = y0.copy()
+    failed = ~np.isfinite(y).all(axis=1)
+    reason = np.where(failed, 1, 0).astype(np.int8)
+    h = np.full(M, np.nan)
+    nfev = 0
+    _apply_events(case, web, option, values, event_u, times[0], y)
+    lo, hi = y.copy(), y.copy()
+    states[:, 0], cummin[:, 0], cummax[:, 0] = y, lo, hi
+    ones = np.ones((M, S))
+    for k in range(len(times) - 1):
+        t0, t1 = times[k], times[k + 1]
+        mid = 0.5 * (t0 + t1)
+        phi = noise[:, int(np.floor(mid))] if noise is not None else ones
+        c = _controls(case, option, values, mid, phi, M, S)
+        active = np.flatnonzero(~failed)
+        if active.size:
+            h0 = h[active]
+            seg = integrate_segment(
+                lambda t, yy, idx: rhs(web, p, c, yy, idx), t0, t1, y[active],
+                rtol=case.rtol, atol=case.atol, h0=None if np.isnan(h0).any() else h0,
+                members=active, nonnegative=True,
+            )
+            nfev += seg.nfev
+            y[active] = seg.y
+            h[active] = seg.h
+            lo[active] = np.minimum(lo[active], seg.ymin)
+            hi[active] = np.maximum(hi[active], seg.ymax)
+            newly = seg.failed
+            failed[active[newly]] = True
+            reason[active[newly]] = seg.reason[newly]
+        _apply_events(case, web, option, values, event_u, t1, y)
+        lo = np.minimum(lo, y)
+        hi = np.maximum(hi, y)
+        y[failed] = np.nan
+        lo[failed] = np.nan
+        hi[failed] = np.nan
+        if float(t1) in slot:
+            i = slot[float(t1)]
+            states[:, i], cummin[:, i], cummax[:, i] = y, lo, hi
+    return Run(out_t, states, cummin, cummax, failed, reason, nfev)
+
+
+def spin_up(case: Case, web: FoodWeb, p: WebParams) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Run the deterministic baseline from the declared initial state for ``case.spinup``.
+
+    Returns
+    -------
+    today : ndarray (M, n_state)
+        State at the end of spin-up (time 0 of the assessment).
+    late_min : ndarray (M, n_state)
+        Minimum over the second half of spin-up (persistence is judged on it).
+    failed : ndarray (M,) bool
+    reason : ndarray (M,) int8
+    """
+    y = p.initial.copy()
+    M, n = y.shape
+    if case.spinup <= 0:
+        return y, y.copy(), ~np.isfinite(y).all(axis=1), np.zeros(M, np.int8)
+    c = Controls.neutral(M, web.n_species)
+    fun = lambda t, yy, idx: rhs(web, p, c, yy, idx)  # noqa: E731
+    half = -0.5 * case.spinup
+    first = integrate_segment(fun, -case.spinup, half, y, rtol=case.rtol, atol=case.atol, nonnegative=True)
+    failed = first.failed.copy()
+    reason = first.reason.copy()
+    today = np.full_like(y, np.nan)
+    late_min = np.full_like(y, np.nan)
+    ok = np.flatnonzero(~failed)
+    if ok.size:
+        second = integrate_segment(fun, half, 0.0, first.y[ok], rtol=case.rtol, atol=case.atol,
+                                   h0=first.h[ok], members=ok, nonnegative=True)
+        today[ok] = second.y
+        late_min[ok] = np.minimum(second.ymin, second.y)
+        failed[ok[second.failed]] = True
+        reason[ok[second.failed]] = second.reason[second.failed]
+    return today, late_min, failed, reason
+
+
+def plausibility(case: Case, web: FoodWeb, today: np.ndarray, late_min: np.ndarray, failed: np.ndarray) -> dict[str, np.ndarray]:
+    """Which draws are a plausible picture of today's ecosystem.
+
+    A draw is kept when every species present today persists through the second half of
+    spin-up (never below its quasi-extinction level) and today's abundances sit inside every
+    observed range declared in the case.
+
+    Returns
+    -------
+    dict with boolean ndarrays (M,): ``kept``, ``failed``, ``extinct``, ``range``.
+    """
+    col = {n: i for i, n in enumerate(case.species_names)}
+    present = np.array([s.present for s in case.species])
+    qe = np.array([s.quasi_extinction for s in case.species])
+    with np.errstate(invalid="ignore"):
+        extinct = ((late_min[:, : web.n_species] < qe) & present).any(axis=1) & ~failed
+        out_range = np.zeros(len(today), bool)
+        for ob in case.observed:
+            x = today[:, col[ob.species]]
+            out_range |= ~((x >= ob.low) & (x <= ob.high))
+    out_range &= ~failed & ~extinct
+    kept = ~failed & ~extinct & ~out_range
+    return {"kept": kept, "failed": failed, "extinct": extinct, "range": out_range}
