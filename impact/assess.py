@@ -214,3 +214,47 @@ def failure_counts(runs: dict[str, Run]) -> dict[str, dict[str, int]]:
                    for r in np.unique(run.reason[run.failed])}
         out[opt] = {"failed": int(run.failed.sum()), **reasons}
     return out
+
+
+@dataclass(frozen=True)
+class DesignRuns:
+    """Every option run on arbitrary parameter points, with no plausibility filtering.
+
+    Attributes
+    ----------
+    values : dict of str -> ndarray (N,)
+    verdict : dict of str -> ndarray (N,) bool
+        ``kept`` marks points whose baseline is a plausible picture of today.
+    runs : dict of str -> Run
+    """
+
+    values: dict
+    verdict: dict
+    runs: dict
+
+
+def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray | None = None,
+                    noise: bool = True, progress: Progress | None = None) -> DesignRuns:
+    """Spin up and run baseline plus every option on given unit-hypercube points.
+
+    Parameters
+    ----------
+    unit : ndarray (N, D)
+        Columns follow ``case.uncertain``.
+    draws : int ndarray (N,), optional
+        Random-stream identities for noise and chance events; by default every point shares
+        stream 0, so differences between points come from the parameters alone.
+    noise : bool
+        Whether declared environmental noise is applied.
+    """
+    web = build_web(case)
+    N = unit.shape[0]
+    draws = np.zeros(N, dtype=np.int64) if draws is None else np.asarray(draws)
+    values, p, today, verdict = screen_draws(case, web, unit)
+    # implausible and failed points still run, from whatever state spin-up reached
+    start = np.where(np.isfinite(today), today, p.initial)
+    if not noise:
+        p = WebParams(*(getattr(p, f) if f != "noise_sd" else np.zeros_like(p.noise_sd) for f in WebParams.__dataclass_fields__))
+    ens = Ensemble(draws, unit, values, p, start, {})
+    runs = run_options(case, ens, seed, progress=progress)
+    return DesignRuns(values, verdict, runs)

@@ -202,7 +202,12 @@ def cmd_assess(args) -> int:
             "stages": ["assess"],
             "caution": CAUTION,
         }
+        # Later stages read the core tables from `tmp` and write into their own sub-directories;
+        # each appends its name to manifest["stages"] and may add a manifest entry of its own.
+        # stage: sensitivity
+        # stage: dynamics
         write_json(manifest, tmp / "manifest.json")
+        # stage: report (needs the manifest on disk)
         text = summary_text(case, risk, ens.counts, failures)
         (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
     print(text)
