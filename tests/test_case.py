@@ -1,0 +1,104 @@
+"""Case-file validation: every bad input names the file and the field, and says what is allowed."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from casefiles import decline_case, web_case, write_case
+from impact.case import load_case
+from impact.errors import CaseError
+
+CASEWORK = __import__("pathlib").Path(__file__).parent.parent / "casework"
+
+
+@pytest.mark.parametrize("name", ["island_mesopredator.toml", "predator_prey.toml"])
+def test_example_cases_load_and_are_marked_invented(name):
+    case = load_case(CASEWORK / name)
+    assert case.invented
+    assert "INVENTED" in case.title
+    assert len(case.options) >= 1
+
+
+def test_demo_case_meets_the_brief():
+    case = load_case(CASEWORK / "island_mesopredator.toml")
+    assert len(case.species) >= 4 and len(case.options) >= 2
+
+
+def test_web_case_freezes_everything(tmp_path):
+    case = load_case(write_case(tmp_path, web_case()))
+    assert case.species_names == ("grass", "hare", "fox", "beetle")
+    assert [f.kind for f in case.feeding].count("scavenging") == 1
+    assert case.intervention("fox cull").times == (2.0, 4.0)
+    assert len(case.sha256) == 64
+    with pytest.raises(AttributeError):
+        case.title = "changed"  # frozen
+
+
+def _mutate(data, path, value):
+    """Set (or delete, with value=...) a nested entry given as a tuple path."""
+    d = data
+    for k in path[:-1]:
+        d = d[k]
+    if value is ...:
+        del d[path[-1]]
+    else:
+        d[path[-1]] = value
+    return data
+
+
+BAD = [
+    # (description, path in the dict, new value, expected field path, words expected in the message)
+    ("unknown species in an interaction", ("interactions", 1, "prey"), "rabbit", "interactions[1].prey", "unknown species 'rabbit'"),
+    ("missing required field", ("species", 0, "quasi_extinction"), ..., "species.grass.quasi_extinction", "required"),
+    ("negative rate", ("species", 1, "mortality"), -0.1, "species.hare.mortality", ">= 0"),
+    ("prior bounds reversed", ("parameters", "grass_r", "low"), 2.0, "parameters.grass_r.high", "reversed"),
+    ("intervention outside the horizon", ("interventions", 1, "time"), 25.0, "interventions.fox removal.time", "outside"),
+    ("unknown key (typo)", ("species", 2, "mortalty"), 0.3, "species.fox.mortalty", "unknown key"),
+    ("wrong type", ("case", "horizon"), "long", "case.horizon", "must be a number"),
+    ("bad distribution", ("parameters", "fox_a", "distribution"), "gaussian", "parameters.fox_a.distribution", "choose one of"),
+    ("parameter that is not declared", ("species", 0, "growth_rate"), "grass_rate", "species.grass.growth_rate", "not declared"),
+    ("prior allows negative rate", ("parameters", "grass_r", "low"), -1.0, "species.grass.growth_rate", "must be >"),
+    ("fraction above one", ("parameters", "cull", "high"), 1.5, "interventions.fox cull.fraction", "<= 1"),
+    ("option names unknown intervention", ("options", 0, "interventions"), ["fox kill"], "options.cull.interventions", "unknown intervention"),
+]
+
+
+@pytest.mark.parametrize("desc,path,value,field,words", BAD, ids=[b[0] for b in BAD])
+def test_bad_input_names_file_field_and_what_is_allowed(tmp_path, desc, path, value, field, words):
+    f = write_case(tmp_path, _mutate(web_case(), path, value))
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert err.value.file == str(f)
+    assert err.value.field == field
+    assert words in err.value.message
+
+
+def test_malformed_toml(tmp_path):
+    f = tmp_path / "broken.toml"
+    f.write_text("[case\ntitle = 'x'\n")
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert "malformed TOML" in err.value.message and err.value.file == str(f)
+
+
+@pytest.mark.parametrize("command", ["check", "assess"])
+def test_cli_bad_input_exits_2_without_traceback_or_outputs(tmp_path, command):
+    f = write_case(tmp_path, _mutate(web_case(), ("species", 1, "mortality"), -0.1))
+    out = tmp_path / "results"
+    args = [sys.executable, "-m", "impact.cli", command, str(f)] + (["--out", str(out)] if command == "assess" else [])
+    proc = subprocess.run(args, capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert "Traceback" not in proc.stderr
+    assert str(f) in proc.stderr and "species.hare.mortality" in proc.stderr
+    assert list(tmp_path.iterdir()) == [f]  # nothing written, not even a partial directory
+
+
+def test_check_prints_what_it_understood(tmp_path, capsys):
+    from impact.cli import main
+
+    assert main(["check", str(write_case(tmp_path, decline_case()))]) == 0
+    text = capsys.readouterr().out
+    assert "newt" in text and "uniform(-0.2, -0.05)" in text and "press-harvest" in text
