@@ -192,6 +192,13 @@ def cmd_assess(args) -> int:
             "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description) for o in case.options],
             "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
                                    description=iv.description) for iv in case.interventions],
+            # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
+            "interactions": ([dict(kind=f.kind, **{"from": f.consumer, "to": f.resource}, response=f.response)
+                              for f in case.feeding]
+                             + [dict(kind="competition", **{"from": c.competitor, "to": c.species}, response=None)
+                                for c in case.competition]
+                             + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
+                                for u in case.mutualism]),
             "equations": equations(case),
             "assumptions": list(case.notes),
             "plausibility": "kept draws whose deterministic spin-up keeps every species present today above its "
