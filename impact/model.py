@@ -195,8 +195,104 @@ def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
     return out
 
 
+class WebRHS:
+    """Right-hand side bound to one segment's parameters and controls.
+
+    Gathering each member's coefficients is most of the cost of an evaluation, so the gathered
+    arrays are kept while the integrator passes the same member-index array (it only makes a
+    new one when its active set shrinks).  Results never depend on the cache.
+    """
+
+    def __init__(self, web: FoodWeb, p: WebParams, c: Controls):
+        self.web, self.p, self.c = web, p, c
+        S = web.n_species
+        self._full = {
+            "scale": c.phi * (1.0 - c.fertility),
+            "rpos": np.maximum(p.r, 0.0),
+            "lin": np.minimum(p.r, 0.0) - p.m - c.harvest,
+            "dens": np.where(web.logistic, p.r / (c.habitat * p.K), 0.0),
+            "inflow": (p.m + c.carcass * c.harvest) * web.carrion_yield if web.has_carrion else np.zeros((len(p.r), S)),
+            "a": p.a, "ah": p.a * p.h, "e": p.e, "alpha": p.alpha, "beta": p.beta, "H": p.H,
+            "decay": p.decay,
+        }
+        self._key = None
+        self._g = None
+
+    def _gather(self, idx):
+        if self._key is not idx:
+            self._g = {k: v[idx] for k, v in self._full.items()}
+            self._key = idx
+        return self._g
+
+    def __call__(self, t, y, idx):
+        """Time derivative for members ``idx``.
+
+        Parameters
+        ----------
+        t : ndarray (m,)
+            Unused: controls are constant within a segment.
+        y : ndarray (m, n_state)
+        idx : int ndarray (m,)
+
+        Returns
+        -------
+        ndarray (m, n_state)
+        """
+        web = self.web
+        g = self._gather(idx)
+        S = web.n_species
+        N = y[:, :S]
+        births = g["rpos"] * N
+        if web.mutualism:
+            boost = np.ones_like(N)
+            beta, H = g["beta"], g["H"]
+            for u, (ben, par) in enumerate(web.mutualism):
+                P = N[:, par]
+                boost[:, ben] += beta[:, u] * P / (H[:, u] + P)
+            births *= boost
+        out = np.empty_like(y)
+        if web.links:
+            loss = np.zeros_like(y)
+            a, ah, e = g["a"], g["ah"], g["e"]
+            denom: dict[int, np.ndarray] = {}
+            powered = []
+            for l, link in enumerate(web.links):
+                R = y[:, link.resource]
+                Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
+                powered.append(Rq)
+                if link.response != "holling1":
+                    term = ah[:, l] * Rq
+                    denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
+            for l, link in enumerate(web.links):
+                j = link.consumer
+                flux = a[:, l] * powered[l]
+                if link.response != "holling1":
+                    flux = flux / denom[j]
+                eaten = flux * N[:, j]
+                births[:, j] += e[:, l] * eaten
+                loss[:, link.resource] += eaten
+        dN = g["scale"] * births
+        if web.logistic.any():
+            crowd = N.copy()
+            alpha = g["alpha"]
+            for k, (i, j) in enumerate(web.competition):
+                crowd[:, i] += alpha[:, k] * N[:, j]
+            dN -= g["dens"] * N * crowd
+        dN += g["lin"] * N
+        if web.links:
+            dN -= loss[:, :S]
+        out[:, :S] = dN
+        if web.has_carrion:
+            inflow = (g["inflow"] * N).sum(axis=1)
+            dC = inflow - g["decay"] * y[:, S]
+            if web.links:
+                dC -= loss[:, S]
+            out[:, S] = dC
+        return out
+
+
 def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarray:
-    """Right-hand side for members ``idx``.
+    """Right-hand side for members ``idx`` (see the module docstring for the equations).
 
     Parameters
     ----------
@@ -208,39 +304,7 @@ def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarr
     -------
     ndarray (m, n_state)
     """
-    S = web.n_species
-    N = y[:, :S]
-    r, m_ = p.r[idx], p.m[idx]
-    births = np.maximum(r, 0.0) * N
-    if web.mutualism:
-        boost = np.ones_like(N)
-        for u, (ben, par) in enumerate(web.mutualism):
-            P = N[:, par]
-            boost[:, ben] += p.beta[idx, u] * P / (p.H[idx, u] + P)
-        births = births * boost
-    loss = np.zeros_like(y)
-    if web.links:
-        I = intakes(web, p, y, idx)
-        gains = np.zeros_like(N)
-        for l, link in enumerate(web.links):
-            eaten = I[l] * N[:, link.consumer]
-            gains[:, link.consumer] += p.e[idx, l] * eaten
-            loss[:, link.resource] += eaten
-        births = births + gains
-    dN = c.phi[idx] * (1.0 - c.fertility[idx]) * births
-    if web.logistic.any():
-        crowd = N.copy()
-        for k, (i, j) in enumerate(web.competition):
-            crowd[:, i] += p.alpha[idx, k] * N[:, j]
-        dens = np.where(web.logistic, r * N * crowd / (c.habitat[idx] * p.K[idx]), 0.0)
-        dN = dN - dens
-    q = c.harvest[idx]
-    dN = dN + np.minimum(r, 0.0) * N - m_ * N - q * N - loss[:, :S]
-    if not web.has_carrion:
-        return dN
-    inflow = ((m_ + c.carcass[idx] * q) * N * web.carrion_yield).sum(axis=1)
-    dC = inflow - p.decay[idx] * y[:, S] - loss[:, S]
-    return np.concatenate([dN, dC[:, None]], axis=1)
+    return WebRHS(web, p, c)(None, y, np.asarray(idx))
 
 
 def equations(case: Case) -> list[str]:

@@ -13,7 +13,7 @@ import numpy as np
 
 from .case import Case, Option
 from .integrate import integrate_segment
-from .model import Controls, FoodWeb, WebParams, rhs
+from .model import Controls, FoodWeb, WebParams, WebRHS
 
 REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
                       "range": "outside an observed range today"}
@@ -158,7 +158,7 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
         if active.size:
             h0 = h[active]
             seg = integrate_segment(
-                lambda t, yy, idx: rhs(web, p, c, yy, idx), t0, t1, y[active],
+                WebRHS(web, p, c), t0, t1, y[active],
                 rtol=case.rtol, atol=case.atol, h0=None if np.isnan(h0).any() else h0,
                 members=active, nonnegative=True,
             )
@@ -199,7 +199,7 @@ def spin_up(case: Case, web: FoodWeb, p: WebParams) -> tuple[np.ndarray, np.ndar
     if case.spinup <= 0:
         return y, y.copy(), ~np.isfinite(y).all(axis=1), np.zeros(M, np.int8)
     c = Controls.neutral(M, web.n_species)
-    fun = lambda t, yy, idx: rhs(web, p, c, yy, idx)  # noqa: E731
+    fun = WebRHS(web, p, c)
     half = -0.5 * case.spinup
     first = integrate_segment(fun, -case.spinup, half, y, rtol=case.rtol, atol=case.atol, nonnegative=True)
     failed = first.failed.copy()
