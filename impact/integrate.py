@@ -161,8 +161,9 @@ def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0
     ----------
     fun : callable ``fun(t, y, members) -> dydt``
         ``t`` ndarray (m,) per-member times, ``y`` ndarray (m, n), ``members`` int ndarray (m,)
-        member indices; returns ndarray (m, n). Called only on active members. Row ``i`` of the
-        output must depend only on ``t[i]``, ``y[i]`` and ``members[i]``.
+        member indices; returns a new ndarray (m, n) on every call (the integrator keeps and
+        edits it). Called only on active members. Row ``i`` of the output must depend only on
+        ``t[i]``, ``y[i]`` and ``members[i]``.
     t0, t1 : float
         Segment start and end; ``t1 < t0`` integrates backwards.
     y0 : array_like, shape (M, n)
