@@ -215,10 +215,23 @@ def cmd_assess(args) -> int:
         # stage: dynamics
         write_json(manifest, tmp / "manifest.json")
         # stage: report (needs the manifest on disk)
+        if not getattr(args, "no_report", False):
+            from .report import write_report
+
+            progress("writing report.pdf", force=True)
+            write_report(tmp, tmp / "report.pdf", paper=getattr(args, "paper", "a4"))
         text = summary_text(case, risk, ens.counts, failures)
         (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
     print(text)
     print(f"results written to {args.out}")
+    return 0
+
+
+def cmd_report(args) -> int:
+    from .report import write_report
+
+    out = write_report(args.results, args.out, paper=args.paper)
+    print(f"report written to {out}")
     return 0
 
 
@@ -237,7 +250,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's)")
     p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.add_argument("--no-report", action="store_true", help="do not write report.pdf")
+    p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size of report.pdf (default a4)")
     p.set_defaults(func=cmd_assess)
+
+    p = sub.add_parser("report", help="rebuild the PDF report from a saved results directory (no re-simulation)")
+    p.add_argument("results", help="results directory written by `impact assess`")
+    p.add_argument("--out", default=None, help="PDF file (default: RESULTS/report.pdf)")
+    p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size (default a4)")
+    p.set_defaults(func=cmd_report)
     return ap
 
 
