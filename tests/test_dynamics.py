@@ -1,0 +1,206 @@
+"""Regime diagnostics against published results (source beside each check)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from casefiles import write_case
+from impact.case import load_case
+from impact.cli import main
+from impact.dynamics import (DynamicsSettings, classify, detect_period, diagnose_web, logistic_map_scan,
+                             lyapunov_flow, nominal_values, predictability_horizon, refine_transitions,
+                             scan_web, transitions)
+from impact.model import Controls, build_web, web_params
+
+
+def lorenz(t, y, m):
+    x, v, z = y[:, 0], y[:, 1], y[:, 2]
+    return np.stack([10.0 * (v - x), x * (28.0 - z) - v, x * v - 8.0 / 3.0 * z], axis=1)
+
+
+def lorenz_jac(t, y, m):
+    J = np.zeros((len(y), 3, 3))
+    x, v, z = y[:, 0], y[:, 1], y[:, 2]
+    J[:, 0, 0], J[:, 0, 1] = -10.0, 10.0
+    J[:, 1, 0], J[:, 1, 1], J[:, 1, 2] = 28.0 - z, -1.0, -x
+    J[:, 2, 0], J[:, 2, 1], J[:, 2, 2] = v, x, -8.0 / 3.0
+    return J
+
+
+def test_lorenz_largest_lyapunov_exponent():
+    # Sprott (2003), Chaos and Time-Series Analysis, table of Lyapunov exponents: λ1 ≈ 0.9056 for
+    # σ=10, ρ=28, β=8/3. Tolerance 0.04: finite-time estimates over 200 time units scatter by ~0.02.
+    y0 = np.array([[1.0, 1.0, 1.0], [2.0, 1.0, 3.0], [-1.0, 2.0, 20.0], [5.0, 5.0, 25.0]])
+    d = lyapunov_flow(lorenz, lorenz_jac, y0, transient=20.0, window=200.0, sample_dt=0.1, section=2,
+                      nonnegative=False)
+    assert np.mean(d.lyapunov) == pytest.approx(0.9056, abs=0.04)
+    assert np.all(d.lyapunov > 0.8)
+    s = DynamicsSettings(transient=20, window=200, sample_dt=0.1, lambda_tol=0.05)
+    regime, _ = classify(d.lyapunov, d.sections, np.ones(4), np.zeros(4, bool), s)
+    assert list(regime) == ["chaotic"] * 4
+
+
+MAP = DynamicsSettings(transient=0, window=0, sample_dt=1, period_tol=1e-6, max_period=64, lambda_tol=1e-3)
+
+
+def test_logistic_map_lyapunov_at_r4_is_ln2():
+    # Exact: the r=4 logistic map is conjugate to the tent map, λ = ln 2 (e.g. Ott 2002, Sec. 2.3).
+    _, _, lam, _ = logistic_map_scan(np.full(4, 4.0), MAP, transient=100, n=100_000)
+    assert lam.mean() == pytest.approx(np.log(2.0), abs=0.01)
+
+
+@pytest.fixture(scope="module")
+def logistic_doublings():
+    r = np.linspace(2.9, 3.5699, 2000)
+    regime, period, _, _ = logistic_map_scan(r, MAP)
+    tr = transitions("r", r, regime, period)
+    d = tr[tr.kind == "period-doubling"].head(5)
+    return refine_transitions(lambda x: logistic_map_scan(x, MAP)[1], d.from_value.to_numpy(), d.to_value.to_numpy())
+
+
+@pytest.mark.parametrize("k,exact", [(0, 3.0), (1, 1.0 + np.sqrt(6.0))])
+def test_logistic_map_period_doubling_points(logistic_doublings, k, exact):
+    # Exact: r1 = 3 and r2 = 1 + √6 (e.g. Strogatz 1994, Nonlinear Dynamics and Chaos, Sec. 10.2).
+    # Tolerance 1e-3: convergence is slow next to a doubling, so a finite transient detects it early.
+    assert logistic_doublings[k] == pytest.approx(exact, abs=1e-3)
+
+
+def test_logistic_map_feigenbaum_ratio(logistic_doublings):
+    # Feigenbaum (1978): (r_k − r_{k−1})/(r_{k+1} − r_k) → δ = 4.6692; from r3, r4, r5 the ratio is
+    # already 4.66 (Strogatz 1994, Sec. 10.6, from memory). Tolerance 0.05.
+    r = logistic_doublings
+    assert len(r) == 5
+    ratios = np.diff(r)[:-1] / np.diff(r)[1:]
+    assert ratios[-1] == pytest.approx(4.6692, abs=0.05)
+
+
+@pytest.mark.parametrize("seq,expected", [([1.0] * 8, 1), ([1.0, 2.0] * 6, 2), ([1, 2, 3, 4] * 4, 4),
+                                           (list(np.linspace(1, 2, 20)), 0), ([1.0], 0)])
+def test_detect_period(seq, expected):
+    # Definition of a period-k orbit on a Poincaré section (common practice, no source).
+    assert detect_period(np.array(seq, float), 1e-6, 8) == expected
+
+
+@pytest.mark.parametrize("lam,expected", [(0.1, np.log(10.0) / 0.1), (0.0, np.inf), (-0.2, np.inf)])
+def test_predictability_horizon(lam, expected):
+    # Lorenz (1969): errors grow as δ0 e^{λt}, so δ0 reaches Δ at t = ln(Δ/δ0)/λ.
+    assert predictability_horizon(np.array([lam]), 0.05, 0.5)[0] == pytest.approx(expected)
+
+
+# Hastings & Powell (1991, Ecology 72:896–903), nondimensional food chain with f_i(u) = a_i u/(1 + b_i u):
+# a1=5, b1=3, a2=0.1, b2=2, d1=0.4, d2=0.01; in the case, attack=a_i, handling=b_i/a_i, efficiency=1.
+def hp_case(tmp_path):
+    a1, a2, b2, d1, d2 = 5.0, 0.1, 2.0, 0.4, 0.01
+    data = {"case": {"title": "Hastings-Powell", "time_unit": "t", "horizon": 10.0, "spinup": 0.0, "members": 1},
+            "parameters": {"h1": {"distribution": "fixed", "value": 3.0 / a1}},
+            "species": [{"name": "x", "growth": "logistic", "growth_rate": 1.0, "carrying_capacity": 1.0, "initial": 0.76, "quasi_extinction": 1e-6},
+                        {"name": "y", "growth": "none", "mortality": d1, "initial": 0.16, "quasi_extinction": 1e-6},
+                        {"name": "z", "growth": "none", "mortality": d2, "initial": 9.9, "quasi_extinction": 1e-6}],
+            "interactions": [{"type": "predation", "predator": "y", "prey": "x", "response": "holling2", "attack_rate": a1, "handling_time": "h1", "efficiency": 1.0},
+                             {"type": "predation", "predator": "z", "prey": "y", "response": "holling2", "attack_rate": a2, "handling_time": b2 / a2, "efficiency": 1.0}],
+            "interventions": [{"name": "top harvest", "kind": "press-harvest", "species": "z", "rate": 0.0}],
+            "options": [{"name": "harvest", "interventions": ["top harvest"]}]}
+    return write_case(tmp_path, data)
+
+
+HP = DynamicsSettings(transient=3000.0, window=4000.0, sample_dt=2.0, lambda_tol=0.0025)
+
+
+@pytest.fixture(scope="module")
+def hp_scan(tmp_path_factory):
+    case = load_case(hp_case(tmp_path_factory.mktemp("hp")))
+    b1 = np.array([2.2, 2.4, 3.0])
+    scan, points, trans = scan_web(case, "h1", b1 / 5.0, HP, continuation=False)
+    points["b1"] = b1
+    return points, trans
+
+
+def test_hastings_powell_chaotic_at_published_parameters(hp_scan):
+    # HP 1991: b1 = 3 gives the chaotic "teacup" attractor; here λ > 0 and no period on the z-maxima section.
+    points, _ = hp_scan
+    row = points[points.b1 == 3.0].iloc[0]
+    assert row.regime == "chaotic"
+    assert row.lyapunov > HP.lambda_tol
+
+
+def test_hastings_powell_route_to_chaos(hp_scan):
+    # HP 1991 bifurcation diagram of z maxima against b1 (figure as recalled from memory): a simple
+    # limit cycle near b1 ≈ 2.2, period doubling as b1 grows, chaos by b1 = 3.
+    points, trans = hp_scan
+    assert (points.iloc[0].regime, points.iloc[0].period) == ("cycle", 1)
+    assert points.iloc[1].period > 1
+    assert "onset-of-chaos" in set(trans.kind)
+
+
+def rm_case(tmp_path, factor):
+    # Rosenzweig (1971): N* = m/(a(e − m h)); stable equilibrium for K < 2N* + 1/(a h), limit cycle above.
+    r, a, h, e, m = 3.0, 1.0, 0.01, 0.01, 0.5
+    n_star = m / (a * (e - m * h))
+    K = factor * (2 * n_star + 1 / (a * h))
+    data = {"case": {"title": "RM", "time_unit": "year", "horizon": 10.0, "spinup": 0.0, "members": 1},
+            "parameters": {"K": {"distribution": "fixed", "value": K}},
+            "species": [{"name": "prey", "growth": "logistic", "growth_rate": r, "carrying_capacity": "K", "initial": 0.8 * n_star, "quasi_extinction": 1e-3},
+                        {"name": "pred", "growth": "none", "mortality": m, "initial": 1.0, "quasi_extinction": 1e-4}],
+            "interactions": [{"type": "predation", "predator": "pred", "prey": "prey", "response": "holling2",
+                              "attack_rate": a, "handling_time": h, "efficiency": e}],
+            "interventions": [{"name": "trap", "kind": "press-harvest", "species": "prey", "rate": 0.2}],
+            "options": [{"name": "trapping", "interventions": ["trap"]}]}
+    return write_case(tmp_path, data)
+
+
+@pytest.mark.parametrize("factor,regime,period", [(0.7, "equilibrium", 0), (1.5, "cycle", 1)])
+def test_rosenzweig_macarthur_regimes(tmp_path, factor, regime, period):
+    case = load_case(rm_case(tmp_path, factor))
+    web = build_web(case)
+    p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
+    s = DynamicsSettings(transient=200.0, window=200.0, sample_dt=0.25, lambda_tol=0.03)
+    out = diagnose_web(web, p, Controls.neutral(1, 2), p.initial, s, np.array([1e-3, 1e-4]))
+    assert (out["regime"][0], out["period"][0]) == (regime, period)
+    if regime == "equilibrium":
+        assert out["lyapunov"][0] < -s.lambda_tol
+    else:
+        assert abs(out["lyapunov"][0]) <= s.lambda_tol
+
+
+def test_scan_cli_writes_tables_and_finds_the_hopf_point(tmp_path):
+    # Rosenzweig (1971): onset of cycles at K = 2N* + 1/(a h) = 2·100 + 100 = 300 for these values.
+    path = rm_case(tmp_path, 1.0)
+    out = tmp_path / "scan"
+    rc = main(["scan", str(path), "--parameter", "K", "--from", "210", "--to", "390", "--steps", "4",
+               "--transient", "200", "--window", "150", "--sample-dt", "0.25", "--out", str(out), "--quiet"])
+    assert rc == 0
+    scan = pd.read_csv(out / "dynamics" / "scan.csv")
+    assert list(scan.columns) == ["parameter", "value", "section_value", "regime", "period", "lyapunov"]
+    tr = pd.read_csv(out / "dynamics" / "transitions.csv")
+    hopf = tr[tr.kind == "onset-of-cycles"]
+    assert len(hopf) == 1 and hopf.from_value.iloc[0] < 300 < hopf.to_value.iloc[0]
+    assert "thresholds" in json.loads((out / "dynamics" / "dynamics.json").read_text())
+
+
+@pytest.mark.parametrize("args", [["--parameter", "nope"], ["--parameter", "trap.rate"],
+                                  ["--parameter", "K", "--option", "nope"]])
+def test_scan_cli_bad_input_exits_2(tmp_path, args):
+    path = rm_case(tmp_path, 1.0)
+    rc = main(["scan", str(path), *args, "--from", "1", "--to", "2", "--steps", "2", "--out", str(tmp_path / "o"), "--quiet"])
+    assert rc == 2
+    assert not (tmp_path / "o").exists()
+
+
+def test_assess_writes_dynamics_for_every_option(tmp_path):
+    path = rm_case(tmp_path, 1.5)
+    out = tmp_path / "res"
+    rc = main(["assess", str(path), "--out", str(out), "--members", "3", "--quiet"])
+    assert rc == 0
+    reg = pd.read_csv(out / "dynamics" / "regimes.csv")
+    assert list(reg.columns)[:7] == ["option", "member", "regime", "period", "lyapunov", "horizon_time", "extinct"]
+    assert set(reg.option) == {"baseline", "trapping"}
+    shares = pd.read_csv(out / "dynamics" / "regime_shares.csv")
+    assert shares.groupby("option").share.sum().to_numpy() == pytest.approx([1.0, 1.0])
+    # 1.5× the Hopf threshold without harvest: cycles (Rosenzweig 1971)
+    assert set(reg[reg.option == "baseline"].regime) == {"cycle"}
+    assert "dynamics" in json.loads((out / "manifest.json").read_text())["stages"]
