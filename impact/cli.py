@@ -213,6 +213,14 @@ def cmd_assess(args) -> int:
         # each appends its name to manifest["stages"] and may add a manifest entry of its own.
         # stage: sensitivity
         # stage: dynamics
+        if not getattr(args, "no_dynamics", False):
+            from .dynamics import assess_stage
+
+            dyn, dyn_record = assess_stage(case, ens.params, ens.values, runs, progress=progress)
+            for key, frame in dyn.items():
+                write_csv(frame, tmp / "dynamics" / f"{key}.csv")
+            write_json(dyn_record, tmp / "dynamics" / "dynamics.json")
+            manifest["stages"].append("dynamics")
         write_json(manifest, tmp / "manifest.json")
         # stage: report (needs the manifest on disk)
         if not getattr(args, "no_report", False):
@@ -235,6 +243,51 @@ def cmd_report(args) -> int:
     return 0
 
 
+def cmd_scan(args) -> int:
+    from .dynamics import default_settings, nominal_values, scan_web, settings_record
+    from .model import web_params
+    from .results import staged_directory, write_csv, write_json
+
+    case = load_case(args.case)
+    if args.steps < 2:
+        raise CaseError("command line", "--steps", "must be at least 2")
+    if not args.stop > args.start:
+        raise CaseError("command line", "--to", f"must be greater than --from ({args.start:g})")
+    for flag, v in (("--transient", args.transient), ("--window", args.window), ("--sample-dt", args.sample_dt)):
+        if v is not None and not (v > 0 if flag != "--transient" else v >= 0):
+            raise CaseError("command line", flag, "must be a positive time")
+    nominal = nominal_values(case)
+    p = web_params(case, {k: np.array([v]) for k, v in nominal.items()}, 1)
+    over = {k: v for k, v in (("transient", args.transient), ("window", args.window), ("sample_dt", args.sample_dt)) if v is not None}
+    settings = default_settings(case, p, p.initial, **over)
+    grid = np.linspace(args.start, args.stop, args.steps)
+    progress = _Progress(args.quiet)
+    t0 = time.monotonic()
+    with staged_directory(Path(args.out)) as tmp:
+        scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option,
+                                       continuation=not args.parallel, progress=progress)
+        write_csv(scan, tmp / "dynamics" / "scan.csv")
+        write_csv(points, tmp / "dynamics" / "scan_points.csv")
+        write_csv(trans, tmp / "dynamics" / "transitions.csv")
+        seconds = time.monotonic() - t0
+        write_json(settings_record(settings, parameter=args.parameter, values=grid.tolist(), option=args.option,
+                                   continuation=not args.parallel, others="every other parameter at its prior median",
+                                   seconds=round(seconds, 2), failed=int(points.failed.sum())),
+                   tmp / "dynamics" / "dynamics.json")
+        write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["scan"],
+                    "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title}},
+                   tmp / "manifest.json")
+    for _, r in points.iterrows():
+        print(f"{args.parameter} = {r.value:.6g}: {r.regime}" + (f" (period {r.period})" if r.regime == "cycle" else "")
+              + f", λ = {r.lyapunov:.3g}")
+    for _, r in trans.iterrows():
+        print(f"transition {r.kind}: {r.from_regime} -> {r.to_regime} between {r.from_value:.6g} and {r.to_value:.6g}")
+    if points.failed.any():
+        print(f"WARNING: {int(points.failed.sum())} scan values failed numerically")
+    print(f"results written to {args.out} ({len(grid) / max(seconds, 1e-9):.2f} values per second)")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="impact", description="Paired-ensemble risk assessment of interventions in food webs.")
     ap.add_argument("--version", action="version", version=f"impact {__version__}")
@@ -252,7 +305,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--no-report", action="store_true", help="do not write report.pdf")
     p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size of report.pdf (default a4)")
+    p.add_argument("--no-dynamics", action="store_true", help="skip the regime / Lyapunov diagnostics")
     p.set_defaults(func=cmd_assess)
+
+    p = sub.add_parser("scan", help="bifurcation scan of one parameter or intervention intensity")
+    p.add_argument("case")
+    p.add_argument("--parameter", required=True, help="a declared parameter, or INTERVENTION.rate|fraction|factor")
+    p.add_argument("--from", dest="start", type=float, required=True)
+    p.add_argument("--to", dest="stop", type=float, required=True)
+    p.add_argument("--steps", type=int, required=True, help="number of values (at least 2)")
+    p.add_argument("--option", default=None, help="run under this option's press interventions")
+    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
+    p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
+    p.add_argument("--sample-dt", type=float, default=None, help="sampling / renormalisation interval")
+    p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_scan)
 
     p = sub.add_parser("report", help="rebuild the PDF report from a saved results directory (no re-simulation)")
     p.add_argument("results", help="results directory written by `impact assess`")
