@@ -1,0 +1,277 @@
+"""The assessment PDF: built from saved results, contents findable, figures drawn, safe rendering."""
+
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from impact.case import load_case
+from impact.cli import build_parser, main
+from impact.report import ASSET_SCHEME, Assets, fmt_cell, make_fetcher, render_pdf, report_html, load_results, write_report
+
+pypdf = pytest.importorskip("pypdf")
+
+CASE_PATH = Path(__file__).parent.parent / "casework" / "predator_prey.toml"
+CASE = load_case(CASE_PATH)
+OPTIONS = ["baseline", *[o.name for o in CASE.options]]
+SPECIES = list(CASE.species_names)
+HORIZONS = list(CASE.risk.horizons)
+HOSTILE = '<img src="file:///etc/passwd">'
+
+
+def _squash(s: str) -> str:
+    return re.sub(r"\s+", "", s)
+
+
+def _text(pdf: Path) -> str:
+    return "\n".join(p.extract_text() for p in pypdf.PdfReader(str(pdf)).pages)
+
+
+def _assess_flags():
+    """--no-report off (the report is wanted); switch off slow later stages when they have a flag."""
+    sub = next(a for a in build_parser()._actions if a.dest == "command").choices["assess"]
+    known = {s for a in sub._actions for s in a.option_strings}
+    return [f for f in ("--no-sensitivity", "--no-dynamics") if f in known]
+
+
+@pytest.fixture(scope="session")
+def results(tmp_path_factory):
+    out = tmp_path_factory.mktemp("report") / "pp"
+    rc = main(["assess", str(CASE_PATH), "--out", str(out), "--members", "100", "--quiet", *_assess_flags()])
+    assert rc == 0
+    return out
+
+
+@pytest.fixture(scope="session")
+def text(results):
+    return _squash(_text(results / "report.pdf"))
+
+
+def test_assess_writes_report_by_default(results):
+    assert (results / "report.pdf").read_bytes()[:5] == b"%PDF-"
+
+
+@pytest.mark.parametrize("phrase", [
+    "Model-based screening aid",
+    "results depend on the model structure and priors shown",
+    "licensed ecological review",
+    "applicable local regulations and permits",
+])
+def test_cautions_are_printed(text, phrase):
+    assert _squash(phrase) in text
+
+
+@pytest.mark.parametrize("name", SPECIES + OPTIONS)
+def test_every_species_and_option_is_named(text, name):
+    assert _squash(name) in text
+
+
+def test_case_hash_is_printed(text):
+    assert CASE.sha256 in text
+
+
+@pytest.mark.parametrize("stage, section", [("sensitivity", "Sensitivityanalysis:notrun"),
+                                            ("dynamics", "Dynamicsdiagnostics:notrun")])
+def test_absent_stages_say_not_run(text, results, stage, section):
+    if (results / stage).exists():
+        pytest.skip(f"the {stage} stage ran in this build")
+    assert section in text
+
+
+@pytest.mark.parametrize("option", OPTIONS[1:])
+@pytest.mark.parametrize("species", SPECIES)
+@pytest.mark.parametrize("horizon", HORIZONS)
+@pytest.mark.parametrize("metric", ["quasi_extinction", "expected_minimum", "mean_change"])
+def test_risk_numbers_as_in_csv(results, text, option, species, horizon, metric):
+    risk = pd.read_csv(results / "risk.csv", keep_default_na=False)
+    row = risk[(risk.option == option) & (risk.species == species) & (risk.metric == metric)
+               & np.isclose(risk.horizon.astype(float), horizon)].iloc[0]
+    assert _squash(fmt_cell(metric, row.value, row.low, row.high)) in text
+
+
+@pytest.mark.parametrize("species", SPECIES)
+def test_quasi_extinction_percentages_match_csv_rounding(results, text, species):
+    # the CSV value written as a percentage with one decimal, independently of the report's formatter
+    risk = pd.read_csv(results / "risk.csv", keep_default_na=False)
+    row = risk[(risk.option == OPTIONS[1]) & (risk.species == species) & (risk.metric == "quasi_extinction")].iloc[-1]
+    assert f"{100 * row.value:.1f}%[{100 * row.low:.1f},{100 * row.high:.1f}]" in text
+
+
+def _page_of(pdf: Path, needle: str) -> int:
+    pages = pypdf.PdfReader(str(pdf)).pages
+    return next(i + 1 for i, p in enumerate(pages) if _squash(needle) in _squash(p.extract_text()))
+
+
+def _raster(pdf: Path, page: int, tmp_path: Path) -> np.ndarray:
+    if shutil.which("pdftoppm") is None:
+        pytest.skip("pdftoppm (poppler-utils) not installed")
+    stem = tmp_path / f"page{page}"
+    subprocess.run(["pdftoppm", "-r", "60", "-f", str(page), "-l", str(page), "-singlefile", str(pdf), str(stem)], check=True)
+    raw = (tmp_path / f"page{page}.ppm").read_bytes()
+    # binary PPM: "P6\n<w> <h>\n255\n" then RGB bytes
+    head = raw.split(b"\n", 3)
+    w, h = map(int, head[1].split())
+    return np.frombuffer(head[3], dtype=np.uint8)[: w * h * 3].reshape(h, w, 3)
+
+
+# one food-web diagram and one band figure per option (predator_prey has one option)
+@pytest.mark.parametrize("figure", [1, 2])
+def test_figure_pages_are_not_blank(results, tmp_path, figure):
+    pdf = results / "report.pdf"
+    img = _raster(pdf, _page_of(pdf, f"Figure {figure}."), tmp_path).astype(int)
+    # text is black or grey; figures draw coloured lines and bands
+    coloured = (img.max(axis=2) - img.min(axis=2)) > 60
+    assert coloured.sum() > 150
+
+
+def test_page_count_is_stable(results, tmp_path):
+    again = write_report(results, tmp_path / "again.pdf")
+    n0 = len(pypdf.PdfReader(str(results / "report.pdf")).pages)
+    assert len(pypdf.PdfReader(str(again)).pages) == n0
+    if shutil.which("pdftoppm"):
+        subprocess.run(["pdftoppm", "-r", "10", "-png", str(again), str(tmp_path / "pg")], check=True)
+        assert len(list(tmp_path.glob("pg-*.png"))) == n0
+
+
+def test_report_command_and_letter_paper(results, tmp_path):
+    out = tmp_path / "letter.pdf"
+    assert main(["report", str(results), "--out", str(out), "--paper", "letter"]) == 0
+    box = pypdf.PdfReader(str(out)).pages[0].mediabox
+    # US Letter is 8.5 x 11 in = 612 x 792 pt (ANSI/ASME Y14.1)
+    assert (round(float(box.width)), round(float(box.height))) == (612, 792)
+
+
+def test_default_paper_is_a4(results):
+    box = pypdf.PdfReader(str(results / "report.pdf")).pages[0].mediabox
+    # A4 is 210 x 297 mm = 595.28 x 841.89 pt (ISO 216)
+    assert (round(float(box.width)), round(float(box.height))) == (595, 842)
+
+
+@pytest.mark.parametrize("bad", ["missing", "empty", "broken-manifest"])
+def test_invalid_results_dir_is_a_case_error(tmp_path, capsys, bad):
+    d = tmp_path / "r"
+    if bad != "missing":
+        d.mkdir()
+    if bad == "broken-manifest":
+        (d / "manifest.json").write_text("{not json", encoding="utf-8")
+    assert main(["report", str(d)]) == 2
+    assert capsys.readouterr().err.startswith("error: ")
+
+
+def test_report_uses_saved_results_only(results, tmp_path):
+    # a copy without the case file beside it still renders: nothing is re-simulated
+    copy = tmp_path / "copy"
+    shutil.copytree(results, copy)
+    m = json.loads((copy / "manifest.json").read_text(encoding="utf-8"))
+    m["case"]["path"] = str(tmp_path / "no-such-case.toml")
+    (copy / "manifest.json").write_text(json.dumps(m), encoding="utf-8")
+    assert write_report(copy).stat().st_size > 10_000
+
+
+def test_hostile_title_prints_as_text_and_fetches_nothing(results, tmp_path):
+    copy = tmp_path / "hostile"
+    shutil.copytree(results, copy)
+    m = json.loads((copy / "manifest.json").read_text(encoding="utf-8"))
+    m["case"]["title"] = HOSTILE
+    m["case"]["analyst"] = HOSTILE
+    (copy / "manifest.json").write_text(json.dumps(m), encoding="utf-8")
+    html, assets = report_html(load_results(copy))
+    pdf, fetcher = render_pdf(html, assets)
+    (tmp_path / "h.pdf").write_bytes(pdf)
+    assert _squash(HOSTILE) in _squash(_text(tmp_path / "h.pdf"))
+    assert not any(u.startswith("file:") for u in fetcher.served + fetcher.refused)
+    assert fetcher.served and all(u.startswith(ASSET_SCHEME) for u in fetcher.served)
+
+
+def test_unescaped_file_image_is_refused(tmp_path):
+    # were escaping ever bypassed, the fetcher is the second wall
+    pdf, fetcher = render_pdf(f"<p>before</p>{HOSTILE}<p>after</p>", Assets())
+    assert fetcher.refused == ["file:///etc/passwd"]
+    assert fetcher.served == []
+    (tmp_path / "raw.pdf").write_bytes(pdf)
+    assert "root:" not in _text(tmp_path / "raw.pdf")
+
+
+@pytest.mark.parametrize("url", [
+    "file:///etc/passwd",
+    "http://127.0.0.1/x.css",
+    "https://example.org/a.png",
+    "data:text/css,body{}",
+    ASSET_SCHEME + "../report.html",
+    ASSET_SCHEME + "/etc/passwd",
+    ASSET_SCHEME + "report.html",
+])
+def test_fetcher_refuses_everything_but_named_assets(url):
+    assets = Assets()
+    assets.add("report.css", b"body{}", "text/css")
+    f = make_fetcher(assets)
+    with pytest.raises(ValueError):
+        f.fetch(url)
+    assert f.refused == [url]
+
+
+def test_fetcher_serves_named_asset():
+    assets = Assets()
+    assets.add("report.css", b"body{}", "text/css")
+    r = make_fetcher(assets).fetch(ASSET_SCHEME + "report.css")
+    assert (r.read(), r.content_type) == (b"body{}", "text/css")
+
+
+def _write_stages(d: Path):
+    """Small stage outputs in the contract columns of DEVELOPERS.md ("Stage outputs")."""
+    opt, sp = OPTIONS[1], SPECIES[0]
+    params = [p.name for p in CASE.uncertain]
+    s = d / "sensitivity"
+    s.mkdir()
+    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, parameter=p, S1=0.1 * (k + 1), S1_conf=0.02,
+                       ST=0.15 * (k + 1), ST_conf=0.03, conditional_on="", N=256) for k, p in enumerate(params)]
+                 ).to_csv(s / "indices.csv", index=False)
+    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, rank=k + 1, parameter=p, ST=0.6 - 0.15 * k,
+                       ST_conf=0.03, S1=0.5 - 0.1 * k, interaction=0.1 - 0.05 * k) for k, p in enumerate(params)]
+                 ).to_csv(s / "ranking.csv", index=False)
+    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, max_shift=0.08, max_ci_width=0.31,
+                       tolerance=0.1, converged=False)]).to_csv(s / "convergence.csv", index=False)
+    (s / "sensitivity.json").write_text(json.dumps(dict(N=256, D=len(params), second_order=False, runs=3072, failures=0,
+                                                        failure_limit=0.05, policy="drop", method="sobol", screening=None)))
+    y = d / "dynamics"
+    y.mkdir()
+    pd.DataFrame([dict(option=o, member=m, regime="chaotic" if m % 3 == 0 else "equilibrium", period=np.nan,
+                       lyapunov=0.2 if m % 3 == 0 else -0.5, horizon_time=11.5 if m % 3 == 0 else np.inf, extinct=False)
+                  for o in OPTIONS for m in range(30)]).to_csv(y / "regimes.csv", index=False)
+    pd.DataFrame([dict(option=o, regime=r, share=sh, count=c, lyapunov_median=l, horizon_median=h)
+                  for o in OPTIONS for r, sh, c, l, h in (("equilibrium", 0.667, 20, -0.5, np.inf), ("chaotic", 0.333, 10, 0.2, 11.5))]
+                 ).to_csv(y / "regime_shares.csv", index=False)
+    pd.DataFrame([dict(parameter=params[0], value=v, section_value=v * k, regime="cycle", period=2, lyapunov=-0.01)
+                  for v in np.linspace(1, 2, 20) for k in (1, 2)]).to_csv(y / "scan.csv", index=False)
+
+
+@pytest.fixture(scope="module")
+def staged_text(results, tmp_path_factory):
+    d = tmp_path_factory.mktemp("staged") / "r"
+    shutil.copytree(results, d)
+    for stage in ("sensitivity", "dynamics"):
+        shutil.rmtree(d / stage, ignore_errors=True)
+    _write_stages(d)
+    return _squash(_text(write_report(d)))
+
+
+@pytest.mark.parametrize("needle", [
+    "NOTconverged",            # convergence verdict table
+    "didnotconverge",          # and the warning up front
+    "33.3%ofmembersarechaotic",  # regime share read from regime_shares.csv
+    "medianpredictabilityhorizon11.5",
+    "Bifurcationdiagram",
+    *[_squash(p.name) for p in CASE.uncertain],
+])
+def test_stage_sections_are_drawn_when_present(staged_text, needle):
+    assert needle in staged_text
+
+
+@pytest.mark.parametrize("absent", ["Sensitivityanalysis:notrun", "Dynamicsdiagnostics:notrun"])
+def test_present_stages_are_not_called_not_run(staged_text, absent):
+    assert absent not in staged_text
