@@ -1,0 +1,56 @@
+"""Cost of the Lyapunov stage relative to a plain ensemble run, and scan throughput.
+
+Run: /tmp/venv/bin/python bench/bench_dynamics.py   (ratios are measured in the same run)
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+from casefiles import write_case  # noqa: E402
+
+from impact.case import load_case  # noqa: E402
+from impact.dynamics import DynamicsSettings, lyapunov_flow, nominal_values, scan_web, web_functions  # noqa: E402
+from impact.integrate import integrate_segment  # noqa: E402
+from impact.model import Controls, build_web, web_params  # noqa: E402
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
+from test_dynamics import hp_case  # noqa: E402
+
+
+def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
+    tmp = Path("/tmp") / "bench_dynamics"
+    tmp.mkdir(exist_ok=True)
+    case = load_case(hp_case(tmp))
+    web = build_web(case)
+    b1 = np.linspace(2.2, 3.2, members)
+    vals = {k: np.full(members, v) for k, v in nominal_values(case).items()}
+    vals["h1"] = b1 / 5.0
+    p = web_params(case, vals, members)
+    fun, jac = web_functions(web, p, Controls.neutral(members, 3))
+    t = time.perf_counter()
+    plain = integrate_segment(fun, 0.0, span, p.initial, rtol=1e-7, atol=1e-9)
+    t_plain = time.perf_counter() - t
+    t = time.perf_counter()
+    d = lyapunov_flow(fun, jac, p.initial, transient=0.0, window=span, sample_dt=dt, section=2, rtol=1e-7, atol=1e-9)
+    t_lyap = time.perf_counter() - t
+    print(f"plain ensemble run: {members} members x {span:g} time units: {t_plain:.2f} s ({plain.nfev} rhs calls)")
+    print(f"Lyapunov stage (tangent + sampling every {dt:g}): {t_lyap:.2f} s ({d.nfev} calls)")
+    print(f"ratio Lyapunov / plain: {t_lyap / t_plain:.2f} (target <= 3)")
+    s = DynamicsSettings(transient=1000.0, window=1000.0, sample_dt=dt)
+    for cont in (False, True):
+        grid = np.linspace(2.2, 3.2, 40 if not cont else 6) / 5.0
+        t = time.perf_counter()
+        scan_web(case, "h1", grid, s, continuation=cont)
+        el = time.perf_counter() - t
+        print(f"scan ({'continuation' if cont else 'parallel'}), {grid.size} values x 2000 time units: "
+              f"{el:.2f} s, {grid.size / el:.2f} members per second")
+
+
+if __name__ == "__main__":
+    main()
