@@ -88,19 +88,19 @@ def fmt_num(v) -> str:
 def fmt_prob(v) -> str:
     """A saved probability as printed: a percentage with one decimal."""
     v = float(v)
-    return "n/a" if math.isnan(v) else f"{100 * v:.1f} %"
+    return "n/a" if math.isnan(v) else f"{100 * v:.1f}\u00a0%"
 
 
 def fmt_change(v) -> str:
     """A saved relative change as printed: a signed whole percentage."""
     v = float(v)
-    return "n/a" if math.isnan(v) else ("+∞ %" if math.isinf(v) else f"{100 * v:+.0f} %")
+    return "n/a" if math.isnan(v) else ("+∞ %" if math.isinf(v) else f"{100 * v:+.0f}\u00a0%")
 
 
 def fmt_cell(metric: str, value, low, high) -> str:
     """Value with its interval, in the style of the metric."""
     if metric in PROBABILITY_METRICS:
-        lo, hi = (fmt_prob(x).replace(" %", "") for x in (low, high))
+        lo, hi = (fmt_prob(x).replace("\u00a0%", "") for x in (low, high))
         return f"{fmt_prob(value)} [{lo}, {hi}]"
     if metric == "mean_change":
         return f"{fmt_change(value)} [{fmt_change(low)}, {fmt_change(high)}]"
