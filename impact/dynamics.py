@@ -29,7 +29,7 @@ from .case import Case
 from .errors import CaseError
 from .integrate import FAILURE_REASONS, integrate_segment
 from .jacobian import jacobian, tangent
-from .model import Controls, FoodWeb, WebParams, build_web, rhs, web_params
+from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, rhs, web_params
 
 REGIMES = ("equilibrium", "cycle", "irregular", "chaotic", "extinction")
 
@@ -75,7 +75,7 @@ class DynamicsSettings:
     lambda_tol: float = 0.005
     rtol: float = 1e-7
     atol: float = 1e-9
-    member_cap: int = 200
+    member_cap: int = 48
 
 
 @dataclass(frozen=True)
@@ -234,7 +234,15 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         if nonnegative:
             x = np.maximum(x, 0.0)
         f = fun(t, x, mem)
-        return np.concatenate([f, tangent(jac(t, x, mem), Y[:, n:])], axis=1)
+        V = Y[:, n:]
+        if nonnegative:
+            # An absent species stays absent (the model is of Kolmogorov form and the web is
+            # closed), so perturbations are confined to the face of present species: otherwise
+            # the invasion rate of an eradicated species would pass for chaos.
+            present = x > 0
+            V = np.where(present, V, 0.0)
+            return np.concatenate([f, np.where(present, tangent(jac(t, x, mem), V), 0.0)], axis=1)
+        return np.concatenate([f, tangent(jac(t, x, mem), V)], axis=1)
 
     v = np.arange(1.0, n + 1.0)
     v = np.tile(v / np.sqrt((v * v).sum()), (M, 1))
@@ -274,8 +282,18 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         Y[failed] = np.nan
         if nonnegative:
             Y[:, :n] = np.maximum(Y[:, :n], 0.0)
+            tan = Y[:, n:]
+            tan[Y[:, :n] <= 0] = 0.0
         norm = np.sqrt((Y[:, n:] * Y[:, n:]).sum(axis=1))
+        dead = (norm == 0) & ~failed
+        if dead.any():  # nothing left to perturb: restart the vector on the present face, no growth
+            fresh = np.where(Y[dead, :n] > 0, 1.0, 0.0)
+            fresh[fresh.sum(axis=1) == 0] = 1.0
+            Y[dead, n:] = fresh
+            norm[dead] = np.sqrt((fresh * fresh).sum(axis=1))
         Y[:, n:] /= norm[:, None]
+        if dead.any():
+            norm[dead] = 1.0
         # section variable and its derivative at this sample, for maxima between samples
         x = Y[:, :n]
         f_now = np.full((M, n), np.nan)
@@ -351,7 +369,7 @@ def lyapunov_map(step, deriv, x0, *, transient: int, n: int) -> tuple[np.ndarray
 
 def web_functions(web: FoodWeb, p: WebParams, c: Controls):
     """``fun`` and ``jac`` of the food web in the integrator's calling convention."""
-    fun = lambda t, y, idx: rhs(web, p, c, y, idx)  # noqa: E731
+    fun = WebRHS(web, p, c)
     jac = lambda t, y, idx: jacobian(web, p, c, y, idx)  # noqa: E731
     return fun, jac
 
@@ -361,7 +379,7 @@ def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> Dy
 
     The slowest per-capita rate (growth, mortality) sets the transient (20 of its time scales)
     and window (50); the fastest (a Gershgorin bound on the Jacobian at ``y0``) sets the
-    sample interval (a tenth of its time scale), with between 200 and 5000 samples per window.
+    sample interval (a tenth of its time scale), with between 200 and 1000 samples per window.
     """
     rates = np.concatenate([np.abs(p.r).ravel(), np.abs(p.m).ravel()])
     rates = rates[np.isfinite(rates) & (rates > 0)]
@@ -377,7 +395,7 @@ def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> Dy
         if g.size:
             fast = max(fast, float(np.median(g)))
     transient, window = 20.0 / slow, 50.0 / slow
-    dt = float(np.clip(0.1 / fast, window / 5000, window / 200))
+    dt = float(np.clip(0.1 / fast, window / 1000, window / 200))
     base = dict(transient=transient, window=window, sample_dt=dt, lambda_tol=10.0 / window)
     base.update(override)
     return DynamicsSettings(**base)
@@ -655,9 +673,20 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     S = web.n_species
     base = runs["baseline"]
     M = base.states.shape[0]
-    sel = np.arange(min(M, settings.member_cap if settings else 200))
+    sel = np.arange(min(M, settings.member_cap if settings else DynamicsSettings.__dataclass_fields__['member_cap'].default))
     sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
-    s = settings or default_settings(case, sub, base.states[sel, -1])
+    if settings is None:
+        # Inside an assessment the diagnosis is a screen: a few horizons of run-in and window,
+        # at the integrator's usual tolerance (common practice, no source); `impact scan`
+        # keeps the longer defaults.
+        s0 = default_settings(case, sub, base.states[sel, -1])
+        H = case.horizon
+        s = default_settings(case, sub, base.states[sel, -1], rtol=1e-6,
+                             transient=min(s0.transient, 2.0 * H), window=min(s0.window, 3.0 * H),
+                             sample_dt=max(s0.sample_dt, min(s0.window, 3.0 * H) / 300),
+                             lambda_tol=10.0 / min(s0.window, 3.0 * H))
+    else:
+        s = settings
     level = np.array([sp.quasi_extinction for sp in case.species], float)
     H = case.horizon
     t_last = H - 1e-9 * max(H, 1.0)
