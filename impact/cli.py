@@ -161,6 +161,10 @@ def cmd_assess(args) -> int:
         raise CaseError("command line", "--members", "must be at least 1")
     if seed < 0:
         raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    if not getattr(args, "no_sensitivity", False):
+        from .sensitivity import Settings, check_settings
+
+        check_settings(Settings(base_samples=args.base_samples, seed=seed))  # fail before any simulation
     progress = _Progress(args.quiet)
     started = datetime.now(timezone.utc)
     t0 = time.monotonic()
@@ -212,6 +216,9 @@ def cmd_assess(args) -> int:
         # Later stages read the core tables from `tmp` and write into their own sub-directories;
         # each appends its name to manifest["stages"] and may add a manifest entry of its own.
         # stage: sensitivity
+        if not getattr(args, "no_sensitivity", False):
+            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress)
+            manifest["stages"].append("sensitivity")
         # stage: dynamics
         if not getattr(args, "no_dynamics", False):
             from .dynamics import assess_stage
@@ -288,6 +295,49 @@ def cmd_scan(args) -> int:
     return 0
 
 
+def _sensitivity_into(case: Case, args, seed: int, out: Path, progress) -> dict:
+    """Run the sensitivity stage and write its tables into ``out / "sensitivity"``; print its summary."""
+    from .results import write_csv, write_json
+    from .sensitivity import Settings, sensitivity_stage, summary_lines
+
+    screen = {"auto": None, "morris": True, "none": False}[getattr(args, "screen", "auto")]
+    settings = Settings(base_samples=args.base_samples, second_order=getattr(args, "second_order", False), seed=seed,
+                        confidence=case.risk.confidence, tolerance=getattr(args, "tolerance", 0.1),
+                        failure_limit=getattr(args, "failure_limit", 0.05), screen=screen)
+    t0 = time.monotonic()
+    res = sensitivity_stage(case, settings, progress=progress)
+    d = out / "sensitivity"
+    write_csv(res.indices, d / "indices.csv")
+    write_csv(res.second_order, d / "second_order.csv")
+    write_csv(res.ranking, d / "ranking.csv")
+    write_csv(res.convergence, d / "convergence.csv")
+    info = {**res.info, "seconds_total": round(time.monotonic() - t0, 2)}
+    write_json(info, d / "sensitivity.json")
+    for line in summary_lines(res):
+        print(line)
+    return {"N": info["N"], "runs": info["runs"], "not_converged": info["not_converged"],
+            "refused": len(info["refused"]), "conditional_on": info["conditional_on"]}
+
+
+def cmd_sensitivity(args) -> int:
+    from .results import staged_directory, write_json
+
+    case = load_case(args.case)
+    seed = args.seed if args.seed is not None else case.seed
+    if seed < 0:
+        raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    progress = _Progress(args.quiet)
+    with staged_directory(Path(args.out)) as tmp:
+        entry = _sensitivity_into(case, args, seed, tmp, progress)
+        write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
+                    "seed": seed, "sensitivity": entry, "packages": package_versions(),
+                    "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                             "invented": case.invented}},
+                   tmp / "manifest.json")
+    print(f"results written to {args.out}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(prog="impact", description="Paired-ensemble risk assessment of interventions in food webs.")
     ap.add_argument("--version", action="version", version=f"impact {__version__}")
@@ -306,7 +356,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-report", action="store_true", help="do not write report.pdf")
     p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size of report.pdf (default a4)")
     p.add_argument("--no-dynamics", action="store_true", help="skip the regime / Lyapunov diagnostics")
+    p.add_argument("--no-sensitivity", action="store_true", help="skip the Sobol sensitivity stage")
+    p.add_argument("--base-samples", type=int, default=128,
+                   help="Sobol base samples N for the sensitivity stage, a power of two (default 128, kept small for speed)")
     p.set_defaults(func=cmd_assess)
+
+    p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
+    p.add_argument("case")
+    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--base-samples", type=int, default=1024, help="Sobol base samples N, a power of two (default 1024)")
+    p.add_argument("--second-order", action="store_true", help="also estimate second-order (pairwise) indices")
+    p.add_argument("--seed", type=int, default=None, help="seed of the design scramble and bootstrap (default: the case's)")
+    p.add_argument("--screen", choices=("auto", "morris", "none"), default="auto",
+                   help="Morris screening before Sobol: auto = only with more than 20 uncertain parameters")
+    p.add_argument("--tolerance", type=float, default=0.1, help="widest acceptable CI / N-to-N/2 shift of an index (default 0.1)")
+    p.add_argument("--failure-limit", type=float, default=0.05, help="largest share of failed design points (default 0.05)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    p.set_defaults(func=cmd_sensitivity)
 
     p = sub.add_parser("scan", help="bifurcation scan of one parameter or intervention intensity")
     p.add_argument("case")

@@ -229,7 +229,9 @@ def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.9
     if np.ptp(yk) <= 1e-12 * max(1.0, float(np.abs(yk).max())):
         return _empty(design, "constant", n_bad, used, "the output does not vary over the design")
     with warnings.catch_warnings():
+        # SALib warns when a bootstrap resample of an indicator happens to be constant; harmless here
         warnings.simplefilter("ignore", RuntimeWarning)
+        warnings.simplefilter("ignore", UserWarning)
         S = sobol_analyze.analyze(design.problem(), yk, calc_second_order=design.second_order,
                                   num_resamples=resamples, conf_level=confidence, seed=_int_seed(seed, 2))
     s2 = np.asarray(S["S2"], float) if design.second_order else None
