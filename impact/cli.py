@@ -298,12 +298,12 @@ def cmd_scan(args) -> int:
 def _sensitivity_into(case: Case, args, seed: int, out: Path, progress) -> dict:
     """Run the sensitivity stage and write its tables into ``out / "sensitivity"``; print its summary."""
     from .results import write_csv, write_json
-    from .sensitivity import Settings, sensitivity_stage, summary_lines
+    from .sensitivity import DEFAULT_FAILURE_LIMIT, DEFAULT_TOLERANCE, Settings, sensitivity_stage, summary_lines
 
     screen = {"auto": None, "morris": True, "none": False}[getattr(args, "screen", "auto")]
     settings = Settings(base_samples=args.base_samples, second_order=getattr(args, "second_order", False), seed=seed,
-                        confidence=case.risk.confidence, tolerance=getattr(args, "tolerance", 0.1),
-                        failure_limit=getattr(args, "failure_limit", 0.05), screen=screen)
+                        confidence=case.risk.confidence, tolerance=getattr(args, "tolerance", DEFAULT_TOLERANCE),
+                        failure_limit=getattr(args, "failure_limit", DEFAULT_FAILURE_LIMIT), screen=screen)
     t0 = time.monotonic()
     res = sensitivity_stage(case, settings, progress=progress)
     d = out / "sensitivity"
@@ -369,7 +369,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=None, help="seed of the design scramble and bootstrap (default: the case's)")
     p.add_argument("--screen", choices=("auto", "morris", "none"), default="auto",
                    help="Morris screening before Sobol: auto = only with more than 20 uncertain parameters")
-    p.add_argument("--tolerance", type=float, default=0.1, help="widest acceptable CI / N-to-N/2 shift of an index (default 0.1)")
+    p.add_argument("--tolerance", type=float, default=0.2,
+                   help="widest acceptable full CI width and N/2-to-N shift of an index (default 0.2)")
     p.add_argument("--failure-limit", type=float, default=0.05, help="largest share of failed design points (default 0.05)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_sensitivity)

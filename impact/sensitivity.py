@@ -30,7 +30,7 @@ from .errors import CaseError
 PURPOSE_SENSITIVITY = 7  # spawn-key purpose for the design scramble and the bootstrap
 UNIT_EPS = 1e-10  # keep quasi-random points off the cube faces, where some inverse CDFs are infinite
 
-DEFAULT_TOLERANCE = 0.1  # widest acceptable 95 % CI / N→N/2 shift of an index (common practice, no source)
+DEFAULT_TOLERANCE = 0.2  # widest acceptable full CI width (±0.1) and N/2→N shift of an index (common practice, no source)
 DEFAULT_FAILURE_LIMIT = 0.05  # largest acceptable share of failed design points (common practice, no source)
 SCREEN_ABOVE = 20  # screen with Morris first when more uncertain parameters than this
 SCREEN_KEEP = 0.1  # keep parameters whose mu* is at least this share of the largest (common practice, no source)
@@ -698,7 +698,10 @@ def summary_lines(res: StageResult, top: int = 3) -> list[str]:
     rk = res.ranking
     for opt, metric, sp in [("baseline", "plausible", "all")]:
         sel = rk[(rk.option == opt) & (rk.metric == metric) & (rk.species == sp)].head(top)
+        cv = res.convergence
+        ok = cv[(cv.option == opt) & (cv.metric == metric) & (cv.species == sp)].converged.all()
         if len(sel):
             L.append("  what makes today's web implausible: "
-                     + ", ".join(f"{p} (ST {st:.2f})" for p, st in zip(sel.parameter, sel.ST)))
+                     + ", ".join(f"{p} (ST {st:.2f})" for p, st in zip(sel.parameter, sel.ST))
+                     + ("" if ok else " [NOT converged: indicative only]"))
     return L

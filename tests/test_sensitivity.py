@@ -261,3 +261,13 @@ def test_demo_case_stage_runs_at_small_n():
     assert res.info["runs"] == 16 * (4 + 2)
     assert set(res.convergence.converged.unique()) <= {True, False}
     assert len(res.ranking) > 0
+
+
+def test_morris_screening_runs_before_sobol_when_asked(islands):
+    # screening keeps every factor whose mu* reaches SCREEN_KEEP of the largest (common practice, no source)
+    case = load_case(islands[0])
+    res = sensitivity_stage(case, Settings(base_samples=16, seed=0, screen=True, screen_trajectories=6, given_data=False))
+    scr = res.info["screening"]
+    assert scr["runs"] == 6 * (4 + 1)
+    assert set(scr["kept"]) | set(scr["dropped"]) == {"vole_r", "vole_K", "newt_r", "trap"}
+    assert res.info["D"] == len(scr["kept"])
