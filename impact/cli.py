@@ -216,7 +216,9 @@ def cmd_assess(args) -> int:
         # Later stages read the core tables from `tmp` and write into their own sub-directories;
         # each appends its name to manifest["stages"] and may add a manifest entry of its own.
         # stage: sensitivity
-        if not getattr(args, "no_sensitivity", False):
+        if not getattr(args, "no_sensitivity", False) and len(case.uncertain) < 2:
+            manifest["sensitivity"] = {"skipped": f"{len(case.uncertain)} uncertain parameter(s); Sobol indices need at least two"}
+        elif not getattr(args, "no_sensitivity", False):
             manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress)
             manifest["stages"].append("sensitivity")
         # stage: dynamics
