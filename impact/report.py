@@ -241,23 +241,40 @@ def warnings_from_results(res: Results) -> list[str]:
     if shares is not None and not shares.empty:
         for _, r in shares.iterrows():
             if r.regime in ("chaotic", "irregular", "cycle") and r.share > 0:
-                hz = (f"; median predictability horizon {fmt_num(r.horizon_median)} {m['time_unit']}"
-                      if "horizon_median" in r and not pd.isna(r.horizon_median) else "")
                 what = "cycling" if r.regime == "cycle" else r.regime
-                out.append(f"Under {r.option}, {fmt_prob(r.share)} of members are {what}{hz}: "
-                           "individual trajectories cannot be predicted far ahead; read the bands, not single runs.")
+                finite = "horizon_median" in r and not pd.isna(r.horizon_median) and np.isfinite(r.horizon_median)
+                if finite:
+                    out.append(f"Under {r.option}, {fmt_prob(r.share)} of members are {what}; median predictability "
+                               f"horizon {fmt_num(r.horizon_median)} {m['time_unit']}: individual trajectories cannot "
+                               "be predicted further ahead; read the bands, not single runs.")
+                else:
+                    out.append(f"Under {r.option}, {fmt_prob(r.share)} of members are {what}: errors in today's state "
+                               "do not grow exponentially, but the timing of peaks and troughs is uncertain; read the "
+                               "bands, not single runs.")
     sens = res.sensitivity or {}
     conv = sens.get("convergence")
     if conv is not None and not conv.empty:
         bad = conv[conv.converged.astype(str).str.lower().isin(["false", "0", "no"])]
-        for _, r in bad.iterrows():
-            out.append(f"Sensitivity indices of {r.metric} for {r.species} under {r.option} did not converge "
-                       f"(largest interval width {fmt_num(r.max_ci_width)} against a tolerance of {fmt_num(r.tolerance)}); "
-                       "their ranking is provisional.")
+        # one line per option: a reviewer needs the extent, the full list is in convergence.csv
+        for opt, g in bad.groupby("option", sort=False):
+            total = int((conv.option == opt).sum())
+            names = [f"{r.metric} of {r.species}" for _, r in g.head(4).iterrows()]
+            more = f" and {len(g) - len(names)} more" if len(g) > len(names) else ""
+            out.append(f"Under {opt}, the sensitivity indices of {len(g)} of {total} outputs did not converge "
+                       f"(interval width or N/2 shift above the tolerance of {fmt_num(g.tolerance.iloc[0])}), e.g. "
+                       f"{', '.join(names)}{more}; their rankings are provisional (list in sensitivity/convergence.csv).")
     meta = sens.get("sensitivity")
     if isinstance(meta, dict) and meta.get("failures"):
-        out.append(f"{meta['failures']} of {meta.get('runs', '?')} sensitivity runs failed numerically "
-                   f"(policy: {meta.get('policy', 'not recorded')}).")
+        f = meta["failures"]
+        if isinstance(f, dict):
+            by_opt = f.get("points_failed_by_option", {}) or {}
+            n_failed = sum(int(v) for v in by_opt.values())
+            if n_failed or f.get("refused_outputs"):
+                out.append(f"{n_failed} sensitivity design runs failed numerically across options "
+                           f"({', '.join(f'{k}: {v}' for k, v in by_opt.items())}) and "
+                           f"{f.get('refused_outputs', 0)} outputs were refused for too many failures.")
+        else:
+            out.append(f"{f} of {meta.get('runs', '?')} sensitivity runs failed numerically.")
     return out
 
 
