@@ -262,7 +262,8 @@ def staged_text(results, tmp_path_factory):
 
 @pytest.mark.parametrize("needle", [
     "NOTconverged",            # convergence verdict table
-    "didnotconverge",          # and the warning up front
+    "didnotconverge",          # and the warning up front,
+    "1of1outputsdidnotconverge",  # aggregated to one line per option
     "33.3%ofmembersarechaotic",  # regime share read from regime_shares.csv
     "medianpredictabilityhorizon11.5",
     "Bifurcationdiagram",
