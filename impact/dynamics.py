@@ -370,7 +370,17 @@ def lyapunov_map(step, deriv, x0, *, transient: int, n: int) -> tuple[np.ndarray
 def web_functions(web: FoodWeb, p: WebParams, c: Controls):
     """``fun`` and ``jac`` of the food web in the integrator's calling convention."""
     fun = WebRHS(web, p, c)
-    jac = lambda t, y, idx: jacobian(web, p, c, y, idx)  # noqa: E731
+    cache = {"key": None}
+
+    def jac(t, y, idx):
+        # gather each member's coefficients once per active set (the integrator keeps passing the
+        # same index array until the set shrinks); slicing the gathered copy is then free
+        if cache["key"] is not idx:
+            cache["p"] = WebParams(*(getattr(p, f)[idx] for f in WebParams.__dataclass_fields__))
+            cache["c"] = Controls(*(getattr(c, f)[idx] for f in Controls.__dataclass_fields__))
+            cache["key"] = idx
+        return jacobian(web, cache["p"], cache["c"], y, slice(None))
+
     return fun, jac
 
 
