@@ -174,25 +174,36 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
     )
 
 
-def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
-    """Per-capita intake I_l of each feeding link: list of ndarray (m,)."""
-    S = web.n_species
-    denom = [None] * S
+def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) -> list[np.ndarray]:
+    """Per-capita intake I_l of each feeding link from gathered coefficients.
+
+    Parameters
+    ----------
+    a, ah : ndarray (m, L)
+        Attack rate and attack rate × handling time of each link, per member.
+    y : ndarray (m, n_state)
+
+    Returns
+    -------
+    list of ndarray (m,)
+    """
+    denom: dict[int, np.ndarray] = {}
     powered = []
     for l, link in enumerate(web.links):
         R = y[:, link.resource]
         Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
         powered.append(Rq)
         if link.response != "holling1":
-            term = p.a[idx, l] * p.h[idx, l] * Rq
-            denom[link.consumer] = term if denom[link.consumer] is None else denom[link.consumer] + term
-    out = []
-    for l, link in enumerate(web.links):
-        flux = p.a[idx, l] * powered[l]
-        if link.response != "holling1":
-            flux = flux / (1.0 + denom[link.consumer])
-        out.append(flux)
-    return out
+            term = ah[:, l] * Rq
+            denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
+    return [a[:, l] * powered[l] if link.response == "holling1" else a[:, l] * powered[l] / denom[link.consumer]
+            for l, link in enumerate(web.links)]
+
+
+def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
+    """Per-capita intake I_l of each feeding link for members ``idx``: list of ndarray (m,)."""
+    a = p.a[idx]
+    return feeding_intakes(web, a, a * p.h[idx], y)
 
 
 class WebRHS:
@@ -253,22 +264,11 @@ class WebRHS:
         out = np.empty_like(y)
         if web.links:
             loss = np.zeros_like(y)
-            a, ah, e = g["a"], g["ah"], g["e"]
-            denom: dict[int, np.ndarray] = {}
-            powered = []
-            for l, link in enumerate(web.links):
-                R = y[:, link.resource]
-                Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
-                powered.append(Rq)
-                if link.response != "holling1":
-                    term = ah[:, l] * Rq
-                    denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
+            e = g["e"]
+            I = feeding_intakes(web, g["a"], g["ah"], y)
             for l, link in enumerate(web.links):
                 j = link.consumer
-                flux = a[:, l] * powered[l]
-                if link.response != "holling1":
-                    flux = flux / denom[j]
-                eaten = flux * N[:, j]
+                eaten = I[l] * N[:, j]
                 births[:, j] += e[:, l] * eaten
                 loss[:, link.resource] += eaten
         dN = g["scale"] * births
