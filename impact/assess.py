@@ -47,10 +47,6 @@ class Ensemble:
     counts: dict
 
 
-def _take(p: WebParams, sel: np.ndarray) -> WebParams:
-    return WebParams(*(getattr(p, f)[sel] for f in WebParams.__dataclass_fields__))
-
-
 def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
     """Spin up candidate draws and judge their plausibility (pure; no random numbers).
 
@@ -65,47 +61,112 @@ def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
     return values, p, today, verdict
 
 
+# Draws are screened in fixed blocks of draw indices, so the blocks (and their checkpoints) are
+# the same whatever executor or worker count computes them.
+DRAW_BLOCK = 256
+# Members per chunk of the option runs (a checkpoint and a unit of work for one worker); large
+# enough for the vectorised integrator to run near full speed.
+RUN_CHUNK = 250
+
+
+@dataclass(frozen=True)
+class ScreenTask:
+    """Draw indices ``start`` .. ``stop - 1`` of the random path, to spin up and judge."""
+
+    case: Case
+    seed: int
+    start: int
+    stop: int
+
+
+def screen_block(task: ScreenTask) -> dict[str, np.ndarray]:
+    """Spin up one block of candidate draws (a worker's function).
+
+    Returns
+    -------
+    dict of ndarrays
+        ``draws`` (B,), the verdict flags ``kept``, ``failed``, ``extinct``, ``range`` (B,),
+        and for kept draws only ``unit`` (K, D) and ``today`` (K, n_state).
+    """
+    case = task.case
+    draws = np.arange(task.start, task.stop)
+    unit = member_uniforms(task.seed, draws, len(case.uncertain))
+    _, _, today, v = screen_draws(case, build_web(case), unit)
+    k = v["kept"]
+    return {"draws": draws, **{f: v[f] for f in ("kept", "failed", "extinct", "range")},
+            "unit": unit[k], "today": today[k]}
+
+
+def _ensemble(case: Case, draws, unit, today, counts) -> Ensemble:
+    values = parameter_values(case, unit)
+    return Ensemble(draws, unit, values, web_params(case, values, len(draws)), today, counts)
+
+
 def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = None,
-                  progress: Progress | None = None) -> Ensemble:
-    """Draw candidates in index order until ``members`` plausible ones are kept."""
-    web = build_web(case)
-    D = len(case.uncertain)
+                  progress: Progress | None = None, executor=None, store=None) -> Ensemble:
+    """The first ``members`` plausible draws in index order (at most ``max_draws`` tried).
+
+    ``tried`` and the rejection counts cover the draws up to the last one kept, so they do not
+    depend on how the draws were blocked or where they were computed.
+
+    Parameters
+    ----------
+    executor : object with ``map(fn, tasks)``, optional
+        Where blocks are computed (default: in this process).
+    store : impact.results.Checkpoints, optional
+        Finished blocks are saved there and reused on a resumed run.
+    """
+    from .execute import InProcess, count
+
+    executor = executor or InProcess()
     max_draws = max_draws or max(case.max_draws, members)
-    kept_draws, kept_unit, kept_today = [], [], []
-    kept_values: list[dict] = []
-    kept_params: list[WebParams] = []
-    tried = failed = extinct = out_range = n_kept = 0
+    blocks: dict[int, dict] = {}
+    n_kept = 0
+    next_start = 0
     rate = 1.0
-    while n_kept < members and tried < max_draws:
+    while n_kept < members and next_start < max_draws:
+        # enough blocks for the expected acceptance rate, at least one per worker
         need = members - n_kept
-        batch = int(min(max_draws - tried, max(64, np.ceil(1.2 * need / max(rate, 0.02)))))
-        draws = np.arange(tried, tried + batch)
-        unit = member_uniforms(seed, draws, D)
-        values, p, today, v = screen_draws(case, web, unit)
-        tried += batch
-        failed += int(v["failed"].sum())
-        extinct += int(v["extinct"].sum())
-        out_range += int(v["range"].sum())
-        keep = np.flatnonzero(v["kept"])[:need]
-        n_kept += keep.size
+        n_blocks = max(executor.workers, int(np.ceil(1.2 * need / max(rate, 0.02) / DRAW_BLOCK)))
+        starts = [s for s in range(next_start, max_draws, DRAW_BLOCK)][:n_blocks]
+        next_start = starts[-1] + DRAW_BLOCK
+        tasks, todo = [], []
+        for s in starts:
+            saved = store.get(f"draws-{s}") if store else None
+            if saved is not None:
+                blocks[s] = saved
+            else:
+                tasks.append(ScreenTask(case, seed, s, min(s + DRAW_BLOCK, max_draws)))
+                todo.append(s)
+        for i, res in executor.map(screen_block, tasks):
+            blocks[todo[i]] = res
+            if store:
+                store.put(f"draws-{todo[i]}", res)
+        n_kept = sum(int(b["kept"].sum()) for b in blocks.values())
+        tried = sum(b["draws"].size for b in blocks.values())
         rate = max(n_kept / tried, 1e-3)
-        kept_draws.append(draws[keep])
-        kept_unit.append(unit[keep])
-        kept_today.append(today[keep])
-        kept_values.append({k: a[keep] for k, a in values.items()})
-        kept_params.append(_take(p, keep))
-        if progress:
-            progress(f"drawing today's ecosystem: {tried} tried, {n_kept}/{members} plausible")
+        count(progress, "drawing today's ecosystem", min(n_kept, members), members, f"plausible, {tried} tried")
+    order = sorted(blocks)
+    kept_all = np.concatenate([blocks[s]["kept"] for s in order])
+    draws_all = np.concatenate([blocks[s]["draws"] for s in order])
+    if kept_all.sum() >= members:
+        tried = int(np.flatnonzero(kept_all)[members - 1]) + 1
+    else:
+        tried = int(draws_all.size)
+    flags = {f: np.concatenate([blocks[s][f] for s in order])[:tried] for f in ("failed", "extinct", "range")}
+    n_kept = min(int(kept_all[:tried].sum()), members)
     if n_kept == 0:
         raise CaseError(case.path, "observed",
-                        f"none of {tried} draws gave a plausible web today ({failed} numerical failures, "
-                        f"{extinct} with a species below its quasi-extinction level, {out_range} outside an "
-                        "observed range); widen the priors or the observed ranges, or raise case.max_draws")
-    cat = lambda xs: np.concatenate(xs, axis=0)  # noqa: E731
-    values = {k: cat([v[k] for v in kept_values]) for k in kept_values[0]}
-    params = WebParams(*(cat([getattr(p, f) for p in kept_params]) for f in WebParams.__dataclass_fields__))
-    counts = dict(wanted=members, tried=tried, kept=n_kept, failed=failed, extinct=extinct, out_of_range=out_range)
-    return Ensemble(cat(kept_draws), cat(kept_unit), values, params, cat(kept_today), counts)
+                        f"none of {tried} draws gave a plausible web today ({int(flags['failed'].sum())} numerical "
+                        f"failures, {int(flags['extinct'].sum())} with a species below its quasi-extinction level, "
+                        f"{int(flags['range'].sum())} outside an observed range); widen the priors or the observed "
+                        "ranges, or raise case.max_draws")
+    unit = np.concatenate([blocks[s]["unit"] for s in order])[:n_kept]
+    today = np.concatenate([blocks[s]["today"] for s in order])[:n_kept]
+    draws = draws_all[kept_all][:n_kept]
+    counts = dict(wanted=members, tried=tried, kept=n_kept, failed=int(flags["failed"].sum()),
+                  extinct=int(flags["extinct"].sum()), out_of_range=int(flags["range"].sum()))
+    return _ensemble(case, draws, unit, today, counts)
 
 
 def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None) -> dict[str, Run]:
@@ -125,22 +186,170 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
     return runs
 
 
+@dataclass(frozen=True)
+class Summary:
+    """What the assessment keeps of one option's run, per member (full trajectories are not kept).
+
+    Attributes
+    ----------
+    times : ndarray (T,)
+        Output times.
+    at : ndarray (H,)
+        Summary horizons: the case's risk horizons and the assessment horizon, ascending.
+    trajectory : ndarray (M, T, n_state) float32
+        States at the output times, in single precision (7 significant digits; the tables
+        carry 6), for the quantile bands.
+    minimum, maximum : ndarray (M, H, n_state)
+        Running minimum / maximum over [0, h] for each summary horizon, including between
+        output times.
+    mean : ndarray (M, H, S)
+        Time-mean abundance over [0, h] (trapezoid rule on the output times).
+    recovery : ndarray (M, S)
+        Recovery time against the paired baseline (NaN for the baseline itself).
+    final : ndarray (M, n_state)
+    failed : ndarray (M,) bool
+    reason : ndarray (M,) int8
+    nfev : int
+    """
+
+    times: np.ndarray
+    at: np.ndarray
+    trajectory: np.ndarray
+    minimum: np.ndarray
+    maximum: np.ndarray
+    mean: np.ndarray
+    recovery: np.ndarray
+    final: np.ndarray
+    failed: np.ndarray
+    reason: np.ndarray
+    nfev: int
+
+    @property
+    def members(self) -> int:
+        return int(self.failed.shape[0])
+
+    def slot(self, h: float) -> int:
+        """Index of summary horizon ``h`` in :attr:`at`."""
+        return int(np.searchsorted(self.at, h - 1e-12))
+
+    def take(self, rows: np.ndarray) -> "Summary":
+        """The summary of the given members only."""
+        return Summary(self.times, self.at, *(getattr(self, f)[rows] for f in PER_MEMBER), self.nfev)
+
+
+PER_MEMBER = ("trajectory", "minimum", "maximum", "mean", "recovery", "final", "failed", "reason")
+
+
+def summary_horizons(case: Case) -> np.ndarray:
+    return np.array(sorted(set(case.risk.horizons) | {case.horizon}), float)
+
+
+def summarise(case: Case, runs: dict[str, Run]) -> dict[str, Summary]:
+    """Reduce full runs to the per-member summaries the tables are built from (pure)."""
+    base = runs["baseline"]
+    at = summary_horizons(case)
+    S = len(case.species)
+    out = {}
+    for name, run in runs.items():
+        ti = np.searchsorted(run.times, at - 1e-12)
+        mean = np.stack([np.stack([mx.time_mean(run.times, run.states[:, :, j], h) for j in range(S)], axis=1)
+                         for h in at], axis=1)
+        rec = np.full((run.states.shape[0], S), np.nan)
+        if name != "baseline":
+            for j, sp in enumerate(case.species):
+                if sp.present:
+                    rec[:, j] = mx.recovery_times(run.times, run.states[:, :, j], base.states[:, :, j],
+                                                  case.risk.recovery_fraction)
+        out[name] = Summary(run.times, at, run.states.astype(np.float32), run.cummin[:, ti], run.cummax[:, ti],
+                            mean, rec, run.states[:, -1].copy(), run.failed, run.reason, run.nfev)
+    return out
+
+
+def concat_summaries(parts: list[dict[str, Summary]]) -> dict[str, Summary]:
+    """Join chunk summaries in member order."""
+    first = parts[0]
+    return {name: Summary(s.times, s.at,
+                          *(np.concatenate([p[name].__getattribute__(f) for p in parts], axis=0) for f in PER_MEMBER),
+                          sum(p[name].nfev for p in parts))
+            for name, s in first.items()}
+
+
+@dataclass(frozen=True)
+class RunTask:
+    """A chunk of kept members to run under the baseline and every option."""
+
+    case: Case
+    seed: int
+    draws: np.ndarray
+    unit: np.ndarray
+    today: np.ndarray
+
+
+def run_chunk(task: RunTask) -> dict[str, Summary]:
+    """Run one chunk of members paired under every option and summarise it (a worker's function)."""
+    ens = _ensemble(task.case, task.draws, task.unit, task.today, {})
+    return summarise(task.case, run_options(task.case, ens, task.seed))
+
+
+def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None, executor=None,
+                   store=None, chunk: int = RUN_CHUNK) -> dict[str, Summary]:
+    """Baseline and every option on the kept members, chunk by chunk, as summaries.
+
+    Chunks are cut from the member order alone; a member's results do not depend on the chunk
+    it falls in (the integrator steps each member on its own), so any chunking, executor or
+    resumed run gives the same numbers.
+    """
+    from .execute import InProcess, count
+
+    executor = executor or InProcess()
+    M = len(ens.draws)
+    starts = list(range(0, M, chunk))
+    parts: dict[int, dict[str, Summary]] = {}
+    tasks, todo = [], []
+    for k, a in enumerate(starts):
+        saved = store.get_summaries(f"runs-{a}") if store else None
+        if saved is not None:
+            parts[k] = saved
+            continue
+        b = min(a + chunk, M)
+        tasks.append(RunTask(case, seed, ens.draws[a:b], ens.unit[a:b], ens.today[a:b]))
+        todo.append(k)
+    done = sum(p["baseline"].members for p in parts.values())
+    count(progress, f"simulating baseline + {len(case.options)} options", done, M, "members")
+    for i, res in executor.map(run_chunk, tasks):
+        k = todo[i]
+        parts[k] = res
+        if store:
+            store.put_summaries(f"runs-{starts[k]}", res)
+        done += res["baseline"].members
+        count(progress, f"simulating baseline + {len(case.options)} options", done, M, "members")
+    return concat_summaries([parts[k] for k in range(len(starts))])
+
+
+def _summaries(case: Case, runs: dict) -> dict[str, Summary]:
+    first = next(iter(runs.values()))
+    return runs if isinstance(first, Summary) else summarise(case, runs)
+
+
 def _row(option, species, metric, horizon, value, low, high, unit, n):
     return dict(option=option, species=species, metric=metric, horizon=horizon,
                 value=value, low=low, high=high, unit=unit, n=n)
 
 
-def risk_table(case: Case, runs: dict[str, Run]) -> pd.DataFrame:
-    """Tidy risk table: one row per option, species, metric and horizon."""
+def risk_table(case: Case, runs: dict) -> pd.DataFrame:
+    """Tidy risk table: one row per option, species, metric and horizon.
+
+    ``runs`` maps option names to :class:`Summary` (or to full runs, summarised first).
+    """
+    runs = _summaries(case, runs)
     conf = case.risk.confidence
     base = runs["baseline"]
-    times = base.times
     rows = []
     for opt, run in runs.items():
         for j, sp in enumerate(case.species):
             for h in case.risk.horizons:
-                ti = int(np.searchsorted(times, h - 1e-12))
-                rmin = run.cummin[:, ti, j]
+                k_h = run.slot(h)
+                rmin = run.minimum[:, k_h, j]
                 if sp.present:
                     k, n = mx.quasi_extinction_probability(rmin, sp.quasi_extinction)
                     lo, hi = mx.clopper_pearson(k, n, conf)
@@ -148,25 +357,24 @@ def risk_table(case: Case, runs: dict[str, Run]) -> pd.DataFrame:
                     m, lo, hi = mx.expected_minimum_abundance(rmin, conf)
                     rows.append(_row(opt, sp.name, "expected_minimum", h, m, lo, hi, sp.unit, int(np.isfinite(rmin).sum())))
                 if sp.outbreak is not None:
-                    rmax = run.cummax[:, ti, j]
+                    rmax = run.maximum[:, k_h, j]
                     ok = np.isfinite(rmax)
                     k, n = int((rmax[ok] > sp.outbreak).sum()), int(ok.sum())
                     lo, hi = mx.clopper_pearson(k, n, conf)
                     rows.append(_row(opt, sp.name, "outbreak", h, k / n if n else np.nan, float(lo), float(hi), "probability", n))
-                mean_o = mx.time_mean(times, run.states[:, :, j], h)
+                mean_o = run.mean[:, k_h, j]
                 ok = np.isfinite(mean_o)
                 q = np.quantile(mean_o[ok], [0.05, 0.5, 0.95]) if ok.any() else [np.nan] * 3
                 rows.append(_row(opt, sp.name, "mean_abundance", h, q[1], q[0], q[2], sp.unit, int(ok.sum())))
                 if opt == "baseline":
                     continue
-                mean_b = mx.time_mean(times, base.states[:, :, j], h)
-                d = mx.paired_relative_change(mean_o, mean_b)
+                d = mx.paired_relative_change(mean_o, base.mean[:, k_h, j])
                 ok = np.isfinite(d)
                 q = np.quantile(d[ok], [0.05, 0.5, 0.95]) if ok.any() else [np.nan] * 3
                 rows.append(_row(opt, sp.name, "mean_change", h, q[1], q[0], q[2], "fraction of baseline", int(ok.sum())))
             if opt == "baseline" or not sp.present:
                 continue
-            rt = mx.recovery_times(times, run.states[:, :, j], base.states[:, :, j], case.risk.recovery_fraction)
+            rt = run.recovery[:, j]
             ok = ~np.isnan(rt)
             n = int(ok.sum())
             never = int(np.isinf(rt[ok]).sum())
@@ -179,34 +387,38 @@ def risk_table(case: Case, runs: dict[str, Run]) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def bands_table(case: Case, runs: dict[str, Run]) -> pd.DataFrame:
+def bands_table(case: Case, runs: dict) -> pd.DataFrame:
     """Quantile bands of every trajectory over time (tidy)."""
+    runs = _summaries(case, runs)
     frames = []
     names = case.species_names + (("carrion",) if case.carrion is not None else ())
     for opt, run in runs.items():
         for j, sp in enumerate(names):
-            q = mx.trajectory_bands(run.states[:, :, j])
+            q = mx.trajectory_bands(run.trajectory[:, :, j].astype(np.float64))
             frames.append(pd.DataFrame({"option": opt, "species": sp, "time": run.times,
                                         **{f"q{int(round(p * 100)):02d}": q[i] for i, p in enumerate(mx.BAND_QUANTILES)}}))
     return pd.concat(frames, ignore_index=True)
 
 
-def members_table(case: Case, ens: Ensemble, runs: dict[str, Run]) -> pd.DataFrame:
+def members_table(case: Case, ens: Ensemble, runs: dict) -> pd.DataFrame:
     """Per-member summaries (minimum, final, time-mean) for every option and species."""
+    runs = _summaries(case, runs)
     frames = []
     for opt, run in runs.items():
+        k_H = run.slot(case.horizon)
+        failure = np.array([FAILURE_REASONS.get(int(r), str(r)) for r in run.reason], dtype=object)
         for j, sp in enumerate(case.species_names):
             frames.append(pd.DataFrame({
                 "member": ens.draws, "option": opt, "species": sp,
-                "minimum": run.cummin[:, -1, j], "final": run.states[:, -1, j],
-                "mean": mx.time_mean(run.times, run.states[:, :, j], case.horizon),
+                "minimum": run.minimum[:, k_H, j], "final": run.final[:, j],
+                "mean": run.mean[:, k_H, j],
                 "failed": run.failed,
-                "failure": [FAILURE_REASONS.get(int(r), str(r)) for r in run.reason],
+                "failure": failure,
             }))
     return pd.concat(frames, ignore_index=True)
 
 
-def failure_counts(runs: dict[str, Run]) -> dict[str, dict[str, int]]:
+def failure_counts(runs: dict) -> dict[str, dict[str, int]]:
     """Numerical failures per option, by reason."""
     out = {}
     for opt, run in runs.items():

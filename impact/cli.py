@@ -16,25 +16,53 @@ import pandas as pd
 from . import __version__
 from .case import Case, load_case
 from .errors import CaseError
+from .execute import WorkerLost
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
            "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
 
 
 class _Progress:
-    """Throttled progress lines on stderr."""
+    """Progress lines on stderr: stage messages, and counts with rate and time left.
 
-    def __init__(self, quiet: bool):
-        self.quiet = quiet
+    Silent with ``--quiet`` or when stderr is not a terminal (logs and pipes stay clean).
+    """
+
+    def __init__(self, quiet: bool, stream=None):
+        self.stream = stream or sys.stderr
+        self.quiet = quiet or not getattr(self.stream, "isatty", lambda: False)()
         self.t0 = time.monotonic()
         self.last = 0.0
+        self.started: dict[str, tuple[float, int]] = {}
 
     def __call__(self, msg: str, force: bool = False):
         now = time.monotonic()
         if self.quiet or (not force and now - self.last < 0.5):
             return
         self.last = now
-        print(f"[{now - self.t0:6.1f} s] {msg}", file=sys.stderr, flush=True)
+        print(f"[{now - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
+
+    def count(self, label: str, done: int, total: int, unit: str):
+        now = time.monotonic()
+        t_first, d_first = self.started.setdefault(label, (now, done))
+        finished = done >= total
+        if self.quiet or (not finished and now - self.last < 0.5):
+            return
+        line = f"{label}: {done}/{total} {unit}"
+        if now > t_first and done > d_first:
+            rate = (done - d_first) / (now - t_first)
+            line += f", {rate:.3g}/s"
+            if not finished:
+                line += f", about {_duration((total - done) / rate)} left"
+        self(line, force=True)
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 def package_versions() -> dict[str, str]:
@@ -150,9 +178,9 @@ def cmd_check(args) -> int:
 
 
 def cmd_assess(args) -> int:
-    from .assess import bands_table, draw_ensemble, failure_counts, members_table, risk_table, run_options
-    from .model import equations
-    from .results import staged_directory, write_csv, write_json
+    from .assess import DRAW_BLOCK, RUN_CHUNK
+    from .execute import make_executor
+    from .results import Checkpoints
 
     case = load_case(args.case)
     members = args.members if args.members is not None else case.members
@@ -168,9 +196,31 @@ def cmd_assess(args) -> int:
     progress = _Progress(args.quiet)
     started = datetime.now(timezone.utc)
     t0 = time.monotonic()
+    fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
+                   "max_draws": case.max_draws, "draw_block": DRAW_BLOCK, "run_chunk": RUN_CHUNK,
+                   "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
+    store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
+    if args.resume and any(store.dir.glob("*.npz")):
+        progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
+    executor = make_executor(args.workers, args.cluster)
+    try:
+        text = _assess_into(case, args, members, seed, executor, store, progress, started, t0)
+    finally:
+        executor.close()
+    store.discard()
+    print(text)
+    print(f"results written to {args.out}")
+    return 0
+
+
+def _assess_into(case: Case, args, members: int, seed: int, executor, store, progress, started, t0) -> str:
+    from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
+    from .model import equations
+    from .results import staged_directory, write_csv, write_json
+
     with staged_directory(Path(args.out)) as tmp:
-        ens = draw_ensemble(case, members, seed, progress=progress)
-        runs = run_options(case, ens, seed, progress=progress)
+        ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store)
+        runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store)
         progress("tabulating risk", force=True)
         risk = risk_table(case, runs)
         failures = failure_counts(runs)
@@ -211,6 +261,7 @@ def cmd_assess(args) -> int:
             "packages": package_versions(),
             "platform": platform.platform(),
             "stages": ["assess"],
+            "execution": {**executor.describe(), "chunks_reused": store.reused, "chunks_computed": store.saved},
             "caution": CAUTION,
         }
         # Later stages read the core tables from `tmp` and write into their own sub-directories;
@@ -219,7 +270,7 @@ def cmd_assess(args) -> int:
         if not getattr(args, "no_sensitivity", False) and len(case.uncertain) < 2:
             manifest["sensitivity"] = {"skipped": f"{len(case.uncertain)} uncertain parameter(s); Sobol indices need at least two"}
         elif not getattr(args, "no_sensitivity", False):
-            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress)
+            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress, executor, store)
             manifest["stages"].append("sensitivity")
         # stage: dynamics
         if not getattr(args, "no_dynamics", False):
@@ -239,9 +290,7 @@ def cmd_assess(args) -> int:
             write_report(tmp, tmp / "report.pdf", paper=getattr(args, "paper", "a4"))
         text = summary_text(case, risk, ens.counts, failures)
         (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
-    print(text)
-    print(f"results written to {args.out}")
-    return 0
+    return text
 
 
 def cmd_report(args) -> int:
@@ -297,7 +346,7 @@ def cmd_scan(args) -> int:
     return 0
 
 
-def _sensitivity_into(case: Case, args, seed: int, out: Path, progress) -> dict:
+def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor=None, store=None) -> dict:
     """Run the sensitivity stage and write its tables into ``out / "sensitivity"``; print its summary."""
     from .results import write_csv, write_json
     from .sensitivity import DEFAULT_FAILURE_LIMIT, DEFAULT_TOLERANCE, Settings, sensitivity_stage, summary_lines
@@ -307,7 +356,7 @@ def _sensitivity_into(case: Case, args, seed: int, out: Path, progress) -> dict:
                         confidence=case.risk.confidence, tolerance=getattr(args, "tolerance", DEFAULT_TOLERANCE),
                         failure_limit=getattr(args, "failure_limit", DEFAULT_FAILURE_LIMIT), screen=screen)
     t0 = time.monotonic()
-    res = sensitivity_stage(case, settings, progress=progress)
+    res = sensitivity_stage(case, settings, progress=progress, executor=executor, store=store)
     d = out / "sensitivity"
     write_csv(res.indices, d / "indices.csv")
     write_csv(res.second_order, d / "second_order.csv")
@@ -322,6 +371,7 @@ def _sensitivity_into(case: Case, args, seed: int, out: Path, progress) -> dict:
 
 
 def cmd_sensitivity(args) -> int:
+    from .execute import make_executor
     from .results import staged_directory, write_json
 
     case = load_case(args.case)
@@ -329,15 +379,28 @@ def cmd_sensitivity(args) -> int:
     if seed < 0:
         raise CaseError("command line", "--seed", "must be a non-negative whole number")
     progress = _Progress(args.quiet)
-    with staged_directory(Path(args.out)) as tmp:
-        entry = _sensitivity_into(case, args, seed, tmp, progress)
-        write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
-                    "seed": seed, "sensitivity": entry, "packages": package_versions(),
-                    "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                             "invented": case.invented}},
-                   tmp / "manifest.json")
+    executor = make_executor(args.workers, args.cluster)
+    try:
+        with staged_directory(Path(args.out)) as tmp:
+            entry = _sensitivity_into(case, args, seed, tmp, progress, executor)
+            write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
+                        "seed": seed, "sensitivity": entry, "packages": package_versions(),
+                        "execution": executor.describe(),
+                        "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                                 "invented": case.invented}},
+                       tmp / "manifest.json")
+    finally:
+        executor.close()
     print(f"results written to {args.out}")
     return 0
+
+
+def _executor_flags(p):
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--workers", type=int, default=None,
+                   help="worker processes on this machine (default: its cores; 1 computes in this process)")
+    g.add_argument("--cluster", default=None, metavar="ADDRESS",
+                   help="a running dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -361,6 +424,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-sensitivity", action="store_true", help="skip the Sobol sensitivity stage")
     p.add_argument("--base-samples", type=int, default=128,
                    help="Sobol base samples N for the sensitivity stage, a power of two (default 128, kept small for speed)")
+    _executor_flags(p)
+    p.add_argument("--resume", action="store_true",
+                   help="reuse the chunks an interrupted run of the same case, seed and members saved")
     p.set_defaults(func=cmd_assess)
 
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
@@ -375,6 +441,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="widest acceptable full CI width and N/2-to-N shift of an index (default 0.2)")
     p.add_argument("--failure-limit", type=float, default=0.05, help="largest share of failed design points (default 0.05)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
+    _executor_flags(p)
     p.set_defaults(func=cmd_sensitivity)
 
     p = sub.add_parser("scan", help="bifurcation scan of one parameter or intervention intensity")
@@ -408,6 +475,15 @@ def main(argv: list[str] | None = None) -> int:
     except CaseError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:
+        # an unwritable or full output location; checkpoints already saved stay valid
+        where = exc.filename or getattr(args, "out", None) or "output"
+        print(f"error: {where}: cannot write ({exc.strerror or exc}); choose another --out or free space "
+              "(an interrupted assessment can continue with --resume)", file=sys.stderr)
+        return 2
+    except WorkerLost as exc:
+        print(f"error: {exc}; the chunks already finished are saved: rerun with --resume", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("interrupted; no results were written", file=sys.stderr)
         return 130

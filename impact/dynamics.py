@@ -666,6 +666,8 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
                  progress=None):
     """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
 
+    ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
+
     A capped subset of members (the first ``member_cap`` by index) is continued from each
     option's state at the horizon with the controls in force just before it, deterministically
     (noise and events off).
@@ -682,16 +684,16 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     web = build_web(case)
     S = web.n_species
     base = runs["baseline"]
-    M = base.states.shape[0]
+    M = base.members
     sel = np.arange(min(M, settings.member_cap if settings else DynamicsSettings.__dataclass_fields__['member_cap'].default))
     sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
     if settings is None:
         # Inside an assessment the diagnosis is a screen: a few horizons of run-in and window,
         # at the integrator's usual tolerance (common practice, no source); `impact scan`
         # keeps the longer defaults.
-        s0 = default_settings(case, sub, base.states[sel, -1])
+        s0 = default_settings(case, sub, base.final[sel])
         H = case.horizon
-        s = default_settings(case, sub, base.states[sel, -1], rtol=1e-6,
+        s = default_settings(case, sub, base.final[sel], rtol=1e-6,
                              transient=min(s0.transient, 2.0 * H), window=min(s0.window, 3.0 * H),
                              sample_dt=max(s0.sample_dt, min(s0.window, 3.0 * H) / 300),
                              lambda_tol=10.0 / min(s0.window, 3.0 * H))
@@ -705,7 +707,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     counts = {}
     for opt, name in opts.items():
         run = runs[name]
-        y0 = run.states[sel, -1]
+        y0 = run.final[sel]
         vals = {k: np.asarray(v)[sel] for k, v in values.items()}
         c = _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S)
         if progress:
@@ -723,14 +725,14 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
                                    lyapunov_median=float(g.lyapunov.median()), horizon_median=float(g.horizon_time.median())))
             rows = sel[(frame.regime == rg).to_numpy()]
             for j, sp in enumerate(case.species):
-                mins = run.cummin[rows, -1, j]
+                mins = run.minimum[rows, run.slot(H), j]
                 ok = np.isfinite(mins)
                 if sp.present:
                     risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="quasi_extinction",
                                           value=float((mins[ok] < sp.quasi_extinction).mean()) if ok.any() else np.nan))
                     risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="expected_minimum",
                                           value=float(mins[ok].mean()) if ok.any() else np.nan))
-                fin = run.states[rows, -1, j]
+                fin = run.final[rows, j]
                 risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="final_median",
                                       value=float(np.nanmedian(fin)) if np.isfinite(fin).any() else np.nan))
     tables = {"regimes": pd.concat(reg_rows, ignore_index=True),

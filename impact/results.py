@@ -76,3 +76,118 @@ def read_manifest(results: Path) -> dict:
         raise CaseError(str(results), "manifest.json", "not found; point at a directory written by `impact assess`") from None
     except json.JSONDecodeError as exc:
         raise CaseError(str(path), "", f"is not valid JSON ({exc})") from None
+
+
+class Checkpoints:
+    """Finished chunks of a run, saved as they arrive so that an interrupted run can resume.
+
+    The chunks live in ``.<out>.checkpoints/`` beside the results directory (the results
+    directory itself only appears, whole, when the run completes). Each chunk is one ``.npz``
+    file of plain arrays (no pickles), written to a temporary name and renamed, so a chunk on
+    disk is always complete. ``fingerprint.json`` records what the chunks were computed for; a
+    resumed run must match it exactly.
+
+    Parameters
+    ----------
+    out : Path
+        The results directory the run will write.
+    fingerprint : dict
+        Everything the chunk contents depend on (case hash, seed, members, chunking, version).
+    resume : bool
+        Reuse matching chunks; without it any earlier checkpoints are discarded.
+    """
+
+    def __init__(self, out: Path, fingerprint: dict, resume: bool):
+        out = Path(out)
+        self.dir = out.parent / f".{out.name}.checkpoints"
+        self.fingerprint = json.loads(json.dumps(fingerprint, default=_jsonable))
+        self.reused = 0
+        self.saved = 0
+        fp = self.dir / "fingerprint.json"
+        try:
+            if resume and fp.exists():
+                old = json.loads(fp.read_text(encoding="utf-8"))
+                if old != self.fingerprint:
+                    diff = sorted(k for k in set(old) | set(self.fingerprint) if old.get(k) != self.fingerprint.get(k))
+                    raise CaseError("command line", "--resume",
+                                    f"the checkpoints in {self.dir} were written for a different run (differs in: "
+                                    f"{', '.join(diff)}); run again without --resume to start afresh")
+            elif self.dir.exists():
+                shutil.rmtree(self.dir)
+            self.dir.mkdir(parents=True, exist_ok=True)
+            if not fp.exists():
+                _atomic_write(fp, (json.dumps(self.fingerprint, indent=2) + "\n").encode("utf-8"))
+        except OSError as exc:
+            raise CaseError(str(self.dir), "", f"cannot write checkpoints here ({exc.strerror or exc})") from None
+
+    def _path(self, key: str) -> Path:
+        return self.dir / f"{key}.npz"
+
+    def get(self, key: str) -> dict | None:
+        """The saved arrays of chunk ``key``, or None."""
+        import numpy as np
+
+        path = self._path(key)
+        if not path.exists():
+            return None
+        try:
+            with np.load(path, allow_pickle=False) as z:
+                data = {k: z[k] for k in z.files}
+        except (OSError, ValueError):
+            return None  # unreadable: compute the chunk again
+        self.reused += 1
+        return data
+
+    def put(self, key: str, arrays: dict):
+        """Save chunk ``key`` atomically."""
+        import io
+
+        import numpy as np
+
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        try:
+            _atomic_write(self._path(key), buf.getvalue())
+        except OSError as exc:
+            raise CaseError(str(self.dir), key, f"could not save a checkpoint ({exc.strerror or exc}); "
+                                                "the checkpoints already written are intact: free space and rerun "
+                                                "with --resume") from None
+        self.saved += 1
+
+    def get_summaries(self, key: str):
+        from .assess import PER_MEMBER, Summary
+
+        flat = self.get(key)
+        if flat is None:
+            return None
+        names = [str(n) for n in flat["options"]]
+        return {n: Summary(flat[f"{i}|times"], flat[f"{i}|at"], *(flat[f"{i}|{f}"] for f in PER_MEMBER),
+                           int(flat[f"{i}|nfev"])) for i, n in enumerate(names)}
+
+    def put_summaries(self, key: str, summaries: dict):
+        import numpy as np
+
+        from .assess import PER_MEMBER
+
+        flat = {"options": np.array(list(summaries), dtype=str)}
+        for i, s in enumerate(summaries.values()):
+            for f in ("times", "at", *PER_MEMBER, "nfev"):
+                flat[f"{i}|{f}"] = np.asarray(getattr(s, f))
+        self.put(key, flat)
+
+    def discard(self):
+        """Remove the checkpoints once the results directory is complete."""
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+def _atomic_write(path: Path, data: bytes):
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()

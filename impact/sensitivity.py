@@ -423,6 +423,29 @@ def point_metrics(case: Case, dr) -> tuple[np.ndarray, dict[str, int]]:
     return np.column_stack(cols), {opt: int(f.sum()) for opt, f in failed.items()}
 
 
+@dataclass(frozen=True)
+class DesignTask:
+    """A chunk of design points (full unit rows) to evaluate."""
+
+    case: Case
+    seed: int
+    unit: np.ndarray
+
+
+def design_chunk(task: DesignTask) -> dict[str, np.ndarray]:
+    """Spin up and run every option on a chunk of design points (a worker's function).
+
+    Returns
+    -------
+    dict with ``Y`` (n, K) per-point metrics, ``failed_options`` and ``failed_counts``.
+    """
+    from .assess import evaluate_points
+
+    dr = evaluate_points(task.case, task.unit, task.seed, noise=False)
+    Y, f = point_metrics(task.case, dr)
+    return {"Y": Y, "failed_options": np.array(list(f), dtype=str), "failed_counts": np.array(list(f.values()), int)}
+
+
 @dataclass
 class FoodWebModel:
     """The case as a model of unit rows: spin-up, paired options, per-point metrics.
@@ -430,40 +453,58 @@ class FoodWebModel:
     Deterministic skeleton: environmental noise is off and every point shares one stream for
     chance events (common random numbers), so index differences come from the parameters alone.
     ``fixed`` holds unit coordinates of parameters not varied (screened out); ``varied`` the
-    columns of ``case.uncertain`` the design moves.
+    columns of ``case.uncertain`` the design moves. Chunks of points go to ``executor`` and,
+    with a ``store``, are saved as they finish and reused on a resumed run.
     """
 
     case: Case
     seed: int
     varied: np.ndarray
     fixed: np.ndarray
-    chunk: int = 4096
+    chunk: int = 512
     failures: dict = field(default_factory=dict)
     points: int = 0
     seconds: float = 0.0
     progress: Callable[[str], None] | None = None
+    executor: object = None
+    store: object = None
 
     def __call__(self, unit: np.ndarray) -> np.ndarray:
+        import hashlib
         import time
 
-        from .assess import evaluate_points
+        from .execute import InProcess, count
 
         t0 = time.perf_counter()
         n = unit.shape[0]
         full = np.tile(self.fixed, (n, 1))
         full[:, self.varied] = unit
-        out = []
-        for a in range(0, n, self.chunk):
-            if self.progress:
-                self.progress(f"sensitivity: simulating design points {a}–{min(n, a + self.chunk)} of {n}")
-            dr = evaluate_points(self.case, full[a: a + self.chunk], self.seed, noise=False)
-            Y, f = point_metrics(self.case, dr)
-            out.append(Y)
-            for k, v in f.items():
-                self.failures[k] = self.failures.get(k, 0) + v
+        starts = list(range(0, n, self.chunk))
+        keys = [f"design-{hashlib.sha1(np.ascontiguousarray(full[a: a + self.chunk]).tobytes()).hexdigest()[:20]}"
+                for a in starts]
+        parts: dict[int, dict] = {}
+        tasks, todo = [], []
+        for k, a in enumerate(starts):
+            saved = self.store.get(keys[k]) if self.store else None
+            if saved is not None:
+                parts[k] = saved
+            else:
+                tasks.append(DesignTask(self.case, self.seed, full[a: a + self.chunk]))
+                todo.append(k)
+        done = sum(p["Y"].shape[0] for p in parts.values())
+        count(self.progress, "sensitivity: simulating design points", done, n, "points")
+        for i, res in (self.executor or InProcess()).map(design_chunk, tasks):
+            parts[todo[i]] = res
+            if self.store:
+                self.store.put(keys[todo[i]], res)
+            done += res["Y"].shape[0]
+            count(self.progress, "sensitivity: simulating design points", done, n, "points")
+        for p in parts.values():
+            for opt, c in zip(p["failed_options"], p["failed_counts"]):
+                self.failures[str(opt)] = self.failures.get(str(opt), 0) + int(c)
         self.points += n
         self.seconds += time.perf_counter() - t0
-        return np.concatenate(out, axis=0)
+        return np.concatenate([parts[k]["Y"] for k in range(len(starts))], axis=0)
 
 
 # --------------------------------------------------------------------------------------------
@@ -566,12 +607,13 @@ RANK_COLUMNS = ["option", "metric", "species", "rank", "parameter", "ST", "ST_co
 CONV_COLUMNS = ["option", "metric", "species", "max_shift", "max_ci_width", "tolerance", "converged"]
 
 
-def screen(case: Case, settings: Settings, progress=None) -> dict:
+def screen(case: Case, settings: Settings, progress=None, executor=None, store=None) -> dict:
     """Morris screening of every uncertain parameter over every output; which to keep."""
     names = [p.name for p in case.uncertain]
     D = len(names)
     design = morris_design(names, settings.screen_trajectories, settings.seed)
-    model = FoodWebModel(case, settings.seed, np.arange(D), np.full(D, 0.5), progress=progress)
+    model = FoodWebModel(case, settings.seed, np.arange(D), np.full(D, 0.5), progress=progress,
+                          executor=executor, store=store)
     Y = model(design.unit)
     score = np.zeros(D)
     for k in range(Y.shape[1]):
@@ -588,7 +630,7 @@ def screen(case: Case, settings: Settings, progress=None) -> dict:
             "failures": model.failures, "seconds": round(model.seconds, 3)}
 
 
-def sensitivity_stage(case: Case, settings: Settings, progress=None) -> StageResult:
+def sensitivity_stage(case: Case, settings: Settings, progress=None, executor=None, store=None) -> StageResult:
     """Sobol indices of every per-point risk metric, per option, with ranking and convergence."""
     import time
 
@@ -600,10 +642,11 @@ def sensitivity_stage(case: Case, settings: Settings, progress=None) -> StageRes
     screening = {"method": "none", "reason": f"{len(all_names)} uncertain parameters (screening above {SCREEN_ABOVE})"}
     names = all_names
     if do_screen:
-        screening = screen(case, settings, progress)
+        screening = screen(case, settings, progress, executor, store)
         names = screening["kept"]
     varied = np.array([all_names.index(n) for n in names])
-    model = FoodWebModel(case, settings.seed, varied, np.full(len(all_names), 0.5), progress=progress)
+    model = FoodWebModel(case, settings.seed, varied, np.full(len(all_names), 0.5), progress=progress,
+                         executor=executor, store=store)
     t0 = time.perf_counter()
     study = sobol_study(model, names, settings.base_samples, second_order=settings.second_order,
                         seed=settings.seed, confidence=settings.confidence, resamples=settings.resamples,

@@ -1,0 +1,194 @@
+"""Executors: where chunks of members are computed.
+
+Every executor runs a module-level pure function on a list of tasks and yields
+``(index, result)`` pairs as tasks finish, in any order; callers put results back in task
+order, so what is computed never depends on where or in which order it ran. Three
+executors share that interface:
+
+* :class:`InProcess` computes in the calling process (tests, small runs, ``--workers 1``);
+* :class:`LocalPool` uses a pool of worker processes on this machine (the default);
+* :class:`DaskCluster` ships tasks to a running dask.distributed scheduler.
+
+No executor draws random numbers or decides anything about the science: a task carries
+everything its function needs (the case, the seed, draw indices), and each member's random
+streams come from the seed and its draw index alone (see :mod:`impact.sample`).
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+
+from .errors import CaseError
+
+# A task whose worker process dies is sent again this many times before the run gives up.
+RETRIES = 2
+# How long a cluster address may take to answer before the run gives up on it (seconds).
+CONNECT_TIMEOUT = 10.0
+
+
+def machine_cores() -> int:
+    """Cores this process may use (the affinity mask where the platform has one)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+class InProcess:
+    """Compute every task in the calling process, in task order."""
+
+    name = "in-process"
+    workers = 1
+
+    def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
+        for i, task in enumerate(tasks):
+            yield i, fn(task)
+
+    def close(self):
+        pass
+
+    def describe(self) -> dict:
+        return {"executor": self.name, "workers": 1}
+
+
+class LocalPool:
+    """A pool of worker processes on this machine.
+
+    Workers start from a fork server that has already imported the numerical modules, so a
+    pool costs well under a second to start. When a worker dies (killed, out of memory) the
+    pool is rebuilt and the tasks that had not finished are sent again, at most
+    :data:`RETRIES` times each.
+    """
+
+    name = "process pool"
+
+    def __init__(self, workers: int):
+        import multiprocessing as mp
+
+        self.workers = int(workers)
+        self._ctx = mp.get_context("forkserver")
+        self._ctx.set_forkserver_preload(["numpy", "scipy.stats", "impact.assess", "impact.sensitivity"])
+        self._pool: ProcessPoolExecutor | None = None
+
+    def _executor(self) -> ProcessPoolExecutor:
+        if self._pool is None:
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx)
+        return self._pool
+
+    def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
+        tries = [0] * len(tasks)
+        pending: dict[Future, int] = {}
+        todo = list(range(len(tasks)))
+        # keep a bounded number of tasks in flight so results stream back as they finish
+        limit = 2 * self.workers
+        while todo or pending:
+            while todo and len(pending) < limit:
+                i = todo.pop(0)
+                pending[self._executor().submit(fn, tasks[i])] = i
+            done, _ = wait(list(pending), return_when=FIRST_COMPLETED)
+            broken = False
+            for fut in done:
+                i = pending.pop(fut)
+                try:
+                    result = fut.result()
+                except BrokenProcessPool:
+                    broken = True
+                    tries[i] += 1
+                    if tries[i] > RETRIES:
+                        self.close()
+                        raise WorkerLost(f"a worker process died {tries[i]} times while computing chunk {i}; "
+                                         "see the system log (out of memory?)") from None
+                    todo.insert(0, i)
+                    continue
+                yield i, result
+            if broken:
+                # the pool is unusable once a worker has died: every unfinished task goes again
+                for fut, i in pending.items():
+                    fut.cancel()
+                    todo.insert(0, i)
+                pending.clear()
+                self._pool.shutdown(wait=False, cancel_futures=True)
+                self._pool = None
+
+    def close(self):
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+
+    def describe(self) -> dict:
+        return {"executor": self.name, "workers": self.workers}
+
+
+class DaskCluster:
+    """Tasks shipped to a dask.distributed scheduler; results gathered as arrays.
+
+    The scheduler re-runs a task whose worker died; this executor only submits, gathers and
+    hands results back in the same ``(index, result)`` form as the others.
+    """
+
+    name = "dask cluster"
+
+    def __init__(self, address: str, timeout: float = CONNECT_TIMEOUT):
+        try:
+            from distributed import Client
+        except ImportError:
+            raise CaseError("command line", "--cluster",
+                            "needs dask.distributed: pip install 'impact[cluster]' (or dask[distributed])") from None
+        self.address = address
+        try:
+            self._client = Client(address, timeout=timeout, set_as_default=False)
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise CaseError("command line", "--cluster",
+                            f"no Dask scheduler answered at {address} within {timeout:g} s ({type(exc).__name__}); "
+                            "give the address a scheduler prints, e.g. tcp://10.0.0.5:8786") from None
+        info = self._client.scheduler_info()
+        self.workers = max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
+
+    def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
+        from distributed import as_completed
+
+        futures = [self._client.submit(fn, t, pure=False) for t in tasks]
+        index = {f.key: i for i, f in enumerate(futures)}
+        try:
+            for fut in as_completed(futures):
+                yield index[fut.key], fut.result()
+        finally:
+            for f in futures:
+                f.release()
+
+    def close(self):
+        self._client.close()
+
+    def describe(self) -> dict:
+        return {"executor": self.name, "workers": self.workers, "address": self.address}
+
+
+class WorkerLost(Exception):
+    """A chunk could not be computed because its worker kept dying."""
+
+
+def make_executor(workers: int | None = None, cluster: str | None = None):
+    """The executor the command line asks for: a cluster, a pool, or in-process for one worker."""
+    if cluster:
+        return DaskCluster(cluster)
+    n = machine_cores() if workers is None else int(workers)
+    if n < 1:
+        raise CaseError("command line", "--workers", f"must be at least 1, got {n}")
+    return InProcess() if n == 1 else LocalPool(n)
+
+
+def count(progress, label: str, done: int, total: int, unit: str = "members"):
+    """Tell a progress sink that ``done`` of ``total`` units of a stage are finished.
+
+    A sink with a ``count`` method (the command line's meter) gets the numbers and works out
+    rate and time left; a plain callable gets one line of text.
+    """
+    if progress is None:
+        return
+    if hasattr(progress, "count"):
+        progress.count(label, done, total, unit)
+    else:
+        progress(f"{label}: {done}/{total} {unit}")
