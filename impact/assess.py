@@ -63,10 +63,17 @@ def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
 
 # Draws are screened in fixed blocks of draw indices, so the blocks (and their checkpoints) are
 # the same whatever executor or worker count computes them.
-DRAW_BLOCK = 256
-# Members per chunk of the option runs (a checkpoint and a unit of work for one worker); large
-# enough for the vectorised integrator to run near full speed.
-RUN_CHUNK = 250
+DRAW_BLOCK = 512
+# Members per chunk of the option runs: a chunk is one worker's unit of work and one checkpoint.
+# Each integrator step has a fixed cost whatever the number of members, so chunks are as large as
+# an even share of the workers allows, within these bounds (common practice, no source).
+MIN_CHUNK = 100
+MAX_CHUNK = 2000
+
+
+def run_chunk_size(members: int, workers: int) -> int:
+    """Members per option-run chunk for an ensemble of ``members`` on ``workers`` workers."""
+    return int(np.clip(np.ceil(members / max(workers, 1)), MIN_CHUNK, MAX_CHUNK))
 
 
 @dataclass(frozen=True)
@@ -292,7 +299,7 @@ def run_chunk(task: RunTask) -> dict[str, Summary]:
 
 
 def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None, executor=None,
-                   store=None, chunk: int = RUN_CHUNK) -> dict[str, Summary]:
+                   store=None, chunk: int | None = None) -> dict[str, Summary]:
     """Baseline and every option on the kept members, chunk by chunk, as summaries.
 
     Chunks are cut from the member order alone; a member's results do not depend on the chunk
@@ -303,6 +310,7 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
 
     executor = executor or InProcess()
     M = len(ens.draws)
+    chunk = chunk or run_chunk_size(M, executor.workers)
     starts = list(range(0, M, chunk))
     parts: dict[int, dict[str, Summary]] = {}
     tasks, todo = [], []

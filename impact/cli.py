@@ -178,7 +178,7 @@ def cmd_check(args) -> int:
 
 
 def cmd_assess(args) -> int:
-    from .assess import DRAW_BLOCK, RUN_CHUNK
+    from .assess import DRAW_BLOCK, run_chunk_size
     from .execute import make_executor
     from .results import Checkpoints
 
@@ -187,6 +187,8 @@ def cmd_assess(args) -> int:
     seed = args.seed if args.seed is not None else case.seed
     if members < 1:
         raise CaseError("command line", "--members", "must be at least 1")
+    if args.chunk_members is not None and args.chunk_members < 1:
+        raise CaseError("command line", "--chunk-members", f"must be at least 1, got {args.chunk_members}")
     if seed < 0:
         raise CaseError("command line", "--seed", "must be a non-negative whole number")
     if not getattr(args, "no_sensitivity", False):
@@ -196,15 +198,18 @@ def cmd_assess(args) -> int:
     progress = _Progress(args.quiet)
     started = datetime.now(timezone.utc)
     t0 = time.monotonic()
-    fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
-                   "max_draws": case.max_draws, "draw_block": DRAW_BLOCK, "run_chunk": RUN_CHUNK,
-                   "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
-    store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
-    if args.resume and any(store.dir.glob("*.npz")):
-        progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
     executor = make_executor(args.workers, args.cluster)
     try:
-        text = _assess_into(case, args, members, seed, executor, store, progress, started, t0)
+        # a resumed run keeps the chunking of the run it continues (results never depend on it)
+        earlier = Checkpoints.previous(Path(args.out)) if args.resume else None
+        chunk = (earlier or {}).get("run_chunk") or args.chunk_members or run_chunk_size(members, executor.workers)
+        fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
+                       "max_draws": case.max_draws, "draw_block": DRAW_BLOCK, "run_chunk": chunk,
+                       "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
+        store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
+        if args.resume and any(store.dir.glob("*.npz")):
+            progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
+        text = _assess_into(case, args, members, seed, chunk, executor, store, progress, started, t0)
     finally:
         executor.close()
     store.discard()
@@ -213,14 +218,15 @@ def cmd_assess(args) -> int:
     return 0
 
 
-def _assess_into(case: Case, args, members: int, seed: int, executor, store, progress, started, t0) -> str:
+def _assess_into(case: Case, args, members: int, seed: int, chunk: int, executor, store, progress, started,
+                 t0) -> str:
     from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
     from .model import equations
     from .results import staged_directory, write_csv, write_json
 
     with staged_directory(Path(args.out)) as tmp:
         ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store)
-        runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store)
+        runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
         progress("tabulating risk", force=True)
         risk = risk_table(case, runs)
         failures = failure_counts(runs)
@@ -427,6 +433,8 @@ def build_parser() -> argparse.ArgumentParser:
     _executor_flags(p)
     p.add_argument("--resume", action="store_true",
                    help="reuse the chunks an interrupted run of the same case, seed and members saved")
+    p.add_argument("--chunk-members", type=int, default=None,
+                   help="members per chunk of work and checkpoint (default: an even share per worker, 100-2000)")
     p.set_defaults(func=cmd_assess)
 
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")

@@ -153,7 +153,7 @@ class DaskCluster:
         futures = [self._client.submit(fn, t, pure=False) for t in tasks]
         index = {f.key: i for i, f in enumerate(futures)}
         try:
-            for fut in as_completed(futures):
+            for fut in as_completed(futures, loop=self._client.loop):
                 yield index[fut.key], fut.result()
         finally:
             for f in futures:

@@ -68,7 +68,14 @@ def time_mean(times: np.ndarray, traj: np.ndarray, horizon: float) -> np.ndarray
     t, x = times[sel], traj[:, sel]
     if t.size < 2:
         return x[:, 0].copy()
-    return np.trapezoid(x, t, axis=1) / (t[-1] - t[0])
+    # summed interval by interval, in time order: a reduction along the time axis may group the
+    # terms differently for different numbers of members, and a member's numbers must not
+    # depend on the ensemble it is computed in
+    dt = np.diff(t)
+    acc = np.zeros(x.shape[0])
+    for k in range(dt.size):
+        acc += 0.5 * dt[k] * (x[:, k] + x[:, k + 1])
+    return acc / (t[-1] - t[0])
 
 
 def paired_relative_change(option_mean: np.ndarray, baseline_mean: np.ndarray) -> np.ndarray:

@@ -120,6 +120,15 @@ class Checkpoints:
         except OSError as exc:
             raise CaseError(str(self.dir), "", f"cannot write checkpoints here ({exc.strerror or exc})") from None
 
+    @staticmethod
+    def previous(out: Path) -> dict | None:
+        """The fingerprint of checkpoints left beside ``out`` by an earlier run, if any."""
+        out = Path(out)
+        try:
+            return json.loads((out.parent / f".{out.name}.checkpoints" / "fingerprint.json").read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return None
+
     def _path(self, key: str) -> Path:
         return self.dir / f"{key}.npz"
 

@@ -461,7 +461,7 @@ class FoodWebModel:
     seed: int
     varied: np.ndarray
     fixed: np.ndarray
-    chunk: int = 512
+    chunk: int = 1024
     failures: dict = field(default_factory=dict)
     points: int = 0
     seconds: float = 0.0
@@ -479,8 +479,11 @@ class FoodWebModel:
         n = unit.shape[0]
         full = np.tile(self.fixed, (n, 1))
         full[:, self.varied] = unit
-        starts = list(range(0, n, self.chunk))
-        keys = [f"design-{hashlib.sha1(np.ascontiguousarray(full[a: a + self.chunk]).tobytes()).hexdigest()[:20]}"
+        executor = self.executor or InProcess()
+        # an even share per worker, within bounds: every chunk pays a fixed integrator cost
+        size = int(np.clip(np.ceil(n / executor.workers), 64, self.chunk))
+        starts = list(range(0, n, size))
+        keys = [f"design-{hashlib.sha1(np.ascontiguousarray(full[a: a + size]).tobytes()).hexdigest()[:20]}"
                 for a in starts]
         parts: dict[int, dict] = {}
         tasks, todo = [], []
@@ -489,11 +492,11 @@ class FoodWebModel:
             if saved is not None:
                 parts[k] = saved
             else:
-                tasks.append(DesignTask(self.case, self.seed, full[a: a + self.chunk]))
+                tasks.append(DesignTask(self.case, self.seed, full[a: a + size]))
                 todo.append(k)
         done = sum(p["Y"].shape[0] for p in parts.values())
         count(self.progress, "sensitivity: simulating design points", done, n, "points")
-        for i, res in (self.executor or InProcess()).map(design_chunk, tasks):
+        for i, res in executor.map(design_chunk, tasks):
             parts[todo[i]] = res
             if self.store:
                 self.store.put(keys[todo[i]], res)
