@@ -1,0 +1,119 @@
+"""All of impact's benchmarks in one run, as ratios that hold on a noisy machine.
+
+Usage::
+
+    python bench/run.py            # everything, including a 100,000-member run (about 15 min on 2 cores)
+    python bench/run.py --quick    # ensemble sizes 1k and 10k only
+
+Prints, each measured in this same run:
+
+1. the ensemble integrator against a per-member ``solve_ivp`` loop (bench_integrator.py);
+2. the demo's core stage (draws + paired option runs) on 1 worker against a 2-worker pool;
+3. the local pool against a Dask LocalCluster with 2 worker processes, same work;
+4. the full demo assessment (every stage and the PDF) with the default executor: wall time,
+   and the peak memory of one in-process run;
+5. member throughput of the core stage at 1k, 10k and 100k members (in-process, so the
+   peak memory is the whole run's): the cost should grow linearly, so members per second
+   should stay flat.
+
+Every timing is of a separate ``impact`` process (``os.wait4`` gives its own peak resident
+memory), so import costs are included the way a user meets them.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "casework" / "island_mesopredator.toml"
+CORE = ["--no-sensitivity", "--no-dynamics", "--no-report", "--quiet"]
+
+
+def run_impact(args: list[str]) -> tuple[float, float]:
+    """Run ``impact`` in a child process: (wall seconds, peak resident memory of that process in MiB)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, "-m", "impact.cli", *args], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE, cwd=ROOT)
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    err = proc.stderr.read().decode()
+    proc.stderr.close()
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise SystemExit(f"impact {' '.join(args)} failed:\n{err}")
+    return wall, usage.ru_maxrss / 1024.0
+
+
+def section(title: str):
+    print(f"\n== {title}")
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="skip the 100,000-member run")
+    ap.add_argument("--case", default=str(DEMO))
+    args = ap.parse_args(argv)
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {platform.platform()}")
+    work = Path(tempfile.mkdtemp(prefix="impact-bench-"))
+
+    section("1. ensemble integrator vs per-member solve_ivp loop")
+    sys.path.insert(0, str(ROOT / "bench"))
+    import bench_integrator
+
+    bench_integrator.main([])
+
+    section("2. demo core stage (1000 members): 1 worker vs a 2-worker process pool")
+    t1, _ = run_impact(["assess", args.case, "--out", str(work / "w1"), "--workers", "1", *CORE])
+    t2, _ = run_impact(["assess", args.case, "--out", str(work / "w2"), "--workers", "2", *CORE])
+    print(f"1 worker (in-process)        {t1:7.2f} s")
+    print(f"2-worker pool                {t2:7.2f} s")
+    print(f"speed-up                     {t1 / t2:7.2f}x  (ideal 2x on 2 cores)")
+    same = all((work / "w1" / f).read_bytes() == (work / "w2" / f).read_bytes()
+               for f in ("risk.csv", "bands.csv", "members.csv", "parameters.csv"))
+    print(f"identical tables             {'yes' if same else 'NO'}")
+
+    section("3. local 2-worker pool vs Dask LocalCluster (2 worker processes), same work")
+    try:
+        from distributed import LocalCluster
+    except ImportError:
+        print("dask.distributed not installed: skipped (pip install 'impact[cluster]')")
+    else:
+        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                          dashboard_address=None, silence_logs=40) as cluster:
+            td, _ = run_impact(["assess", args.case, "--out", str(work / "dask"), "--cluster",
+                                cluster.scheduler_address, *CORE])
+        print(f"2-worker pool                {t2:7.2f} s")
+        print(f"Dask LocalCluster            {td:7.2f} s")
+        print(f"Dask / pool                  {td / t2:7.2f}x")
+        same = all((work / "w1" / f).read_bytes() == (work / "dask" / f).read_bytes()
+                   for f in ("risk.csv", "bands.csv", "members.csv", "parameters.csv"))
+        print(f"identical tables             {'yes' if same else 'NO'}")
+
+    section("4. full demo assessment (all stages + PDF)")
+    tf, _ = run_impact(["assess", args.case, "--out", str(work / "full"), "--quiet"])
+    tf1, mem1 = run_impact(["assess", args.case, "--out", str(work / "full1"), "--quiet", "--workers", "1"])
+    print(f"default executor ({os.cpu_count()} workers)   {tf:7.2f} s")
+    print(f"in-process                   {tf1:7.2f} s, peak memory {mem1:.0f} MiB")
+
+    section("5. core-stage throughput vs ensemble size (in-process; cost should grow linearly)")
+    sizes = [1000, 10000] if args.quick else [1000, 10000, 100000]
+    base_rate = None
+    for n in sizes:
+        t, mem = run_impact(["assess", args.case, "--out", str(work / f"n{n}"), "--members", str(n),
+                             "--workers", "1", *CORE])
+        rate = n / t
+        base_rate = base_rate or rate
+        print(f"{n:>7} members  {t:8.1f} s  {rate:7.1f} members/s  ({rate / base_rate:4.2f} of the 1k rate)  "
+              f"peak memory {mem:6.0f} MiB")
+    print(f"\n(work files in {work})")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
