@@ -282,7 +282,8 @@ def _assess_into(case: Case, args, members: int, seed: int, chunk: int, executor
         if not getattr(args, "no_dynamics", False):
             from .dynamics import assess_stage
 
-            dyn, dyn_record = assess_stage(case, ens.params, ens.values, runs, progress=progress)
+            dyn, dyn_record = assess_stage(case, ens.params, ens.values, runs, progress=progress,
+                                           executor=executor)
             for key, frame in dyn.items():
                 write_csv(frame, tmp / "dynamics" / f"{key}.csv")
             write_json(dyn_record, tmp / "dynamics" / "dynamics.json")

@@ -662,8 +662,27 @@ def logistic_map_scan(r: np.ndarray, s: DynamicsSettings, transient: int = 20000
     return regime, period, lyap, orbit
 
 
+@dataclass(frozen=True)
+class DiagnoseTask:
+    """One option's diagnosis in an assessment: members' parameters, controls and start states."""
+
+    case: Case
+    params: WebParams
+    controls: Controls
+    y0: np.ndarray
+    settings: DynamicsSettings
+    level: np.ndarray
+
+
+def diagnose_task(task: DiagnoseTask) -> dict:
+    """:func:`diagnose_web` on one task (a worker's function)."""
+    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level)
+    out.pop("diagnosis")  # the tables need only the per-member verdicts
+    return out
+
+
 def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
-                 progress=None):
+                 progress=None, executor=None):
     """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
 
     ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
@@ -679,6 +698,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     record : dict
         Settings for dynamics.json.
     """
+    from .execute import InProcess, count
     from .simulate import _controls
 
     web = build_web(case)
@@ -705,15 +725,17 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     opts = {None: "baseline", **{o: o.name for o in case.options}}
     reg_rows, risk_rows, share_rows = [], [], []
     counts = {}
-    for opt, name in opts.items():
+    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
+    tasks = [DiagnoseTask(case, sub, _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
+                          runs[name].final[sel], s, level) for opt, name in opts.items()]
+    results = {}
+    count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
+    for i, out in (executor or InProcess()).map(diagnose_task, tasks):
+        results[i] = out
+        count(progress, "dynamics: diagnosing options", len(results), len(tasks), "options")
+    for k, (opt, name) in enumerate(opts.items()):
         run = runs[name]
-        y0 = run.final[sel]
-        vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-        c = _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S)
-        if progress:
-            progress(f"dynamics: {name} on {sel.size} members", True)
-        out = diagnose_web(web, sub, c, y0, s, level)
-        d = out["diagnosis"]
+        out = results[k]
         regime = np.where(run.failed[sel], "failed", out["regime"])
         counts[name] = {"diagnosed": int(sel.size), "failed": int((regime == "failed").sum())}
         frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],

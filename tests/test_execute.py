@@ -111,6 +111,24 @@ def test_dask_cluster_reproduces_in_process_tables(web, reference, tmp_path, clu
     assert json.loads((out / "manifest.json").read_text())["execution"]["executor"] == "dask cluster"
 
 
+def test_pool_reproduces_the_in_process_dynamics_tables(web):
+    import pandas as pd
+
+    from impact.dynamics import DynamicsSettings, assess_stage
+
+    case, ens = web
+    runs = assess_members(case, ens, case.seed)
+    s = DynamicsSettings(transient=20.0, window=40.0, sample_dt=0.5, member_cap=6, lambda_tol=0.25)
+    here, _ = assess_stage(case, ens.params, ens.values, runs, settings=s)
+    pool = LocalPool(2)
+    try:
+        there, _ = assess_stage(case, ens.params, ens.values, runs, settings=s, executor=pool)
+    finally:
+        pool.close()
+    for key, frame in here.items():
+        pd.testing.assert_frame_equal(there[key], frame, check_exact=True)
+
+
 def _square_or_die(task):
     """Square a number; the first call with a marker path kills its own worker process."""
     value, marker = task
