@@ -411,6 +411,19 @@ def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> Dy
     return DynamicsSettings(**base)
 
 
+def section_species(case: Case, name: str | None, field: str = "--section") -> tuple[int, str]:
+    """Column and name of the species whose successive maxima form the Poincaré section.
+
+    ``None`` keeps the default, the last declared species. An unknown name is a user error.
+    """
+    names = case.species_names
+    if name is None:
+        return len(names) - 1, names[-1]
+    if name not in names:
+        raise CaseError("command line", field, f"unknown species {name!r} for the section; allowed: {', '.join(names)}")
+    return names.index(name), name
+
+
 def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: DynamicsSettings,
                  extinct_level: np.ndarray, members=None, section=None):
     """Regime, period, λ and horizon of each member from state ``y0`` under fixed controls.
@@ -422,8 +435,8 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
         A species whose maximum over the window stays below this level is extinct; species
         that were already below it in ``y0`` are not counted (they were never there).
     section : int or ndarray (M,), optional
-        Section variable; default: per member, the species with the largest relative amplitude
-        over the first pass (the one whose maxima tell cycles apart best).
+        State column whose successive maxima form the Poincaré section; default: the last
+        species (see :func:`section_species` to resolve a name).
 
     Returns
     -------
@@ -568,8 +581,11 @@ def _scan_rows(parameter, v, out, i, keep_sections):
 
 
 def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, option: str | None = None,
-             section: int | None = None, continuation: bool = True, progress=None):
+             section: str | None = None, continuation: bool = True, progress=None):
     """Bifurcation scan of one quantity with every other parameter at its prior median.
+
+    ``section`` names the species whose maxima form the Poincaré section (default: the last
+    declared species); an unknown name raises :class:`CaseError` for ``--section``.
 
     With ``continuation`` each value starts where the previous one ended (so a branch is
     followed and hysteresis shows); without it all values run side by side as one ensemble
@@ -585,6 +601,7 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
     if option is not None and option not in [o.name for o in case.options]:
         raise CaseError("command line", "--option", f"unknown option {option!r}; declared: {', '.join(o.name for o in case.options) or 'none'}")
     grid = np.asarray(grid, float)
+    section, _ = section_species(case, section)
     at = scan_target(case, parameter, option)
     web = build_web(case)
     level = np.array([sp.quasi_extinction for sp in case.species], float)
@@ -663,12 +680,13 @@ def logistic_map_scan(r: np.ndarray, s: DynamicsSettings, transient: int = 20000
 
 
 def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
-                 progress=None):
+                 progress=None, section: str | None = None):
     """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
 
     A capped subset of members (the first ``member_cap`` by index) is continued from each
     option's state at the horizon with the controls in force just before it, deterministically
-    (noise and events off).
+    (noise and events off). ``section`` names the species whose maxima form the Poincaré
+    section (default: the last declared species).
 
     Returns
     -------
@@ -679,6 +697,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     """
     from .simulate import _controls
 
+    sec_col, sec_name = section_species(case, section)
     web = build_web(case)
     S = web.n_species
     base = runs["baseline"]
@@ -710,7 +729,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         c = _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S)
         if progress:
             progress(f"dynamics: {name} on {sel.size} members", True)
-        out = diagnose_web(web, sub, c, y0, s, level)
+        out = diagnose_web(web, sub, c, y0, s, level, section=sec_col)
         d = out["diagnosis"]
         regime = np.where(run.failed[sel], "failed", out["regime"])
         counts[name] = {"diagnosed": int(sel.size), "failed": int((regime == "failed").sum())}
@@ -738,7 +757,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
               "risk_by_regime": pd.DataFrame(risk_rows, columns=["option", "regime", "species", "metric", "value"])}
     record = settings_record(s, members_diagnosed=int(sel.size), member_selection="first members by index, at most member_cap",
                              start="each option's state at the horizon", controls="press controls in force just before the horizon",
-                             noise="off (deterministic)", events="none after the horizon", section="maxima of the last species",
+                             noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
                              counts=counts, extinct="extinct is true when a species present at the start stays below its "
                                                     "quasi-extinction level over the whole window; extinct_species names them")
     return tables, record

@@ -204,3 +204,42 @@ def test_assess_writes_dynamics_for_every_option(tmp_path):
     # 1.5× the Hopf threshold without harvest: cycles (Rosenzweig 1971)
     assert set(reg[reg.option == "baseline"].regime) == {"cycle"}
     assert "dynamics" in json.loads((out / "manifest.json").read_text())["stages"]
+
+
+def test_scan_cli_unknown_section_species_exits_2(tmp_path, capsys):
+    # CLI contract (DEVELOPERS.md): bad input names the field and what is allowed, exit 2, no output.
+    path = rm_case(tmp_path, 1.0)
+    rc = main(["scan", str(path), "--parameter", "K", "--from", "1", "--to", "2", "--steps", "2",
+               "--section", "wolf", "--out", str(tmp_path / "o"), "--quiet"])
+    assert rc == 2
+    err = capsys.readouterr().err
+    assert "--section" in err and "allowed: prey, pred" in err
+    assert not (tmp_path / "o").exists()
+
+
+@pytest.fixture(scope="module")
+def rm_sections(tmp_path_factory):
+    # 1.5× the Hopf threshold of Rosenzweig (1971): a limit cycle, so both species have maxima.
+    tmp = tmp_path_factory.mktemp("rmsec")
+    path = rm_case(tmp, 1.5)
+    out = {}
+    for name, extra in (("default", []), ("prey", ["--section", "prey"])):
+        d = tmp / name
+        rc = main(["scan", str(path), "--parameter", "K", "--from", "440", "--to", "460", "--steps", "2", *extra,
+                   "--transient", "60", "--window", "40", "--sample-dt", "0.25", "--parallel", "--out", str(d), "--quiet"])
+        assert rc == 0
+        out[name] = (pd.read_csv(d / "dynamics" / "scan.csv"), json.loads((d / "dynamics" / "dynamics.json").read_text()))
+    return out
+
+
+@pytest.mark.parametrize("name,species", [("default", "pred"), ("prey", "prey")])
+def test_scan_records_the_section_species(rm_sections, name, species):
+    assert rm_sections[name][1]["section"] == f"maxima of {species}"
+
+
+def test_scan_section_species_changes_section_values(rm_sections):
+    # On a limit cycle the prey maxima lie far above the predator maxima for these parameters
+    # (prey equilibrium N* = 100 against predator numbers of order 1–10; Rosenzweig 1971 model).
+    pred, prey = rm_sections["default"][0], rm_sections["prey"][0]
+    assert pred.section_value.notna().all() and prey.section_value.notna().all()
+    assert prey.section_value.min() > 10 * pred.section_value.max()
