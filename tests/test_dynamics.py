@@ -12,9 +12,10 @@ import pytest
 from casefiles import write_case
 from impact.case import load_case
 from impact.cli import main
-from impact.dynamics import (DynamicsSettings, classify, detect_period, diagnose_web, logistic_map_scan,
-                             lyapunov_flow, nominal_values, predictability_horizon, refine_transitions,
-                             scan_web, transitions)
+from impact.dynamics import (DynamicsSettings, _hermite_max, classify, detect_period, diagnose_web,
+                             logistic_map_scan, lyapunov_flow, nominal_values, predictability_horizon,
+                             refine_transitions, scan_web, transitions)
+from impact.jacobian import WebTangent
 from impact.model import Controls, build_web, web_params
 
 
@@ -43,6 +44,35 @@ def test_lorenz_largest_lyapunov_exponent():
     s = DynamicsSettings(transient=20, window=200, sample_dt=0.1, lambda_tol=0.05)
     regime, _ = classify(d.lyapunov, d.sections, np.ones(4), np.zeros(4, bool), s)
     assert list(regime) == ["chaotic"] * 4
+
+
+@pytest.mark.parametrize("dt", [2.0, 0.5])
+def test_hermite_maximum_is_exact_on_a_cubic(dt):
+    # Cubic Hermite interpolation reproduces any cubic exactly (e.g. Burden & Faires, Numerical
+    # Analysis, Sec. 3.4), so the located maximum is that of the cubic itself:
+    # y(s) = 3s − s³ on s = t/dt ∈ [0, 1.5] peaks at s = 1 with y = 2.
+    T = 1.5 * dt
+    y = lambda t: 3 * (t / dt) - (t / dt) ** 3
+    dy = lambda t: (3 - 3 * (t / dt) ** 2) / dt
+    peak = _hermite_max(np.array([y(0.0)]), np.array([y(T)]), np.array([dy(0.0)]), np.array([dy(T)]), np.array([T]))
+    assert peak[0] == pytest.approx(2.0, rel=1e-12)
+
+
+def test_lyapunov_does_not_depend_on_batch_composition(tmp_path):
+    # DEVELOPERS.md contract (common practice, no source): a member's numbers are the same alone or
+    # in a batch, to the last bit.
+    case = load_case(hp_case(tmp_path))
+    web = build_web(case)
+    vals = {k: np.full(3, v) for k, v in nominal_values(case).items()}
+    vals["h1"] = np.array([2.2, 3.0, 2.6]) / 5.0
+    p = web_params(case, vals, 3)
+    c = Controls.neutral(3, 3)
+    kw = dict(transient=50.0, window=150.0, sample_dt=2.0, section=2, jvp=WebTangent(web, p, c))
+    all3 = lyapunov_flow(None, None, p.initial, **kw)
+    one = lyapunov_flow(None, None, p.initial[1:2], members=np.array([1]), **kw)
+    assert one.lyapunov[0] == all3.lyapunov[1]
+    np.testing.assert_array_equal(one.sections[0], all3.sections[1])
+    np.testing.assert_array_equal(one.mean[0], all3.mean[1])
 
 
 MAP = DynamicsSettings(transient=0, window=0, sample_dt=1, period_tol=1e-6, max_period=64, lambda_tol=1e-3)
