@@ -17,6 +17,7 @@ from casefiles import write_case  # noqa: E402
 from impact.case import load_case  # noqa: E402
 from impact.dynamics import DynamicsSettings, lyapunov_flow, nominal_values, scan_web, web_functions  # noqa: E402
 from impact.integrate import integrate_segment  # noqa: E402
+from impact.jacobian import WebTangent  # noqa: E402
 from impact.model import Controls, build_web, web_params  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
@@ -37,10 +38,17 @@ def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
     plain = integrate_segment(fun, 0.0, span, p.initial, rtol=1e-7, atol=1e-9)
     t_plain = time.perf_counter() - t
     t = time.perf_counter()
-    d = lyapunov_flow(fun, jac, p.initial, transient=0.0, window=span, sample_dt=dt, section=2, rtol=1e-7, atol=1e-9)
+    dm = lyapunov_flow(fun, jac, p.initial, transient=0.0, window=span, sample_dt=dt, section=2, rtol=1e-7, atol=1e-9)
+    t_matrix = time.perf_counter() - t
+    # the stage as diagnose_web runs it: J·v from the interaction terms, no (m, n, n) Jacobian
+    t = time.perf_counter()
+    d = lyapunov_flow(fun, None, p.initial, transient=0.0, window=span, sample_dt=dt, section=2, rtol=1e-7, atol=1e-9,
+                      jvp=WebTangent(web, p, Controls.neutral(members, 3)))
     t_lyap = time.perf_counter() - t
     print(f"plain ensemble run: {members} members x {span:g} time units: {t_plain:.2f} s ({plain.nfev} rhs calls)")
-    print(f"Lyapunov stage (tangent + sampling every {dt:g}): {t_lyap:.2f} s ({d.nfev} calls)")
+    print(f"Lyapunov, Jacobian matrix times v (max step {dt:g}): {t_matrix:.2f} s ({dm.nfev} calls), "
+          f"ratio {t_matrix / t_plain:.2f}")
+    print(f"Lyapunov stage, J·v without J (as in diagnose_web): {t_lyap:.2f} s ({d.nfev} calls)")
     print(f"ratio Lyapunov / plain: {t_lyap / t_plain:.2f} (target <= 3)")
     s = DynamicsSettings(transient=1000.0, window=1000.0, sample_dt=dt)
     for cont in (False, True):

@@ -309,7 +309,7 @@ def cmd_report(args) -> int:
 
 
 def cmd_scan(args) -> int:
-    from .dynamics import default_settings, nominal_values, scan_web, settings_record
+    from .dynamics import default_settings, nominal_values, scan_web, section_species, settings_record
     from .model import web_params
     from .results import staged_directory, write_csv, write_json
 
@@ -321,6 +321,7 @@ def cmd_scan(args) -> int:
     for flag, v in (("--transient", args.transient), ("--window", args.window), ("--sample-dt", args.sample_dt)):
         if v is not None and not (v > 0 if flag != "--transient" else v >= 0):
             raise CaseError("command line", flag, "must be a positive time")
+    _, section = section_species(case, args.section)
     nominal = nominal_values(case)
     p = web_params(case, {k: np.array([v]) for k, v in nominal.items()}, 1)
     over = {k: v for k, v in (("transient", args.transient), ("window", args.window), ("sample_dt", args.sample_dt)) if v is not None}
@@ -330,13 +331,13 @@ def cmd_scan(args) -> int:
     t0 = time.monotonic()
     with staged_directory(Path(args.out)) as tmp:
         scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option,
-                                       continuation=not args.parallel, progress=progress)
+                                       section=section, continuation=not args.parallel, progress=progress)
         write_csv(scan, tmp / "dynamics" / "scan.csv")
         write_csv(points, tmp / "dynamics" / "scan_points.csv")
         write_csv(trans, tmp / "dynamics" / "transitions.csv")
         seconds = time.monotonic() - t0
         write_json(settings_record(settings, parameter=args.parameter, values=grid.tolist(), option=args.option,
-                                   continuation=not args.parallel, others="every other parameter at its prior median",
+                                   section=f"maxima of {section}", continuation=not args.parallel, others="every other parameter at its prior median",
                                    seconds=round(seconds, 2), failed=int(points.failed.sum())),
                    tmp / "dynamics" / "dynamics.json")
         write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["scan"],
@@ -464,6 +465,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
     p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
     p.add_argument("--sample-dt", type=float, default=None, help="sampling / renormalisation interval")
+    p.add_argument("--section", default=None, metavar="SPECIES",
+                   help="species whose successive maxima form the Poincaré section (default: the last declared species)")
     p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_scan)

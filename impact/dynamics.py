@@ -1,11 +1,11 @@
 """Dynamical regime diagnostics: equilibrium, cycles, chaos, predictability horizon, scans.
 
 After a transient, each member is followed over a window while the tangent (variational)
-equations ride along and are renormalised at every sample (Benettin et al. 1980), giving the
-largest Lyapunov exponent λ. At every sample the trajectory is also cut by a Poincaré
-section — the successive local maxima of one state variable, located between samples by cubic
-Hermite interpolation — and the period k is the smallest shift under which the section
-sequence repeats. The regime follows from the section, λ and the amplitude:
+equations ride along and are renormalised at every integration step (Benettin et al. 1980),
+giving the largest Lyapunov exponent λ. The trajectory is also cut by a Poincaré section — the
+successive local maxima of one state variable, located inside the step where its derivative
+changes sign by cubic Hermite interpolation — and the period k is the smallest shift under
+which the section sequence repeats. The regime follows from the section, λ and the amplitude:
 
 * ``extinction``  a watched species stays below its extinction level over the window;
 * ``equilibrium`` λ < −lambda_tol, or the relative amplitude of every state is < eq_tol;
@@ -27,8 +27,9 @@ import pandas as pd
 
 from .case import Case
 from .errors import CaseError
-from .integrate import FAILURE_REASONS, integrate_segment
-from .jacobian import jacobian, tangent
+from .integrate import (FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine, _rms_rows,
+                        _select_initial_step, _take_rows)
+from .jacobian import WebTangent, jacobian, tangent
 from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, rhs, web_params
 
 REGIMES = ("equilibrium", "cycle", "irregular", "chaotic", "extinction")
@@ -43,8 +44,9 @@ class DynamicsSettings:
     transient, window : float
         Time discarded before diagnosing, and time diagnosed.
     sample_dt : float
-        Interval between samples (tangent renormalisation and section checks); must be well
-        below half the shortest oscillation period.
+        Longest integration step of the diagnostics (tangent renormalisation and section checks
+        happen at every step end, so at least this often); must be well below half the
+        shortest oscillation period.
     delta0, tolerance : float
         Initial relative uncertainty (e.g. a survey's relative error) and the relative error
         at which a projection stops being useful; horizon = ln(tolerance/delta0)/λ.
@@ -182,18 +184,25 @@ def classify(lyap: np.ndarray, sections: list, amplitude: np.ndarray, extinct: n
     return regime, period
 
 
-def _hermite_max(y0, y1, f0, f1, dt, iters=40):
-    """Maximum of the cubic Hermite interpolant on [0, dt] where f0 > 0 ≥ f1: (k,) arrays."""
+def _hermite_max(y0, y1, f0, f1, dt):
+    """Maximum of the cubic Hermite interpolant on [0, dt] where f0 > 0 ≥ f1: (k,) arrays.
+
+    With p(s) = y0 + c1 s + c2 s² + c3 s³ on s ∈ [0, 1], p'(0) > 0 ≥ p'(1) leaves exactly one
+    root of the quadratic p' in (0, 1]; it is taken from the cancellation-free form of the
+    quadratic formula (Press et al. 2007, Numerical Recipes 3rd ed., Sec. 5.6).
+    """
     c1 = dt * f0
     c2 = 3.0 * (y1 - y0) - dt * (2.0 * f0 + f1)
     c3 = 2.0 * (y0 - y1) + dt * (f0 + f1)
-    lo, hi = np.zeros_like(y0), np.ones_like(y0)
-    for _ in range(iters):  # p'(s) goes from + to − on [0, 1]: bisect its sign change
-        mid = 0.5 * (lo + hi)
-        pos = c1 + mid * (2.0 * c2 + 3.0 * c3 * mid) > 0
-        lo = np.where(pos, mid, lo)
-        hi = np.where(pos, hi, mid)
-    x = 0.5 * (lo + hi)
+    qa, qb, qc = 3.0 * c3, 2.0 * c2, c1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        disc = np.sqrt(np.maximum(qb * qb - 4.0 * qa * qc, 0.0))
+        q = -0.5 * (qb + np.where(qb >= 0, disc, -disc))
+        r1 = qc / q
+        r2 = q / qa
+    inside1 = np.isfinite(r1) & (r1 >= 0) & (r1 <= 1)
+    x = np.where(inside1, r1, np.where(np.isfinite(r2), r2, 1.0))
+    x = np.clip(x, 0.0, 1.0)
     return y0 + x * (c1 + x * (c2 + x * c3))
 
 
@@ -202,125 +211,284 @@ def _hermite_max(y0, y1, f0, f1, dt, iters=40):
 
 
 def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: float, section=0,
-                  rtol=1e-7, atol=1e-9, members=None, nonnegative=True, t0: float = 0.0) -> Diagnosis:
+                  rtol=1e-7, atol=1e-9, members=None, nonnegative=True, t0: float = 0.0, jvp=None,
+                  max_steps: int = 1_000_000, blowup: float = 1e12) -> Diagnosis:
     """Largest Lyapunov exponent by tangent integration with renormalisation (Benettin et al. 1980).
+
+    State and tangent vector advance together with the Dormand–Prince 5(4) stages of
+    :mod:`impact.integrate`, one adaptive step size per member chosen from the state's error
+    alone: the tangent equation is linear with the state's own Jacobian, so the state's step
+    resolves it too (common practice, no source), and keeping it out of the error norm leaves
+    the step sequence that of a plain run. Steps land exactly only on the end of the transient
+    and of the window; the tangent is renormalised at every step end, the window statistics are
+    time-weighted over steps, and section maxima are located inside the step where the section
+    variable's derivative changes sign, by cubic Hermite interpolation of the step's end values
+    and derivatives.
 
     Parameters
     ----------
     fun : callable ``fun(t, y, members) -> (m, n)``
-    jac : callable ``jac(t, y, members) -> (m, n, n)``
+    jac : callable ``jac(t, y, members) -> (m, n, n)``, or None when ``jvp`` is given
     y0 : ndarray (M, n)
-    transient, window, sample_dt : float
-        Discarded time, diagnosed time, and the renormalisation / sampling interval.
+    transient, window : float
+        Discarded time and diagnosed time.
+    sample_dt : float
+        Longest step allowed, so that renormalisation and section checks happen at least this
+        often (keep it below half the shortest oscillation period).
     section : int or int ndarray (M,)
         State column whose successive maxima form the Poincaré section.
     members : int ndarray (M,), optional
-        Member indices passed on to ``fun`` and ``jac``.
+        Member indices passed on to ``fun``, ``jac`` and ``jvp``.
     nonnegative : bool
-        Evaluate the model at max(y, 0) (abundances) and clip states at samples.
+        Evaluate the model at max(y, 0) (abundances) and project accepted states onto y ≥ 0.
+    jvp : callable ``jvp(t, y, v, members) -> (f, J v)``, optional
+        Right-hand side and Jacobian–vector product in one call (e.g.
+        :class:`impact.jacobian.WebTangent`); default: ``fun`` and ``jac`` times ``v``.
+    max_steps, blowup : as in :func:`impact.integrate.integrate_segment` (steps over the whole run).
 
     Returns
     -------
     Diagnosis
+        ``nfev`` counts evaluations of the right-hand side with its tangent.
     """
-    y = np.array(y0, float)
-    M, n = y.shape
+    y_all = np.array(y0, float)
+    M, n = y_all.shape
     members = np.arange(M) if members is None else np.asarray(members)
-    section = np.broadcast_to(np.asarray(section, int), (M,))
-    rows = np.arange(M)
+    section_all = np.broadcast_to(np.asarray(section, int), (M,)).copy()
+    if jvp is None:
+        def jvp(t, x, v, mem):
+            return fun(t, x, mem), tangent(jac(t, x, mem), v)
 
-    def aug(t, Y, mem):
-        x = Y[:, :n]
-        if nonnegative:
-            x = np.maximum(x, 0.0)
-        f = fun(t, x, mem)
-        V = Y[:, n:]
-        if nonnegative:
-            # An absent species stays absent (the model is of Kolmogorov form and the web is
-            # closed), so perturbations are confined to the face of present species: otherwise
-            # the invasion rate of an eradicated species would pass for chaos.
-            present = x > 0
-            V = np.where(present, V, 0.0)
-            return np.concatenate([f, np.where(present, tangent(jac(t, x, mem), V), 0.0)], axis=1)
-        return np.concatenate([f, tangent(jac(t, x, mem), V)], axis=1)
+    def fj(t, x, v, mem):
+        if not nonnegative:
+            return jvp(t, x, v, mem)
+        x = np.maximum(x, 0.0)
+        # An absent species stays absent (the model is of Kolmogorov form and the web is
+        # closed), so perturbations are confined to the face of present species: otherwise
+        # the invasion rate of an eradicated species would pass for chaos.
+        present = x > 0
+        if present.all():
+            return jvp(t, x, v, mem)
+        f, jv = jvp(t, x, np.where(present, v, 0.0), mem)
+        return f, np.where(present, jv, 0.0)
 
-    v = np.arange(1.0, n + 1.0)
-    v = np.tile(v / np.sqrt((v * v).sum()), (M, 1))
-    Y = np.concatenate([y, v], axis=1)
-    atol_aug = np.concatenate([np.broadcast_to(np.asarray(atol, float), (n,)), np.full(n, max(rtol, 1e-9))])
-    failed = ~np.isfinite(Y).all(axis=1)
-    reason = np.where(failed, 1, 0).astype(np.int8)
-    h = np.full(M, np.nan)
-    nfev = 0
-    total = transient + window
-    n_samples = max(int(np.ceil(total / sample_dt)), 1)
-    dt = total / n_samples
-    n_skip = int(round(transient / dt))
-    log_growth = np.zeros(M)
-    low = np.full((M, n), np.inf)
-    high = np.full((M, n), -np.inf)
-    acc = np.zeros((M, n))
+    def unit_on_face(x):
+        """Start vector (1, 2, …, n)/‖·‖ restricted to the present face (all ones if none)."""
+        w = np.tile(np.arange(1.0, n + 1.0), (x.shape[0], 1))
+        if nonnegative:
+            w = np.where(x > 0, w, 0.0)
+            empty = ~(w > 0).any(axis=1)
+            w[empty] = 1.0
+        return w / np.sqrt(_sumsq(w))[:, None]
+
+    A, B, C, E = DormandPrince54.A, DormandPrince54.B, DormandPrince54.C, DormandPrince54.E
+    exponent = -1.0 / (DormandPrince54.error_estimator_order + 1)
+    atol_v = np.broadcast_to(np.asarray(atol, float), (n,))
+    t_split, t_end = t0 + transient, t0 + transient + window
+    hmax = float(sample_dt)
+
+    lyap_out = np.full(M, np.nan)
+    low_out = np.full((M, n), np.nan)
+    high_out = np.full((M, n), np.nan)
+    acc_out = np.full((M, n), np.nan)
+    y_out = np.full((M, n), np.nan)
+    reason = np.zeros(M, dtype=np.int8)
     sections: list[list[float]] = [[] for _ in range(M)]
-    f_prev = None
-    y_sec_prev = None
-    t = t0
-    for k in range(n_samples):
-        active = np.flatnonzero(~failed)
-        if not active.size:
-            break
-        h0 = h[active]
-        seg = integrate_segment(aug, t, t + dt, Y[active], rtol=rtol, atol=atol_aug,
-                                h0=None if np.isnan(h0).any() else h0, members=members[active],
-                                nonnegative=False)
-        nfev += seg.nfev
-        t += dt
-        Y[active] = seg.y
-        h[active] = seg.h
-        newly = seg.failed
-        failed[active[newly]] = True
-        reason[active[newly]] = seg.reason[newly]
-        Y[failed] = np.nan
-        if nonnegative:
-            Y[:, :n] = np.maximum(Y[:, :n], 0.0)
-            tan = Y[:, n:]
-            tan[Y[:, :n] <= 0] = 0.0
-        norm = np.sqrt((Y[:, n:] * Y[:, n:]).sum(axis=1))
-        dead = (norm == 0) & ~failed
-        if dead.any():  # nothing left to perturb: restart the vector on the present face, no growth
-            fresh = np.where(Y[dead, :n] > 0, 1.0, 0.0)
-            fresh[fresh.sum(axis=1) == 0] = 1.0
-            Y[dead, n:] = fresh
-            norm[dead] = np.sqrt((fresh * fresh).sum(axis=1))
-        Y[:, n:] /= norm[:, None]
-        if dead.any():
-            norm[dead] = 1.0
-        # section variable and its derivative at this sample, for maxima between samples
-        x = Y[:, :n]
-        f_now = np.full((M, n), np.nan)
-        ok = np.flatnonzero(~failed)
-        if ok.size:
-            f_now[ok] = fun(np.full(ok.size, t), x[ok], members[ok])
-            nfev += 1
-        y_sec = x[rows, section]
-        df = f_now[rows, section]
-        if k >= n_skip:
-            log_growth += np.log(norm)
-            np.minimum(low, x, out=low)
-            np.maximum(high, x, out=high)
-            acc += x
-            if f_prev is not None:
-                hit = np.flatnonzero((f_prev > 0) & (df <= 0))
+    nfev = 0
+
+    start = np.array(y_all)
+    if nonnegative:
+        start = np.maximum(start, 0.0)
+    bad = ~np.isfinite(start).all(axis=1)
+    reason[bad] = 1
+    idx = np.flatnonzero(~bad)
+    y = start[idx]
+    mem = members[idx]
+    sec = section_all[idx]
+    t = np.full(idx.size, float(t0))
+    v = unit_on_face(y)
+    if idx.size:
+        f, g = fj(t, y, v, mem)
+        nfev += 1
+        ok = np.isfinite(f).all(axis=1) & np.isfinite(g).all(axis=1)
+        if not ok.all():
+            reason[idx[~ok]] = 1
+            idx, y, mem, sec, t, v, f, g = _take_rows(ok, idx, y, mem, sec, t, v, f, g)
+    if idx.size:
+        stop0 = t_split if transient > 0 else t_end
+        h, k = _select_initial_step(lambda tt, x, mm: fj(tt, x, np.zeros_like(x), mm)[0], float(t0), y, f,
+                                    mem.copy(), stop0, 1.0, DormandPrince54.error_estimator_order, rtol, atol_v)
+        nfev += k
+        h = np.minimum(h, hmax)
+    else:
+        h = np.empty(0)
+    m0 = idx.size
+    lg = np.zeros(m0)
+    low = np.full((m0, n), np.inf)
+    high = np.full((m0, n), -np.inf)
+    acc = np.zeros((m0, n))
+    rejected = np.zeros(m0, bool)
+    last_nonfinite = np.zeros(m0, bool)
+    nacc = np.zeros(m0, np.int64)
+
+    def retire(leave, done):
+        rows, yl, ok, lgl, lo, hi, ac = _take_rows(leave, idx, y, done, lg, low, high, acc)
+        y_out[rows] = np.where(ok[:, None], yl, np.nan)
+        lyap_out[rows] = np.where(ok, lgl / window, np.nan)
+        low_out[rows] = np.where(ok[:, None], lo, np.nan)
+        high_out[rows] = np.where(ok[:, None], hi, np.nan)
+        acc_out[rows] = np.where(ok[:, None], ac, np.nan)
+
+    one_section = int(section_all[0]) if M and (section_all == section_all[0]).all() else None
+    # overflow and 0/0 in a failing member are caught by the finiteness checks below
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        while idx.size:
+            m = idx.size
+            min_step = 10 * np.abs(np.nextafter(t, np.inf) - t)
+            h = np.where(rejected, h, np.maximum(h, min_step))
+            under = h < min_step
+            if under.any():
+                reason[idx[under]] = np.where(last_nonfinite[under], 1, 3).astype(np.int8)
+                retire(under, np.zeros(m, bool))
+                keep = ~under
+                (idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected, last_nonfinite,
+                 nacc) = _take_rows(keep, idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected,
+                                    last_nonfinite, nacc)
+                if not idx.size:
+                    break
+                m = idx.size
+            stop = np.where(t < t_split, t_split, t_end)
+            t_new = t + h
+            clipped = t_new >= stop
+            t_new[clipped] = stop[clipped]
+            hs = t_new - t
+            hcol = np.repeat(hs, n).reshape(-1, n)
+            tmp = np.empty_like(y)
+            K, L = [f], [g]
+            for st in range(1, DormandPrince54.n_stages):
+                dy = _combine(K, A[st, :st], tmp)
+                dy *= hcol
+                dy += y
+                dv = _combine(L, A[st, :st], tmp)
+                dv *= hcol
+                dv += v
+                k1, l1 = fj(t + C[st] * hs, dy, dv, mem)
+                K.append(k1)
+                L.append(l1)
+            y_new = _combine(K, B, tmp)
+            y_new *= hcol
+            y_new += y
+            v_new = _combine(L, B, tmp)
+            v_new *= hcol
+            v_new += v
+            f_new, g_new = fj(t_new, y_new, v_new, mem)
+            K.append(f_new)
+            nfev += DormandPrince54.n_stages
+            err = _combine(K, E, tmp)
+            err *= hcol
+            scale = np.maximum(np.abs(y), np.abs(y_new))
+            scale *= rtol
+            scale += atol_v
+            err /= scale
+            err_norm = _rms_rows(err)
+            finite = np.isfinite(err_norm)
+            accept = err_norm < 1
+            all_accepted = accept.all()
+            factor = SAFETY * err_norm ** exponent
+            if all_accepted and not rejected.any():
+                grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
+            else:
+                grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
+                grow = np.where(rejected, np.minimum(1.0, grow), grow)
+                grow = np.where(accept, grow, np.where(finite, np.maximum(MIN_FACTOR, factor), MIN_FACTOR))
+            h = np.minimum(hs * grow, hmax)
+            rejected = ~accept
+            last_nonfinite = ~finite
+            fail = np.zeros(m, bool)
+            if not accept.any():
+                continue
+            if nonnegative and not y_new.min() > 0:
+                # the model was evaluated at max(y, 0) already, so projecting keeps f and J v valid
+                np.maximum(y_new, 0.0, out=y_new)
+                v_new[y_new <= 0] = 0.0
+            if not all_accepted:
+                rej = np.flatnonzero(~accept)
+                y_new[rej], v_new[rej], f_new[rej], g_new[rej], t_new[rej] = y[rej], v[rej], f[rej], g[rej], t[rej]
+            norm = np.sqrt(_sumsq(v_new))
+            if not all_accepted:
+                norm[~accept] = 1.0
+            if norm.min() == 0:
+                # nothing left to perturb: restart the vector on the present face, no growth counted
+                dead = accept & (norm == 0)
+                v_new[dead] = unit_on_face(y_new[dead])
+                _, g_new[dead] = fj(t_new[dead], y_new[dead], v_new[dead], mem[dead].copy())
+                nfev += 1
+                norm[dead] = 1.0
+            v_new /= norm[:, None]
+            g_new /= norm[:, None]
+            in_window = t >= t_split
+            win = accept & in_window
+            every = all_accepted and in_window.all()
+            if every or win.any():
+                # time integral by the trapezoid rule over the step, for the time-mean
+                area = y + y_new
+                area *= hcol
+                if every:  # the usual case: plain in-place updates
+                    lg += np.log(norm)
+                    np.minimum(low, y_new, out=low)
+                    np.maximum(high, y_new, out=high)
+                    acc += area
+                else:
+                    lg += np.where(win, np.log(norm), 0.0)
+                    w = win[:, None]
+                    low = np.where(w, np.minimum(low, y_new), low)
+                    high = np.where(w, np.maximum(high, y_new), high)
+                    acc += np.where(w, area, 0.0)
+                if one_section is not None:
+                    d0, d1 = f[:, one_section], f_new[:, one_section]
+                else:
+                    rr = np.arange(m)
+                    d0, d1 = f[rr, sec], f_new[rr, sec]
+                hit = np.flatnonzero(win & (d0 > 0) & (d1 <= 0))
                 if hit.size:
-                    peaks = _hermite_max(y_sec_prev[hit], y_sec[hit], f_prev[hit], df[hit], dt)
-                    for j, val in zip(hit, peaks):
+                    peaks = _hermite_max(y[hit, sec[hit]], y_new[hit, sec[hit]], d0[hit], d1[hit], hs[hit])
+                    for j, val in zip(idx[hit], peaks):
                         sections[j].append(float(val))
-        f_prev, y_sec_prev = df, y_sec
-    used = max(n_samples - n_skip, 1)
-    lyap = np.where(failed, np.nan, log_growth / (used * dt))
-    mean = acc / used
-    low[failed], high[failed], mean[failed] = np.nan, np.nan, np.nan
-    return Diagnosis(lyap, [np.array(s) for s in sections], low, high, mean, Y[:, :n].copy(),
+            y, v, f, g, t = y_new, v_new, f_new, g_new, t_new
+            nacc += accept
+            if not (np.isfinite(norm).all() and np.isfinite(y).all() and np.isfinite(g).all()):
+                bad_now = accept & ~(np.isfinite(y).all(axis=1) & np.isfinite(norm) & np.isfinite(g).all(axis=1))
+                reason[idx[bad_now]] = 1
+                fail |= bad_now
+            if max(y.max(), -y.min()) > blowup:
+                blown = accept & ~fail & (np.abs(y) > blowup).any(axis=1)
+                reason[idx[blown]] = 2
+                fail |= blown
+            done = accept & clipped & (t_new >= t_end) & ~fail if clipped.any() else clipped
+            if nacc.max() >= max_steps:
+                too_many = ~done & ~fail & (nacc >= max_steps)
+                reason[idx[too_many]] = 4
+                fail |= too_many
+            leave = done | fail
+            if leave.any():
+                retire(leave, done)
+                keep = ~leave
+                (idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected, last_nonfinite,
+                 nacc) = _take_rows(keep, idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected,
+                                    last_nonfinite, nacc)
+
+    failed = reason != 0
+    mean = acc_out / (2.0 * window)
+    return Diagnosis(lyap_out, [np.array(s) for s in sections], low_out, high_out, mean, y_out,
                      failed, reason, nfev)
+
+
+def _sumsq(x):
+    """Per-row sum of squares, column by column so the order never depends on the batch."""
+    acc = x[:, 0] * x[:, 0]
+    for j in range(1, x.shape[1]):
+        acc = acc + x[:, j] * x[:, j]
+    return acc
 
 
 def relative_amplitude(d: Diagnosis, floor: np.ndarray | float = 0.0) -> np.ndarray:
@@ -411,6 +579,19 @@ def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> Dy
     return DynamicsSettings(**base)
 
 
+def section_species(case: Case, name: str | None, field: str = "--section") -> tuple[int, str]:
+    """Column and name of the species whose successive maxima form the Poincaré section.
+
+    ``None`` keeps the default, the last declared species. An unknown name is a user error.
+    """
+    names = case.species_names
+    if name is None:
+        return len(names) - 1, names[-1]
+    if name not in names:
+        raise CaseError("command line", field, f"unknown species {name!r} for the section; allowed: {', '.join(names)}")
+    return names.index(name), name
+
+
 def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: DynamicsSettings,
                  extinct_level: np.ndarray, members=None, section=None):
     """Regime, period, λ and horizon of each member from state ``y0`` under fixed controls.
@@ -422,8 +603,8 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
         A species whose maximum over the window stays below this level is extinct; species
         that were already below it in ``y0`` are not counted (they were never there).
     section : int or ndarray (M,), optional
-        Section variable; default: per member, the species with the largest relative amplitude
-        over the first pass (the one whose maxima tell cycles apart best).
+        State column whose successive maxima form the Poincaré section; default: the last
+        species (see :func:`section_species` to resolve a name).
 
     Returns
     -------
@@ -433,12 +614,12 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
     M = y0.shape[0]
     S = web.n_species
     members = np.arange(M) if members is None else np.asarray(members)
-    fun, jac = web_functions(web, p, c)
+    fun, _ = web_functions(web, p, c)
     start = np.where(np.isfinite(y0), np.maximum(y0, 0.0), np.nan)
     if section is None:
         section = S - 1 if S else 0
-    d = lyapunov_flow(fun, jac, start, transient=s.transient, window=s.window, sample_dt=s.sample_dt,
-                      section=section, rtol=s.rtol, atol=s.atol, members=members)
+    d = lyapunov_flow(fun, None, start, transient=s.transient, window=s.window, sample_dt=s.sample_dt,
+                      section=section, rtol=s.rtol, atol=s.atol, members=members, jvp=WebTangent(web, p, c))
     level = np.asarray(extinct_level, float)
     with np.errstate(invalid="ignore"):
         watched = start[:, :S] >= level
@@ -568,8 +749,11 @@ def _scan_rows(parameter, v, out, i, keep_sections):
 
 
 def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, option: str | None = None,
-             section: int | None = None, continuation: bool = True, progress=None):
+             section: str | None = None, continuation: bool = True, progress=None):
     """Bifurcation scan of one quantity with every other parameter at its prior median.
+
+    ``section`` names the species whose maxima form the Poincaré section (default: the last
+    declared species); an unknown name raises :class:`CaseError` for ``--section``.
 
     With ``continuation`` each value starts where the previous one ended (so a branch is
     followed and hysteresis shows); without it all values run side by side as one ensemble
@@ -585,6 +769,7 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
     if option is not None and option not in [o.name for o in case.options]:
         raise CaseError("command line", "--option", f"unknown option {option!r}; declared: {', '.join(o.name for o in case.options) or 'none'}")
     grid = np.asarray(grid, float)
+    section, _ = section_species(case, section)
     at = scan_target(case, parameter, option)
     web = build_web(case)
     level = np.array([sp.quasi_extinction for sp in case.species], float)
@@ -672,24 +857,27 @@ class DiagnoseTask:
     y0: np.ndarray
     settings: DynamicsSettings
     level: np.ndarray
+    section: int
 
 
 def diagnose_task(task: DiagnoseTask) -> dict:
     """:func:`diagnose_web` on one task (a worker's function)."""
-    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level)
+    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
+                       section=task.section)
     out.pop("diagnosis")  # the tables need only the per-member verdicts
     return out
 
 
 def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
-                 progress=None, executor=None):
+                 progress=None, section: str | None = None, executor=None):
     """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
 
     ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
 
     A capped subset of members (the first ``member_cap`` by index) is continued from each
     option's state at the horizon with the controls in force just before it, deterministically
-    (noise and events off).
+    (noise and events off). ``section`` names the species whose maxima form the Poincaré
+    section (default: the last declared species).
 
     Returns
     -------
@@ -701,6 +889,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     from .execute import InProcess, count
     from .simulate import _controls
 
+    sec_col, sec_name = section_species(case, section)
     web = build_web(case)
     S = web.n_species
     base = runs["baseline"]
@@ -727,7 +916,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     counts = {}
     vals = {k: np.asarray(v)[sel] for k, v in values.items()}
     tasks = [DiagnoseTask(case, sub, _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
-                          runs[name].final[sel], s, level) for opt, name in opts.items()]
+                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
     results = {}
     count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
     for i, out in (executor or InProcess()).map(diagnose_task, tasks):
@@ -762,7 +951,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
               "risk_by_regime": pd.DataFrame(risk_rows, columns=["option", "regime", "species", "metric", "value"])}
     record = settings_record(s, members_diagnosed=int(sel.size), member_selection="first members by index, at most member_cap",
                              start="each option's state at the horizon", controls="press controls in force just before the horizon",
-                             noise="off (deterministic)", events="none after the horizon", section="maxima of the last species",
+                             noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
                              counts=counts, extinct="extinct is true when a species present at the start stays below its "
                                                     "quasi-extinction level over the whole window; extinct_species names them")
     return tables, record

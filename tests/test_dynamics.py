@@ -12,9 +12,10 @@ import pytest
 from casefiles import write_case
 from impact.case import load_case
 from impact.cli import main
-from impact.dynamics import (DynamicsSettings, classify, detect_period, diagnose_web, logistic_map_scan,
-                             lyapunov_flow, nominal_values, predictability_horizon, refine_transitions,
-                             scan_web, transitions)
+from impact.dynamics import (DynamicsSettings, _hermite_max, classify, detect_period, diagnose_web,
+                             logistic_map_scan, lyapunov_flow, nominal_values, predictability_horizon,
+                             refine_transitions, scan_web, transitions)
+from impact.jacobian import WebTangent
 from impact.model import Controls, build_web, web_params
 
 
@@ -43,6 +44,35 @@ def test_lorenz_largest_lyapunov_exponent():
     s = DynamicsSettings(transient=20, window=200, sample_dt=0.1, lambda_tol=0.05)
     regime, _ = classify(d.lyapunov, d.sections, np.ones(4), np.zeros(4, bool), s)
     assert list(regime) == ["chaotic"] * 4
+
+
+@pytest.mark.parametrize("dt", [2.0, 0.5])
+def test_hermite_maximum_is_exact_on_a_cubic(dt):
+    # Cubic Hermite interpolation reproduces any cubic exactly (e.g. Burden & Faires, Numerical
+    # Analysis, Sec. 3.4), so the located maximum is that of the cubic itself:
+    # y(s) = 3s − s³ on s = t/dt ∈ [0, 1.5] peaks at s = 1 with y = 2.
+    T = 1.5 * dt
+    y = lambda t: 3 * (t / dt) - (t / dt) ** 3
+    dy = lambda t: (3 - 3 * (t / dt) ** 2) / dt
+    peak = _hermite_max(np.array([y(0.0)]), np.array([y(T)]), np.array([dy(0.0)]), np.array([dy(T)]), np.array([T]))
+    assert peak[0] == pytest.approx(2.0, rel=1e-12)
+
+
+def test_lyapunov_does_not_depend_on_batch_composition(tmp_path):
+    # DEVELOPERS.md contract (common practice, no source): a member's numbers are the same alone or
+    # in a batch, to the last bit.
+    case = load_case(hp_case(tmp_path))
+    web = build_web(case)
+    vals = {k: np.full(3, v) for k, v in nominal_values(case).items()}
+    vals["h1"] = np.array([2.2, 3.0, 2.6]) / 5.0
+    p = web_params(case, vals, 3)
+    c = Controls.neutral(3, 3)
+    kw = dict(transient=50.0, window=150.0, sample_dt=2.0, section=2, jvp=WebTangent(web, p, c))
+    all3 = lyapunov_flow(None, None, p.initial, **kw)
+    one = lyapunov_flow(None, None, p.initial[1:2], members=np.array([1]), **kw)
+    assert one.lyapunov[0] == all3.lyapunov[1]
+    np.testing.assert_array_equal(one.sections[0], all3.sections[1])
+    np.testing.assert_array_equal(one.mean[0], all3.mean[1])
 
 
 MAP = DynamicsSettings(transient=0, window=0, sample_dt=1, period_tol=1e-6, max_period=64, lambda_tol=1e-3)
@@ -110,16 +140,29 @@ def hp_case(tmp_path):
 
 HP = DynamicsSettings(transient=3000.0, window=4000.0, sample_dt=2.0, lambda_tol=0.0025)
 
+# Hastings & Powell (1991), Fig. 3 (bifurcation diagram of the z maxima against b1; figure as recalled
+# from memory): a simple limit cycle at low b1, period doubling as b1 grows, chaos at b1 = 3, and
+# periodic windows inside the chaotic range. Which b1 fall where was measured on this model with a
+# parallel scan from the initial state above (transient 10000, window 8000, grid step 0.005 on
+# 2.27–2.41, 0.02 on 2.1–2.8): period 1 up to b1 ≈ 2.29, period 2 on 2.295–2.375, period 4 on
+# 2.38–2.39, period 8 at 2.395, chaos from 2.41; a period-6 window at b1 = 3.1 was found from every
+# one of three random starts. Grid points are taken well inside each band except period 4, whose
+# band is only ~0.015 wide. Not checked: a return to order near b1 ≈ 6 (remembered from the figure
+# but not reproduced: every point of a 0.025 grid on 4.6–6.4, and 0.05 grid from four random
+# starts on 4.9–6.3, was chaotic but one marginal period-14 point).
+HP_ROUTE = [(2.2, "cycle", 1), (2.33, "cycle", 2), (2.385, "cycle", 4), (3.0, "chaotic", 0), (3.1, "cycle", 6)]
+
 
 @pytest.fixture(scope="module")
 def hp_scan(tmp_path_factory):
     case = load_case(hp_case(tmp_path_factory.mktemp("hp")))
-    b1 = np.array([2.2, 2.4, 3.0])
+    b1 = np.array([b for b, _, _ in HP_ROUTE])
     scan, points, trans = scan_web(case, "h1", b1 / 5.0, HP, continuation=False)
     points["b1"] = b1
     return points, trans
 
 
+@pytest.mark.slow
 def test_hastings_powell_chaotic_at_published_parameters(hp_scan):
     # HP 1991: b1 = 3 gives the chaotic "teacup" attractor; here λ > 0 and no period on the z-maxima section.
     points, _ = hp_scan
@@ -128,13 +171,25 @@ def test_hastings_powell_chaotic_at_published_parameters(hp_scan):
     assert row.lyapunov > HP.lambda_tol
 
 
-def test_hastings_powell_route_to_chaos(hp_scan):
-    # HP 1991 bifurcation diagram of z maxima against b1 (figure as recalled from memory): a simple
-    # limit cycle near b1 ≈ 2.2, period doubling as b1 grows, chaos by b1 = 3.
-    points, trans = hp_scan
-    assert (points.iloc[0].regime, points.iloc[0].period) == ("cycle", 1)
-    assert points.iloc[1].period > 1
-    assert "onset-of-chaos" in set(trans.kind)
+@pytest.mark.slow
+@pytest.mark.parametrize("b1,regime,period", HP_ROUTE)
+def test_hastings_powell_route_to_chaos(hp_scan, b1, regime, period):
+    # Regime and period at each b1 (see HP_ROUTE above); a cycle has |λ| ≤ lambda_tol (a zero
+    # exponent along the flow), chaos λ > lambda_tol.
+    points, _ = hp_scan
+    row = points[points.b1 == b1].iloc[0]
+    assert (row.regime, row.period) == (regime, period)
+    if regime == "cycle":
+        assert abs(row.lyapunov) <= HP.lambda_tol
+    else:
+        assert row.lyapunov > HP.lambda_tol
+
+
+@pytest.mark.slow
+def test_hastings_powell_transitions_in_order(hp_scan):
+    # 1 → 2 → 4 by period doubling, then chaos, then order again (the period-6 window).
+    _, trans = hp_scan
+    assert list(trans.kind) == ["period-doubling", "period-doubling", "onset-of-chaos", "return-to-order"]
 
 
 def rm_case(tmp_path, factor):
@@ -204,3 +259,42 @@ def test_assess_writes_dynamics_for_every_option(tmp_path):
     # 1.5× the Hopf threshold without harvest: cycles (Rosenzweig 1971)
     assert set(reg[reg.option == "baseline"].regime) == {"cycle"}
     assert "dynamics" in json.loads((out / "manifest.json").read_text())["stages"]
+
+
+def test_scan_cli_unknown_section_species_exits_2(tmp_path, capsys):
+    # CLI contract (DEVELOPERS.md): bad input names the field and what is allowed, exit 2, no output.
+    path = rm_case(tmp_path, 1.0)
+    rc = main(["scan", str(path), "--parameter", "K", "--from", "1", "--to", "2", "--steps", "2",
+               "--section", "wolf", "--out", str(tmp_path / "o"), "--quiet"])
+    assert rc == 2
+    err = capsys.readouterr().err
+    assert "--section" in err and "allowed: prey, pred" in err
+    assert not (tmp_path / "o").exists()
+
+
+@pytest.fixture(scope="module")
+def rm_sections(tmp_path_factory):
+    # 1.5× the Hopf threshold of Rosenzweig (1971): a limit cycle, so both species have maxima.
+    tmp = tmp_path_factory.mktemp("rmsec")
+    path = rm_case(tmp, 1.5)
+    out = {}
+    for name, extra in (("default", []), ("prey", ["--section", "prey"])):
+        d = tmp / name
+        rc = main(["scan", str(path), "--parameter", "K", "--from", "440", "--to", "460", "--steps", "2", *extra,
+                   "--transient", "60", "--window", "40", "--sample-dt", "0.25", "--parallel", "--out", str(d), "--quiet"])
+        assert rc == 0
+        out[name] = (pd.read_csv(d / "dynamics" / "scan.csv"), json.loads((d / "dynamics" / "dynamics.json").read_text()))
+    return out
+
+
+@pytest.mark.parametrize("name,species", [("default", "pred"), ("prey", "prey")])
+def test_scan_records_the_section_species(rm_sections, name, species):
+    assert rm_sections[name][1]["section"] == f"maxima of {species}"
+
+
+def test_scan_section_species_changes_section_values(rm_sections):
+    # On a limit cycle the prey maxima lie far above the predator maxima for these parameters
+    # (prey equilibrium N* = 100 against predator numbers of order 1–10; Rosenzweig 1971 model).
+    pred, prey = rm_sections["default"][0], rm_sections["prey"][0]
+    assert pred.section_value.notna().all() and prey.section_value.notna().all()
+    assert prey.section_value.min() > 10 * pred.section_value.max()

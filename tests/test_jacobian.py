@@ -12,7 +12,7 @@ import pytest
 
 from casefiles import web_case, write_case
 from impact.case import load_case
-from impact.jacobian import jacobian, tangent
+from impact.jacobian import WebTangent, jacobian, tangent
 from impact.model import Controls, build_web, rhs, web_params
 from impact.sample import parameter_values
 
@@ -87,3 +87,29 @@ def test_tangent_is_the_matrix_vector_product():
     J, v = rng.normal(size=(6, 4, 4)), rng.normal(size=(6, 4))
     ref = np.stack([J[k] @ v[k] for k in range(6)])
     np.testing.assert_allclose(tangent(J, v), ref, rtol=1e-13, atol=1e-13)
+
+
+@pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
+@pytest.mark.parametrize("controlled", [False, True])
+def test_directional_derivative_matches_central_differences(tmp_path, response, controlled):
+    """J·v without forming J equals (f(y + εv) − f(y − εv))/(2ε) to O(ε²) (Press et al. 2007, Sec. 5.7)."""
+    case, web = _web_with(tmp_path, response)
+    M = 5
+    rng = np.random.default_rng(4)
+    values = parameter_values(case, rng.random((M, len(case.uncertain))))
+    p = web_params(case, values, M)
+    S = web.n_species
+    c = Controls.neutral(M, S)
+    if controlled:
+        c = Controls(phi=rng.uniform(0.7, 1.3, (M, S)), fertility=rng.uniform(0, 0.5, (M, S)),
+                     habitat=rng.uniform(0.5, 1.5, (M, S)), harvest=rng.uniform(0, 0.3, (M, S)),
+                     carcass=(rng.random((M, S)) < 0.5).astype(float))
+    y = rng.uniform(0.5, 2.0, (M, web.n_state)) * np.concatenate([p.initial[:, :S], np.full((M, 1), 20.0)], axis=1)
+    v = rng.normal(size=y.shape) * y  # perturbations on the scale of each state
+    idx = np.arange(M)
+    f, jv = WebTangent(web, p, c)(None, y, v, idx)
+    np.testing.assert_allclose(f, rhs(web, p, c, y, idx), rtol=1e-13, atol=1e-12)
+    eps = 1e-6
+    fd = (rhs(web, p, c, y + eps * v, idx) - rhs(web, p, c, y - eps * v, idx)) / (2 * eps)
+    scale = np.abs(fd).max(axis=1, keepdims=True) + 1e-12
+    assert np.all(np.abs(jv - fd) / scale < 1e-6)
