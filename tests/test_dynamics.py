@@ -298,3 +298,25 @@ def test_scan_section_species_changes_section_values(rm_sections):
     pred, prey = rm_sections["default"][0], rm_sections["prey"][0]
     assert pred.section_value.notna().all() and prey.section_value.notna().all()
     assert prey.section_value.min() > 10 * pred.section_value.max()
+
+
+@pytest.mark.parametrize("factor", [0.5, 0.9])
+def test_lyapunov_at_a_stable_equilibrium_is_the_leading_eigenvalue(tmp_path, factor):
+    # At a stable fixed point the largest Lyapunov exponent is the largest real part of the
+    # Jacobian's eigenvalues there (linearisation; e.g. Ott 2002, "Chaos in Dynamical Systems",
+    # ch. 4, from memory). Jacobian of Rosenzweig–MacArthur at (N*, P*) in closed form:
+    # J11 = r(1 − 2N*/K) − aP*/(1 + ahN*)², J12 = −aN*/(1 + ahN*), J21 = eaP*/(1 + ahN*)², J22 = 0.
+    case = load_case(rm_case(tmp_path, factor))
+    r, a, h, e, m = 3.0, 1.0, 0.01, 0.01, 0.5
+    N = m / (a * (e - m * h))
+    K = factor * (2 * N + 1 / (a * h))
+    P = r * (1 - N / K) * (1 + a * h * N) / a
+    J = np.array([[r * (1 - 2 * N / K) - a * P / (1 + a * h * N) ** 2, -a * N / (1 + a * h * N)],
+                  [e * a * P / (1 + a * h * N) ** 2, 0.0]])
+    leading = float(np.linalg.eigvals(J).real.max())
+    web = build_web(case)
+    p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
+    s = DynamicsSettings(transient=200.0, window=200.0, sample_dt=0.25, lambda_tol=0.03)
+    out = diagnose_web(web, p, Controls.neutral(1, 2), p.initial, s, np.array([1e-3, 1e-4]))
+    # a finite window of length W biases the estimate by O(1/W) (here 1/200 = 0.005): allow two of that
+    assert abs(out["lyapunov"][0] - leading) <= 2.0 / s.window
