@@ -276,3 +276,10 @@ def test_stage_sections_are_drawn_when_present(staged_text, needle):
 @pytest.mark.parametrize("absent", ["Sensitivityanalysis:notrun", "Dynamicsdiagnostics:notrun"])
 def test_present_stages_are_not_called_not_run(staged_text, absent):
     assert absent not in staged_text
+
+
+def test_appendix_says_where_the_numbers_were_computed(results, text):
+    import json
+
+    x = json.loads((results / "manifest.json").read_text())["execution"]
+    assert _squash(f"Computed by{x['executor']} ({x['workers']} worker") in text
