@@ -61,9 +61,15 @@ def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
     return values, p, today, verdict
 
 
-# Draws are screened in fixed blocks of draw indices, so the blocks (and their checkpoints) are
-# the same whatever executor or worker count computes them.
-DRAW_BLOCK = 512
+# Draws are screened in blocks of consecutive draw indices; like the run chunks, blocks are as
+# large as an even share of the workers allows (every step has a fixed cost), within bounds.
+MIN_BLOCK = 256
+MAX_BLOCK = 4096
+
+
+def draw_block_size(members: int, workers: int) -> int:
+    """Draw indices per screening block: the expected need (10 % spare) shared among the workers."""
+    return int(np.clip(np.ceil(1.1 * members / max(workers, 1)), MIN_BLOCK, MAX_BLOCK))
 # Members per chunk of the option runs: a chunk is one worker's unit of work and one checkpoint.
 # Each integrator step has a fixed cost whatever the number of members, so chunks are as large as
 # an even share of the workers allows, within these bounds (common practice, no source).
@@ -71,9 +77,10 @@ MIN_CHUNK = 100
 MAX_CHUNK = 2000
 
 
-def run_chunk_size(members: int, workers: int) -> int:
-    """Members per option-run chunk for an ensemble of ``members`` on ``workers`` workers."""
-    return int(np.clip(np.ceil(members / max(workers, 1)), MIN_CHUNK, MAX_CHUNK))
+def run_chunk_size(members: int, workers: int, runs: int = 1) -> int:
+    """Members per chunk for ``members`` on ``workers`` workers, each chunk giving ``runs`` tasks (one per option)."""
+    chunks = int(np.ceil(max(workers, 1) / max(runs, 1)))
+    return int(np.clip(np.ceil(members / chunks), MIN_CHUNK, MAX_CHUNK))
 
 
 @dataclass(frozen=True)
@@ -110,7 +117,7 @@ def _ensemble(case: Case, draws, unit, today, counts) -> Ensemble:
 
 
 def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = None,
-                  progress: Progress | None = None, executor=None, store=None) -> Ensemble:
+                  progress: Progress | None = None, executor=None, store=None, block: int | None = None) -> Ensemble:
     """The first ``members`` plausible draws in index order (at most ``max_draws`` tried).
 
     ``tried`` and the rejection counts cover the draws up to the last one kept, so they do not
@@ -122,10 +129,13 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
         Where blocks are computed (default: in this process).
     store : impact.results.Checkpoints, optional
         Finished blocks are saved there and reused on a resumed run.
+    block : int, optional
+        Draw indices per block (default :func:`draw_block_size`); results do not depend on it.
     """
     from .execute import InProcess, count
 
     executor = executor or InProcess()
+    B = block or draw_block_size(members, executor.workers)
     max_draws = max_draws or max(case.max_draws, members)
     blocks: dict[int, dict] = {}
     n_kept = 0
@@ -134,16 +144,16 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
     while n_kept < members and next_start < max_draws:
         # enough blocks for the expected acceptance rate, at least one per worker
         need = members - n_kept
-        n_blocks = max(executor.workers, int(np.ceil(1.2 * need / max(rate, 0.02) / DRAW_BLOCK)))
-        starts = [s for s in range(next_start, max_draws, DRAW_BLOCK)][:n_blocks]
-        next_start = starts[-1] + DRAW_BLOCK
+        n_blocks = max(executor.workers, int(np.ceil(1.1 * need / max(rate, 0.02) / B)))
+        starts = [s for s in range(next_start, max_draws, B)][:n_blocks]
+        next_start = starts[-1] + B
         tasks, todo = [], []
         for s in starts:
             saved = store.get(f"draws-{s}") if store else None
             if saved is not None:
                 blocks[s] = saved
             else:
-                tasks.append(ScreenTask(case, seed, s, min(s + DRAW_BLOCK, max_draws)))
+                tasks.append(ScreenTask(case, seed, s, min(s + B, max_draws)))
                 todo.append(s)
         for i, res in executor.map(screen_block, tasks):
             blocks[todo[i]] = res
@@ -176,8 +186,9 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
     return _ensemble(case, draws, unit, today, counts)
 
 
-def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None) -> dict[str, Run]:
-    """Baseline and every option on the same draws, noise and chance events (paired)."""
+def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None,
+                only: tuple[str, ...] | None = None) -> dict[str, Run]:
+    """Baseline and every option (or those named in ``only``) on the same draws, noise and chance events (paired)."""
     web = build_web(case)
     with_noise = bool((ens.params.noise_sd > 0).any())
     n_units = int(np.ceil(case.horizon)) + 1
@@ -187,6 +198,8 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
     options: list[Option | None] = [None, *case.options]
     for opt in options:
         name = "baseline" if opt is None else opt.name
+        if only is not None and name not in only:
+            continue
         if progress:
             progress(f"simulating {name} on {len(ens.draws)} members")
         runs[name] = run_option(case, web, ens.params, ens.values, ens.today, opt, noise, event_u)
@@ -283,34 +296,43 @@ def concat_summaries(parts: list[dict[str, Summary]]) -> dict[str, Summary]:
 
 @dataclass(frozen=True)
 class RunTask:
-    """A chunk of kept members to run under the baseline and every option."""
+    """A chunk of kept members to run under one option (``"baseline"`` or an option's name)."""
 
     case: Case
     seed: int
     draws: np.ndarray
     unit: np.ndarray
     today: np.ndarray
+    option: str
 
 
-def run_chunk(task: RunTask) -> dict[str, Summary]:
-    """Run one chunk of members paired under every option and summarise it (a worker's function)."""
+def run_chunk(task: RunTask) -> Run:
+    """Run one chunk of members under one option (a worker's function).
+
+    Noise and chance events come from each member's own streams, so the option's run pairs
+    with the baseline's wherever each was computed.
+    """
     ens = _ensemble(task.case, task.draws, task.unit, task.today, {})
-    return summarise(task.case, run_options(task.case, ens, task.seed))
+    return run_options(task.case, ens, task.seed, only=(task.option,))[task.option]
 
 
 def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None, executor=None,
                    store=None, chunk: int | None = None) -> dict[str, Summary]:
     """Baseline and every option on the kept members, chunk by chunk, as summaries.
 
-    Chunks are cut from the member order alone; a member's results do not depend on the chunk
-    it falls in (the integrator steps each member on its own), so any chunking, executor or
-    resumed run gives the same numbers.
+    Each (chunk, option) pair is one task: every integrator step has a fixed cost whatever
+    the number of members, so running options side by side keeps the workers busy with few,
+    large chunks. Chunks are cut from the member order alone, and a member's results do not
+    depend on the chunk it falls in (the integrator steps each member on its own), so any
+    chunking, executor or resumed run gives the same numbers. A chunk is summarised, and
+    saved, once all its options are in; its full trajectories are then dropped.
     """
     from .execute import InProcess, count
 
     executor = executor or InProcess()
+    names = ["baseline", *[o.name for o in case.options]]
     M = len(ens.draws)
-    chunk = chunk or run_chunk_size(M, executor.workers)
+    chunk = chunk or run_chunk_size(M, executor.workers, len(names))
     starts = list(range(0, M, chunk))
     parts: dict[int, dict[str, Summary]] = {}
     tasks, todo = [], []
@@ -320,17 +342,24 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
             parts[k] = saved
             continue
         b = min(a + chunk, M)
-        tasks.append(RunTask(case, seed, ens.draws[a:b], ens.unit[a:b], ens.today[a:b]))
-        todo.append(k)
-    done = sum(p["baseline"].members for p in parts.values())
-    count(progress, f"simulating baseline + {len(case.options)} options", done, M, "members")
-    for i, res in executor.map(run_chunk, tasks):
-        k = todo[i]
-        parts[k] = res
-        if store:
-            store.put_summaries(f"runs-{starts[k]}", res)
-        done += res["baseline"].members
-        count(progress, f"simulating baseline + {len(case.options)} options", done, M, "members")
+        for name in names:
+            tasks.append(RunTask(case, seed, ens.draws[a:b], ens.unit[a:b], ens.today[a:b], name))
+            todo.append((k, name))
+    label = f"simulating baseline + {len(case.options)} options"
+    total = M * len(names)
+    done = sum(p["baseline"].members for p in parts.values()) * len(names)
+    count(progress, label, done, total, "member runs")
+    pending: dict[int, dict[str, Run]] = {}
+    for i, run in executor.map(run_chunk, tasks):
+        k, name = todo[i]
+        pending.setdefault(k, {})[name] = run
+        if len(pending[k]) == len(names):
+            got = pending.pop(k)
+            parts[k] = summarise(case, {n: got[n] for n in names})
+            if store:
+                store.put_summaries(f"runs-{starts[k]}", parts[k])
+        done += run.failed.shape[0]
+        count(progress, label, done, total, "member runs")
     return concat_summaries([parts[k] for k in range(len(starts))])
 
 

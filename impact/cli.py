@@ -178,7 +178,7 @@ def cmd_check(args) -> int:
 
 
 def cmd_assess(args) -> int:
-    from .assess import DRAW_BLOCK, run_chunk_size
+    from .assess import draw_block_size, run_chunk_size
     from .execute import make_executor
     from .results import Checkpoints
 
@@ -202,14 +202,16 @@ def cmd_assess(args) -> int:
     try:
         # a resumed run keeps the chunking of the run it continues (results never depend on it)
         earlier = Checkpoints.previous(Path(args.out)) if args.resume else None
-        chunk = (earlier or {}).get("run_chunk") or args.chunk_members or run_chunk_size(members, executor.workers)
+        chunk = ((earlier or {}).get("run_chunk") or args.chunk_members
+                 or run_chunk_size(members, executor.workers, runs=1 + len(case.options)))
+        block = (earlier or {}).get("draw_block") or draw_block_size(members, executor.workers)
         fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
-                       "max_draws": case.max_draws, "draw_block": DRAW_BLOCK, "run_chunk": chunk,
+                       "max_draws": case.max_draws, "draw_block": block, "run_chunk": chunk,
                        "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
         store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
         if args.resume and any(store.dir.glob("*.npz")):
             progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
-        text = _assess_into(case, args, members, seed, chunk, executor, store, progress, started, t0)
+        text = _assess_into(case, args, members, seed, block, chunk, executor, store, progress, started, t0)
     finally:
         executor.close()
     store.discard()
@@ -218,14 +220,14 @@ def cmd_assess(args) -> int:
     return 0
 
 
-def _assess_into(case: Case, args, members: int, seed: int, chunk: int, executor, store, progress, started,
-                 t0) -> str:
+def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: int, executor, store, progress,
+                 started, t0) -> str:
     from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
     from .model import equations
     from .results import staged_directory, write_csv, write_json
 
     with staged_directory(Path(args.out)) as tmp:
-        ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store)
+        ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
         runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
         progress("tabulating risk", force=True)
         risk = risk_table(case, runs)

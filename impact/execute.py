@@ -57,8 +57,8 @@ class InProcess:
 class LocalPool:
     """A pool of worker processes on this machine.
 
-    Workers start from a fork server that has already imported the numerical modules, so a
-    pool costs well under a second to start. When a worker dies (killed, out of memory) the
+    Workers are forked from this process where the platform allows it (they start at once,
+    with the modules already imported), else started fresh. When a worker dies (killed, out of memory) the
     pool is rebuilt and the tasks that had not finished are sent again, at most
     :data:`RETRIES` times each.
     """
@@ -69,8 +69,7 @@ class LocalPool:
         import multiprocessing as mp
 
         self.workers = int(workers)
-        self._ctx = mp.get_context("forkserver")
-        self._ctx.set_forkserver_preload(["numpy", "scipy.stats", "impact.assess", "impact.sensitivity"])
+        self._ctx = mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
         self._pool: ProcessPoolExecutor | None = None
 
     def _executor(self) -> ProcessPoolExecutor:
