@@ -118,7 +118,7 @@ def test_pool_reproduces_the_in_process_dynamics_tables(web):
 
     case, ens = web
     runs = assess_members(case, ens, case.seed)
-    s = DynamicsSettings(transient=20.0, window=40.0, sample_dt=0.5, member_cap=6, lambda_tol=0.25)
+    s = DynamicsSettings(transient=10.0, window=20.0, sample_dt=0.5, member_cap=4, lambda_tol=0.5)
     here, _ = assess_stage(case, ens.params, ens.values, runs, settings=s)
     pool = LocalPool(2)
     try:
