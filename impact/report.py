@@ -328,6 +328,17 @@ def _svg(fig) -> bytes:
     return buf.getvalue()
 
 
+# Data-heavy charts (many lines, bars or points) go in as PNG: as SVG each costs seconds to write
+# and seconds more for the PDF engine to draw, for no gain at print resolution.
+PNG_DPI = 200
+
+
+def _png(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=PNG_DPI, bbox_inches="tight", metadata={"Software": None})
+    return buf.getvalue()
+
+
 def _figure(w, h):
     from matplotlib.figure import Figure
 
@@ -414,7 +425,7 @@ def bands_figure(res: Results, option: str, colour: str) -> bytes:
     for ax in axes[-1]:
         ax.set_xlabel(_label(m["time_unit"]), fontsize=8)
     axes[0][0].legend(fontsize=7, loc="best")
-    return _svg(fig)
+    return _png(fig)
 
 
 def sensitivity_figure(group: pd.DataFrame, title: str) -> bytes:
@@ -431,7 +442,7 @@ def sensitivity_figure(group: pd.DataFrame, title: str) -> bytes:
     ax.tick_params(labelsize=7)
     ax.set_title(_label(title), fontsize=9)
     ax.legend(fontsize=7, loc="lower right")
-    return _svg(fig)
+    return _png(fig)
 
 
 def regime_figure(shares: pd.DataFrame) -> bytes:
@@ -470,7 +481,7 @@ def distribution_figure(regimes: pd.DataFrame, unit: str) -> bytes:
         ax.set_ylabel("members", fontsize=8)
         ax.tick_params(labelsize=7)
     axes[0].legend(fontsize=7)
-    return _svg(fig)
+    return _png(fig)
 
 
 def scan_figure(scan: pd.DataFrame, parameter: str) -> bytes:
@@ -485,7 +496,7 @@ def scan_figure(scan: pd.DataFrame, parameter: str) -> bytes:
     ax.set_ylabel("section value", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, markerscale=4)
-    return _svg(fig)
+    return _png(fig)
 
 
 # ----------------------------------------------------------------------------- document model
@@ -539,7 +550,7 @@ def _sensitivity_context(res: Results, assets: Assets) -> dict | None:
                 break
             cond = g.conditional_on.iloc[0] if "conditional_on" in g and str(g.conditional_on.iloc[0]) not in ("", "nan") else ""
             title = f"{metric} of {sp} under {opt}"
-            ctx["figures"].append(dict(src=assets.add(f"sens-{k}.svg", sensitivity_figure(g, title), "image/svg+xml"),
+            ctx["figures"].append(dict(src=assets.add(f"sens-{k}.png", sensitivity_figure(g, title), "image/png"),
                                        caption=f"Sobol indices (first and total order, bars ± confidence) of {title}"
                                                + (f", conditional on {cond}" if cond else "")
                                                + (f"; N = {fmt_num(g.N.iloc[0])}" if "N" in g else "") + "."))
@@ -574,14 +585,14 @@ def _dynamics_context(res: Results, assets: Assets) -> dict | None:
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
     rg = d.get("regimes")
     if rg is not None and not rg.empty:
-        ctx["figures"].append(dict(src=assets.add("lyapunov.svg", distribution_figure(rg, unit), "image/svg+xml"),
+        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit), "image/png"),
                                    caption="Distribution over members of the largest Lyapunov exponent and of the "
                                            "predictability horizon, per option."))
     sc = d.get("scan")
     if sc is not None and not sc.empty:
         ctx["scan_run"] = True
         for k, p in enumerate(dict.fromkeys(sc.parameter)):
-            ctx["figures"].append(dict(src=assets.add(f"scan-{k}.svg", scan_figure(sc, p), "image/svg+xml"),
+            ctx["figures"].append(dict(src=assets.add(f"scan-{k}.png", scan_figure(sc, p), "image/png"),
                                        caption=f"Bifurcation diagram: long-run section values as {p} is scanned."))
     tr = d.get("transitions")
     if tr is not None and not tr.empty:
@@ -600,7 +611,7 @@ def report_context(res: Results, assets: Assets) -> dict:
     for k, o in enumerate(m["options"]):
         colour = OPTION_COLOURS[k % len(OPTION_COLOURS)]
         options.append(dict(name=o["name"], description=o.get("description", ""), interventions=o.get("interventions", []),
-                            figure=assets.add(f"bands-{k}.svg", bands_figure(res, o["name"], colour), "image/svg+xml"),
+                            figure=assets.add(f"bands-{k}.png", bands_figure(res, o["name"], colour), "image/png"),
                             risk=_risk_table(res, o["name"])))
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
