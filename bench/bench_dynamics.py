@@ -11,9 +11,6 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
-from casefiles import write_case  # noqa: E402
-
 from impact.case import load_case  # noqa: E402
 from impact.dynamics import DynamicsSettings, lyapunov_flow, nominal_values, scan_web, web_functions  # noqa: E402
 from impact.integrate import integrate_segment  # noqa: E402

@@ -50,6 +50,13 @@ def run_impact(args: list[str]) -> tuple[float, float]:
     return wall, usage.ru_maxrss / 1024.0
 
 
+TABLES = ("risk.csv", "bands.csv", "members.csv", "parameters.csv")
+
+
+def same_tables(a: Path, b: Path) -> str:
+    return "yes" if all((a / f).read_bytes() == (b / f).read_bytes() for f in TABLES) else "NO"
+
+
 def section(title: str):
     print(f"\n== {title}")
 
@@ -74,9 +81,7 @@ def main(argv=None) -> int:
     print(f"1 worker (in-process)        {t1:7.2f} s")
     print(f"2-worker pool                {t2:7.2f} s")
     print(f"speed-up                     {t1 / t2:7.2f}x  (ideal 2x on 2 cores)")
-    same = all((work / "w1" / f).read_bytes() == (work / "w2" / f).read_bytes()
-               for f in ("risk.csv", "bands.csv", "members.csv", "parameters.csv"))
-    print(f"identical tables             {'yes' if same else 'NO'}")
+    print(f"identical tables             {same_tables(work / 'w1', work / 'w2')}")
 
     section("3. local 2-worker pool vs Dask LocalCluster (2 worker processes), same work")
     try:
@@ -91,9 +96,7 @@ def main(argv=None) -> int:
         print(f"2-worker pool                {t2:7.2f} s")
         print(f"Dask LocalCluster            {td:7.2f} s")
         print(f"Dask / pool                  {td / t2:7.2f}x")
-        same = all((work / "w1" / f).read_bytes() == (work / "dask" / f).read_bytes()
-                   for f in ("risk.csv", "bands.csv", "members.csv", "parameters.csv"))
-        print(f"identical tables             {'yes' if same else 'NO'}")
+        print(f"identical tables             {same_tables(work / 'w1', work / 'dask')}")
 
     section("4. full demo assessment (all stages + PDF)")
     tf, _ = run_impact(["assess", args.case, "--out", str(work / "full"), "--quiet"])

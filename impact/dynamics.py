@@ -27,10 +27,10 @@ import pandas as pd
 
 from .case import Case
 from .errors import CaseError
-from .integrate import (FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine, _rms_rows,
-                        _select_initial_step, _take_rows)
+from .integrate import (FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine,
+                        _select_initial_step, _take_rows, error_norm)
 from .jacobian import WebTangent, jacobian, tangent
-from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, rhs, web_params
+from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, web_params
 
 REGIMES = ("equilibrium", "cycle", "irregular", "chaotic", "extinction")
 
@@ -384,13 +384,7 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
             f_new, g_new = fj(t_new, y_new, v_new, mem)
             K.append(f_new)
             nfev += DormandPrince54.n_stages
-            err = _combine(K, E, tmp)
-            err *= hcol
-            scale = np.maximum(np.abs(y), np.abs(y_new))
-            scale *= rtol
-            scale += atol_v
-            err /= scale
-            err_norm = _rms_rows(err)
+            err_norm = error_norm(K, E, tmp, hcol, y, y_new, rtol, atol_v)
             finite = np.isfinite(err_norm)
             accept = err_norm < 1
             all_accepted = accept.all()

@@ -91,6 +91,17 @@ def _rms_rows(x):
     return np.sqrt(acc / n)
 
 
+def error_norm(K, E, tmp, hcol, y, y_new, rtol, atol):
+    """Per-member RMS of the embedded error estimate, scaled by ``atol + rtol·max(|y|, |y_new|)``: (m,)."""
+    err = _combine(K, E, tmp)
+    err *= hcol
+    scale = np.maximum(np.abs(y), np.abs(y_new))
+    scale *= rtol
+    scale += atol
+    err /= scale
+    return _rms_rows(err)
+
+
 def _combine(K, coeffs, tmp):
     """Fixed-order elementwise sum ``sum_i coeffs[i] * K[i]`` skipping zero weights."""
     out = None
@@ -323,13 +334,7 @@ def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0
             K.append(f_new)
             nfev += method.n_stages
 
-            err = _combine(K, E, tmp)
-            err *= hcol
-            scale = np.maximum(np.abs(y), np.abs(y_new))
-            scale *= rtol
-            scale += atol
-            err /= scale
-            err_norm = _rms_rows(err)
+            err_norm = error_norm(K, E, tmp, hcol, y, y_new, rtol, atol)
 
         finite = np.isfinite(err_norm)
         accept = err_norm < 1

@@ -189,24 +189,29 @@ def test_unwritable_output_folder_is_a_clear_error(web, tmp_path, capsys):
     assert "cannot write" in err and "Traceback" not in err
 
 
-def test_full_disk_keeps_checkpoints_valid_and_resume_completes(web, reference, tmp_path, capsys, monkeypatch):
+def _disk_full_at(monkeypatch, n: int):
+    """Make the n-th atomic write from now on fail as on a full disk; return the undo."""
     import errno
 
     import impact.results as results
 
-    case, _ = web
-    out = tmp_path / "out"
     real = results._atomic_write
     calls = {"n": 0}
 
-    def fill_up(path, data):
-        # the fourth checkpoint write finds the disk full
+    def writer(path, data):
         calls["n"] += 1
-        if calls["n"] == 4:
+        if calls["n"] == n:
             raise OSError(errno.ENOSPC, "No space left on device", str(path))
         real(path, data)
 
-    monkeypatch.setattr(results, "_atomic_write", fill_up)
+    monkeypatch.setattr(results, "_atomic_write", writer)
+    return lambda: monkeypatch.setattr(results, "_atomic_write", real)
+
+
+def test_full_disk_keeps_checkpoints_valid_and_resume_completes(web, reference, tmp_path, capsys, monkeypatch):
+    case, _ = web
+    out = tmp_path / "out"
+    undo = _disk_full_at(monkeypatch, 4)  # the fourth checkpoint write finds the disk full
     args = ["assess", case.path, "--out", str(out), "--workers", "1", "--chunk-members", "30", "--base-samples", "16", *CORE]
     assert main(args) == 2
     err = capsys.readouterr().err
@@ -214,32 +219,19 @@ def test_full_disk_keeps_checkpoints_valid_and_resume_completes(web, reference, 
     assert not out.exists()
     saved = sorted(p.name for p in (tmp_path / ".out.checkpoints").glob("*.npz"))
     assert len(saved) == 2  # after the fingerprint: one draw block and one run chunk, then the failed write
-    monkeypatch.setattr(results, "_atomic_write", real)
+    undo()
     assert main(args + ["--resume"]) == 0
     _assert_same_tables(reference, out)
     assert not (tmp_path / ".out.checkpoints").exists()  # removed once the results are complete
 
 
 def test_resume_refuses_checkpoints_of_another_run(web, tmp_path, capsys, monkeypatch):
-    import errno
-
-    import impact.results as results
-
     case, _ = web
     out = tmp_path / "out"
-    real = results._atomic_write
-    calls = {"n": 0}
-
-    def fail_third(path, data):
-        calls["n"] += 1
-        if calls["n"] == 3:
-            raise OSError(errno.ENOSPC, "No space left on device", str(path))
-        real(path, data)
-
-    monkeypatch.setattr(results, "_atomic_write", fail_third)
+    undo = _disk_full_at(monkeypatch, 3)
     base = ["assess", case.path, "--out", str(out), "--workers", "1", "--chunk-members", "40", *CORE, "--no-sensitivity"]
     assert main(base + ["--seed", "1"]) == 2
-    monkeypatch.setattr(results, "_atomic_write", real)
+    undo()
     capsys.readouterr()
     assert main(base + ["--seed", "2", "--resume"]) == 2
     err = capsys.readouterr().err
