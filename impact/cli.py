@@ -269,7 +269,6 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
             "packages": package_versions(),
             "platform": platform.platform(),
             "stages": ["assess"],
-            "execution": {**executor.describe(), "chunks_reused": store.reused, "chunks_computed": store.saved},
             "caution": CAUTION,
         }
         # Later stages read the core tables from `tmp` and write into their own sub-directories;
@@ -290,6 +289,8 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
                 write_csv(frame, tmp / "dynamics" / f"{key}.csv")
             write_json(dyn_record, tmp / "dynamics" / "dynamics.json")
             manifest["stages"].append("dynamics")
+        # every stage's chunks are in by now
+        manifest["execution"] = {**executor.describe(), "chunks_reused": store.reused, "chunks_computed": store.saved}
         write_json(manifest, tmp / "manifest.json")
         # stage: report (needs the manifest on disk)
         if not getattr(args, "no_report", False):
