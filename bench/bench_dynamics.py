@@ -47,14 +47,20 @@ def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
           f"ratio {t_matrix / t_plain:.2f}")
     print(f"Lyapunov stage, J·v without J (as in diagnose_web): {t_lyap:.2f} s ({d.nfev} calls)")
     print(f"ratio Lyapunov / plain: {t_lyap / t_plain:.2f} (target <= 3)")
+    from impact.execute import LocalPool
+
     s = DynamicsSettings(transient=1000.0, window=1000.0, sample_dt=dt)
-    for cont in (False, True):
-        grid = np.linspace(2.2, 3.2, 40 if not cont else 6) / 5.0
-        t = time.perf_counter()
-        scan_web(case, "h1", grid, s, continuation=cont)
-        el = time.perf_counter() - t
-        print(f"scan ({'continuation' if cont else 'parallel'}), {grid.size} values x 2000 time units: "
-              f"{el:.2f} s, {grid.size / el:.2f} members per second")
+    pool = LocalPool(2)
+    try:
+        for label, cont, ex in (("parallel, in-process", False, None), ("parallel, 2-worker pool", False, pool),
+                                ("continuation", True, None)):
+            grid = np.linspace(2.2, 3.2, 40 if not cont else 6) / 5.0
+            t = time.perf_counter()
+            scan_web(case, "h1", grid, s, continuation=cont, executor=ex)
+            el = time.perf_counter() - t
+            print(f"scan ({label}), {grid.size} values x 2000 time units: {el:.2f} s, {grid.size / el:.2f} members per second")
+    finally:
+        pool.close()
 
 
 if __name__ == "__main__":

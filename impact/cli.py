@@ -313,6 +313,7 @@ def cmd_report(args) -> int:
 
 def cmd_scan(args) -> int:
     from .dynamics import default_settings, nominal_values, scan_web, section_species, settings_record
+    from .execute import make_executor
     from .model import web_params
     from .results import staged_directory, write_csv, write_json
 
@@ -332,14 +333,19 @@ def cmd_scan(args) -> int:
     grid = np.linspace(args.start, args.stop, args.steps)
     progress = _Progress(args.quiet)
     t0 = time.monotonic()
+    executor = make_executor(args.workers, args.cluster)
     with staged_directory(Path(args.out)) as tmp:
-        scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option,
-                                       section=section, continuation=not args.parallel, progress=progress)
+        try:
+            scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option, executor=executor,
+                                           section=section, continuation=not args.parallel, progress=progress)
+        finally:
+            executor.close()
         write_csv(scan, tmp / "dynamics" / "scan.csv")
         write_csv(points, tmp / "dynamics" / "scan_points.csv")
         write_csv(trans, tmp / "dynamics" / "transitions.csv")
         seconds = time.monotonic() - t0
         write_json(settings_record(settings, parameter=args.parameter, values=grid.tolist(), option=args.option,
+                                   execution=executor.describe(),
                                    section=f"maxima of {section}", continuation=not args.parallel, others="every other parameter at its prior median",
                                    seconds=round(seconds, 2), failed=int(points.failed.sum())),
                    tmp / "dynamics" / "dynamics.json")
@@ -471,6 +477,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--section", default=None, metavar="SPECIES",
                    help="species whose successive maxima form the Poincaré section (default: the last declared species)")
     p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing")
+    _executor_flags(p)
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_scan)
 

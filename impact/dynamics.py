@@ -742,8 +742,48 @@ def _scan_rows(parameter, v, out, i, keep_sections):
     return rows, pt
 
 
+@dataclass(frozen=True)
+class ScanTask:
+    """Scan values to run side by side from the case's initial state (a part of a parallel scan)."""
+
+    case: Case
+    parameter: str
+    grid: np.ndarray
+    settings: DynamicsSettings
+    option: str | None
+    section: int
+
+
+def scan_values(task: ScanTask) -> tuple[list, list]:
+    """Diagnose every value of a parallel scan part as one ensemble (a worker's function).
+
+    Returns the section rows and the per-value points, as :func:`scan_web` tabulates them.
+    """
+    case, grid, s, option = task.case, task.grid, task.settings, task.option
+    at = scan_target(case, task.parameter, option)
+    web = build_web(case)
+    level = np.array([sp.quasi_extinction for sp in case.species], float)
+    K = grid.size
+    per_value = [at(v) for v in grid]
+    vals = {k: np.array([b[k] for _, b in per_value]) for k in per_value[0][1]}
+    cases = [cs for cs, _ in per_value]
+    p = web_params(cases[0], vals, K)
+    if cases[0] is not case:  # an intervention intensity: controls differ per value
+        cs_list = [steady_controls(cs, option, {k: x[i] for k, x in vals.items()}, 1) for i, cs in enumerate(cases)]
+        c = Controls(*(np.concatenate([getattr(ci, f) for ci in cs_list]) for f in Controls.__dataclass_fields__))
+    else:
+        c = steady_controls(case, option, vals, K)
+    out = diagnose_web(web, p, c, p.initial, s, level, section=task.section)
+    rows, pts = [], []
+    for i, v in enumerate(grid):
+        r, pt = _scan_rows(task.parameter, v, out, i, 4 * s.max_period)
+        rows += r
+        pts.append(pt)
+    return rows, pts
+
+
 def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, option: str | None = None,
-             section: str | None = None, continuation: bool = True, progress=None):
+             section: str | None = None, continuation: bool = True, progress=None, executor=None):
     """Bifurcation scan of one quantity with every other parameter at its prior median.
 
     ``section`` names the species whose maxima form the Poincaré section (default: the last
@@ -751,7 +791,8 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
 
     With ``continuation`` each value starts where the previous one ended (so a branch is
     followed and hysteresis shows); without it all values run side by side as one ensemble
-    from the case's initial state (much faster; each value finds its own attractor).
+    from the case's initial state (much faster; each value finds its own attractor), split
+    among ``executor``'s workers when one is given.
 
     Returns
     -------
@@ -784,21 +825,16 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
             if progress:
                 progress(f"scan {parameter}: {i + 1}/{len(grid)} ({pt['regime']}, λ={pt['lyapunov']:.3g})")
     else:
-        K = grid.size
-        per_value = [at(v) for v in grid]
-        vals = {k: np.array([b[k] for _, b in per_value]) for k in per_value[0][1]}
-        cases = [cs for cs, _ in per_value]
-        p = web_params(cases[0], vals, K)
-        if cases[0] is not case:  # an intervention intensity: controls differ per value
-            cs_list = [steady_controls(cs, option, {k: x[i] for k, x in vals.items()}, 1) for i, cs in enumerate(cases)]
-            c = Controls(*(np.concatenate([getattr(ci, f) for ci in cs_list]) for f in Controls.__dataclass_fields__))
-        else:
-            c = steady_controls(case, option, vals, K)
-        out = diagnose_web(web, p, c, p.initial, s, level, section=section)
-        for i, v in enumerate(grid):
-            r, pt = _scan_rows(parameter, v, out, i, keep)
-            rows += r
-            pts.append(pt)
+        from .execute import InProcess
+
+        executor = executor or InProcess()
+        # values are independent here: split them among the workers, put the parts back in order
+        parts = [g for g in np.array_split(grid, min(executor.workers, grid.size)) if g.size]
+        tasks = [ScanTask(case, parameter, g, s, option, section) for g in parts]
+        done = dict(executor.map(scan_values, tasks))
+        for i in range(len(parts)):
+            rows += done[i][0]
+            pts += done[i][1]
     points = pd.DataFrame(pts)
     return (pd.DataFrame(rows), points,
             transitions(parameter, points.value.to_numpy(), points.regime.to_numpy(), points.period.to_numpy()))

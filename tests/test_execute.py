@@ -129,6 +129,17 @@ def test_pool_reproduces_the_in_process_dynamics_tables(web):
         pd.testing.assert_frame_equal(there[key], frame, check_exact=True)
 
 
+def test_pool_reproduces_an_in_process_parallel_scan(tmp_path):
+    from test_dynamics import rm_case
+
+    f = rm_case(tmp_path, 1.0)
+    common = ["scan", str(f), "--parameter", "K", "--from", "150", "--to", "450", "--steps", "7", "--parallel",
+              "--transient", "100", "--window", "100", "--quiet"]
+    assert main(common + ["--out", str(tmp_path / "one"), "--workers", "1"]) == 0
+    assert main(common + ["--out", str(tmp_path / "two"), "--workers", "2"]) == 0
+    _assert_same_tables(tmp_path / "one", tmp_path / "two")
+
+
 def _square_or_die(task):
     """Square a number; the first call with a marker path kills its own worker process."""
     value, marker = task
