@@ -143,6 +143,14 @@ class DaskCluster:
             raise CaseError("command line", "--cluster",
                             f"no Dask scheduler answered at {address} within {timeout:g} s ({type(exc).__name__}); "
                             "give the address a scheduler prints, e.g. tcp://10.0.0.5:8786") from None
+        try:
+            # a scheduler with no workers would take the tasks and never run them
+            self._client.wait_for_workers(1, timeout=timeout)
+        except (OSError, TimeoutError):
+            self._client.close()
+            raise CaseError("command line", "--cluster",
+                            f"the Dask scheduler at {address} has no workers (none joined within {timeout:g} s); "
+                            f"start some with: dask worker {address}") from None
         info = self._client.scheduler_info()
         self.workers = max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
 

@@ -184,6 +184,17 @@ def test_cluster_that_does_not_answer_is_a_clear_error_in_bounded_time(web, tmp_
     assert not (tmp_path / "out").exists()
 
 
+@pytest.mark.slow
+def test_scheduler_without_workers_is_a_clear_error(web, tmp_path, capsys):
+    distributed = pytest.importorskip("distributed")
+    case, _ = web
+    with distributed.LocalCluster(n_workers=0, host="127.0.0.1", dashboard_address=None, silence_logs=40) as empty:
+        rc = main(["assess", case.path, "--out", str(tmp_path / "out"), "--cluster", empty.scheduler_address, *CORE])
+    err = capsys.readouterr().err
+    assert rc == 2 and "no workers" in err and "dask worker" in err
+    assert not (tmp_path / "out").exists()
+
+
 @pytest.mark.parametrize("flag,value", [("--workers", "0"), ("--chunk-members", "0")])
 def test_bad_executor_flags_exit_2(web, tmp_path, capsys, flag, value):
     case, _ = web
