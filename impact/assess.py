@@ -252,10 +252,6 @@ class Summary:
         """Index of summary horizon ``h`` in :attr:`at`."""
         return int(np.searchsorted(self.at, h - 1e-12))
 
-    def take(self, rows: np.ndarray) -> "Summary":
-        """The summary of the given members only."""
-        return Summary(self.times, self.at, *(getattr(self, f)[rows] for f in PER_MEMBER), self.nfev)
-
 
 PER_MEMBER = ("trajectory", "minimum", "maximum", "mean", "recovery", "final", "failed", "reason")
 
