@@ -45,12 +45,10 @@ def _fd_jacobian(f, y, eps):
     return J
 
 
-@pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
-@pytest.mark.parametrize("controlled", [False, True])
-def test_jacobian_matches_central_differences(tmp_path, response, controlled):
+def _random_point(tmp_path, response, controlled, seed, M=5):
+    """A web with one response type, M members' parameters, controls (neutral or random) and states."""
     case, web = _web_with(tmp_path, response)
-    M = 5
-    rng = np.random.default_rng(1)
+    rng = np.random.default_rng(seed)
     values = parameter_values(case, rng.random((M, len(case.uncertain))))
     p = web_params(case, values, M)
     S = web.n_species
@@ -60,6 +58,14 @@ def test_jacobian_matches_central_differences(tmp_path, response, controlled):
                      habitat=rng.uniform(0.5, 1.5, (M, S)), harvest=rng.uniform(0, 0.3, (M, S)),
                      carcass=(rng.random((M, S)) < 0.5).astype(float))
     y = rng.uniform(0.5, 2.0, (M, web.n_state)) * np.concatenate([p.initial[:, :S], np.full((M, 1), 20.0)], axis=1)
+    return web, p, c, y, rng
+
+
+@pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
+@pytest.mark.parametrize("controlled", [False, True])
+def test_jacobian_matches_central_differences(tmp_path, response, controlled):
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1)
+    M = y.shape[0]
     idx = np.arange(M)
     J = jacobian(web, p, c, y, idx)
     Jfd = _fd_jacobian(lambda yy: rhs(web, p, c, yy, idx), y, 1e-6)
@@ -93,18 +99,8 @@ def test_tangent_is_the_matrix_vector_product():
 @pytest.mark.parametrize("controlled", [False, True])
 def test_directional_derivative_matches_central_differences(tmp_path, response, controlled):
     """J·v without forming J equals (f(y + εv) − f(y − εv))/(2ε) to O(ε²) (Press et al. 2007, Sec. 5.7)."""
-    case, web = _web_with(tmp_path, response)
-    M = 5
-    rng = np.random.default_rng(4)
-    values = parameter_values(case, rng.random((M, len(case.uncertain))))
-    p = web_params(case, values, M)
-    S = web.n_species
-    c = Controls.neutral(M, S)
-    if controlled:
-        c = Controls(phi=rng.uniform(0.7, 1.3, (M, S)), fertility=rng.uniform(0, 0.5, (M, S)),
-                     habitat=rng.uniform(0.5, 1.5, (M, S)), harvest=rng.uniform(0, 0.3, (M, S)),
-                     carcass=(rng.random((M, S)) < 0.5).astype(float))
-    y = rng.uniform(0.5, 2.0, (M, web.n_state)) * np.concatenate([p.initial[:, :S], np.full((M, 1), 20.0)], axis=1)
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 4)
+    M = y.shape[0]
     v = rng.normal(size=y.shape) * y  # perturbations on the scale of each state
     idx = np.arange(M)
     f, jv = WebTangent(web, p, c)(None, y, v, idx)
