@@ -285,7 +285,7 @@ def concat_summaries(parts: list[dict[str, Summary]]) -> dict[str, Summary]:
     """Join chunk summaries in member order."""
     first = parts[0]
     return {name: Summary(s.times, s.at,
-                          *(np.concatenate([p[name].__getattribute__(f) for p in parts], axis=0) for f in PER_MEMBER),
+                          *(np.concatenate([getattr(p[name], f) for p in parts], axis=0) for f in PER_MEMBER),
                           sum(p[name].nfev for p in parts))
             for name, s in first.items()}
 

@@ -13,6 +13,7 @@ import tempfile
 from contextlib import contextmanager
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from .errors import CaseError
@@ -55,8 +56,6 @@ def write_json(obj, path: Path):
 
 
 def _jsonable(x):
-    import numpy as np
-
     if isinstance(x, (np.integer,)):
         return int(x)
     if isinstance(x, (np.floating,)):
@@ -134,8 +133,6 @@ class Checkpoints:
 
     def get(self, key: str) -> dict | None:
         """The saved arrays of chunk ``key``, or None."""
-        import numpy as np
-
         path = self._path(key)
         if not path.exists():
             return None
@@ -150,8 +147,6 @@ class Checkpoints:
     def put(self, key: str, arrays: dict):
         """Save chunk ``key`` atomically."""
         import io
-
-        import numpy as np
 
         buf = io.BytesIO()
         np.savez(buf, **arrays)
@@ -174,8 +169,6 @@ class Checkpoints:
                            int(flat[f"{i}|nfev"])) for i, n in enumerate(names)}
 
     def put_summaries(self, key: str, summaries: dict):
-        import numpy as np
-
         from .assess import PER_MEMBER
 
         flat = {"options": np.array(list(summaries), dtype=str)}
