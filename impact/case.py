@@ -22,6 +22,17 @@ Quantity = float | str  # a number, or the name of a parameter in [parameters]
 GROWTH_FORMS = ("logistic", "exponential", "none")
 RESPONSES = ("holling1", "holling2", "holling3")
 INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism")
+# what the assessment wants for a species: options are meant to remove or reduce a target,
+# to spare a protected species; every other species is watched for side effects
+ROLES = ("target", "protected", "other")
+# what an objective looks at, per member, by its horizon
+MEASURES = ("abundance", "quasi_extinction", "outbreak")
+# what counts as met: a chance of the objective's event, or a paired change of that chance
+REQUIREMENTS = ("chance_at_least", "chance_at_most", "increase_at_most", "decrease_at_least")
+# defaults of the [risk] table's judgement fields (documented in README)
+DEFAULT_MATERIAL_CHANGE = 0.2
+DEFAULT_MATERIAL_RISK = 0.05
+DEFAULT_MIN_MEMBERS = 100
 INTERVENTION_KINDS = (
     "press-harvest",
     "pulse-cull",
@@ -62,6 +73,8 @@ class Species:
     unit: str
     carrion_yield: float
     description: str
+    role: str = "other"
+    material_change: float | None = None
 
 
 @dataclass(frozen=True)
@@ -144,10 +157,41 @@ class Option:
 
 
 @dataclass(frozen=True)
+class Objective:
+    """What an option should achieve for one species, judged on the members' outcomes.
+
+    The objective's *event* is, per member: the abundance at ``horizon`` lying below (or
+    above) ``level`` for ``measure = "abundance"``; falling below the species'
+    quasi-extinction level by ``horizon``; exceeding its outbreak level by ``horizon``.
+    ``requirement`` says what counts as met: the event's chance under the option at least /
+    at most ``bound``, or its paired change against the baseline (option minus baseline, on
+    the same members) at most / at least ``bound``.
+    """
+
+    name: str
+    species: str
+    measure: str
+    horizon: float
+    requirement: str
+    bound: float
+    level: float | None = None
+    below: bool = True
+    description: str = ""
+
+    @property
+    def event_is_good(self) -> bool:
+        """Whether the option should make the event more likely."""
+        return self.requirement == "chance_at_least"
+
+
+@dataclass(frozen=True)
 class Risk:
     horizons: tuple[float, ...]
     recovery_fraction: float
     confidence: float
+    material_change: float = DEFAULT_MATERIAL_CHANGE
+    material_risk: float = DEFAULT_MATERIAL_RISK
+    min_members: int = DEFAULT_MIN_MEMBERS
 
 
 @dataclass(frozen=True)
@@ -178,6 +222,7 @@ class Case:
     options: tuple[Option, ...]
     risk: Risk
     notes: tuple[str, ...] = field(default=())
+    objectives: tuple[Objective, ...] = field(default=())
 
     @property
     def species_names(self) -> tuple[str, ...]:
@@ -192,6 +237,21 @@ class Case:
             if p.name == name:
                 return p
         raise KeyError(name)
+
+    def species_by_name(self, name: str) -> Species:
+        for s in self.species:
+            if s.name == name:
+                return s
+        raise KeyError(name)
+
+    def material_change(self, species: str) -> float:
+        """Paired relative change of mean abundance that counts as material for ``species``."""
+        own = self.species_by_name(species).material_change
+        return self.risk.material_change if own is None else own
+
+    def touched(self, option: Option) -> frozenset[str]:
+        """Species that an intervention of ``option`` acts on directly."""
+        return frozenset(self.intervention(n).species for n in option.interventions)
 
     def intervention(self, name: str) -> Intervention:
         for iv in self.interventions:
@@ -413,8 +473,11 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         unit = t.get("unit", "individuals", "str")
         cy = t.number("carrion_yield", 1.0, low=0)
         desc = t.get("description", "", "str")
+        role = r.choice(f"species.{name}.role", t.get("role", "other", "str"), ROLES)
+        material = t.number("material_change", None, low=0, low_open=True)
         t.done()
-        species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc))
+        species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
+                               role, material))
     species = tuple(species)
     _unique(r, species, "name", "species")
     names = {s.name for s in species}
@@ -560,8 +623,14 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         tuple(sorted(float(h) for h in horizons)),
         rt.number("recovery_fraction", 0.8, low=0, low_open=True, high=1),
         rt.number("confidence", 0.95, low=0.5, high=0.999),
+        rt.number("material_change", DEFAULT_MATERIAL_CHANGE, low=0, low_open=True),
+        rt.number("material_risk", DEFAULT_MATERIAL_RISK, low=0, low_open=True, high=1),
+        rt.number("min_members", DEFAULT_MIN_MEMBERS, low=1, integer=True),
     )
     rt.done()
+    objectives = tuple(_read_objective(r, i, raw, species, horizon, risk.horizons)
+                       for i, raw in enumerate(top.get("objectives", [], "list")))
+    _unique(r, objectives, "name", "objectives")
     top.done()
 
     pnames = {p.name: p for p in parameters}
@@ -581,4 +650,43 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         parameters=parameters, species=species, feeding=tuple(feeding),
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
         observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
+        objectives=objectives,
     )
+
+
+def _read_objective(r: _Reader, i: int, raw: Any, species: tuple[Species, ...], horizon: float,
+                    risk_horizons: tuple[float, ...]) -> Objective:
+    """One ``[[objectives]]`` entry: species, measure, horizon, event level and requirement."""
+    t = _Table(r, raw, f"objectives[{i}]")
+    name = t.get("name", kind="str")
+    t.path = base = f"objectives.{name}"
+    by_name = {s.name: s for s in species}
+    sp = t.get("species", kind="str")
+    if sp not in by_name:
+        r.fail(f"{base}.species", f"unknown species {sp!r}; declared species: {', '.join(sorted(by_name))}")
+    measure = r.choice(f"{base}.measure", t.get("measure", kind="str"), MEASURES)
+    allowed_h = sorted(set(risk_horizons) | {horizon})
+    h = t.number("horizon", horizon)
+    match = [a for a in allowed_h if abs(h - a) <= 1e-9 * max(1.0, a)]
+    if not match:
+        r.fail(f"{base}.horizon", f"{h:g} is not a risk horizon; allowed: {', '.join(f'{a:g}' for a in allowed_h)} "
+                                  "(add it to risk.horizons to use it)")
+    h = match[0]
+    level, below = None, True
+    if measure == "abundance":
+        given = [k for k in ("below", "above") if k in t.data]
+        if len(given) != 1:
+            r.fail(f"{base}.below", "an abundance objective needs exactly one of below = LEVEL or above = LEVEL "
+                                    "(the abundance the option should keep the species under, or over)")
+        below = given[0] == "below"
+        level = t.number(given[0], low=0)
+    elif measure == "outbreak" and by_name[sp].outbreak is None:
+        r.fail(f"{base}.measure", f"species {sp!r} declares no outbreak level; add species.{sp}.outbreak")
+    given = [k for k in REQUIREMENTS if k in t.data]
+    if len(given) != 1:
+        r.fail(f"{base}.{given[1] if len(given) > 1 else 'chance_at_least'}",
+               f"exactly one requirement is needed; choose one of: {', '.join(REQUIREMENTS)}")
+    bound = t.number(given[0], low=0, high=1)
+    desc = t.get("description", "", "str")
+    t.done()
+    return Objective(name, sp, measure, float(h), given[0], float(bound), level, below, desc)
