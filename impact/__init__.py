@@ -1,3 +1,3 @@
 """impact: paired-ensemble risk assessment of interventions in food webs."""
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"

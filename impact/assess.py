@@ -224,6 +224,8 @@ class Summary:
         output times.
     mean : ndarray (M, H, S)
         Time-mean abundance over [0, h] (trapezoid rule on the output times).
+    state : ndarray (M, H, n_state)
+        State at each summary horizon (every horizon is an output time).
     recovery : ndarray (M, S)
         Recovery time against the paired baseline (NaN for the baseline itself).
     final : ndarray (M, n_state)
@@ -238,6 +240,7 @@ class Summary:
     minimum: np.ndarray
     maximum: np.ndarray
     mean: np.ndarray
+    state: np.ndarray
     recovery: np.ndarray
     final: np.ndarray
     failed: np.ndarray
@@ -253,7 +256,7 @@ class Summary:
         return int(np.searchsorted(self.at, h - 1e-12))
 
 
-PER_MEMBER = ("trajectory", "minimum", "maximum", "mean", "recovery", "final", "failed", "reason")
+PER_MEMBER = ("trajectory", "minimum", "maximum", "mean", "state", "recovery", "final", "failed", "reason")
 
 
 def summary_horizons(case: Case) -> np.ndarray:
@@ -277,7 +280,8 @@ def summarise(case: Case, runs: dict[str, Run]) -> dict[str, Summary]:
                     rec[:, j] = mx.recovery_times(run.times, run.states[:, :, j], base.states[:, :, j],
                                                   case.risk.recovery_fraction)
         out[name] = Summary(run.times, at, run.states.astype(np.float32), run.cummin[:, ti], run.cummax[:, ti],
-                            mean, rec, run.states[:, -1].copy(), run.failed, run.reason, run.nfev)
+                            mean, run.states[:, ti].copy(), rec, run.states[:, -1].copy(), run.failed, run.reason,
+                            run.nfev)
     return out
 
 
@@ -364,9 +368,22 @@ def _summaries(case: Case, runs: dict) -> dict[str, Summary]:
     return runs if isinstance(first, Summary) else summarise(case, runs)
 
 
-def _row(option, species, metric, horizon, value, low, high, unit, n):
+RISK_COLUMNS = ("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n")
+# the interval each metric of risk.csv carries (see impact.metrics.INTERVAL_KINDS)
+RISK_INTERVALS = {"quasi_extinction": "clopper_pearson", "outbreak": "clopper_pearson",
+                  "not_recovered": "clopper_pearson", "expected_minimum": "mean_normal",
+                  "mean_abundance": "member_quantiles", "mean_change": "member_quantiles",
+                  "recovery_time": "member_quantiles"}
+
+
+def _row(option, species, metric, horizon, value, low, high, unit, n, confidence):
+    kind = RISK_INTERVALS[metric]
+    level = mx.QUANTILE_LEVEL if kind == "member_quantiles" else confidence
     return dict(option=option, species=species, metric=metric, horizon=horizon,
-                value=value, low=low, high=high, unit=unit, n=n)
+                value=value, low=low, high=high, interval=kind, level=level, unit=unit, n=n)
+
+
+QUANTILES = (mx.QUANTILE_BAND[0], 0.5, mx.QUANTILE_BAND[1])
 
 
 def risk_table(case: Case, runs: dict) -> pd.DataFrame:
@@ -386,25 +403,25 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
                 if sp.present:
                     k, n = mx.quasi_extinction_probability(rmin, sp.quasi_extinction)
                     lo, hi = mx.clopper_pearson(k, n, conf)
-                    rows.append(_row(opt, sp.name, "quasi_extinction", h, k / n if n else np.nan, float(lo), float(hi), "probability", n))
+                    rows.append(_row(opt, sp.name, "quasi_extinction", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
                     m, lo, hi = mx.expected_minimum_abundance(rmin, conf)
-                    rows.append(_row(opt, sp.name, "expected_minimum", h, m, lo, hi, sp.unit, int(np.isfinite(rmin).sum())))
+                    rows.append(_row(opt, sp.name, "expected_minimum", h, m, lo, hi, sp.unit, int(np.isfinite(rmin).sum()), conf))
                 if sp.outbreak is not None:
                     rmax = run.maximum[:, k_h, j]
                     ok = np.isfinite(rmax)
                     k, n = int((rmax[ok] > sp.outbreak).sum()), int(ok.sum())
                     lo, hi = mx.clopper_pearson(k, n, conf)
-                    rows.append(_row(opt, sp.name, "outbreak", h, k / n if n else np.nan, float(lo), float(hi), "probability", n))
+                    rows.append(_row(opt, sp.name, "outbreak", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
                 mean_o = run.mean[:, k_h, j]
                 ok = np.isfinite(mean_o)
-                q = np.quantile(mean_o[ok], [0.05, 0.5, 0.95]) if ok.any() else [np.nan] * 3
-                rows.append(_row(opt, sp.name, "mean_abundance", h, q[1], q[0], q[2], sp.unit, int(ok.sum())))
+                q = np.quantile(mean_o[ok], QUANTILES) if ok.any() else [np.nan] * 3
+                rows.append(_row(opt, sp.name, "mean_abundance", h, q[1], q[0], q[2], sp.unit, int(ok.sum()), conf))
                 if opt == "baseline":
                     continue
                 d = mx.paired_relative_change(mean_o, base.mean[:, k_h, j])
                 ok = np.isfinite(d)
-                q = np.quantile(d[ok], [0.05, 0.5, 0.95]) if ok.any() else [np.nan] * 3
-                rows.append(_row(opt, sp.name, "mean_change", h, q[1], q[0], q[2], "fraction of baseline", int(ok.sum())))
+                q = np.quantile(d[ok], QUANTILES) if ok.any() else [np.nan] * 3
+                rows.append(_row(opt, sp.name, "mean_change", h, q[1], q[0], q[2], "fraction of baseline", int(ok.sum()), conf))
             if opt == "baseline" or not sp.present:
                 continue
             rt = run.recovery[:, j]
@@ -413,11 +430,11 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
             never = int(np.isinf(rt[ok]).sum())
             H = case.horizon
             if n:
-                q = np.quantile(rt[ok], [0.05, 0.5, 0.95], method="inverted_cdf")  # no interpolation: inf stays inf
-                rows.append(_row(opt, sp.name, "recovery_time", H, q[1], q[0], q[2], case.time_unit, n))
+                q = np.quantile(rt[ok], QUANTILES, method="inverted_cdf")  # no interpolation: inf stays inf
+                rows.append(_row(opt, sp.name, "recovery_time", H, q[1], q[0], q[2], case.time_unit, n, conf))
                 lo, hi = mx.clopper_pearson(never, n, conf)
-                rows.append(_row(opt, sp.name, "not_recovered", H, never / n, float(lo), float(hi), "probability", n))
-    return pd.DataFrame(rows)
+                rows.append(_row(opt, sp.name, "not_recovered", H, never / n, float(lo), float(hi), "probability", n, conf))
+    return pd.DataFrame(rows, columns=list(RISK_COLUMNS))
 
 
 def bands_table(case: Case, runs: dict) -> pd.DataFrame:

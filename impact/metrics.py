@@ -126,3 +126,89 @@ def trajectory_bands(traj: np.ndarray, quantiles=BAND_QUANTILES) -> np.ndarray:
                 warnings.simplefilter("ignore", RuntimeWarning)
                 return np.nanquantile(traj, quantiles, axis=0)
     return np.full((len(quantiles), traj.shape[1]), np.nan)
+
+
+# ----------------------------------------------------------------------------- interval kinds
+# Every low/high pair written to a table carries one of these codes in its ``interval`` column
+# and its level in ``level``; the report's captions are generated from the same descriptions.
+INTERVAL_KINDS = {
+    "clopper_pearson": "exact binomial confidence interval (Clopper & Pearson 1934)",
+    "mean_normal": "normal-theory confidence interval of the mean over members",
+    "member_quantiles": "5–95 % quantiles over members (the spread of outcomes, not a confidence interval)",
+    "newcombe_paired": "confidence interval of a paired difference of proportions (Newcombe 1998, method 10)",
+    "none": "no interval",
+}
+# the quantile band used for per-member spreads: 5 % and 95 %, so a 90 % band
+QUANTILE_BAND = (0.05, 0.95)
+QUANTILE_LEVEL = QUANTILE_BAND[1] - QUANTILE_BAND[0]
+
+
+def describe_interval(kind: str, level: float) -> str:
+    """Caption text for an interval kind and level, e.g. ``"95 % exact binomial confidence interval …"``."""
+    if kind == "none":
+        return INTERVAL_KINDS[kind]
+    if kind == "member_quantiles":
+        return INTERVAL_KINDS[kind]
+    return f"{100 * level:.0f} % {INTERVAL_KINDS[kind]}"
+
+
+def wilson(k: float, n: float, confidence: float = 0.95) -> tuple[float, float]:
+    """Wilson score interval for k successes in n trials (Wilson 1927; Newcombe 1998a, method 3)."""
+    if n <= 0:
+        return (np.nan, np.nan)
+    z = stats.norm.ppf(0.5 + confidence / 2)
+    p = k / n
+    centre = p + z * z / (2 * n)
+    half = z * np.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
+    den = 1 + z * z / n
+    return (max(0.0, (centre - half) / den), min(1.0, (centre + half) / den))
+
+
+def paired_difference_interval(first: np.ndarray, second: np.ndarray, confidence: float = 0.95
+                               ) -> tuple[float, float, float, int]:
+    """Difference of two paired proportions with its confidence interval.
+
+    Newcombe (1998), "Improved confidence intervals for the difference between binomial
+    proportions based on paired data", Statistics in Medicine 17:2635–2650, method 10: Wilson
+    score limits of each proportion combined with the phi correlation of the pairs.
+
+    Parameters
+    ----------
+    first, second : ndarray (M,) bool
+        The event in each member under the first and the second run (same members).
+
+    Returns
+    -------
+    (difference, low, high, n) : P(first) − P(second), its interval, and the pairs counted.
+    """
+    first = np.asarray(first, bool)
+    second = np.asarray(second, bool)
+    n = int(first.size)
+    if n == 0:
+        return (np.nan, np.nan, np.nan, 0)
+    a = float(np.sum(first & second))
+    b = float(np.sum(first & ~second))
+    c = float(np.sum(~first & second))
+    d = float(n - a - b - c)
+    p1, p2 = (a + b) / n, (a + c) / n
+    l1, u1 = wilson(a + b, n, confidence)
+    l2, u2 = wilson(a + c, n, confidence)
+    margins = (a + b) * (c + d) * (a + c) * (b + d)
+    phi = 0.0
+    if margins > 0:
+        cross = a * d - b * c
+        # Newcombe's continuity-corrected phi: shrunk towards 0 by n/2 when positive
+        phi = (cross - n / 2 if cross > n / 2 else (cross if cross < 0 else 0.0)) / np.sqrt(margins)
+    delta = p1 - p2
+    low = delta - np.sqrt(max((p1 - l1) ** 2 - 2 * phi * (p1 - l1) * (u2 - p2) + (u2 - p2) ** 2, 0.0))
+    high = delta + np.sqrt(max((p2 - l2) ** 2 - 2 * phi * (p2 - l2) * (u1 - p1) + (u1 - p1) ** 2, 0.0))
+    return (float(delta), float(max(low, -1.0)), float(min(high, 1.0)), n)
+
+
+def proportion(flags: np.ndarray, confidence: float = 0.95) -> tuple[float, float, float, int]:
+    """Share of True among finite members with its exact binomial interval: (value, low, high, n)."""
+    flags = np.asarray(flags, bool)
+    n = int(flags.size)
+    k = int(flags.sum())
+    lo, hi = clopper_pearson(k, n, confidence)
+    return (k / n if n else np.nan, float(lo), float(hi), n)

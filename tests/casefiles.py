@@ -62,7 +62,7 @@ def decline_case(members: int = 400) -> dict:
                      "quasi_extinction": 10.0}],
         "interventions": [{"name": "harvest", "kind": "press-harvest", "species": "newt", "rate": "q", "start": 0.0, "end": 40.0}],
         "options": [{"name": "harvest", "interventions": ["harvest"]}],
-        "risk": {"horizons": [10.0, 20.0, 40.0]},
+        "risk": {"horizons": [10.0, 20.0, 40.0], "min_members": 10},
     })
 
 
@@ -99,5 +99,44 @@ def web_case(members: int = 60) -> dict:
         "options": [{"name": "cull", "interventions": ["fox cull"]},
                     {"name": "remove", "interventions": ["fox removal"]},
                     {"name": "nothing", "interventions": ["no-op"]}],
-        "risk": {"horizons": [10.0, 20.0]},
+        "risk": {"horizons": [10.0, 20.0], "min_members": 10},
+    })
+
+
+def mesopredator_case(members: int = 200) -> dict:
+    """Apex predator eating a mesopredator and a bird; the mesopredator eats the bird (Lotka–Volterra links).
+
+    At the nominal parameters the web rests at bird ≈ 75, meso ≈ 12, apex ≈ 3; without the apex
+    it settles at bird = 50, meso = 25, and without both at bird = K = 100 (equilibria of the
+    three equations, solved by hand from dB = dM = 0).
+    """
+    return copy.deepcopy({
+        "case": {"title": "mesopredator release", "time_unit": "year", "horizon": 40.0, "output_step": 1.0,
+                 "spinup": 150.0, "members": members, "seed": 5},
+        "parameters": {"meso_attack": {"distribution": "uniform", "low": 0.018, "high": 0.022, "unit": "1/(meso·year)",
+                                       "source": "test"}},
+        "species": [
+            {"name": "bird", "growth": "logistic", "growth_rate": 1.0, "carrying_capacity": 100.0, "initial": 60.0,
+             "quasi_extinction": 5.0, "role": "protected"},
+            {"name": "meso", "growth": "none", "mortality": 0.3, "initial": 5.0, "quasi_extinction": 0.5},
+            {"name": "apex", "growth": "none", "mortality": 0.2, "initial": 2.0, "quasi_extinction": 0.1,
+             "role": "target"},
+        ],
+        "interactions": [
+            {"type": "predation", "predator": "meso", "prey": "bird", "response": "holling1",
+             "attack_rate": "meso_attack", "efficiency": 0.3},
+            {"type": "predation", "predator": "apex", "prey": "bird", "response": "holling1", "attack_rate": 0.002,
+             "efficiency": 0.1},
+            {"type": "predation", "predator": "apex", "prey": "meso", "response": "holling1", "attack_rate": 0.05,
+             "efficiency": 0.3},
+        ],
+        "interventions": [
+            {"name": "apex removal", "kind": "eradication", "species": "apex", "time": 1.0},
+            {"name": "meso removal", "kind": "eradication", "species": "meso", "time": 1.0},
+        ],
+        "options": [{"name": "apex only", "interventions": ["apex removal"]},
+                    {"name": "apex and meso", "interventions": ["apex removal", "meso removal"]}],
+        "objectives": [{"name": "bird spared", "species": "bird", "measure": "abundance", "horizon": 40.0,
+                        "above": 60.0, "chance_at_least": 0.8}],
+        "risk": {"horizons": [20.0, 40.0], "min_members": 100},
     })

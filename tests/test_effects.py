@@ -1,0 +1,155 @@
+"""Paired effects, objectives and comparisons against closed forms and a published ecological result."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from casefiles import decline_case, mesopredator_case, write_case
+from impact import metrics as mx
+from impact.assess import assess_members, draw_ensemble
+from impact.case import load_case
+from impact.effects import comparisons_table, effects_table, judge, objectives_table
+
+N0, NC, LOW, HIGH, HARVEST, MATERIAL = 100.0, 10.0, -0.2, -0.05, 0.05, 0.2
+
+
+def _decline_with_known_harvest(tmp_path, members=2000):
+    d = decline_case(members=members)
+    d["parameters"]["q"] = {"distribution": "fixed", "value": HARVEST, "unit": "1/year"}
+    d["case"]["output_step"] = 0.25  # trapezoid error of the time mean ~ (dt r)^2 / 12 < 3e-4
+    d["objectives"] = [{"name": "newt kept", "species": "newt", "measure": "quasi_extinction", "horizon": 20.0,
+                        "increase_at_most": 0.5}]
+    return load_case(write_case(tmp_path, d))
+
+
+@pytest.fixture(scope="module")
+def decline(tmp_path_factory):
+    case = _decline_with_known_harvest(tmp_path_factory.mktemp("decline"))
+    ens = draw_ensemble(case, case.members, case.seed)
+    runs = assess_members(case, ens, case.seed)
+    return case, effects_table(case, runs), objectives_table(case, runs)
+
+
+def _stat(e, metric, stat, h):
+    return e[(e.option == "harvest") & (e.metric == metric) & (e.statistic == stat) & np.isclose(e.horizon, h)].iloc[0]
+
+
+def _time_mean(r, h):
+    # exact time mean of N0 e^{r t} over [0, h]
+    return N0 * np.expm1(r * h) / (r * h)
+
+
+@pytest.mark.parametrize("h", [10.0, 20.0, 40.0])
+def test_paired_quasi_extinction_change_matches_the_rate_distribution(decline, h):
+    # N = N0 e^{rt}, r ~ U(−0.2, −0.05); the harvest adds a known rate q. The baseline is below N_c by h iff
+    # r < c = ln(N_c/N0)/h, the option iff r < c + q, so the paired change of the chance is the uniform
+    # mass of [c, c + q] and every member that changes gets worse (closed form of the decline model).
+    case, e, _ = decline
+    c = np.log(NC / N0) / h
+    exact = (np.clip(c + HARVEST, LOW, HIGH) - np.clip(c, LOW, HIGH)) / (HIGH - LOW)
+    n = 2000
+    margin = 4 * np.sqrt(max(exact * (1 - exact), 1e-12) / n) + 1e-12  # 4 binomial SDs: false alarm < 1e-4
+    d = _stat(e, "quasi_extinction", "difference", h)
+    assert abs(d.value - exact) <= margin
+    assert d.interval == "newcombe_paired" and d.level == 0.95 and d.n == n
+    assert abs(_stat(e, "quasi_extinction", "p_worse", h).value - exact) <= margin
+
+
+@pytest.mark.parametrize("h", [10.0, 20.0, 40.0])
+def test_material_change_probability_matches_the_rate_distribution(decline, h):
+    # paired change of the time mean: d(r) = M(r − q)/M(r) − 1 with M(r) = N0 (e^{rh} − 1)/(r h); material when
+    # |d| ≥ 0.2. P is the uniform mass of {r : |d(r)| ≥ 0.2}, found on a fine grid of the exact expression.
+    case, e, _ = decline
+    grid = np.linspace(LOW, HIGH, 200_001)
+    dr = _time_mean(grid - HARVEST, h) / _time_mean(grid, h) - 1
+    exact = float(np.mean(np.abs(dr) >= MATERIAL))
+    margin = 4 * np.sqrt(max(exact * (1 - exact), 1e-12) / 2000) + 2e-3  # 4 SDs, plus grid and trapezoid error
+    row = _stat(e, "mean_abundance", "p_material", h)
+    assert abs(row.value - exact) <= margin
+    assert row.interval == "clopper_pearson" and row.threshold == MATERIAL
+    # a harvest only lowers abundance: never better, worse in every member
+    assert _stat(e, "mean_abundance", "p_worse", h).value == 1.0
+    assert _stat(e, "mean_abundance", "p_material_increase", h).value == 0.0
+    # d(r) is monotone in r, so the median change is d at the median rate; the sample median rate lies within
+    # 4 SDs of the order statistic, (0.5 ± 4·0.5/√n) in probability
+    med = _stat(e, "mean_abundance", "median_change", h)
+    q = 4 * 0.5 / np.sqrt(2000)
+    r_lo, r_hi = LOW + (HIGH - LOW) * (0.5 - q), LOW + (HIGH - LOW) * (0.5 + q)
+    bounds = sorted(_time_mean(r - HARVEST, h) / _time_mean(r, h) - 1 for r in (r_lo, r_hi))
+    assert bounds[0] - 1e-3 <= med.value <= bounds[1] + 1e-3
+    assert med.interval == "member_quantiles" and abs(med.level - 0.9) < 1e-12
+
+
+def test_objective_status_follows_its_interval(decline):
+    # at h = 20 the exact increase is 1/3 (see above), well under the allowed 0.5: met
+    case, _, o = decline
+    row = o[o.option == "harvest"].iloc[0]
+    assert row.statistic == "increase" and row.status == "met" and row.high <= 0.5
+    assert abs(row.value - 1 / 3) <= 4 * np.sqrt(2 / 9 / 2000)
+
+
+def test_judge_needs_the_whole_interval():
+    assert judge("chance_at_least", 0.8, 0.81, 0.9) == "met"
+    assert judge("chance_at_least", 0.8, 0.7, 0.9) == "undecided"
+    assert judge("chance_at_least", 0.8, 0.5, 0.79) == "not met"
+    assert judge("increase_at_most", 0.05, -0.01, 0.04) == "met"
+    assert judge("increase_at_most", 0.05, 0.06, 0.2) == "not met"
+    assert judge("decrease_at_least", 0.1, 0.12, 0.3) == "met"
+
+
+def test_newcombe_interval_covers_at_its_nominal_level():
+    # Newcombe (1998) reports coverage close to nominal for method 10. Check: 400 paired samples of 200 with a
+    # known difference of 0.1; coverage of the 95 % interval must lie within 4 binomial SDs of 0.95 (SD ≈ 0.011),
+    # i.e. ≥ 0.906 (false alarm < 1e-4; a seeded draw, so also a regression pin of this sample).
+    rng = np.random.default_rng(12)
+    hits = 0
+    for _ in range(400):
+        u = rng.random(200)
+        first, second = u < 0.35, u < 0.25  # P(first) − P(second) = 0.1 exactly, strongly paired
+        noise = rng.random(200) < 0.1
+        second = np.where(noise, rng.random(200) < 0.25, second)  # some discordance in both directions
+        d, lo, hi, n = mx.paired_difference_interval(first, second, 0.95)
+        hits += lo <= 0.1 <= hi
+    assert hits / 400 >= 0.95 - 4 * np.sqrt(0.95 * 0.05 / 400)
+
+
+def test_newcombe_interval_of_identical_runs_is_centred_on_zero():
+    x = np.r_[np.ones(30, bool), np.zeros(70, bool)]
+    d, lo, hi, n = mx.paired_difference_interval(x, x)
+    assert d == 0 and lo < 0 < hi and n == 100
+
+
+@pytest.fixture(scope="module")
+def meso(tmp_path_factory):
+    case = load_case(write_case(tmp_path_factory.mktemp("meso"), mesopredator_case(members=150)))
+    ens = draw_ensemble(case, case.members, case.seed)
+    runs = assess_members(case, ens, case.seed)
+    return case, effects_table(case, runs), objectives_table(case, runs), comparisons_table(case, runs)
+
+
+def _e(e, option, species, stat, h=40.0):
+    return e[(e.option == option) & (e.species == species) & (e.metric == "mean_abundance")
+             & (e.statistic == stat) & np.isclose(e.horizon, h)].iloc[0]
+
+
+def test_removing_the_apex_releases_the_mesopredator_and_lowers_the_bird(meso):
+    # Mesopredator release (Courchamp, Langlais & Sugihara 1999; Crooks & Soulé 1999): removing the top predator
+    # alone lets the mesopredator rise and its prey fall. Both effects are indirect (only the apex is removed).
+    case, e, _, _ = meso
+    m_up, b_down = _e(e, "apex only", "meso", "p_material_increase"), _e(e, "apex only", "bird", "p_material_decrease")
+    assert m_up.value >= 0.95 and b_down.value >= 0.95
+    assert str(m_up.direct) == "False" and str(b_down.direct) == "False"
+    assert _e(e, "apex only", "meso", "median_change").value > 0.2
+    assert _e(e, "apex only", "bird", "median_change").value < -0.2
+
+
+def test_removing_both_predators_does_not_lower_the_bird(meso):
+    case, e, o, c = meso
+    assert _e(e, "apex and meso", "bird", "p_worse").value == 0.0
+    assert _e(e, "apex and meso", "bird", "median_change").value > 0
+    # the objective (bird above 60 at year 40 in at least 80 % of members) is met only when both go
+    status = dict(zip(o.option, o.status))
+    assert status["apex and meso"] == "met" and status["apex only"] == "not met"
+    best = c[(c.statistic == "share_best")].set_index("option").value
+    assert best["apex and meso"] == 1.0 and best["apex only"] == 0.0
