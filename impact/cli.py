@@ -18,6 +18,9 @@ from .case import Case, load_case
 from .errors import CaseError
 from .execute import WorkerLost
 
+# exit status of `impact assess` when the results are written but too thin for a verdict
+# (fewer plausible members than risk.min_members); 2 stays reserved for bad input
+EXIT_NO_VERDICT = 3
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
            "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
 
@@ -141,7 +144,7 @@ def _fmt_p(v, lo, hi):
     return f"{v:5.1%} [{lo:.1%}, {hi:.1%}]"
 
 
-def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict) -> str:
+def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict, verdict: str) -> str:
     H = case.horizon
     L = [f"{case.title}",
          f"draws: {counts['tried']} tried, {counts['kept']} plausible kept "
@@ -166,6 +169,8 @@ def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict) -
                 cell += f" {d['value'].iloc[0]:+.0%}"
             cells.append(f"{opt}: {cell}")
         L.append(f"  {sp:<{width}}  " + " | ".join(cells))
+    L.append("verdict (the same as page 1 of report.pdf):")
+    L.append(verdict)
     L.append("CAUTION: " + CAUTION)
     return "\n".join(L)
 
@@ -211,18 +216,19 @@ def cmd_assess(args) -> int:
         store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
         if args.resume and any(store.dir.glob("*.npz")):
             progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
-        text = _assess_into(case, args, members, seed, block, chunk, executor, store, progress, started, t0)
+        text, kept = _assess_into(case, args, members, seed, block, chunk, executor, store, progress, started, t0)
     finally:
         executor.close()
     store.discard()
     print(text)
     print(f"results written to {args.out}")
-    return 0
+    return EXIT_NO_VERDICT if kept < case.risk.min_members else 0
 
 
 def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: int, executor, store, progress,
-                 started, t0) -> str:
+                 started, t0) -> tuple[str, int]:
     from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
+    from .effects import comparisons_table, effects_table, event_text, objectives_table
     from .model import equations
     from .results import staged_directory, write_csv, write_json
 
@@ -233,6 +239,9 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
         risk = risk_table(case, runs)
         failures = failure_counts(runs)
         write_csv(risk, tmp / "risk.csv")
+        write_csv(effects_table(case, runs), tmp / "effects.csv")
+        write_csv(objectives_table(case, runs), tmp / "objectives.csv")
+        write_csv(comparisons_table(case, runs), tmp / "comparisons.csv")
         write_csv(bands_table(case, runs), tmp / "bands.csv")
         write_csv(members_table(case, ens, runs), tmp / "members.csv")
         params = pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}})
@@ -250,8 +259,16 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
             "time_unit": case.time_unit, "horizon": case.horizon, "horizons": list(case.risk.horizons),
             "confidence": case.risk.confidence, "recovery_fraction": case.risk.recovery_fraction,
             "species": [dict(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
-                             generation_time=s.generation_time, present=s.present, growth=s.growth) for s in case.species],
-            "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description) for o in case.options],
+                             generation_time=s.generation_time, present=s.present, growth=s.growth, role=s.role,
+                             material_change=case.material_change(s.name)) for s in case.species],
+            "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description,
+                             touches=sorted(case.touched(o))) for o in case.options],
+            "objectives": [dict(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
+                                requirement=o.requirement, bound=o.bound, event=event_text(case, o),
+                                description=o.description) for o in case.objectives],
+            "judgement": {"material_change": case.risk.material_change, "material_risk": case.risk.material_risk,
+                          "min_members": case.risk.min_members,
+                          "likelihood_scale": "IPCC likelihood scale (Mastrandrea et al. 2010)"},
             "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
                                    description=iv.description) for iv in case.interventions],
             # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
@@ -298,9 +315,18 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
 
             progress("writing report.pdf", force=True)
             write_report(tmp, tmp / "report.pdf", paper=getattr(args, "paper", "a4"))
-        text = summary_text(case, risk, ens.counts, failures)
+        text = summary_text(case, risk, ens.counts, failures, verdict_text(tmp))
         (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
-    return text
+    return text, int(ens.counts["kept"])
+
+
+def verdict_text(results: Path) -> str:
+    """The page-1 verdict as terminal text, read back from the tables just written."""
+    from .report import load_results
+    from .verdict import reading, reading_text
+
+    res = load_results(results)
+    return reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons))
 
 
 def cmd_report(args) -> int:

@@ -36,13 +36,18 @@ import numpy as np
 import pandas as pd
 
 from .errors import CaseError
+from .cautions import cautions
+from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
+from .metrics import describe_interval
+from .verdict import reading, thin_run, with_term
 from .iucn import CATEGORY_NAMES, criterion_e_in_units
 
 ASSET_SCHEME = "impact-asset:"
 PAPERS = {"a4": "A4", "letter": "letter"}
 ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
 TEXT_COLUMNS = {
-    "option", "species", "metric", "unit", "parameter", "regime", "name", "distribution", "arguments",
+    "option", "species", "metric", "unit", "role", "direct", "statistic", "interval", "objective", "measure", "event",
+    "requirement", "status", "versus", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain",
 }
@@ -54,7 +59,6 @@ RISK_METRICS = (
     ("recovery_time", "Recovery time (median [5 %, 95 %])"),
     ("not_recovered", "Probability of no recovery within the horizon"),
 )
-PROBABILITY_METRICS = {"quasi_extinction", "outbreak", "not_recovered"}
 KIND_STYLE = {
     "predation": ("#c0392b", "-", "eats"),
     "scavenging": ("#8e5b2e", "-", "scavenges"),
@@ -66,45 +70,6 @@ BASELINE_COLOUR = "#566573"
 REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "irregular": "#f39c12",
                   "chaotic": "#c0392b", "extinction": "#1c2833"}
 MAX_SENSITIVITY_FIGURES = 8
-
-
-# ----------------------------------------------------------------------------- formatting
-
-def fmt_num(v) -> str:
-    """A saved number as printed: 3 significant digits, no exponent above 100, ∞ for infinity."""
-    try:
-        v = float(v)
-    except (TypeError, ValueError):
-        return str(v)
-    if math.isnan(v):
-        return "n/a"
-    if math.isinf(v):
-        return "∞" if v > 0 else "−∞"
-    if abs(v) >= 100:
-        return f"{v:.0f}"
-    return f"{v:.3g}"
-
-
-def fmt_prob(v) -> str:
-    """A saved probability as printed: a percentage with one decimal."""
-    v = float(v)
-    return "n/a" if math.isnan(v) else f"{100 * v:.1f}\u00a0%"
-
-
-def fmt_change(v) -> str:
-    """A saved relative change as printed: a signed whole percentage."""
-    v = float(v)
-    return "n/a" if math.isnan(v) else ("+∞ %" if math.isinf(v) else f"{100 * v:+.0f}\u00a0%")
-
-
-def fmt_cell(metric: str, value, low, high) -> str:
-    """Value with its interval, in the style of the metric."""
-    if metric in PROBABILITY_METRICS:
-        lo, hi = (fmt_prob(x).replace("\u00a0%", "") for x in (low, high))
-        return f"{fmt_prob(value)} [{lo}, {hi}]"
-    if metric == "mean_change":
-        return f"{fmt_change(value)} [{fmt_change(low)}, {fmt_change(high)}]"
-    return f"{fmt_num(value)} [{fmt_num(low)}, {fmt_num(high)}]"
 
 
 # ----------------------------------------------------------------------------- loading
@@ -121,6 +86,9 @@ class Results:
     risk: pd.DataFrame
     bands: pd.DataFrame
     priors: pd.DataFrame
+    effects: pd.DataFrame
+    objectives: pd.DataFrame
+    comparisons: pd.DataFrame
     sensitivity: dict | None = None
     dynamics: dict | None = None
 
@@ -162,11 +130,13 @@ def load_results(path) -> Results:
     if not path.is_dir():
         raise CaseError(str(path), "", "is not a results directory (run `impact assess` first)")
     manifest = read_manifest(path)
-    for key in ("case", "species", "options", "counts", "horizons", "time_unit"):
+    for key in ("case", "species", "options", "counts", "horizons", "time_unit", "judgement", "objectives"):
         if key not in manifest:
             raise CaseError(str(path / "manifest.json"), key, "missing; the results directory is incomplete")
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
-                   read_table(path / "priors.csv"), _read_stage(path / "sensitivity"), _read_stage(path / "dynamics"))
+                   read_table(path / "priors.csv"), read_table(path / "effects.csv"),
+                   read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
+                   _read_stage(path / "sensitivity"), _read_stage(path / "dynamics"))
 
 
 # ----------------------------------------------------------------------------- derived readings
@@ -181,110 +151,14 @@ def option_names(m: dict) -> list[str]:
     return [o["name"] for o in m["options"]]
 
 
-def verdict(res: Results, option: str) -> str:
-    """One line per option from the saved quasi-extinction probabilities at the last horizon.
-
-    A species counts as raised (lowered) when the option's interval lies wholly above (below)
-    the baseline's; otherwise the change is not clear at the saved confidence level.
-    """
-    m = res.manifest
-    H = max(m["horizons"])
-    up, down, flat = [], [], []
-    for sp in (s["name"] for s in m["species"]):
-        o, b = _row(res.risk, option, sp, "quasi_extinction", H), _row(res.risk, "baseline", sp, "quasi_extinction", H)
-        if o is None or b is None:
-            continue
-        text = f"{sp} ({fmt_prob(b.value)} → {fmt_prob(o.value)})"
-        if o.low > b.high:
-            up.append(text)
-        elif o.high < b.low:
-            down.append(text)
-        else:
-            flat.append(sp)
-    parts = []
-    if up:
-        parts.append("raises quasi-extinction risk for " + ", ".join(up))
-    if down:
-        parts.append("lowers it for " + ", ".join(down))
-    if flat:
-        parts.append("no clear change for " + ", ".join(flat))
-    if not parts:
-        return f"{option}: no quasi-extinction probabilities were saved."
-    return f"{option}, by {fmt_num(H)} {m['time_unit']} (baseline → option): " + "; ".join(parts) + "."
-
-
-def warnings_from_results(res: Results) -> list[str]:
-    """Specific warnings read from the saved counts, regimes and convergence verdicts."""
-    m = res.manifest
-    c = m["counts"]
-    out = []
-    if m["case"].get("invented"):
-        out.append("The case file is marked INVENTED: it is an example, not real site data.")
-    tried, kept, wanted = c.get("tried", 0), c.get("kept", 0), c.get("wanted", c.get("kept", 0))
-    if kept < wanted:
-        out.append(f"Only {kept} of the {wanted} wanted plausible members were found within the draw limit; "
-                   "intervals are wider than planned.")
-    # more than half of the draws rejected: a rule of thumb for priors at odds with what is observed
-    if tried and kept / tried < 0.5:
-        out.append(f"High share of implausible draws: {kept} of {tried} draws tried were kept "
-                   f"({c.get('failed', 0)} failed numerically, {c.get('extinct', 0)} lost a species, "
-                   f"{c.get('out_of_range', 0)} lay outside an observed range). The priors and the observations disagree.")
-    elif c.get("failed", 0):
-        out.append(f"{c['failed']} of {tried} draws failed numerically during spin-up and were not kept.")
-    for opt, f in (c.get("failed_by_option") or {}).items():
-        if f.get("failed"):
-            reasons = ", ".join(f"{k}: {v}" for k, v in f.items() if k != "failed")
-            out.append(f"{f['failed']} of {kept} members failed numerically under {opt}"
-                       + (f" ({reasons})" if reasons else "") + "; they are counted, not dropped silently.")
-    dyn = res.dynamics or {}
-    shares = dyn.get("regime_shares")
-    if shares is not None and not shares.empty:
-        for _, r in shares.iterrows():
-            if r.regime in ("chaotic", "irregular", "cycle") and r.share > 0:
-                what = "cycling" if r.regime == "cycle" else r.regime
-                finite = "horizon_median" in r and not pd.isna(r.horizon_median) and np.isfinite(r.horizon_median)
-                if finite:
-                    out.append(f"Under {r.option}, {fmt_prob(r.share)} of members are {what}; median predictability "
-                               f"horizon {fmt_num(r.horizon_median)} {m['time_unit']}: individual trajectories cannot "
-                               "be predicted further ahead; read the bands, not single runs.")
-                else:
-                    out.append(f"Under {r.option}, {fmt_prob(r.share)} of members are {what}: errors in today's state "
-                               "do not grow exponentially, but the timing of peaks and troughs is uncertain; read the "
-                               "bands, not single runs.")
-    sens = res.sensitivity or {}
-    conv = sens.get("convergence")
-    if conv is not None and not conv.empty:
-        bad = conv[conv.converged.astype(str).str.lower().isin(["false", "0", "no"])]
-        # one line per option: a reviewer needs the extent, the full list is in convergence.csv
-        for opt, g in bad.groupby("option", sort=False):
-            total = int((conv.option == opt).sum())
-            names = [f"{r.metric} of {r.species}" for _, r in g.head(4).iterrows()]
-            more = f" and {len(g) - len(names)} more" if len(g) > len(names) else ""
-            out.append(f"Under {opt}, the sensitivity indices of {len(g)} of {total} outputs did not converge "
-                       f"(interval width or N/2 shift above the tolerance of {fmt_num(g.tolerance.iloc[0])}), e.g. "
-                       f"{', '.join(names)}{more}; their rankings are provisional (list in sensitivity/convergence.csv).")
-    meta = sens.get("sensitivity")
-    if isinstance(meta, dict) and meta.get("failures"):
-        f = meta["failures"]
-        if isinstance(f, dict):
-            by_opt = f.get("points_failed_by_option", {}) or {}
-            n_failed = sum(int(v) for v in by_opt.values())
-            if n_failed or f.get("refused_outputs"):
-                out.append(f"{n_failed} sensitivity design runs failed numerically across options "
-                           f"({', '.join(f'{k}: {v}' for k, v in by_opt.items())}) and "
-                           f"{f.get('refused_outputs', 0)} outputs were refused for too many failures.")
-        else:
-            out.append(f"{f} of {meta.get('runs', '?')} sensitivity runs failed numerically.")
-    return out
-
-
 def iucn_rows(res: Results) -> list[dict]:
     """Indicative criterion E reading per option and species with a generation time."""
     m = res.manifest
     rows = []
     for opt in ["baseline", *option_names(m)]:
         for s in m["species"]:
-            if s.get("generation_time") is None:
+            # a target's loss is the aim of an option, not a conservation concern
+            if s.get("generation_time") is None or s["role"] == "target":
                 continue
             probs = {}
             for h in m["horizons"]:
@@ -512,9 +386,29 @@ class Assets:
         return ASSET_SCHEME + name
 
 
+def interval_caption(table: pd.DataFrame, labels: dict) -> str:
+    """Which interval each measure of a table carries, read from its ``interval`` and ``level`` columns."""
+    groups: dict[str, list[str]] = {}
+    for key, g in table.groupby(["interval", "level"], sort=False):
+        kind, level = key
+        names = [labels.get(x, x) for x in dict.fromkeys(g[g.columns[_label_column(g)]])]
+        groups.setdefault(describe_interval(kind, float(level)), []).extend(names)
+    return "; ".join(f"{', '.join(dict.fromkeys(v))}: {k}" for k, v in groups.items()) + "."
+
+
+def _label_column(g: pd.DataFrame) -> int:
+    # risk.csv names its measure in `metric`; effects.csv in `statistic`
+    return list(g.columns).index("statistic" if "statistic" in g.columns else "metric")
+
+
+def _n_note(n, kept: int) -> str:
+    return "" if pd.isna(n) or int(n) == kept else f"n {int(n)}"
+
+
 def _risk_table(res: Results, option: str) -> dict:
     m = res.manifest
     hs = list(m["horizons"])
+    kept = int(m["counts"]["kept"])
     rows = []
     for s in m["species"]:
         sp = s["name"]
@@ -527,12 +421,75 @@ def _risk_table(res: Results, option: str) -> dict:
                     cells.append(None)
                     continue
                 any_value = True
-                cells.append(dict(option=fmt_cell(metric, o.value, o.low, o.high),
+                cells.append(dict(option=fmt_cell(metric, o.value, o.low, o.high), n=_n_note(o.n, kept),
                                   baseline=None if b is None else fmt_cell(metric, b.value, b.low, b.high),
                                   unit="" if metric in PROBABILITY_METRICS or metric == "mean_change" else o.unit))
             if any_value:
                 rows.append(dict(species=sp, metric=label, cells=cells))
-    return dict(horizons=[fmt_num(h) for h in hs], rows=rows)
+    shown = res.risk[res.risk.option.isin([option, "baseline"])]
+    return dict(horizons=[fmt_num(h) for h in hs], rows=rows,
+                caption=interval_caption(shown, dict(RISK_METRICS)))
+
+
+EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)", "p_material": "material change",
+                 "p_worse": "worse than doing nothing", "difference": "change in chance"}
+
+
+def _effects_table(res: Results, option: str) -> dict:
+    """Per species and horizon: the paired change, its material and worse chances, and event chance changes."""
+    e = res.effects[res.effects.option == option]
+    kept = int(res.manifest["counts"]["kept"])
+    hs = list(res.manifest["horizons"])
+    rows = []
+    for s in res.manifest["species"]:
+        sp = s["name"]
+        es = e[e.species == sp]
+        if es.empty:
+            continue
+        tag = s["role"] + ", " + ("direct" if bool(str(es.direct.iloc[0]).lower() == "true") else "indirect")
+        for metric, stats, label in (("mean_abundance", ("median_change", "p_material", "p_worse"), "abundance"),
+                                     ("quasi_extinction", ("difference", "p_worse"), "quasi-extinction"),
+                                     ("outbreak", ("difference", "p_worse"), "outbreak")):
+            for stat in stats:
+                cells = []
+                for h in hs:
+                    r = _row_stat(es, metric, stat, h)
+                    cells.append(None if r is None else dict(text=_effect_cell(r), n=_n_note(r.n, kept)))
+                if any(cells):
+                    rows.append(dict(species=sp, tag=tag, measure=f"{label}: {EFFECT_LABELS[stat]}", cells=cells))
+    return dict(horizons=[fmt_num(h) for h in hs], rows=rows, caption=interval_caption(e, EFFECT_LABELS))
+
+
+def _row_stat(e: pd.DataFrame, metric: str, stat: str, h: float):
+    r = e[(e.metric == metric) & (e.statistic == stat) & np.isclose(e.horizon, h)]
+    return None if r.empty else r.iloc[0]
+
+
+def _effect_cell(r) -> str:
+    if r.statistic == "median_change":
+        return f"{fmt_change(r.value)} [{fmt_change(r.low)}, {fmt_change(r.high)}]"
+    if r.statistic == "difference":
+        return f"{fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}]"
+    return with_term(r.value, r.low, r.high)
+
+
+def _objectives_context(res: Results) -> list[dict]:
+    out = []
+    for _, r in res.objectives.iterrows():
+        got = (with_term(r.value, r.low, r.high) if r.statistic == "chance"
+               else f"{fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}]")
+        need = {"chance_at_least": f"chance ≥ {fmt_prob(r.bound)}", "chance_at_most": f"chance ≤ {fmt_prob(r.bound)}",
+                "increase_at_most": f"rise ≤ {fmt_points(r.bound).lstrip('+')}",
+                "decrease_at_least": f"fall ≥ {fmt_points(r.bound).lstrip('+')}"}[r.requirement]
+        out.append(dict(objective=r.objective, option=r.option, event=r.event, need=need, got=got,
+                        status=r.status, n=fmt_num(r.n)))
+    return out
+
+
+def _comparisons_context(res: Results) -> list[dict]:
+    c = res.comparisons[res.comparisons.statistic == "p_better"]
+    return [dict(objective=r.objective, option=r.option, versus=r.versus, text=with_term(r.value, r.low, r.high),
+                 n=fmt_num(r.n)) for _, r in c.iterrows()]
 
 
 def _sensitivity_context(res: Results, assets: Assets) -> dict | None:
@@ -605,22 +562,28 @@ def _dynamics_context(res: Results, assets: Assets) -> dict | None:
 def report_context(res: Results, assets: Assets) -> dict:
     """Everything the template prints, already formatted from the saved numbers."""
     m = res.manifest
-    opts = option_names(m)
     counts = m["counts"]
+    failed = {k: int(v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()}
     options = []
     for k, o in enumerate(m["options"]):
         colour = OPTION_COLOURS[k % len(OPTION_COLOURS)]
         options.append(dict(name=o["name"], description=o.get("description", ""), interventions=o.get("interventions", []),
+                            touches=o["touches"], failed=failed.get(o["name"], 0),
                             figure=assets.add(f"bands-{k}.png", bands_figure(res, o["name"], colour), "image/png"),
-                            risk=_risk_table(res, o["name"])))
+                            risk=_risk_table(res, o["name"]), effects=_effects_table(res, o["name"])))
+    thin, why = thin_run(m)
+    verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
+    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()]
     return dict(
         m=m, case=m["case"], title=m["case"].get("title", ""), date=str(m.get("started_utc", ""))[:10],
-        verdicts=[verdict(res, o) for o in opts], caution=m.get("caution", ""), warnings=warnings_from_results(res),
+        verdict=verdict, caution=m.get("caution", ""), warnings=[w.text for w in warnings],
+        top_warnings=[w.text for w in warnings if w.rank <= 3], judgement=m["judgement"],
+        objectives=_objectives_context(res), comparisons=_comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m["species"], interactions=m.get("interactions") or [], equations=m.get("equations", []),
-        foodweb=assets.add("foodweb.svg", food_web_figure(m), "image/svg+xml"), priors=priors,
+        foodweb=assets.add("foodweb.svg", food_web_figure(m), "image/svg+xml"), priors=priors, thin=thin,
         interventions=m.get("interventions", []), options=options, iucn=iucn_rows(res),
         sensitivity=_sensitivity_context(res, assets), dynamics=_dynamics_context(res, assets),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,

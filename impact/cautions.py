@@ -1,0 +1,137 @@
+"""The warnings page: one line per concern, ranked by how much it should shake the reader's confidence.
+
+A concern that touches several options (numerical failures, cycling members, unconverged
+indices) is one line naming every option it concerns, not one line per option. The fixed
+cautions that defer to licensed ecological review and local regulation live in the template
+and are always printed; these are the specific warnings read from the saved results.
+
+Ranks (lower first): a run too thin for a verdict; fewer members than wanted; numerical
+failures; objectives the interval cannot decide; most draws implausible; predictability
+shorter than the assessment; cycling or aperiodic members; sensitivity problems; an invented
+case. The order is the project's judgement (common practice, no source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .formatting import fmt_num, fmt_prob
+
+RANK_THIN, RANK_SHORTFALL, RANK_FAILURES, RANK_UNDECIDED = 0, 1, 2, 3
+RANK_IMPLAUSIBLE, RANK_PREDICTABILITY, RANK_OSCILLATION, RANK_SENSITIVITY, RANK_INVENTED = 4, 5, 6, 7, 8
+# more than half of the draws rejected: priors at odds with observations (common practice, no source)
+IMPLAUSIBLE_SHARE = 0.5
+OSCILLATING = {"cycle": "cycling", "irregular": "aperiodic (neither settling nor repeating)",
+               "aperiodic": "aperiodic (neither settling nor repeating)"}
+
+
+@dataclass(frozen=True)
+class Caution:
+    """One specific warning: its rank (0 most serious) and its text."""
+
+    rank: int
+    text: str
+
+
+def _join(parts: list[str]) -> str:
+    return "; ".join(parts)
+
+
+def _member_cautions(m: dict, thin_reason: str) -> list[Caution]:
+    c = m["counts"]
+    out = []
+    if thin_reason:
+        out.append(Caution(RANK_THIN, thin_reason))
+    tried, kept, wanted = int(c["tried"]), int(c["kept"]), int(c.get("wanted", c["kept"]))
+    if kept < wanted and not thin_reason:
+        out.append(Caution(RANK_SHORTFALL, f"Only {kept} of the {wanted} wanted plausible members were found within "
+                                           "the draw limit; every interval is wider than planned."))
+    failed = {opt: f for opt, f in (c.get("failed_by_option") or {}).items() if f.get("failed")}
+    if failed:
+        parts = []
+        for opt, f in failed.items():
+            reasons = ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed")
+            parts.append(f"{f['failed']} of {kept} under {opt}" + (f" ({reasons})" if reasons else ""))
+        out.append(Caution(RANK_FAILURES, "Members that failed numerically (counted, not dropped silently; every "
+                                          "table gives the n behind each number): " + _join(parts) + "."))
+    if tried and kept / tried < IMPLAUSIBLE_SHARE:
+        out.append(Caution(RANK_IMPLAUSIBLE, f"Most draws were implausible: {kept} of {tried} draws tried were kept "
+                                             f"({c.get('failed', 0)} failed numerically, {c.get('extinct', 0)} lost a "
+                                             f"species, {c.get('out_of_range', 0)} lay outside an observed range). The "
+                                             "priors and the observations disagree."))
+    elif c.get("failed", 0):
+        out.append(Caution(RANK_FAILURES, f"{c['failed']} of {tried} draws failed numerically during spin-up and "
+                                          "were not kept."))
+    return out
+
+
+def _objective_cautions(objectives: pd.DataFrame) -> list[Caution]:
+    und = objectives[(objectives.status == "undecided") & (objectives.option != "baseline")]
+    if und.empty:
+        return []
+    parts = [f"“{obj}” under {', '.join(g.option)}" for obj, g in und.groupby("objective", sort=False)]
+    return [Caution(RANK_UNDECIDED, "Objectives the interval cannot decide (the interval straddles the requirement; "
+                                    "more members would narrow it): " + _join(parts) + ".")]
+
+
+def _regime_cautions(m: dict, shares: pd.DataFrame | None) -> list[Caution]:
+    if shares is None or shares.empty:
+        return []
+    H, unit = float(m["horizon"]), m["time_unit"]
+    out = []
+    chaotic = shares[(shares.regime == "chaotic") & (shares.share > 0)]
+    short = chaotic[np.isfinite(chaotic.horizon_median.astype(float)) & (chaotic.horizon_median.astype(float) < H)]
+    if not short.empty:
+        parts = [f"{r.option}: {fmt_prob(r.share)} of members, median horizon {fmt_num(r.horizon_median)} {unit}"
+                 for _, r in short.iterrows()]
+        out.append(Caution(RANK_PREDICTABILITY,
+                           f"Chaotic members whose predictability horizon is shorter than the {fmt_num(H)} {unit} "
+                           "assessed (individual trajectories cannot be predicted that far; read the bands, not single "
+                           "runs): " + _join(parts) + "."))
+    for regime, what in OSCILLATING.items():
+        rows = shares[(shares.regime == regime) & (shares.share > 0)]
+        if rows.empty:
+            continue
+        parts = [f"{r.option} {fmt_prob(r.share)} ({fmt_num(r['count'])} members)" for _, r in rows.iterrows()]
+        out.append(Caution(RANK_OSCILLATION, f"Members that are {what} in the dynamics screen: " + _join(parts)
+                           + ". The timing of peaks and troughs is uncertain; read the bands, not single runs."))
+    return out
+
+
+def _sensitivity_cautions(sens: dict) -> list[Caution]:
+    out = []
+    conv = sens.get("convergence")
+    if conv is not None and not conv.empty:
+        bad = conv[conv.converged.astype(str).str.lower().isin(["false", "0", "no"])]
+        if not bad.empty:
+            parts = [f"{opt} {len(g)} of {int((conv.option == opt).sum())}" for opt, g in bad.groupby("option", sort=False)]
+            out.append(Caution(RANK_SENSITIVITY,
+                               "Sensitivity indices that did not converge (interval width or N/2 shift above the "
+                               f"tolerance of {fmt_num(bad.tolerance.iloc[0])}), outputs per run: " + _join(parts)
+                               + "; their rankings are provisional (list in sensitivity/convergence.csv)."))
+    meta = sens.get("sensitivity")
+    failures = meta.get("failures") if isinstance(meta, dict) else None
+    if isinstance(failures, dict):
+        by_opt = {k: int(v) for k, v in (failures.get("points_failed_by_option") or {}).items() if int(v)}
+        refused = int(failures.get("refused_outputs", 0) or 0)
+        if by_opt or refused:
+            parts = [f"{k} {v}" for k, v in by_opt.items()]
+            out.append(Caution(RANK_SENSITIVITY, "Sensitivity design runs that failed numerically: "
+                               + (_join(parts) if parts else "none") + f"; outputs refused for too many failures: "
+                               f"{refused}."))
+    return out
+
+
+def cautions(m: dict, objectives: pd.DataFrame, thin_reason: str, dynamics: dict | None,
+             sensitivity: dict | None) -> list[Caution]:
+    """Every specific warning of a results folder, one per concern, most serious first."""
+    out = _member_cautions(m, thin_reason)
+    out += _objective_cautions(objectives)
+    out += _regime_cautions(m, (dynamics or {}).get("regime_shares"))
+    out += _sensitivity_cautions(sensitivity or {})
+    if m["case"].get("invented"):
+        out.append(Caution(RANK_INVENTED, "The case file is marked INVENTED: it is an example, not real site data."))
+    return sorted(out, key=lambda c: c.rank)

@@ -1,0 +1,132 @@
+"""The verdict page: calibrated words, indirect effects, thin runs, and numbers that match the tables."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from casefiles import mesopredator_case, write_case
+from impact.cli import EXIT_NO_VERDICT, main
+from impact.formatting import fmt_bare_points, fmt_bare_prob, fmt_change, fmt_points, fmt_prob
+from impact.likelihood import likelihood_term
+from impact.report import iucn_rows, load_results
+from impact.verdict import reading
+
+DEMO = Path(__file__).resolve().parent.parent / "casework" / "island_mesopredator.toml"
+
+
+# Mastrandrea et al. (2010), IPCC guidance note, Table 1 (from memory): virtually certain 99–100 %, very likely
+# 90–100 %, likely 66–100 %, about as likely as not 33–66 %, unlikely 0–33 %, very unlikely 0–10 %,
+# exceptionally unlikely 0–1 %; the most specific term wins.
+@pytest.mark.parametrize("p, term", [
+    (1.0, "virtually certain"), (0.99, "virtually certain"), (0.9899, "very likely"), (0.90, "very likely"),
+    (0.8999, "likely"), (0.66, "likely"), (0.6599, "about as likely as not"), (0.5, "about as likely as not"),
+    (0.3301, "about as likely as not"), (0.33, "unlikely"), (0.1001, "unlikely"), (0.10, "very unlikely"),
+    (0.0101, "very unlikely"), (0.01, "exceptionally unlikely"), (0.0, "exceptionally unlikely"),
+])
+def test_likelihood_terms_follow_the_published_scale(p, term):
+    assert likelihood_term(p) == term
+
+
+def test_likelihood_term_refuses_a_non_probability():
+    with pytest.raises(ValueError):
+        likelihood_term(1.2)
+    assert likelihood_term(float("nan")) == "not estimated"
+
+
+def _assess(tmp_path, data, *flags):
+    f = write_case(tmp_path, data)
+    out = tmp_path / "out"
+    code = main(["assess", str(f), "--out", str(out), "--quiet", "--workers", "1", "--no-sensitivity",
+                 "--no-dynamics", *flags])
+    return code, out
+
+
+@pytest.fixture(scope="module")
+def meso_results(tmp_path_factory):
+    code, out = _assess(tmp_path_factory.mktemp("meso"), mesopredator_case(members=150), "--no-report")
+    assert code == 0
+    return load_results(out)
+
+
+def _reading(res):
+    return reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)
+
+
+def test_verdict_names_the_released_mesopredator_as_an_indirect_side_effect(meso_results):
+    # mesopredator release (Courchamp, Langlais & Sugihara 1999; Crooks & Soulé 1999), read off the verdict
+    r = _reading(meso_results)
+    apex_only = next(o for o in r.options if o.option == "apex only")
+    heads = [x.head for x in apex_only.side_effects]
+    assert heads[0].startswith("meso (indirect")  # the largest change comes first
+    assert any(h.startswith("bird (protected, indirect") for h in heads)
+    bird = next(x for x in apex_only.side_effects if x.head.startswith("bird"))
+    meso = next(x for x in apex_only.side_effects if x.head.startswith("meso"))
+    assert meso.body.startswith("mean abundance") and " +" in meso.body.split("(")[0]
+    assert " -" in bird.body.split("(")[0]
+    # the target is an outcome, never a side effect, and gets no IUCN reading
+    assert [x.head for x in apex_only.targets] == ["apex (target)"]
+    assert not any(h.startswith("apex") for h in heads)
+    assert all(row["species"] != "apex" for row in iucn_rows(meso_results))
+
+
+def test_removing_both_predators_is_read_as_raising_the_bird(meso_results):
+    r = _reading(meso_results)
+    both = next(o for o in r.options if o.option == "apex and meso")
+    bird = next(x for x in both.side_effects if x.head.startswith("bird"))
+    assert " +" in bird.body.split("(")[0]
+    assert any(x.head.startswith("“bird spared” MET") for x in both.objectives)
+
+
+def test_a_thin_run_gives_no_verdict_but_keeps_the_tables(tmp_path, capsys):
+    code, out = _assess(tmp_path, mesopredator_case(members=40))
+    assert code == EXIT_NO_VERDICT == 3
+    text = capsys.readouterr().out
+    assert "NO VERDICT: only 40 plausible members" in text and "side effect:" not in text
+    risk = pd.read_csv(out / "risk.csv")
+    assert len(risk) and np.isfinite(risk.value).any()
+    assert len(pd.read_csv(out / "effects.csv"))
+    from pypdf import PdfReader
+
+    first = PdfReader(str(out / "report.pdf")).pages[0].extract_text()
+    assert "NO VERDICT" in first and "What each option does" not in first
+
+
+def _printed_forms(folder: Path) -> set[str]:
+    """Every way a saved number may be printed, over every numeric cell of the tables behind page 1."""
+    forms = set()
+    for name in ("risk", "effects", "objectives", "comparisons"):
+        df = pd.read_csv(folder / f"{name}.csv")
+        for col in ("value", "low", "high", "bound"):
+            if col not in df:
+                continue
+            for v in df[col].dropna().to_numpy(float):
+                forms.update({fmt_prob(v), fmt_bare_prob(v), fmt_points(v), fmt_bare_points(v), fmt_change(v)})
+                if col == "bound":  # a requirement's bound is a size, printed unsigned
+                    forms.add(fmt_points(v).lstrip("+"))
+    return {f.replace("\u00a0", " ") for f in forms}
+
+
+def test_every_probability_on_page_one_is_in_the_tables(tmp_path):
+    out = tmp_path / "demo"
+    code = main(["assess", str(DEMO), "--out", str(out), "--quiet", "--workers", "1", "--members", "120",
+                 "--no-sensitivity", "--no-dynamics"])
+    assert code == 0
+    from pypdf import PdfReader
+
+    pages = [p.extract_text() for p in PdfReader(str(out / "report.pdf")).pages]
+    end = next(i for i, t in enumerate(pages) if "Contents" in t)
+    text = " ".join(pages[:end + 1]).split("Contents")[0].replace("\u00a0", " ")
+    text = text.split("How to read this page")[0]  # the reading guide quotes the scale's fixed edges
+    assert "What each option does" in text and "rat (indirect" in text
+    forms = _printed_forms(out)
+    tokens = re.findall(r"[+-]?\d[\d,]*\.\d (?:%|points)", text)
+    tokens += [t for br in re.findall(r"\[([^\]]+)\]", text) for t in br.split(", ")]
+    tokens += re.findall(r"[+-]\d[\d,]* %", text)
+    assert len(tokens) > 30
+    missing = [t for t in tokens if t.strip() not in forms]
+    assert not missing, f"page-1 numbers not found in the tables: {missing[:10]}"
