@@ -132,13 +132,26 @@ def target_line(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, option: str,
     q = _one(risk, option=option, species=species, metric="quasi_extinction", horizon=H)
     b = _one(risk, option="baseline", species=species, metric="quasi_extinction", horizon=H)
     if q is not None:
-        parts.append(f"below its quasi-extinction level by {fmt_num(H)} {unit} in {with_term(q.value, q.low, q.high)}"
+        parts.append(f"chance of falling below its quasi-extinction level by {fmt_num(H)} {unit}: "
+                     f"{with_term(q.value, q.low, q.high)}"
                      + (f" (without the option {fmt_prob(b.value)})" if b is not None else ""))
     c = _one(effects, option=option, species=species, metric="mean_abundance", horizon=H, statistic="median_change")
     if c is not None:
         parts.append(f"mean abundance over 0–{fmt_num(H)} {unit} {fmt_change(c.value)} against doing nothing "
                      f"(median; 5–95 % of members {fmt_change(c.low)} to {fmt_change(c.high)})")
     return Item(f"{species} (target)", "; ".join(parts) + "." if parts else "no outcome saved.")
+
+
+def introduced_item(m: dict, risk: pd.DataFrame, option: str, species: str) -> Item:
+    """A species absent today that the option brings in: where it stands by the last horizon."""
+    H = max(m["horizons"])
+    r = _one(risk, option=option, species=species, metric="mean_abundance", horizon=H)
+    body = "absent without the option, so no paired change exists"
+    if r is not None:
+        unit = next(s["unit"] for s in m["species"] if s["name"] == species)
+        body += (f"; mean abundance over 0–{fmt_num(H)} {m['time_unit']} under the option {fmt_num(r.value)} {unit} "
+                 f"(median; 5–95 % of members {fmt_num(r.low)} to {fmt_num(r.high)})")
+    return Item(f"{species} (introduced by this option)", body + ".")
 
 
 @dataclass(frozen=True)
@@ -150,17 +163,20 @@ class _Effect:
 def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: dict) -> tuple[str, float, float]:
     """The abundance side of an effect at the horizon where a material change is likeliest."""
     e = _pick(effects, option=option, species=species, metric="mean_abundance")
-    pm = e[e.statistic == "p_material"]
-    if pm.empty:
+    pm = e[(e.statistic == "p_material") & (e.n.astype(float) > 0)]
+    if pm.empty:  # absent without the option: no paired relative change exists
         return "", 0.0, 0.0
     # the latest horizon among those with the highest chance of a material change
     best = pm[pm.value == pm.value.max()].iloc[-1]
     h = float(best.horizon)
     med = _one(e, horizon=h, statistic="median_change")
     size = abs(math.log1p(max(float(med.value), -0.999999))) if med is not None and np.isfinite(med.value) else 0.0
+    down = _one(e, horizon=h, statistic="p_material_decrease")
+    up = _one(e, horizon=h, statistic="p_material_increase")
     text = (f"mean abundance over 0–{fmt_num(h)} {m['time_unit']} {fmt_change(med.value)} (median paired change; "
-            f"5–95 % of members {fmt_change(med.low)} to {fmt_change(med.high)}); a material change "
-            f"(±{fmt_change(best.threshold).lstrip('+')}) in {with_term(best.value, best.low, best.high)}")
+            f"5–95 % of members {fmt_change(med.low)} to {fmt_change(med.high)}); chance of a material change "
+            f"(±{fmt_change(best.threshold).lstrip('+')}): {with_term(best.value, best.low, best.high)}"
+            f" (a fall {fmt_prob(down.value)}, a rise {fmt_prob(up.value)})")
     return text, float(best.value), size
 
 
@@ -192,6 +208,10 @@ def option_reading(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, objective
         if s["role"] == "target":
             targets.append(target_line(m, risk, effects, option, sp))
             continue
+        if not s["present"]:
+            if sp in touched:
+                sides.append(_Effect(math.inf, introduced_item(m, risk, option, sp)))
+            continue
         abundance, p_mat, size = _abundance_part(effects, option, sp, m)
         events = _event_parts(effects, risk, option, sp, m)
         tag = ("protected, " if s["role"] == "protected" else "") + (
@@ -203,10 +223,11 @@ def option_reading(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, objective
             pm = _one(effects, option=option, species=sp, metric="mean_abundance", horizon=max(m["horizons"]),
                       statistic="p_material")
             quiet.append(f"{sp}{' (protected)' if s['role'] == 'protected' else ''}"
-                         + (f" {with_term(pm.value, pm.low, pm.high)}" if pm is not None else ""))
+                         + (f" {with_term(pm.value, pm.low, pm.high)}" if pm is not None and pm.n > 0 else ""))
     sides.sort(key=lambda e: -e.size)
     unchanged = ("Material change unlikely for: " + "; ".join(quiet) + " (chance of a material change of mean "
-                 "abundance over the whole period; no material change in quasi-extinction or outbreak chance)."
+                 "abundance over the whole period; their quasi-extinction and outbreak chances move by less than the "
+                 "material level)."
                  if quiet else "")
     return OptionReading(option, objs, tuple(targets), tuple(e.item for e in sides), unchanged)
 

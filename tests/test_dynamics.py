@@ -249,7 +249,8 @@ def test_assess_writes_dynamics_for_every_option(tmp_path):
     path = rm_case(tmp_path, 1.5)
     out = tmp_path / "res"
     rc = main(["assess", str(path), "--out", str(out), "--members", "3", "--quiet"])
-    assert rc == 0
+    assert rc == 3  # three members are too thin for a verdict; every table is still written
+
     reg = pd.read_csv(out / "dynamics" / "regimes.csv")
     assert list(reg.columns)[:7] == ["option", "member", "regime", "period", "lyapunov", "horizon_time", "extinct"]
     assert set(reg.option) == {"baseline", "trapping"}

@@ -263,9 +263,10 @@ def staged_text(results, tmp_path_factory):
 @pytest.mark.parametrize("needle", [
     "NOTconverged",            # convergence verdict table
     "didnotconverge",          # and the warning up front,
-    "1of1outputsdidnotconverge",  # aggregated to one line per option
-    "33.3%ofmembersarechaotic",  # regime share read from regime_shares.csv
-    "medianpredictabilityhorizon11.5",
+    "outputsperrun:",          # aggregated to one line naming every run it concerns
+    "1of1",
+    "33.3%ofmembers,medianhorizon11.5",  # regime share and horizon read from regime_shares.csv
+    "predictabilityhorizonisshorterthanthe30",  # compared with the assessment horizon
     "Bifurcationdiagram",
     *[_squash(p.name) for p in CASE.uncertain],
 ])
