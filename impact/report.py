@@ -40,6 +40,7 @@ from .cautions import cautions
 from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
 from .verdict import reading, thin_run, with_term
+from .webfigure import food_web_svg
 from .iucn import CATEGORY_NAMES, criterion_e_in_units
 
 ASSET_SCHEME = "impact-asset:"
@@ -219,51 +220,6 @@ def _figure(w, h):
     fig = Figure(figsize=(w, h))
     fig.set_layout_engine("constrained")
     return fig
-
-
-def food_web_figure(m: dict) -> bytes:
-    """Nodes for the species (and the carrion pool), arrows for the saved interactions."""
-    from matplotlib.lines import Line2D
-    from matplotlib.patches import FancyArrowPatch
-
-    inter = m.get("interactions") or []
-    names = [s["name"] for s in m["species"]]
-    for it in inter:
-        for end in (it["from"], it["to"]):
-            if end not in names:
-                names.append(end)
-    n = len(names)
-    ang = np.pi / 2 - 2 * np.pi * np.arange(n) / max(n, 1)
-    pos = {nm: (np.cos(a), np.sin(a)) for nm, a in zip(names, ang)}
-    fig = _figure(6.0, 4.2)
-    ax = fig.add_subplot()
-    ax.set_aspect("equal")
-    ax.axis("off")
-    for it in inter:
-        colour, style, _ = KIND_STYLE.get(it["kind"], ("#000000", ":", it["kind"]))
-        a, b = np.array(pos[it["from"]]), np.array(pos[it["to"]])
-        arrow = FancyArrowPatch(a, b, arrowstyle="-|>", mutation_scale=14, color=colour, linestyle=style,
-                                linewidth=1.6, connectionstyle="arc3,rad=0.18", shrinkA=22, shrinkB=22)
-        ax.add_patch(arrow)
-        if it.get("response"):
-            mid = (a + b) / 2
-            perp = np.array([-(b - a)[1], (b - a)[0]]) * 0.16
-            ax.text(*(mid - perp), {"holling1": "I", "holling2": "II", "holling3": "III"}.get(it["response"], _label(it["response"])),
-                    fontsize=7, color=colour, ha="center", va="center",
-                    bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none"))
-    present = {s["name"]: s.get("present", True) for s in m["species"]}
-    for nm, (x, y) in pos.items():
-        face = "#fdfefe" if present.get(nm, True) else "#eaeded"
-        ax.text(x, y, _label(nm), ha="center", va="center", fontsize=9,
-                bbox=dict(boxstyle="round,pad=0.4", fc=face, ec="#1c2833", lw=1))
-    ax.set_xlim(-1.45, 1.45)
-    ax.set_ylim(-1.3, 1.3)
-    kinds = sorted({it["kind"] for it in inter})
-    handles = [Line2D([], [], color=KIND_STYLE.get(k, ("#000", ":", k))[0], linestyle=KIND_STYLE.get(k, ("#000", ":", k))[1],
-                      label=f"{k}: arrow from the one that {KIND_STYLE.get(k, ('', '', 'acts on'))[2]} the other") for k in kinds]
-    if handles:
-        ax.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, -0.14), fontsize=7, frameon=False, ncol=1)
-    return _svg(fig)
 
 
 def bands_figure(res: Results, option: str, colour: str) -> bytes:
@@ -583,7 +539,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         top_warnings=[w.text for w in warnings if w.rank <= 3], judgement=m["judgement"],
         objectives=_objectives_context(res), comparisons=_comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m["species"], interactions=m.get("interactions") or [], equations=m.get("equations", []),
-        foodweb=assets.add("foodweb.svg", food_web_figure(m), "image/svg+xml"), priors=priors, thin=thin,
+        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
         interventions=m.get("interventions", []), options=options, iucn=iucn_rows(res),
         sensitivity=_sensitivity_context(res, assets), dynamics=_dynamics_context(res, assets),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
