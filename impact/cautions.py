@@ -95,7 +95,8 @@ def _regime_cautions(m: dict, shares: pd.DataFrame | None) -> list[Caution]:
         rows = shares[(shares.regime == regime) & (shares.share > 0)]
         if rows.empty:
             continue
-        parts = [f"{r.option} {fmt_prob(r.share)} ({fmt_num(r['count'])} members)" for _, r in rows.iterrows()]
+        parts = [f"{r.option} {fmt_prob(r.share)} ({fmt_num(r['count'])} member{'' if int(r['count']) == 1 else 's'})"
+                 for _, r in rows.iterrows()]
         out.append(Caution(RANK_OSCILLATION, f"Members that are {what} in the dynamics screen: " + _join(parts)
                            + ". The timing of peaks and troughs is uncertain; read the bands, not single runs."))
     return out
