@@ -15,6 +15,7 @@ import pandas as pd
 
 from . import __version__
 from .case import Case, load_case
+from .effects import event_text
 from .errors import CaseError
 from .execute import WorkerLost
 
@@ -112,6 +113,8 @@ def describe_case(case: Case) -> str:
         bits.append(f"quasi-extinction<{s.quasi_extinction:g}")
         if s.outbreak is not None:
             bits.append(f"outbreak>{s.outbreak:g}")
+        if s.role != "other":
+            bits.append(f"role: {s.role}")
         L.append(f"  {s.name} [{s.unit}]: " + ", ".join(str(b) for b in bits))
     L.append(f"interactions ({len(case.feeding) + len(case.competition) + len(case.mutualism)}):")
     for f in case.feeding:
@@ -137,6 +140,13 @@ def describe_case(case: Case) -> str:
     L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))
     L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
              f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")
+    L.append(f"objectives ({len(case.objectives)}):" if case.objectives else
+             "objectives: none declared (the verdict reports effects on every species, with no objective judged)")
+    for o in case.objectives:
+        L.append(f"  {o.name}: {event_text(case, o)}; {o.requirement.replace('_', ' ')} {o.bound:g}")
+    L.append(f"material: a paired change of ±{case.risk.material_change:.0%} in mean abundance (unless a species sets "
+             f"its own), {100 * case.risk.material_risk:g} points in a quasi-extinction or outbreak chance; "
+             f"no verdict below {case.risk.min_members} plausible members")
     return "\n".join(L)
 
 

@@ -102,3 +102,47 @@ def test_check_prints_what_it_understood(tmp_path, capsys):
     assert main(["check", str(write_case(tmp_path, decline_case()))]) == 0
     text = capsys.readouterr().out
     assert "newt" in text and "uniform(-0.2, -0.05)" in text and "press-harvest" in text
+
+
+OBJ = "objectives.bird spared"
+BAD_JUDGEMENT = [
+    ("objective on an unknown species", ("objectives", 0, "species"), "owl", f"{OBJ}.species", "unknown species 'owl'"),
+    ("objective with an unknown measure", ("objectives", 0, "measure"), "biomass", f"{OBJ}.measure", "choose one of"),
+    ("objective with two requirements", ("objectives", 0, "chance_at_most"), 0.5, f"{OBJ}.chance_at_most",
+     "exactly one requirement"),
+    ("objective without a requirement", ("objectives", 0, "chance_at_least"), ..., f"{OBJ}.chance_at_least",
+     "exactly one requirement"),
+    ("objective at a horizon that is not a risk horizon", ("objectives", 0, "horizon"), 15.0, f"{OBJ}.horizon",
+     "not a risk horizon"),
+    ("abundance objective without a level", ("objectives", 0, "above"), ..., f"{OBJ}.below", "exactly one of below"),
+    ("requirement above one", ("objectives", 0, "chance_at_least"), 1.5, f"{OBJ}.chance_at_least", "<= 1"),
+    ("outbreak objective on a species without an outbreak level", ("objectives", 0, "measure"), "outbreak",
+     f"{OBJ}.measure", "no outbreak level"),
+    ("unknown role", ("species", 0, "role"), "pest", "species.bird.role", "choose one of: target, protected, other"),
+    ("member minimum below one", ("risk", "min_members"), 0, "risk.min_members", ">= 1"),
+    ("material change of zero", ("risk", "material_change"), 0.0, "risk.material_change", "> 0"),
+]
+
+
+@pytest.mark.parametrize("desc,path,value,field,words", BAD_JUDGEMENT, ids=[b[0] for b in BAD_JUDGEMENT])
+def test_bad_objectives_and_roles_name_the_field(tmp_path, desc, path, value, field, words):
+    from casefiles import mesopredator_case
+
+    f = write_case(tmp_path, _mutate(mesopredator_case(), path, value))
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert err.value.field == field
+    assert words in err.value.message
+
+
+def test_objectives_and_roles_are_frozen_with_their_defaults(tmp_path):
+    from casefiles import mesopredator_case
+
+    case = load_case(write_case(tmp_path, mesopredator_case()))
+    (obj,) = case.objectives
+    assert (obj.species, obj.measure, obj.horizon, obj.requirement, obj.bound, obj.level, obj.below) == \
+        ("bird", "abundance", 40.0, "chance_at_least", 0.8, 60.0, False)
+    assert obj.event_is_good
+    assert [s.role for s in case.species] == ["protected", "other", "target"]
+    assert case.material_change("bird") == 0.2 and case.risk.material_risk == 0.05
+    assert case.touched(case.options[1]) == frozenset({"apex", "meso"})
