@@ -222,7 +222,8 @@ def option_reading(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, objective
         else:
             pm = _one(effects, option=option, species=sp, metric="mean_abundance", horizon=max(m["horizons"]),
                       statistic="p_material")
-            quiet.append(f"{sp}{' (protected)' if s['role'] == 'protected' else ''}"
+            flags = [f for f in ("protected" if s["role"] == "protected" else "", "direct" if sp in touched else "") if f]
+            quiet.append(f"{sp}{' (' + ', '.join(flags) + ')' if flags else ''}"
                          + (f" {with_term(pm.value, pm.low, pm.high)}" if pm is not None and pm.n > 0 else ""))
     sides.sort(key=lambda e: -e.size)
     unchanged = ("Material change unlikely for: " + "; ".join(quiet) + " (chance of a material change of mean "
