@@ -1,0 +1,60 @@
+"""Value of information against the closed forms of a normal net benefit."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from impact.voi import evpi, evppi, information_values
+
+
+def unit_normal_loss(z: float) -> float:
+    # L(z) = φ(z) − z (1 − Φ(z)), the unit normal linear loss integral (Raiffa & Schlaifer 1961)
+    return float(stats.norm.pdf(z) - z * stats.norm.sf(z))
+
+
+@pytest.mark.parametrize("mu, sigma", [(0.0, 1.0), (0.5, 1.0), (-1.0, 2.0)])
+def test_evpi_of_a_two_option_choice_is_the_normal_loss_integral(mu, sigma):
+    # options 0 and 1 with NB1 − NB0 ~ N(μ, σ²): EVPI = σ L(|μ|/σ) (Raiffa & Schlaifer 1961)
+    rng = np.random.default_rng(3)
+    M = 20_000
+    d = rng.normal(mu, sigma, M)
+    nb = np.column_stack([np.zeros(M), d])
+    exact = sigma * unit_normal_loss(abs(mu) / sigma)
+    est = information_values(nb, d[:, None], [], resamples=200, seed=1)["all parameters"]
+    # the bootstrap interval covers the closed form; also within 4 standard errors of max(0, d) (false alarm < 1e-4)
+    se = np.std(np.maximum(d, 0)) / np.sqrt(M)
+    assert abs(est.value - exact) <= 4 * se
+    assert est.low - 4 * se <= exact <= est.high + 4 * se
+
+
+def test_evppi_of_a_linear_normal_net_benefit():
+    # NB1 − NB0 = μ + b1 x1 + b2 x2 + ε with x, ε independent N(0, 1): E(NB1 − NB0 | x_k) is normal with sd |b_k|,
+    # so EVPPI_k = |b_k| L(|μ|/|b_k|) (Strong, Oakley & Brennan 2014, on the loss integral of Raiffa & Schlaifer
+    # 1961); x3 does not enter the net benefit, so its EVPPI is 0.
+    rng = np.random.default_rng(8)
+    M = 4000
+    mu, b1, b2 = 0.3, 1.0, 0.5
+    x = rng.normal(size=(M, 3))
+    d = mu + b1 * x[:, 0] + b2 * x[:, 1] + rng.normal(size=M)
+    nb = np.column_stack([np.zeros(M), d])
+    vals = information_values(nb, x, ["x1", "x2", "x3"], groups={"x1 and x2": ["x1", "x2"]}, resamples=100, seed=2)
+    for name, b in (("x1", b1), ("x2", b2)):
+        exact = b * unit_normal_loss(mu / b)
+        e = vals[name]
+        assert e.low - 0.02 <= exact <= e.high + 0.02, (name, e, exact)
+        assert abs(e.value - exact) < 0.05
+    s12 = np.hypot(b1, b2)
+    assert abs(vals["x1 and x2"].value - s12 * unit_normal_loss(mu / s12)) < 0.05
+    assert vals["x3"].value < 0.02 and vals["x3"].low <= 0.01
+    # EVPPI never exceeds EVPI (a theorem: partial information is worth at most perfect information)
+    assert all(v.value <= vals["all parameters"].value + 1e-9 for v in vals.values())
+
+
+def test_evppi_is_zero_when_one_option_dominates():
+    rng = np.random.default_rng(1)
+    x = rng.random((500, 1))
+    nb = np.column_stack([x[:, 0], x[:, 0] + 1.0])
+    assert evpi(nb) == pytest.approx(0.0, abs=1e-12)
+    assert evppi(nb, x) == pytest.approx(0.0, abs=1e-9)
