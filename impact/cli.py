@@ -238,7 +238,8 @@ def cmd_assess(args) -> int:
 def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: int, executor, store, progress,
                  started, t0) -> tuple[str, int]:
     from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
-    from .effects import comparisons_table, effects_table, event_text, objectives_table
+    from .decision import drivers_table, information_table
+    from .effects import comparisons_table, effects_table, objectives_table
     from .model import equations
     from .results import staged_directory, write_csv, write_json
 
@@ -300,12 +301,18 @@ def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: i
         }
         # Later stages read the core tables from `tmp` and write into their own sub-directories;
         # each appends its name to manifest["stages"] and may add a manifest entry of its own.
-        # stage: sensitivity
-        if not getattr(args, "no_sensitivity", False) and len(case.uncertain) < 2:
-            manifest["sensitivity"] = {"skipped": f"{len(case.uncertain)} uncertain parameter(s); Sobol indices need at least two"}
-        elif not getattr(args, "no_sensitivity", False):
-            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress, executor, store)
+        # stage: sensitivity (on the kept members, then the screen of the prior box)
+        if not getattr(args, "no_sensitivity", False) and case.uncertain:
+            progress("sensitivity and value of information on the plausible members", force=True)
+            write_csv(drivers_table(case, ens.values, runs, seed), tmp / "sensitivity" / "drivers.csv")
+            if case.objectives:
+                write_csv(information_table(case, ens.values, runs, seed), tmp / "sensitivity" / "information.csv")
             manifest["stages"].append("sensitivity")
+        if not getattr(args, "no_sensitivity", False) and len(case.uncertain) < 2:
+            manifest["sensitivity"] = {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
+        elif not getattr(args, "no_sensitivity", False):
+            # the screen's own lines would interrupt the summary; its reading is in the report
+            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress, executor, store, quiet=True)
         # stage: dynamics
         if not getattr(args, "no_dynamics", False):
             from .dynamics import assess_stage
@@ -335,8 +342,12 @@ def verdict_text(results: Path) -> str:
     from .report import load_results
     from .verdict import reading, reading_text
 
+    from .report import hinges_text
+
     res = load_results(results)
-    return reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons))
+    text = reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons))
+    hinges = hinges_text(res)
+    return text + ("\nwhat the decision hinges on (plausible members):\n" + hinges if hinges else "")
 
 
 def cmd_report(args) -> int:
@@ -399,7 +410,8 @@ def cmd_scan(args) -> int:
     return 0
 
 
-def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor=None, store=None) -> dict:
+def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor=None, store=None,
+                      quiet: bool = False) -> dict:
     """Run the sensitivity stage and write its tables into ``out / "sensitivity"``; print its summary."""
     from .results import write_csv, write_json
     from .sensitivity import DEFAULT_FAILURE_LIMIT, DEFAULT_TOLERANCE, Settings, sensitivity_stage, summary_lines
@@ -417,8 +429,9 @@ def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor
     write_csv(res.convergence, d / "convergence.csv")
     info = {**res.info, "seconds_total": round(time.monotonic() - t0, 2)}
     write_json(info, d / "sensitivity.json")
-    for line in summary_lines(res):
-        print(line)
+    if not quiet:
+        for line in summary_lines(res):
+            print(line)
     return {"N": info["N"], "runs": info["runs"], "not_converged": info["not_converged"],
             "refused": len(info["refused"]), "conditional_on": info["conditional_on"]}
 

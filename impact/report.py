@@ -48,7 +48,7 @@ PAPERS = {"a4": "A4", "letter": "letter"}
 ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
 TEXT_COLUMNS = {
     "option", "species", "metric", "unit", "role", "direct", "statistic", "interval", "objective", "measure", "event",
-    "requirement", "status", "versus", "parameter", "regime", "name", "distribution", "arguments",
+    "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain",
 }
@@ -70,7 +70,6 @@ OPTION_COLOURS = ("#d35400", "#2471a3", "#7d3c98", "#117a65", "#b7950b", "#a9322
 BASELINE_COLOUR = "#566573"
 REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "irregular": "#f39c12",
                   "chaotic": "#c0392b", "extinction": "#1c2833"}
-MAX_SENSITIVITY_FIGURES = 8
 
 
 # ----------------------------------------------------------------------------- loading
@@ -258,23 +257,6 @@ def bands_figure(res: Results, option: str, colour: str) -> bytes:
     return _png(fig)
 
 
-def sensitivity_figure(group: pd.DataFrame, title: str) -> bytes:
-    """First-order and total-order indices with their confidence half-widths."""
-    g = group.sort_values("ST", ascending=True)
-    y = np.arange(len(g))
-    fig = _figure(6.0, 0.32 * len(g) + 1.1)
-    ax = fig.add_subplot()
-    ax.barh(y + 0.18, g.ST, height=0.36, xerr=g.ST_conf, color="#2471a3", label="total order ST", error_kw=dict(lw=0.8))
-    ax.barh(y - 0.18, g.S1, height=0.36, xerr=g.S1_conf, color="#f5b041", label="first order S1", error_kw=dict(lw=0.8))
-    ax.set_yticks(y, [_label(p) for p in g.parameter], fontsize=7)
-    ax.axvline(0, color="black", linewidth=0.6)
-    ax.set_xlabel("Sobol index", fontsize=8)
-    ax.tick_params(labelsize=7)
-    ax.set_title(_label(title), fontsize=9)
-    ax.legend(fontsize=7, loc="lower right")
-    return _png(fig)
-
-
 def regime_figure(shares: pd.DataFrame) -> bytes:
     """Share of members in each dynamical regime, per option."""
     opts = list(dict.fromkeys(shares.option))
@@ -448,39 +430,108 @@ def _comparisons_context(res: Results) -> list[dict]:
                  n=fmt_num(r.n)) for _, r in c.iterrows()]
 
 
+# the sensitivity section stays within two pages: per option at most this many outputs, each with
+# its top parameters; the full tables are in sensitivity/*.csv
+MAX_DRIVER_ROWS = 12
+TOP_DRIVERS = 3
+TOP_INFORMATION = 5
+NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
+
+
+def _index_text(r) -> str:
+    v, lo, hi = (_clean(x) for x in (r.value, r.low, r.high))
+    return f"{v:.2f} [{lo:.2f}, {hi:.2f}]"
+
+
+def _information_context(info: pd.DataFrame) -> list[dict]:
+    out = []
+    for obj, g in info.groupby("objective", sort=False):
+        evpi = g[g.kind == "evpi"].iloc[0]
+        params = g[g.kind == "evppi"].sort_values("value", ascending=False)
+        top = params.iloc[0] if len(params) else None
+        best = "doing nothing (the baseline)" if evpi.best_choice == "baseline" else f"“{evpi.best_choice}”"
+        sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in "
+                    f"{fmt_prob(evpi.best_chance)} of members). Knowing every uncertain number exactly would raise that "
+                    f"chance by {fmt_points(_clean(evpi.value))} [{fmt_bare_points(_clean(evpi.low))}, "
+                    f"{fmt_bare_points(_clean(evpi.high))}] on average (EVPI)")
+        if top is not None and _clean(top.value) > 0:
+            sentence += (f"; the single number most worth measuring is {top.parameter} "
+                         f"({fmt_points(_clean(top.value))} [{fmt_bare_points(_clean(top.low))}, "
+                         f"{fmt_bare_points(_clean(top.high))}], EVPPI).")
+        else:
+            sentence += "; no single number is worth measuring for this choice (every EVPPI is zero)."
+        rows = [dict(parameter=r.parameter, value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
+                                                  f"{fmt_bare_points(_clean(r.high))}]",
+                     share=fmt_prob(_clean(r.value) / evpi.value) if evpi.value > NEGLIGIBLE else "—")
+                for _, r in params.head(TOP_INFORMATION).iterrows()]
+        out.append(dict(objective=obj, sentence=sentence, rows=rows, n=fmt_num(evpi.n)))
+    return out
+
+
+def _clean(v) -> float:
+    v = float(v)
+    return 0.0 if abs(v) < NEGLIGIBLE else v
+
+
+def _drivers_context(drv: pd.DataFrame) -> list[dict]:
+    out = []
+    for opt, g in drv.groupby("option", sort=False):
+        rows = []
+        for (output, sp), h in g.groupby(["output", "species"], sort=False):
+            h = h[np.isfinite(h.value.astype(float))].sort_values("value", ascending=False).head(TOP_DRIVERS)
+            if h.empty:
+                continue
+            rows.append(dict(output=output, species=sp,
+                             top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()]))
+        out.append(dict(option=opt, rows=rows[:MAX_DRIVER_ROWS], omitted=max(len(rows) - MAX_DRIVER_ROWS, 0),
+                        n=fmt_num(g.n.iloc[0]), conditional_on=g.conditional_on.iloc[0]))
+    return out
+
+
+def _screen_context(s: dict) -> dict | None:
+    """One paragraph on the Saltelli screen of the prior box: what makes today's web implausible, convergence."""
+    idx, cv = s.get("indices"), s.get("convergence")
+    if idx is None or idx.empty:
+        return None
+    meta = s.get("sensitivity") if isinstance(s.get("sensitivity"), dict) else {}
+    plaus = idx[(idx.metric == "plausible") & (idx.option == "baseline")]
+    plaus = plaus[np.isfinite(plaus.ST.astype(float))].sort_values("ST", ascending=False).head(TOP_DRIVERS)
+    drivers = "; ".join(f"{r.parameter} (total order {fmt_num(r.ST)} ± {fmt_num(r.ST_conf)})"
+                        + (" — interval crosses 0 or 1" if r.ST - r.ST_conf < 0 or r.ST + r.ST_conf > 1 else "")
+                        for _, r in plaus.iterrows())
+    bad = 0 if cv is None else int((~cv.converged.astype(str).str.lower().isin(["true", "1", "yes"])).sum())
+    total = 0 if cv is None else len(cv)
+    return dict(N=meta.get("N", "not recorded"), runs=meta.get("runs", "not recorded"), drivers=drivers,
+                converged=f"{total - bad} of {total} outputs converged" if total else "convergence not recorded",
+                bad=bad)
+
+
+def hinges_text(res: Results) -> str:
+    """Plain sentences for the terminal: what each objective's choice hinges on, and what drives each outcome."""
+    s = res.sensitivity or {}
+    info, drv = s.get("information"), s.get("drivers")
+    lines = []
+    if info is not None and not info.empty:
+        lines += [t["sentence"] for t in _information_context(info)]
+    if drv is not None and not drv.empty:
+        for t in _drivers_context(drv):
+            for r in t["rows"]:
+                if r["output"].startswith("objective"):
+                    name = r["output"].removeprefix("objective ").removesuffix(": good outcome")
+                    lines.append(f"Under “{t['option']}”, whether {name} goes well depends mostly on "
+                                 + " and ".join(r["top"][:2]) + " (share of its variance explained, with interval).")
+    return "\n".join(lines)
+
+
 def _sensitivity_context(res: Results, assets: Assets) -> dict | None:
     s = res.sensitivity
     if not s:
         return None
-    ctx = dict(meta=s.get("sensitivity") if isinstance(s.get("sensitivity"), dict) else {}, figures=[], rankings=[],
-               convergence=[], omitted=0)
-    idx = s.get("indices")
-    if idx is not None and not idx.empty:
-        groups = list(idx.groupby(["option", "metric", "species"], sort=False))
-        for k, ((opt, metric, sp), g) in enumerate(groups):
-            if k >= MAX_SENSITIVITY_FIGURES:
-                ctx["omitted"] = len(groups) - MAX_SENSITIVITY_FIGURES
-                break
-            cond = g.conditional_on.iloc[0] if "conditional_on" in g and str(g.conditional_on.iloc[0]) not in ("", "nan") else ""
-            title = f"{metric} of {sp} under {opt}"
-            ctx["figures"].append(dict(src=assets.add(f"sens-{k}.png", sensitivity_figure(g, title), "image/png"),
-                                       caption=f"Sobol indices (first and total order, bars ± confidence) of {title}"
-                                               + (f", conditional on {cond}" if cond else "")
-                                               + (f"; N = {fmt_num(g.N.iloc[0])}" if "N" in g else "") + "."))
-    rk = s.get("ranking")
-    if rk is not None and not rk.empty:
-        for (opt, metric, sp), g in rk.groupby(["option", "metric", "species"], sort=False):
-            ctx["rankings"].append(dict(title=f"{metric} of {sp} under {opt}", rows=[
-                dict(rank=fmt_num(r["rank"]), parameter=r.parameter, ST=f"{fmt_num(r.ST)} ± {fmt_num(r.ST_conf)}",
-                     S1=fmt_num(r.S1), interaction=fmt_num(r.interaction)) for _, r in g.sort_values("rank").iterrows()]))
-    cv = s.get("convergence")
-    if cv is not None and not cv.empty:
-        for _, r in cv.iterrows():
-            ok = str(r.converged).lower() in ("true", "1", "yes")
-            ctx["convergence"].append(dict(option=r.option, metric=r.metric, species=r.species,
-                                           shift=fmt_num(r.max_shift), width=fmt_num(r.max_ci_width),
-                                           tolerance=fmt_num(r.tolerance), verdict="converged" if ok else "NOT converged"))
-    return ctx
+    info, drv = s.get("information"), s.get("drivers")
+    return dict(information=_information_context(info) if info is not None and not info.empty else [],
+                drivers=_drivers_context(drv) if drv is not None and not drv.empty else [],
+                screen=_screen_context(s), files=sorted(f"sensitivity/{k}.csv" for k, v in s.items()
+                                                        if isinstance(v, pd.DataFrame)))
 
 
 def _dynamics_context(res: Results, assets: Assets) -> dict | None:

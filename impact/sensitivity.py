@@ -423,6 +423,19 @@ def point_metrics(case: Case, dr) -> tuple[np.ndarray, dict[str, int]]:
     return np.column_stack(cols), {opt: int(f.sum()) for opt, f in failed.items()}
 
 
+def point_streams(unit: np.ndarray) -> np.ndarray:
+    """A chance-event stream identity per design point, from the point's own coordinates.
+
+    Each point draws its own chance events (an eradication that may fail), so a parameter that
+    only sets an event's probability shows its influence; the identity depends on the point alone,
+    never on the chunk it is computed in.
+    """
+    import hashlib
+
+    rows = np.ascontiguousarray(unit, dtype=np.float64)
+    return np.array([int.from_bytes(hashlib.sha1(r.tobytes()).digest()[:7], "little") for r in rows], dtype=np.int64)
+
+
 @dataclass(frozen=True)
 class DesignTask:
     """A chunk of design points (full unit rows) to evaluate."""
@@ -441,7 +454,7 @@ def design_chunk(task: DesignTask) -> dict[str, np.ndarray]:
     """
     from .assess import evaluate_points
 
-    dr = evaluate_points(task.case, task.unit, task.seed, noise=False)
+    dr = evaluate_points(task.case, task.unit, task.seed, draws=point_streams(task.unit), noise=False)
     Y, f = point_metrics(task.case, dr)
     return {"Y": Y, "failed_options": np.array(list(f), dtype=str), "failed_counts": np.array(list(f.values()), int)}
 
@@ -450,8 +463,9 @@ def design_chunk(task: DesignTask) -> dict[str, np.ndarray]:
 class FoodWebModel:
     """The case as a model of unit rows: spin-up, paired options, per-point metrics.
 
-    Deterministic skeleton: environmental noise is off and every point shares one stream for
-    chance events (common random numbers), so index differences come from the parameters alone.
+    Deterministic skeleton: environmental noise is off; each point draws its own chance events
+    from a stream named by its coordinates (:func:`point_streams`), so an event probability shows
+    its influence like any other parameter.
     ``fixed`` holds unit coordinates of parameters not varied (screened out); ``varied`` the
     columns of ``case.uncertain`` the design moves. Chunks of points go to ``executor`` and,
     with a ``store``, are saved as they finish and reused on a resumed run.
@@ -552,8 +566,8 @@ POLICY = (
     "indices of every risk metric are conditional on the whole prior, including parameter points whose "
     "baseline would be judged implausible today. The indicator 'baseline/plausible/all' shows which "
     "priors make today's ecosystem implausible. Each point is the deterministic skeleton (environmental "
-    "noise off) with one common stream for chance events, so intervention outcomes that hinge on an "
-    "event probability act through that single realisation. Base samples holding a numerically failed "
+    "noise off); each point draws its own chance events from a stream named by its coordinates, so an "
+    "event probability shows its influence like any other parameter. Base samples holding a numerically failed "
     "point are dropped whole; an output with more failed points than the declared limit is refused. "
     "Rows marked 'plausible subset' are first-order indices from SALib's given-data RBD-FAST estimator "
     "on the plausible A and B points only (no total order there), for the quasi-extinction indicator and "
@@ -562,14 +576,14 @@ POLICY = (
 
 
 def _conditional(screened_out: Sequence[str]) -> str:
-    s = "full prior, plausibility not applied; noise off, common chance-event stream"
+    s = "full prior, plausibility not applied; noise off, chance events per design point"
     if screened_out:
         s += f"; screened-out parameters held at prior median ({', '.join(screened_out)})"
     return s
 
 
 GIVEN_DATA_METRICS = ("quasi_extinct", "mean_change")
-CONDITIONAL_PLAUSIBLE = "plausible subset (given-data RBD-FAST, first order only); noise off, common chance-event stream"
+CONDITIONAL_PLAUSIBLE = "plausible subset (given-data RBD-FAST, first order only); noise off, chance events per design point"
 
 
 def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], seed: int) -> tuple[np.ndarray, np.ndarray]:

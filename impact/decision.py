@@ -1,0 +1,134 @@
+"""What the decision hinges on, computed on the plausible ensemble the assessment believes.
+
+Two tables, from the members already run (no new simulation):
+
+* ``sensitivity/drivers.csv``: for every option, the main-effect (first-order) index of each
+  uncertain parameter on each quantity the verdict rests on: each objective's good outcome under
+  the option, and each species' paired change in mean abundance (log ratio of option to baseline,
+  over the whole period). Kept members are not independent draws from the priors (the plausibility
+  filter couples the parameters), so the index is estimated from the given data by regression:
+  the adjusted R² of a cubic regression spline of the output on one parameter, i.e.
+  ``Var(E[Y | X_i]) / Var(Y)`` including what ``X_i`` carries of correlated parameters. Intervals
+  are bootstrap percentiles over members.
+* ``sensitivity/information.csv``: for each objective, the EVPI of the choice among doing nothing and
+  every option, and the EVPPI of each parameter (:mod:`impact.voi`). The net benefit of a choice in a
+  member is 1 when the member's outcome goes the objective's way (its event happens when wanted, or
+  does not when unwanted), else 0, so values are in probability units: how much the chance of a good
+  outcome would rise, on average, if the choice could wait until the number is known exactly.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .case import Case
+from .effects import BASELINE, objective_outcome
+from .voi import design_matrix, fitted_means, information_values
+
+DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
+                  "conditional_on")
+INFORMATION_COLUMNS = ("objective", "parameter", "kind", "value", "low", "high", "interval", "level", "n",
+                       "best_choice", "best_chance", "unit")
+CONDITIONAL_ON = "plausible ensemble (kept members), with their noise and chance events"
+RESAMPLES = 100
+PURPOSE_DRIVERS = 12
+
+
+def main_effects(Y: np.ndarray, X: np.ndarray, *, resamples: int = RESAMPLES, confidence: float = 0.95,
+                 seed: int = 0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Main-effect index of every column of ``X`` (M, P) on every column of ``Y`` (M, K), from given data.
+
+    Returns
+    -------
+    value, low, high : ndarray (P, K)
+        Adjusted R² of a one-parameter regression spline, with bootstrap percentile limits;
+        NaN for an output that does not vary.
+    """
+    Y = np.asarray(Y, float)
+    M, P = X.shape
+    ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_DRIVERS,))
+    rng = np.random.Generator(np.random.PCG64(ss))
+    boot = [rng.integers(0, M, M) for _ in range(resamples)]
+    out = np.full((3, P, Y.shape[1]), np.nan)
+    a = (1 - confidence) / 2
+    for j in range(P):
+        D = design_matrix(X[:, [j]])
+        out[0, j] = _adjusted_r2(Y, D)
+        reps = np.stack([_adjusted_r2(Y[i], D[i]) for i in boot])
+        out[1, j], out[2, j] = np.quantile(reps, a, axis=0), np.quantile(reps, 1 - a, axis=0)
+    return out[0], out[1], out[2]
+
+
+def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:
+    M, K = D.shape
+    resid = Y - fitted_means(Y, D)
+    var = Y.var(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r2 = 1 - resid.var(axis=0) / var
+        # the adjustment removes what K basis functions fit of pure noise (unbiased under a null of no effect)
+        adj = 1 - (1 - r2) * (M - 1) / max(M - K, 1)
+    return np.where(var > 0, np.clip(adj, 0.0, 1.0), np.nan)
+
+
+def good_outcome(case: Case, objective, summary) -> np.ndarray:
+    """Per member, 1 when the outcome goes the objective's way under this run, else 0 (NaN if failed)."""
+    o = objective_outcome(case, objective, summary)
+    good = o.event if objective.event_is_good else ~o.event
+    return np.where(np.isfinite(o.score), good.astype(float), np.nan)
+
+
+def _outputs(case: Case, summaries: dict, option: str) -> tuple[list[tuple[str, str]], np.ndarray]:
+    """Labels (output, species) and values (M, K) of what the verdict rests on, under one option."""
+    labels, cols = [], []
+    for obj in case.objectives:
+        labels.append((f"objective “{obj.name}”: good outcome", obj.species))
+        cols.append(good_outcome(case, obj, summaries[option]))
+    run, base = summaries[option], summaries[BASELINE]
+    k = run.slot(case.horizon)
+    for j, sp in enumerate(case.species):
+        if not sp.present:
+            continue
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.log(run.mean[:, k, j] / base.mean[:, k, j])
+        labels.append(("paired change in mean abundance (log ratio)", sp.name))
+        cols.append(np.where(np.isfinite(ratio), ratio, np.nan))
+    return labels, np.column_stack(cols)
+
+
+def drivers_table(case: Case, values: dict, summaries: dict, seed: int) -> pd.DataFrame:
+    """Main effects of every uncertain parameter on the verdict's quantities, per option (see module doc)."""
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    rows = []
+    for opt in case.options:
+        labels, Y = _outputs(case, summaries, opt.name)
+        ok = np.isfinite(Y).all(axis=1)
+        v, lo, hi = main_effects(Y[ok], X[ok], confidence=case.risk.confidence, seed=seed)
+        for k, (output, sp) in enumerate(labels):
+            for j, n in enumerate(names):
+                rows.append(dict(option=opt.name, output=output, species=sp, parameter=n, value=v[j, k],
+                                 low=lo[j, k], high=hi[j, k], interval="bootstrap_percentile",
+                                 level=case.risk.confidence, n=int(ok.sum()), conditional_on=CONDITIONAL_ON))
+    return pd.DataFrame(rows, columns=list(DRIVER_COLUMNS))
+
+
+def information_table(case: Case, values: dict, summaries: dict, seed: int) -> pd.DataFrame:
+    """EVPI and per-parameter EVPPI of the choice under every objective (see module doc)."""
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    choices = [BASELINE, *(o.name for o in case.options)]
+    rows = []
+    for obj in case.objectives:
+        nb = np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices])
+        ok = np.isfinite(nb).all(axis=1)
+        means = nb[ok].mean(axis=0)
+        best = int(np.argmax(means))
+        vals = information_values(nb[ok], X[ok], names, resamples=RESAMPLES, confidence=case.risk.confidence,
+                                  seed=seed)
+        for key, e in vals.items():
+            rows.append(dict(objective=obj.name, parameter=key, kind="evpi" if key == "all parameters" else "evppi",
+                             value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",
+                             level=case.risk.confidence, n=int(ok.sum()), best_choice=choices[best],
+                             best_chance=float(means[best]), unit="probability of a good outcome"))
+    return pd.DataFrame(rows, columns=list(INFORMATION_COLUMNS))
