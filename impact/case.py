@@ -185,6 +185,15 @@ class Objective:
 
 
 @dataclass(frozen=True)
+class ParameterGroup:
+    """Uncertain parameters that one measurement or study would learn together (for the value of information)."""
+
+    name: str
+    parameters: tuple[str, ...]
+    description: str = ""
+
+
+@dataclass(frozen=True)
 class Risk:
     horizons: tuple[float, ...]
     recovery_fraction: float
@@ -223,6 +232,7 @@ class Case:
     risk: Risk
     notes: tuple[str, ...] = field(default=())
     objectives: tuple[Objective, ...] = field(default=())
+    groups: tuple[ParameterGroup, ...] = field(default=())
 
     @property
     def species_names(self) -> tuple[str, ...]:
@@ -631,6 +641,9 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     objectives = tuple(_read_objective(r, i, raw, species, horizon, risk.horizons)
                        for i, raw in enumerate(top.get("objectives", [], "list")))
     _unique(r, objectives, "name", "objectives")
+    uncertain = {p.name for p in parameters if p.uncertain}
+    groups = tuple(_read_group(r, i, raw, uncertain) for i, raw in enumerate(top.get("parameter_groups", [], "list")))
+    _unique(r, groups, "name", "parameter_groups")
     top.done()
 
     pnames = {p.name: p for p in parameters}
@@ -650,8 +663,24 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         parameters=parameters, species=species, feeding=tuple(feeding),
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
         observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
-        objectives=objectives,
+        objectives=objectives, groups=groups,
     )
+
+
+def _read_group(r: _Reader, i: int, raw: Any, uncertain: set[str]) -> ParameterGroup:
+    """One ``[[parameter_groups]]`` entry: a name and two or more uncertain parameters."""
+    t = _Table(r, raw, f"parameter_groups[{i}]")
+    name = t.get("name", kind="str")
+    t.path = base = f"parameter_groups.{name}"
+    members = t.get("parameters", kind="list")
+    if len(members) < 2 or any(not isinstance(m, str) for m in members) or len(set(members)) != len(members):
+        r.fail(f"{base}.parameters", "must list two or more different parameter names")
+    for m in members:
+        if m not in uncertain:
+            r.fail(f"{base}.parameters", f"{m!r} is not an uncertain parameter; uncertain: {', '.join(sorted(uncertain)) or 'none'}")
+    desc = t.get("description", "", "str")
+    t.done()
+    return ParameterGroup(name, tuple(members), desc)
 
 
 def _read_objective(r: _Reader, i: int, raw: Any, species: tuple[Species, ...], horizon: float,

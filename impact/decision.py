@@ -68,7 +68,8 @@ def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:
         r2 = 1 - resid.var(axis=0) / var
         # the adjustment removes what K basis functions fit of pure noise (unbiased under a null of no effect)
         adj = 1 - (1 - r2) * (M - 1) / max(M - K, 1)
-    return np.where(var > 0, np.clip(adj, 0.0, 1.0), np.nan)
+    # not clipped: a slightly negative value says "no detectable effect" and is shown as it is
+    return np.where(var > 0, adj, np.nan)
 
 
 def good_outcome(case: Case, objective, summary) -> np.ndarray:
@@ -118,16 +119,18 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
     names = [p.name for p in case.uncertain]
     X = np.column_stack([values[n] for n in names])
     choices = [BASELINE, *(o.name for o in case.options)]
+    group_names = {g.name for g in case.groups}
     rows = []
     for obj in case.objectives:
         nb = np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices])
         ok = np.isfinite(nb).all(axis=1)
         means = nb[ok].mean(axis=0)
         best = int(np.argmax(means))
-        vals = information_values(nb[ok], X[ok], names, resamples=RESAMPLES, confidence=case.risk.confidence,
-                                  seed=seed)
+        vals = information_values(nb[ok], X[ok], names, groups={g.name: list(g.parameters) for g in case.groups},
+                                  resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
         for key, e in vals.items():
-            rows.append(dict(objective=obj.name, parameter=key, kind="evpi" if key == "all parameters" else "evppi",
+            kind = "evpi" if key == "all parameters" else ("group evppi" if key in group_names else "evppi")
+            rows.append(dict(objective=obj.name, parameter=key, kind=kind,
                              value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",
                              level=case.risk.confidence, n=int(ok.sum()), best_choice=choices[best],
                              best_chance=float(means[best]), unit="probability of a good outcome"))

@@ -432,7 +432,7 @@ def _comparisons_context(res: Results) -> list[dict]:
 
 # the sensitivity section stays within two pages: per option at most this many outputs, each with
 # its top parameters; the full tables are in sensitivity/*.csv
-MAX_DRIVER_ROWS = 12
+MAX_DRIVER_ROWS = 8
 TOP_DRIVERS = 3
 TOP_INFORMATION = 5
 NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
@@ -460,10 +460,12 @@ def _information_context(info: pd.DataFrame) -> list[dict]:
                          f"{fmt_bare_points(_clean(top.high))}], EVPPI).")
         else:
             sentence += "; no single number is worth measuring for this choice (every EVPPI is zero)."
-        rows = [dict(parameter=r.parameter, value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
-                                                  f"{fmt_bare_points(_clean(r.high))}]",
+        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"]])
+        rows = [dict(parameter=r.parameter + (" (group)" if r.kind == "group evppi" else ""),
+                     value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
+                           f"{fmt_bare_points(_clean(r.high))}]",
                      share=fmt_prob(_clean(r.value) / evpi.value) if evpi.value > NEGLIGIBLE else "—")
-                for _, r in params.head(TOP_INFORMATION).iterrows()]
+                for _, r in shown.iterrows()]
         out.append(dict(objective=obj, sentence=sentence, rows=rows, n=fmt_num(evpi.n)))
     return out
 
@@ -473,7 +475,10 @@ def _clean(v) -> float:
     return 0.0 if abs(v) < NEGLIGIBLE else v
 
 
-def _drivers_context(drv: pd.DataFrame) -> list[dict]:
+def _drivers_context(drv: pd.DataFrame, roles: dict | None = None) -> list[dict]:
+    # objectives first, then targets and protected species, then the rest in declaration order
+    roles = roles or {}
+    rank = {"target": 1, "protected": 1}
     out = []
     for opt, g in drv.groupby("option", sort=False):
         rows = []
@@ -481,8 +486,9 @@ def _drivers_context(drv: pd.DataFrame) -> list[dict]:
             h = h[np.isfinite(h.value.astype(float))].sort_values("value", ascending=False).head(TOP_DRIVERS)
             if h.empty:
                 continue
-            rows.append(dict(output=output, species=sp,
-                             top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()]))
+            rows.append(dict(output=output, species=sp, order=0 if output.startswith("objective") else
+                             2 - rank.get(roles.get(sp), 0), top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()]))
+        rows.sort(key=lambda r: r["order"])  # stable: declaration order within each rank
         out.append(dict(option=opt, rows=rows[:MAX_DRIVER_ROWS], omitted=max(len(rows) - MAX_DRIVER_ROWS, 0),
                         n=fmt_num(g.n.iloc[0]), conditional_on=g.conditional_on.iloc[0]))
     return out
@@ -529,7 +535,8 @@ def _sensitivity_context(res: Results, assets: Assets) -> dict | None:
         return None
     info, drv = s.get("information"), s.get("drivers")
     return dict(information=_information_context(info) if info is not None and not info.empty else [],
-                drivers=_drivers_context(drv) if drv is not None and not drv.empty else [],
+                drivers=_drivers_context(drv, {x["name"]: x["role"] for x in res.manifest["species"]})
+                if drv is not None and not drv.empty else [],
                 screen=_screen_context(s), files=sorted(f"sensitivity/{k}.csv" for k, v in s.items()
                                                         if isinstance(v, pd.DataFrame)))
 

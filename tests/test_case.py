@@ -146,3 +146,18 @@ def test_objectives_and_roles_are_frozen_with_their_defaults(tmp_path):
     assert [s.role for s in case.species] == ["protected", "other", "target"]
     assert case.material_change("bird") == 0.2 and case.risk.material_risk == 0.05
     assert case.touched(case.options[1]) == frozenset({"apex", "meso"})
+
+
+def test_parameter_groups_name_uncertain_parameters_only(tmp_path):
+    from casefiles import mesopredator_case
+
+    d = mesopredator_case()
+    d["parameters"]["bird_r"] = {"distribution": "uniform", "low": 0.9, "high": 1.1, "unit": "1/year"}
+    d["species"][0]["growth_rate"] = "bird_r"
+    d["parameter_groups"] = [{"name": "both", "parameters": ["meso_attack", "bird_r"]}]
+    case = load_case(write_case(tmp_path, d))
+    assert case.groups[0].parameters == ("meso_attack", "bird_r")
+    d["parameter_groups"] = [{"name": "both", "parameters": ["meso_attack", "nope"]}]
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, d))
+    assert err.value.field == "parameter_groups.both.parameters" and "not an uncertain parameter" in err.value.message

@@ -83,3 +83,28 @@ def test_information_values_of_the_eradication_choice(goats):
     assert set(info.parameter) == {"all parameters", "fail", "goat_r"}
     assert (info.value.abs() < 1e-9).all()
     assert (info.best_choice == "eradicate").all() and abs(info.best_chance.iloc[0] - 0.6) < 0.06
+
+
+def test_the_sensitivity_section_keeps_its_page_budget(tmp_path):
+    # Budget (README): the section "What the decision hinges on" fits in two pages for up to three objectives and
+    # four choices, whatever the number of species (tables are capped; every row is in sensitivity/*.csv).
+    from pypdf import PdfReader
+
+    from casefiles import web_case
+    from impact.cli import main
+
+    d = web_case(members=120)
+    d["objectives"] = [
+        {"name": "fox stays", "species": "fox", "measure": "quasi_extinction", "horizon": 20.0, "increase_at_most": 0.1},
+        {"name": "hares kept down", "species": "hare", "measure": "abundance", "horizon": 20.0, "below": 200.0,
+         "chance_at_least": 0.5},
+        {"name": "no hare plague", "species": "hare", "measure": "outbreak", "horizon": 10.0, "chance_at_most": 0.2},
+    ]
+    out = tmp_path / "out"
+    assert main(["assess", str(write_case(tmp_path, d)), "--out", str(out), "--quiet", "--workers", "1",
+                 "--no-dynamics", "--base-samples", "16"]) == 0
+    pages = [p.extract_text() for p in PdfReader(str(out / "report.pdf")).pages]
+    start = next(i for i, t in enumerate(pages) if "Worth measuring" in t)
+    end = next(i for i, t in enumerate(pages) if "How far ahead the projection holds" in t and i > start)
+    assert end - start <= 2
+    assert (out / "sensitivity" / "drivers.csv").exists() and (out / "sensitivity" / "information.csv").exists()
