@@ -505,6 +505,11 @@ def _screen_context(s: dict) -> dict | None:
     drivers = "; ".join(f"{r.parameter} (total order {fmt_num(r.ST)} ± {fmt_num(r.ST_conf)})"
                         + (" — interval crosses 0 or 1" if r.ST - r.ST_conf < 0 or r.ST + r.ST_conf > 1 else "")
                         for _, r in plaus.iterrows())
+    settled = cv is not None and bool(cv[(cv.option == "baseline") & (cv.metric == "plausible")].converged
+                                      .astype(str).str.lower().isin(["true", "1", "yes"]).all())
+    if drivers and not settled:
+        # an unconverged ranking is no headline: say so in the same sentence
+        drivers += " (NOT converged: indicative only)"
     bad = 0 if cv is None else int((~cv.converged.astype(str).str.lower().isin(["true", "1", "yes"])).sum())
     total = 0 if cv is None else len(cv)
     return dict(N=meta.get("N", "not recorded"), runs=meta.get("runs", "not recorded"), drivers=drivers,
