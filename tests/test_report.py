@@ -75,7 +75,7 @@ def test_case_hash_is_printed(text):
     assert CASE.sha256 in text
 
 
-@pytest.mark.parametrize("stage, section", [("sensitivity", "Sensitivityanalysis:notrun"),
+@pytest.mark.parametrize("stage, section", [("sensitivity", "Sensitivityandvalueofinformation:notrun"),
                                             ("dynamics", "Dynamicsdiagnostics:notrun")])
 def test_absent_stages_say_not_run(text, results, stage, section):
     if (results / stage).exists():
@@ -261,7 +261,7 @@ def staged_text(results, tmp_path_factory):
 
 
 @pytest.mark.parametrize("needle", [
-    "NOTconverged",            # convergence verdict table
+    "0of1outputsconverged",    # the screen's convergence in one sentence
     "didnotconverge",          # and the warning up front,
     "outputsperrun:",          # aggregated to one line naming every run it concerns
     "1of1",
@@ -274,7 +274,7 @@ def test_stage_sections_are_drawn_when_present(staged_text, needle):
     assert needle in staged_text
 
 
-@pytest.mark.parametrize("absent", ["Sensitivityanalysis:notrun", "Dynamicsdiagnostics:notrun"])
+@pytest.mark.parametrize("absent", ["Sensitivityandvalueofinformation:notrun", "Dynamicsdiagnostics:notrun"])
 def test_present_stages_are_not_called_not_run(staged_text, absent):
     assert absent not in staged_text
 
