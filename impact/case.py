@@ -565,6 +565,8 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         if not ivs:
             r.fail(f"options.{name}.interventions", "must list at least one intervention")
         for k, iv in enumerate(ivs):
+            if not isinstance(iv, str):
+                r.fail(f"options.{name}.interventions", f"must be a list of intervention names (text), got {iv!r}")
             if iv not in iv_names:
                 r.fail(f"options.{name}.interventions", f"unknown intervention {iv!r}; declared: {', '.join(sorted(iv_names)) or 'none'}")
             if iv in ivs[:k]:
