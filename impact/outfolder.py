@@ -31,6 +31,9 @@ from pathlib import Path
 from .errors import CaseError, WriteError
 
 REPLACE_FLAG = "--replace-results"
+# A half-made lock file (written, not yet linked into place) older than this belongs to no
+# starting run and may be removed (seconds; the write-then-link takes milliseconds).
+STALE_TMP_SECONDS = 60
 INVENTORY = "inventory.json"
 # Names impact writes into a results folder (older folders have no inventory.json): a file with
 # one of these names is treated as impact's own when --replace-results replaces a folder.
@@ -191,12 +194,19 @@ class OutputFolder:
 
     def _remove_leftovers(self):
         """Partial and replaced folders of killed runs on this output (no live run owns them: we hold the lock)."""
-        for pattern in (f".{self.path.name}.partial-*", f".{self.path.name}.old-*", f"{self.lock.name}.*"):
+        for pattern in (f".{self.path.name}.partial-*", f".{self.path.name}.old-*", f"{self.lock.name}.stale-*"):
             for p in self.path.parent.glob(pattern):
                 if p.is_dir() and not p.is_symlink():
                     shutil.rmtree(p, ignore_errors=True)
                 else:
                     p.unlink(missing_ok=True)
+        # a lock being written by a run that is starting right now is young: leave it to that run
+        for p in self.path.parent.glob(f"{self.lock.name}.*.tmp"):
+            try:
+                if time.time() - p.stat().st_mtime > STALE_TMP_SECONDS:
+                    p.unlink()
+            except OSError:
+                pass
 
     def release(self):
         """Remove the lock if this run still holds it."""
