@@ -195,15 +195,20 @@ def _unused_warnings(case: Case, names) -> list[str]:
             for n in names]
 
 
-def cmd_assess(args) -> int:
-    from .assess import draw_block_size, run_chunk_size
+def _assess_plan(args, case: Case):
+    """Check every argument, the output folder and the resource estimate; touch nothing on disk.
+
+    Returns
+    -------
+    members, seed : int
+    folder : impact.outfolder.OutputFolder
+        Checked against the --out policy, not yet locked.
+    """
     from .budget import check_fits, estimate
     from .case import unused_parameters
-    from .execute import make_executor
+    from .execute import machine_cores
     from .outfolder import OutputFolder
-    from .results import Checkpoints
 
-    case = load_case(args.case)
     members = args.members if args.members is not None else case.members
     seed = args.seed if args.seed is not None else case.seed
     if members < 1:
@@ -218,15 +223,21 @@ def cmd_assess(args) -> int:
         from .sensitivity import Settings, check_settings
 
         check_settings(Settings(base_samples=args.base_samples, seed=seed))  # fail before any simulation
-    # everything below is checked before anything is created on disk or computed
     folder = OutputFolder(args.out, replace=args.replace_results)
-    from .execute import machine_cores
-
-    local_workers = 1 if args.cluster else (args.workers or machine_cores())
-    est = estimate(case, members, local_workers, out=folder.path)
+    est = estimate(case, members, 1 if args.cluster else (args.workers or machine_cores()), out=folder.path)
     check_fits(est, case, ("command line", "--members") if args.members is not None else (case.path, "case.members"))
     for line in _unused_warnings(case, unused_parameters(case)):
         print(line, file=sys.stderr)
+    return members, seed, folder, est
+
+
+def cmd_assess(args) -> int:
+    from .assess import draw_block_size, run_chunk_size
+    from .execute import make_executor
+    from .results import Checkpoints
+
+    case = load_case(args.case)
+    members, seed, folder, est = _assess_plan(args, case)
     progress = _Progress(args.quiet)
     progress(est.describe(), force=True)
     started = datetime.now(timezone.utc)
