@@ -472,7 +472,9 @@ def _running(pid: int) -> bool:
 
 
 @pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to find the worker processes")
-def test_pool_workers_end_when_their_parent_is_killed(tmp_path):
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM], ids=["KILL", "TERM"])
+def test_pool_workers_end_with_their_parent(tmp_path, sig):
+    """SIGKILL: the workers notice their parent is gone. SIGTERM: the parent ends them and exits 143."""
     case = write_case(tmp_path, decline_case(members=2000))
     cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(tmp_path / "out"),
            "--workers", "2", "--chunk-members", "100", "--quiet", "--no-sensitivity", "--no-dynamics", "--no-report"]
@@ -482,13 +484,16 @@ def test_pool_workers_end_when_their_parent_is_killed(tmp_path):
         workers = _children(proc.pid)
         if proc.poll() is not None:
             pytest.skip("the run ended before its workers could be seen")
-        proc.kill()
-        proc.wait()
+        proc.send_signal(sig)
+        rc = proc.wait(timeout=60)
     finally:
         if proc.poll() is None:
             proc.kill()
     # each worker checks its parent every PARENT_POLL (0.5 s); 20 s allows for a loaded machine
     assert _wait_for(lambda: not any(_running(w) for w in workers), 20), [w for w in workers if _running(w)]
+    if sig == signal.SIGTERM and rc != 0:  # (rc 0: the signal came during the final move, which ignores it)
+        assert rc == 143
+        assert sorted(p.name for p in tmp_path.iterdir()) in (["case.toml"], [".out.checkpoints", "case.toml"])
 
 
 # ------------------------------------------------------------------ 8. reading vs writing, permissions
