@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import CaseError
+from .errors import CaseError, ReadError
 from .priors import DISTRIBUTIONS, Fixed, Prior, prior_problems
 
 Quantity = float | str  # a number, or the name of a parameter in [parameters]
@@ -346,7 +346,7 @@ def load_case(path: str | Path) -> Case:
     try:
         raw_bytes = path.read_bytes()
     except OSError as exc:
-        raise CaseError(str(path), "", f"cannot read the case file ({exc.strerror or exc})") from None
+        raise ReadError(str(path), "", f"cannot read the case file ({exc.strerror or exc})") from None
     try:
         data = tomllib.loads(raw_bytes.decode("utf-8"))
     except UnicodeDecodeError:

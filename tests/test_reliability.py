@@ -95,6 +95,19 @@ def test_a_folder_of_other_files_is_never_written_into(small, tmp_path, capsys):
     assert "no results written by impact" in capsys.readouterr().err
 
 
+@pytest.mark.parametrize("command", ["scan", "sensitivity"])
+def test_scan_and_sensitivity_keep_an_existing_folder_too(small, tmp_path, capsys, command):
+    case, results = small
+    out = tmp_path / "earlier"
+    shutil.copytree(results, out)
+    before = _snapshot(out)
+    extra = (["--parameter", "r", "--from", "-0.2", "--to", "-0.1", "--steps", "2"] if command == "scan"
+             else ["--base-samples", "16"])
+    assert main([command, str(case), *extra, "--out", str(out), "--quiet", "--workers", "1"]) == 2
+    assert "--replace-results" in capsys.readouterr().err
+    assert _snapshot(out) == before and sorted(p.name for p in tmp_path.iterdir()) == ["earlier"]
+
+
 def test_out_dot_in_an_empty_folder_writes_there(small, tmp_path, monkeypatch):
     case, results = small
     here = tmp_path / "here"
