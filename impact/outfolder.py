@@ -53,8 +53,14 @@ def _files(folder: Path) -> list[str]:
 
 
 def tool_files(folder: Path) -> set[str]:
-    """The files of an existing results folder that impact wrote (inventory and known names)."""
+    """The files of an existing results folder that impact wrote (inventory and known names).
+
+    A folder without ``inventory.json`` or ``manifest.json`` is not a results folder: a
+    ``report.pdf`` or ``summary.txt`` there is the user's, whatever its name.
+    """
     present = set(_files(folder))
+    if not present & {INVENTORY, "manifest.json"}:
+        return set()
     listed: set[str] = set()
     try:
         listed = set(json.loads((folder / INVENTORY).read_text(encoding="utf-8")).get("files", []))

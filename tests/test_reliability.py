@@ -88,6 +88,8 @@ def test_a_folder_of_other_files_is_never_written_into(small, tmp_path, capsys):
     out = tmp_path / "documents"
     out.mkdir()
     (out / "thesis.tex").write_text("\\documentclass{article}\n")
+    (out / "report.pdf").write_bytes(b"%PDF-1.4 the user's own report")  # a name impact also writes
+    (out / "summary.txt").write_text("the user's own summary\n")
     before = _snapshot(out)
     for extra in ([], ["--replace-results"]):
         assert _assess(case, out, *extra) == 2
