@@ -454,8 +454,12 @@ def _interrupted_then_resumed(case: Path, ref: Path, work: Path, sig: int, after
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGINT, signal.SIGKILL], ids=["TERM", "INT", "KILL"])
 def test_interrupted_runs_resume_to_identical_tables(interruptible, tmp_path, sig):
     """Two interruption points per signal, drawn from a seeded generator over the run's 26
-    checkpoints (2 draw blocks and 12 chunks x 2 runs). A point the run outpaces is still
-    resumed and compared; at least one of the two must interrupt."""
+    checkpoints (2 draw blocks and 12 chunks x 2 runs): the signal goes out once that many
+    chunks are on disk. A point the run outpaces must simply have completed with the reference
+    tables; at least one of the two must interrupt. The points are below 20, so at least six
+    chunks remain to be computed when a point is reached, while the test polls every 20 ms:
+    outpacing both points would need six chunks in under 20 ms (about 100 ms each on this
+    machine), so a false failure is not expected."""
     case, ref = interruptible
     points = np.random.default_rng(1300 + int(sig)).integers(0, 20, size=2)
     hits = 0
