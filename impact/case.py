@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import CaseError
+from .errors import CaseError, ReadError
 from .priors import DISTRIBUTIONS, Fixed, Prior, prior_problems
 
 Quantity = float | str  # a number, or the name of a parameter in [parameters]
@@ -318,6 +318,8 @@ class _Table:
         if isinstance(v, str):
             self.r.references.append((f, v, low, high, low_open))
             return v
+        if not math.isfinite(v):
+            self.r.fail(f, f"must be a finite number or the name of a parameter, got {v!r}")
         self.r.check_range(f, float(v), low, high, low_open)
         return float(v)
 
@@ -414,14 +416,33 @@ def load_case(path: str | Path) -> Case:
     try:
         raw_bytes = path.read_bytes()
     except OSError as exc:
-        raise CaseError(str(path), "", f"cannot read the case file ({exc.strerror or exc})") from None
+        raise ReadError(str(path), "", f"cannot read the case file ({exc.strerror or exc})") from None
     try:
         data = tomllib.loads(raw_bytes.decode("utf-8"))
     except UnicodeDecodeError:
         raise CaseError(str(path), "", "is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as exc:
         raise CaseError(str(path), "", f"malformed TOML: {exc}") from None
+    except RecursionError:
+        raise CaseError(str(path), "", "values are nested too deeply (arrays or tables inside each other "
+                                       "hundreds of levels deep); no case field needs more than two levels") from None
     return parse_case(data, path, hashlib.sha256(raw_bytes).hexdigest())
+
+
+def unused_parameters(case: Case) -> tuple[str, ...]:
+    """Declared parameters that no numeric field of the case refers to, in declaration order.
+
+    They are sampled like the others (so the random streams of every member stay as declared)
+    and show no influence in the sensitivity tables; the command line warns about them.
+    """
+    used = set()
+    for item in (*case.species, *case.feeding, *case.competition, *case.mutualism, *case.interventions,
+                 *((case.carrion,) if case.carrion is not None else ())):
+        for f in item.__dataclass_fields__.values():
+            v = getattr(item, f.name)
+            if "Quantity" in str(f.type) and isinstance(v, str):
+                used.add(v)
+    return tuple(p.name for p in case.parameters if p.name not in used)
 
 
 def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
@@ -577,8 +598,9 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
                 kw["factor"] = t.quantity("factor", low=0, low_open=True)
         elif kind == "pulse-cull":
             times = t.get("times", kind="list")
-            if not times or any(isinstance(x, bool) or not isinstance(x, (int, float)) for x in times):
-                r.fail(f"{base}.times", "must be a non-empty list of numbers (times of each cull)")
+            if not times or any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x)
+                                for x in times):
+                r.fail(f"{base}.times", "must be a non-empty list of finite numbers (times of each cull)")
             times = tuple(sorted(float(x) for x in times))
             kw["times"] = times
             kw["fraction"] = t.quantity("fraction", low=0, high=1)
@@ -615,9 +637,14 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         ivs = t.get("interventions", kind="list")
         if not ivs:
             r.fail(f"options.{name}.interventions", "must list at least one intervention")
-        for iv in ivs:
+        for k, iv in enumerate(ivs):
+            if not isinstance(iv, str):
+                r.fail(f"options.{name}.interventions", f"must be a list of intervention names (text), got {iv!r}")
             if iv not in iv_names:
                 r.fail(f"options.{name}.interventions", f"unknown intervention {iv!r}; declared: {', '.join(sorted(iv_names)) or 'none'}")
+            if iv in ivs[:k]:
+                r.fail(f"options.{name}.interventions", f"lists {iv!r} twice; an intervention applies once per option "
+                                                        "(declare a second intervention to apply more)")
         options.append(Option(name, tuple(ivs), t.get("description", "", "str")))
         t.done()
     options = tuple(options)

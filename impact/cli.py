@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import platform
+import signal
 import sys
 import time
 from datetime import datetime, timezone
@@ -16,8 +17,9 @@ import pandas as pd
 from . import __version__
 from .case import Case, load_case
 from .effects import event_text
-from .errors import CaseError
+from .errors import CaseError, WriteError
 from .execute import WorkerLost
+from .outfolder import REPLACE_FLAG
 
 # exit status of `impact assess` when the results are written but too thin for a verdict
 # (fewer plausible members than risk.min_members); 2 stays reserved for bad input
@@ -186,18 +188,42 @@ def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict, v
 
 
 def cmd_check(args) -> int:
+    from .budget import check_fits, estimate
+    from .case import unused_parameters
+    from .execute import machine_cores
+
     case = load_case(args.case)
     print(describe_case(case))
+    for line in _unused_warnings(case, unused_parameters(case)):
+        print(line)
+    est = estimate(case, case.members, machine_cores())
+    print(est.describe())
+    check_fits(est, case, (case.path, "case.members"))
     print("case file is valid.")
     return 0
 
 
-def cmd_assess(args) -> int:
-    from .assess import draw_block_size, run_chunk_size
-    from .execute import make_executor
-    from .results import Checkpoints
+def _unused_warnings(case: Case, names) -> list[str]:
+    """Declared parameters no field uses: sampled and reported, but they change nothing."""
+    return [f"warning: {case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears "
+            f"in the sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
+            for n in names]
 
-    case = load_case(args.case)
+
+def _assess_plan(args, case: Case):
+    """Check every argument, the output folder and the resource estimate; touch nothing on disk.
+
+    Returns
+    -------
+    members, seed : int
+    folder : impact.outfolder.OutputFolder
+        Checked against the --out policy, not yet locked.
+    """
+    from .budget import check_fits, estimate
+    from .case import unused_parameters
+    from .execute import machine_cores
+    from .outfolder import OutputFolder
+
     members = args.members if args.members is not None else case.members
     seed = args.seed if args.seed is not None else case.seed
     if members < 1:
@@ -206,44 +232,81 @@ def cmd_assess(args) -> int:
         raise CaseError("command line", "--chunk-members", f"must be at least 1, got {args.chunk_members}")
     if seed < 0:
         raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    if args.workers is not None and args.workers < 1:
+        raise CaseError("command line", "--workers", f"must be at least 1, got {args.workers}")
     if not getattr(args, "no_sensitivity", False):
         from .sensitivity import Settings, check_settings
 
         check_settings(Settings(base_samples=args.base_samples, seed=seed))  # fail before any simulation
+    folder = OutputFolder(args.out, replace=args.replace_results)
+    est = estimate(case, members, 1 if args.cluster else (args.workers or machine_cores()), out=folder.path)
+    check_fits(est, case, ("command line", "--members") if args.members is not None else (case.path, "case.members"))
+    for line in _unused_warnings(case, unused_parameters(case)):
+        print(line, file=sys.stderr)
+    return members, seed, folder, est
+
+
+def cmd_assess(args) -> int:
+    from .assess import draw_block_size, run_chunk_size
+    from .execute import make_executor
+    from .results import Checkpoints
+
+    case = load_case(args.case)
+    members, seed, folder, est = _assess_plan(args, case)
     progress = _Progress(args.quiet)
+    progress(est.describe(), force=True)
     started = datetime.now(timezone.utc)
     t0 = time.monotonic()
     executor = make_executor(args.workers, args.cluster)
     try:
-        # a resumed run keeps the chunking of the run it continues (results never depend on it)
-        earlier = Checkpoints.previous(Path(args.out)) if args.resume else None
-        chunk = ((earlier or {}).get("run_chunk") or args.chunk_members
-                 or run_chunk_size(members, executor.workers, runs=1 + len(case.options)))
-        block = (earlier or {}).get("draw_block") or draw_block_size(members, executor.workers)
-        fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
-                       "max_draws": case.max_draws, "draw_block": block, "run_chunk": chunk,
-                       "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
-        store = Checkpoints(Path(args.out), fingerprint, resume=args.resume)
-        if args.resume and any(store.dir.glob("*.npz")):
-            progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
-        text, kept = _assess_into(case, args, members, seed, block, chunk, executor, store, progress, started, t0)
-    finally:
-        executor.close()
-    store.discard()
+        with folder:  # the lock: one run per output folder
+            if folder.stale_lock:
+                progress(f"took over the lock of a run that is gone (pid {folder.stale_lock.get('pid')})", force=True)
+            # a resumed run keeps the chunking of the run it continues (results never depend on it)
+            earlier = Checkpoints.previous(folder.path) if args.resume else None
+            chunk = ((earlier or {}).get("run_chunk") or args.chunk_members
+                     or run_chunk_size(members, executor.workers, runs=1 + len(case.options)))
+            block = (earlier or {}).get("draw_block") or draw_block_size(members, executor.workers)
+            fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
+                           "max_draws": case.max_draws, "draw_block": block, "run_chunk": chunk,
+                           "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
+            store = Checkpoints(folder.path, fingerprint, resume=args.resume)
+            if args.resume and any(store.dir.glob("*.npz")):
+                progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
+            try:
+                text, kept = _assess_into(case, args, members, seed, block, chunk, executor, store, progress,
+                                          started, t0, folder)
+            except CaseError:
+                store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
+                raise
+            store.discard()
+    except BaseException:
+        executor.abort()  # interrupted or failed: end the workers now, keep the saved chunks
+        raise
+    executor.close()
     print(text)
-    print(f"results written to {args.out}")
+    print(f"results written to {folder.path}")
+    _say_replaced(folder)
     return EXIT_NO_VERDICT if kept < case.risk.min_members else 0
 
 
+def _say_replaced(folder) -> None:
+    if folder.replaced:
+        print(f"{REPLACE_FLAG}: replaced {len(folder.replaced)} files impact had written in {folder.path}: "
+              + ", ".join(folder.replaced))
+    if folder.replaced and folder.kept:
+        print(f"kept {len(folder.kept)} other files there: " + ", ".join(folder.kept))
+
+
 def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: int, executor, store, progress,
-                 started, t0) -> tuple[str, int]:
+                 started, t0, folder) -> tuple[str, int]:
     from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
     from .decision import drivers_table, information_table
     from .effects import comparisons_table, effects_table, objectives_table
     from .model import equations
-    from .results import staged_directory, write_csv, write_json
+    from .results import write_csv, write_json
 
-    with staged_directory(Path(args.out)) as tmp:
+    with folder.stage() as tmp:
         ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
         runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
         progress("tabulating risk", force=True)
@@ -362,7 +425,8 @@ def cmd_scan(args) -> int:
     from .dynamics import default_settings, nominal_values, scan_web, section_species, settings_record
     from .execute import make_executor
     from .model import web_params
-    from .results import staged_directory, write_csv, write_json
+    from .outfolder import OutputFolder
+    from .results import write_csv, write_json
 
     case = load_case(args.case)
     if args.steps < 2:
@@ -378,15 +442,18 @@ def cmd_scan(args) -> int:
     over = {k: v for k, v in (("transient", args.transient), ("window", args.window), ("sample_dt", args.sample_dt)) if v is not None}
     settings = default_settings(case, p, p.initial, **over)
     grid = np.linspace(args.start, args.stop, args.steps)
+    folder = OutputFolder(args.out, replace=args.replace_results)
     progress = _Progress(args.quiet)
     t0 = time.monotonic()
     executor = make_executor(args.workers, args.cluster)
-    with staged_directory(Path(args.out)) as tmp:
+    with folder, folder.stage() as tmp:
         try:
             scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option, executor=executor,
                                            section=section, continuation=not args.parallel, progress=progress)
-        finally:
-            executor.close()
+        except BaseException:
+            executor.abort()
+            raise
+        executor.close()
         write_csv(scan, tmp / "dynamics" / "scan.csv")
         write_csv(points, tmp / "dynamics" / "scan_points.csv")
         write_csv(trans, tmp / "dynamics" / "transitions.csv")
@@ -406,7 +473,8 @@ def cmd_scan(args) -> int:
         print(f"transition {r.kind}: {r.from_regime} -> {r.to_regime} between {r.from_value:.6g} and {r.to_value:.6g}")
     if points.failed.any():
         print(f"WARNING: {int(points.failed.sum())} scan values failed numerically")
-    print(f"results written to {args.out} ({len(grid) / max(seconds, 1e-9):.2f} values per second)")
+    print(f"results written to {folder.path} ({len(grid) / max(seconds, 1e-9):.2f} values per second)")
+    _say_replaced(folder)
     return 0
 
 
@@ -438,16 +506,18 @@ def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor
 
 def cmd_sensitivity(args) -> int:
     from .execute import make_executor
-    from .results import staged_directory, write_json
+    from .outfolder import OutputFolder
+    from .results import write_json
 
     case = load_case(args.case)
     seed = args.seed if args.seed is not None else case.seed
     if seed < 0:
         raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    folder = OutputFolder(args.out, replace=args.replace_results)
     progress = _Progress(args.quiet)
     executor = make_executor(args.workers, args.cluster)
     try:
-        with staged_directory(Path(args.out)) as tmp:
+        with folder, folder.stage() as tmp:
             entry = _sensitivity_into(case, args, seed, tmp, progress, executor)
             write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
                         "seed": seed, "sensitivity": entry, "packages": package_versions(),
@@ -455,9 +525,12 @@ def cmd_sensitivity(args) -> int:
                         "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
                                  "invented": case.invented}},
                        tmp / "manifest.json")
-    finally:
-        executor.close()
-    print(f"results written to {args.out}")
+    except BaseException:
+        executor.abort()
+        raise
+    executor.close()
+    print(f"results written to {folder.path}")
+    _say_replaced(folder)
     return 0
 
 
@@ -480,7 +553,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("assess", help="run the full assessment of a case")
     p.add_argument("case")
-    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p.add_argument(REPLACE_FLAG, action="store_true",
+                   help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's)")
     p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
@@ -499,7 +574,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
     p.add_argument("case")
-    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p.add_argument(REPLACE_FLAG, action="store_true",
+                   help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--base-samples", type=int, default=1024, help="Sobol base samples N, a power of two (default 1024)")
     p.add_argument("--second-order", action="store_true", help="also estimate second-order (pairwise) indices")
     p.add_argument("--seed", type=int, default=None, help="seed of the design scramble and bootstrap (default: the case's)")
@@ -519,7 +596,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--to", dest="stop", type=float, required=True)
     p.add_argument("--steps", type=int, required=True, help="number of values (at least 2)")
     p.add_argument("--option", default=None, help="run under this option's press interventions")
-    p.add_argument("--out", required=True, help="results directory (created or replaced)")
+    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p.add_argument(REPLACE_FLAG, action="store_true",
+                   help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
     p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
     p.add_argument("--sample-dt", type=float, default=None, help="sampling / renormalisation interval")
@@ -538,26 +617,47 @@ def build_parser() -> argparse.ArgumentParser:
     return ap
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (batch schedulers, ``timeout``): unwound like Ctrl-C, so nothing is left half-done."""
+
+
+def _on_sigterm(signum, frame):
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # a second SIGTERM must not cut the clean-up short
+    raise Terminated()
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    try:
+        previous = signal.signal(signal.SIGTERM, _on_sigterm), signal.getsignal(signal.SIGINT)
+    except ValueError:  # not the main thread: leave signals alone
+        previous = None
     try:
         return args.func(args)
     except CaseError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
+    except WriteError as exc:
+        print(f"error: {exc.path}: {exc.message}", file=sys.stderr)
+        return 2
     except OSError as exc:
-        # an unwritable or full output location; checkpoints already saved stay valid
-        where = exc.filename or getattr(args, "out", None) or "output"
-        print(f"error: {where}: cannot write ({exc.strerror or exc}); choose another --out or free space "
-              "(an interrupted assessment can continue with --resume)", file=sys.stderr)
+        # not raised as a ReadError or WriteError: say what the system said, and where
+        print(f"error: {exc.filename or getattr(args, 'out', None) or 'impact'}: {exc.strerror or exc}", file=sys.stderr)
         return 2
     except WorkerLost as exc:
         print(f"error: {exc}; the chunks already finished are saved: rerun with --resume", file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print("interrupted; no results were written", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        what = "terminated" if isinstance(exc, Terminated) else "interrupted"
+        resume = "; the chunks already finished are kept: run the same command with --resume to continue" \
+            if args.command == "assess" else ""
+        print(f"{what}; no results were written{resume}", file=sys.stderr)
+        return 143 if isinstance(exc, Terminated) else 130
+    finally:
+        if previous is not None:  # (the final move of results ignores both: see impact.outfolder)
+            signal.signal(signal.SIGTERM, previous[0])
+            signal.signal(signal.SIGINT, previous[1])
 
 
 if __name__ == "__main__":

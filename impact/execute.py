@@ -17,6 +17,9 @@ streams come from the seed and its draw index alone (see :mod:`impact.sample`).
 from __future__ import annotations
 
 import os
+import signal
+import threading
+import time
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
@@ -27,6 +30,27 @@ from .errors import CaseError
 RETRIES = 2
 # How long a cluster address may take to answer before the run gives up on it (seconds).
 CONNECT_TIMEOUT = 10.0
+# How often a pool worker checks that the process that started it is still there (seconds): a
+# parent killed with SIGKILL cannot end its workers, so they end themselves within this time.
+PARENT_POLL = 0.5
+
+
+def _worker_start(parent: int):
+    """Pool-worker initializer: leave interrupts to the parent, and end when the parent is gone.
+
+    The parent decides what an interrupt means (it ends the pool itself), so workers ignore
+    SIGINT (a terminal's Ctrl-C reaches the whole process group) and take SIGTERM's default
+    action rather than any handler inherited through fork.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+
+    def watch():
+        while os.getppid() == parent:
+            time.sleep(PARENT_POLL)
+        os._exit(1)  # orphaned: nobody will read this worker's results
+
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
 
 
 def machine_cores() -> int:
@@ -48,6 +72,9 @@ class InProcess:
             yield i, fn(task)
 
     def close(self):
+        pass
+
+    def abort(self):
         pass
 
     def describe(self) -> dict:
@@ -74,7 +101,8 @@ class LocalPool:
 
     def _executor(self) -> ProcessPoolExecutor:
         if self._pool is None:
-            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx)
+            self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx,
+                                             initializer=_worker_start, initargs=(os.getpid(),))
         return self._pool
 
     def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
@@ -116,6 +144,26 @@ class LocalPool:
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
+
+    def abort(self):
+        """End the workers at once (interrupt, error): their unfinished chunks are not wanted."""
+        pool, self._pool = self._pool, None
+        if pool is None:
+            return
+        if hasattr(pool, "kill_workers"):  # Python 3.14+
+            pool.kill_workers()
+            pool.shutdown(wait=True, cancel_futures=True)
+            return
+        # before 3.14 the executor offers no public way to stop a running task: kill its processes
+        procs = list((getattr(pool, "_processes", None) or {}).values())
+        for p in procs:
+            try:
+                p.kill()
+            except (OSError, ValueError):
+                pass
+        pool.shutdown(wait=False, cancel_futures=True)
+        for p in procs:
+            p.join(timeout=5)
 
     def describe(self) -> dict:
         return {"executor": self.name, "workers": self.workers}
@@ -167,6 +215,10 @@ class DaskCluster:
                 f.release()
 
     def close(self):
+        self._client.close()
+
+    def abort(self):
+        """Stop waiting for the cluster (its scheduler drops the released tasks)."""
         self._client.close()
 
     def describe(self) -> dict:

@@ -26,8 +26,6 @@ from __future__ import annotations
 import io
 import json
 import math
-import os
-import tempfile
 from dataclasses import dataclass, field
 from importlib import resources
 from pathlib import Path
@@ -35,8 +33,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import CaseError
 from .cautions import cautions
+from .errors import CaseError, ReadError, WriteError
 from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
 from .verdict import reading, thin_run, with_term
@@ -94,13 +92,24 @@ class Results:
 
 
 def read_table(path: Path) -> pd.DataFrame:
-    """Read a results CSV keeping names as text (a species called "NA" stays "NA")."""
+    """Read a results CSV keeping names as text (a species called "NA" stays "NA").
+
+    The table is checked against the results schema (:data:`impact.results.TABLES`) first: a
+    missing column or text in a number column is refused naming the file and the column.
+    """
+    from .results import check_table
+
+    path = Path(path)
+    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics") else path.name
     try:
         df = pd.read_csv(path, dtype=str, keep_default_na=False)
     except FileNotFoundError:
         raise CaseError(str(path.parent), path.name, "not found; point at a directory written by `impact assess`") from None
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise CaseError(str(path), "", f"is not a readable CSV table ({exc})") from None
+    except OSError as exc:
+        raise ReadError(str(path), "", f"cannot be read ({exc.strerror or exc})") from None
+    check_table(df, path, relative)
     for c in df.columns:
         if c not in TEXT_COLUMNS:
             df[c] = pd.to_numeric(df[c].replace("", "nan"), errors="coerce")
@@ -116,23 +125,22 @@ def _read_stage(folder: Path) -> dict | None:
             out[p.stem] = read_table(p)
         elif p.suffix == ".json":
             try:
-                out[p.stem] = json.loads(p.read_text(encoding="utf-8"))
-            except json.JSONDecodeError as exc:
-                raise CaseError(str(p), "", f"is not valid JSON ({exc})") from None
+                out[p.stem] = json.loads(p.read_bytes().decode("utf-8"))
+            except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+                raise CaseError(str(p), "", f"is not valid UTF-8 JSON ({exc}); the results folder is damaged") from None
+            except OSError as exc:
+                raise ReadError(str(p), "", f"cannot be read ({exc.strerror or exc})") from None
     return out or None
 
 
 def load_results(path) -> Results:
-    """Read a results directory written by ``impact assess``."""
+    """Read a results directory written by ``impact assess``, checked against the results schema."""
     from .results import read_manifest
 
     path = Path(path)
     if not path.is_dir():
         raise CaseError(str(path), "", "is not a results directory (run `impact assess` first)")
     manifest = read_manifest(path)
-    for key in ("case", "species", "options", "counts", "horizons", "time_unit", "judgement", "objectives"):
-        if key not in manifest:
-            raise CaseError(str(path / "manifest.json"), key, "missing; the results directory is incomplete")
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
@@ -701,13 +709,11 @@ def write_report(results_dir, out=None, paper: str = "a4") -> Path:
     out = Path(out) if out is not None else Path(results_dir) / "report.pdf"
     html, assets = report_html(res, paper)
     pdf, _ = render_pdf(html, assets)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent)
+    from .results import write_file_atomic
+
     try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(pdf)
-        os.replace(tmp, out)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+        out.parent.mkdir(parents=True, exist_ok=True)
+        write_file_atomic(out, pdf)  # mode from the umask, like the tables beside it
+    except OSError as exc:
+        raise WriteError(exc.filename or out, f"cannot write the report ({exc.strerror or exc})") from None
     return out

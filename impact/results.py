@@ -1,7 +1,9 @@
-"""Writing and reading the results directory.
+"""Writing and reading the results directory, its schema, and the checkpoints of a run.
 
-Outputs are written into a temporary sibling directory and renamed into place only when
-complete, so an interrupted or failed run never leaves half-written results behind.
+Outputs are written into a partial sibling folder and moved into place only when complete
+(:mod:`impact.outfolder`), so an interrupted or failed run never leaves half-written results
+behind. :data:`TABLES` and :data:`MANIFEST_FIELDS` are the schema ``impact report`` checks a
+results folder against before reading a number from it.
 """
 
 from __future__ import annotations
@@ -9,40 +11,12 @@ from __future__ import annotations
 import json
 import os
 import shutil
-import tempfile
-from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .errors import CaseError
-
-
-@contextmanager
-def staged_directory(out: Path):
-    """Yield a temporary directory that replaces ``out`` atomically on success.
-
-    An existing ``out`` is only replaced when it looks like a results directory
-    (it holds a ``manifest.json``) or is empty, so a typo cannot wipe unrelated files.
-    """
-    out = Path(out)
-    if out.exists() and (not out.is_dir() or (any(out.iterdir()) and not (out / "manifest.json").exists())):
-        raise CaseError("command line", "--out", f"{out} exists and is not a results directory; choose a new or empty directory")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
-    try:
-        yield tmp
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    old = None
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{os.getpid()}"
-        os.rename(out, old)
-    os.rename(tmp, out)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
+from .errors import CaseError, ReadError, WriteError
 
 
 def write_csv(frame: pd.DataFrame, path: Path):
@@ -68,13 +42,125 @@ def _jsonable(x):
 
 
 def read_manifest(results: Path) -> dict:
+    """``manifest.json`` of a results folder, checked against :data:`MANIFEST_FIELDS`."""
     path = Path(results) / "manifest.json"
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
+        manifest = json.loads(path.read_bytes().decode("utf-8"))
     except FileNotFoundError:
         raise CaseError(str(results), "manifest.json", "not found; point at a directory written by `impact assess`") from None
+    except UnicodeDecodeError as exc:
+        raise CaseError(str(path), "", f"is not UTF-8 text (byte {exc.start}); the results folder is damaged") from None
     except json.JSONDecodeError as exc:
         raise CaseError(str(path), "", f"is not valid JSON ({exc})") from None
+    except OSError as exc:
+        raise ReadError(str(path), "", f"cannot be read ({exc.strerror or exc})") from None
+    check_manifest(manifest, path)
+    return manifest
+
+
+# ----------------------------------------------------------------------------- schema
+
+# Manifest fields the report reads: name -> (type, required). Lists of tables name the keys each
+# entry must have, with their types.
+_NUMBER = (int, float)
+MANIFEST_FIELDS = {
+    "case": (dict, True), "species": (list, True), "options": (list, True), "counts": (dict, True),
+    "horizons": (list, True), "time_unit": (str, True), "horizon": (_NUMBER, False),
+    "confidence": (_NUMBER, False), "seed": (int, False), "stages": (list, False),
+    "interventions": (list, False), "interactions": (list, False), "equations": (list, False),
+    "assumptions": (list, False), "command": (list, False), "packages": (dict, False), "execution": (dict, False),
+    "judgement": (dict, True), "objectives": (list, True),
+}
+MANIFEST_ENTRIES = {"species": {"name": str, "role": str}, "options": {"name": str, "interventions": list, "touches": list},
+                    "interventions": {"name": str}}
+
+# Results tables: relative path -> (columns that must be there, those of them that hold numbers).
+# Stage tables are optional (the stage may not have run); when present they must match.
+TABLES = {
+    "risk.csv": (("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n"),
+                 ("horizon", "value", "low", "high", "level", "n")),
+    "effects.csv": (("option", "species", "role", "direct", "metric", "horizon", "statistic", "value", "low", "high",
+                     "interval", "level", "n", "threshold"), ("horizon", "value", "low", "high", "level", "n")),
+    "objectives.csv": (("objective", "option", "species", "measure", "horizon", "event", "requirement", "bound",
+                        "statistic", "value", "low", "high", "interval", "level", "n", "status"),
+                       ("horizon", "bound", "value", "low", "high", "level", "n")),
+    "comparisons.csv": (("objective", "option", "versus", "statistic", "value", "low", "high", "interval", "level",
+                         "n"), ("value", "low", "high", "level", "n")),
+    "sensitivity/drivers.csv": (("option", "output", "species", "parameter", "value", "low", "high", "interval",
+                                 "level", "n", "conditional_on"), ("value", "low", "high", "level", "n")),
+    "sensitivity/information.csv": (("objective", "parameter", "kind", "value", "low", "high", "interval", "level",
+                                     "n", "best_choice", "best_chance", "unit"),
+                                    ("value", "low", "high", "level", "n", "best_chance")),
+    "bands.csv": (("option", "species", "time", "q05", "q25", "q50", "q75", "q95"),
+                  ("time", "q05", "q25", "q50", "q75", "q95")),
+    "priors.csv": (("name", "distribution", "arguments", "unit", "source", "description"), ()),
+    "sensitivity/indices.csv": (("option", "metric", "species", "parameter", "S1", "S1_conf", "ST", "ST_conf"),
+                                ("S1", "S1_conf", "ST", "ST_conf")),
+    "sensitivity/ranking.csv": (("option", "metric", "species", "rank", "parameter", "ST", "S1"), ("rank", "ST", "S1")),
+    "sensitivity/convergence.csv": (("option", "metric", "species", "max_shift", "max_ci_width", "converged"),
+                                    ("max_shift", "max_ci_width")),
+    "dynamics/regimes.csv": (("option", "member", "regime", "period", "lyapunov", "horizon_time"),
+                             ("member", "period", "lyapunov", "horizon_time")),
+    "dynamics/regime_shares.csv": (("option", "regime", "share", "count"), ("share", "count")),
+    "dynamics/scan.csv": (("parameter", "value", "section_value", "regime", "period", "lyapunov"),
+                          ("value", "section_value", "period", "lyapunov")),
+    "dynamics/transitions.csv": (("parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"),
+                                 ("from_value", "to_value")),
+}
+
+
+def _type_name(kind) -> str:
+    kinds = kind if isinstance(kind, tuple) else (kind,)
+    return " or ".join({dict: "an object", list: "a list", str: "text", int: "a whole number",
+                        float: "a number"}[k] for k in kinds)
+
+
+def check_manifest(manifest, path: Path):
+    """Refuse a manifest whose fields the report needs are missing or of the wrong type."""
+    if not isinstance(manifest, dict):
+        raise CaseError(str(path), "", "must be a JSON object; the results folder is damaged")
+    for key, (kind, required) in MANIFEST_FIELDS.items():
+        if key not in manifest:
+            if required:
+                raise CaseError(str(path), key, "missing; the results directory is incomplete")
+            continue
+        v = manifest[key]
+        if isinstance(v, bool) or not isinstance(v, kind):
+            raise CaseError(str(path), key, f"must be {_type_name(kind)}, got {type(v).__name__}; the results folder is damaged")
+    for i, h in enumerate(manifest["horizons"]):
+        if isinstance(h, bool) or not isinstance(h, _NUMBER):
+            raise CaseError(str(path), f"horizons[{i}]", f"must be a number, got {h!r}")
+    if not manifest["horizons"]:
+        raise CaseError(str(path), "horizons", "must list at least one horizon")
+    for key, fields in MANIFEST_ENTRIES.items():
+        for i, entry in enumerate(manifest.get(key, [])):
+            if not isinstance(entry, dict):
+                raise CaseError(str(path), f"{key}[{i}]", f"must be an object, got {type(entry).__name__}")
+            for f, kind in fields.items():
+                if f in entry and not isinstance(entry[f], kind):
+                    raise CaseError(str(path), f"{key}[{i}].{f}", f"must be {_type_name(kind)}, got {type(entry[f]).__name__}")
+                if f not in entry and f == "name":
+                    raise CaseError(str(path), f"{key}[{i}].name", "missing; the results folder is damaged")
+
+
+def check_table(frame: pd.DataFrame, path: Path, relative: str):
+    """Refuse a results table without the columns the report reads, or with text in a number column.
+
+    ``frame`` holds the table as read, every cell as text (empty for a missing value).
+    """
+    if relative not in TABLES:
+        return
+    required, numeric = TABLES[relative]
+    missing = [c for c in required if c not in frame.columns]
+    if missing:
+        raise CaseError(str(path), missing[0], f"column missing (the table needs: {', '.join(required)}); "
+                                               "the results folder is damaged")
+    for c in numeric:
+        cells = frame[c].astype(str)
+        bad = cells[(cells != "") & pd.to_numeric(cells, errors="coerce").isna() & (cells.str.lower() != "nan")]
+        if len(bad):
+            raise CaseError(str(path), c, f"row {int(bad.index[0]) + 2} holds {bad.iloc[0]!r}, not a number; "
+                                          "the results folder is damaged")
 
 
 class Checkpoints:
@@ -97,7 +183,7 @@ class Checkpoints:
     """
 
     def __init__(self, out: Path, fingerprint: dict, resume: bool):
-        out = Path(out)
+        out = Path(os.path.abspath(out))
         self.dir = out.parent / f".{out.name}.checkpoints"
         self.fingerprint = json.loads(json.dumps(fingerprint, default=_jsonable))
         self.reused = 0
@@ -117,12 +203,13 @@ class Checkpoints:
             if not fp.exists():
                 _atomic_write(fp, (json.dumps(self.fingerprint, indent=2) + "\n").encode("utf-8"))
         except OSError as exc:
-            raise CaseError(str(self.dir), "", f"cannot write checkpoints here ({exc.strerror or exc})") from None
+            raise WriteError(exc.filename or self.dir, f"cannot write checkpoints here ({exc.strerror or exc}); "
+                                                       "choose another --out") from None
 
     @staticmethod
     def previous(out: Path) -> dict | None:
         """The fingerprint of checkpoints left beside ``out`` by an earlier run, if any."""
-        out = Path(out)
+        out = Path(os.path.abspath(out))
         try:
             return json.loads((out.parent / f".{out.name}.checkpoints" / "fingerprint.json").read_text(encoding="utf-8"))
         except (OSError, ValueError):
@@ -153,9 +240,9 @@ class Checkpoints:
         try:
             _atomic_write(self._path(key), buf.getvalue())
         except OSError as exc:
-            raise CaseError(str(self.dir), key, f"could not save a checkpoint ({exc.strerror or exc}); "
-                                                "the checkpoints already written are intact: free space and rerun "
-                                                "with --resume") from None
+            raise WriteError(self._path(key), f"could not save a checkpoint ({exc.strerror or exc}); "
+                                              "the checkpoints already written are intact: free space and rerun "
+                                              "with --resume") from None
         self.saved += 1
 
     def get_summaries(self, key: str):
@@ -180,6 +267,11 @@ class Checkpoints:
     def discard(self):
         """Remove the checkpoints once the results directory is complete."""
         shutil.rmtree(self.dir, ignore_errors=True)
+
+
+def write_file_atomic(path: Path, data: bytes):
+    """Write ``data`` to ``path`` whole or not at all (temporary name, fsync, rename; mode from the umask)."""
+    _atomic_write(Path(path), data)
 
 
 def _atomic_write(path: Path, data: bytes):
