@@ -3,18 +3,15 @@
 from __future__ import annotations
 
 import argparse
-import platform
 import signal
 import sys
 import time
-from datetime import datetime, timezone
-from importlib import metadata
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from . import __version__
+from .api import AssessSettings, assess, package_versions, prior_screen, write_results
 from .case import Case, load_case
 from .effects import event_text
 from .errors import CaseError, WriteError
@@ -24,9 +21,6 @@ from .outfolder import REPLACE_FLAG
 # exit status of `impact assess` when the results are written but too thin for a verdict
 # (fewer plausible members than risk.min_members); 2 stays reserved for bad input
 EXIT_NO_VERDICT = 3
-CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
-           "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
-
 
 class _Progress:
     """Progress lines on stderr: stage messages, and counts with rate and time left.
@@ -69,26 +63,6 @@ def _duration(seconds: float) -> str:
     if seconds < 5400:
         return f"{seconds / 60:.0f} min"
     return f"{seconds / 3600:.1f} h"
-
-
-def package_versions() -> dict[str, str]:
-    out = {"python": platform.python_version(), "impact": __version__}
-    for name in ("numpy", "scipy", "pandas", "SALib", "jinja2", "weasyprint", "matplotlib"):
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
-
-
-def priors_table(case: Case) -> pd.DataFrame:
-    rows = []
-    for p in case.parameters:
-        args = {k: getattr(p.prior, k) for k in p.prior.__dataclass_fields__}
-        rows.append(dict(name=p.name, distribution=p.prior.kind, arguments=p.prior.describe(),
-                         unit=p.unit, source=p.source, description=p.description,
-                         uncertain=p.uncertain, **{f"arg_{k}": v for k, v in args.items()}))
-    return pd.DataFrame(rows)
 
 
 def describe_case(case: Case) -> str:
@@ -149,41 +123,6 @@ def describe_case(case: Case) -> str:
     L.append(f"material: a paired change of ±{case.risk.material_change:.0%} in mean abundance (unless a species sets "
              f"its own), {100 * case.risk.material_risk:g} points in a quasi-extinction or outbreak chance; "
              f"no verdict below {case.risk.min_members} plausible members")
-    return "\n".join(L)
-
-
-def _fmt_p(v, lo, hi):
-    return f"{v:5.1%} [{lo:.1%}, {hi:.1%}]"
-
-
-def summary_text(case: Case, risk: pd.DataFrame, counts: dict, failures: dict, verdict: str) -> str:
-    H = case.horizon
-    L = [f"{case.title}",
-         f"draws: {counts['tried']} tried, {counts['kept']} plausible kept "
-         f"({counts['failed']} failed numerically, {counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)"]
-    if counts["kept"] < counts["wanted"]:
-        L.append(f"WARNING: only {counts['kept']} of {counts['wanted']} wanted members were plausible within the draw limit")
-    for opt, f in failures.items():
-        if f["failed"]:
-            L.append(f"WARNING: {f['failed']} members failed numerically under {opt}: "
-                     + ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed"))
-    L.append(f"quasi-extinction probability by {H:g} {case.time_unit} [{case.risk.confidence:.0%} CI], and median change in mean abundance vs baseline:")
-    names = ["baseline", *[o.name for o in case.options]]
-    width = max(len(s) for s in case.species_names)
-    for sp in case.species_names:
-        cells = []
-        for opt in names:
-            r = risk[(risk.option == opt) & (risk.species == sp) & (risk.horizon == H)]
-            q = r[r.metric == "quasi_extinction"]
-            d = r[r.metric == "mean_change"]
-            cell = _fmt_p(*q[["value", "low", "high"]].iloc[0]) if len(q) else "   n/a"
-            if len(d):
-                cell += f" {d['value'].iloc[0]:+.0%}"
-            cells.append(f"{opt}: {cell}")
-        L.append(f"  {sp:<{width}}  " + " | ".join(cells))
-    L.append("verdict (the same as page 1 of report.pdf):")
-    L.append(verdict)
-    L.append("CAUTION: " + CAUTION)
     return "\n".join(L)
 
 
@@ -255,8 +194,6 @@ def cmd_assess(args) -> int:
     members, seed, folder, est = _assess_plan(args, case)
     progress = _Progress(args.quiet)
     progress(est.describe(), force=True)
-    started = datetime.now(timezone.utc)
-    t0 = time.monotonic()
     executor = make_executor(args.workers, args.cluster)
     try:
         with folder:  # the lock: one run per output folder
@@ -273,12 +210,17 @@ def cmd_assess(args) -> int:
             store = Checkpoints(folder.path, fingerprint, resume=args.resume)
             if args.resume and any(store.dir.glob("*.npz")):
                 progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
+            settings = AssessSettings(members=members, seed=seed, sensitivity=not args.no_sensitivity,
+                                      base_samples=args.base_samples, dynamics=not args.no_dynamics)
             try:
-                text, kept = _assess_into(case, args, members, seed, block, chunk, executor, store, progress,
-                                          started, t0, folder)
+                result = assess(case, settings, progress=lambda m: progress(m, force=True), executor=executor,
+                                store=store, block=block, chunk=chunk, command=sys.argv)
             except CaseError:
                 store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
                 raise
+            with folder.stage() as tmp:
+                text = write_results(result, tmp, report=not args.no_report, paper=args.paper,
+                                     progress=lambda m: progress(m, force=True))
             store.discard()
     except BaseException:
         executor.abort()  # interrupted or failed: end the workers now, keep the saved chunks
@@ -287,7 +229,7 @@ def cmd_assess(args) -> int:
     print(text)
     print(f"results written to {folder.path}")
     _say_replaced(folder)
-    return EXIT_NO_VERDICT if kept < case.risk.min_members else 0
+    return EXIT_NO_VERDICT if result.thin else 0
 
 
 def _say_replaced(folder) -> None:
@@ -296,121 +238,6 @@ def _say_replaced(folder) -> None:
               + ", ".join(folder.replaced))
     if folder.replaced and folder.kept:
         print(f"kept {len(folder.kept)} other files there: " + ", ".join(folder.kept))
-
-
-def _assess_into(case: Case, args, members: int, seed: int, block: int, chunk: int, executor, store, progress,
-                 started, t0, folder) -> tuple[str, int]:
-    from .assess import assess_members, bands_table, draw_ensemble, failure_counts, members_table, risk_table
-    from .decision import drivers_table, information_table
-    from .effects import comparisons_table, effects_table, objectives_table
-    from .model import equations
-    from .results import write_csv, write_json
-
-    with folder.stage() as tmp:
-        ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
-        runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
-        progress("tabulating risk", force=True)
-        risk = risk_table(case, runs)
-        failures = failure_counts(runs)
-        write_csv(risk, tmp / "risk.csv")
-        write_csv(effects_table(case, runs), tmp / "effects.csv")
-        write_csv(objectives_table(case, runs), tmp / "objectives.csv")
-        write_csv(comparisons_table(case, runs), tmp / "comparisons.csv")
-        write_csv(bands_table(case, runs), tmp / "bands.csv")
-        write_csv(members_table(case, ens, runs), tmp / "members.csv")
-        params = pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}})
-        write_csv(params, tmp / "parameters.csv")
-        write_csv(priors_table(case), tmp / "priors.csv")
-        manifest = {
-            "tool": "impact", "version": __version__,
-            "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                     "analyst": case.analyst, "description": case.description, "invented": case.invented},
-            "command": sys.argv,
-            "started_utc": started.isoformat(timespec="seconds"),
-            "seconds": round(time.monotonic() - t0, 2),
-            "seed": seed,
-            "counts": {**ens.counts, "failed_by_option": failures},
-            "time_unit": case.time_unit, "horizon": case.horizon, "horizons": list(case.risk.horizons),
-            "confidence": case.risk.confidence, "recovery_fraction": case.risk.recovery_fraction,
-            "species": [dict(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
-                             generation_time=s.generation_time, present=s.present, growth=s.growth, role=s.role,
-                             material_change=case.material_change(s.name)) for s in case.species],
-            "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description,
-                             touches=sorted(case.touched(o))) for o in case.options],
-            "objectives": [dict(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
-                                requirement=o.requirement, bound=o.bound, event=event_text(case, o),
-                                description=o.description) for o in case.objectives],
-            "judgement": {"material_change": case.risk.material_change, "material_risk": case.risk.material_risk,
-                          "min_members": case.risk.min_members,
-                          "likelihood_scale": "IPCC likelihood scale (Mastrandrea et al. 2010)"},
-            "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
-                                   description=iv.description) for iv in case.interventions],
-            # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
-            "interactions": ([dict(kind=f.kind, **{"from": f.consumer, "to": f.resource}, response=f.response)
-                              for f in case.feeding]
-                             + [dict(kind="competition", **{"from": c.competitor, "to": c.species}, response=None)
-                                for c in case.competition]
-                             + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
-                                for u in case.mutualism]),
-            "equations": equations(case),
-            "assumptions": list(case.notes),
-            "plausibility": "kept draws whose deterministic spin-up keeps every species present today above its "
-                            "quasi-extinction level over the second half of spin-up and whose state today lies in "
-                            "every observed range",
-            "packages": package_versions(),
-            "platform": platform.platform(),
-            "stages": ["assess"],
-            "caution": CAUTION,
-        }
-        # Later stages read the core tables from `tmp` and write into their own sub-directories;
-        # each appends its name to manifest["stages"] and may add a manifest entry of its own.
-        # stage: sensitivity (on the kept members, then the screen of the prior box)
-        if not getattr(args, "no_sensitivity", False) and case.uncertain:
-            progress("sensitivity and value of information on the plausible members", force=True)
-            write_csv(drivers_table(case, ens.values, runs, seed), tmp / "sensitivity" / "drivers.csv")
-            if case.objectives:
-                write_csv(information_table(case, ens.values, runs, seed), tmp / "sensitivity" / "information.csv")
-            manifest["stages"].append("sensitivity")
-        if not getattr(args, "no_sensitivity", False) and len(case.uncertain) < 2:
-            manifest["sensitivity"] = {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
-        elif not getattr(args, "no_sensitivity", False):
-            # the screen's own lines would interrupt the summary; its reading is in the report
-            manifest["sensitivity"] = _sensitivity_into(case, args, seed, tmp, progress, executor, store, quiet=True)
-        # stage: dynamics
-        if not getattr(args, "no_dynamics", False):
-            from .dynamics import assess_stage
-
-            dyn, dyn_record = assess_stage(case, ens.params, ens.values, runs, progress=progress,
-                                           executor=executor)
-            for key, frame in dyn.items():
-                write_csv(frame, tmp / "dynamics" / f"{key}.csv")
-            write_json(dyn_record, tmp / "dynamics" / "dynamics.json")
-            manifest["stages"].append("dynamics")
-        # every stage's chunks are in by now
-        manifest["execution"] = {**executor.describe(), "chunks_reused": store.reused, "chunks_computed": store.saved}
-        write_json(manifest, tmp / "manifest.json")
-        # stage: report (needs the manifest on disk)
-        if not getattr(args, "no_report", False):
-            from .report import write_report
-
-            progress("writing report.pdf", force=True)
-            write_report(tmp, tmp / "report.pdf", paper=getattr(args, "paper", "a4"))
-        text = summary_text(case, risk, ens.counts, failures, verdict_text(tmp))
-        (tmp / "summary.txt").write_text(text + "\n", encoding="utf-8")
-    return text, int(ens.counts["kept"])
-
-
-def verdict_text(results: Path) -> str:
-    """The page-1 verdict as terminal text, read back from the tables just written."""
-    from .report import load_results
-    from .verdict import reading, reading_text
-
-    from .report import hinges_text
-
-    res = load_results(results)
-    text = reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons))
-    hinges = hinges_text(res)
-    return text + ("\nwhat the decision hinges on (plausible members):\n" + hinges if hinges else "")
 
 
 def cmd_report(args) -> int:
@@ -478,36 +305,21 @@ def cmd_scan(args) -> int:
     return 0
 
 
-def _sensitivity_into(case: Case, args, seed: int, out: Path, progress, executor=None, store=None,
-                      quiet: bool = False) -> dict:
-    """Run the sensitivity stage and write its tables into ``out / "sensitivity"``; print its summary."""
-    from .results import write_csv, write_json
-    from .sensitivity import DEFAULT_FAILURE_LIMIT, DEFAULT_TOLERANCE, Settings, sensitivity_stage, summary_lines
+def _screen_settings(case: Case, args, seed: int):
+    """The prior screen's settings from the command line."""
+    from .sensitivity import Settings
 
-    screen = {"auto": None, "morris": True, "none": False}[getattr(args, "screen", "auto")]
-    settings = Settings(base_samples=args.base_samples, second_order=getattr(args, "second_order", False), seed=seed,
-                        confidence=case.risk.confidence, tolerance=getattr(args, "tolerance", DEFAULT_TOLERANCE),
-                        failure_limit=getattr(args, "failure_limit", DEFAULT_FAILURE_LIMIT), screen=screen)
-    t0 = time.monotonic()
-    res = sensitivity_stage(case, settings, progress=progress, executor=executor, store=store)
-    d = out / "sensitivity"
-    write_csv(res.indices, d / "indices.csv")
-    write_csv(res.second_order, d / "second_order.csv")
-    write_csv(res.ranking, d / "ranking.csv")
-    write_csv(res.convergence, d / "convergence.csv")
-    info = {**res.info, "seconds_total": round(time.monotonic() - t0, 2)}
-    write_json(info, d / "sensitivity.json")
-    if not quiet:
-        for line in summary_lines(res):
-            print(line)
-    return {"N": info["N"], "runs": info["runs"], "not_converged": info["not_converged"],
-            "refused": len(info["refused"]), "conditional_on": info["conditional_on"]}
+    screen = {"auto": None, "morris": True, "none": False}[args.screen]
+    return Settings(base_samples=args.base_samples, second_order=args.second_order, seed=seed,
+                    confidence=case.risk.confidence, tolerance=args.tolerance, failure_limit=args.failure_limit,
+                    screen=screen)
 
 
 def cmd_sensitivity(args) -> int:
     from .execute import make_executor
     from .outfolder import OutputFolder
-    from .results import write_json
+    from .results import write_csv, write_json
+    from .sensitivity import check_settings
 
     case = load_case(args.case)
     seed = args.seed if args.seed is not None else case.seed
@@ -517,8 +329,16 @@ def cmd_sensitivity(args) -> int:
     progress = _Progress(args.quiet)
     executor = make_executor(args.workers, args.cluster)
     try:
+        settings = _screen_settings(case, args, seed)
+        check_settings(settings)
         with folder, folder.stage() as tmp:
-            entry = _sensitivity_into(case, args, seed, tmp, progress, executor)
+            tables, records, entry = prior_screen(case, settings, progress, executor)
+            for rel, frame in tables.items():
+                write_csv(frame, tmp / rel)
+            for rel, rec in records.items():
+                write_json(rec, tmp / rel)
+            print(f"prior screen: {entry['runs']} runs, N = {entry['N']}; {entry['not_converged']} outputs not converged; "
+                  f"indices conditional on: {entry['conditional_on']}")
             write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
                         "seed": seed, "sensitivity": entry, "packages": package_versions(),
                         "execution": executor.describe(),

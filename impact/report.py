@@ -35,7 +35,7 @@ import pandas as pd
 
 from .cautions import cautions
 from .errors import CaseError, ReadError, WriteError
-from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
+from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
 from .verdict import reading, thin_run, with_term
 from .webfigure import food_web_svg

@@ -1,0 +1,344 @@
+"""The Python interface: run an assessment, get typed results back, save them, read them, report them.
+
+::
+
+    import impact.api as impact
+
+    case = impact.load_case("casework/island_mesopredator.toml")
+    result = impact.assess(case, impact.AssessSettings(members=300, dynamics=False))
+    result.effects            # paired effects, a DataFrame (the columns of effects.csv)
+    result.verdict_text()     # the page-1 verdict as text
+    folder = impact.save(result, "results/demo")          # tables, manifest, report.pdf, summary.txt
+    again = impact.load(folder)                            # the saved tables, read back and checked
+
+The command-line interface is a thin shell over these functions.
+"""
+
+from __future__ import annotations
+
+import platform
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from importlib import metadata
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .assess import (Ensemble, assess_members, bands_table, draw_ensemble, failure_counts, members_table,
+                     risk_table)
+from .case import Case
+from .case import load_case as _read_case
+from .decision import drivers_table, information_table
+from .effects import comparisons_table, effects_table, event_text, objectives_table
+from .model import equations
+
+CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
+           "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
+PLAUSIBILITY_RULE = ("kept draws whose deterministic spin-up keeps every species present today above its "
+                     "quasi-extinction level over the second half of spin-up and whose state today lies in "
+                     "every observed range")
+Progress = Callable[[str], None]
+
+
+def load_case(path) -> Case:
+    """Read and validate a case file (raises :class:`impact.errors.CaseError` naming the field)."""
+    return _read_case(path)
+
+
+@dataclass(frozen=True)
+class AssessSettings:
+    """What to run. ``None`` takes the case's own value.
+
+    Attributes
+    ----------
+    members : int, optional
+        Plausible members wanted (default ``case.members``).
+    seed : int, optional
+        Seed of the one random path (default ``case.seed``; 0 is a seed like any other).
+    sensitivity : bool
+        Main effects and value of information on the kept members, and the Sobol screen of the prior box.
+    base_samples : int
+        Sobol base samples N of the prior screen (a power of two).
+    dynamics : bool
+        Regime, Lyapunov exponent and predictability screen.
+    """
+
+    members: int | None = None
+    seed: int | None = None
+    sensitivity: bool = True
+    base_samples: int = 128
+    dynamics: bool = True
+
+
+@dataclass
+class Assessment:
+    """An assessment in memory: the case, the ensemble, the manifest and every results table.
+
+    ``tables`` maps the relative path of each results file (``"risk.csv"``,
+    ``"sensitivity/drivers.csv"``, ...) to its DataFrame; ``records`` does the same for JSON records.
+    """
+
+    case: Case
+    ensemble: Ensemble
+    manifest: dict
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    records: dict[str, dict] = field(default_factory=dict)
+
+    @property
+    def risk(self) -> pd.DataFrame:
+        return self.tables["risk.csv"]
+
+    @property
+    def effects(self) -> pd.DataFrame:
+        return self.tables["effects.csv"]
+
+    @property
+    def objectives(self) -> pd.DataFrame:
+        return self.tables["objectives.csv"]
+
+    @property
+    def comparisons(self) -> pd.DataFrame:
+        return self.tables["comparisons.csv"]
+
+    @property
+    def thin(self) -> bool:
+        """Too few plausible members for a verdict (``risk.min_members``)."""
+        return int(self.manifest["counts"]["kept"]) < self.case.risk.min_members
+
+    def write(self, folder: Path) -> None:
+        """Write every table and record and the manifest into ``folder`` (no report, no summary)."""
+        from .results import write_csv, write_json
+
+        folder = Path(folder)
+        for rel, frame in self.tables.items():
+            write_csv(frame, folder / rel)
+        for rel, rec in self.records.items():
+            write_json(rec, folder / rel)
+        write_json(self.manifest, folder / "manifest.json")
+
+
+def package_versions() -> dict[str, str]:
+    out = {"python": platform.python_version(), "impact": __version__}
+    for name in ("numpy", "scipy", "pandas", "SALib", "jinja2", "weasyprint", "matplotlib", "networkx"):
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = "not installed"
+    return out
+
+
+def priors_table(case: Case) -> pd.DataFrame:
+    rows = []
+    for p in case.parameters:
+        args = {k: getattr(p.prior, k) for k in p.prior.__dataclass_fields__}
+        rows.append(dict(name=p.name, distribution=p.prior.kind, arguments=p.prior.describe(),
+                         unit=p.unit, source=p.source, description=p.description,
+                         uncertain=p.uncertain, **{f"arg_{k}": v for k, v in args.items()}))
+    return pd.DataFrame(rows)
+
+
+def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,
+                 seconds: float) -> dict:
+    """The manifest of an assessment: what was run, on what, and everything the report needs of the case."""
+    return {
+        "tool": "impact", "version": __version__,
+        "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                 "analyst": case.analyst, "description": case.description, "invented": case.invented},
+        "command": list(command), "started_utc": started.isoformat(timespec="seconds"), "seconds": round(seconds, 2),
+        "seed": seed, "counts": {**ens.counts, "failed_by_option": failures},
+        "time_unit": case.time_unit, "horizon": case.horizon, "horizons": list(case.risk.horizons),
+        "confidence": case.risk.confidence, "recovery_fraction": case.risk.recovery_fraction,
+        "species": [dict(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
+                         generation_time=s.generation_time, present=s.present, growth=s.growth, role=s.role,
+                         material_change=case.material_change(s.name)) for s in case.species],
+        "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description,
+                         touches=sorted(case.touched(o))) for o in case.options],
+        "objectives": [dict(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
+                            requirement=o.requirement, bound=o.bound, event=event_text(case, o),
+                            description=o.description) for o in case.objectives],
+        "judgement": {"material_change": case.risk.material_change, "material_risk": case.risk.material_risk,
+                      "min_members": case.risk.min_members,
+                      "likelihood_scale": "IPCC likelihood scale (Mastrandrea et al. 2010)"},
+        "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
+                               description=iv.description) for iv in case.interventions],
+        # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
+        "interactions": ([dict(kind=f.kind, **{"from": f.consumer, "to": f.resource}, response=f.response)
+                          for f in case.feeding]
+                         + [dict(kind="competition", **{"from": c.competitor, "to": c.species}, response=None)
+                            for c in case.competition]
+                         + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
+                            for u in case.mutualism]),
+        "equations": equations(case), "assumptions": list(case.notes), "plausibility": PLAUSIBILITY_RULE,
+        "packages": package_versions(), "platform": platform.platform(), "stages": ["assess"], "caution": CAUTION,
+    }
+
+
+def prior_screen(case: Case, settings, progress: Progress | None = None, executor=None, store=None
+                 ) -> tuple[dict[str, pd.DataFrame], dict, dict]:
+    """The Sobol screen of the prior box: its tables (by relative path), its record, and the manifest entry."""
+    from .sensitivity import sensitivity_stage
+
+    t0 = time.monotonic()
+    res = sensitivity_stage(case, settings, progress=progress, executor=executor, store=store)
+    tables = {"sensitivity/indices.csv": res.indices, "sensitivity/second_order.csv": res.second_order,
+              "sensitivity/ranking.csv": res.ranking, "sensitivity/convergence.csv": res.convergence}
+    info = {**res.info, "seconds_total": round(time.monotonic() - t0, 2)}
+    entry = {"N": info["N"], "runs": info["runs"], "not_converged": info["not_converged"],
+             "refused": len(info["refused"]), "conditional_on": info["conditional_on"]}
+    return tables, {"sensitivity/sensitivity.json": info}, entry
+
+
+def _sensitivity_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, result: Assessment,
+                       progress, executor, store) -> None:
+    from .sensitivity import Settings as ScreenSettings
+
+    if case.uncertain:
+        if progress:
+            progress("sensitivity and value of information on the plausible members")
+        result.tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
+        if case.objectives:
+            result.tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+        result.manifest["stages"].append("sensitivity")
+    if len(case.uncertain) < 2:
+        result.manifest["sensitivity"] = {
+            "skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
+        return
+    screen = ScreenSettings(base_samples=settings.base_samples, seed=seed, confidence=case.risk.confidence)
+    tables, records, entry = prior_screen(case, screen, progress, executor, store)
+    result.tables.update(tables)
+    result.records.update(records)
+    result.manifest["sensitivity"] = entry
+
+
+def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
+           executor=None, store=None, block: int | None = None, chunk: int | None = None,
+           command: list[str] | None = None) -> Assessment:
+    """Run the whole assessment of ``case`` in memory and return it.
+
+    Parameters
+    ----------
+    executor : object with ``map(fn, tasks)``, optional
+        Where chunks are computed (default: this process); see :mod:`impact.execute`.
+    store : impact.results.Checkpoints, optional
+        Finished chunks are saved there and reused by a resumed run.
+    block, chunk : int, optional
+        Draw indices per screening block and members per run chunk; results never depend on them.
+    command : list of str, optional
+        How the run was asked for, recorded in the manifest (default: a note that it came from Python).
+    """
+    from .execute import InProcess
+
+    executor = executor or InProcess()
+    members = settings.members if settings.members is not None else case.members
+    seed = settings.seed if settings.seed is not None else case.seed
+    started, t0 = datetime.now(timezone.utc), time.monotonic()
+    ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
+    runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
+    if progress:
+        progress("tabulating risk")
+    failures = failure_counts(runs)
+    manifest = manifest_for(case, ens, failures, seed, command or ["python", "impact.api.assess"], started, 0.0)
+    result = Assessment(case, ens, manifest, {
+        "risk.csv": risk_table(case, runs), "effects.csv": effects_table(case, runs),
+        "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
+        "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
+        "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+        "priors.csv": priors_table(case)})
+    if settings.sensitivity:
+        _sensitivity_stage(case, settings, seed, ens, runs, result, progress, executor, store)
+    if settings.dynamics:
+        from .dynamics import assess_stage
+
+        dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor)
+        result.tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
+        result.records["dynamics/dynamics.json"] = record
+        manifest["stages"].append("dynamics")
+    manifest["seconds"] = round(time.monotonic() - t0, 2)
+    manifest["execution"] = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
+                             "chunks_computed": getattr(store, "saved", 0)}
+    return result
+
+
+def summary_text(case: Case, folder: Path) -> str:
+    """The terminal summary of a written results folder, ending with the page-1 verdict."""
+    from .report import hinges_text, load_results
+    from .verdict import reading, reading_text
+
+    res = load_results(folder)
+    counts, risk = res.manifest["counts"], res.risk
+    L = [case.title,
+         f"draws: {counts['tried']} tried, {counts['kept']} plausible kept ({counts['failed']} failed numerically, "
+         f"{counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)"]
+    if counts["kept"] < counts["wanted"]:
+        L.append(f"WARNING: only {counts['kept']} of {counts['wanted']} wanted members were plausible within the draw limit")
+    for opt, f in counts["failed_by_option"].items():
+        if f["failed"]:
+            L.append(f"WARNING: {f['failed']} members failed numerically under {opt}: "
+                     + ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed"))
+    H = case.horizon
+    L.append(f"quasi-extinction probability by {H:g} {case.time_unit} [{case.risk.confidence:.0%} CI], and median "
+             "change in mean abundance vs baseline:")
+    width = max(len(s) for s in case.species_names)
+    for sp in case.species_names:
+        cells = []
+        for opt in ["baseline", *[o.name for o in case.options]]:
+            r = risk[(risk.option == opt) & (risk.species == sp) & np.isclose(risk.horizon, H)]
+            q, d = r[r.metric == "quasi_extinction"], r[r.metric == "mean_change"]
+            cell = (f"{q.value.iloc[0]:5.1%} [{q.low.iloc[0]:.1%}, {q.high.iloc[0]:.1%}]" if len(q) else "   n/a")
+            cells.append(f"{opt}: {cell}" + (f" {d.value.iloc[0]:+.0%}" if len(d) else ""))
+        L.append(f"  {sp:<{width}}  " + " | ".join(cells))
+    L.append("verdict (the same as page 1 of report.pdf):")
+    L.append(reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)))
+    hinges = hinges_text(res)
+    if hinges:
+        L += ["what the decision hinges on (plausible members):", hinges]
+    L.append("CAUTION: " + CAUTION)
+    return "\n".join(L)
+
+
+def write_results(result: Assessment, folder: Path, *, report: bool = True, paper: str = "a4",
+                  progress: Progress | None = None) -> str:
+    """Write an assessment into an empty staging folder: tables, manifest, report.pdf and summary.txt.
+
+    Returns the summary text. Use :func:`save` to write into a results folder with its lock and policy.
+    """
+    from .report import write_report
+
+    folder = Path(folder)
+    result.write(folder)
+    if report:
+        if progress:
+            progress("writing report.pdf")
+        write_report(folder, folder / "report.pdf", paper=paper)
+    text = summary_text(result.case, folder)
+    (folder / "summary.txt").write_text(text + "\n", encoding="utf-8")
+    return text
+
+
+def save(result: Assessment, out, *, replace: bool = False, report: bool = True, paper: str = "a4") -> Path:
+    """Save an assessment as a results folder (locked while written; an existing one only with ``replace``)."""
+    from .outfolder import OutputFolder
+
+    folder = OutputFolder(out, replace=replace)
+    with folder:
+        with folder.stage() as tmp:
+            write_results(result, tmp, report=report, paper=paper)
+    return folder.path
+
+
+def load(folder):
+    """Read a results folder back (checked against the results schema): an :class:`impact.report.Results`."""
+    from .report import load_results
+
+    return load_results(folder)
+
+
+def build_report(folder, out=None, paper: str = "a4") -> Path:
+    """Build ``report.pdf`` (or ``out``) from a saved results folder alone."""
+    from .report import write_report
+
+    return write_report(folder, out, paper=paper)
