@@ -308,8 +308,11 @@ def write_results(result: Assessment, folder: Path, *, report: bool = True, pape
     """
     from .report import write_report
 
+    from .dictionary import write_dictionary
+
     folder = Path(folder)
     result.write(folder)
+    write_dictionary(folder)
     if report:
         if progress:
             progress("writing report.pdf")

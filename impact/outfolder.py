@@ -39,7 +39,7 @@ INVENTORY = "inventory.json"
 # one of these names is treated as impact's own when --replace-results replaces a folder.
 TOOL_FILES = frozenset({
     INVENTORY, "manifest.json", "risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "bands.csv",
-    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf",
+    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "README.md",
     "sensitivity/drivers.csv", "sensitivity/information.csv",
     "sensitivity/indices.csv", "sensitivity/second_order.csv", "sensitivity/ranking.csv",
     "sensitivity/convergence.csv", "sensitivity/sensitivity.json",

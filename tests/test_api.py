@@ -35,3 +35,18 @@ def test_api_round_trip_matches_the_command_line(tmp_path):
     rebuilt = impact.build_report(api_out, tmp_path / "again.pdf")
     assert PdfReader(str(rebuilt)).pages[0].extract_text() == first[0]
     assert (api_out / "summary.txt").read_text().split("verdict")[1] == (cli_out / "summary.txt").read_text().split("verdict")[1]
+
+
+def test_every_written_column_is_documented_and_every_documented_column_written(tmp_path):
+    from impact.dictionary import DICTIONARY, check_folder
+
+    path = write_case(tmp_path, mesopredator_case(members=100))
+    out = tmp_path / "out"
+    assert main(["assess", str(path), "--out", str(out), "--quiet", "--workers", "1", "--base-samples", "16",
+                 "--no-report"]) == 0
+    assert check_folder(out) == []
+    readme = (out / "README.md").read_text()
+    for rel in ("risk.csv", "effects.csv", "sensitivity/information.csv", "dynamics/regimes.csv"):
+        assert f"## `{rel}`" in readme
+        for col in DICTIONARY[rel][1]:
+            assert f"| `{col}` |" in readme

@@ -1,0 +1,141 @@
+"""The data dictionary of a results folder: every file and every column, written as README.md into the folder.
+
+One definition serves the folder's README.md, the contributor guide and the test that every written
+column is documented and every documented column is written.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+_CI = "interval kind of low/high: clopper_pearson, newcombe_paired, mean_normal, member_quantiles, bootstrap_percentile"
+_LEVEL = "level of that interval (0.95 for a 95 % confidence interval; 0.9 for the 5–95 % member quantiles)"
+_N = "members behind the number (failed members excluded)"
+
+# file -> (what it holds, {column: meaning}); a column named "*" stands for columns named by the case
+DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
+    "risk.csv": ("Per-species risk under doing nothing (baseline) and every option, per risk horizon.", {
+        "option": "baseline or an option's name", "species": "species name",
+        "metric": "quasi_extinction, expected_minimum, outbreak, mean_abundance, mean_change, recovery_time, not_recovered",
+        "horizon": "risk horizon, in the case's time unit", "value": "the estimate", "low": "lower limit",
+        "high": "upper limit", "interval": _CI, "level": _LEVEL, "unit": "unit of value", "n": _N}),
+    "effects.csv": ("Paired effects of each option against doing nothing, member by member on the same draws.", {
+        "option": "option", "species": "species", "role": "target, protected or other", "direct":
+        "True when an intervention of the option acts on the species", "metric":
+        "mean_abundance, quasi_extinction or outbreak", "horizon": "risk horizon", "statistic":
+        "median_change, p_worse, p_material, p_material_increase, p_material_decrease (abundance); difference, "
+        "p_worse (events)", "value": "the estimate", "low": "lower limit", "high": "upper limit", "interval": _CI,
+        "level": _LEVEL, "n": _N, "threshold": "material level used (fraction of abundance, or probability)"}),
+    "objectives.csv": ("Each declared objective judged under each option (and doing nothing for a chance).", {
+        "objective": "objective name", "option": "baseline or option", "species": "species", "measure":
+        "abundance, quasi_extinction or outbreak", "horizon": "horizon of the objective", "event":
+        "the objective's event in words", "requirement": "chance_at_least, chance_at_most, increase_at_most, "
+        "decrease_at_least", "bound": "the requirement's number (probability units)", "statistic":
+        "chance, increase or decrease", "value": "the estimate", "low": "lower limit", "high": "upper limit",
+        "interval": _CI, "level": _LEVEL, "n": _N, "status": "met, not met or undecided (interval straddles)"}),
+    "comparisons.csv": ("Options (and doing nothing) compared member by member, objective by objective.", {
+        "objective": "objective name", "option": "the run", "versus": "the other run, or all (share_best)",
+        "statistic": "p_better, p_tie or share_best", "value": "the estimate", "low": "lower limit",
+        "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N}),
+    "bands.csv": ("Quantiles over members of every trajectory at every output time.", {
+        "option": "baseline or option", "species": "species (or carrion)", "time": "output time",
+        "q05": "5 % quantile", "q25": "25 % quantile", "q50": "median", "q75": "75 % quantile", "q95": "95 % quantile"}),
+    "members.csv": ("Per-member summaries at the assessment horizon.", {
+        "member": "draw index of the member (its identity in the random path)", "option": "baseline or option",
+        "species": "species", "minimum": "lowest abundance over the period", "final": "abundance at the horizon",
+        "mean": "time-mean abundance over the period", "failed": "True when the member's run failed numerically",
+        "failure": "why it failed (ok when it did not)"}),
+    "parameters.csv": ("The kept members' parameter values.", {
+        "member": "draw index of the member", "*": "one column per uncertain parameter, in its own unit"}),
+    "priors.csv": ("Every declared parameter with its prior, unit and source.", {
+        "name": "parameter", "distribution": "prior family", "arguments": "the prior in words", "unit": "unit",
+        "source": "source given in the case", "description": "description", "uncertain":
+        "False for a fixed value", "arg_*": "the prior's numeric arguments (blank where the family has none)"}),
+    "sensitivity/drivers.csv": ("Main-effect indices on the plausible members, per option and outcome.", {
+        "option": "option", "output": "an objective's good outcome, or a species' paired change (log ratio)",
+        "species": "species", "parameter": "uncertain parameter", "value": "main-effect index (adjusted R²)",
+        "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
+        "conditional_on": "what the index is conditional on"}),
+    "sensitivity/information.csv": ("Value of information per objective: EVPI and EVPPI.", {
+        "objective": "objective", "parameter": "parameter, declared group, or all parameters", "kind":
+        "evpi, evppi or group evppi", "value": "rise in the chance of a good outcome (probability units)",
+        "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
+        "best_choice": "the choice made now (doing nothing = baseline)", "best_chance":
+        "its chance of a good outcome", "unit": "unit of value"}),
+    "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
+        "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",
+        "S1": "first-order index", "S1_conf": "its half-width", "ST": "total-order index", "ST_conf":
+        "its half-width", "conditional_on": "what the index is conditional on", "N": "base samples"}),
+    "sensitivity/second_order.csv": ("Second-order Sobol indices of the prior screen (when asked for).", {
+        "option": "run", "metric": "output metric", "species": "species", "parameter_i": "first parameter",
+        "parameter_j": "second parameter", "S2": "second-order index", "S2_conf": "its half-width"}),
+    "sensitivity/ranking.csv": ("Parameters ranked by total-order index in the prior screen.", {
+        "option": "run", "metric": "output metric", "species": "species", "rank": "rank (1 first)",
+        "parameter": "parameter", "ST": "total-order index", "ST_conf": "its half-width", "S1": "first-order index",
+        "interaction": "ST − S1"}),
+    "sensitivity/convergence.csv": ("Convergence of the prior screen's indices (N against N/2).", {
+        "option": "run", "metric": "output metric", "species": "species", "max_shift": "largest N/2-to-N shift",
+        "max_ci_width": "widest full interval", "tolerance": "tolerance", "converged": "True when both within"}),
+    "dynamics/regimes.csv": ("Dynamical regime of each screened member, per option.", {
+        "option": "run", "member": "draw index of the member", "regime": "regime verdict", "period":
+        "period in maxima (cycles)", "lyapunov": "largest Lyapunov exponent (1/time unit)", "horizon_time":
+        "predictability horizon (time unit; inf when errors do not grow)", "extinct": "True when a species was lost",
+        "extinct_species": "which species were lost"}),
+    "dynamics/regime_shares.csv": ("Share of screened members in each regime, per option.", {
+        "option": "run", "regime": "regime", "share": "share of members", "count": "members",
+        "lyapunov_median": "median Lyapunov exponent", "horizon_median": "median predictability horizon"}),
+    "dynamics/risk_by_regime.csv": ("Risk metrics within each regime, per option.", {
+        "option": "run", "regime": "regime", "species": "species", "metric": "metric", "value": "value"}),
+}
+
+
+def documented_columns(rel: str, written: list[str]) -> tuple[set[str], set[str]]:
+    """Columns of ``written`` that the dictionary does not cover, and documented columns not written."""
+    cols = DICTIONARY[rel][1]
+    fixed = {c for c in cols if "*" not in c}
+    prefixes = [c[:-1] for c in cols if c.endswith("*") and c != "*"]
+    free = "*" in cols
+    undocumented = {c for c in written if c not in fixed and not any(c.startswith(p) for p in prefixes) and not free}
+    return undocumented, fixed - set(written)
+
+
+def dictionary_markdown(files: list[str]) -> str:
+    """README.md of a results folder: the files present, each with its columns."""
+    out = ["# Results folder written by impact", "",
+           "Every number in report.pdf is read from these files. Invented example cases say so in manifest.json.",
+           "", "* `manifest.json`: what was run, on what, with which versions; the case's species, options, "
+           "objectives and judgement levels; counts of draws, kept and failed members.",
+           "* `summary.txt`: the terminal summary, ending with the same verdict as page 1 of report.pdf.",
+           "* `report.pdf`: the assessment document.", ""]
+    for rel in files:
+        if rel not in DICTIONARY:
+            continue
+        what, cols = DICTIONARY[rel]
+        out += [f"## `{rel}`", "", what, "", "| column | meaning |", "|---|---|"]
+        out += [f"| `{c}` | {m} |" for c, m in cols.items()]
+        out.append("")
+    return "\n".join(out)
+
+
+def write_dictionary(folder: Path) -> None:
+    """Write README.md into a results folder, for the tables it holds."""
+    folder = Path(folder)
+    files = sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*.csv"))
+    (folder / "README.md").write_text(dictionary_markdown(files), encoding="utf-8")
+
+
+def check_folder(folder: Path) -> list[str]:
+    """Problems between the dictionary and a written folder (empty when they agree)."""
+    folder = Path(folder)
+    problems = []
+    for p in sorted(folder.rglob("*.csv")):
+        rel = p.relative_to(folder).as_posix()
+        if rel not in DICTIONARY:
+            problems.append(f"{rel}: not in the data dictionary")
+            continue
+        undocumented, missing = documented_columns(rel, list(pd.read_csv(p, nrows=0).columns))
+        problems += [f"{rel}: column {c!r} written but not documented" for c in sorted(undocumented)]
+        problems += [f"{rel}: column {c!r} documented but not written" for c in sorted(missing)]
+    return problems
