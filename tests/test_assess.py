@@ -64,6 +64,14 @@ def test_clopper_pearson_zero_successes_closed_form():
     assert hi == 1.0 and lo == pytest.approx(0.025 ** (1 / 10), rel=1e-12)
 
 
+@pytest.mark.parametrize("k, n", [(1, 10), (7, 40), (250, 1000), (999, 1000)])
+def test_clopper_pearson_agrees_with_scipy_exact_interval(k, n):
+    # the vectorised beta-quantile form equals scipy's exact (Clopper-Pearson) interval of binomtest
+    lo, hi = mx.clopper_pearson(k, n, 0.95)
+    ci = stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="exact")
+    assert lo == pytest.approx(ci.low, rel=1e-9) and hi == pytest.approx(ci.high, rel=1e-9)
+
+
 def test_recovery_times_on_a_constructed_series():
     t = np.arange(6.0)
     base = np.full((3, 6), 10.0)
