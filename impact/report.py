@@ -607,7 +607,8 @@ def report_context(res: Results, assets: Assets) -> dict:
     return dict(
         m=m, case=m["case"], title=m["case"].get("title", ""), date=str(m.get("started_utc", ""))[:10],
         verdict=verdict, caution=m.get("caution", ""), warnings=[w.text for w in warnings],
-        top_warnings=[w.text for w in warnings if w.rank <= 3], judgement=m["judgement"],
+        # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
+        top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m["judgement"],
         objectives=_objectives_context(res), comparisons=_comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m["species"], interactions=m.get("interactions") or [], equations=m.get("equations", []),
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,

@@ -97,11 +97,14 @@ def thin_run(manifest: dict) -> tuple[bool, str]:
         return False, ""
     # widest exact 95 % half-width is at p = 1/2; about 1/sqrt(n) (normal approximation)
     half = 1.0 / math.sqrt(max(kept, 1))
+    wanted = int(manifest["counts"].get("wanted", kept))
+    remedy = (f"ask for at least {need} members (--members, or case.members)" if wanted < need else
+              "widen the priors or the observed ranges, or raise case.max_draws, so that more draws are plausible")
     return True, (f"NO VERDICT: only {kept} plausible members were kept, fewer than the {need} this case requires "
                   f"before a verdict is given (risk.min_members). With {kept} members a probability near 50 % is known "
                   f"only to within about ±{100 * min(half, 0.5):.0f} percentage points, wider than the bands of the "
                   "likelihood scale. The tables that follow still hold every number; read them as indicative only, "
-                  "and widen the priors or observed ranges, or raise case.max_draws, before judging the options.")
+                  f"and {remedy} before judging the options.")
 
 
 def objective_line(row) -> Item:
