@@ -1,21 +1,17 @@
 """Dynamical regime diagnostics: equilibrium, cycles, chaos, predictability horizon, scans.
 
-After a transient, each member is followed over a window while the tangent (variational)
-equations ride along and are renormalised at every integration step (Benettin et al. 1980),
-giving the largest Lyapunov exponent λ. The trajectory is also cut by a Poincaré section — the
-successive local maxima of one state variable, located inside the step where its derivative
-changes sign by cubic Hermite interpolation — and the period k is the smallest shift under
-which the section sequence repeats. The regime follows from the section, λ and the amplitude:
-
-* ``extinction``  a watched species stays below its extinction level over the window;
-* ``equilibrium`` λ < −lambda_tol, or the relative amplitude of every state is < eq_tol;
-* ``cycle``       the section repeats with period k ≤ max_period (relative tolerance period_tol);
-* ``chaotic``     no period and λ > lambda_tol;
-* ``irregular``   no period and |λ| ≤ lambda_tol (quasi-periodic, or not yet settled).
+After a transient, each member is followed over a window cut into sub-windows while the tangent
+(variational) equations ride along and are renormalised at every integration step (Benettin et
+al. 1980), giving a finite-time largest Lyapunov exponent per sub-window. The trajectory is also
+cut by a Poincaré section — the successive local maxima of one state variable, located inside
+the step where its derivative changes sign by cubic Hermite interpolation. The verdict
+(:mod:`impact.regimes`) weighs the exponent with its uncertainty, the decay of the oscillation
+envelope and the repetition of the section, and is checked by doubling the window. Transient and
+window come from the web's own time scales (:mod:`impact.timescales`) unless declared.
 
 The predictability horizon is t = ln(Δ/δ0)/λ for λ > 0 (an initial relative error δ0 grows to
-the tolerance Δ); it is infinite otherwise. All thresholds live in :class:`DynamicsSettings`
-and are written to ``dynamics.json``. Numerics only: no file I/O here.
+the tolerance Δ); it is infinite otherwise. All settings live in :class:`DynamicsSettings` and
+are written to ``dynamics.json``. Numerics only: no file I/O here.
 """
 
 from __future__ import annotations
@@ -25,14 +21,19 @@ from dataclasses import asdict, dataclass, replace
 import numpy as np
 import pandas as pd
 
+from . import regimes as rg
 from .case import Case
 from .errors import CaseError
 from .integrate import (FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine,
                         _select_initial_step, _take_rows, error_norm)
 from .jacobian import WebTangent, jacobian, tangent
 from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, web_params
+from .regimes import REGIMES, Rules
+from .timescales import ALIGN_FRACTION, WindowPlan, plan_windows, time_scales
 
-REGIMES = ("equilibrium", "cycle", "irregular", "chaotic", "extinction")
+PURPOSE_DYNAMICS = 8  # spawn-key purpose for choosing the screened members
+GOLDEN = (np.sqrt(5.0) - 1.0) / 2.0
+SHORT_RETURNS = 4  # oscillation periods per sub-window in the first pass (common practice, no source)
 
 
 @dataclass(frozen=True)
@@ -41,48 +42,64 @@ class DynamicsSettings:
 
     Attributes
     ----------
-    transient, window : float
-        Time discarded before diagnosing, and time diagnosed.
-    sample_dt : float
-        Longest integration step of the diagnostics (tangent renormalisation and section checks
-        happen at every step end, so at least this often); must be well below half the
-        shortest oscillation period.
+    transient, window, sample_dt : float or None
+        Time discarded before diagnosing, time diagnosed (all sub-windows together) and longest
+        integration step; None (the default) chooses each from the web's time scales
+        (:mod:`impact.timescales`).
+    n_sub : int
+        Sub-windows of the window (at least 4; the verdict is compared with that of the first
+        half of them).
+    doublings : int
+        How many times the window of a member whose verdict changed on doubling is doubled
+        again before it is left undetermined.
+    max_window : float or None
+        Cap on a chosen transient and window; None: 2000 times the slowest per-capita time
+        scale (common practice, no source).
     delta0, tolerance : float
         Initial relative uncertainty (e.g. a survey's relative error) and the relative error
         at which a projection stops being useful; horizon = ln(tolerance/delta0)/λ.
-    eq_tol : float
-        Relative amplitude (max − min)/(mean + abs_floor) below which a state is at rest.
-    period_tol : float
-        Relative tolerance for two section values to count as the same point.
-    max_period : int
-        Longest period looked for.
-    lambda_tol : float
-        |λ| at or below which λ is treated as zero (1/time unit). A finite-time estimate on a
-        cycle is O(1/window), so 10/window is the default in :func:`default_settings`
-        (common practice, no source).
+    eq_tol, period_tol, max_period, env_tol, confidence
+        Tolerances of the verdict, see :class:`impact.regimes.Rules`.
     rtol, atol : float
         Integrator tolerances for model and tangent.
-    member_cap : int
-        At most this many members per option are diagnosed in an assessment.
+    screen_members : int
+        Members per option diagnosed in an assessment (a random subset when there are more).
+    sub_relaxations : float
+        Relaxation times a sub-window spans at least (precision of λ at an equilibrium).
+    shared_plan : float or None
+        None: each member's window from its own time scales (members with the same rounded plan
+        run together). A quantile q: one plan for all members, the q-quantile of their needs
+        (cheaper; a member that needed more shows it as ``undetermined``).
     """
 
-    transient: float
-    window: float
-    sample_dt: float
+    transient: float | None = None
+    window: float | None = None
+    sample_dt: float | None = None
+    n_sub: int = 8
+    doublings: int = 1
+    max_window: float | None = None
     delta0: float = 0.05
     tolerance: float = 0.5
     eq_tol: float = 1e-3
     period_tol: float = 1e-3
-    max_period: int = 16
-    lambda_tol: float = 0.005
+    max_period: int = 8
+    env_tol: float = 0.05
+    confidence: float = 0.99
     rtol: float = 1e-7
     atol: float = 1e-9
-    member_cap: int = 48
+    screen_members: int = 300
+    sub_relaxations: float = 4.0
+    shared_plan: float | None = None
+
+    @property
+    def rules(self) -> Rules:
+        return Rules(eq_tol=self.eq_tol, period_tol=self.period_tol, max_period=self.max_period,
+                     env_tol=self.env_tol, confidence=self.confidence)
 
 
 @dataclass(frozen=True)
 class Diagnosis:
-    """Per-member outcome of :func:`lyapunov_flow` and :func:`classify`.
+    """Per-member outcome of :func:`lyapunov_flow`.
 
     Attributes
     ----------
@@ -121,67 +138,6 @@ def predictability_horizon(lyap, delta0: float, tolerance: float) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         t = np.log(tolerance / delta0) / lyap
     return np.where(np.isnan(lyap), np.nan, np.where(lyap > 0, t, np.inf))
-
-
-def detect_period(values: np.ndarray, period_tol: float, max_period: int) -> int:
-    """Smallest k ≤ max_period with s[i+k] ≈ s[i] over the last section points; 0 if none.
-
-    Uses the last ``2·max_period`` points (all if fewer); a period k needs at least 2k points.
-    Values are compared relative to the largest |s| (Poincaré return-map periodicity).
-    """
-    s = np.asarray(values, float)
-    s = s[-2 * max_period:]
-    if s.size < 2:
-        return 0
-    scale = max(float(np.abs(s).max()), 1e-300)
-    for k in range(1, max_period + 1):
-        if s.size < 2 * k:
-            break
-        if np.all(np.abs(s[k:] - s[:-k]) <= period_tol * scale):
-            return k
-    return 0
-
-
-def classify(lyap: np.ndarray, sections: list, amplitude: np.ndarray, extinct: np.ndarray,
-             s: DynamicsSettings, flow: bool = True) -> tuple[np.ndarray, np.ndarray]:
-    """Regime name and period per member.
-
-    For a map (``flow=False``) a negative λ only says the orbit is stable, so the section
-    alone decides between cycles and the rest.
-
-    Parameters
-    ----------
-    lyap : ndarray (M,)
-    sections : list of M ndarrays
-    amplitude : ndarray (M,)
-        Largest relative amplitude over the state variables.
-    extinct : ndarray (M,) bool
-
-    Returns
-    -------
-    regime : ndarray (M,) of str
-    period : ndarray (M,) int (0 where no period applies)
-    """
-    M = len(lyap)
-    regime = np.empty(M, dtype=object)
-    period = np.zeros(M, dtype=int)
-    for k in range(M):
-        lam = lyap[k]
-        if extinct[k]:
-            regime[k] = "extinction"
-        elif np.isnan(lam):
-            regime[k] = "failed"
-        elif flow and (lam < -s.lambda_tol or amplitude[k] < s.eq_tol):
-            regime[k] = "equilibrium"
-        else:
-            p = detect_period(sections[k], s.period_tol, s.max_period)
-            if p:
-                regime[k], period[k] = "cycle", p
-            elif lam > s.lambda_tol:
-                regime[k] = "chaotic"
-            else:
-                regime[k] = "irregular"
-    return regime, period
 
 
 def _hermite_max(y0, y1, f0, f1, dt):
@@ -485,13 +441,6 @@ def _sumsq(x):
     return acc
 
 
-def relative_amplitude(d: Diagnosis, floor: np.ndarray | float = 0.0) -> np.ndarray:
-    """Largest (max − min)/(mean + floor) over the state variables: (M,)."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        a = (d.high - d.low) / (np.abs(d.mean) + floor + 1e-300)
-    return np.nanmax(np.where(np.isfinite(a), a, 0.0), axis=1)
-
-
 # --------------------------------------------------------------------------------------------
 # one-dimensional maps (x -> g(x)) vectorised over parameter values
 
@@ -546,39 +495,34 @@ def web_functions(web: FoodWeb, p: WebParams, c: Controls):
     return fun, jac
 
 
-def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> DynamicsSettings:
-    """Settings from the web's own time scales (common practice, no source).
+def slowest_rate(p: WebParams) -> np.ndarray:
+    """Each member's slowest per-capita rate (growth, mortality): (M,) 1/time (1 where none)."""
+    rates = np.concatenate([np.abs(p.r), np.abs(p.m)], axis=1)
+    rates = np.where(np.isfinite(rates) & (rates > 0), rates, np.inf)
+    slow = rates.min(axis=1)
+    return np.where(np.isfinite(slow), slow, 1.0)
 
-    The slowest per-capita rate (growth, mortality) sets the transient (20 of its time scales)
-    and window (50); the fastest (a Gershgorin bound on the Jacobian at ``y0``) sets the
-    sample interval (a tenth of its time scale), with between 200 and 1000 samples per window.
+
+def declared_settings(case: Case, base: dict | None = None, **command_line) -> tuple[DynamicsSettings, dict]:
+    """Settings from ``base`` defaults, then the case's ``[dynamics]`` table, then the command line.
+
+    ``command_line`` values that are None are not declared. Returns the settings and what was
+    declared where (for dynamics.json).
     """
-    rates = np.concatenate([np.abs(p.r).ravel(), np.abs(p.m).ravel()])
-    rates = rates[np.isfinite(rates) & (rates > 0)]
-    slow = float(rates.min()) if rates.size else 1.0
-    web = build_web(case)
-    c = Controls.neutral(len(y0), web.n_species)
-    ok = np.isfinite(y0).all(axis=1)
-    fast = slow
-    if ok.any():
-        J = jacobian(web, p, c, np.maximum(y0[ok], 0.0), np.flatnonzero(ok))
-        g = np.abs(J).sum(axis=2).max(axis=1)
-        g = g[np.isfinite(g)]
-        if g.size:
-            fast = max(fast, float(np.median(g)))
-    transient, window = 20.0 / slow, 50.0 / slow
-    dt = float(np.clip(0.1 / fast, window / 1000, window / 200))
-    base = dict(transient=transient, window=window, sample_dt=dt, lambda_tol=10.0 / window)
-    base.update(override)
-    return DynamicsSettings(**base)
+    table = case.dynamics.declared() if case.dynamics is not None else {}
+    cli = {k: v for k, v in command_line.items() if v is not None}
+    return DynamicsSettings(**{**(base or {}), **table, **cli}), {"case file": table, "command line": cli}
 
 
 def section_species(case: Case, name: str | None, field: str = "--section") -> tuple[int, str]:
     """Column and name of the species whose successive maxima form the Poincaré section.
 
-    ``None`` keeps the default, the last declared species. An unknown name is a user error.
+    ``None`` takes the case file's ``[dynamics] section`` if declared, else the last declared
+    species. An unknown name is a user error.
     """
     names = case.species_names
+    if name is None and case.dynamics is not None and case.dynamics.section is not None:
+        name = case.dynamics.section
     if name is None:
         return len(names) - 1, names[-1]
     if name not in names:
@@ -586,9 +530,117 @@ def section_species(case: Case, name: str | None, field: str = "--section") -> t
     return names.index(name), name
 
 
+@dataclass(frozen=True)
+class WindowRun:
+    """What :func:`run_subwindows` kept of every member.
+
+    Attributes
+    ----------
+    lyap : ndarray (M, k)
+    low, high : ndarray (M, k, n)
+    mean : ndarray (M, n)
+        Time-mean over all sub-windows.
+    sections : list of M lists of k ndarrays
+    centre : ndarray (k,)
+        Mid-time of each sub-window.
+    end : float
+        Time at the end of the last sub-window.
+    final : ndarray (M, n)
+    reason : ndarray (M,) int8
+        First integrator failure code met (0: none).
+    nfev : int
+    """
+
+    lyap: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+    mean: np.ndarray
+    sections: list
+    centre: np.ndarray
+    end: float
+    final: np.ndarray
+    reason: np.ndarray
+    nfev: int
+
+
+def run_subwindows(jvp, y0: np.ndarray, plan: WindowPlan, *, first_transient: float, section, members, rtol: float,
+                   atol: float, t0: float = 0.0, nonnegative: bool = True) -> WindowRun:
+    """:func:`lyapunov_flow` over ``plan.n_sub`` consecutive sub-windows, each after an alignment run.
+
+    The first sub-window follows ``max(first_transient, plan.align)``; every later one follows an
+    alignment run of between one and two ``plan.align`` from where the previous one ended, so each
+    sub-window's exponent starts from a tangent vector already turned toward the most expanding
+    direction.
+    """
+    M, n = y0.shape
+    k = plan.n_sub
+    lyap = np.full((M, k), np.nan)
+    low, high = np.full((M, k, n), np.nan), np.full((M, k, n), np.nan)
+    mean = np.zeros((M, n))
+    sections: list[list] = [[] for _ in range(M)]
+    reason = np.zeros(M, np.int8)
+    centre = np.empty(k)
+    y, t, nfev = y0, float(t0), 0
+    for j in range(k):
+        # alignment runs of unequal lengths (golden-ratio offsets), so that on a spiral or a cycle
+        # the sub-windows start at different phases and the phase terms of their exponents
+        # average out instead of adding up (the spread then shows in the standard error)
+        stagger = plan.align * (1.0 + (j * GOLDEN) % 1.0)
+        lead = max(first_transient, stagger) if j == 0 else stagger
+        d = lyapunov_flow(None, None, y, transient=lead, window=plan.sub_window, sample_dt=plan.sample_dt,
+                          section=section, rtol=rtol, atol=atol, members=members, t0=t, jvp=jvp,
+                          nonnegative=nonnegative)
+        centre[j] = t + lead + 0.5 * plan.sub_window
+        t += lead + plan.sub_window
+        lyap[:, j], low[:, j], high[:, j] = d.lyapunov, d.low, d.high
+        mean += d.mean / k
+        for i in range(M):
+            sections[i].append(d.sections[i])
+        reason = np.where(reason != 0, reason, d.reason).astype(np.int8)
+        y, nfev = d.final, nfev + d.nfev
+    return WindowRun(lyap, low, high, mean, sections, centre, t, y, reason, nfev)
+
+
+def join_runs(a: WindowRun, b: WindowRun) -> WindowRun:
+    """Sub-windows of ``b`` (which continued ``a``'s members) appended to ``a``'s."""
+    ka, kb = a.lyap.shape[1], b.lyap.shape[1]
+    mean = (a.mean * ka + b.mean * kb) / (ka + kb)
+    return WindowRun(np.concatenate([a.lyap, b.lyap], axis=1), np.concatenate([a.low, b.low], axis=1),
+                     np.concatenate([a.high, b.high], axis=1), mean,
+                     [x + y for x, y in zip(a.sections, b.sections)], np.concatenate([a.centre, b.centre]), b.end,
+                     b.final, np.where(a.reason != 0, a.reason, b.reason).astype(np.int8), a.nfev + b.nfev)
+
+
+def choose_plans(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, s: DynamicsSettings,
+                 returns: int, **extra) -> list[tuple[WindowPlan, np.ndarray]]:
+    """Window plans from each member's time scales at the equilibrium nearest ``y`` (declared values win).
+
+    Returns (plan, member rows) pairs, see :func:`impact.timescales.plan_windows`.
+    """
+    ts = time_scales(web, p, c, y)
+    slow = slowest_rate(p)
+    cap = np.full(len(slow), s.max_window) if s.max_window is not None else 2000.0 / slow
+    return plan_windows(ts, slow_rate=slow, returns=returns, n_sub=s.n_sub, max_window=cap,
+                        transient=s.transient, window=s.window, sample_dt=s.sample_dt, shared=s.shared_plan,
+                        sub_relaxations=s.sub_relaxations, **extra)
+
+
+def evidence(run: WindowRun, start: np.ndarray, level: np.ndarray, floor: np.ndarray, section: np.ndarray,
+              sub_window: float):
+    """Evidence for :mod:`impact.regimes`, and which species went extinct: (Evidence, (M, S) bool)."""
+    S = level.size
+    with np.errstate(invalid="ignore"):
+        watched = start[:, :S] >= level
+        gone = watched & (np.nanmax(run.high[:, :, :S], axis=1) < level)
+    failed = (run.reason != 0) | ~np.isfinite(run.lyap).all(axis=1)
+    ev = rg.Evidence(run.lyap, run.low, run.high, run.mean, floor, run.sections, section, run.centre,
+                     gone.any(axis=1), failed, sub_window)
+    return ev, gone
+
+
 def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: DynamicsSettings,
-                 extinct_level: np.ndarray, members=None, section=None):
-    """Regime, period, λ and horizon of each member from state ``y0`` under fixed controls.
+                 extinct_level: np.ndarray, members=None, section=None, plans=None):
+    """Regime, period, λ (with its standard error) and horizon of each member from ``y0`` under fixed controls.
 
     Parameters
     ----------
@@ -596,37 +648,132 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
     extinct_level : ndarray (S,)
         A species whose maximum over the window stays below this level is extinct; species
         that were already below it in ``y0`` are not counted (they were never there).
+    members : int ndarray (M,), optional
+        Rows of ``p`` and ``c`` of each member (default: 0..M−1).
     section : int or ndarray (M,), optional
         State column whose successive maxima form the Poincaré section; default: the last
         species (see :func:`section_species` to resolve a name).
+    plans : list of (WindowPlan, rows), optional
+        Default: :func:`choose_plans` (each member's own time scales).
 
     Returns
     -------
-    dict with ndarrays (M,): regime, period, lyapunov, horizon, extinct (bool), extinct_species
-    (str), and ``diagnosis`` (:class:`Diagnosis`).
+    dict with ndarrays (M,): regime, period, lyapunov, lyapunov_se, envelope_rate, reason (str),
+    horizon, extinct (bool), extinct_species (str), window (time diagnosed), transient, failed
+    (bool), failure (int8 integrator code); amplitude and final (M, n_state); sections (list of
+    the last sub-window's section values per member); nfev.
     """
-    M = y0.shape[0]
+    M, n = y0.shape
     S = web.n_species
     members = np.arange(M) if members is None else np.asarray(members)
-    fun, _ = web_functions(web, p, c)
     start = np.where(np.isfinite(y0), np.maximum(y0, 0.0), np.nan)
-    if section is None:
-        section = S - 1 if S else 0
-    d = lyapunov_flow(fun, None, start, transient=s.transient, window=s.window, sample_dt=s.sample_dt,
-                      section=section, rtol=s.rtol, atol=s.atol, members=members, jvp=WebTangent(web, p, c))
+    section = np.broadcast_to(np.asarray(S - 1 if section is None else section, int), (M,)).copy()
+    jvp = WebTangent(web, p, c)
+    out, nfev = None, 0
+    if plans is None:
+        # A first pass with short sub-windows settles what needs no period (equilibrium,
+        # extinction); only the rest is continued over sub-windows long enough to look for periods.
+        sub = WebParams(*(getattr(p, f)[members] for f in WebParams.__dataclass_fields__))
+        cc = Controls(*(getattr(c, f)[members] for f in Controls.__dataclass_fields__))
+        y = np.where(np.isfinite(start), start, 0.0)
+        out, nfev = _diagnose_plans(web, jvp, start, s, extinct_level, members, section,
+                                    choose_plans(web, sub, cc, y, s, returns=SHORT_RETURNS))
+        rest = np.flatnonzero(~np.isin(out["regime"], ("equilibrium", "extinction", "failed")))
+        if rest.size:
+            sub = WebParams(*(getattr(p, f)[members[rest]] for f in WebParams.__dataclass_fields__))
+            cc = Controls(*(getattr(c, f)[members[rest]] for f in Controls.__dataclass_fields__))
+            first = out["window"][rest] / s.n_sub
+            n_pts = np.array([out["sections"][i].size for i in rest])
+            measured = np.where(n_pts >= 2, first / np.maximum(n_pts, 1), np.nan)
+            long = choose_plans(web, sub, cc, y[rest], s, returns=2 * s.max_period + 2, measured_period=measured,
+                                min_sub=2 * first)
+            spent = out["transient"][rest] + out["window"][rest] * (1 + 1.5 * ALIGN_FRACTION)
+            long = [(replace(plan, transient=0.0), rows) for plan, rows in long]
+            part, n2 = _diagnose_plans(web, jvp, out["final"][rest], s, extinct_level, members[rest], section[rest], long)
+            part["transient"] = spent
+            _put(out, part, rest)
+            nfev += n2
+    else:
+        out, nfev = _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans)
+    out["horizon"] = predictability_horizon(out["lyapunov"], s.delta0, s.tolerance)
+    out["nfev"] = nfev
+    return out
+
+
+def _put(out: dict, part: dict, rows: np.ndarray) -> None:
+    for k, v in part.items():
+        if isinstance(v, list):
+            for j, r in enumerate(rows):
+                out[k][r] = v[j]
+        else:
+            out[k][rows] = v
+
+
+def _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans) -> tuple[dict, int]:
+    M = start.shape[0]
+    out, nfev = None, 0
+    for plan, rows in plans:
+        part = _diagnose_plan(web, jvp, start[rows], s, extinct_level, members[rows], section[rows], plan)
+        nfev += part.pop("nfev")
+        if out is None:
+            out = {k: (np.empty((M,) + np.shape(v)[1:], dtype=np.asarray(v).dtype) if not isinstance(v, list) else [None] * M)
+                   for k, v in part.items()}
+        _put(out, part, rows)
+    return out, nfev
+
+
+def _diagnose_plan(web: FoodWeb, jvp, start: np.ndarray, s: DynamicsSettings, extinct_level, members, section,
+                   plan: WindowPlan) -> dict:
+    """:func:`diagnose_web` for members sharing one plan, with the doubling of unsettled windows."""
+    M = start.shape[0]
+    S = web.n_species
     level = np.asarray(extinct_level, float)
-    with np.errstate(invalid="ignore"):
-        watched = start[:, :S] >= level
-        gone = watched & (d.high[:, :S] < level)
-    extinct = gone.any(axis=1)
     floor = np.concatenate([level, np.zeros(web.n_state - S)])
-    amp = relative_amplitude(d, floor)
-    regime, period = classify(d.lyapunov, d.sections, amp, extinct, s)
+    kw = dict(rtol=s.rtol, atol=s.atol)
+    run = run_subwindows(jvp, start, plan, first_transient=plan.transient, section=section, members=members, **kw)
+    ev, gone = evidence(run, start, level, floor, section, plan.sub_window)
+    out = _verdict_columns(rg.classify(ev, s.rules), ev, gone, run, np.full(M, plan.window), web)
+    out["transient"] = np.full(M, plan.transient)
+    nfev = run.nfev
+    # a verdict that changed on doubling gets the window doubled again, up to `doublings` times
+    rows = np.arange(M)
+    for _ in range(s.doublings):
+        redo = np.flatnonzero(out["reason"][rows] == rg.Reason.WINDOW_DOUBLING.value)
+        if not redo.size:
+            break
+        rows = rows[redo]
+        prev = _take_run(run, redo)
+        more = run_subwindows(jvp, prev.final, replace(plan, n_sub=prev.lyap.shape[1]), first_transient=plan.align,
+                              section=section[rows], members=members[rows], t0=prev.end, **kw)
+        nfev += more.nfev
+        run = join_runs(prev, more)
+        ev, g = evidence(run, start[rows], level, floor, section[rows], plan.sub_window)
+        part = _verdict_columns(rg.classify(ev, s.rules), ev, g, run, np.full(rows.size, run.lyap.shape[1] * plan.sub_window), web)
+        for key, val in part.items():
+            if isinstance(val, list):
+                for j, r in enumerate(rows):
+                    out[key][r] = val[j]
+            else:
+                out[key][rows] = val
+    out["nfev"] = nfev
+    return out
+
+
+def _take_run(run: WindowRun, rows: np.ndarray) -> WindowRun:
+    return WindowRun(run.lyap[rows], run.low[rows], run.high[rows], run.mean[rows], [run.sections[i] for i in rows],
+                     run.centre, run.end, run.final[rows], run.reason[rows], run.nfev)
+
+
+def _verdict_columns(v: rg.Verdict, ev: rg.Evidence, gone: np.ndarray, run: WindowRun, window: np.ndarray,
+                     web: FoodWeb) -> dict:
     names = np.array(web.species)
-    return dict(regime=regime, period=period, lyapunov=d.lyapunov,
-                horizon=predictability_horizon(d.lyapunov, s.delta0, s.tolerance),
-                extinct=extinct, extinct_species=np.array([";".join(names[g]) for g in gone], dtype=object),
-                diagnosis=d)
+    failed = ev.failed & ~ev.extinct
+    return dict(regime=np.asarray(v.regime, object), period=np.asarray(v.period), lyapunov=np.where(failed, np.nan, v.lyapunov),
+                lyapunov_se=np.where(failed, np.nan, v.lyapunov_se), envelope_rate=v.envelope_rate,
+                reason=np.asarray(v.reason, object), extinct=ev.extinct,
+                extinct_species=np.array([";".join(names[g]) for g in gone], dtype=object), window=window,
+                failed=failed, failure=run.reason.copy(), amplitude=ev.amplitude(), final=run.final,
+                sections=[sec[-1] if sec else np.array([]) for sec in run.sections])
 
 
 # --------------------------------------------------------------------------------------------
@@ -634,24 +781,31 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
 
 
 def transitions(parameter: str, values: np.ndarray, regime, period) -> pd.DataFrame:
-    """Consecutive scan values whose (regime, period) differ, with a kind for each change.
+    """Changes of (regime, period) between scan values, with a kind for each change.
+
+    ``undetermined`` values are stepped over: a change is reported between the two nearest
+    determined values around it, and ``undetermined_between`` counts the values skipped (the
+    change lies somewhere in that bracket).
 
     Returns
     -------
-    DataFrame with columns parameter, from_value, to_value, from_regime, to_regime, kind
-    (``from_regime``/``to_regime`` carry the period for cycles, e.g. ``cycle(2)``).
+    DataFrame with columns parameter, from_value, to_value, from_regime, to_regime, kind,
+    undetermined_between (``from_regime``/``to_regime`` carry the period for cycles, e.g. ``cycle(2)``).
     """
     def label(r, k):
         return f"cycle({k})" if r == "cycle" else r
 
+    cols = ["parameter", "from_value", "to_value", "from_regime", "to_regime", "kind", "undetermined_between"]
     rows = []
-    for i in range(1, len(values)):
-        a, b = (regime[i - 1], int(period[i - 1])), (regime[i], int(period[i]))
+    keep = [i for i in range(len(values)) if regime[i] != "undetermined"]
+    for i, j in zip(keep[:-1], keep[1:]):
+        a, b = (regime[i], int(period[i])), (regime[j], int(period[j]))
         if a == b:
             continue
-        rows.append(dict(parameter=parameter, from_value=float(values[i - 1]), to_value=float(values[i]),
-                         from_regime=label(*a), to_regime=label(*b), kind=transition_kind(a, b)))
-    return pd.DataFrame(rows, columns=["parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"])
+        rows.append(dict(parameter=parameter, from_value=float(values[i]), to_value=float(values[j]),
+                         from_regime=label(*a), to_regime=label(*b), kind=transition_kind(a, b),
+                         undetermined_between=j - i - 1))
+    return pd.DataFrame(rows, columns=cols)
 
 
 def transition_kind(a: tuple[str, int], b: tuple[str, int]) -> str:
@@ -665,8 +819,10 @@ def transition_kind(a: tuple[str, int], b: tuple[str, int]) -> str:
         return "cycles-cease"
     if rb == "chaotic":
         return "onset-of-chaos"
-    if ra == "chaotic" and rb in ("cycle", "equilibrium"):
-        return "return-to-order"
+    if ra == "chaotic" and rb == "cycle":
+        return "periodic-window"
+    if ra == "chaotic" and rb == "equilibrium":
+        return "chaos-ceases"
     if rb == "extinction":
         return "extinction"
     if ra == "extinction":
@@ -730,15 +886,17 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
     return _controls(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
 
 
-def _scan_rows(parameter, v, out, i, keep_sections):
-    d = out["diagnosis"]
+def _scan_rows(parameter, v, out, i, keep_sections, species):
     reg, per, lam = out["regime"][i], int(out["period"][i]), float(out["lyapunov"][i])
-    sec = d.sections[i][-keep_sections:]
+    sec = out["sections"][i][-keep_sections:]
     rows = [dict(parameter=parameter, value=float(v), section_value=float(x), regime=reg, period=per, lyapunov=lam)
             for x in sec] or [dict(parameter=parameter, value=float(v), section_value=np.nan, regime=reg, period=per, lyapunov=lam)]
     pt = dict(parameter=parameter, value=float(v), regime=reg, period=per, lyapunov=lam,
-              horizon=float(out["horizon"][i]), n_section=int(d.sections[i].size), failed=bool(d.failed[i]),
-              failure=FAILURE_REASONS.get(int(d.reason[i]), ""))
+              lyapunov_se=float(out["lyapunov_se"][i]), envelope_rate=float(out["envelope_rate"][i]),
+              reason=out["reason"][i], horizon=float(out["horizon"][i]), window=float(out["window"][i]),
+              n_section=int(out["sections"][i].size), failed=bool(out["failed"][i]),
+              failure=FAILURE_REASONS.get(int(out["failure"][i]), ""),
+              **{f"amplitude_{sp}": float(out["amplitude"][i, j]) for j, sp in enumerate(species)})
     return rows, pt
 
 
@@ -776,7 +934,7 @@ def scan_values(task: ScanTask) -> tuple[list, list]:
     out = diagnose_web(web, p, c, p.initial, s, level, section=task.section)
     rows, pts = [], []
     for i, v in enumerate(grid):
-        r, pt = _scan_rows(task.parameter, v, out, i, 4 * s.max_period)
+        r, pt = _scan_rows(task.parameter, v, out, i, 4 * s.max_period, web.species)
         rows += r
         pts.append(pt)
     return rows, pts
@@ -798,7 +956,8 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
     -------
     scan : DataFrame (parameter, value, section_value, regime, period, lyapunov), one row per
         kept section point (one row with NaN section_value when there are none)
-    points : DataFrame (parameter, value, regime, period, lyapunov, horizon, n_section, failed, failure)
+    points : DataFrame (parameter, value, regime, period, lyapunov, lyapunov_se, envelope_rate, reason,
+        horizon, window, n_section, failed, failure, amplitude_SPECIES for every species)
     transitions : DataFrame, see :func:`transitions`
     """
     if option is not None and option not in [o.name for o in case.options]:
@@ -818,8 +977,8 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
             c = steady_controls(cs, option, base, 1)
             y0 = p.initial if y is None or not np.isfinite(y).all() else y
             out = diagnose_web(web, p, c, y0, s, level, section=section)
-            y = out["diagnosis"].final
-            r, pt = _scan_rows(parameter, v, out, 0, keep)
+            y = out["final"]
+            r, pt = _scan_rows(parameter, v, out, 0, keep, web.species)
             rows += r
             pts.append(pt)
             if progress:
@@ -841,10 +1000,14 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
 
 
 def settings_record(s: DynamicsSettings, **extra) -> dict:
-    """The settings and thresholds as a JSON-ready dict (for dynamics.json)."""
+    """The settings and verdict rules as a JSON-ready dict (for dynamics.json)."""
     rec = asdict(s)
-    rec["thresholds"] = dict(eq_tol=s.eq_tol, period_tol=s.period_tol, max_period=s.max_period, lambda_tol=s.lambda_tol)
-    rec["regime_rules"] = __doc__.split("The regime follows")[1].split("The predictability")[0].strip()
+    rec["thresholds"] = asdict(s.rules)
+    rec["windows"] = ("declared" if s.window is not None else
+                      "from each member's time scales (eigenvalues at the nearest equilibrium, else the slowest "
+                      "per-capita rate), rounded up to a power of two of the time unit; checked by doubling")
+    rec["regime_rules"] = rg.__doc__.split("Rules (in this order):")[1].strip()
+    rec["undetermined_reasons"] = {r.value: r.text for r in rg.Reason}
     rec.update(extra)
     return rec
 
@@ -872,116 +1035,5 @@ def logistic_map_scan(r: np.ndarray, s: DynamicsSettings, transient: int = 20000
     r = np.asarray(r, float)
     lyap, orbit = lyapunov_map(lambda x: r * x * (1 - x), lambda x: r * (1 - 2 * x), np.full(r.size, 0.3),
                                transient=transient, n=n)
-    regime, period = classify(lyap, list(orbit), np.ones(r.size), np.zeros(r.size, bool),
-                              s, flow=False)
+    regime, period = rg.map_verdict(lyap, orbit, s.rules)
     return regime, period, lyap, orbit
-
-
-@dataclass(frozen=True)
-class DiagnoseTask:
-    """One option's diagnosis in an assessment: members' parameters, controls and start states."""
-
-    case: Case
-    params: WebParams
-    controls: Controls
-    y0: np.ndarray
-    settings: DynamicsSettings
-    level: np.ndarray
-    section: int
-
-
-def diagnose_task(task: DiagnoseTask) -> dict:
-    """:func:`diagnose_web` on one task (a worker's function)."""
-    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
-                       section=task.section)
-    out.pop("diagnosis")  # the tables need only the per-member verdicts
-    return out
-
-
-def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
-                 progress=None, section: str | None = None, executor=None):
-    """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
-
-    ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
-
-    A capped subset of members (the first ``member_cap`` by index) is continued from each
-    option's state at the horizon with the controls in force just before it, deterministically
-    (noise and events off). ``section`` names the species whose maxima form the Poincaré
-    section (default: the last declared species).
-
-    Returns
-    -------
-    tables : dict of str -> DataFrame
-        ``regimes``, ``regime_shares``, ``risk_by_regime`` (columns as in DEVELOPERS.md).
-    record : dict
-        Settings for dynamics.json.
-    """
-    from .execute import InProcess, count
-    from .simulate import _controls
-
-    sec_col, sec_name = section_species(case, section)
-    web = build_web(case)
-    S = web.n_species
-    base = runs["baseline"]
-    M = base.members
-    sel = np.arange(min(M, settings.member_cap if settings else DynamicsSettings.__dataclass_fields__['member_cap'].default))
-    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
-    if settings is None:
-        # Inside an assessment the diagnosis is a screen: a few horizons of run-in and window,
-        # at the integrator's usual tolerance (common practice, no source); `impact scan`
-        # keeps the longer defaults.
-        s0 = default_settings(case, sub, base.final[sel])
-        H = case.horizon
-        s = default_settings(case, sub, base.final[sel], rtol=1e-6,
-                             transient=min(s0.transient, 2.0 * H), window=min(s0.window, 3.0 * H),
-                             sample_dt=max(s0.sample_dt, min(s0.window, 3.0 * H) / 300),
-                             lambda_tol=10.0 / min(s0.window, 3.0 * H))
-    else:
-        s = settings
-    level = np.array([sp.quasi_extinction for sp in case.species], float)
-    H = case.horizon
-    t_last = H - 1e-9 * max(H, 1.0)
-    opts = {None: "baseline", **{o: o.name for o in case.options}}
-    reg_rows, risk_rows, share_rows = [], [], []
-    counts = {}
-    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-    tasks = [DiagnoseTask(case, sub, _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
-                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
-    results = {}
-    count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
-    for i, out in (executor or InProcess()).map(diagnose_task, tasks):
-        results[i] = out
-        count(progress, "dynamics: diagnosing options", len(results), len(tasks), "options")
-    for k, (opt, name) in enumerate(opts.items()):
-        run = runs[name]
-        out = results[k]
-        regime = np.where(run.failed[sel], "failed", out["regime"])
-        counts[name] = {"diagnosed": int(sel.size), "failed": int((regime == "failed").sum())}
-        frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],
-                              "lyapunov": out["lyapunov"], "horizon_time": out["horizon"], "extinct": out["extinct"],
-                              "extinct_species": out["extinct_species"]})
-        reg_rows.append(frame)
-        for rg, g in frame.groupby("regime", sort=False):
-            share_rows.append(dict(option=name, regime=rg, share=len(g) / len(frame), count=len(g),
-                                   lyapunov_median=float(g.lyapunov.median()), horizon_median=float(g.horizon_time.median())))
-            rows = sel[(frame.regime == rg).to_numpy()]
-            for j, sp in enumerate(case.species):
-                mins = run.minimum[rows, run.slot(H), j]
-                ok = np.isfinite(mins)
-                if sp.present:
-                    risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="quasi_extinction",
-                                          value=float((mins[ok] < sp.quasi_extinction).mean()) if ok.any() else np.nan))
-                    risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="expected_minimum",
-                                          value=float(mins[ok].mean()) if ok.any() else np.nan))
-                fin = run.final[rows, j]
-                risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="final_median",
-                                      value=float(np.nanmedian(fin)) if np.isfinite(fin).any() else np.nan))
-    tables = {"regimes": pd.concat(reg_rows, ignore_index=True),
-              "regime_shares": pd.DataFrame(share_rows),
-              "risk_by_regime": pd.DataFrame(risk_rows, columns=["option", "regime", "species", "metric", "value"])}
-    record = settings_record(s, members_diagnosed=int(sel.size), member_selection="first members by index, at most member_cap",
-                             start="each option's state at the horizon", controls="press controls in force just before the horizon",
-                             noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
-                             counts=counts, extinct="extinct is true when a species present at the start stays below its "
-                                                    "quasi-extinction level over the whole window; extinct_species names them")
-    return tables, record
