@@ -685,7 +685,8 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
             first = out["window"][rest] / s.n_sub
             n_pts = np.array([out["sections"][i].size for i in rest])
             measured = np.where(n_pts >= 2, first / np.maximum(n_pts, 1), np.nan)
-            long = choose_plans(web, sub, cc, y[rest], s, returns=2 * s.max_period + 2, measured_period=measured,
+            returns = int(np.ceil(s.max_period * (1 + 2 / s.n_sub))) + 2  # every shift testable over half the sub-windows
+            long = choose_plans(web, sub, cc, y[rest], s, returns=returns, measured_period=measured,
                                 min_sub=2 * first)
             spent = out["transient"][rest] + out["window"][rest] * (1 + 1.5 * ALIGN_FRACTION)
             long = [(replace(plan, transient=0.0), rows) for plan, rows in long]

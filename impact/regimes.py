@@ -13,10 +13,10 @@ section points (successive maxima of one state). The verdict reads:
   sub-window; a least-squares line through its logarithm gives the decay (or growth) rate, which
   counts when its interval excludes zero *and* it changes the amplitude by more than ``env_tol``
   over the window;
-* the period: the smallest shift k ≤ ``max_period`` under which the section repeats within a
-  sub-window, two section values counting as equal when they differ by less than ``period_tol``
-  times the section variable's amplitude (max − min), not its size; the last two sub-windows
-  must agree.
+* the period: the smallest shift k ≤ ``max_period`` under which the section repeats over the
+  second half of the sub-windows (pairs compared within a sub-window), two section values
+  counting as equal when they differ by less than ``period_tol`` times the section variable's
+  amplitude (max − min), not its size.
 
 Rules (in this order):
 
@@ -84,17 +84,18 @@ class Rules:
         Two section values are equal when they differ by less than this fraction of the section
         variable's amplitude.
     max_period : int
-        Longest period looked for; a sub-window needs ``2·max_period`` section points to call a
-        member aperiodic.
+        Longest period looked for; every period up to it must be testable (see
+        :func:`detect_period_pieces`) to call a member aperiodic.
     env_tol : float
         Smallest relative change of the envelope over the window that counts as decay or growth.
     confidence : float
         Two-sided confidence of the intervals on λ and on the envelope rate.
     flow_allowance : float
-        Along a cycle the tangent vector follows the flow, whose speed varies with the phase, so a
-        sub-window's exponent is off by up to ln(fastest/slowest speed)/T. λ counts as positive only
-        beyond ``flow_allowance``/T on top of its interval (ln 10: speeds within a factor 10; common
-        practice, no source).
+        Along a cycle the tangent vector follows the flow, whose speed varies with the phase, so an
+        exponent over time T is off by up to ln(fastest/slowest speed)/T. The sub-windows start at
+        staggered phases, so these terms mostly average out; what may remain is that of the whole
+        window W: λ counts as positive only beyond ``flow_allowance``/W on top of its interval
+        (ln 10: speeds within a factor 10; common practice, no source).
     """
 
     eq_tol: float = 1e-3
@@ -249,7 +250,7 @@ def judge(ev: Evidence, rules: Rules) -> Verdict:
     M, k = ev.lyap.shape
     lam, lam_se = lyapunov_estimate(ev.lyap)
     tq = t_quantile(rules.confidence, k - 1)
-    allowance = rules.flow_allowance / ev.sub_window
+    allowance = rules.flow_allowance / (ev.sub_window * k)
     negative, positive = lam + tq * lam_se < 0, lam - tq * lam_se > allowance
     clearly_negative = lam + tq * lam_se < -allowance
     rate, rate_se, rel = envelope_rate(ev)
@@ -291,15 +292,33 @@ def judge(ev: Evidence, rules: Rules) -> Verdict:
     return Verdict(regime, period, lam, lam_se, np.where(at_rest, np.nan, rate), reason)
 
 
+def detect_period_pieces(pieces, scale: float, period_tol: float, max_period: int) -> tuple[int, bool]:
+    """Smallest period shared by several pieces of a section (e.g. sub-windows with gaps between).
+
+    Only pairs (s[i], s[i+k]) inside one piece are compared, so the gaps between pieces do not
+    break a period. Shift k is testable when the pieces hold at least k such pairs (as a single
+    sequence of 2k points does). Returns the period (0 if none) and whether some shift up to
+    ``max_period`` was not testable (too few points to rule periods out).
+    """
+    pieces = [np.asarray(x, float) for x in pieces]
+    if not scale > 0:
+        return 0, True
+    for k in range(1, max_period + 1):
+        diffs = [np.abs(x[k:] - x[:-k]) for x in pieces if x.size > k]
+        n = sum(d.size for d in diffs)
+        if n < max(k, 2):
+            return 0, True
+        if all(np.all(d <= period_tol * scale) for d in diffs):
+            return k, False
+    return 0, False
+
+
 def _section_period(ev: Evidence, i: int, rules: Rules) -> tuple[int, bool]:
-    """Period agreed by the last two sub-windows (0 if none) and whether points were too few."""
+    """Period of the section over the second half of the sub-windows, and whether points were too few."""
     col = int(ev.section[i])
-    found = []
-    for j in (ev.k - 2, ev.k - 1) if ev.k > 1 else (ev.k - 1,):
-        scale = float(ev.high[i, j, col] - ev.low[i, j, col])
-        found.append(detect_period(ev.sections[i][j], scale, rules.period_tol, rules.max_period))
-    few = len(ev.sections[i][-1]) < 2 * rules.max_period
-    return (found[0] if len(set(found)) == 1 else 0), few
+    last = range(ev.k // 2, ev.k)
+    scale = float(max(ev.high[i, j, col] - ev.low[i, j, col] for j in last))
+    return detect_period_pieces([ev.sections[i][j] for j in last], scale, rules.period_tol, rules.max_period)
 
 
 def classify(ev: Evidence, rules: Rules) -> Verdict:

@@ -164,7 +164,7 @@ def hp_case(tmp_path):
     return write_case(tmp_path, data)
 
 
-HP = DynamicsSettings(transient=3000.0, window=4000.0, sample_dt=2.0, max_period=16)
+HP = DynamicsSettings(transient=3000.0, window=16000.0, sample_dt=2.0, max_period=16)
 
 # Hastings & Powell (1991), Fig. 3 (bifurcation diagram of the z maxima against b1; figure as recalled
 # from memory): a simple limit cycle at low b1, period doubling as b1 grows, chaos at b1 = 3, and
