@@ -312,7 +312,8 @@ def cmd_report(args) -> int:
 
 
 def cmd_scan(args) -> int:
-    from .dynamics import declared_settings, scan_web, section_species, settings_record
+    from .dynamics import declared_settings, section_species, settings_record
+    from .scan import scan_web
     from .execute import make_executor
     from .results import staged_directory, write_csv, write_json
 

@@ -5,7 +5,7 @@ Two views, each labelled in the tables:
 * the long-run attractor (noise off): every kept member, or a random subset of
   ``screen_members`` drawn from the seed, is continued from each option's state at the
   assessment horizon under the press controls in force just before it, deterministically, and
-  diagnosed by :func:`impact.dynamics.diagnose_web` (windows from each member's own time
+  diagnosed by :func:`impact.diagnose.diagnose_web` (windows from each member's own time
   scales, never from the case horizon);
 * the assessment horizon (noise as in the risk): the oscillation amplitude (max − min over
   [0, horizon]) of every species in every kept member's own risk run.
@@ -22,7 +22,8 @@ import pandas as pd
 
 from . import regimes as rg
 from .case import Case
-from .dynamics import PURPOSE_DYNAMICS, DynamicsSettings, declared_settings, diagnose_web, section_species, settings_record
+from .diagnose import diagnose_web
+from .dynamics import PURPOSE_DYNAMICS, DynamicsSettings, declared_settings, section_species, settings_record
 from .model import Controls, WebParams, build_web
 
 SHARE_CONFIDENCE = 0.95

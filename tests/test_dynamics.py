@@ -11,9 +11,10 @@ import pytest
 from casefiles import write_case
 from impact.case import load_case
 from impact.cli import main
-from impact.dynamics import (DynamicsSettings, _hermite_max, diagnose_web, evidence, logistic_map_scan,
-                             lyapunov_flow, nominal_values, predictability_horizon, refine_transitions, run_subwindows,
-                             scan_web, transitions)
+from impact.diagnose import diagnose_web, evidence, run_subwindows
+from impact.dynamics import (DynamicsSettings, _hermite_max, logistic_map_scan, lyapunov_flow, predictability_horizon,
+                             refine_transitions)
+from impact.scan import nominal_values, scan_web, transitions
 from impact.regimes import Rules, classify, detect_period
 from impact.timescales import WindowPlan
 from impact.jacobian import WebTangent

@@ -8,10 +8,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from casefiles import write_case
 from impact.case import load_case
 from impact.cli import main
-from impact.dynamics import DynamicsSettings, diagnose_web, nominal_values, scan_web
+from impact.diagnose import diagnose_web
+from impact.dynamics import DynamicsSettings
+from impact.scan import scan_web
 from impact.errors import CaseError
 from impact.model import Controls, build_web, web_params
 from impact.regimes import Evidence, Rules, classify, predictability_shortfall, share_interval
