@@ -21,7 +21,7 @@ from .model import Controls, FoodWeb, WebParams
 from .timescales import ALIGN_FRACTION, WindowPlan, plan_windows, time_scales
 
 GOLDEN = (np.sqrt(5.0) - 1.0) / 2.0
-SHORT_RETURNS = 4  # oscillation periods per sub-window in the first pass (common practice, no source)
+SHORT_RETURNS = 1  # oscillation periods per sub-window in the first pass (common practice, no source)
 
 
 @dataclass(frozen=True)
@@ -113,7 +113,7 @@ def choose_plans(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, s: Dyna
     """
     ts = time_scales(web, p, c, y)
     slow = slowest_rate(p)
-    cap = np.full(len(slow), s.max_window) if s.max_window is not None else 2000.0 / slow
+    cap = np.full(len(slow), s.max_window) if s.max_window is not None else s.max_window_rates / slow
     return plan_windows(ts, slow_rate=slow, returns=returns, n_sub=s.n_sub, max_window=cap,
                         transient=s.transient, window=s.window, sample_dt=s.sample_dt, shared=s.shared_plan,
                         sub_relaxations=s.sub_relaxations, **extra)

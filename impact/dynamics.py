@@ -49,8 +49,10 @@ class DynamicsSettings:
         How many times the window of a member whose verdict changed on doubling is doubled
         again before it is left undetermined.
     max_window : float or None
-        Cap on a chosen transient and window; None: 2000 times the slowest per-capita time
-        scale (common practice, no source).
+        Cap on a chosen transient and window; None: ``max_window_rates`` times each member's
+        slowest per-capita time scale.
+    max_window_rates : float
+        See ``max_window`` (2000: common practice, no source; the screen uses less to bound its cost).
     delta0, tolerance : float
         Initial relative uncertainty (e.g. a survey's relative error) and the relative error
         at which a projection stops being useful; horizon = ln(tolerance/delta0)/λ.
@@ -74,6 +76,7 @@ class DynamicsSettings:
     n_sub: int = 8
     doublings: int = 1
     max_window: float | None = None
+    max_window_rates: float = 2000.0
     delta0: float = 0.05
     tolerance: float = 0.5
     eq_tol: float = 1e-3
