@@ -12,7 +12,8 @@ from pathlib import Path
 import numpy as np
 
 from impact.case import load_case  # noqa: E402
-from impact.dynamics import DynamicsSettings, lyapunov_flow, nominal_values, scan_web, web_functions  # noqa: E402
+from impact.dynamics import DynamicsSettings, lyapunov_flow, web_functions  # noqa: E402
+from impact.scan import nominal_values, scan_web  # noqa: E402
 from impact.integrate import integrate_segment  # noqa: E402
 from impact.jacobian import WebTangent  # noqa: E402
 from impact.model import Controls, build_web, web_params  # noqa: E402

@@ -251,9 +251,9 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     if settings.sensitivity:
         _sensitivity_stage(case, settings, seed, ens, runs, result, progress, executor, store)
     if settings.dynamics:
-        from .dynamics import assess_stage
+        from .screen import assess_stage
 
-        dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor)
+        dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
         result.tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
         result.records["dynamics/dynamics.json"] = record
         manifest["stages"].append("dynamics")

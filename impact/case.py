@@ -233,6 +233,7 @@ class Case:
     notes: tuple[str, ...] = field(default=())
     objectives: tuple[Objective, ...] = field(default=())
     groups: tuple[ParameterGroup, ...] = field(default=())
+    dynamics: "DynamicsTable | None" = None
 
     @property
     def species_names(self) -> tuple[str, ...]:
@@ -656,6 +657,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     horizons = rt.get("horizons", [horizon], "list")
     if not horizons or any(isinstance(h, bool) or not isinstance(h, (int, float)) or not 0 < h <= horizon for h in horizons):
         r.fail("risk.horizons", f"must be a non-empty list of times in (0, {horizon:g}]")
+    dynamics = _read_dynamics(r, top.get("dynamics", None, "any"), [s.name for s in species])
     risk = Risk(
         tuple(sorted(float(h) for h in horizons)),
         rt.number("recovery_fraction", 0.8, low=0, low_open=True, high=1),
@@ -690,7 +692,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         parameters=parameters, species=species, feeding=tuple(feeding),
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
         observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
-        objectives=objectives, groups=groups,
+        objectives=objectives, groups=groups, dynamics=dynamics,
     )
 
 
@@ -746,3 +748,50 @@ def _read_objective(r: _Reader, i: int, raw: Any, species: tuple[Species, ...], 
     desc = t.get("description", "", "str")
     t.done()
     return Objective(name, sp, measure, float(h), given[0], float(bound), level, below, desc)
+
+
+@dataclass(frozen=True)
+class DynamicsTable:
+    """The optional ``[dynamics]`` table: settings of the regime diagnostics as declared.
+
+    Every field is None when not declared (the stage then chooses it); times are in the case's
+    time unit. ``section`` names the species whose maxima form the Poincaré section.
+    """
+
+    transient: float | None = None
+    window: float | None = None
+    sample_dt: float | None = None
+    section: str | None = None
+    eq_tol: float | None = None
+    period_tol: float | None = None
+    max_period: int | None = None
+    env_tol: float | None = None
+    confidence: float | None = None
+    screen_members: int | None = None
+
+    def declared(self) -> dict:
+        """The declared numeric settings (``section`` aside), by name."""
+        return {k: getattr(self, k) for k in self.__dataclass_fields__ if k != "section" and getattr(self, k) is not None}
+
+
+def _read_dynamics(r: _Reader, raw: Any, species: list[str]) -> DynamicsTable | None:
+    """Read ``[dynamics]`` (absent: None)."""
+    if raw is None:
+        return None
+    t = _Table(r, raw, "dynamics")
+    out = DynamicsTable(
+        transient=t.number("transient", None, low=0),
+        window=t.number("window", None, low=0, low_open=True),
+        sample_dt=t.number("sample_dt", None, low=0, low_open=True),
+        section=t.get("section", None, "str"),
+        eq_tol=t.number("eq_tol", None, low=0, low_open=True, high=1),
+        period_tol=t.number("period_tol", None, low=0, low_open=True, high=1),
+        max_period=t.number("max_period", None, low=1, high=64, integer=True),
+        env_tol=t.number("env_tol", None, low=0, low_open=True, high=1),
+        confidence=t.number("confidence", None, low=0.5, high=0.9999),
+        screen_members=t.number("screen_members", None, low=1, integer=True),
+    )
+    t.done()
+    if out.section is not None:
+        r.choice("dynamics.section", out.section, species)
+    return out

@@ -77,28 +77,52 @@ def _objective_cautions(objectives: pd.DataFrame) -> list[Caution]:
                                     "more members would narrow it): " + _join(parts) + ".")]
 
 
-def _regime_cautions(m: dict, shares: pd.DataFrame | None) -> list[Caution]:
+def share_text(r) -> str:
+    """A regime share with its interval, where the table gives one."""
+    if "share_low" in r and pd.notna(r.share_low):
+        return f"{fmt_prob(r.share)} [{fmt_prob(r.share_low).replace(' %', '')}–{fmt_prob(r.share_high)}]"
+    return fmt_prob(r.share)
+
+
+def _regime_cautions(m: dict, dynamics: dict) -> list[Caution]:
+    shares = dynamics.get("regime_shares")
     if shares is None or shares.empty:
         return []
     H, unit = float(m["horizon"]), m["time_unit"]
     out = []
-    chaotic = shares[(shares.regime == "chaotic") & (shares.share > 0)]
-    short = chaotic[np.isfinite(chaotic.horizon_median.astype(float)) & (chaotic.horizon_median.astype(float) < H)]
+    if "shortfall_max" in shares:
+        short = shares[(shares.share > 0) & (shares.shortfall_max.astype(float) > 0)]
+    else:  # results written before the shortfall column: compare the median horizon directly
+        short = shares[(shares.regime == "chaotic") & (shares.share > 0)
+                       & (shares.horizon_median.astype(float) < H)].assign(shortfall_max=np.nan)
     if not short.empty:
-        parts = [f"{r.option}: {fmt_prob(r.share)} of members, median horizon {fmt_num(r.horizon_median)} {unit}"
+        parts = [f"{r.option}: {share_text(r)} of members {r.regime}"
+                 + (f", horizon up to {fmt_num(r.shortfall_max)} {unit} short" if pd.notna(r.shortfall_max) else "")
                  for _, r in short.iterrows()]
         out.append(Caution(RANK_PREDICTABILITY,
-                           f"Chaotic members whose predictability horizon is shorter than the {fmt_num(H)} {unit} "
-                           "assessed (individual trajectories cannot be predicted that far; read the bands, not single "
-                           "runs): " + _join(parts) + "."))
+                           f"Members whose predictability horizon is shorter than the {fmt_num(H)} {unit} assessed "
+                           "(individual trajectories cannot be predicted that far; read the bands, not single runs): "
+                           + _join(parts) + "."))
     for regime, what in OSCILLATING.items():
         rows = shares[(shares.regime == regime) & (shares.share > 0)]
         if rows.empty:
             continue
-        parts = [f"{r.option} {fmt_prob(r.share)} ({fmt_num(r['count'])} member{'' if int(r['count']) == 1 else 's'})"
+        parts = [f"{r.option} {share_text(r)} ({fmt_num(r['count'])} member{'' if int(r['count']) == 1 else 's'})"
                  for _, r in rows.iterrows()]
-        out.append(Caution(RANK_OSCILLATION, f"Members that are {what} in the dynamics screen: " + _join(parts)
-                           + ". The timing of peaks and troughs is uncertain; read the bands, not single runs."))
+        out.append(Caution(RANK_OSCILLATION, f"Members that are {what} in the dynamics screen (long-run attractor, noise "
+                           "off): " + _join(parts) + ". The timing of peaks and troughs is uncertain; read the bands, "
+                           "not single runs."))
+    und = shares[(shares.regime == "undetermined") & (shares.share > 0)]
+    if not und.empty:
+        reasons = (dynamics.get("dynamics") or {}).get("undetermined_reasons", {}) if isinstance(
+            dynamics.get("dynamics"), dict) else {}
+        regimes = dynamics.get("regimes")
+        seen = [] if regimes is None or "reason" not in regimes else sorted(
+            set(regimes[regimes.regime == "undetermined"].reason.dropna().astype(str)) - {""})
+        why = "; ".join(reasons.get(k, k) for k in seen)
+        out.append(Caution(RANK_OSCILLATION, "Members whose regime the screen could not settle: "
+                           + _join([f"{r.option} {share_text(r)}" for _, r in und.iterrows()])
+                           + (f" (why: {why})" if why else "") + "; their long-run behaviour is unknown."))
     return out
 
 
@@ -131,7 +155,7 @@ def cautions(m: dict, objectives: pd.DataFrame, thin_reason: str, dynamics: dict
     """Every specific warning of a results folder, one per concern, most serious first."""
     out = _member_cautions(m, thin_reason)
     out += _objective_cautions(objectives)
-    out += _regime_cautions(m, (dynamics or {}).get("regime_shares"))
+    out += _regime_cautions(m, dynamics or {})
     out += _sensitivity_cautions(sensitivity or {})
     if m["case"].get("invented"):
         out.append(Caution(RANK_INVENTED, "The case file is marked INVENTED: it is an example, not real site data."))

@@ -249,9 +249,9 @@ def cmd_report(args) -> int:
 
 
 def cmd_scan(args) -> int:
-    from .dynamics import default_settings, nominal_values, scan_web, section_species, settings_record
+    from .dynamics import declared_settings, section_species, settings_record
+    from .scan import scan_web
     from .execute import make_executor
-    from .model import web_params
     from .outfolder import OutputFolder
     from .results import write_csv, write_json
 
@@ -263,11 +263,13 @@ def cmd_scan(args) -> int:
     for flag, v in (("--transient", args.transient), ("--window", args.window), ("--sample-dt", args.sample_dt)):
         if v is not None and not (v > 0 if flag != "--transient" else v >= 0):
             raise CaseError("command line", flag, "must be a positive time")
+    if args.max_period is not None and not 1 <= args.max_period <= 64:
+        raise CaseError("command line", "--max-period", "must be a whole number from 1 to 64")
+    if args.period_tol is not None and not 0 < args.period_tol <= 1:
+        raise CaseError("command line", "--period-tol", "must be greater than 0 and at most 1")
     _, section = section_species(case, args.section)
-    nominal = nominal_values(case)
-    p = web_params(case, {k: np.array([v]) for k, v in nominal.items()}, 1)
-    over = {k: v for k, v in (("transient", args.transient), ("window", args.window), ("sample_dt", args.sample_dt)) if v is not None}
-    settings = default_settings(case, p, p.initial, **over)
+    settings, declared = declared_settings(case, transient=args.transient, window=args.window, sample_dt=args.sample_dt,
+                                           max_period=args.max_period, period_tol=args.period_tol)
     grid = np.linspace(args.start, args.stop, args.steps)
     folder = OutputFolder(args.out, replace=args.replace_results)
     progress = _Progress(args.quiet)
@@ -288,6 +290,7 @@ def cmd_scan(args) -> int:
         write_json(settings_record(settings, parameter=args.parameter, values=grid.tolist(), option=args.option,
                                    execution=executor.describe(),
                                    section=f"maxima of {section}", continuation=not args.parallel, others="every other parameter at its prior median",
+                                   declared=declared,
                                    seconds=round(seconds, 2), failed=int(points.failed.sum())),
                    tmp / "dynamics" / "dynamics.json")
         write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["scan"],
@@ -295,7 +298,7 @@ def cmd_scan(args) -> int:
                    tmp / "manifest.json")
     for _, r in points.iterrows():
         print(f"{args.parameter} = {r.value:.6g}: {r.regime}" + (f" (period {r.period})" if r.regime == "cycle" else "")
-              + f", λ = {r.lyapunov:.3g}")
+              + (f" ({r.reason})" if r.regime == "undetermined" else "") + f", λ = {r.lyapunov:.3g} ± {r.lyapunov_se:.2g}")
     for _, r in trans.iterrows():
         print(f"transition {r.kind}: {r.from_regime} -> {r.to_regime} between {r.from_value:.6g} and {r.to_value:.6g}")
     if points.failed.any():
@@ -422,6 +425,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
     p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
     p.add_argument("--sample-dt", type=float, default=None, help="sampling / renormalisation interval")
+    p.add_argument("--max-period", type=int, default=None, help="longest period looked for (default 8)")
+    p.add_argument("--period-tol", type=float, default=None,
+                   help="section values are equal within this fraction of the oscillation's amplitude (default 1e-3)")
     p.add_argument("--section", default=None, metavar="SPECIES",
                    help="species whose successive maxima form the Poincaré section (default: the last declared species)")
     p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing")

@@ -78,14 +78,24 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
     "sensitivity/convergence.csv": ("Convergence of the prior screen's indices (N against N/2).", {
         "option": "run", "metric": "output metric", "species": "species", "max_shift": "largest N/2-to-N shift",
         "max_ci_width": "widest full interval", "tolerance": "tolerance", "converged": "True when both within"}),
-    "dynamics/regimes.csv": ("Dynamical regime of each screened member, per option.", {
-        "option": "run", "member": "draw index of the member", "regime": "regime verdict", "period":
-        "period in maxima (cycles)", "lyapunov": "largest Lyapunov exponent (1/time unit)", "horizon_time":
-        "predictability horizon (time unit; inf when errors do not grow)", "extinct": "True when a species was lost",
-        "extinct_species": "which species were lost"}),
+    "dynamics/regimes.csv": ("Dynamical regime of each screened member, per option (long-run attractor, noise off).", {
+        "option": "run", "member": "draw index of the member", "regime": "equilibrium, cycle, aperiodic, chaotic, "
+        "extinction or undetermined", "period": "period in maxima (cycles)", "lyapunov":
+        "largest Lyapunov exponent (1/time unit), mean over sub-windows", "lyapunov_se": "its standard error",
+        "horizon_time": "predictability horizon (time unit; inf when errors do not grow)", "extinct":
+        "True when a species was lost", "extinct_species": "which species were lost", "reason":
+        "why the verdict is undetermined (codes explained in dynamics.json)", "envelope_rate":
+        "decay rate of the oscillation envelope (1/time unit)", "window": "time diagnosed", "shortfall":
+        "how much shorter than the assessment the predictability horizon is (0 when not)",
+        "amplitude_*": "oscillation size (max − min) of each species over the window"}),
     "dynamics/regime_shares.csv": ("Share of screened members in each regime, per option.", {
-        "option": "run", "regime": "regime", "share": "share of members", "count": "members",
-        "lyapunov_median": "median Lyapunov exponent", "horizon_median": "median predictability horizon"}),
+        "option": "run", "regime": "regime", "share": "share of members", "share_low": "lower limit (95 % Wilson)",
+        "share_high": "upper limit", "count": "members", "diagnosed": "members screened", "lyapunov_median":
+        "median Lyapunov exponent", "horizon_median": "median predictability horizon", "shortfall_max":
+        "largest shortfall of the predictability horizon against the assessment", "basis": "what was diagnosed"}),
+    "dynamics/horizon_amplitude.csv": ("Each member's oscillation size over the assessment horizon, noise as in the risk.", {
+        "option": "run", "member": "draw index of the member", "amplitude_*": "max − min of each species",
+        "basis": "what was measured"}),
     "dynamics/risk_by_regime.csv": ("Risk metrics within each regime, per option.", {
         "option": "run", "regime": "regime", "species": "species", "metric": "metric", "value": "value"}),
 }

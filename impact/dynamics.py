@@ -1,38 +1,35 @@
 """Dynamical regime diagnostics: equilibrium, cycles, chaos, predictability horizon, scans.
 
-After a transient, each member is followed over a window while the tangent (variational)
-equations ride along and are renormalised at every integration step (Benettin et al. 1980),
-giving the largest Lyapunov exponent λ. The trajectory is also cut by a Poincaré section — the
-successive local maxima of one state variable, located inside the step where its derivative
-changes sign by cubic Hermite interpolation — and the period k is the smallest shift under
-which the section sequence repeats. The regime follows from the section, λ and the amplitude:
-
-* ``extinction``  a watched species stays below its extinction level over the window;
-* ``equilibrium`` λ < −lambda_tol, or the relative amplitude of every state is < eq_tol;
-* ``cycle``       the section repeats with period k ≤ max_period (relative tolerance period_tol);
-* ``chaotic``     no period and λ > lambda_tol;
-* ``irregular``   no period and |λ| ≤ lambda_tol (quasi-periodic, or not yet settled).
+After a transient, each member is followed over a window cut into sub-windows while the tangent
+(variational) equations ride along and are renormalised at every integration step (Benettin et
+al. 1980), giving a finite-time largest Lyapunov exponent per sub-window. The trajectory is also
+cut by a Poincaré section — the successive local maxima of one state variable, located inside
+the step where its derivative changes sign by cubic Hermite interpolation. The verdict
+(:mod:`impact.regimes`) weighs the exponent with its uncertainty, the decay of the oscillation
+envelope and the repetition of the section, and is checked by doubling the window. Transient and
+window come from the web's own time scales (:mod:`impact.timescales`) unless declared.
 
 The predictability horizon is t = ln(Δ/δ0)/λ for λ > 0 (an initial relative error δ0 grows to
-the tolerance Δ); it is infinite otherwise. All thresholds live in :class:`DynamicsSettings`
-and are written to ``dynamics.json``. Numerics only: no file I/O here.
+the tolerance Δ); it is infinite otherwise. All settings live in :class:`DynamicsSettings` and
+are written to ``dynamics.json``. Numerics only: no file I/O here.
 """
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass
 
 import numpy as np
-import pandas as pd
 
+from . import regimes as rg
 from .case import Case
 from .errors import CaseError
-from .integrate import (FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine,
+from .integrate import (MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine,
                         _select_initial_step, _take_rows, error_norm)
-from .jacobian import WebTangent, jacobian, tangent
-from .model import Controls, FoodWeb, WebParams, WebRHS, build_web, web_params
+from .jacobian import jacobian, tangent
+from .model import Controls, FoodWeb, WebParams, WebRHS
+from .regimes import Rules
 
-REGIMES = ("equilibrium", "cycle", "irregular", "chaotic", "extinction")
+PURPOSE_DYNAMICS = 8  # spawn-key purpose for choosing the screened members
 
 
 @dataclass(frozen=True)
@@ -41,48 +38,67 @@ class DynamicsSettings:
 
     Attributes
     ----------
-    transient, window : float
-        Time discarded before diagnosing, and time diagnosed.
-    sample_dt : float
-        Longest integration step of the diagnostics (tangent renormalisation and section checks
-        happen at every step end, so at least this often); must be well below half the
-        shortest oscillation period.
+    transient, window, sample_dt : float or None
+        Time discarded before diagnosing, time diagnosed (all sub-windows together) and longest
+        integration step; None (the default) chooses each from the web's time scales
+        (:mod:`impact.timescales`).
+    n_sub : int
+        Sub-windows of the window (at least 4; the verdict is compared with that of the first
+        half of them).
+    doublings : int
+        How many times the window of a member whose verdict changed on doubling is doubled
+        again before it is left undetermined.
+    max_window : float or None
+        Cap on a chosen transient and window; None: ``max_window_rates`` times each member's
+        slowest per-capita time scale.
+    max_window_rates : float
+        See ``max_window`` (2000: common practice, no source; the screen uses less to bound its cost).
     delta0, tolerance : float
         Initial relative uncertainty (e.g. a survey's relative error) and the relative error
         at which a projection stops being useful; horizon = ln(tolerance/delta0)/λ.
-    eq_tol : float
-        Relative amplitude (max − min)/(mean + abs_floor) below which a state is at rest.
-    period_tol : float
-        Relative tolerance for two section values to count as the same point.
-    max_period : int
-        Longest period looked for.
-    lambda_tol : float
-        |λ| at or below which λ is treated as zero (1/time unit). A finite-time estimate on a
-        cycle is O(1/window), so 10/window is the default in :func:`default_settings`
-        (common practice, no source).
+    eq_tol, period_tol, max_period, env_tol, confidence
+        Tolerances of the verdict, see :class:`impact.regimes.Rules`.
     rtol, atol : float
         Integrator tolerances for model and tangent.
-    member_cap : int
-        At most this many members per option are diagnosed in an assessment.
+    screen_members : int
+        Members per option diagnosed in an assessment (a random subset when there are more).
+    sub_relaxations : float
+        Relaxation times a sub-window spans at least (precision of λ at an equilibrium).
+    shared_plan : float or None
+        None: each member's window from its own time scales (members with the same rounded plan
+        run together). A quantile q: one plan for all members, the q-quantile of their needs
+        (cheaper; a member that needed more shows it as ``undetermined``).
     """
 
-    transient: float
-    window: float
-    sample_dt: float
+    transient: float | None = None
+    window: float | None = None
+    sample_dt: float | None = None
+    n_sub: int = 8
+    doublings: int = 1
+    max_window: float | None = None
+    max_window_rates: float = 2000.0
     delta0: float = 0.05
     tolerance: float = 0.5
     eq_tol: float = 1e-3
     period_tol: float = 1e-3
-    max_period: int = 16
-    lambda_tol: float = 0.005
+    max_period: int = 8
+    env_tol: float = 0.05
+    confidence: float = 0.99
     rtol: float = 1e-7
     atol: float = 1e-9
-    member_cap: int = 48
+    screen_members: int = 300
+    sub_relaxations: float = 4.0
+    shared_plan: float | None = None
+
+    @property
+    def rules(self) -> Rules:
+        return Rules(eq_tol=self.eq_tol, period_tol=self.period_tol, max_period=self.max_period,
+                     env_tol=self.env_tol, confidence=self.confidence)
 
 
 @dataclass(frozen=True)
 class Diagnosis:
-    """Per-member outcome of :func:`lyapunov_flow` and :func:`classify`.
+    """Per-member outcome of :func:`lyapunov_flow`.
 
     Attributes
     ----------
@@ -121,67 +137,6 @@ def predictability_horizon(lyap, delta0: float, tolerance: float) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         t = np.log(tolerance / delta0) / lyap
     return np.where(np.isnan(lyap), np.nan, np.where(lyap > 0, t, np.inf))
-
-
-def detect_period(values: np.ndarray, period_tol: float, max_period: int) -> int:
-    """Smallest k ≤ max_period with s[i+k] ≈ s[i] over the last section points; 0 if none.
-
-    Uses the last ``2·max_period`` points (all if fewer); a period k needs at least 2k points.
-    Values are compared relative to the largest |s| (Poincaré return-map periodicity).
-    """
-    s = np.asarray(values, float)
-    s = s[-2 * max_period:]
-    if s.size < 2:
-        return 0
-    scale = max(float(np.abs(s).max()), 1e-300)
-    for k in range(1, max_period + 1):
-        if s.size < 2 * k:
-            break
-        if np.all(np.abs(s[k:] - s[:-k]) <= period_tol * scale):
-            return k
-    return 0
-
-
-def classify(lyap: np.ndarray, sections: list, amplitude: np.ndarray, extinct: np.ndarray,
-             s: DynamicsSettings, flow: bool = True) -> tuple[np.ndarray, np.ndarray]:
-    """Regime name and period per member.
-
-    For a map (``flow=False``) a negative λ only says the orbit is stable, so the section
-    alone decides between cycles and the rest.
-
-    Parameters
-    ----------
-    lyap : ndarray (M,)
-    sections : list of M ndarrays
-    amplitude : ndarray (M,)
-        Largest relative amplitude over the state variables.
-    extinct : ndarray (M,) bool
-
-    Returns
-    -------
-    regime : ndarray (M,) of str
-    period : ndarray (M,) int (0 where no period applies)
-    """
-    M = len(lyap)
-    regime = np.empty(M, dtype=object)
-    period = np.zeros(M, dtype=int)
-    for k in range(M):
-        lam = lyap[k]
-        if extinct[k]:
-            regime[k] = "extinction"
-        elif np.isnan(lam):
-            regime[k] = "failed"
-        elif flow and (lam < -s.lambda_tol or amplitude[k] < s.eq_tol):
-            regime[k] = "equilibrium"
-        else:
-            p = detect_period(sections[k], s.period_tol, s.max_period)
-            if p:
-                regime[k], period[k] = "cycle", p
-            elif lam > s.lambda_tol:
-                regime[k] = "chaotic"
-            else:
-                regime[k] = "irregular"
-    return regime, period
 
 
 def _hermite_max(y0, y1, f0, f1, dt):
@@ -485,13 +440,6 @@ def _sumsq(x):
     return acc
 
 
-def relative_amplitude(d: Diagnosis, floor: np.ndarray | float = 0.0) -> np.ndarray:
-    """Largest (max − min)/(mean + floor) over the state variables: (M,)."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        a = (d.high - d.low) / (np.abs(d.mean) + floor + 1e-300)
-    return np.nanmax(np.where(np.isfinite(a), a, 0.0), axis=1)
-
-
 # --------------------------------------------------------------------------------------------
 # one-dimensional maps (x -> g(x)) vectorised over parameter values
 
@@ -546,39 +494,34 @@ def web_functions(web: FoodWeb, p: WebParams, c: Controls):
     return fun, jac
 
 
-def default_settings(case: Case, p: WebParams, y0: np.ndarray, **override) -> DynamicsSettings:
-    """Settings from the web's own time scales (common practice, no source).
+def slowest_rate(p: WebParams) -> np.ndarray:
+    """Each member's slowest per-capita rate (growth, mortality): (M,) 1/time (1 where none)."""
+    rates = np.concatenate([np.abs(p.r), np.abs(p.m)], axis=1)
+    rates = np.where(np.isfinite(rates) & (rates > 0), rates, np.inf)
+    slow = rates.min(axis=1)
+    return np.where(np.isfinite(slow), slow, 1.0)
 
-    The slowest per-capita rate (growth, mortality) sets the transient (20 of its time scales)
-    and window (50); the fastest (a Gershgorin bound on the Jacobian at ``y0``) sets the
-    sample interval (a tenth of its time scale), with between 200 and 1000 samples per window.
+
+def declared_settings(case: Case, base: dict | None = None, **command_line) -> tuple[DynamicsSettings, dict]:
+    """Settings from ``base`` defaults, then the case's ``[dynamics]`` table, then the command line.
+
+    ``command_line`` values that are None are not declared. Returns the settings and what was
+    declared where (for dynamics.json).
     """
-    rates = np.concatenate([np.abs(p.r).ravel(), np.abs(p.m).ravel()])
-    rates = rates[np.isfinite(rates) & (rates > 0)]
-    slow = float(rates.min()) if rates.size else 1.0
-    web = build_web(case)
-    c = Controls.neutral(len(y0), web.n_species)
-    ok = np.isfinite(y0).all(axis=1)
-    fast = slow
-    if ok.any():
-        J = jacobian(web, p, c, np.maximum(y0[ok], 0.0), np.flatnonzero(ok))
-        g = np.abs(J).sum(axis=2).max(axis=1)
-        g = g[np.isfinite(g)]
-        if g.size:
-            fast = max(fast, float(np.median(g)))
-    transient, window = 20.0 / slow, 50.0 / slow
-    dt = float(np.clip(0.1 / fast, window / 1000, window / 200))
-    base = dict(transient=transient, window=window, sample_dt=dt, lambda_tol=10.0 / window)
-    base.update(override)
-    return DynamicsSettings(**base)
+    table = case.dynamics.declared() if case.dynamics is not None else {}
+    cli = {k: v for k, v in command_line.items() if v is not None}
+    return DynamicsSettings(**{**(base or {}), **table, **cli}), {"case file": table, "command line": cli}
 
 
 def section_species(case: Case, name: str | None, field: str = "--section") -> tuple[int, str]:
     """Column and name of the species whose successive maxima form the Poincaré section.
 
-    ``None`` keeps the default, the last declared species. An unknown name is a user error.
+    ``None`` takes the case file's ``[dynamics] section`` if declared, else the last declared
+    species. An unknown name is a user error.
     """
     names = case.species_names
+    if name is None and case.dynamics is not None and case.dynamics.section is not None:
+        name = case.dynamics.section
     if name is None:
         return len(names) - 1, names[-1]
     if name not in names:
@@ -586,265 +529,15 @@ def section_species(case: Case, name: str | None, field: str = "--section") -> t
     return names.index(name), name
 
 
-def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: DynamicsSettings,
-                 extinct_level: np.ndarray, members=None, section=None):
-    """Regime, period, λ and horizon of each member from state ``y0`` under fixed controls.
-
-    Parameters
-    ----------
-    y0 : ndarray (M, n_state)
-    extinct_level : ndarray (S,)
-        A species whose maximum over the window stays below this level is extinct; species
-        that were already below it in ``y0`` are not counted (they were never there).
-    section : int or ndarray (M,), optional
-        State column whose successive maxima form the Poincaré section; default: the last
-        species (see :func:`section_species` to resolve a name).
-
-    Returns
-    -------
-    dict with ndarrays (M,): regime, period, lyapunov, horizon, extinct (bool), extinct_species
-    (str), and ``diagnosis`` (:class:`Diagnosis`).
-    """
-    M = y0.shape[0]
-    S = web.n_species
-    members = np.arange(M) if members is None else np.asarray(members)
-    fun, _ = web_functions(web, p, c)
-    start = np.where(np.isfinite(y0), np.maximum(y0, 0.0), np.nan)
-    if section is None:
-        section = S - 1 if S else 0
-    d = lyapunov_flow(fun, None, start, transient=s.transient, window=s.window, sample_dt=s.sample_dt,
-                      section=section, rtol=s.rtol, atol=s.atol, members=members, jvp=WebTangent(web, p, c))
-    level = np.asarray(extinct_level, float)
-    with np.errstate(invalid="ignore"):
-        watched = start[:, :S] >= level
-        gone = watched & (d.high[:, :S] < level)
-    extinct = gone.any(axis=1)
-    floor = np.concatenate([level, np.zeros(web.n_state - S)])
-    amp = relative_amplitude(d, floor)
-    regime, period = classify(d.lyapunov, d.sections, amp, extinct, s)
-    names = np.array(web.species)
-    return dict(regime=regime, period=period, lyapunov=d.lyapunov,
-                horizon=predictability_horizon(d.lyapunov, s.delta0, s.tolerance),
-                extinct=extinct, extinct_species=np.array([";".join(names[g]) for g in gone], dtype=object),
-                diagnosis=d)
-
-
-# --------------------------------------------------------------------------------------------
-# scans
-
-
-def transitions(parameter: str, values: np.ndarray, regime, period) -> pd.DataFrame:
-    """Consecutive scan values whose (regime, period) differ, with a kind for each change.
-
-    Returns
-    -------
-    DataFrame with columns parameter, from_value, to_value, from_regime, to_regime, kind
-    (``from_regime``/``to_regime`` carry the period for cycles, e.g. ``cycle(2)``).
-    """
-    def label(r, k):
-        return f"cycle({k})" if r == "cycle" else r
-
-    rows = []
-    for i in range(1, len(values)):
-        a, b = (regime[i - 1], int(period[i - 1])), (regime[i], int(period[i]))
-        if a == b:
-            continue
-        rows.append(dict(parameter=parameter, from_value=float(values[i - 1]), to_value=float(values[i]),
-                         from_regime=label(*a), to_regime=label(*b), kind=transition_kind(a, b)))
-    return pd.DataFrame(rows, columns=["parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"])
-
-
-def transition_kind(a: tuple[str, int], b: tuple[str, int]) -> str:
-    """Name of a change of regime (period doublings are told apart by the period ratio)."""
-    (ra, ka), (rb, kb) = a, b
-    if ra == "cycle" and rb == "cycle":
-        return "period-doubling" if kb == 2 * ka else "period-halving" if ka == 2 * kb else "period-change"
-    if ra == "equilibrium" and rb == "cycle":
-        return "onset-of-cycles"
-    if ra == "cycle" and rb == "equilibrium":
-        return "cycles-cease"
-    if rb == "chaotic":
-        return "onset-of-chaos"
-    if ra == "chaotic" and rb in ("cycle", "equilibrium"):
-        return "return-to-order"
-    if rb == "extinction":
-        return "extinction"
-    if ra == "extinction":
-        return "persistence"
-    return f"{ra}-to-{rb}"
-
-
-def nominal_values(case: Case) -> dict[str, float]:
-    """Every parameter at its prior median (fixed ones at their value)."""
-    out = {}
-    for p in case.parameters:
-        out[p.name] = float(p.prior.value) if not p.uncertain else float(p.prior.ppf(np.array([0.5]))[0])
-    return out
-
-
-def scan_target(case: Case, name: str, option_name: str | None):
-    """Resolve a scanned quantity: a declared parameter, or ``INTERVENTION.FIELD`` of the option.
-
-    Returns a function ``value -> (case', values)`` giving the case and parameter values with
-    the scanned quantity set.
-    """
-    base = nominal_values(case)
-    if name in base:
-        return lambda v: (case, {**base, name: float(v)})
-    if "." in name:
-        iv_name, fld = name.rsplit(".", 1)
-        ivs = {iv.name: iv for iv in case.interventions}
-        if iv_name in ivs:
-            iv = ivs[iv_name]
-            allowed = [f for f in ("rate", "fraction", "factor") if getattr(iv, f) is not None]
-            if fld not in allowed:
-                raise CaseError("command line", "--parameter",
-                                f"intervention {iv_name!r} ({iv.kind}) has no intensity {fld!r}; use one of: {', '.join(allowed) or 'none'}")
-            opt = next((o for o in case.options if o.name == option_name), None)
-            if opt is None or iv_name not in opt.interventions:
-                raise CaseError("command line", "--option",
-                                f"scanning {name!r} needs --option naming an option that uses intervention {iv_name!r}")
-            def at(v):
-                new_iv = replace(iv, **{fld: float(v)})
-                return replace(case, interventions=tuple(new_iv if x.name == iv_name else x for x in case.interventions)), base
-            return at
-    choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in ("rate", "fraction", "factor")
-                              if getattr(iv, f) is not None]
-    raise CaseError("command line", "--parameter", f"unknown quantity {name!r}; choose a parameter or an intervention intensity: {', '.join(choices)}")
-
-
-def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -> Controls:
-    """Controls with every press intervention of the option in force (events are ignored).
-
-    ``values`` maps parameter names to ndarray (M,) or scalars.
-    """
-    from .simulate import _controls
-
-    S = len(case.species)
-    if option_name is None:
-        return Controls.neutral(M, S)
-    opt = next(o for o in case.options if o.name == option_name)
-    always = tuple(replace(iv, start=-np.inf, end=np.inf) if iv.name in opt.interventions else iv
-                   for iv in case.interventions)
-    vals = {k: np.broadcast_to(np.asarray(v, float), (M,)).copy() for k, v in values.items()}
-    return _controls(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
-
-
-def _scan_rows(parameter, v, out, i, keep_sections):
-    d = out["diagnosis"]
-    reg, per, lam = out["regime"][i], int(out["period"][i]), float(out["lyapunov"][i])
-    sec = d.sections[i][-keep_sections:]
-    rows = [dict(parameter=parameter, value=float(v), section_value=float(x), regime=reg, period=per, lyapunov=lam)
-            for x in sec] or [dict(parameter=parameter, value=float(v), section_value=np.nan, regime=reg, period=per, lyapunov=lam)]
-    pt = dict(parameter=parameter, value=float(v), regime=reg, period=per, lyapunov=lam,
-              horizon=float(out["horizon"][i]), n_section=int(d.sections[i].size), failed=bool(d.failed[i]),
-              failure=FAILURE_REASONS.get(int(d.reason[i]), ""))
-    return rows, pt
-
-
-@dataclass(frozen=True)
-class ScanTask:
-    """Scan values to run side by side from the case's initial state (a part of a parallel scan)."""
-
-    case: Case
-    parameter: str
-    grid: np.ndarray
-    settings: DynamicsSettings
-    option: str | None
-    section: int
-
-
-def scan_values(task: ScanTask) -> tuple[list, list]:
-    """Diagnose every value of a parallel scan part as one ensemble (a worker's function).
-
-    Returns the section rows and the per-value points, as :func:`scan_web` tabulates them.
-    """
-    case, grid, s, option = task.case, task.grid, task.settings, task.option
-    at = scan_target(case, task.parameter, option)
-    web = build_web(case)
-    level = np.array([sp.quasi_extinction for sp in case.species], float)
-    K = grid.size
-    per_value = [at(v) for v in grid]
-    vals = {k: np.array([b[k] for _, b in per_value]) for k in per_value[0][1]}
-    cases = [cs for cs, _ in per_value]
-    p = web_params(cases[0], vals, K)
-    if cases[0] is not case:  # an intervention intensity: controls differ per value
-        cs_list = [steady_controls(cs, option, {k: x[i] for k, x in vals.items()}, 1) for i, cs in enumerate(cases)]
-        c = Controls(*(np.concatenate([getattr(ci, f) for ci in cs_list]) for f in Controls.__dataclass_fields__))
-    else:
-        c = steady_controls(case, option, vals, K)
-    out = diagnose_web(web, p, c, p.initial, s, level, section=task.section)
-    rows, pts = [], []
-    for i, v in enumerate(grid):
-        r, pt = _scan_rows(task.parameter, v, out, i, 4 * s.max_period)
-        rows += r
-        pts.append(pt)
-    return rows, pts
-
-
-def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, option: str | None = None,
-             section: str | None = None, continuation: bool = True, progress=None, executor=None):
-    """Bifurcation scan of one quantity with every other parameter at its prior median.
-
-    ``section`` names the species whose maxima form the Poincaré section (default: the last
-    declared species); an unknown name raises :class:`CaseError` for ``--section``.
-
-    With ``continuation`` each value starts where the previous one ended (so a branch is
-    followed and hysteresis shows); without it all values run side by side as one ensemble
-    from the case's initial state (much faster; each value finds its own attractor), split
-    among ``executor``'s workers when one is given.
-
-    Returns
-    -------
-    scan : DataFrame (parameter, value, section_value, regime, period, lyapunov), one row per
-        kept section point (one row with NaN section_value when there are none)
-    points : DataFrame (parameter, value, regime, period, lyapunov, horizon, n_section, failed, failure)
-    transitions : DataFrame, see :func:`transitions`
-    """
-    if option is not None and option not in [o.name for o in case.options]:
-        raise CaseError("command line", "--option", f"unknown option {option!r}; declared: {', '.join(o.name for o in case.options) or 'none'}")
-    grid = np.asarray(grid, float)
-    section, _ = section_species(case, section)
-    at = scan_target(case, parameter, option)
-    web = build_web(case)
-    level = np.array([sp.quasi_extinction for sp in case.species], float)
-    keep = 4 * s.max_period
-    rows, pts = [], []
-    if continuation:
-        y = None
-        for i, v in enumerate(grid):
-            cs, base = at(v)
-            p = web_params(cs, {k: np.array([x]) for k, x in base.items()}, 1)
-            c = steady_controls(cs, option, base, 1)
-            y0 = p.initial if y is None or not np.isfinite(y).all() else y
-            out = diagnose_web(web, p, c, y0, s, level, section=section)
-            y = out["diagnosis"].final
-            r, pt = _scan_rows(parameter, v, out, 0, keep)
-            rows += r
-            pts.append(pt)
-            if progress:
-                progress(f"scan {parameter}: {i + 1}/{len(grid)} ({pt['regime']}, λ={pt['lyapunov']:.3g})")
-    else:
-        from .execute import InProcess
-
-        executor = executor or InProcess()
-        # values are independent here: split them among the workers, put the parts back in order
-        parts = [g for g in np.array_split(grid, min(executor.workers, grid.size)) if g.size]
-        tasks = [ScanTask(case, parameter, g, s, option, section) for g in parts]
-        done = dict(executor.map(scan_values, tasks))
-        for i in range(len(parts)):
-            rows += done[i][0]
-            pts += done[i][1]
-    points = pd.DataFrame(pts)
-    return (pd.DataFrame(rows), points,
-            transitions(parameter, points.value.to_numpy(), points.regime.to_numpy(), points.period.to_numpy()))
-
-
 def settings_record(s: DynamicsSettings, **extra) -> dict:
-    """The settings and thresholds as a JSON-ready dict (for dynamics.json)."""
+    """The settings and verdict rules as a JSON-ready dict (for dynamics.json)."""
     rec = asdict(s)
-    rec["thresholds"] = dict(eq_tol=s.eq_tol, period_tol=s.period_tol, max_period=s.max_period, lambda_tol=s.lambda_tol)
-    rec["regime_rules"] = __doc__.split("The regime follows")[1].split("The predictability")[0].strip()
+    rec["thresholds"] = asdict(s.rules)
+    rec["windows"] = ("declared" if s.window is not None else
+                      "from each member's time scales (eigenvalues at the nearest equilibrium, else the slowest "
+                      "per-capita rate), rounded up to a power of two of the time unit; checked by doubling")
+    rec["regime_rules"] = rg.__doc__.split("Rules (in this order):")[1].strip()
+    rec["undetermined_reasons"] = {r.value: r.text for r in rg.Reason}
     rec.update(extra)
     return rec
 
@@ -872,116 +565,5 @@ def logistic_map_scan(r: np.ndarray, s: DynamicsSettings, transient: int = 20000
     r = np.asarray(r, float)
     lyap, orbit = lyapunov_map(lambda x: r * x * (1 - x), lambda x: r * (1 - 2 * x), np.full(r.size, 0.3),
                                transient=transient, n=n)
-    regime, period = classify(lyap, list(orbit), np.ones(r.size), np.zeros(r.size, bool),
-                              s, flow=False)
+    regime, period = rg.map_verdict(lyap, orbit, s.rules)
     return regime, period, lyap, orbit
-
-
-@dataclass(frozen=True)
-class DiagnoseTask:
-    """One option's diagnosis in an assessment: members' parameters, controls and start states."""
-
-    case: Case
-    params: WebParams
-    controls: Controls
-    y0: np.ndarray
-    settings: DynamicsSettings
-    level: np.ndarray
-    section: int
-
-
-def diagnose_task(task: DiagnoseTask) -> dict:
-    """:func:`diagnose_web` on one task (a worker's function)."""
-    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
-                       section=task.section)
-    out.pop("diagnosis")  # the tables need only the per-member verdicts
-    return out
-
-
-def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
-                 progress=None, section: str | None = None, executor=None):
-    """Diagnose every option's end-of-horizon state (the assessment's dynamics stage).
-
-    ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
-
-    A capped subset of members (the first ``member_cap`` by index) is continued from each
-    option's state at the horizon with the controls in force just before it, deterministically
-    (noise and events off). ``section`` names the species whose maxima form the Poincaré
-    section (default: the last declared species).
-
-    Returns
-    -------
-    tables : dict of str -> DataFrame
-        ``regimes``, ``regime_shares``, ``risk_by_regime`` (columns as in DEVELOPERS.md).
-    record : dict
-        Settings for dynamics.json.
-    """
-    from .execute import InProcess, count
-    from .simulate import _controls
-
-    sec_col, sec_name = section_species(case, section)
-    web = build_web(case)
-    S = web.n_species
-    base = runs["baseline"]
-    M = base.members
-    sel = np.arange(min(M, settings.member_cap if settings else DynamicsSettings.__dataclass_fields__['member_cap'].default))
-    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
-    if settings is None:
-        # Inside an assessment the diagnosis is a screen: a few horizons of run-in and window,
-        # at the integrator's usual tolerance (common practice, no source); `impact scan`
-        # keeps the longer defaults.
-        s0 = default_settings(case, sub, base.final[sel])
-        H = case.horizon
-        s = default_settings(case, sub, base.final[sel], rtol=1e-6,
-                             transient=min(s0.transient, 2.0 * H), window=min(s0.window, 3.0 * H),
-                             sample_dt=max(s0.sample_dt, min(s0.window, 3.0 * H) / 300),
-                             lambda_tol=10.0 / min(s0.window, 3.0 * H))
-    else:
-        s = settings
-    level = np.array([sp.quasi_extinction for sp in case.species], float)
-    H = case.horizon
-    t_last = H - 1e-9 * max(H, 1.0)
-    opts = {None: "baseline", **{o: o.name for o in case.options}}
-    reg_rows, risk_rows, share_rows = [], [], []
-    counts = {}
-    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-    tasks = [DiagnoseTask(case, sub, _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
-                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
-    results = {}
-    count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
-    for i, out in (executor or InProcess()).map(diagnose_task, tasks):
-        results[i] = out
-        count(progress, "dynamics: diagnosing options", len(results), len(tasks), "options")
-    for k, (opt, name) in enumerate(opts.items()):
-        run = runs[name]
-        out = results[k]
-        regime = np.where(run.failed[sel], "failed", out["regime"])
-        counts[name] = {"diagnosed": int(sel.size), "failed": int((regime == "failed").sum())}
-        frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],
-                              "lyapunov": out["lyapunov"], "horizon_time": out["horizon"], "extinct": out["extinct"],
-                              "extinct_species": out["extinct_species"]})
-        reg_rows.append(frame)
-        for rg, g in frame.groupby("regime", sort=False):
-            share_rows.append(dict(option=name, regime=rg, share=len(g) / len(frame), count=len(g),
-                                   lyapunov_median=float(g.lyapunov.median()), horizon_median=float(g.horizon_time.median())))
-            rows = sel[(frame.regime == rg).to_numpy()]
-            for j, sp in enumerate(case.species):
-                mins = run.minimum[rows, run.slot(H), j]
-                ok = np.isfinite(mins)
-                if sp.present:
-                    risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="quasi_extinction",
-                                          value=float((mins[ok] < sp.quasi_extinction).mean()) if ok.any() else np.nan))
-                    risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="expected_minimum",
-                                          value=float(mins[ok].mean()) if ok.any() else np.nan))
-                fin = run.final[rows, j]
-                risk_rows.append(dict(option=name, regime=rg, species=sp.name, metric="final_median",
-                                      value=float(np.nanmedian(fin)) if np.isfinite(fin).any() else np.nan))
-    tables = {"regimes": pd.concat(reg_rows, ignore_index=True),
-              "regime_shares": pd.DataFrame(share_rows),
-              "risk_by_regime": pd.DataFrame(risk_rows, columns=["option", "regime", "species", "metric", "value"])}
-    record = settings_record(s, members_diagnosed=int(sel.size), member_selection="first members by index, at most member_cap",
-                             start="each option's state at the horizon", controls="press controls in force just before the horizon",
-                             noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
-                             counts=counts, extinct="extinct is true when a species present at the start stays below its "
-                                                    "quasi-extinction level over the whole window; extinct_species names them")
-    return tables, record

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .cautions import cautions
+from .cautions import cautions, share_text
 from .errors import CaseError, ReadError, WriteError
 from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
@@ -48,7 +48,7 @@ TEXT_COLUMNS = {
     "option", "species", "metric", "unit", "role", "direct", "statistic", "interval", "objective", "measure", "event",
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
-    "kind", "failure", "failed", "converged", "uncertain",
+    "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
 }
 RISK_METRICS = (
     ("quasi_extinction", "Quasi-extinction probability"),
@@ -66,7 +66,7 @@ KIND_STYLE = {
 }
 OPTION_COLOURS = ("#d35400", "#2471a3", "#7d3c98", "#117a65", "#b7950b", "#a93226")
 BASELINE_COLOUR = "#566573"
-REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "irregular": "#f39c12",
+REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "aperiodic": "#f39c12", "undetermined": "#aab7b8",
                   "chaotic": "#c0392b", "extinction": "#1c2833"}
 
 
@@ -563,9 +563,10 @@ def _dynamics_context(res: Results, assets: Assets) -> dict | None:
     sh = d.get("regime_shares")
     if sh is not None and not sh.empty:
         ctx["figures"].append(dict(src=assets.add("regimes.svg", regime_figure(sh), "image/svg+xml"),
-                                   caption="Share of members in each dynamical regime, per option."))
+                                   caption="Share of screened members in each dynamical regime, per option "
+                                           "(long-run attractor, noise off; intervals in regime_shares.csv)."))
         for _, r in sh.iterrows():
-            ctx["shares"].append(dict(option=r.option, regime=r.regime, share=fmt_prob(r.share), count=fmt_num(r["count"]),
+            ctx["shares"].append(dict(option=r.option, regime=r.regime, share=share_text(r), count=fmt_num(r["count"]),
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
     rg = d.get("regimes")
     if rg is not None and not rg.empty:

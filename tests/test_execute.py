@@ -114,11 +114,12 @@ def test_dask_cluster_reproduces_in_process_tables(web, reference, tmp_path, clu
 def test_pool_reproduces_the_in_process_dynamics_tables(web):
     import pandas as pd
 
-    from impact.dynamics import DynamicsSettings, assess_stage
+    from impact.dynamics import DynamicsSettings
+    from impact.screen import assess_stage
 
     case, ens = web
     runs = assess_members(case, ens, case.seed)
-    s = DynamicsSettings(transient=10.0, window=20.0, sample_dt=0.5, member_cap=4, lambda_tol=0.5)
+    s = DynamicsSettings(transient=10.0, window=20.0, sample_dt=0.5, screen_members=4)
     here, _ = assess_stage(case, ens.params, ens.values, runs, settings=s)
     pool = LocalPool(2)
     try:

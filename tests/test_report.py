@@ -265,7 +265,7 @@ def staged_text(results, tmp_path_factory):
     "didnotconverge",          # and the warning up front,
     "outputsperrun:",          # aggregated to one line naming every run it concerns
     "1of1",
-    "33.3%ofmembers,medianhorizon11.5",  # regime share and horizon read from regime_shares.csv
+    "33.3%ofmemberschaotic",  # regime share read from regime_shares.csv
     "predictabilityhorizonisshorterthanthe30",  # compared with the assessment horizon
     "Bifurcationdiagram",
     *[_squash(p.name) for p in CASE.uncertain],

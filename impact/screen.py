@@ -1,0 +1,192 @@
+"""The assessment's dynamics stage: a regime screen of the ensemble, with intervals on the shares.
+
+Two views, each labelled in the tables:
+
+* the long-run attractor (noise off): every kept member, or a random subset of
+  ``screen_members`` drawn from the seed, is continued from each option's state at the
+  assessment horizon under the press controls in force just before it, deterministically, and
+  diagnosed by :func:`impact.diagnose.diagnose_web` (windows from each member's own time
+  scales, never from the case horizon);
+* the assessment horizon (noise as in the risk): the oscillation amplitude (max − min over
+  [0, horizon]) of every species in every kept member's own risk run.
+
+Shares of each regime carry a Wilson score interval (:func:`impact.regimes.share_interval`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from . import regimes as rg
+from .case import Case
+from .diagnose import diagnose_web
+from .dynamics import PURPOSE_DYNAMICS, DynamicsSettings, declared_settings, section_species, settings_record
+from .model import Controls, WebParams, build_web
+
+SHARE_CONFIDENCE = 0.95
+# The screen's defaults trade each member's own window for one ensemble run per option (the
+# median member's needs), short sub-windows (one relaxation time), periods up to 4 and windows
+# of at most 100 slowest per-capita time scales, to bound its cost (see README, measured figures).
+SCREEN = dict(screen_members=300, shared_plan=0.5, sub_relaxations=1.0, max_period=4, rtol=1e-6,
+              max_window_rates=100.0)
+ATTRACTOR = "long-run attractor, noise off"
+HORIZON = "assessment horizon, noise as in the risk"
+
+
+def screened_members(seed: int, M: int, n: int) -> np.ndarray:
+    """The ``n`` members (of ``M``) with the smallest per-member uniform key, ascending; all if n ≥ M.
+
+    Each member's key comes from ``SeedSequence(seed, spawn_key=(member, PURPOSE_DYNAMICS))``
+    alone, so whether a member is screened never depends on batches or workers.
+    """
+    if n >= M:
+        return np.arange(M)
+    keys = np.array([np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(i, PURPOSE_DYNAMICS))))
+                     .random() for i in range(M)])
+    return np.sort(np.argsort(keys, kind="stable")[:n])
+
+
+@dataclass(frozen=True)
+class DiagnoseTask:
+    """One option's diagnosis in an assessment: members' parameters, controls and start states."""
+
+    case: Case
+    params: WebParams
+    controls: Controls
+    y0: np.ndarray
+    settings: DynamicsSettings
+    level: np.ndarray
+    section: int
+
+
+def diagnose_task(task: DiagnoseTask) -> dict:
+    """:func:`diagnose_web` on one task (a worker's function); drops what the tables do not need."""
+    out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
+                       section=task.section)
+    for key in ("sections", "final"):
+        out.pop(key)
+    return out
+
+
+def share_table(frame: pd.DataFrame, basis: str) -> list[dict]:
+    """Rows of regime_shares for one option's regimes table (Wilson intervals on each share)."""
+    rows = []
+    n = len(frame)
+    for regime, g in frame.groupby("regime", sort=False):
+        lo, hi = rg.share_interval(len(g), n, SHARE_CONFIDENCE)
+        rows.append(dict(option=frame.option.iloc[0], regime=regime, share=len(g) / n, share_low=float(lo),
+                         share_high=float(hi), count=len(g), diagnosed=n,
+                         lyapunov_median=float(g.lyapunov.median()), horizon_median=float(g.horizon_time.median()),
+                         shortfall_max=float(g.shortfall.max()), basis=basis))
+    return rows
+
+
+def horizon_amplitudes(case: Case, name: str, run) -> pd.DataFrame:
+    """Amplitude (max − min over [0, horizon], noise as in the risk) per kept member and species."""
+    H = run.slot(case.horizon)
+    amp = run.maximum[:, H, :len(case.species)] - run.minimum[:, H, :len(case.species)]
+    frame = pd.DataFrame(amp, columns=[f"amplitude_{sp.name}" for sp in case.species])
+    frame.insert(0, "member", np.arange(run.members))
+    frame.insert(0, "option", name)
+    frame["basis"] = HORIZON
+    return frame
+
+
+def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
+                 progress=None, section: str | None = None, executor=None, seed: int = 0):
+    """The regime screen of every option (the assessment's dynamics stage).
+
+    ``runs`` maps option names to :class:`impact.assess.Summary` (per-member summaries).
+
+    Returns
+    -------
+    tables : dict of str -> DataFrame
+        ``regimes``, ``regime_shares``, ``risk_by_regime``, ``horizon_amplitude`` (columns as in
+        DEVELOPERS.md).
+    record : dict
+        Settings for dynamics.json.
+    """
+    from .execute import InProcess, count
+    from .simulate import _controls
+
+    s, declared = (settings, {}) if settings is not None else declared_settings(case, SCREEN)
+    sec_col, sec_name = section_species(case, section)
+    S = len(case.species)
+    base = runs["baseline"]
+    M = base.members
+    sel = screened_members(seed, M, s.screen_members)
+    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
+    level = np.array([sp.quasi_extinction for sp in case.species], float)
+    H = case.horizon
+    t_last = H - 1e-9 * max(H, 1.0)
+    opts = {None: "baseline", **{o: o.name for o in case.options}}
+    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
+    tasks = [DiagnoseTask(case, sub, _controls(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
+                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
+    results = {}
+    count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
+    for i, out in (executor or InProcess()).map(diagnose_task, tasks):
+        results[i] = out
+        count(progress, "dynamics: diagnosing options", len(results), len(tasks), "options")
+    reg_rows, share_rows, risk_rows, amp_rows, counts = [], [], [], [], {}
+    for k, (opt, name) in enumerate(opts.items()):
+        run, out = runs[name], results[k]
+        frame = regime_frame(case, name, sel, run.failed[sel], out, H)
+        counts[name] = {"diagnosed": int(sel.size), "failed": int((frame.regime == "failed").sum()),
+                        "undetermined": int((frame.regime == "undetermined").sum())}
+        reg_rows.append(frame)
+        share_rows += share_table(frame, ATTRACTOR)
+        risk_rows += risk_by_regime(case, name, run, sel, frame)
+        amp_rows.append(horizon_amplitudes(case, name, run))
+    tables = {"regimes": pd.concat(reg_rows, ignore_index=True),
+              "regime_shares": pd.DataFrame(share_rows),
+              "risk_by_regime": pd.DataFrame(risk_rows, columns=["option", "regime", "species", "metric", "value"]),
+              "horizon_amplitude": pd.concat(amp_rows, ignore_index=True)}
+    record = settings_record(
+        s, members_diagnosed=int(sel.size), members_kept=int(M),
+        member_selection=("every kept member" if sel.size == M else
+                          f"a random subset of {sel.size} of {M} kept members (seed {seed}, the same members for every option)"),
+        basis=ATTRACTOR, start="each option's state at the horizon", controls="press controls in force just before the horizon",
+        noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
+        share_interval=f"Wilson score interval, {SHARE_CONFIDENCE:.0%}", assessment_horizon=H,
+        horizon_amplitude=HORIZON, counts=counts, declared=declared,
+        shortfall="assessment horizon minus the predictability horizon where shorter (0: predictable over the whole assessment)",
+        extinct="extinct is true when a species present at the start stays below its quasi-extinction level over the whole "
+                "window; extinct_species names them")
+    return tables, record
+
+
+def regime_frame(case: Case, name: str, sel: np.ndarray, failed_run: np.ndarray, out: dict, H: float) -> pd.DataFrame:
+    """regimes.csv rows of one option."""
+    regime = np.where(failed_run, "failed", out["regime"])
+    frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],
+                          "lyapunov": out["lyapunov"], "lyapunov_se": out["lyapunov_se"], "horizon_time": out["horizon"],
+                          "extinct": out["extinct"], "extinct_species": out["extinct_species"], "reason": out["reason"],
+                          "envelope_rate": out["envelope_rate"], "window": out["window"],
+                          "shortfall": rg.predictability_shortfall(out["horizon"], H)})
+    for j, sp in enumerate(case.species):
+        frame[f"amplitude_{sp.name}"] = out["amplitude"][:, j]
+    return frame
+
+
+def risk_by_regime(case: Case, name: str, run, sel: np.ndarray, frame: pd.DataFrame) -> list[dict]:
+    """Risk metrics over the members of each regime (one option)."""
+    rows = []
+    H = case.horizon
+    for regime in dict.fromkeys(frame.regime):
+        members = sel[(frame.regime == regime).to_numpy()]
+        for j, sp in enumerate(case.species):
+            mins = run.minimum[members, run.slot(H), j]
+            ok = np.isfinite(mins)
+            if sp.present:
+                rows.append(dict(option=name, regime=regime, species=sp.name, metric="quasi_extinction",
+                                 value=float((mins[ok] < sp.quasi_extinction).mean()) if ok.any() else np.nan))
+                rows.append(dict(option=name, regime=regime, species=sp.name, metric="expected_minimum",
+                                 value=float(mins[ok].mean()) if ok.any() else np.nan))
+            fin = run.final[members, j]
+            rows.append(dict(option=name, regime=regime, species=sp.name, metric="final_median",
+                             value=float(np.nanmedian(fin)) if np.isfinite(fin).any() else np.nan))
+    return rows
