@@ -93,12 +93,6 @@ def _combine(K, coeffs, tmp):
     return out
 
 
-def _take_rows(keep, *arrays):
-    """Rows ``keep`` (bool mask) of each array; ``np.take`` is far faster than fancy indexing."""
-    ki = np.flatnonzero(keep)
-    return [np.take(a, ki, axis=0) for a in arrays]
-
-
 def _as_tolerance(value, n, name):
     arr = np.asarray(value, dtype=float)
     if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
