@@ -10,6 +10,7 @@ row ``i`` of its output may depend on row ``i`` of its input and on ``members[i]
 
 from __future__ import annotations
 
+import math
 import warnings
 from dataclasses import dataclass
 
@@ -57,6 +58,18 @@ class SegmentResult:
     nfev: int
     nsteps: np.ndarray
     v: np.ndarray | None = None
+
+
+def libm_power(x, p: float) -> np.ndarray:
+    """``x ** p`` elementwise through the C library's ``pow``, as compiled code computes it.
+
+    numpy's vectorised power may differ from ``pow`` in the last bit on CPUs with wide SIMD units;
+    the step controller raises errors to a power, so one differing bit in a step size would part
+    the reference from the compiled kernel. ``0 ** p`` for ``p < 0`` is ``inf`` (as numpy).
+    """
+    x = np.asarray(x, dtype=float)
+    flat = [math.pow(v, p) if v != 0 or p >= 0 else math.inf for v in x.ravel().tolist()]
+    return np.array(flat, dtype=float).reshape(x.shape)
 
 
 def _rms_rows(x):
@@ -127,7 +140,7 @@ def _select_initial_step(fun, t0, y0, f0, members, t_bound, direction, order, rt
         d2 = _rms_rows((f1 - f0) / scale) / h0
         small = (d1 <= 1e-15) & (d2 <= 1e-15)
         h1 = np.where(small, np.maximum(1e-6, h0 * 1e-3),
-                      (0.01 / np.maximum(d1, d2)) ** (1 / (order + 1)))
+                      libm_power(0.01 / np.maximum(d1, d2), 1 / (order + 1)))
     h = np.minimum(np.minimum(100 * h0, h1), interval)
     # A non-finite f1 gives NaN here; start tiny and let the controller grow the step.
     h = np.where(np.isfinite(h) & (h > 0), h, np.minimum(1e-6, interval))
@@ -252,7 +265,7 @@ def _next_step(err_norm, hs, rejected, hmax):
     finite = np.isfinite(err_norm)
     accept = err_norm < 1
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        factor = SAFETY * err_norm ** ERROR_EXPONENT
+        factor = SAFETY * libm_power(err_norm, ERROR_EXPONENT)
         grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
         grow = np.where(rejected, np.minimum(1.0, grow), grow)
         shrink = np.where(finite, np.maximum(MIN_FACTOR, factor), MIN_FACTOR)

@@ -1,0 +1,336 @@
+"""Compiled per-member Dormand-Prince kernel for the food web (numba).
+
+One member at a time is integrated through a whole segment with its state in small scratch
+arrays, interpreting a compact table of the web's structure (:func:`impact.engine.web.pack`): the
+kernel is compiled once for every web and cached on disk (``cache=True``), so a case never pays
+compilation for its own structure. Every floating-point operation mirrors, in the same order, the
+numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.model.WebRHS`),
+so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
+Members are independent by construction: nothing is shared between rows.
+
+Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any``, then per feeding link
+consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc) and mutualism
+pairs (2·U). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow (S each),
+a, ah, e (L each), alpha (Cc), beta, H (U each), decay (1).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
+                      DormandPrince54, Failure)
+
+HEADER = 7  # entries of the structure table before the per-link columns
+
+_A = DormandPrince54.A.copy()
+_B = DormandPrince54.B.copy()
+_E = DormandPrince54.E.copy()
+_STAGES = DormandPrince54.n_stages
+_ORDER_EXP = 1.0 / (DormandPrince54.error_estimator_order + 1)
+_NONFINITE = int(Failure.NONFINITE)
+_BLOWUP = int(Failure.BLOWUP)
+_UNDERFLOW = int(Failure.UNDERFLOW)
+_TOO_MANY = int(Failure.TOO_MANY_STEPS)
+
+_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+
+
+@_jit
+def _nmin(a, b):
+    """numpy.minimum for scalars (NaN propagates)."""
+    if a != a or b != b:
+        return a + b
+    return a if a <= b else b
+
+
+@_jit
+def _nmax(a, b):
+    """numpy.maximum for scalars (NaN propagates)."""
+    if a != a or b != b:
+        return a + b
+    return a if a >= b else b
+
+
+@_jit
+def web_rhs(st, cf, y, out, work):
+    """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
+
+    ``st`` structure table, ``cf`` the member's coefficient row, ``y`` (n,), ``out`` (n,),
+    ``work`` (5, n) scratch (births, loss, denominators, crowding or boost, seen flags).
+    """
+    S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
+    o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
+    o_a = 5 * S
+    o_ah, o_e = o_a + L, o_a + 2 * L
+    o_al = o_a + 3 * L
+    o_be = o_al + Cc
+    o_H = o_be + U
+    o_dec = o_H + U
+    lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
+    cp = HEADER + 4 * L
+    up = cp + 2 * Cc
+    births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
+    for i in range(S):
+        births[i] = cf[o_rpos + i] * y[i]
+    if U > 0:
+        for i in range(S):
+            crowd[i] = 1.0  # used as the mutualism boost here, as crowding below
+        for u in range(U):
+            ben, par = st[up + 2 * u], st[up + 2 * u + 1]
+            P = y[par]
+            crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
+        for i in range(S):
+            births[i] *= crowd[i]
+    if L > 0:
+        for i in range(n):
+            loss[i] = 0.0
+            seen[i] = 0.0
+        for l in range(L):
+            if st[l1 + l] == 0:
+                R = y[st[lr + l]]
+                Rq = R * R if st[lp + l] == 2 else R
+                term = cf[o_ah + l] * Rq
+                j = st[lc + l]
+                if seen[j] == 0.0:
+                    den[j] = term + 1.0
+                    seen[j] = 1.0
+                else:
+                    den[j] = term + den[j]
+        for l in range(L):
+            R = y[st[lr + l]]
+            Rq = R * R if st[lp + l] == 2 else R
+            j = st[lc + l]
+            if st[l1 + l] == 1:
+                I = cf[o_a + l] * Rq
+            else:
+                I = cf[o_a + l] * Rq / den[j]
+            eaten = I * y[j]
+            births[j] += cf[o_e + l] * eaten
+            loss[st[lr + l]] += eaten
+    for i in range(S):
+        out[i] = cf[i] * births[i]
+    if logistic:
+        for i in range(S):
+            crowd[i] = y[i]
+        for k in range(Cc):
+            i, j = st[cp + 2 * k], st[cp + 2 * k + 1]
+            crowd[i] += cf[o_al + k] * y[j]
+        for i in range(S):
+            out[i] -= cf[o_dens + i] * y[i] * crowd[i]
+    for i in range(S):
+        out[i] += cf[o_lin + i] * y[i]
+    if L > 0:
+        for i in range(S):
+            out[i] -= loss[i]
+    if carrion:
+        inflow = cf[o_inf] * y[0]
+        for i in range(1, S):
+            inflow = inflow + cf[o_inf + i] * y[i]
+        dC = inflow - cf[o_dec] * y[S]
+        if L > 0:
+            dC -= loss[S]
+        out[S] = dC
+
+
+@_jit
+def _rms(x, n):
+    acc = x[0] * x[0]
+    for j in range(1, n):
+        acc += x[j] * x[j]
+    return math.sqrt(acc / n)
+
+
+@_jit
+def _initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
+    """Per-member copy of :func:`impact.integrate._select_initial_step` (HNW 1993, Sec. II.4)."""
+    n = y0.shape[0]
+    interval = abs(t1 - t0)
+    for j in range(n):
+        sc[j] = atol[j] + abs(y0[j]) * rtol[j]
+    for j in range(n):
+        y1[j] = y0[j] / sc[j]
+    d0 = _rms(y1, n)
+    for j in range(n):
+        y1[j] = f0[j] / sc[j]
+    d1 = _rms(y1, n)
+    if d0 < 1e-5 or d1 < 1e-5:
+        h0 = 1e-6
+    else:
+        h0 = 0.01 * d0 / d1
+    h0 = _nmin(h0, interval)
+    for j in range(n):
+        y1[j] = y0[j] + (h0 * direction) * f0[j]
+    web_rhs(st, cf, y1, f1, work)
+    for j in range(n):
+        y1[j] = (f1[j] - f0[j]) / sc[j]
+    d2 = _rms(y1, n) / h0
+    if d1 <= 1e-15 and d2 <= 1e-15:
+        h1 = _nmax(1e-6, h0 * 1e-3)
+    else:
+        h1 = (0.01 / _nmax(d1, d2)) ** _ORDER_EXP
+    h = _nmin(_nmin(100 * h0, h1), interval)
+    if not (math.isfinite(h) and h > 0):
+        h = min(1e-6, interval)
+    return h
+
+
+@_jit
+def _finite(x):
+    for v in x:
+        if not math.isfinite(v):
+            return False
+    return True
+
+
+@_jit
+def _combine(K, coeffs, count, out):
+    """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
+    order of :func:`impact.integrate._combine`."""
+    n = out.shape[0]
+    first = True
+    for s in range(count):
+        c = coeffs[s]
+        if c == 0:
+            continue
+        if first:
+            for j in range(n):
+                out[j] = K[s, j] * c
+            first = False
+        else:
+            for j in range(n):
+                out[j] += K[s, j] * c
+
+
+@_jit
+def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin, ymax, h_out,
+            reason, nsteps):
+    """Integrate every member from ``t0`` to ``t1``; fills the output arrays, returns the number
+    of member right-hand-side evaluations.
+
+    ``y0`` (M, n) finite non-negative states, ``h0`` (M,) first steps (NaN: choose), ``coef``
+    (M, P) coefficient rows; outputs as the fields of :class:`impact.integrate.SegmentResult`
+    (``ymin``/``ymax`` must hold ``y0`` on entry).
+    """
+    M, n = y0.shape
+    direction = 1.0 if t1 > t0 else -1.0
+    K = np.empty((_STAGES + 1, n))
+    work = np.empty((5, n))
+    y, y_new, tmp, sc = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+    nfev = 0
+    for m in range(M):
+        cf = coef[m]
+        for j in range(n):
+            y[j] = y0[m, j]
+        if not _finite(y):
+            reason[m] = _NONFINITE
+            continue
+        web_rhs(st, cf, y, K[0], work)
+        nfev += 1
+        if not _finite(K[0]):
+            reason[m] = _NONFINITE
+            continue
+        h = h0[m]
+        if not (math.isfinite(h) and h > 0):
+            h = _initial_step(st, cf, t0, t1, y, K[0], rtol, atol, direction, work, tmp, K[1], sc)
+            nfev += 1
+        h = _nmin(h, abs(t1 - t0))
+        nfev += _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
+                        max_steps, blowup, m, y_out, ymin, ymax, h_out, reason, nsteps)
+    return nfev
+
+
+@_jit
+def _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol, max_steps,
+            blowup, m, y_out, ymin, ymax, h_out, reason, nsteps):
+    """Step loop of one member (state in ``y``, derivative in ``K[0]``); returns evaluations."""
+    n = y.shape[0]
+    t = t0
+    rejected = False
+    last_nonfinite = False
+    hgood = math.nan
+    nacc = 0
+    nfev = 0
+    code = 0
+    while True:
+        min_step = MIN_STEP_ULPS * abs(np.nextafter(t, direction * np.inf) - t)
+        if not rejected:
+            h = _nmax(h, min_step)
+        if h < min_step:
+            code = _NONFINITE if last_nonfinite else _UNDERFLOW
+            break
+        t_new = t + direction * h
+        clipped = direction * (t_new - t1) >= 0
+        if clipped:
+            t_new = t1
+        hs = t_new - t
+        for s in range(1, _STAGES):
+            _combine(K, _A[s], s, tmp)
+            for j in range(n):
+                tmp[j] = tmp[j] * hs + y[j]
+            web_rhs(st, cf, tmp, K[s], work)
+        _combine(K, _B, _STAGES, y_new)
+        for j in range(n):
+            y_new[j] = y_new[j] * hs + y[j]
+        web_rhs(st, cf, y_new, K[_STAGES], work)
+        nfev += _STAGES
+        _combine(K, _E, _STAGES + 1, tmp)
+        for j in range(n):
+            scale = _nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
+            tmp[j] = tmp[j] * hs / scale
+        err = _rms(tmp, n)
+        accept = err < 1
+        finite = math.isfinite(err)
+        factor = SAFETY * err ** ERROR_EXPONENT if err != 0 else math.inf
+        if accept:
+            grow = MAX_FACTOR if err == 0 else _nmin(MAX_FACTOR, factor)
+            if rejected:
+                grow = _nmin(1.0, grow)
+            h = abs(hs) * grow
+        else:
+            h = abs(hs) * (_nmax(MIN_FACTOR, factor) if finite else MIN_FACTOR)
+        rejected = not accept
+        last_nonfinite = not finite
+        if not accept:
+            continue
+        negative = False
+        for j in range(n):
+            if y_new[j] < 0:
+                negative = True
+        if negative:
+            # keep FSAL consistent: the stored derivative must belong to the projected state
+            for j in range(n):
+                y_new[j] = _nmax(y_new[j], 0.0)
+            web_rhs(st, cf, y_new, K[_STAGES], work)
+            nfev += 1
+            if not _finite(K[_STAGES]):
+                code = _NONFINITE
+        for j in range(n):
+            y[j] = y_new[j]
+            K[0, j] = K[_STAGES, j]
+            ymin[m, j] = _nmin(ymin[m, j], y[j])
+            ymax[m, j] = _nmax(ymax[m, j], y[j])
+        t = t_new
+        nacc += 1
+        if not clipped:
+            hgood = abs(hs)
+        if code == 0 and not _finite(y):
+            code = _NONFINITE
+        if code == 0:
+            for j in range(n):
+                if abs(y[j]) > blowup:
+                    code = _BLOWUP
+        if code != 0 or clipped:
+            break
+        if nacc >= max_steps:
+            code = _TOO_MANY
+            break
+    reason[m] = code
+    nsteps[m] = nacc
+    h_out[m] = hgood if math.isfinite(hgood) else h
+    for j in range(n):
+        y_out[m, j] = y[j] if code == 0 else math.nan
+    return nfev
