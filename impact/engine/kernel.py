@@ -26,36 +26,42 @@ from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAF
 
 HEADER = 7  # entries of the structure table before the per-link columns
 
-_A = DormandPrince54.A.copy()
-_B = DormandPrince54.B.copy()
-_E = DormandPrince54.E.copy()
-_STAGES = DormandPrince54.n_stages
-_ORDER_EXP = 1.0 / (DormandPrince54.error_estimator_order + 1)
-_NONFINITE = int(Failure.NONFINITE)
-_BLOWUP = int(Failure.BLOWUP)
-_UNDERFLOW = int(Failure.UNDERFLOW)
-_TOO_MANY = int(Failure.TOO_MANY_STEPS)
+# Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
+# right-hand side and the step loop, which it recompiles around its own right-hand side.
+__all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
+           "TOO_MANY", "kernel_jit", "nmin", "nmax", "rms", "all_finite", "combine_stages",
+           "web_rhs", "initial_step", "member", "segment"]
 
-_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+A = DormandPrince54.A.copy()
+B = DormandPrince54.B.copy()
+E = DormandPrince54.E.copy()
+STAGES = DormandPrince54.n_stages
+INITIAL_EXPONENT = 1.0 / (DormandPrince54.error_estimator_order + 1)
+NONFINITE = int(Failure.NONFINITE)
+BLOWUP = int(Failure.BLOWUP)
+UNDERFLOW = int(Failure.UNDERFLOW)
+TOO_MANY = int(Failure.TOO_MANY_STEPS)
+
+kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 
 
-@_jit
-def _nmin(a, b):
+@kernel_jit
+def nmin(a, b):
     """numpy.minimum for scalars (NaN propagates)."""
     if a != a or b != b:
         return a + b
     return a if a <= b else b
 
 
-@_jit
-def _nmax(a, b):
+@kernel_jit
+def nmax(a, b):
     """numpy.maximum for scalars (NaN propagates)."""
     if a != a or b != b:
         return a + b
     return a if a >= b else b
 
 
-@_jit
+@kernel_jit
 def web_rhs(st, cf, y, out, work):
     """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
 
@@ -136,16 +142,16 @@ def web_rhs(st, cf, y, out, work):
         out[S] = dC
 
 
-@_jit
-def _rms(x, n):
+@kernel_jit
+def rms(x, n):
     acc = x[0] * x[0]
     for j in range(1, n):
         acc += x[j] * x[j]
     return math.sqrt(acc / n)
 
 
-@_jit
-def _initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
+@kernel_jit
+def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
     """Per-member copy of :func:`impact.integrate._select_initial_step` (HNW 1993, Sec. II.4)."""
     n = y0.shape[0]
     interval = abs(t1 - t0)
@@ -153,41 +159,41 @@ def _initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, s
         sc[j] = atol[j] + abs(y0[j]) * rtol[j]
     for j in range(n):
         y1[j] = y0[j] / sc[j]
-    d0 = _rms(y1, n)
+    d0 = rms(y1, n)
     for j in range(n):
         y1[j] = f0[j] / sc[j]
-    d1 = _rms(y1, n)
+    d1 = rms(y1, n)
     if d0 < 1e-5 or d1 < 1e-5:
         h0 = 1e-6
     else:
         h0 = 0.01 * d0 / d1
-    h0 = _nmin(h0, interval)
+    h0 = nmin(h0, interval)
     for j in range(n):
         y1[j] = y0[j] + (h0 * direction) * f0[j]
     web_rhs(st, cf, y1, f1, work)
     for j in range(n):
         y1[j] = (f1[j] - f0[j]) / sc[j]
-    d2 = _rms(y1, n) / h0
+    d2 = rms(y1, n) / h0
     if d1 <= 1e-15 and d2 <= 1e-15:
-        h1 = _nmax(1e-6, h0 * 1e-3)
+        h1 = nmax(1e-6, h0 * 1e-3)
     else:
-        h1 = (0.01 / _nmax(d1, d2)) ** _ORDER_EXP
-    h = _nmin(_nmin(100 * h0, h1), interval)
+        h1 = (0.01 / nmax(d1, d2)) ** INITIAL_EXPONENT
+    h = nmin(nmin(100 * h0, h1), interval)
     if not (math.isfinite(h) and h > 0):
         h = min(1e-6, interval)
     return h
 
 
-@_jit
-def _finite(x):
+@kernel_jit
+def all_finite(x):
     for v in x:
         if not math.isfinite(v):
             return False
     return True
 
 
-@_jit
-def _combine(K, coeffs, count, out):
+@kernel_jit
+def combine_stages(K, coeffs, count, out):
     """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
     order of :func:`impact.integrate._combine`."""
     n = out.shape[0]
@@ -205,7 +211,7 @@ def _combine(K, coeffs, count, out):
                 out[j] += K[s, j] * c
 
 
-@_jit
+@kernel_jit
 def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin, ymax, h_out,
             reason, nsteps):
     """Integrate every member from ``t0`` to ``t1``; fills the output arrays, returns the number
@@ -217,7 +223,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
     """
     M, n = y0.shape
     direction = 1.0 if t1 > t0 else -1.0
-    K = np.empty((_STAGES + 1, n))
+    K = np.empty((STAGES + 1, n))
     work = np.empty((5, n))
     y, y_new, tmp, sc = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
     nfev = 0
@@ -225,26 +231,26 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
         cf = coef[m]
         for j in range(n):
             y[j] = y0[m, j]
-        if not _finite(y):
-            reason[m] = _NONFINITE
+        if not all_finite(y):
+            reason[m] = NONFINITE
             continue
         web_rhs(st, cf, y, K[0], work)
         nfev += 1
-        if not _finite(K[0]):
-            reason[m] = _NONFINITE
+        if not all_finite(K[0]):
+            reason[m] = NONFINITE
             continue
         h = h0[m]
         if not (math.isfinite(h) and h > 0):
-            h = _initial_step(st, cf, t0, t1, y, K[0], rtol, atol, direction, work, tmp, K[1], sc)
+            h = initial_step(st, cf, t0, t1, y, K[0], rtol, atol, direction, work, tmp, K[1], sc)
             nfev += 1
-        h = _nmin(h, abs(t1 - t0))
-        nfev += _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
+        h = nmin(h, abs(t1 - t0))
+        nfev += member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
                         max_steps, blowup, m, y_out, ymin, ymax, h_out, reason, nsteps)
     return nfev
 
 
-@_jit
-def _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol, max_steps,
+@kernel_jit
+def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol, max_steps,
             blowup, m, y_out, ymin, ymax, h_out, reason, nsteps):
     """Step loop of one member (state in ``y``, derivative in ``K[0]``); returns evaluations."""
     n = y.shape[0]
@@ -258,40 +264,40 @@ def _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol
     while True:
         min_step = MIN_STEP_ULPS * abs(np.nextafter(t, direction * np.inf) - t)
         if not rejected:
-            h = _nmax(h, min_step)
+            h = nmax(h, min_step)
         if h < min_step:
-            code = _NONFINITE if last_nonfinite else _UNDERFLOW
+            code = NONFINITE if last_nonfinite else UNDERFLOW
             break
         t_new = t + direction * h
         clipped = direction * (t_new - t1) >= 0
         if clipped:
             t_new = t1
         hs = t_new - t
-        for s in range(1, _STAGES):
-            _combine(K, _A[s], s, tmp)
+        for s in range(1, STAGES):
+            combine_stages(K, A[s], s, tmp)
             for j in range(n):
                 tmp[j] = tmp[j] * hs + y[j]
             web_rhs(st, cf, tmp, K[s], work)
-        _combine(K, _B, _STAGES, y_new)
+        combine_stages(K, B, STAGES, y_new)
         for j in range(n):
             y_new[j] = y_new[j] * hs + y[j]
-        web_rhs(st, cf, y_new, K[_STAGES], work)
-        nfev += _STAGES
-        _combine(K, _E, _STAGES + 1, tmp)
+        web_rhs(st, cf, y_new, K[STAGES], work)
+        nfev += STAGES
+        combine_stages(K, E, STAGES + 1, tmp)
         for j in range(n):
-            scale = _nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
+            scale = nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
             tmp[j] = tmp[j] * hs / scale
-        err = _rms(tmp, n)
+        err = rms(tmp, n)
         accept = err < 1
         finite = math.isfinite(err)
         factor = SAFETY * err ** ERROR_EXPONENT if err != 0 else math.inf
         if accept:
-            grow = MAX_FACTOR if err == 0 else _nmin(MAX_FACTOR, factor)
+            grow = MAX_FACTOR if err == 0 else nmin(MAX_FACTOR, factor)
             if rejected:
-                grow = _nmin(1.0, grow)
+                grow = nmin(1.0, grow)
             h = abs(hs) * grow
         else:
-            h = abs(hs) * (_nmax(MIN_FACTOR, factor) if finite else MIN_FACTOR)
+            h = abs(hs) * (nmax(MIN_FACTOR, factor) if finite else MIN_FACTOR)
         rejected = not accept
         last_nonfinite = not finite
         if not accept:
@@ -303,30 +309,30 @@ def _member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol
         if negative:
             # keep FSAL consistent: the stored derivative must belong to the projected state
             for j in range(n):
-                y_new[j] = _nmax(y_new[j], 0.0)
-            web_rhs(st, cf, y_new, K[_STAGES], work)
+                y_new[j] = nmax(y_new[j], 0.0)
+            web_rhs(st, cf, y_new, K[STAGES], work)
             nfev += 1
-            if not _finite(K[_STAGES]):
-                code = _NONFINITE
+            if not all_finite(K[STAGES]):
+                code = NONFINITE
         for j in range(n):
             y[j] = y_new[j]
-            K[0, j] = K[_STAGES, j]
-            ymin[m, j] = _nmin(ymin[m, j], y[j])
-            ymax[m, j] = _nmax(ymax[m, j], y[j])
+            K[0, j] = K[STAGES, j]
+            ymin[m, j] = nmin(ymin[m, j], y[j])
+            ymax[m, j] = nmax(ymax[m, j], y[j])
         t = t_new
         nacc += 1
         if not clipped:
             hgood = abs(hs)
-        if code == 0 and not _finite(y):
-            code = _NONFINITE
+        if code == 0 and not all_finite(y):
+            code = NONFINITE
         if code == 0:
             for j in range(n):
                 if abs(y[j]) > blowup:
-                    code = _BLOWUP
+                    code = BLOWUP
         if code != 0 or clipped:
             break
         if nacc >= max_steps:
-            code = _TOO_MANY
+            code = TOO_MANY
             break
     reason[m] = code
     nsteps[m] = nacc

@@ -1,9 +1,12 @@
 """Integrating the food web over one segment with a chosen engine.
 
-``"compiled"`` runs the per-member numba kernel (:mod:`impact.engine.kernel`); ``"numpy"`` the
-ensemble reference stepper (:func:`impact.integrate.integrate_segment` with
-:class:`impact.model.WebRHS`). Both return :class:`impact.integrate.SegmentResult` and agree to
-rounding; the compiled one is the default because it has no per-step fixed cost.
+``"compiled"`` runs the per-member numba kernel with the right-hand side generated for the web's
+structure (:mod:`impact.engine.generate`, compiled once per structure and cached on disk);
+``"table"`` the same step loop reading a structure table (:mod:`impact.engine.kernel`, compiled
+once for every web); ``"numpy"`` the ensemble reference stepper
+(:func:`impact.integrate.integrate_segment` with :class:`impact.model.WebRHS`). All return
+:class:`impact.integrate.SegmentResult` with the same numbers to the bit (checked by the tests);
+the compiled ones have no per-step fixed cost, and the generated one is the fastest (see bench/).
 """
 
 from __future__ import annotations
@@ -17,7 +20,7 @@ from ..model import (RESPONSE_POWER, Controls, FoodWeb, SegmentCoefficients, Web
                      segment_coefficients)
 from .control import MIN_RTOL, Failure
 
-ENGINES = ("compiled", "numpy")
+ENGINES = ("compiled", "table", "numpy")
 DEFAULT_ENGINE = "compiled"
 
 
@@ -38,6 +41,20 @@ def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray) -> np.ndarray:
     parts = [np.take(getattr(co, f), rows, axis=0) for f in SegmentCoefficients.__dataclass_fields__]
     parts[-1] = parts[-1][:, None]  # decay is one number per member
     return np.ascontiguousarray(np.concatenate(parts, axis=1), dtype=float)
+
+
+def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
+    """Module whose ``segment`` integrates structure ``st``: generated for it, or the table one.
+
+    numba is imported (and cached machine code loaded or compiled) on first use only.
+    """
+    if engine == "table":
+        from . import kernel
+
+        return kernel
+    from .generate import specialised
+
+    return specialised(st)
 
 
 def _tolerance(value, n: int) -> np.ndarray:
@@ -63,7 +80,7 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         First step sizes (NaN or None: chosen automatically).
     members : int ndarray (m,), optional
         Rows of ``p`` and ``c``; default ``arange(m)``.
-    engine : {"compiled", "numpy"}
+    engine : {"compiled", "table", "numpy"}
 
     Returns
     -------
@@ -78,9 +95,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         return integrate_segment(WebRHS(web, p, c), t0, t1, y0, rtol=rtol, atol=atol, h0=h0,
                                  members=members, nonnegative=True, max_steps=max_steps,
                                  blowup=blowup)
-    if engine != "compiled":
+    if engine not in ENGINES:
         raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
-    from . import kernel  # numba is imported (and the cached kernel loaded) on first use only
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
@@ -96,7 +112,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         y_out[~bad] = y0[~bad]
         return SegmentResult(y_out, y0.copy(), y0.copy(), h, reason != 0, reason, 0, nsteps)
     ymin, ymax, h_out = y0.copy(), y0.copy(), np.full(m, np.nan)
+    st = pack_structure(web)
     coef = pack_coefficients(segment_coefficients(web, p, c), members)
-    nfev = kernel.segment(pack_structure(web), coef, y0, h, float(t0), float(t1), rtol, atol,
+    nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
