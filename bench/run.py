@@ -7,6 +7,10 @@ Usage::
 
 Prints, each measured in this same run:
 
+0. the engines on the demo web: member-steps per CPU second of the generated compiled kernel, the
+   table-reading kernel and the numpy reference; the scalar-limit estimate and the fraction of it
+   reached; first-run compilation of a never-seen structure and loading from the disk cache
+   (bench_engine.py);
 1. the ensemble integrator against a per-member ``solve_ivp`` loop (bench_integrator.py);
 2. the demo's core stage (draws + paired option runs) on 1 worker against a 2-worker pool;
 3. the local pool against a Dask LocalCluster with 2 worker processes, same work;
@@ -69,8 +73,13 @@ def main(argv=None) -> int:
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {platform.platform()}")
     work = Path(tempfile.mkdtemp(prefix="impact-bench-"))
 
-    section("1. ensemble integrator vs per-member solve_ivp loop")
     sys.path.insert(0, str(ROOT / "bench"))
+    section("0. engines on the demo web (per core), scalar limit, compilation")
+    import bench_engine
+
+    bench_engine.main(["--case", args.case])
+
+    section("1. ensemble integrator vs per-member solve_ivp loop")
     import bench_integrator
 
     bench_integrator.main([])

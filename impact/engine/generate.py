@@ -24,8 +24,8 @@ import numpy as np
 from . import kernel
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
-STEPPER_FUNCTIONS = ("initial_step", "segment", "member")
-_loaded: dict[str, object] = {}
+STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "segment", "member")
+_loaded: dict[bytes, object] = {}  # structure table bytes -> loaded module
 
 
 def cache_dir() -> Path:
@@ -99,17 +99,32 @@ def module_source(st: np.ndarray) -> str:
              f"from impact.engine.kernel import {helpers}",
              "from impact.engine.control import ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, "
              "MIN_STEP_ULPS, SAFETY", "", rhs_source(st)]
+    n = int(st[1])
     for name in STEPPER_FUNCTIONS:
-        parts.append(inspect.getsource(getattr(kernel, name).py_func))
+        parts.append(_fix_state_size(inspect.getsource(getattr(kernel, name).py_func), n))
     return "\n".join(parts) + "\n"
+
+
+def _fix_state_size(source: str, n: int) -> str:
+    """Make the number of state variables a constant, so loops over it unroll into registers."""
+    lines = []
+    for line in source.splitlines():
+        stripped = line.strip()
+        if stripped.startswith("n = ") and stripped.endswith(".shape[0]"):
+            line = line[: line.index("n = ")] + f"n = {n}"
+        elif stripped == "M, n = y0.shape":
+            line = line[: line.index("M, n")] + f"M, n = y0.shape[0], {n}"
+        lines.append(line)
+    return "\n".join(lines) + "\n"
 
 
 def specialised(st: np.ndarray):
     """The generated module for structure table ``st`` (written and compiled on first use)."""
+    memo = st.tobytes()
+    if memo in _loaded:  # reading the kernel's source again would cost milliseconds per segment
+        return _loaded[memo]
     source = module_source(st)
     key = hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
-    if key in _loaded:
-        return _loaded[key]
     folder = cache_dir()
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / f"web_{key}.py"
@@ -122,5 +137,5 @@ def specialised(st: np.ndarray):
     module = importlib.util.module_from_spec(spec)
     sys.modules[name] = module
     spec.loader.exec_module(module)
-    _loaded[key] = module
+    _loaded[memo] = module
     return module
