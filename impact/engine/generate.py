@@ -16,6 +16,7 @@ import importlib.util
 import inspect
 import os
 import sys
+import tempfile
 from pathlib import Path
 
 import numba
@@ -126,7 +127,11 @@ def specialised(st: np.ndarray):
     source = module_source(st)
     key = hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
     folder = cache_dir()
-    folder.mkdir(parents=True, exist_ok=True)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError:  # e.g. no writable home directory: fall back to the temporary directory
+        folder = Path(tempfile.gettempdir()) / f"impact-kernels-{os.getuid()}"
+        folder.mkdir(parents=True, exist_ok=True)
     path = folder / f"web_{key}.py"
     if not path.exists() or path.read_text() != source:
         tmp = path.with_suffix(f".{os.getpid()}.tmp")
