@@ -29,8 +29,9 @@ HEADER = 7  # entries of the structure table before the per-link columns
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
 __all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
-           "TOO_MANY", "kernel_jit", "kernel_inline", "nmin", "nmax", "rms", "all_finite", "combine_stages",
-           "web_rhs", "initial_step", "trial_step", "next_step", "accept_step", "member", "segment"]
+           "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
+           "combine_stages", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "member", "segment"]
 
 A = DormandPrince54.A.copy()
 B = DormandPrince54.B.copy()
@@ -64,6 +65,40 @@ def nmax(a, b):
     return a if a >= b else b
 
 
+@kernel_inline
+def feeding(st, cf, y, births, loss, den, seen, o_a):
+    """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
+    resources' losses (handling denominators shared by each consumer's type II/III links)."""
+    n, L = st[1], st[3]
+    o_ah, o_e = o_a + L, o_a + 2 * L
+    lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
+    for i in range(n):
+        loss[i] = 0.0
+        seen[i] = 0.0
+    for l in range(L):
+        if st[l1 + l] == 0:
+            R = y[st[lr + l]]
+            Rq = R * R if st[lp + l] == 2 else R
+            term = cf[o_ah + l] * Rq
+            j = st[lc + l]
+            if seen[j] == 0.0:
+                den[j] = term + 1.0
+                seen[j] = 1.0
+            else:
+                den[j] = term + den[j]
+    for l in range(L):
+        R = y[st[lr + l]]
+        Rq = R * R if st[lp + l] == 2 else R
+        j = st[lc + l]
+        if st[l1 + l] == 1:
+            I = cf[o_a + l] * Rq
+        else:
+            I = cf[o_a + l] * Rq / den[j]
+        eaten = I * y[j]
+        births[j] += cf[o_e + l] * eaten
+        loss[st[lr + l]] += eaten
+
+
 @kernel_jit
 def web_rhs(st, cf, y, out, work):
     """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
@@ -74,12 +109,10 @@ def web_rhs(st, cf, y, out, work):
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
     o_a = 5 * S
-    o_ah, o_e = o_a + L, o_a + 2 * L
     o_al = o_a + 3 * L
     o_be = o_al + Cc
     o_H = o_be + U
     o_dec = o_H + U
-    lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     cp = HEADER + 4 * L
     up = cp + 2 * Cc
     births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
@@ -95,31 +128,7 @@ def web_rhs(st, cf, y, out, work):
         for i in range(S):
             births[i] *= crowd[i]
     if L > 0:
-        for i in range(n):
-            loss[i] = 0.0
-            seen[i] = 0.0
-        for l in range(L):
-            if st[l1 + l] == 0:
-                R = y[st[lr + l]]
-                Rq = R * R if st[lp + l] == 2 else R
-                term = cf[o_ah + l] * Rq
-                j = st[lc + l]
-                if seen[j] == 0.0:
-                    den[j] = term + 1.0
-                    seen[j] = 1.0
-                else:
-                    den[j] = term + den[j]
-        for l in range(L):
-            R = y[st[lr + l]]
-            Rq = R * R if st[lp + l] == 2 else R
-            j = st[lc + l]
-            if st[l1 + l] == 1:
-                I = cf[o_a + l] * Rq
-            else:
-                I = cf[o_a + l] * Rq / den[j]
-            eaten = I * y[j]
-            births[j] += cf[o_e + l] * eaten
-            loss[st[lr + l]] += eaten
+        feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):
         out[i] = cf[i] * births[i]
     if logistic:
