@@ -303,14 +303,15 @@ class RunTask:
     today: np.ndarray
 
 
-def run_chunk(task: RunTask) -> dict[str, Run]:
-    """Run one chunk of members under the baseline and every option (a worker's function).
+def run_chunk(task: RunTask) -> dict[str, Summary]:
+    """Run one chunk of members under the baseline and every option, summarised (a worker's function).
 
     Noise and chance events come from each member's own streams (drawn once for all options),
-    so the runs pair member by member wherever each chunk was computed.
+    so the runs pair member by member wherever each chunk was computed. Summarising here keeps
+    the full trajectories in the worker.
     """
     ens = _ensemble(task.case, task.draws, task.unit, task.today, {})
-    return run_options(task.case, ens, task.seed)
+    return summarise(task.case, run_options(task.case, ens, task.seed))
 
 
 def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None, executor=None,
@@ -345,10 +346,10 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
     count(progress, label, done, total, "member runs")
     for i, got in executor.map(run_chunk, tasks):
         k = todo[i]
-        parts[k] = summarise(case, {n: got[n] for n in names})
+        parts[k] = {n: got[n] for n in names}
         if store:
             store.put_summaries(f"runs-{starts[k]}", parts[k])
-        done += got["baseline"].failed.shape[0] * len(names)
+        done += got["baseline"].members * len(names)
         count(progress, label, done, total, "member runs")
     return concat_summaries([parts[k] for k in range(len(starts))])
 
