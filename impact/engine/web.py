@@ -57,10 +57,17 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     return specialised(st)
 
 
-def _tolerance(value, n: int) -> np.ndarray:
-    arr = np.broadcast_to(np.asarray(value, dtype=float), (n,)).copy()
-    if np.any(arr < MIN_RTOL):
+def _tolerance(value, n: int, name: str) -> np.ndarray:
+    """A tolerance as an (n,) array; the same rules as :func:`impact.integrate.integrate_segment`."""
+    arr = np.asarray(value, dtype=float)
+    if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
+        raise ValueError(f"{name} must be a scalar or have shape ({n},), got shape {arr.shape}")
+    if np.any(~np.isfinite(arr)) or np.any(arr < 0):
+        raise ValueError(f"{name} must be finite and non-negative")
+    arr = np.broadcast_to(arr, (n,)).copy()
+    if name == "rtol" and np.any(arr < MIN_RTOL):
         warnings.warn(f"rtol below {MIN_RTOL:.3g} raised to that value", stacklevel=3)
+        arr = np.maximum(arr, MIN_RTOL)
     return arr
 
 
@@ -100,8 +107,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
-    rtol = np.maximum(_tolerance(rtol, n), MIN_RTOL)
-    atol = _tolerance(atol, n) if np.ndim(atol) else np.full(n, float(atol))
+    rtol = _tolerance(rtol, n, "rtol")
+    atol = _tolerance(atol, n, "atol")
     h = np.full(m, np.nan) if h0 is None else np.broadcast_to(np.asarray(h0, float), (m,)).copy()
     y_out = np.full((m, n), np.nan)
     reason = np.zeros(m, dtype=np.int8)
