@@ -10,7 +10,6 @@ row ``i`` of its output may depend on row ``i`` of its input and on ``members[i]
 
 from __future__ import annotations
 
-import math
 import warnings
 from dataclasses import dataclass
 
@@ -67,9 +66,10 @@ def libm_power(x, p: float) -> np.ndarray:
     the step controller raises errors to a power, so one differing bit in a step size would part
     the reference from the compiled kernel. ``0 ** p`` for ``p < 0`` is ``inf`` (as numpy).
     """
+    from .engine.kernel import power_array  # numba is loaded on first use only
+
     x = np.asarray(x, dtype=float)
-    flat = [math.pow(v, p) if v != 0 or p >= 0 else math.inf for v in x.ravel().tolist()]
-    return np.array(flat, dtype=float).reshape(x.shape)
+    return power_array(np.ascontiguousarray(x).ravel(), float(p)).reshape(x.shape)
 
 
 def _rms_rows(x):

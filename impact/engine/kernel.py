@@ -30,7 +30,7 @@ HEADER = 7  # entries of the structure table before the per-link columns
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
 __all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
-           "combine_stages", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment"]
 
 A = DormandPrince54.A.copy()
@@ -152,6 +152,16 @@ def web_rhs(st, cf, y, out, work):
         if L > 0:
             dC -= loss[S]
         out[S] = dC
+
+
+@kernel_jit
+def power_array(x, p):
+    """``x ** p`` elementwise through the C library's ``pow`` (as the kernel computes it)."""
+    out = np.empty_like(x)
+    for i in range(x.shape[0]):
+        v = x[i]
+        out[i] = v ** p if v != 0 or p >= 0 else math.inf
+    return out
 
 
 @kernel_jit
