@@ -7,6 +7,10 @@ Usage::
 
 Prints, each measured in this same run:
 
+0. the engines on the demo web: member-steps per CPU second of the generated compiled kernel, the
+   table-reading kernel and the numpy reference; the scalar-limit estimate and the fraction of it
+   reached; first-run compilation of a never-seen structure and loading from the disk cache
+   (bench_engine.py);
 1. the ensemble integrator against a per-member ``solve_ivp`` loop (bench_integrator.py);
 2. the demo's core stage (draws + paired option runs) on 1 worker against a 2-worker pool;
 3. the local pool against a Dask LocalCluster with 2 worker processes, same work;
@@ -69,8 +73,13 @@ def main(argv=None) -> int:
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {platform.platform()}")
     work = Path(tempfile.mkdtemp(prefix="impact-bench-"))
 
-    section("1. ensemble integrator vs per-member solve_ivp loop")
     sys.path.insert(0, str(ROOT / "bench"))
+    section("0. engines on the demo web (per core), scalar limit, compilation")
+    import bench_engine
+
+    bench_engine.main(["--case", args.case])
+
+    section("1. ensemble integrator vs per-member solve_ivp loop")
     import bench_integrator
 
     bench_integrator.main([])
@@ -82,6 +91,14 @@ def main(argv=None) -> int:
     print(f"2-worker pool                {t2:7.2f} s")
     print(f"speed-up                     {t1 / t2:7.2f}x  (ideal 2x on 2 cores)")
     print(f"identical tables             {same_tables(work / 'w1', work / 'w2')}")
+    # at 1000 members the pool's start-up and each worker's imports are most of the time;
+    # 10,000 members show what two workers gain on the work itself
+    t10a, _ = run_impact(["assess", args.case, "--out", str(work / "x1"), "--workers", "1",
+                          "--members", "10000", *CORE])
+    t10b, _ = run_impact(["assess", args.case, "--out", str(work / "x2"), "--workers", "2",
+                          "--members", "10000", *CORE])
+    print(f"10,000 members: 1 worker {t10a:.2f} s, 2-worker pool {t10b:.2f} s, "
+          f"speed-up {t10a / t10b:.2f}x, identical tables {same_tables(work / 'x1', work / 'x2')}")
 
     section("3. local 2-worker pool vs Dask LocalCluster (2 worker processes), same work")
     try:
@@ -114,6 +131,10 @@ def main(argv=None) -> int:
         base_rate = base_rate or rate
         print(f"{n:>7} members  {t:8.1f} s  {rate:7.1f} members/s  ({rate / base_rate:4.2f} of the 1k rate)  "
               f"peak memory {mem:6.0f} MiB")
+    if not args.quick:
+        t, _ = run_impact(["assess", args.case, "--out", str(work / "n100000p"), "--members", "100000",
+                           "--workers", "2", *CORE])
+        print(f" 100000 members  {t:8.1f} s with the 2-worker pool")
     print(f"\n(work files in {work})")
     return 0
 

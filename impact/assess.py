@@ -70,17 +70,19 @@ MAX_BLOCK = 4096
 def draw_block_size(members: int, workers: int) -> int:
     """Draw indices per screening block: the expected need (10 % spare) shared among the workers."""
     return int(np.clip(np.ceil(1.1 * members / max(workers, 1)), MIN_BLOCK, MAX_BLOCK))
-# Members per chunk of the option runs: a chunk is one worker's unit of work and one checkpoint.
-# Each integrator step has a fixed cost whatever the number of members, so chunks are as large as
-# an even share of the workers allows, within these bounds (common practice, no source).
+# Members per chunk of the option runs: a chunk is one worker's unit of work (every option on its
+# members, so noise and chance events are drawn once) and one checkpoint. The compiled engine's cost
+# is proportional to the members, so several chunks per worker balance the load; a chunk holds the
+# trajectories of all its runs until summarised, which bounds it (common practice, no source).
 MIN_CHUNK = 100
-MAX_CHUNK = 2000
+MAX_CHUNK = 2000  # member runs held at once: members × runs
+CHUNKS_PER_WORKER = 4
 
 
 def run_chunk_size(members: int, workers: int, runs: int = 1) -> int:
-    """Members per chunk for ``members`` on ``workers`` workers, each chunk giving ``runs`` tasks (one per option)."""
-    chunks = int(np.ceil(max(workers, 1) / max(runs, 1)))
-    return int(np.clip(np.ceil(members / chunks), MIN_CHUNK, MAX_CHUNK))
+    """Members per chunk for ``members`` on ``workers`` workers, each chunk running ``runs`` options."""
+    chunks = CHUNKS_PER_WORKER * max(workers, 1)
+    return int(np.clip(np.ceil(members / chunks), MIN_CHUNK, max(MIN_CHUNK, MAX_CHUNK // max(runs, 1))))
 
 
 @dataclass(frozen=True)
@@ -296,36 +298,34 @@ def concat_summaries(parts: list[dict[str, Summary]]) -> dict[str, Summary]:
 
 @dataclass(frozen=True)
 class RunTask:
-    """A chunk of kept members to run under one option (``"baseline"`` or an option's name)."""
+    """A chunk of kept members to run under the baseline and every option."""
 
     case: Case
     seed: int
     draws: np.ndarray
     unit: np.ndarray
     today: np.ndarray
-    option: str
 
 
-def run_chunk(task: RunTask) -> Run:
-    """Run one chunk of members under one option (a worker's function).
+def run_chunk(task: RunTask) -> dict[str, Summary]:
+    """Run one chunk of members under the baseline and every option, summarised (a worker's function).
 
-    Noise and chance events come from each member's own streams, so the option's run pairs
-    with the baseline's wherever each was computed.
+    Noise and chance events come from each member's own streams (drawn once for all options),
+    so the runs pair member by member wherever each chunk was computed. Summarising here keeps
+    the full trajectories in the worker.
     """
     ens = _ensemble(task.case, task.draws, task.unit, task.today, {})
-    return run_options(task.case, ens, task.seed, only=(task.option,))[task.option]
+    return summarise(task.case, run_options(task.case, ens, task.seed))
 
 
 def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None, executor=None,
                    store=None, chunk: int | None = None) -> dict[str, Summary]:
     """Baseline and every option on the kept members, chunk by chunk, as summaries.
 
-    Each (chunk, option) pair is one task: every integrator step has a fixed cost whatever
-    the number of members, so running options side by side keeps the workers busy with few,
-    large chunks. Chunks are cut from the member order alone, and a member's results do not
-    depend on the chunk it falls in (the integrator steps each member on its own), so any
-    chunking, executor or resumed run gives the same numbers. A chunk is summarised, and
-    saved, once all its options are in; its full trajectories are then dropped.
+    Each chunk is one task running every option. Chunks are cut from the member order alone,
+    and a member's results do not depend on the chunk it falls in (the integrator steps each
+    member on its own), so any chunking, executor or resumed run gives the same numbers. A chunk
+    is summarised, and saved, once its options are in; its full trajectories are then dropped.
     """
     from .execute import InProcess, count
 
@@ -342,23 +342,18 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
             parts[k] = saved
             continue
         b = min(a + chunk, M)
-        for name in names:
-            tasks.append(RunTask(case, seed, ens.draws[a:b], ens.unit[a:b], ens.today[a:b], name))
-            todo.append((k, name))
+        tasks.append(RunTask(case, seed, ens.draws[a:b], ens.unit[a:b], ens.today[a:b]))
+        todo.append(k)
     label = f"simulating baseline + {len(case.options)} options"
     total = M * len(names)
     done = sum(p["baseline"].members for p in parts.values()) * len(names)
     count(progress, label, done, total, "member runs")
-    pending: dict[int, dict[str, Run]] = {}
-    for i, run in executor.map(run_chunk, tasks):
-        k, name = todo[i]
-        pending.setdefault(k, {})[name] = run
-        if len(pending[k]) == len(names):
-            got = pending.pop(k)
-            parts[k] = summarise(case, {n: got[n] for n in names})
-            if store:
-                store.put_summaries(f"runs-{starts[k]}", parts[k])
-        done += run.failed.shape[0]
+    for i, got in executor.map(run_chunk, tasks):
+        k = todo[i]
+        parts[k] = {n: got[n] for n in names}
+        if store:
+            store.put_summaries(f"runs-{starts[k]}", parts[k])
+        done += got["baseline"].members * len(names)
         count(progress, label, done, total, "member runs")
     return concat_summaries([parts[k] for k in range(len(starts))])
 

@@ -23,8 +23,7 @@ import numpy as np
 from . import regimes as rg
 from .case import Case
 from .errors import CaseError
-from .integrate import (MAX_FACTOR, MIN_FACTOR, SAFETY, DormandPrince54, _combine,
-                        _select_initial_step, _take_rows, error_norm)
+from .integrate import StepView, integrate_segment
 from .jacobian import jacobian, tangent
 from .model import Controls, FoodWeb, WebParams, WebRHS
 from .regimes import Rules
@@ -165,20 +164,97 @@ def _hermite_max(y0, y1, f0, f1, dt):
 # Lyapunov exponent of a flow (Benettin et al. 1980) on the ensemble integrator
 
 
+class _TangentWatch:
+    """Observer of the stepper for :func:`lyapunov_flow`.
+
+    Renormalises the tangent at every step end (Benettin et al. 1980) and, once ``in_window``
+    is set, accumulates per member ln‖v‖, the extremes, the trapezoid time integral of the
+    state and the section maxima (arrays over all M rows of the call).
+    """
+
+    def __init__(self, fj, members, section, n, nonnegative):
+        M = len(members)
+        self.fj, self.members, self.section, self.nonnegative = fj, members, section, nonnegative
+        self.in_window = False
+        self.nfev = 0
+        self.lg = np.zeros(M)
+        self.low = np.full((M, n), np.inf)
+        self.high = np.full((M, n), -np.inf)
+        self.acc = np.zeros((M, n))
+        self.sections: list[list[float]] = [[] for _ in range(M)]
+
+    def unit_on_face(self, x):
+        """Start vector (1, 2, …, n)/‖·‖ restricted to the present face (all ones if none)."""
+        n = x.shape[1]
+        w = np.tile(np.arange(1.0, n + 1.0), (x.shape[0], 1))
+        if self.nonnegative:
+            w = np.where(x > 0, w, 0.0)
+            empty = ~(w > 0).any(axis=1)
+            w[empty] = 1.0
+        return w / np.sqrt(_sumsq(w))[:, None]
+
+    def __call__(self, s: StepView):
+        accept = s.accept
+        norm = np.sqrt(_sumsq(s.v_new))
+        norm[~accept] = 1.0
+        if (norm == 0).any():
+            # nothing left to perturb: restart the vector on the present face, no growth counted
+            dead = np.flatnonzero(norm == 0)
+            s.v_new[dead] = self.unit_on_face(s.y_new[dead])
+            _, s.g_new[dead] = self.fj(s.t_new[dead], s.y_new[dead], s.v_new[dead],
+                                       self.members[s.rows[dead]])
+            self.nfev += 1
+            norm[dead] = 1.0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            np.divide(s.v_new, norm[:, None], out=s.v_new)
+            np.divide(s.g_new, norm[:, None], out=s.g_new)
+            # an overflowing norm must fail the member, not restart it from zero growth
+            s.v_new[~np.isfinite(norm)] = np.nan
+            if self.in_window:
+                self._accumulate(s, norm)
+
+    def _accumulate(self, s: StepView, norm):
+        rows, accept = s.rows, s.accept
+        # time integral by the trapezoid rule over the step, for the time-mean
+        area = s.y + s.y_new
+        area *= np.repeat(s.hs, area.shape[1]).reshape(area.shape)
+        if rows.size == self.lg.size and accept.all():
+            # the usual case (every member active and accepted): plain in-place updates
+            self.lg += np.log(norm)
+            np.minimum(self.low, s.y_new, out=self.low)
+            np.maximum(self.high, s.y_new, out=self.high)
+            self.acc += area
+        else:
+            w = accept[:, None]
+            self.lg[rows] += np.where(accept, np.log(norm), 0.0)
+            self.low[rows] = np.where(w, np.minimum(self.low[rows], s.y_new), self.low[rows])
+            self.high[rows] = np.where(w, np.maximum(self.high[rows], s.y_new), self.high[rows])
+            self.acc[rows] += np.where(w, area, 0.0)
+        rr = np.arange(rows.size)
+        sec = self.section[rows]
+        d0, d1 = s.f[rr, sec], s.f_new[rr, sec]
+        hit = np.flatnonzero(accept & (d0 > 0) & (d1 <= 0))
+        if hit.size:
+            sh = sec[hit]
+            peaks = _hermite_max(s.y[hit, sh], s.y_new[hit, sh], d0[hit], d1[hit], s.hs[hit])
+            for j, val in zip(rows[hit], peaks):
+                self.sections[j].append(float(val))
+
+
 def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: float, section=0,
                   rtol=1e-7, atol=1e-9, members=None, nonnegative=True, t0: float = 0.0, jvp=None,
                   max_steps: int = 1_000_000, blowup: float = 1e12) -> Diagnosis:
     """Largest Lyapunov exponent by tangent integration with renormalisation (Benettin et al. 1980).
 
-    State and tangent vector advance together with the Dormand–Prince 5(4) stages of
-    :mod:`impact.integrate`, one adaptive step size per member chosen from the state's error
-    alone: the tangent equation is linear with the state's own Jacobian, so the state's step
-    resolves it too (common practice, no source), and keeping it out of the error norm leaves
-    the step sequence that of a plain run. Steps land exactly only on the end of the transient
-    and of the window; the tangent is renormalised at every step end, the window statistics are
-    time-weighted over steps, and section maxima are located inside the step where the section
-    variable's derivative changes sign, by cubic Hermite interpolation of the step's end values
-    and derivatives.
+    State and tangent vector advance together on the steps of
+    :func:`impact.integrate.integrate_segment`, one adaptive step size per member chosen from the
+    state's error alone: the tangent equation is linear with the state's own Jacobian, so the
+    state's step resolves it too (common practice, no source), and keeping it out of the error
+    norm leaves the step sequence that of a plain run. Steps land exactly only on the end of the
+    transient and of the window; the tangent is renormalised at every step end, the window
+    statistics are time-weighted over steps, and section maxima are located inside the step
+    where the section variable's derivative changes sign, by cubic Hermite interpolation of the
+    step's end values and derivatives.
 
     Parameters
     ----------
@@ -199,7 +275,8 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
     jvp : callable ``jvp(t, y, v, members) -> (f, J v)``, optional
         Right-hand side and Jacobian–vector product in one call (e.g.
         :class:`impact.jacobian.WebTangent`); default: ``fun`` and ``jac`` times ``v``.
-    max_steps, blowup : as in :func:`impact.integrate.integrate_segment` (steps over the whole run).
+    max_steps, blowup : as in :func:`impact.integrate.integrate_segment` (steps per stage:
+        transient, then window).
 
     Returns
     -------
@@ -227,209 +304,27 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         f, jv = jvp(t, x, np.where(present, v, 0.0), mem)
         return f, np.where(present, jv, 0.0)
 
-    def unit_on_face(x):
-        """Start vector (1, 2, …, n)/‖·‖ restricted to the present face (all ones if none)."""
-        w = np.tile(np.arange(1.0, n + 1.0), (x.shape[0], 1))
-        if nonnegative:
-            w = np.where(x > 0, w, 0.0)
-            empty = ~(w > 0).any(axis=1)
-            w[empty] = 1.0
-        return w / np.sqrt(_sumsq(w))[:, None]
-
-    A, B, C, E = DormandPrince54.A, DormandPrince54.B, DormandPrince54.C, DormandPrince54.E
-    exponent = -1.0 / (DormandPrince54.error_estimator_order + 1)
-    atol_v = np.broadcast_to(np.asarray(atol, float), (n,))
-    t_split, t_end = t0 + transient, t0 + transient + window
-    hmax = float(sample_dt)
-
-    lyap_out = np.full(M, np.nan)
-    low_out = np.full((M, n), np.nan)
-    high_out = np.full((M, n), np.nan)
-    acc_out = np.full((M, n), np.nan)
-    y_out = np.full((M, n), np.nan)
-    reason = np.zeros(M, dtype=np.int8)
-    sections: list[list[float]] = [[] for _ in range(M)]
-    nfev = 0
-
-    start = np.array(y_all)
-    if nonnegative:
-        start = np.maximum(start, 0.0)
-    bad = ~np.isfinite(start).all(axis=1)
-    reason[bad] = 1
-    idx = np.flatnonzero(~bad)
-    y = start[idx]
-    mem = members[idx]
-    sec = section_all[idx]
-    t = np.full(idx.size, float(t0))
-    v = unit_on_face(y)
-    if idx.size:
-        f, g = fj(t, y, v, mem)
-        nfev += 1
-        ok = np.isfinite(f).all(axis=1) & np.isfinite(g).all(axis=1)
-        if not ok.all():
-            reason[idx[~ok]] = 1
-            idx, y, mem, sec, t, v, f, g = _take_rows(ok, idx, y, mem, sec, t, v, f, g)
-    if idx.size:
-        stop0 = t_split if transient > 0 else t_end
-        h, k = _select_initial_step(lambda tt, x, mm: fj(tt, x, np.zeros_like(x), mm)[0], float(t0), y, f,
-                                    mem.copy(), stop0, 1.0, DormandPrince54.error_estimator_order, rtol, atol_v)
-        nfev += k
-        h = np.minimum(h, hmax)
-    else:
-        h = np.empty(0)
-    m0 = idx.size
-    lg = np.zeros(m0)
-    low = np.full((m0, n), np.inf)
-    high = np.full((m0, n), -np.inf)
-    acc = np.zeros((m0, n))
-    rejected = np.zeros(m0, bool)
-    last_nonfinite = np.zeros(m0, bool)
-    nacc = np.zeros(m0, np.int64)
-
-    def retire(leave, done):
-        rows, yl, ok, lgl, lo, hi, ac = _take_rows(leave, idx, y, done, lg, low, high, acc)
-        y_out[rows] = np.where(ok[:, None], yl, np.nan)
-        lyap_out[rows] = np.where(ok, lgl / window, np.nan)
-        low_out[rows] = np.where(ok[:, None], lo, np.nan)
-        high_out[rows] = np.where(ok[:, None], hi, np.nan)
-        acc_out[rows] = np.where(ok[:, None], ac, np.nan)
-
-    one_section = int(section_all[0]) if M and (section_all == section_all[0]).all() else None
-    # overflow and 0/0 in a failing member are caught by the finiteness checks below
+    start = np.maximum(y_all, 0.0) if nonnegative else y_all
+    watch = _TangentWatch(fj, members, section_all, n, nonnegative)
+    kw = dict(rtol=rtol, atol=atol, members=members, nonnegative=nonnegative, max_steps=max_steps,
+              blowup=blowup, hmax=float(sample_dt), observer=watch)
+    y, v, h, reason, nfev = start, watch.unit_on_face(start), None, np.zeros(M, np.int8), 0
+    # overflow and 0/0 in a failing member are caught by the stepper's finiteness checks
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        while idx.size:
-            m = idx.size
-            min_step = 10 * np.abs(np.nextafter(t, np.inf) - t)
-            h = np.where(rejected, h, np.maximum(h, min_step))
-            under = h < min_step
-            if under.any():
-                reason[idx[under]] = np.where(last_nonfinite[under], 1, 3).astype(np.int8)
-                retire(under, np.zeros(m, bool))
-                keep = ~under
-                (idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected, last_nonfinite,
-                 nacc) = _take_rows(keep, idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected,
-                                    last_nonfinite, nacc)
-                if not idx.size:
-                    break
-                m = idx.size
-            stop = np.where(t < t_split, t_split, t_end)
-            t_new = t + h
-            clipped = t_new >= stop
-            t_new[clipped] = stop[clipped]
-            hs = t_new - t
-            hcol = np.repeat(hs, n).reshape(-1, n)
-            tmp = np.empty_like(y)
-            K, L = [f], [g]
-            for st in range(1, DormandPrince54.n_stages):
-                dy = _combine(K, A[st, :st], tmp)
-                dy *= hcol
-                dy += y
-                dv = _combine(L, A[st, :st], tmp)
-                dv *= hcol
-                dv += v
-                k1, l1 = fj(t + C[st] * hs, dy, dv, mem)
-                K.append(k1)
-                L.append(l1)
-            y_new = _combine(K, B, tmp)
-            y_new *= hcol
-            y_new += y
-            v_new = _combine(L, B, tmp)
-            v_new *= hcol
-            v_new += v
-            f_new, g_new = fj(t_new, y_new, v_new, mem)
-            K.append(f_new)
-            nfev += DormandPrince54.n_stages
-            err_norm = error_norm(K, E, tmp, hcol, y, y_new, rtol, atol_v)
-            finite = np.isfinite(err_norm)
-            accept = err_norm < 1
-            all_accepted = accept.all()
-            factor = SAFETY * err_norm ** exponent
-            if all_accepted and not rejected.any():
-                grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
-            else:
-                grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
-                grow = np.where(rejected, np.minimum(1.0, grow), grow)
-                grow = np.where(accept, grow, np.where(finite, np.maximum(MIN_FACTOR, factor), MIN_FACTOR))
-            h = np.minimum(hs * grow, hmax)
-            rejected = ~accept
-            last_nonfinite = ~finite
-            fail = np.zeros(m, bool)
-            if not accept.any():
-                continue
-            if nonnegative and not y_new.min() > 0:
-                # the model was evaluated at max(y, 0) already, so projecting keeps f and J v valid
-                np.maximum(y_new, 0.0, out=y_new)
-                v_new[y_new <= 0] = 0.0
-            if not all_accepted:
-                rej = np.flatnonzero(~accept)
-                y_new[rej], v_new[rej], f_new[rej], g_new[rej], t_new[rej] = y[rej], v[rej], f[rej], g[rej], t[rej]
-            norm = np.sqrt(_sumsq(v_new))
-            if not all_accepted:
-                norm[~accept] = 1.0
-            if norm.min() == 0:
-                # nothing left to perturb: restart the vector on the present face, no growth counted
-                dead = accept & (norm == 0)
-                v_new[dead] = unit_on_face(y_new[dead])
-                _, g_new[dead] = fj(t_new[dead], y_new[dead], v_new[dead], mem[dead].copy())
-                nfev += 1
-                norm[dead] = 1.0
-            v_new /= norm[:, None]
-            g_new /= norm[:, None]
-            in_window = t >= t_split
-            win = accept & in_window
-            every = all_accepted and in_window.all()
-            if every or win.any():
-                # time integral by the trapezoid rule over the step, for the time-mean
-                area = y + y_new
-                area *= hcol
-                if every:  # the usual case: plain in-place updates
-                    lg += np.log(norm)
-                    np.minimum(low, y_new, out=low)
-                    np.maximum(high, y_new, out=high)
-                    acc += area
-                else:
-                    lg += np.where(win, np.log(norm), 0.0)
-                    w = win[:, None]
-                    low = np.where(w, np.minimum(low, y_new), low)
-                    high = np.where(w, np.maximum(high, y_new), high)
-                    acc += np.where(w, area, 0.0)
-                if one_section is not None:
-                    d0, d1 = f[:, one_section], f_new[:, one_section]
-                else:
-                    rr = np.arange(m)
-                    d0, d1 = f[rr, sec], f_new[rr, sec]
-                hit = np.flatnonzero(win & (d0 > 0) & (d1 <= 0))
-                if hit.size:
-                    peaks = _hermite_max(y[hit, sec[hit]], y_new[hit, sec[hit]], d0[hit], d1[hit], hs[hit])
-                    for j, val in zip(idx[hit], peaks):
-                        sections[j].append(float(val))
-            y, v, f, g, t = y_new, v_new, f_new, g_new, t_new
-            nacc += accept
-            if not (np.isfinite(norm).all() and np.isfinite(y).all() and np.isfinite(g).all()):
-                bad_now = accept & ~(np.isfinite(y).all(axis=1) & np.isfinite(norm) & np.isfinite(g).all(axis=1))
-                reason[idx[bad_now]] = 1
-                fail |= bad_now
-            if max(y.max(), -y.min()) > blowup:
-                blown = accept & ~fail & (np.abs(y) > blowup).any(axis=1)
-                reason[idx[blown]] = 2
-                fail |= blown
-            done = accept & clipped & (t_new >= t_end) & ~fail if clipped.any() else clipped
-            if nacc.max() >= max_steps:
-                too_many = ~done & ~fail & (nacc >= max_steps)
-                reason[idx[too_many]] = 4
-                fail |= too_many
-            leave = done | fail
-            if leave.any():
-                retire(leave, done)
-                keep = ~leave
-                (idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected, last_nonfinite,
-                 nacc) = _take_rows(keep, idx, y, mem, sec, t, v, f, g, h, lg, low, high, acc, rejected,
-                                    last_nonfinite, nacc)
-
-    failed = reason != 0
-    mean = acc_out / (2.0 * window)
-    return Diagnosis(lyap_out, [np.array(s) for s in sections], low_out, high_out, mean, y_out,
-                     failed, reason, nfev)
+        if transient > 0:
+            run_in = integrate_segment(fj, t0, t0 + transient, y, tangent=v, **kw)
+            y, v, h, reason, nfev = run_in.y, run_in.v, run_in.h, run_in.reason, run_in.nfev
+        watch.in_window = True
+        diag = integrate_segment(fj, t0 + transient, t0 + transient + window, y, h0=h, tangent=v,
+                                 **kw)
+    reason = np.where(reason != 0, reason, diag.reason).astype(np.int8)
+    ok = reason == 0
+    okc = ok[:, None]
+    return Diagnosis(np.where(ok, watch.lg / window, np.nan),
+                     [np.array(s) for s in watch.sections],
+                     np.where(okc, watch.low, np.nan), np.where(okc, watch.high, np.nan),
+                     np.where(okc, watch.acc / (2.0 * window), np.nan), np.where(okc, diag.y, np.nan),
+                     ~ok, reason, nfev + diag.nfev + watch.nfev)
 
 
 def _sumsq(x):

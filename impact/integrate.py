@@ -15,37 +15,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-# Multiply steps computed from the asymptotic behaviour of errors by this.
-SAFETY = 0.9
-MIN_FACTOR = 0.2  # Minimum allowed decrease of a step size.
-MAX_FACTOR = 10  # Maximum allowed increase of a step size.
+from .engine.control import (ERROR_EXPONENT, FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR,
+                             MIN_RTOL, MIN_STEP_ULPS, SAFETY, DormandPrince54, Failure)
 
-EPS = np.finfo(float).eps
-
-FAILURE_REASONS = {0: "ok", 1: "non-finite", 2: "blow-up", 3: "step underflow", 4: "too many steps"}
-
-_OK, _NONFINITE, _BLOWUP, _UNDERFLOW, _TOO_MANY = 0, 1, 2, 3, 4
-
-
-class DormandPrince54:
-    """Dormand-Prince 5(4) pair with first-same-as-last stages (Dormand & Prince 1980)."""
-
-    order = 5
-    error_estimator_order = 4
-    n_stages = 6
-    C = np.array([0, 1 / 5, 3 / 10, 4 / 5, 8 / 9, 1])
-    A = np.array([
-        [0, 0, 0, 0, 0],
-        [1 / 5, 0, 0, 0, 0],
-        [3 / 40, 9 / 40, 0, 0, 0],
-        [44 / 45, -56 / 15, 32 / 9, 0, 0],
-        [19372 / 6561, -25360 / 2187, 64448 / 6561, -212 / 729, 0],
-        [9017 / 3168, -355 / 33, 46732 / 5247, 49 / 176, -5103 / 18656],
-    ])
-    B = np.array([35 / 384, 0, 500 / 1113, 125 / 192, -2187 / 6784, 11 / 84])
-    # Difference between the 5th- and embedded 4th-order weights; the last entry
-    # multiplies the derivative at the new point (the FSAL stage).
-    E = np.array([-71 / 57600, 0, 71 / 16695, -71 / 1920, 17253 / 339200, -22 / 525, 1 / 40])
+__all__ = ["FAILURE_REASONS", "DormandPrince54", "Failure", "SegmentResult", "StepView",
+           "integrate", "integrate_segment", "error_norm"]
 
 
 @dataclass(frozen=True)
@@ -70,6 +44,8 @@ class SegmentResult:
         Number of right-hand-side calls (each call evaluates a subset of the ensemble).
     nsteps : ndarray of int, shape (M,)
         Accepted steps per member.
+    v : ndarray, shape (M, n), or None
+        Tangent vectors at ``t1`` when a tangent was integrated (NaN rows for failed members).
     """
 
     y: np.ndarray
@@ -80,6 +56,20 @@ class SegmentResult:
     reason: np.ndarray
     nfev: int
     nsteps: np.ndarray
+    v: np.ndarray | None = None
+
+
+def libm_power(x, p: float) -> np.ndarray:
+    """``x ** p`` elementwise through the C library's ``pow``, as compiled code computes it.
+
+    numpy's vectorised power may differ from ``pow`` in the last bit on CPUs with wide SIMD units;
+    the step controller raises errors to a power, so one differing bit in a step size would part
+    the reference from the compiled kernel. ``0 ** p`` for ``p < 0`` is ``inf`` (as numpy).
+    """
+    from .engine.kernel import power_array  # numba is loaded on first use only
+
+    x = np.asarray(x, dtype=float)
+    return power_array(np.ascontiguousarray(x).ravel(), float(p)).reshape(x.shape)
 
 
 def _rms_rows(x):
@@ -116,12 +106,6 @@ def _combine(K, coeffs, tmp):
     return out
 
 
-def _take_rows(keep, *arrays):
-    """Rows ``keep`` (bool mask) of each array; ``np.take`` is far faster than fancy indexing."""
-    ki = np.flatnonzero(keep)
-    return [np.take(a, ki, axis=0) for a in arrays]
-
-
 def _as_tolerance(value, n, name):
     arr = np.asarray(value, dtype=float)
     if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
@@ -156,63 +140,196 @@ def _select_initial_step(fun, t0, y0, f0, members, t_bound, direction, order, rt
         d2 = _rms_rows((f1 - f0) / scale) / h0
         small = (d1 <= 1e-15) & (d2 <= 1e-15)
         h1 = np.where(small, np.maximum(1e-6, h0 * 1e-3),
-                      (0.01 / np.maximum(d1, d2)) ** (1 / (order + 1)))
+                      libm_power(0.01 / np.maximum(d1, d2), 1 / (order + 1)))
     h = np.minimum(np.minimum(100 * h0, h1), interval)
     # A non-finite f1 gives NaN here; start tiny and let the controller grow the step.
     h = np.where(np.isfinite(h) & (h > 0), h, np.minimum(1e-6, interval))
     return h, 1
 
 
-def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0=None,
-                      members=None, nonnegative=True, max_steps=100_000,
-                      blowup=1e12) -> SegmentResult:
-    """Integrate an ensemble from ``t0`` to ``t1`` with Dormand-Prince 5(4), step per member.
+@dataclass(frozen=True)
+class StepView:
+    """One iteration of the stepper as an observer sees it (arrays over the active members).
 
-    Parameters
+    Rejected rows already hold their old values in the ``*_new`` arrays. An observer may rescale
+    ``v_new`` and ``g_new`` in place (tangent renormalisation); the stepper checks them for
+    finiteness afterwards.
+
+    Attributes
     ----------
-    fun : callable ``fun(t, y, members) -> dydt``
-        ``t`` ndarray (m,) per-member times, ``y`` ndarray (m, n), ``members`` int ndarray (m,)
-        member indices; returns a new ndarray (m, n) on every call (the integrator keeps and
-        edits it). Called only on active members. Row ``i`` of the output must depend only on
-        ``t[i]``, ``y[i]`` and ``members[i]``.
-    t0, t1 : float
-        Segment start and end; ``t1 < t0`` integrates backwards.
-    y0 : array_like, shape (M, n)
-        Initial states.
-    rtol, atol : float or array_like, shape (n,)
-        Relative and absolute tolerances of the per-member RMS error norm.
-    h0 : float or array_like, shape (M,), optional
-        Initial step sizes; non-finite or non-positive entries (and ``None``) are replaced by the
-        automatic choice of Hairer, Norsett & Wanner (1993), Sec. II.4.
-    members : int array_like, shape (M,), optional
-        Member indices passed to ``fun``; defaults to ``arange(M)``.
-    nonnegative : bool
-        Project accepted states onto ``y >= 0`` (removes small negative overshoots).
-    max_steps : int
-        A member that has taken this many accepted steps without reaching ``t1`` fails (code 4).
-    blowup : float
-        A member with any ``|y| > blowup`` after an accepted step fails (code 2).
-
-    Returns
-    -------
-    SegmentResult
+    rows : int ndarray (m,)
+        Rows of the call's ``y0`` that the active members occupy.
+    accept : bool ndarray (m,)
+    t, t_new, hs : ndarray (m,)
+        Step start, step end and signed step.
+    y, y_new, f, f_new : ndarray (m, n)
+        State and derivative at the step's start and end.
+    v_new, g_new : ndarray (m, n) or None
+        Tangent vector and J·v at the step's end (None without a tangent).
     """
-    method = DormandPrince54
+
+    rows: np.ndarray
+    accept: np.ndarray
+    t: np.ndarray
+    t_new: np.ndarray
+    hs: np.ndarray
+    y: np.ndarray
+    y_new: np.ndarray
+    f: np.ndarray
+    f_new: np.ndarray
+    v_new: np.ndarray | None
+    g_new: np.ndarray | None
+
+
+class _Active:
+    """Per-member arrays of the members still integrating, compacted together when some leave."""
+
+    FIELDS = ("idx", "y", "f", "v", "g", "t", "h", "mem", "ymin", "ymax", "rejected", "hgood",
+              "nacc", "last_nonfinite")
+
+    def __init__(self, **arrays):
+        for name in self.FIELDS:
+            setattr(self, name, arrays.get(name))
+
+    def keep(self, mask):
+        ki = np.flatnonzero(mask)
+        for name in self.FIELDS:
+            a = getattr(self, name)
+            if a is not None:
+                setattr(self, name, np.take(a, ki, axis=0))
+
+
+class _Model:
+    """The right-hand side with or without its tangent, behind one calling convention."""
+
+    def __init__(self, fun, with_tangent: bool):
+        self.fun, self.with_tangent, self.nfev = fun, with_tangent, 0
+
+    def __call__(self, t, y, v, mem):
+        """``(f, g)`` with ``g = J·v`` (None without a tangent)."""
+        self.nfev += 1
+        if self.with_tangent:
+            f, g = self.fun(t, y, v, mem)
+            return np.asarray(f, dtype=float), np.asarray(g, dtype=float)
+        return np.asarray(self.fun(t, y, mem), dtype=float), None
+
+    def state_only(self, t, y, mem):
+        """``f`` alone (for the initial step choice)."""
+        return self(t, y, np.zeros_like(y) if self.with_tangent else None, mem)[0]
+
+
+def _trial_step(model: _Model, b: _Active, hs, t_new):
+    """One Dormand-Prince step of state (and tangent) for every active member.
+
+    Returns ``y_new, v_new, f_new, g_new, K, hcol`` with ``K`` the state stages (FSAL stage last)
+    and ``hcol`` the signed step repeated over the columns, (m, n).
+    """
+    A, B, C = DormandPrince54.A, DormandPrince54.B, DormandPrince54.C
+    n = b.y.shape[1]
+    # A full (m, n) copy of the step: broadcasting an (m, 1) column is several times slower.
+    hcol = np.repeat(hs, n).reshape(-1, n)
+    tmp = np.empty_like(b.y)
+    K, L = [b.f], [b.g]
+    for s in range(1, DormandPrince54.n_stages):
+        dy = _combine(K, A[s, :s], tmp)
+        dy *= hcol
+        dy += b.y
+        dv = None
+        if b.v is not None:
+            dv = _combine(L, A[s, :s], tmp)
+            dv *= hcol
+            dv += b.v
+        k, l = model(b.t + C[s] * hs, dy, dv, b.mem)
+        K.append(k)
+        L.append(l)
+    y_new = _combine(K, B, tmp)
+    y_new *= hcol
+    y_new += b.y
+    v_new = None
+    if b.v is not None:
+        v_new = _combine(L, B, tmp)
+        v_new *= hcol
+        v_new += b.v
+    f_new, g_new = model(t_new, y_new, v_new, b.mem)
+    K.append(f_new)
+    return y_new, v_new, f_new, g_new, K, hcol
+
+
+def _next_step(err_norm, hs, rejected, hmax):
+    """Step-size controller: ``(h, accept, finite)`` per member.
+
+    An accepted step grows by ``SAFETY·err^(-1/5)`` (at most ``MAX_FACTOR``, not at all right
+    after a rejection); a rejected one shrinks by the same rule (at least ``MIN_FACTOR``, exactly
+    that when the error is not finite). Hairer, Norsett & Wanner (1993), Sec. II.4.
+    """
+    finite = np.isfinite(err_norm)
+    accept = err_norm < 1
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        factor = SAFETY * libm_power(err_norm, ERROR_EXPONENT)
+        grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
+        grow = np.where(rejected, np.minimum(1.0, grow), grow)
+        shrink = np.where(finite, np.maximum(MIN_FACTOR, factor), MIN_FACTOR)
+    h = np.abs(hs) * np.where(accept, grow, shrink)
+    if np.isfinite(hmax):
+        h = np.minimum(h, hmax)
+    return h, accept, finite
+
+
+def _project(model: _Model, b: _Active, accept, t_new, y_new, v_new, f_new, g_new):
+    """Project accepted states onto y ≥ 0 in place; returns rows whose new derivative is not finite.
+
+    Each row is judged on its own (``y_new >= 0`` is False for NaN, so a non-finite row never
+    hides the negative entries of the others). The derivative of a projected row is evaluated
+    again so the stored FSAL stage belongs to the projected state. The tangent of an absent
+    species (y ≤ 0) is set to zero: the web is closed, so it stays on the face of present species.
+    """
+    bad = np.zeros(len(accept), dtype=bool)
+    if np.all(y_new > 0):
+        return bad
+    neg = accept & np.any(y_new < 0, axis=1)
+    if neg.any():
+        y_new[neg] = np.maximum(y_new[neg], 0.0)
+    if v_new is not None:
+        v_new[y_new <= 0] = 0.0
+    if neg.any():
+        f, g = model(t_new[neg], y_new[neg], None if v_new is None else v_new[neg], b.mem[neg])
+        f_new[neg] = f
+        ok = np.all(np.isfinite(f), axis=1)
+        if g_new is not None:
+            g_new[neg] = g
+            ok &= np.all(np.isfinite(g), axis=1)
+        bad[neg] = ~ok
+    return bad
+
+
+def _nonfinite_rows(b: _Active, accept):
+    """Accepted rows whose state or tangent is not finite (a safety net: a finite error norm
+    implies a finite state)."""
+    arrays = [a for a in (b.y, b.v, b.g) if a is not None]
+    if all(np.isfinite(a).all() for a in arrays):
+        return np.zeros(len(accept), dtype=bool)
+    ok = np.ones(len(accept), dtype=bool)
+    for a in arrays:
+        ok &= np.all(np.isfinite(a), axis=1)
+    return accept & ~ok
+
+
+def _check_inputs(y0, t0, t1, rtol, atol, members, max_steps, nonnegative, tangent):
+    """Validated ``(y0, t0, t1, rtol, atol, members, max_steps, v0)`` (programming errors raise)."""
     y0 = np.array(y0, dtype=float)
     if y0.ndim != 2:
         raise ValueError(f"y0 must have shape (members, state), got shape {y0.shape}")
     M, n = y0.shape
     if n == 0:
         raise ValueError("y0 must have at least one state variable")
-    t0 = float(t0)
-    t1 = float(t1)
+    t0, t1 = float(t0), float(t1)
     if not (np.isfinite(t0) and np.isfinite(t1)):
         raise ValueError("t0 and t1 must be finite")
     rtol = _as_tolerance(rtol, n, "rtol")
     atol = _as_tolerance(atol, n, "atol")
-    if np.any(rtol < 100 * EPS):
-        warnings.warn(f"rtol below {100 * EPS:.3g} raised to that value", stacklevel=2)
-        rtol = np.maximum(rtol, 100 * EPS)
+    if np.any(rtol < MIN_RTOL):
+        warnings.warn(f"rtol below {MIN_RTOL:.3g} raised to that value", stacklevel=3)
+        rtol = np.maximum(rtol, MIN_RTOL)
     if members is None:
         members = np.arange(M)
     else:
@@ -221,187 +338,221 @@ def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0
             raise ValueError(f"members must be an integer array of shape ({M},)")
     if int(max_steps) < 1:
         raise ValueError("max_steps must be at least 1")
-    max_steps = int(max_steps)
     if nonnegative and np.any(y0 < 0):
         raise ValueError("y0 has negative entries but nonnegative=True")
+    v0 = None
+    if tangent is not None:
+        v0 = np.array(tangent, dtype=float)
+        if v0.shape != y0.shape:
+            raise ValueError(f"tangent must have shape {y0.shape}, got {v0.shape}")
+    return y0, t0, t1, rtol, atol, members, int(max_steps), v0
 
-    y_out = np.full((M, n), np.nan)
-    ymin_out = y0.copy()
-    ymax_out = y0.copy()
-    h_out = np.full(M, np.nan)
-    reason = np.zeros(M, dtype=np.int8)
-    nsteps = np.zeros(M, dtype=np.int64)
-    nfev = 0
 
+def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0=None,
+                      members=None, nonnegative=True, max_steps=100_000, blowup=1e12,
+                      hmax=np.inf, tangent=None, observer=None) -> SegmentResult:
+    """Integrate an ensemble from ``t0`` to ``t1`` with Dormand-Prince 5(4), step per member.
+
+    Parameters
+    ----------
+    fun : callable
+        Without ``tangent``: ``fun(t, y, members) -> dydt``; with it:
+        ``fun(t, y, v, members) -> (dydt, J·v)``. ``t`` ndarray (m,) per-member times, ``y`` and
+        ``v`` ndarray (m, n), ``members`` int ndarray (m,) member indices; returns new arrays
+        (m, n) on every call (the integrator keeps and edits them). Called only on active
+        members. Row ``i`` of the output must depend only on ``t[i]``, ``y[i]``, ``v[i]`` and
+        ``members[i]``.
+    t0, t1 : float
+        Segment start and end; ``t1 < t0`` integrates backwards.
+    y0 : array_like, shape (M, n)
+        Initial states.
+    rtol, atol : float or array_like, shape (n,)
+        Relative and absolute tolerances of the per-member RMS error norm (state only: the
+        tangent is linear in the state's own Jacobian and follows the state's steps).
+    h0 : float or array_like, shape (M,), optional
+        Initial step sizes; non-finite or non-positive entries (and ``None``) are replaced by the
+        automatic choice of Hairer, Norsett & Wanner (1993), Sec. II.4.
+    members : int array_like, shape (M,), optional
+        Member indices passed to ``fun``; defaults to ``arange(M)``.
+    nonnegative : bool
+        Project accepted states onto ``y >= 0`` (removes small negative overshoots); tangent
+        entries of states at zero are set to zero.
+    max_steps : int
+        A member that has taken this many accepted steps without reaching ``t1`` fails.
+    blowup : float
+        A member with any ``|y| > blowup`` after an accepted step fails.
+    hmax : float
+        Longest step allowed.
+    tangent : array_like, shape (M, n), optional
+        Initial tangent vectors, advanced on the state's steps with the same stages.
+    observer : callable ``observer(StepView)``, optional
+        Called after every iteration in which some member accepted a step.
+
+    Returns
+    -------
+    SegmentResult
+        ``reason`` holds :class:`impact.engine.control.Failure` codes; ``v`` the tangent at ``t1``
+        when one was integrated.
+    """
+    y0, t0, t1, rtol, atol, members, max_steps, v0 = _check_inputs(
+        y0, t0, t1, rtol, atol, members, max_steps, nonnegative, tangent)
+    M, n = y0.shape
+    model = _Model(fun, v0 is not None)
+    out = _Outputs(y0, v0)
     if M == 0 or t1 == t0:
-        bad = ~np.all(np.isfinite(y0), axis=1)
-        reason[bad] = _NONFINITE
-        y_out[~bad] = y0[~bad]
-        if h0 is not None:
-            h_out[:] = np.broadcast_to(np.asarray(h0, dtype=float), (M,))
-        return SegmentResult(y_out, ymin_out, ymax_out, h_out, reason != 0, reason, nfev, nsteps)
+        return out.trivial(h0)
 
     direction = 1.0 if t1 > t0 else -1.0
-    interval = abs(t1 - t0)
-
-    # --- initial state and derivative ------------------------------------------------------
-    bad = ~np.all(np.isfinite(y0), axis=1)
-    reason[bad] = _NONFINITE
-    idx = np.flatnonzero(~bad)
-    y = y0[idx]
-    mem = members[idx]
-    t = np.full(idx.size, t0)
-    if idx.size:
-        f = np.asarray(fun(t, y, mem), dtype=float)
-        nfev += 1
-        if f.shape != y.shape:
-            raise ValueError(f"fun returned shape {f.shape}, expected {y.shape}")
-        ok = np.all(np.isfinite(f), axis=1)
-        if not ok.all():
-            reason[idx[~ok]] = _NONFINITE
-            idx, y, mem, t, f = idx[ok], y[ok], mem[ok], t[ok], f[ok]
-    else:
-        f = np.empty((0, n))
-
-    if h0 is None:
-        h = np.full(idx.size, np.nan)
-    else:
-        h = np.broadcast_to(np.asarray(h0, dtype=float), (M,))[idx].copy()
-    need = ~(np.isfinite(h) & (h > 0))
-    if need.any():
-        hs, k = _select_initial_step(fun, t0, y[need], f[need], mem[need], t1, direction,
-                                     method.error_estimator_order, rtol, atol)
-        h[need] = hs
-        nfev += k
-    h = np.minimum(h, interval)
-
-    ymin = y.copy()
-    ymax = y.copy()
-    rejected = np.zeros(idx.size, dtype=bool)
-    last_nonfinite = np.zeros(idx.size, dtype=bool)
-    hgood = np.full(idx.size, np.nan)
-    nacc = np.zeros(idx.size, dtype=np.int64)
-
-    A, B, C, E = method.A, method.B, method.C, method.E
-    exponent = -1.0 / (method.error_estimator_order + 1)
-
-    def retire(leave, done):
-        """Write rows of members leaving the active set into the outputs."""
-        rows, yl, ok, lo, hi, hg, hl, ns = _take_rows(leave, idx, y, done, ymin, ymax, hgood, h,
-                                                      nacc)
-        y_out[rows] = np.where(ok[:, None], yl, np.nan)
-        ymin_out[rows] = lo
-        ymax_out[rows] = hi
-        h_out[rows] = np.where(np.isfinite(hg), hg, hl)
-        nsteps[rows] = ns
-
-    while idx.size:
-        # The smallest step that still moves t by 10 ulps (as scipy's RungeKutta solvers).
-        min_step = 10 * np.abs(np.nextafter(t, direction * np.inf) - t)
-        h = np.where(rejected, h, np.maximum(h, min_step))
-        under = h < min_step
+    b = _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction)
+    while b.idx.size:
+        # The smallest step that still moves t by MIN_STEP_ULPS ulps (as scipy's RungeKutta solvers).
+        min_step = MIN_STEP_ULPS * np.abs(np.nextafter(b.t, direction * np.inf) - b.t)
+        b.h = np.where(b.rejected, b.h, np.maximum(b.h, min_step))
+        under = b.h < min_step
         if under.any():
-            code = np.where(last_nonfinite[under], _NONFINITE, _UNDERFLOW).astype(np.int8)
-            reason[idx[under]] = code
-            keep = ~under
-            retire(under, np.zeros(idx.size, dtype=bool))
-            (idx, y, f, t, h, mem, ymin, ymax, rejected, hgood, nacc,
-             last_nonfinite) = _take_rows(keep, idx, y, f, t, h, mem, ymin, ymax, rejected,
-                                          hgood, nacc, last_nonfinite)
-            (min_step,) = _take_rows(keep, min_step)
-            if not idx.size:
+            out.reason[b.idx[under]] = np.where(b.last_nonfinite[under], Failure.NONFINITE,
+                                                Failure.UNDERFLOW)
+            out.retire(b, under, np.zeros(b.idx.size, dtype=bool))
+            b.keep(~under)
+            if not b.idx.size:
                 break
+        _iterate(model, b, out, t1, direction, rtol, atol, nonnegative, max_steps, blowup, hmax,
+                 observer)
+    return out.result(model.nfev)
 
-        t_new = t + direction * h
-        clipped = direction * (t_new - t1) >= 0
-        t_new[clipped] = t1
-        hs = t_new - t  # signed step actually attempted
-        # A full (m, n) copy of the step: broadcasting an (m, 1) column is several times slower.
-        hcol = np.repeat(hs, n).reshape(-1, n)
 
-        tmp = np.empty_like(y)
-        with np.errstate(over="ignore", invalid="ignore"):
-            K = [f]
-            for s in range(1, method.n_stages):
-                dy = _combine(K, A[s, :s], tmp)
-                dy *= hcol
-                dy += y
-                K.append(np.asarray(fun(t + C[s] * hs, dy, mem), dtype=float))
-            y_new = _combine(K, B, tmp)
-            y_new *= hcol
-            y_new += y
-            f_new = np.asarray(fun(t_new, y_new, mem), dtype=float)
-            K.append(f_new)
-            nfev += method.n_stages
+def _iterate(model, b, out, t1, direction, rtol, atol, nonnegative, max_steps, blowup, hmax,
+             observer):
+    """One trial step of every active member, acceptance, projection, checks and retirement."""
+    t_new = b.t + direction * b.h
+    clipped = direction * (t_new - t1) >= 0
+    t_new[clipped] = t1
+    hs = t_new - b.t  # signed step actually attempted
+    with np.errstate(over="ignore", invalid="ignore"):
+        y_new, v_new, f_new, g_new, K, hcol = _trial_step(model, b, hs, t_new)
+        err_norm = error_norm(K, DormandPrince54.E, np.empty_like(b.y), hcol, b.y, y_new, rtol, atol)
+    b.h, accept, finite = _next_step(err_norm, hs, b.rejected, hmax)
+    b.rejected = ~accept
+    b.last_nonfinite = ~finite
+    fail = np.zeros(b.idx.size, dtype=bool)
+    if accept.any():
+        if nonnegative:
+            bad = _project(model, b, accept, t_new, y_new, v_new, f_new, g_new)
+            out.reason[b.idx[bad]] = Failure.NONFINITE
+            fail |= bad
+        # Take the new arrays and put back the (usually few) rejected rows; cheaper than
+        # masked copies of the whole ensemble.
+        rej = np.flatnonzero(~accept)
+        if rej.size:
+            y_new[rej], f_new[rej], t_new[rej] = b.y[rej], b.f[rej], b.t[rej]
+            if v_new is not None:
+                v_new[rej], g_new[rej] = b.v[rej], b.g[rej]
+        if observer is not None:
+            observer(StepView(b.idx, accept, b.t, t_new, hs, b.y, y_new, b.f, f_new, v_new, g_new))
+        b.y, b.f, b.t, b.v, b.g = y_new, f_new, t_new, v_new, g_new
+        np.minimum(b.ymin, b.y, out=b.ymin)
+        np.maximum(b.ymax, b.y, out=b.ymax)
+        b.nacc += accept
+        good = accept & ~clipped
+        b.hgood[good] = np.abs(hs[good])
+        nonfin = _nonfinite_rows(b, accept) & ~fail
+        out.reason[b.idx[nonfin]] = Failure.NONFINITE
+        fail |= nonfin
+        # ``<=`` is False for NaN, so a failed row never hides another's blow-up.
+        if not np.all(np.abs(b.y) <= blowup):
+            blown = accept & ~fail & np.any(np.abs(b.y) > blowup, axis=1)
+            out.reason[b.idx[blown]] = Failure.BLOWUP
+            fail |= blown
+    done = accept & clipped & ~fail
+    too_many = ~done & ~fail & (b.nacc >= max_steps)
+    if too_many.any():
+        out.reason[b.idx[too_many]] = Failure.TOO_MANY_STEPS
+        fail |= too_many
+    leave = done | fail
+    if leave.any():
+        # Compact only when the active set shrinks.
+        out.retire(b, leave, done)
+        b.keep(~leave)
 
-            err_norm = error_norm(K, E, tmp, hcol, y, y_new, rtol, atol)
 
-        finite = np.isfinite(err_norm)
-        accept = err_norm < 1
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            grow = np.where(err_norm == 0, MAX_FACTOR,
-                            np.minimum(MAX_FACTOR, SAFETY * err_norm ** exponent))
-            grow = np.where(rejected, np.minimum(1.0, grow), grow)
-            shrink = np.where(finite, np.maximum(MIN_FACTOR, SAFETY * err_norm ** exponent),
-                              MIN_FACTOR)
-        h = np.abs(hs) * np.where(accept, grow, shrink)
-        rejected = ~accept
-        last_nonfinite = ~finite
+class _Outputs:
+    """Result arrays over all M rows, filled as members leave the active set."""
 
-        fail = np.zeros(idx.size, dtype=bool)
-        if accept.any():
-            # Cheap whole-array checks first; row-wise reductions only when something is off.
-            if nonnegative and y_new.min() < 0:
-                neg = accept & np.any(y_new < 0, axis=1)
-                if neg.any():
-                    # Keep FSAL consistent: the stored derivative must belong to the projected state.
-                    y_new[neg] = np.maximum(y_new[neg], 0.0)
-                    f_new[neg] = np.asarray(fun(t_new[neg], y_new[neg], mem[neg]), dtype=float)
-                    nfev += 1
-                    nf = np.zeros(idx.size, dtype=bool)
-                    nf[neg] = ~np.all(np.isfinite(f_new[neg]), axis=1)
-                    reason[idx[nf]] = _NONFINITE
-                    fail |= nf
-            # Take the new arrays and put back the (usually few) rejected rows; cheaper than
-            # masked copies of the whole ensemble.
-            rej = np.flatnonzero(~accept)
-            if rej.size:
-                y_new[rej] = y[rej]
-                f_new[rej] = f[rej]
-                t_new[rej] = t[rej]
-            y, f, t = y_new, f_new, t_new
-            np.minimum(ymin, y, out=ymin)
-            np.maximum(ymax, y, out=ymax)
-            nacc += accept
-            good = accept & ~clipped
-            hgood[good] = np.abs(hs[good])
+    def __init__(self, y0, v0):
+        M, n = y0.shape
+        self.y0 = y0
+        self.y = np.full((M, n), np.nan)
+        self.v = None if v0 is None else np.full((M, n), np.nan)
+        self.ymin, self.ymax = y0.copy(), y0.copy()
+        self.h = np.full(M, np.nan)
+        self.reason = np.zeros(M, dtype=np.int8)
+        self.nsteps = np.zeros(M, dtype=np.int64)
 
-            # An accepted error norm is finite only if y_new is, so this is a safety net.
-            if not np.isfinite(y).all():
-                nonfin = accept & ~fail & ~np.all(np.isfinite(y), axis=1)
-                reason[idx[nonfin]] = _NONFINITE
-                fail |= nonfin
-            if np.abs(y).max() > blowup:
-                blown = accept & ~fail & np.any(np.abs(y) > blowup, axis=1)
-                reason[idx[blown]] = _BLOWUP
-                fail |= blown
+    def retire(self, b: _Active, leave, done):
+        """Write rows of members leaving the active set."""
+        ki = np.flatnonzero(leave)
+        rows, ok = b.idx[ki], done[ki]
+        self.y[rows] = np.where(ok[:, None], b.y[ki], np.nan)
+        if self.v is not None:
+            self.v[rows] = np.where(ok[:, None], b.v[ki], np.nan)
+        self.ymin[rows] = b.ymin[ki]
+        self.ymax[rows] = b.ymax[ki]
+        hg = b.hgood[ki]
+        self.h[rows] = np.where(np.isfinite(hg), hg, b.h[ki])
+        self.nsteps[rows] = b.nacc[ki]
 
-        done = accept & clipped & ~fail
-        too_many = ~done & ~fail & (nacc >= max_steps)
-        if too_many.any():
-            reason[idx[too_many]] = _TOO_MANY
-            fail |= too_many
-        leave = done | fail
-        if leave.any():
-            # Compact only when the active set shrinks.
-            retire(leave, done)
-            keep = ~leave
-            (idx, y, f, t, h, mem, ymin, ymax, rejected, hgood, nacc,
-             last_nonfinite) = _take_rows(keep, idx, y, f, t, h, mem, ymin, ymax, rejected,
-                                          hgood, nacc, last_nonfinite)
+    def trivial(self, h0):
+        """Result of an empty ensemble or an empty interval."""
+        bad = ~np.all(np.isfinite(self.y0), axis=1)
+        self.reason[bad] = Failure.NONFINITE
+        self.y[~bad] = self.y0[~bad]
+        if h0 is not None:
+            self.h[:] = np.broadcast_to(np.asarray(h0, dtype=float), self.h.shape)
+        return self.result(0)
 
-    failed = reason != 0
-    return SegmentResult(y_out, ymin_out, ymax_out, h_out, failed, reason, nfev, nsteps)
+    def result(self, nfev):
+        return SegmentResult(self.y, self.ymin, self.ymax, self.h, self.reason != 0, self.reason,
+                             nfev, self.nsteps, self.v)
+
+
+def _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction) -> _Active:
+    """Evaluate the initial derivatives, drop non-finite members and choose first steps."""
+    M, n = y0.shape
+    bad = ~np.all(np.isfinite(y0), axis=1)
+    if v0 is not None:
+        bad |= ~np.all(np.isfinite(v0), axis=1)
+    out.reason[bad] = Failure.NONFINITE
+    idx = np.flatnonzero(~bad)
+    b = _Active(idx=idx, y=y0[idx], v=None if v0 is None else v0[idx], mem=members[idx],
+                t=np.full(idx.size, t0))
+    if idx.size:
+        b.f, b.g = model(b.t, b.y, b.v, b.mem)
+        if b.f.shape != b.y.shape:
+            raise ValueError(f"fun returned shape {b.f.shape}, expected {b.y.shape}")
+        ok = np.all(np.isfinite(b.f), axis=1)
+        if b.g is not None:
+            ok &= np.all(np.isfinite(b.g), axis=1)
+        out.reason[idx[~ok]] = Failure.NONFINITE
+        b.keep(ok)
+    else:
+        b.f, b.g = np.empty((0, n)), (None if v0 is None else np.empty((0, n)))
+    m = b.idx.size
+    if h0 is None:
+        b.h = np.full(m, np.nan)
+    else:
+        b.h = np.broadcast_to(np.asarray(h0, dtype=float), (M,))[b.idx].copy()
+    need = ~(np.isfinite(b.h) & (b.h > 0))
+    if need.any():
+        b.h[need], _ = _select_initial_step(model.state_only, t0, b.y[need], b.f[need],
+                                            b.mem[need], t1, direction,
+                                            DormandPrince54.error_estimator_order, rtol, atol)
+    b.h = np.minimum(np.minimum(b.h, abs(t1 - t0)), hmax)
+    b.ymin, b.ymax = b.y.copy(), b.y.copy()
+    b.rejected = np.zeros(m, dtype=bool)
+    b.last_nonfinite = np.zeros(m, dtype=bool)
+    b.hgood = np.full(m, np.nan)
+    b.nacc = np.zeros(m, dtype=np.int64)
+    return b
 
 
 def integrate(fun, t_eval, y0, *, rtol=1e-6, atol=1e-9, members=None, nonnegative=True, **kw):

@@ -225,8 +225,13 @@ class WebTangent:
         jv[:, :S] = df
         if web.has_carrion:
             inflow, decay = g["inflow"], g["decay"]
-            dC = (inflow * N).sum(axis=1) - decay * y[:, S]
-            ddC = (inflow * dN_).sum(axis=1) - decay * v[:, S]
+            # summed species by species, as in WebRHS, so the order never depends on the batch
+            gain, dgain = inflow[:, 0] * N[:, 0], inflow[:, 0] * dN_[:, 0]
+            for i in range(1, S):
+                gain = gain + inflow[:, i] * N[:, i]
+                dgain = dgain + inflow[:, i] * dN_[:, i]
+            dC = gain - decay * y[:, S]
+            ddC = dgain - decay * v[:, S]
             if web.links:
                 dC -= loss[:, S]
                 ddC -= dloss[:, S]

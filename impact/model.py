@@ -206,6 +206,56 @@ def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
     return feeding_intakes(web, a, a * p.h[idx], y)
 
 
+@dataclass(frozen=True)
+class SegmentCoefficients:
+    """Per-member coefficients of the right-hand side during one segment (controls folded in).
+
+    Attributes
+    ----------
+    scale : ndarray (M, S)
+        φ (1 − f): multiplies births.
+    rpos : ndarray (M, S)
+        max(r, 0), the birth rate.
+    lin : ndarray (M, S)
+        min(r, 0) − m − q, the linear loss rate.
+    dens : ndarray (M, S)
+        r / (κ K) for logistic species, else 0.
+    inflow : ndarray (M, S)
+        (m + c q) · carrion yield (zeros without a carrion pool).
+    a, ah, e : ndarray (M, L)
+        Attack rate, attack rate × handling time, efficiency per feeding link.
+    alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
+    """
+
+    scale: np.ndarray
+    rpos: np.ndarray
+    lin: np.ndarray
+    dens: np.ndarray
+    inflow: np.ndarray
+    a: np.ndarray
+    ah: np.ndarray
+    e: np.ndarray
+    alpha: np.ndarray
+    beta: np.ndarray
+    H: np.ndarray
+    decay: np.ndarray
+
+
+def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoefficients:
+    """Fold parameters and one segment's controls into the right-hand side's coefficients."""
+    S = web.n_species
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dens = np.where(web.logistic, p.r / (c.habitat * p.K), 0.0)
+    if web.has_carrion:
+        inflow = (p.m + c.carcass * c.harvest) * web.carrion_yield
+    else:
+        inflow = np.zeros((len(p.r), S))
+    return SegmentCoefficients(
+        scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
+        lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
+        a=p.a, ah=p.a * p.h, e=p.e, alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+
+
 class WebRHS:
     """Right-hand side bound to one segment's parameters and controls.
 
@@ -216,16 +266,8 @@ class WebRHS:
 
     def __init__(self, web: FoodWeb, p: WebParams, c: Controls):
         self.web, self.p, self.c = web, p, c
-        S = web.n_species
-        self._full = {
-            "scale": c.phi * (1.0 - c.fertility),
-            "rpos": np.maximum(p.r, 0.0),
-            "lin": np.minimum(p.r, 0.0) - p.m - c.harvest,
-            "dens": np.where(web.logistic, p.r / (c.habitat * p.K), 0.0),
-            "inflow": (p.m + c.carcass * c.harvest) * web.carrion_yield if web.has_carrion else np.zeros((len(p.r), S)),
-            "a": p.a, "ah": p.a * p.h, "e": p.e, "alpha": p.alpha, "beta": p.beta, "H": p.H,
-            "decay": p.decay,
-        }
+        co = segment_coefficients(web, p, c)
+        self._full = {f: getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__}
         self._key = None
         self._g = None
 
@@ -283,7 +325,11 @@ class WebRHS:
             dN -= loss[:, :S]
         out[:, :S] = dN
         if web.has_carrion:
-            inflow = (g["inflow"] * N).sum(axis=1)
+            # summed species by species so the order never depends on the batch
+            inflow_c = g["inflow"]
+            inflow = inflow_c[:, 0] * N[:, 0]
+            for i in range(1, S):
+                inflow = inflow + inflow_c[:, i] * N[:, i]
             dC = inflow - g["decay"] * y[:, S]
             if web.links:
                 dC -= loss[:, S]

@@ -109,7 +109,7 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
 
     ``values`` maps parameter names to ndarray (M,) or scalars.
     """
-    from .simulate import _controls
+    from .simulate import controls_at
 
     S = len(case.species)
     if option_name is None:
@@ -118,7 +118,7 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
     always = tuple(replace(iv, start=-np.inf, end=np.inf) if iv.name in opt.interventions else iv
                    for iv in case.interventions)
     vals = {k: np.broadcast_to(np.asarray(v, float), (M,)).copy() for k, v in values.items()}
-    return _controls(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
+    return controls_at(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
 
 
 def _scan_rows(parameter, v, out, i, keep_sections, species):

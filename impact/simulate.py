@@ -12,8 +12,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .case import Case, Option
-from .integrate import integrate_segment
-from .model import Controls, FoodWeb, WebParams, WebRHS
+from .engine.web import DEFAULT_ENGINE, web_segment
+from .model import Controls, FoodWeb, WebParams
 
 REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
                       "range": "outside an observed range today"}
@@ -68,7 +68,7 @@ def segment_times(case: Case, option: Option | None, with_noise: bool) -> np.nda
     return np.array(sorted(t for t in ts if 0.0 <= t <= H))
 
 
-def _controls(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int) -> Controls:
+def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int) -> Controls:
     from .model import resolve  # local: keeps the public surface of this module small
 
     c = Controls.neutral(M, S)
@@ -119,7 +119,8 @@ def _apply_events(case: Case, web: FoodWeb, option: Option | None, values, event
 
 
 def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
-               option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray]) -> Run:
+               option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
+               engine: str = DEFAULT_ENGINE) -> Run:
     """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline).
 
     Parameters
@@ -130,6 +131,8 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
         Environmental multipliers per time unit, shared by all options (paired).
     event_u : dict of str -> ndarray (M,)
         Uniforms deciding chance events (eradication failure), shared by all options.
+    engine : {"compiled", "numpy"}
+        See :mod:`impact.engine.web`; both give the same numbers.
     """
     M, n = y0.shape
     S = web.n_species
@@ -153,15 +156,12 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
         t0, t1 = times[k], times[k + 1]
         mid = 0.5 * (t0 + t1)
         phi = noise[:, int(np.floor(mid))] if noise is not None else ones
-        c = _controls(case, option, values, mid, phi, M, S)
+        c = controls_at(case, option, values, mid, phi, M, S)
         active = np.flatnonzero(~failed)
         if active.size:
             h0 = h[active]
-            seg = integrate_segment(
-                WebRHS(web, p, c), t0, t1, y[active],
-                rtol=case.rtol, atol=case.atol, h0=None if np.isnan(h0).any() else h0,
-                members=active, nonnegative=True,
-            )
+            seg = web_segment(web, p, c, t0, t1, y[active], rtol=case.rtol, atol=case.atol,
+                              h0=None if np.isnan(h0).any() else h0, members=active, engine=engine)
             nfev += seg.nfev
             y[active] = seg.y
             h[active] = seg.h
@@ -182,7 +182,8 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
     return Run(out_t, states, cummin, cummax, failed, reason, nfev)
 
 
-def spin_up(case: Case, web: FoodWeb, p: WebParams) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def spin_up(case: Case, web: FoodWeb, p: WebParams,
+            engine: str = DEFAULT_ENGINE) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Run the deterministic baseline from the declared initial state for ``case.spinup``.
 
     Returns
@@ -199,17 +200,16 @@ def spin_up(case: Case, web: FoodWeb, p: WebParams) -> tuple[np.ndarray, np.ndar
     if case.spinup <= 0:
         return y, y.copy(), ~np.isfinite(y).all(axis=1), np.zeros(M, np.int8)
     c = Controls.neutral(M, web.n_species)
-    fun = WebRHS(web, p, c)
     half = -0.5 * case.spinup
-    first = integrate_segment(fun, -case.spinup, half, y, rtol=case.rtol, atol=case.atol, nonnegative=True)
+    first = web_segment(web, p, c, -case.spinup, half, y, rtol=case.rtol, atol=case.atol, engine=engine)
     failed = first.failed.copy()
     reason = first.reason.copy()
     today = np.full_like(y, np.nan)
     late_min = np.full_like(y, np.nan)
     ok = np.flatnonzero(~failed)
     if ok.size:
-        second = integrate_segment(fun, half, 0.0, first.y[ok], rtol=case.rtol, atol=case.atol,
-                                   h0=first.h[ok], members=ok, nonnegative=True)
+        second = web_segment(web, p, c, half, 0.0, first.y[ok], rtol=case.rtol, atol=case.atol,
+                             h0=first.h[ok], members=ok, engine=engine)
         today[ok] = second.y
         late_min[ok] = np.minimum(second.ymin, second.y)
         failed[ok[second.failed]] = True

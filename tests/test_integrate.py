@@ -303,3 +303,60 @@ def test_lorenz_short_time_matches_solve_ivp(lorenz_run, member):
                     method="DOP853", t_eval=LORENZ_T, rtol=1e-12, atol=1e-14).y.T
     err = np.abs(Y[member] - ref) / np.maximum(np.abs(ref), 1.0)
     assert err.max() < 1e-6
+
+
+# --- a failing member must not change the projection of the others -----------------------------
+
+
+def decline_or_nan(t, y, members):
+    """Member 0: the Holling (1959) type II loss of ``saturating_loss`` (steps overshoot zero);
+    member 1: logistic growth whose right-hand side turns NaN after t = 0.15, while member 0
+    is about to overshoot zero (so both are active in the same iterations)."""
+    out = saturating_loss(t, y, members)
+    other = members == 1
+    out[other] = (y[other] * (1.0 - y[other]))
+    out[other & (t > 0.15)] = np.nan
+    return out
+
+
+def test_nan_member_does_not_switch_off_projection_of_others():
+    # Design requirement (DEVELOPERS.md, no published source): a member's numbers never depend on
+    # which members share its batch, also when one of them fails. A NaN in another row once hid
+    # this member's negative overshoot from the projection (its minimum fell to about -0.48, "ok").
+    y0 = np.array([[1.0], [0.5]])
+    both = integrate_segment(decline_or_nan, 0.0, 0.5, y0, rtol=1e-3, atol=1e-8)
+    alone = integrate_segment(decline_or_nan, 0.0, 0.5, y0[:1], rtol=1e-3, atol=1e-8,
+                              members=np.array([0]))
+    assert both.failed.tolist() == [False, True]
+    assert not alone.failed[0]
+    # y + 1e-3 ln y = 1 - 5 t (hand derivation, see above) is below zero at t = 0.5: projected to 0.
+    assert alone.y[0, 0] == 0.0 and alone.ymin[0, 0] == 0.0
+    assert np.array_equal(both.y[0], alone.y[0])
+    assert np.array_equal(both.ymin[0], alone.ymin[0])
+    assert both.nsteps[0] == alone.nsteps[0]
+
+
+# --- the tangent rides on the state's steps ----------------------------------------------------
+
+
+def test_tangent_of_logistic_growth_is_the_derivative_of_the_closed_form():
+    # Verhulst (1838): N(t) = K / (1 + ((K - N0)/N0) e^{-rt}), so the variational solution started
+    # from v0 = 1 is dN(t)/dN0 = e^{-rt} (N(t)/N0)^2 (differentiated here by hand).
+    p = np.array(LOGISTIC)
+    r, K, N0 = p[:, 0], p[:, 1], p[:, 2]
+
+    def fun(t, y, v, members):
+        rr, KK = np.take(r, members)[:, None], np.take(K, members)[:, None]
+        return rr * y * (1.0 - y / KK), rr * (1.0 - 2.0 * y / KK) * v
+
+    res = integrate_segment(fun, 0.0, 6.0, N0[:, None], rtol=1e-10, atol=1e-12,
+                            tangent=np.ones((len(p), 1)))
+    N = K / (1.0 + ((K - N0) / N0) * np.exp(-r * 6.0))
+    exact = np.exp(-r * 6.0) * (N / N0) ** 2
+    assert not res.failed.any()
+    # The tangent is outside the error norm (it follows the state's steps); 1e-6 relative, or
+    # 1e-9 of its starting length where it has decayed, is common practice, no source.
+    np.testing.assert_allclose(res.v[:, 0], exact, rtol=1e-6, atol=1e-9)
+    plain = integrate_segment(lambda t, y, m: fun(t, y, y, m)[0], 0.0, 6.0, N0[:, None],
+                              rtol=1e-10, atol=1e-12)
+    assert np.array_equal(plain.y, res.y) and np.array_equal(plain.nsteps, res.nsteps)

@@ -1,0 +1,386 @@
+"""Compiled per-member Dormand-Prince kernel for the food web (numba).
+
+One member at a time is integrated through a whole segment with its state in small scratch
+arrays, interpreting a compact table of the web's structure (:func:`impact.engine.web.pack`): the
+kernel is compiled once for every web and cached on disk (``cache=True``), so a case never pays
+compilation for its own structure. Every floating-point operation mirrors, in the same order, the
+numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.model.WebRHS`),
+so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
+Members are independent by construction: nothing is shared between rows.
+
+Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any``, then per feeding link
+consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc) and mutualism
+pairs (2·U). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow (S each),
+a, ah, e (L each), alpha (Cc), beta, H (U each), decay (1).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
+                      DormandPrince54, Failure)
+
+HEADER = 7  # entries of the structure table before the per-link columns
+
+# Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
+# right-hand side and the step loop, which it recompiles around its own right-hand side.
+__all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
+           "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
+           "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "member", "segment"]
+
+A = DormandPrince54.A.copy()
+B = DormandPrince54.B.copy()
+E = DormandPrince54.E.copy()
+STAGES = DormandPrince54.n_stages
+INITIAL_EXPONENT = 1.0 / (DormandPrince54.error_estimator_order + 1)
+NONFINITE = int(Failure.NONFINITE)
+BLOWUP = int(Failure.BLOWUP)
+UNDERFLOW = int(Failure.UNDERFLOW)
+TOO_MANY = int(Failure.TOO_MANY_STEPS)
+
+kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+# Pieces of the step loop are inlined into it at numba's level: as separate functions they cost
+# about a sixth of the kernel's speed (measured with bench/bench_engine.py).
+kernel_inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+
+
+@kernel_jit
+def nmin(a, b):
+    """numpy.minimum for scalars (NaN propagates)."""
+    if a != a or b != b:
+        return a + b
+    return a if a <= b else b
+
+
+@kernel_jit
+def nmax(a, b):
+    """numpy.maximum for scalars (NaN propagates)."""
+    if a != a or b != b:
+        return a + b
+    return a if a >= b else b
+
+
+@kernel_inline
+def feeding(st, cf, y, births, loss, den, seen, o_a):
+    """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
+    resources' losses (handling denominators shared by each consumer's type II/III links)."""
+    n, L = st[1], st[3]
+    o_ah, o_e = o_a + L, o_a + 2 * L
+    lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
+    for i in range(n):
+        loss[i] = 0.0
+        seen[i] = 0.0
+    for l in range(L):
+        if st[l1 + l] == 0:
+            R = y[st[lr + l]]
+            Rq = R * R if st[lp + l] == 2 else R
+            term = cf[o_ah + l] * Rq
+            j = st[lc + l]
+            if seen[j] == 0.0:
+                den[j] = term + 1.0
+                seen[j] = 1.0
+            else:
+                den[j] = term + den[j]
+    for l in range(L):
+        R = y[st[lr + l]]
+        Rq = R * R if st[lp + l] == 2 else R
+        j = st[lc + l]
+        if st[l1 + l] == 1:
+            I = cf[o_a + l] * Rq
+        else:
+            I = cf[o_a + l] * Rq / den[j]
+        eaten = I * y[j]
+        births[j] += cf[o_e + l] * eaten
+        loss[st[lr + l]] += eaten
+
+
+@kernel_jit
+def web_rhs(st, cf, y, out, work):
+    """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
+
+    ``st`` structure table, ``cf`` the member's coefficient row, ``y`` (n,), ``out`` (n,),
+    ``work`` (5, n) scratch (births, loss, denominators, crowding or boost, seen flags).
+    """
+    S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
+    o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
+    o_a = 5 * S
+    o_al = o_a + 3 * L
+    o_be = o_al + Cc
+    o_H = o_be + U
+    o_dec = o_H + U
+    cp = HEADER + 4 * L
+    up = cp + 2 * Cc
+    births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
+    for i in range(S):
+        births[i] = cf[o_rpos + i] * y[i]
+    if U > 0:
+        for i in range(S):
+            crowd[i] = 1.0  # used as the mutualism boost here, as crowding below
+        for u in range(U):
+            ben, par = st[up + 2 * u], st[up + 2 * u + 1]
+            P = y[par]
+            crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
+        for i in range(S):
+            births[i] *= crowd[i]
+    if L > 0:
+        feeding(st, cf, y, births, loss, den, seen, o_a)
+    for i in range(S):
+        out[i] = cf[i] * births[i]
+    if logistic:
+        for i in range(S):
+            crowd[i] = y[i]
+        for k in range(Cc):
+            i, j = st[cp + 2 * k], st[cp + 2 * k + 1]
+            crowd[i] += cf[o_al + k] * y[j]
+        for i in range(S):
+            out[i] -= cf[o_dens + i] * y[i] * crowd[i]
+    for i in range(S):
+        out[i] += cf[o_lin + i] * y[i]
+    if L > 0:
+        for i in range(S):
+            out[i] -= loss[i]
+    if carrion:
+        inflow = cf[o_inf] * y[0]
+        for i in range(1, S):
+            inflow = inflow + cf[o_inf + i] * y[i]
+        dC = inflow - cf[o_dec] * y[S]
+        if L > 0:
+            dC -= loss[S]
+        out[S] = dC
+
+
+@kernel_jit
+def power_array(x, p):
+    """``x ** p`` elementwise through the C library's ``pow`` (as the kernel computes it)."""
+    out = np.empty_like(x)
+    for i in range(x.shape[0]):
+        v = x[i]
+        out[i] = v ** p if v != 0 or p >= 0 else math.inf
+    return out
+
+
+@kernel_jit
+def rms(x, n):
+    acc = x[0] * x[0]
+    for j in range(1, n):
+        acc += x[j] * x[j]
+    return math.sqrt(acc / n)
+
+
+@kernel_jit
+def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
+    """Per-member copy of :func:`impact.integrate._select_initial_step` (HNW 1993, Sec. II.4)."""
+    n = y0.shape[0]
+    interval = abs(t1 - t0)
+    for j in range(n):
+        sc[j] = atol[j] + abs(y0[j]) * rtol[j]
+    for j in range(n):
+        y1[j] = y0[j] / sc[j]
+    d0 = rms(y1, n)
+    for j in range(n):
+        y1[j] = f0[j] / sc[j]
+    d1 = rms(y1, n)
+    if d0 < 1e-5 or d1 < 1e-5:
+        h0 = 1e-6
+    else:
+        h0 = 0.01 * d0 / d1
+    h0 = nmin(h0, interval)
+    for j in range(n):
+        y1[j] = y0[j] + (h0 * direction) * f0[j]
+    web_rhs(st, cf, y1, f1, work)
+    for j in range(n):
+        y1[j] = (f1[j] - f0[j]) / sc[j]
+    d2 = rms(y1, n) / h0
+    if d1 <= 1e-15 and d2 <= 1e-15:
+        h1 = nmax(1e-6, h0 * 1e-3)
+    else:
+        h1 = (0.01 / nmax(d1, d2)) ** INITIAL_EXPONENT
+    h = nmin(nmin(100 * h0, h1), interval)
+    if not (math.isfinite(h) and h > 0):
+        h = min(1e-6, interval)
+    return h
+
+
+@kernel_jit
+def all_finite(x):
+    for v in x:
+        if not math.isfinite(v):
+            return False
+    return True
+
+
+@kernel_jit
+def combine_stages(K, coeffs, count, out):
+    """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
+    order of :func:`impact.integrate._combine`."""
+    n = out.shape[0]
+    first = True
+    for s in range(count):
+        c = coeffs[s]
+        if c == 0:
+            continue
+        if first:
+            for j in range(n):
+                out[j] = K[s, j] * c
+            first = False
+        else:
+            for j in range(n):
+                out[j] += K[s, j] * c
+
+
+@kernel_jit
+def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin, ymax, h_out,
+            reason, nsteps):
+    """Integrate every member from ``t0`` to ``t1``; fills the output arrays, returns the number
+    of member right-hand-side evaluations.
+
+    ``y0`` (M, n) finite non-negative states, ``h0`` (M,) first steps (NaN: choose), ``coef``
+    (M, P) coefficient rows; outputs as the fields of :class:`impact.integrate.SegmentResult`
+    (``ymin``/``ymax`` must hold ``y0`` on entry).
+    """
+    M, n = y0.shape
+    direction = 1.0 if t1 > t0 else -1.0
+    K = np.empty((STAGES + 1, n))
+    work = np.empty((5, n))
+    y, y_new, tmp, sc = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+    nfev = 0
+    for m in range(M):
+        cf = coef[m]
+        for j in range(n):
+            y[j] = y0[m, j]
+        if not all_finite(y):
+            reason[m] = NONFINITE
+            continue
+        web_rhs(st, cf, y, K[0], work)
+        nfev += 1
+        if not all_finite(K[0]):
+            reason[m] = NONFINITE
+            continue
+        h = h0[m]
+        if not (math.isfinite(h) and h > 0):
+            h = initial_step(st, cf, t0, t1, y, K[0], rtol, atol, direction, work, tmp, K[1], sc)
+            nfev += 1
+        h = nmin(h, abs(t1 - t0))
+        nfev += member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
+                        max_steps, blowup, m, y_out, ymin, ymax, h_out, reason, nsteps)
+    return nfev
+
+
+@kernel_inline
+def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
+    """One Dormand-Prince step of size ``hs`` from ``y`` (derivative in ``K[0]``) into ``y_new``
+    (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.integrate.error_norm`."""
+    n = y.shape[0]
+    for s in range(1, STAGES):
+        combine_stages(K, A[s], s, tmp)
+        for j in range(n):
+            tmp[j] = tmp[j] * hs + y[j]
+        web_rhs(st, cf, tmp, K[s], work)
+    combine_stages(K, B, STAGES, y_new)
+    for j in range(n):
+        y_new[j] = y_new[j] * hs + y[j]
+    web_rhs(st, cf, y_new, K[STAGES], work)
+    combine_stages(K, E, STAGES + 1, tmp)
+    for j in range(n):
+        scale = nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
+        tmp[j] = tmp[j] * hs / scale
+    return rms(tmp, n)
+
+
+@kernel_inline
+def next_step(err, hs, rejected):
+    """The controller of :func:`impact.integrate._next_step` for one member: the next step size."""
+    factor = SAFETY * err ** ERROR_EXPONENT if err != 0 else math.inf
+    if err < 1:
+        grow = MAX_FACTOR if err == 0 else nmin(MAX_FACTOR, factor)
+        if rejected:
+            grow = nmin(1.0, grow)
+        return abs(hs) * grow
+    return abs(hs) * (nmax(MIN_FACTOR, factor) if math.isfinite(err) else MIN_FACTOR)
+
+
+@kernel_inline
+def accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax):
+    """Take ``y_new`` (projected onto y ≥ 0) as the state; returns (failure code, evaluations)."""
+    n = y.shape[0]
+    code = 0
+    nfev = 0
+    negative = False
+    for j in range(n):
+        if y_new[j] < 0:
+            negative = True
+    if negative:
+        # keep FSAL consistent: the stored derivative must belong to the projected state
+        for j in range(n):
+            y_new[j] = nmax(y_new[j], 0.0)
+        web_rhs(st, cf, y_new, K[STAGES], work)
+        nfev = 1
+        if not all_finite(K[STAGES]):
+            code = NONFINITE
+    for j in range(n):
+        y[j] = y_new[j]
+        K[0, j] = K[STAGES, j]
+        ymin[m, j] = nmin(ymin[m, j], y[j])
+        ymax[m, j] = nmax(ymax[m, j], y[j])
+    if code == 0 and not all_finite(y):
+        code = NONFINITE
+    if code == 0:
+        for j in range(n):
+            if abs(y[j]) > blowup:
+                code = BLOWUP
+    return code, nfev
+
+
+@kernel_jit
+def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol, max_steps,
+           blowup, m, y_out, ymin, ymax, h_out, reason, nsteps):
+    """Step loop of one member (state in ``y``, derivative in ``K[0]``); returns evaluations."""
+    n = y.shape[0]
+    t = t0
+    rejected = False
+    last_nonfinite = False
+    hgood = math.nan
+    nacc = 0
+    nfev = 0
+    code = 0
+    while True:
+        min_step = MIN_STEP_ULPS * abs(np.nextafter(t, direction * np.inf) - t)
+        if not rejected:
+            h = nmax(h, min_step)
+        if h < min_step:
+            code = NONFINITE if last_nonfinite else UNDERFLOW
+            break
+        t_new = t + direction * h
+        clipped = direction * (t_new - t1) >= 0
+        if clipped:
+            t_new = t1
+        hs = t_new - t
+        err = trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol)
+        nfev += STAGES
+        h = next_step(err, hs, rejected)
+        rejected = not err < 1
+        last_nonfinite = not math.isfinite(err)
+        if rejected:
+            continue
+        code, extra = accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax)
+        nfev += extra
+        t = t_new
+        nacc += 1
+        if not clipped:
+            hgood = abs(hs)
+        if code != 0 or clipped:
+            break
+        if nacc >= max_steps:
+            code = TOO_MANY
+            break
+    reason[m] = code
+    nsteps[m] = nacc
+    h_out[m] = hgood if math.isfinite(hgood) else h
+    for j in range(n):
+        y_out[m, j] = y[j] if code == 0 else math.nan
+    return nfev
