@@ -421,11 +421,18 @@ def interruptible(tmp_path_factory):
     return case, ref
 
 
+def _interruptible_by_ctrl_c():
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _interrupted_then_resumed(case: Path, ref: Path, work: Path, sig: int, after_chunks: int):
     out = work / "out"
     ckpt = work / ".out.checkpoints"
     cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(out), "--chunk-members", "25", *CORE]
-    proc = subprocess.Popen(cmd, env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    # A job started in the background by a non-interactive shell (as CI runs the suite) inherits
+    # SIGINT ignored (POSIX), and Python keeps it so; the run under test is the interactive one.
+    proc = subprocess.Popen(cmd, env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=_interruptible_by_ctrl_c)
     try:
         _wait_for(lambda: proc.poll() is not None or len(list(ckpt.glob("*.npz"))) >= after_chunks, 180)
         interrupted = proc.poll() is None
