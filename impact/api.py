@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import platform
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
@@ -34,6 +34,7 @@ from .case import Case
 from .case import load_case as _read_case
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
+from .errors import SettingError
 from .model import equations
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
@@ -72,6 +73,21 @@ class AssessSettings:
     sensitivity: bool = True
     base_samples: int = 128
     dynamics: bool = True
+
+    def resolved(self, case: Case) -> "AssessSettings":
+        """These settings with the case's values filled in and checked (:class:`SettingError`)."""
+        members = self.members if self.members is not None else case.members
+        seed = self.seed if self.seed is not None else case.seed
+        if members < 1:
+            raise SettingError("members", f"must be at least 1, got {members}")
+        if seed < 0:
+            raise SettingError("seed", f"must be a non-negative whole number, got {seed}")
+        if self.sensitivity:
+            from .sensitivity import Settings as ScreenSettings
+            from .sensitivity import check_settings
+
+            check_settings(ScreenSettings(base_samples=self.base_samples, seed=seed))  # before any simulation
+        return replace(self, members=members, seed=seed)
 
 
 @dataclass
@@ -233,8 +249,8 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     from .execute import InProcess
 
     executor = executor or InProcess()
-    members = settings.members if settings.members is not None else case.members
-    seed = settings.seed if settings.seed is not None else case.seed
+    settings = settings.resolved(case)
+    members, seed = settings.members, settings.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
     ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)

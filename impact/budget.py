@@ -18,7 +18,7 @@ from pathlib import Path
 
 from .assess import run_chunk_size, summary_horizons
 from .case import Case
-from .errors import CaseError
+from .errors import CaseError, SettingError
 
 MiB = 2**20
 # Interpreter, numpy/scipy/pandas and one screening block. Calibrated on the README's figures
@@ -139,15 +139,19 @@ def estimate(case: Case, members: int, workers: int = 1, out: Path | None = None
                     (free_disk(out) if out is not None else None) if disk_free is ... else disk_free)
 
 
-def check_fits(est: Estimate, case: Case, members_field: tuple[str, str]):
+def check_fits(est: Estimate, case: Case, members_given: bool):
     """Refuse a run that would not fit, naming what to change and what would fit.
 
     Parameters
     ----------
-    members_field : (file, field)
-        Where the member count came from: ``("command line", "--members")`` or the case file
-        and ``"case.members"``.
+    members_given : bool
+        The member count was a run setting (the error is then a :class:`SettingError` for
+        ``members``), not the case file's ``case.members``.
     """
+
+    def too_many(message: str) -> Exception:
+        return SettingError("members", message) if members_given else CaseError(case.path, "case.members", message)
+
     if est.memory_limit is not None and est.memory > est.memory_limit:
         room = est.memory_limit - est.fixed
         fit = room // est.per_member if room > 0 else 0
@@ -159,12 +163,12 @@ def check_fits(est: Estimate, case: Case, members_field: tuple[str, str]):
                             f"memory for {est.members:,} members, more than the {_size(est.memory_limit)} allowed "
                             f"({MEMORY_SHARE:.0%} of this machine's); an output_step of at least "
                             f"{case.output_step * factor:.3g} {case.time_unit} would fit")
-        raise CaseError(*members_field, f"{est.members:,} members need about {_size(est.memory)} of memory, more than "
+        raise too_many(f"{est.members:,} members need about {_size(est.memory)} of memory, more than "
                                         f"the {_size(est.memory_limit)} allowed ({MEMORY_SHARE:.0%} of this machine's); "
                                         f"at most about {fit:,} members fit")
     if est.disk_free is not None and est.disk > est.disk_free:
         per = max(1, (est.disk - FIXED_DISK) // max(est.members, 1))
         fit = max(0, (est.disk_free - FIXED_DISK) // per)
-        raise CaseError(*members_field, f"{est.members:,} members need about {_size(est.disk)} on disk for checkpoints "
+        raise too_many(f"{est.members:,} members need about {_size(est.disk)} on disk for checkpoints "
                                         f"and tables, but only {_size(est.disk_free)} is free there; at most about "
-                                        f"{fit:,} members fit (or choose an --out on a larger disk)")
+                                        f"{fit:,} members fit (or choose a results folder `out` on a larger disk)")

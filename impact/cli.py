@@ -6,17 +6,22 @@ import argparse
 import signal
 import sys
 import time
-from pathlib import Path
 
-import numpy as np
 
 from . import __version__
-from .api import AssessSettings, assess, package_versions, prior_screen, write_results
+from .api import AssessSettings
 from .case import Case, load_case
 from .effects import event_text
-from .errors import CaseError, WriteError
+from .errors import CaseError, SettingError, WriteError, spell
 from .execute import WorkerLost
-from .outfolder import REPLACE_FLAG
+from .pipeline import Execution
+
+# API parameter -> flag: errors name the library's parameter, the command line shows its flag
+FLAGS = {name: "--" + name.replace("_", "-") for name in (
+    "members", "seed", "workers", "cluster", "chunk_members", "out", "replace_results", "resume", "paper",
+    "base_samples", "parameter", "option", "section", "steps", "transient", "window", "sample_dt", "max_period",
+    "period_tol", "tolerance", "failure_limit")}
+FLAGS.update(start="--from", stop="--to")
 
 # exit status of `impact assess` when the results are written but too thin for a verdict
 # (fewer plausible members than risk.min_members); 2 stays reserved for bad input
@@ -128,174 +133,69 @@ def describe_case(case: Case) -> str:
 
 def cmd_check(args) -> int:
     from .budget import check_fits, estimate
-    from .case import unused_parameters
     from .execute import machine_cores
+    from .pipeline import unused_warnings
 
     case = load_case(args.case)
     print(describe_case(case))
-    for line in _unused_warnings(case, unused_parameters(case)):
-        print(line)
+    for line in unused_warnings(case):
+        print(f"warning: {line}")
     est = estimate(case, case.members, machine_cores())
     print(est.describe())
-    check_fits(est, case, (case.path, "case.members"))
+    check_fits(est, case, members_given=False)
     print("case file is valid.")
     return 0
 
 
-def _unused_warnings(case: Case, names) -> list[str]:
-    """Declared parameters no field uses: sampled and reported, but they change nothing."""
-    return [f"warning: {case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears "
-            f"in the sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
-            for n in names]
-
-
-def _assess_plan(args, case: Case):
-    """Check every argument, the output folder and the resource estimate; touch nothing on disk.
-
-    Returns
-    -------
-    members, seed : int
-    folder : impact.outfolder.OutputFolder
-        Checked against the --out policy, not yet locked.
-    """
-    from .budget import check_fits, estimate
-    from .case import unused_parameters
-    from .execute import machine_cores
-    from .outfolder import OutputFolder
-
-    members = args.members if args.members is not None else case.members
-    seed = args.seed if args.seed is not None else case.seed
-    if members < 1:
-        raise CaseError("command line", "--members", "must be at least 1")
-    if args.chunk_members is not None and args.chunk_members < 1:
-        raise CaseError("command line", "--chunk-members", f"must be at least 1, got {args.chunk_members}")
-    if seed < 0:
-        raise CaseError("command line", "--seed", "must be a non-negative whole number")
-    if args.workers is not None and args.workers < 1:
-        raise CaseError("command line", "--workers", f"must be at least 1, got {args.workers}")
-    if not getattr(args, "no_sensitivity", False):
-        from .sensitivity import Settings, check_settings
-
-        check_settings(Settings(base_samples=args.base_samples, seed=seed))  # fail before any simulation
-    folder = OutputFolder(args.out, replace=args.replace_results)
-    est = estimate(case, members, 1 if args.cluster else (args.workers or machine_cores()), out=folder.path)
-    check_fits(est, case, ("command line", "--members") if args.members is not None else (case.path, "case.members"))
-    for line in _unused_warnings(case, unused_parameters(case)):
-        print(line, file=sys.stderr)
-    return members, seed, folder, est
+def _execution(args) -> Execution:
+    return Execution(workers=args.workers, cluster=args.cluster, chunk_members=getattr(args, "chunk_members", None))
 
 
 def cmd_assess(args) -> int:
-    from .assess import draw_block_size, run_chunk_size
-    from .execute import make_executor
-    from .results import Checkpoints
+    from .pipeline import assess_to_folder, unused_warnings
 
     case = load_case(args.case)
-    members, seed, folder, est = _assess_plan(args, case)
+    settings = AssessSettings(members=args.members, seed=args.seed, sensitivity=not args.no_sensitivity,
+                              base_samples=args.base_samples, dynamics=not args.no_dynamics)
+    for line in unused_warnings(case):
+        print(f"warning: {line}", file=sys.stderr)
     progress = _Progress(args.quiet)
-    progress(est.describe(), force=True)
-    executor = make_executor(args.workers, args.cluster)
-    try:
-        with folder:  # the lock: one run per output folder
-            if folder.stale_lock:
-                progress(f"took over the lock of a run that is gone (pid {folder.stale_lock.get('pid')})", force=True)
-            # a resumed run keeps the chunking of the run it continues (results never depend on it)
-            earlier = Checkpoints.previous(folder.path) if args.resume else None
-            chunk = ((earlier or {}).get("run_chunk") or args.chunk_members
-                     or run_chunk_size(members, executor.workers, runs=1 + len(case.options)))
-            block = (earlier or {}).get("draw_block") or draw_block_size(members, executor.workers)
-            fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
-                           "max_draws": case.max_draws, "draw_block": block, "run_chunk": chunk,
-                           "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
-            store = Checkpoints(folder.path, fingerprint, resume=args.resume)
-            if args.resume and any(store.dir.glob("*.npz")):
-                progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
-            settings = AssessSettings(members=members, seed=seed, sensitivity=not args.no_sensitivity,
-                                      base_samples=args.base_samples, dynamics=not args.no_dynamics)
-            try:
-                result = assess(case, settings, progress=lambda m: progress(m, force=True), executor=executor,
-                                store=store, block=block, chunk=chunk, command=sys.argv)
-            except CaseError:
-                store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
-                raise
-            with folder.stage() as tmp:
-                text = write_results(result, tmp, report=not args.no_report, paper=args.paper,
-                                     progress=lambda m: progress(m, force=True))
-            store.discard()
-    except BaseException:
-        executor.abort()  # interrupted or failed: end the workers now, keep the saved chunks
-        raise
-    executor.close()
-    print(text)
-    print(f"results written to {folder.path}")
-    _say_replaced(folder)
-    return EXIT_NO_VERDICT if result.thin else 0
+    written = assess_to_folder(case, settings, args.out, replace=args.replace_results, resume=args.resume,
+                               report=not args.no_report, paper=args.paper, execution=_execution(args),
+                               progress=lambda m: progress(m, force=True), command=sys.argv)
+    print(written.summary)
+    print(f"results written to {written.path}")
+    _say_replaced(written)
+    return EXIT_NO_VERDICT if written.result.thin else 0
 
 
-def _say_replaced(folder) -> None:
-    if folder.replaced:
-        print(f"{REPLACE_FLAG}: replaced {len(folder.replaced)} files impact had written in {folder.path}: "
-              + ", ".join(folder.replaced))
-    if folder.replaced and folder.kept:
-        print(f"kept {len(folder.kept)} other files there: " + ", ".join(folder.kept))
+def _say_replaced(written) -> None:
+    if written.replaced:
+        print(f"--replace-results: replaced {len(written.replaced)} files impact had written in {written.path}: "
+              + ", ".join(written.replaced))
+    if written.replaced and written.kept:
+        print(f"kept {len(written.kept)} other files there: " + ", ".join(written.kept))
 
 
 def cmd_report(args) -> int:
-    from .report import write_report
+    from .api import build_report
 
-    out = write_report(args.results, args.out, paper=args.paper)
+    out = build_report(args.results, args.out, paper=args.paper)
     print(f"report written to {out}")
     return 0
 
 
 def cmd_scan(args) -> int:
-    from .dynamics import declared_settings, section_species, settings_record
-    from .scan import scan_web
-    from .execute import make_executor
-    from .outfolder import OutputFolder
-    from .results import write_csv, write_json
+    from .pipeline import ScanSettings, scan_to_folder
 
     case = load_case(args.case)
-    if args.steps < 2:
-        raise CaseError("command line", "--steps", "must be at least 2")
-    if not args.stop > args.start:
-        raise CaseError("command line", "--to", f"must be greater than --from ({args.start:g})")
-    for flag, v in (("--transient", args.transient), ("--window", args.window), ("--sample-dt", args.sample_dt)):
-        if v is not None and not (v > 0 if flag != "--transient" else v >= 0):
-            raise CaseError("command line", flag, "must be a positive time")
-    if args.max_period is not None and not 1 <= args.max_period <= 64:
-        raise CaseError("command line", "--max-period", "must be a whole number from 1 to 64")
-    if args.period_tol is not None and not 0 < args.period_tol <= 1:
-        raise CaseError("command line", "--period-tol", "must be greater than 0 and at most 1")
-    _, section = section_species(case, args.section)
-    settings, declared = declared_settings(case, transient=args.transient, window=args.window, sample_dt=args.sample_dt,
-                                           max_period=args.max_period, period_tol=args.period_tol)
-    grid = np.linspace(args.start, args.stop, args.steps)
-    folder = OutputFolder(args.out, replace=args.replace_results)
-    progress = _Progress(args.quiet)
-    t0 = time.monotonic()
-    executor = make_executor(args.workers, args.cluster)
-    with folder, folder.stage() as tmp:
-        try:
-            scan, points, trans = scan_web(case, args.parameter, grid, settings, option=args.option, executor=executor,
-                                           section=section, continuation=not args.parallel, progress=progress)
-        except BaseException:
-            executor.abort()
-            raise
-        executor.close()
-        write_csv(scan, tmp / "dynamics" / "scan.csv")
-        write_csv(points, tmp / "dynamics" / "scan_points.csv")
-        write_csv(trans, tmp / "dynamics" / "transitions.csv")
-        seconds = time.monotonic() - t0
-        write_json(settings_record(settings, parameter=args.parameter, values=grid.tolist(), option=args.option,
-                                   execution=executor.describe(),
-                                   section=f"maxima of {section}", continuation=not args.parallel, others="every other parameter at its prior median",
-                                   declared=declared,
-                                   seconds=round(seconds, 2), failed=int(points.failed.sum())),
-                   tmp / "dynamics" / "dynamics.json")
-        write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["scan"],
-                    "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title}},
-                   tmp / "manifest.json")
+    scan = ScanSettings(parameter=args.parameter, start=args.start, stop=args.stop, steps=args.steps,
+                        option=args.option, section=args.section, transient=args.transient, window=args.window,
+                        sample_dt=args.sample_dt, max_period=args.max_period, period_tol=args.period_tol,
+                        continuation=not args.parallel)
+    written = scan_to_folder(case, scan, args.out, replace=args.replace_results, execution=_execution(args),
+                             progress=_Progress(args.quiet), command=sys.argv)
+    points, trans = written.tables["dynamics/scan_points.csv"], written.tables["dynamics/transitions.csv"]
     for _, r in points.iterrows():
         print(f"{args.parameter} = {r.value:.6g}: {r.regime}" + (f" (period {r.period})" if r.regime == "cycle" else "")
               + (f" ({r.reason})" if r.regime == "undetermined" else "") + f", λ = {r.lyapunov:.3g} ± {r.lyapunov_se:.2g}")
@@ -303,57 +203,26 @@ def cmd_scan(args) -> int:
         print(f"transition {r.kind}: {r.from_regime} -> {r.to_regime} between {r.from_value:.6g} and {r.to_value:.6g}")
     if points.failed.any():
         print(f"WARNING: {int(points.failed.sum())} scan values failed numerically")
-    print(f"results written to {folder.path} ({len(grid) / max(seconds, 1e-9):.2f} values per second)")
-    _say_replaced(folder)
+    print(f"results written to {written.path} ({written.summary})")
+    _say_replaced(written)
     return 0
 
 
-def _screen_settings(case: Case, args, seed: int):
-    """The prior screen's settings from the command line."""
-    from .sensitivity import Settings
-
-    screen = {"auto": None, "morris": True, "none": False}[args.screen]
-    return Settings(base_samples=args.base_samples, second_order=args.second_order, seed=seed,
-                    confidence=case.risk.confidence, tolerance=args.tolerance, failure_limit=args.failure_limit,
-                    screen=screen)
-
-
 def cmd_sensitivity(args) -> int:
-    from .execute import make_executor
-    from .outfolder import OutputFolder
-    from .results import write_csv, write_json
-    from .sensitivity import check_settings
+    from .pipeline import screen_to_folder
+    from .sensitivity import Settings
 
     case = load_case(args.case)
     seed = args.seed if args.seed is not None else case.seed
-    if seed < 0:
-        raise CaseError("command line", "--seed", "must be a non-negative whole number")
-    folder = OutputFolder(args.out, replace=args.replace_results)
-    progress = _Progress(args.quiet)
-    executor = make_executor(args.workers, args.cluster)
-    try:
-        settings = _screen_settings(case, args, seed)
-        check_settings(settings)
-        with folder, folder.stage() as tmp:
-            tables, records, entry = prior_screen(case, settings, progress, executor)
-            for rel, frame in tables.items():
-                write_csv(frame, tmp / rel)
-            for rel, rec in records.items():
-                write_json(rec, tmp / rel)
-            print(f"prior screen: {entry['runs']} runs, N = {entry['N']}; {entry['not_converged']} outputs not converged; "
-                  f"indices conditional on: {entry['conditional_on']}")
-            write_json({"tool": "impact", "version": __version__, "command": sys.argv, "stages": ["sensitivity"],
-                        "seed": seed, "sensitivity": entry, "packages": package_versions(),
-                        "execution": executor.describe(),
-                        "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                                 "invented": case.invented}},
-                       tmp / "manifest.json")
-    except BaseException:
-        executor.abort()
-        raise
-    executor.close()
-    print(f"results written to {folder.path}")
-    _say_replaced(folder)
+    screen = {"auto": None, "morris": True, "none": False}[args.screen]
+    settings = Settings(base_samples=args.base_samples, second_order=args.second_order, seed=seed,
+                        confidence=case.risk.confidence, tolerance=args.tolerance, failure_limit=args.failure_limit,
+                        screen=screen)
+    written = screen_to_folder(case, settings, args.out, replace=args.replace_results, execution=_execution(args),
+                               progress=_Progress(args.quiet), command=sys.argv)
+    print(written.summary)
+    print(f"results written to {written.path}")
+    _say_replaced(written)
     return 0
 
 
@@ -377,7 +246,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("assess", help="run the full assessment of a case")
     p.add_argument("case")
     p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
-    p.add_argument(REPLACE_FLAG, action="store_true",
+    p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's)")
     p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
@@ -398,7 +267,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
     p.add_argument("case")
     p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
-    p.add_argument(REPLACE_FLAG, action="store_true",
+    p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--base-samples", type=int, default=1024, help="Sobol base samples N, a power of two (default 1024)")
     p.add_argument("--second-order", action="store_true", help="also estimate second-order (pairwise) indices")
@@ -420,7 +289,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--steps", type=int, required=True, help="number of values (at least 2)")
     p.add_argument("--option", default=None, help="run under this option's press interventions")
     p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
-    p.add_argument(REPLACE_FLAG, action="store_true",
+    p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
     p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
     p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
@@ -461,11 +330,14 @@ def main(argv: list[str] | None = None) -> int:
         previous = None
     try:
         return args.func(args)
+    except SettingError as exc:
+        print(f"error: command line: {FLAGS.get(exc.parameter, exc.parameter)}: {exc.render(FLAGS)}", file=sys.stderr)
+        return 2
     except CaseError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(f"error: {spell(str(exc), FLAGS)}", file=sys.stderr)
         return 2
     except WriteError as exc:
-        print(f"error: {exc.path}: {exc.message}", file=sys.stderr)
+        print(f"error: {exc.path}: {spell(exc.message, FLAGS)}", file=sys.stderr)
         return 2
     except OSError as exc:
         # not raised as a ReadError or WriteError: say what the system said, and where

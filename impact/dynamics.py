@@ -22,7 +22,7 @@ import numpy as np
 
 from . import regimes as rg
 from .case import Case
-from .errors import CaseError
+from .errors import SettingError
 from .integrate import StepView, integrate_segment
 from .jacobian import jacobian, tangent
 from .model import Controls, FoodWeb, WebParams, WebRHS
@@ -408,11 +408,11 @@ def declared_settings(case: Case, base: dict | None = None, **command_line) -> t
     return DynamicsSettings(**{**(base or {}), **table, **cli}), {"case file": table, "command line": cli}
 
 
-def section_species(case: Case, name: str | None, field: str = "--section") -> tuple[int, str]:
+def section_species(case: Case, name: str | None) -> tuple[int, str]:
     """Column and name of the species whose successive maxima form the Poincaré section.
 
     ``None`` takes the case file's ``[dynamics] section`` if declared, else the last declared
-    species. An unknown name is a user error.
+    species. An unknown name is a :class:`SettingError` for ``section``.
     """
     names = case.species_names
     if name is None and case.dynamics is not None and case.dynamics.section is not None:
@@ -420,7 +420,7 @@ def section_species(case: Case, name: str | None, field: str = "--section") -> t
     if name is None:
         return len(names) - 1, names[-1]
     if name not in names:
-        raise CaseError("command line", field, f"unknown species {name!r} for the section; allowed: {', '.join(names)}")
+        raise SettingError("section", f"unknown species {name!r} for the section; allowed: {', '.join(names)}")
     return names.index(name), name
 
 

@@ -24,7 +24,7 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 
-from .errors import CaseError
+from .errors import SettingError
 
 # A task whose worker process dies is sent again this many times before the run gives up.
 RETRIES = 2
@@ -182,22 +182,19 @@ class DaskCluster:
         try:
             from distributed import Client
         except ImportError:
-            raise CaseError("command line", "--cluster",
-                            "needs dask.distributed: pip install 'impact[cluster]' (or dask[distributed])") from None
+            raise SettingError("cluster", "needs dask.distributed: pip install 'impact[cluster]' (or dask[distributed])") from None
         self.address = address
         try:
             self._client = Client(address, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
-            raise CaseError("command line", "--cluster",
-                            f"no Dask scheduler answered at {address} within {timeout:g} s ({type(exc).__name__}); "
+            raise SettingError("cluster", f"no Dask scheduler answered at {address} within {timeout:g} s ({type(exc).__name__}); "
                             "give the address a scheduler prints, e.g. tcp://10.0.0.5:8786") from None
         try:
             # a scheduler with no workers would take the tasks and never run them
             self._client.wait_for_workers(1, timeout=timeout)
         except (OSError, TimeoutError):
             self._client.close()
-            raise CaseError("command line", "--cluster",
-                            f"the Dask scheduler at {address} has no workers (none joined within {timeout:g} s); "
+            raise SettingError("cluster", f"the Dask scheduler at {address} has no workers (none joined within {timeout:g} s); "
                             f"start some with: dask worker {address}") from None
         info = self._client.scheduler_info()
         self.workers = max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
@@ -235,7 +232,7 @@ def make_executor(workers: int | None = None, cluster: str | None = None):
         return DaskCluster(cluster)
     n = machine_cores() if workers is None else int(workers)
     if n < 1:
-        raise CaseError("command line", "--workers", f"must be at least 1, got {n}")
+        raise SettingError("workers", f"must be at least 1, got {n}")
     return InProcess() if n == 1 else LocalPool(n)
 
 

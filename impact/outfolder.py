@@ -2,15 +2,15 @@
 
 Policy (also in the README):
 
-* A new or empty ``--out`` is created when the run completes; until then the results are built
+* A new or empty results folder (``out``) is created when the run completes; until then the results are built
   in a hidden sibling ``.NAME.partial-PID`` and moved into place only when complete.
-* An existing, non-empty ``--out`` is refused before anything is computed, unless the command
-  names ``--replace-results``. Even then only the files impact wrote there are replaced (those
+* An existing, non-empty one is refused before anything is computed, unless the command
+  sets ``replace_results`` (``--replace-results``). Even then only the files impact wrote there are replaced (those
   listed in its ``inventory.json``, and the file names impact writes); every other file (notes,
   a spreadsheet the user added) is kept, and the command lists what it replaced and kept.
   A folder that holds no impact results at all is never written into.
 * One run at a time per output folder: ``.NAME.lock`` beside the folder holds the owner's pid,
-  host and process start time. A second run on the same ``--out`` refuses at once; a lock whose
+  host and process start time. A second run on the same folder refuses at once; a lock whose
   process is gone (same host) is stale and is taken over. Holding the lock, a run removes the
   partial and replaced folders that killed runs left behind.
 * Folders and files are created with the ordinary mode the umask gives (no private temp modes).
@@ -28,15 +28,14 @@ import socket
 import time
 from pathlib import Path
 
-from .errors import CaseError, WriteError
+from .errors import SettingError, WriteError
 
-REPLACE_FLAG = "--replace-results"
 # A half-made lock file (written, not yet linked into place) older than this belongs to no
 # starting run and may be removed (seconds; the write-then-link takes milliseconds).
 STALE_TMP_SECONDS = 60
 INVENTORY = "inventory.json"
 # Names impact writes into a results folder (older folders have no inventory.json): a file with
-# one of these names is treated as impact's own when --replace-results replaces a folder.
+# one of these names is treated as impact's own when replace_results replaces a folder.
 TOOL_FILES = frozenset({
     INVENTORY, "manifest.json", "risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "bands.csv",
     "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "README.md",
@@ -121,26 +120,25 @@ class OutputFolder:
         self.lock = self.path.parent / f".{self.path.name}.lock"
         self._held = False
         if not self.path.name:
-            raise CaseError("command line", "--out", f"{out!r} is the file system root; name a folder for the results")
+            raise SettingError("out", f"{out!r} is the file system root; name a folder for the results")
         if self.path.exists() and not self.path.is_dir():
-            raise CaseError("command line", "--out", f"{self.path} exists and is not a folder; choose a new or empty folder")
+            raise SettingError("out", f"{self.path} exists and is not a folder; choose a new or empty folder")
         try:
             existing = _files(self.path) if self.path.is_dir() else []
         except OSError as exc:
-            raise CaseError("command line", "--out", f"{self.path} cannot be listed ({exc.strerror or exc})") from None
+            raise SettingError("out", f"{self.path} cannot be listed ({exc.strerror or exc})") from None
         if not existing:
             return
         mine = tool_files(self.path)
         if not self.replace:
             what = "results of an earlier run" if mine else f"{len(existing)} files not written by impact"
-            raise CaseError("command line", "--out",
-                            f"{self.path} already exists and holds {what}; nothing was changed. Choose a new or "
-                            f"empty folder" + (f", or add {REPLACE_FLAG} to replace the {len(mine)} files impact "
+            raise SettingError("out", f"{self.path} already exists and holds {what}; nothing was changed. Choose a new or "
+                            f"empty folder" + (f", or set `replace_results` to replace the {len(mine)} files impact "
                                                f"wrote there" + (f" (the {len(existing) - len(mine)} other files "
                                                                  "are kept)" if len(existing) > len(mine) else "")
                                                if mine else ""))
         if not mine:
-            raise CaseError("command line", REPLACE_FLAG,
+            raise SettingError("replace_results",
                             f"{self.path} holds no results written by impact ({len(existing)} other files); "
                             "choose a new or empty folder: impact never writes into a folder of other files")
 
@@ -156,7 +154,7 @@ class OutputFolder:
             tmp.write_text(json.dumps(record) + "\n", encoding="utf-8")
         except OSError as exc:
             raise WriteError(exc.filename or self.path.parent, f"cannot write here ({exc.strerror or exc}); "
-                                                               "choose another --out") from None
+                                                               "choose another `out`") from None
         try:
             for _ in range(3):
                 try:
@@ -166,7 +164,7 @@ class OutputFolder:
                 except FileExistsError:
                     self._take_over_stale()
             else:
-                raise CaseError("command line", "--out", f"{self.path} is locked by {self.lock}, which keeps "
+                raise SettingError("out", f"{self.path} is locked by {self.lock}, which keeps "
                                                          "changing; is another run starting on the same folder?")
         except OSError as exc:
             raise WriteError(self.lock, f"cannot take the lock ({exc.strerror or exc})") from None
@@ -187,9 +185,9 @@ class OutputFolder:
         alive = _alive(record) if record else False
         if alive is not False:
             owner = f"pid {record.get('pid')} on host {record.get('host')}, since {record.get('started_utc')}"
-            hint = (f"wait for it to finish or choose another --out" if alive else
-                    f"if that run is no longer alive, delete {self.lock}; otherwise wait or choose another --out")
-            raise CaseError("command line", "--out", f"{self.path} is in use by another impact run ({owner}); {hint}")
+            hint = ("wait for it to finish or choose another `out`" if alive else
+                    f"if that run is no longer alive, delete {self.lock}; otherwise wait or choose another `out`")
+            raise SettingError("out", f"{self.path} is in use by another impact run ({owner}); {hint}")
         # stale: move it aside atomically, so that of two runs taking it over only one succeeds
         aside = self.lock.with_name(f"{self.lock.name}.stale-{os.getpid()}")
         try:
@@ -281,7 +279,7 @@ class _Staging:
             self.tmp.mkdir(mode=0o777)  # the umask decides, as for any folder the user makes
         except OSError as exc:
             raise WriteError(exc.filename or self.tmp, f"cannot write here ({exc.strerror or exc}); "
-                                                       "choose another --out") from None
+                                                       "choose another `out`") from None
         return self.tmp
 
     def __exit__(self, kind, exc, tb):

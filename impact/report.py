@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .cautions import cautions, share_text
-from .errors import CaseError, ReadError, WriteError
+from .errors import CaseError, ReadError, SettingError, WriteError
 from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
 from .verdict import reading, thin_run, with_term
@@ -695,7 +695,7 @@ def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
     import jinja2
 
     if paper not in PAPERS:
-        raise CaseError("command line", "--paper", f"must be one of {', '.join(PAPERS)}")
+        raise SettingError("paper", f"must be one of {', '.join(PAPERS)}")
     root = template_root()
     assets = template_assets(root)
     env = jinja2.Environment(loader=jinja2.FunctionLoader(lambda n: root.joinpath(n).read_text(encoding="utf-8")),

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import CaseError, ReadError, WriteError
+from .errors import CaseError, ReadError, SettingError, WriteError
 
 
 def write_csv(frame: pd.DataFrame, path: Path):
@@ -194,9 +194,8 @@ class Checkpoints:
                 old = json.loads(fp.read_text(encoding="utf-8"))
                 if old != self.fingerprint:
                     diff = sorted(k for k in set(old) | set(self.fingerprint) if old.get(k) != self.fingerprint.get(k))
-                    raise CaseError("command line", "--resume",
-                                    f"the checkpoints in {self.dir} were written for a different run (differs in: "
-                                    f"{', '.join(diff)}); run again without --resume to start afresh")
+                    raise SettingError("resume", f"the checkpoints in {self.dir} were written for a different run (differs in: "
+                                    f"{', '.join(diff)}); run again without `resume` to start afresh")
             elif self.dir.exists():
                 shutil.rmtree(self.dir)
             self.dir.mkdir(parents=True, exist_ok=True)
@@ -204,7 +203,7 @@ class Checkpoints:
                 _atomic_write(fp, (json.dumps(self.fingerprint, indent=2) + "\n").encode("utf-8"))
         except OSError as exc:
             raise WriteError(exc.filename or self.dir, f"cannot write checkpoints here ({exc.strerror or exc}); "
-                                                       "choose another --out") from None
+                                                       "choose another `out`") from None
 
     @staticmethod
     def previous(out: Path) -> dict | None:
@@ -242,7 +241,7 @@ class Checkpoints:
         except OSError as exc:
             raise WriteError(self._path(key), f"could not save a checkpoint ({exc.strerror or exc}); "
                                               "the checkpoints already written are intact: free space and rerun "
-                                              "with --resume") from None
+                                              "with `resume`") from None
         self.saved += 1
 
     def get_summaries(self, key: str):

@@ -10,7 +10,7 @@ import pandas as pd
 from .case import Case
 from .diagnose import diagnose_web
 from .dynamics import DynamicsSettings, section_species
-from .errors import CaseError
+from .errors import SettingError
 from .integrate import FAILURE_REASONS
 from .model import Controls, build_web, web_params
 
@@ -89,19 +89,17 @@ def scan_target(case: Case, name: str, option_name: str | None):
             iv = ivs[iv_name]
             allowed = [f for f in ("rate", "fraction", "factor") if getattr(iv, f) is not None]
             if fld not in allowed:
-                raise CaseError("command line", "--parameter",
-                                f"intervention {iv_name!r} ({iv.kind}) has no intensity {fld!r}; use one of: {', '.join(allowed) or 'none'}")
+                raise SettingError("parameter", f"intervention {iv_name!r} ({iv.kind}) has no intensity {fld!r}; use one of: {', '.join(allowed) or 'none'}")
             opt = next((o for o in case.options if o.name == option_name), None)
             if opt is None or iv_name not in opt.interventions:
-                raise CaseError("command line", "--option",
-                                f"scanning {name!r} needs --option naming an option that uses intervention {iv_name!r}")
+                raise SettingError("option", f"scanning {name!r} needs `option` naming an option that uses intervention {iv_name!r}")
             def at(v):
                 new_iv = replace(iv, **{fld: float(v)})
                 return replace(case, interventions=tuple(new_iv if x.name == iv_name else x for x in case.interventions)), base
             return at
     choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in ("rate", "fraction", "factor")
                               if getattr(iv, f) is not None]
-    raise CaseError("command line", "--parameter", f"unknown quantity {name!r}; choose a parameter or an intervention intensity: {', '.join(choices)}")
+    raise SettingError("parameter", f"unknown quantity {name!r}; choose a parameter or an intervention intensity: {', '.join(choices)}")
 
 
 def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -> Controls:
@@ -180,7 +178,7 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
     """Bifurcation scan of one quantity with every other parameter at its prior median.
 
     ``section`` names the species whose maxima form the Poincaré section (default: the last
-    declared species); an unknown name raises :class:`CaseError` for ``--section``.
+    declared species); an unknown name raises :class:`SettingError` for ``section``.
 
     With ``continuation`` each value starts where the previous one ended (so a branch is
     followed and hysteresis shows); without it all values run side by side as one ensemble
@@ -196,7 +194,7 @@ def scan_web(case: Case, parameter: str, grid: np.ndarray, s: DynamicsSettings, 
     transitions : DataFrame, see :func:`transitions`
     """
     if option is not None and option not in [o.name for o in case.options]:
-        raise CaseError("command line", "--option", f"unknown option {option!r}; declared: {', '.join(o.name for o in case.options) or 'none'}")
+        raise SettingError("option", f"unknown option {option!r}; declared: {', '.join(o.name for o in case.options) or 'none'}")
     grid = np.asarray(grid, float)
     section, _ = section_species(case, section)
     at = scan_target(case, parameter, option)

@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .case import Case
-from .errors import CaseError
+from .errors import CaseError, SettingError
 
 PURPOSE_SENSITIVITY = 7  # spawn-key purpose for the design scramble and the bootstrap
 UNIT_EPS = 1e-10  # keep quasi-random points off the cube faces, where some inverse CDFs are infinite
@@ -545,19 +545,19 @@ class Settings:
     given_data: bool = True  # also first-order indices on the plausible subset (headline metrics only)
 
 
-def check_settings(s: Settings, source: str = "command line"):
-    """Raise CaseError for settings no study can run with."""
+def check_settings(s: Settings):
+    """Raise :class:`SettingError` for settings no study can run with."""
     N = s.base_samples
     if N < 16 or N & (N - 1):
-        raise CaseError(source, "--base-samples", f"must be a power of two of at least 16 (e.g. 256, 1024), got {N}")
+        raise SettingError("base_samples", f"must be a power of two of at least 16 (e.g. 256, 1024), got {N}")
     if s.seed < 0:
-        raise CaseError(source, "--seed", "must be a non-negative whole number")
+        raise SettingError("seed", "must be a non-negative whole number")
     if not 0 < s.tolerance < 1:
-        raise CaseError(source, "--tolerance", f"must lie between 0 and 1, got {s.tolerance}")
+        raise SettingError("tolerance", f"must lie between 0 and 1, got {s.tolerance}")
     if not 0 <= s.failure_limit < 1:
-        raise CaseError(source, "--failure-limit", f"must lie in [0, 1), got {s.failure_limit}")
+        raise SettingError("failure_limit", f"must lie in [0, 1), got {s.failure_limit}")
     if s.screen_trajectories < 2:
-        raise CaseError(source, "--screen-trajectories", "must be at least 2")
+        raise SettingError("screen_trajectories", "must be at least 2")
 
 
 POLICY = (

@@ -31,7 +31,7 @@ STAGES = [
     {"effects", "results", "outfolder", "budget"},
     {"decision", "sensitivity", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"cautions", "verdict", "webfigure", "report"},
-    {"api"},
+    {"api", "pipeline"},
     {"cli"},
 ]
 

@@ -23,7 +23,7 @@ import pytest
 from casefiles import decline_case, web_case, write_case
 from impact.case import load_case, unused_parameters
 from impact.cli import main
-from impact.errors import CaseError, ReadError, WriteError
+from impact.errors import CaseError, ReadError, SettingError, WriteError
 
 CORE = ["--quiet", "--no-sensitivity", "--no-dynamics", "--no-report", "--workers", "1"]
 ENV = {**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)}
@@ -350,7 +350,7 @@ def test_a_billion_members_is_refused_at_once_saying_what_fits(small, tmp_path, 
 
     c = load_case(case)
     assert fit > 0
-    check_fits(estimate(c, fit, 1), c, ("command line", "--members"))  # what it says fits does fit
+    check_fits(estimate(c, fit, 1), c, members_given=True)  # what it says fits does fit
 
 
 def test_check_reports_the_estimate(small, capsys):
@@ -375,9 +375,9 @@ def test_a_run_too_big_for_the_disk_is_refused(small):
 
     c = load_case(small[0])
     est = estimate(c, 10_000, 1, memory=None, disk_free=2**20)
-    with pytest.raises(CaseError) as err:
-        check_fits(est, c, ("command line", "--members"))
-    assert err.value.field == "--members" and "on disk" in err.value.message
+    with pytest.raises(SettingError) as err:
+        check_fits(est, c, members_given=True)
+    assert err.value.parameter == "members" and "on disk" in err.value.message
 
 
 # ------------------------------------------------------------------ 7. leftovers, signals, workers

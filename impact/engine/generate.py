@@ -26,7 +26,7 @@ from . import kernel
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
 STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member")
-_loaded: dict[bytes, object] = {}  # structure table bytes -> loaded module
+_loaded: dict[tuple[str, bytes], object] = {}  # (cache folder, structure table bytes) -> loaded module
 
 
 def cache_dir() -> Path:
@@ -121,12 +121,12 @@ def _fix_state_size(source: str, n: int) -> str:
 
 def specialised(st: np.ndarray):
     """The generated module for structure table ``st`` (written and compiled on first use)."""
-    memo = st.tobytes()
+    folder = cache_dir()
+    memo = (str(folder), st.tobytes())  # a kernel cache named for this run is this run's
     if memo in _loaded:  # reading the kernel's source again would cost milliseconds per segment
         return _loaded[memo]
     source = module_source(st)
     key = hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
-    folder = cache_dir()
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError:  # e.g. no writable home directory: fall back to the temporary directory
