@@ -353,3 +353,19 @@ def test_lyapunov_at_a_stable_equilibrium_is_the_leading_eigenvalue(tmp_path, fa
     # the 99 % interval from the spread of eight sub-window exponents covers the eigenvalue
     assert out["regime"][0] == "equilibrium"
     assert abs(out["lyapunov"][0] - leading) <= 3.5 * out["lyapunov_se"][0]
+
+
+def test_scan_settings_errors_name_the_parameter_and_the_cli_its_flag(tmp_path, capsys):
+    """The library speaks of parameters (``stop``, ``start``); the command line of its flags."""
+    from impact.errors import SettingError
+    from impact.pipeline import ScanSettings
+
+    with pytest.raises(SettingError) as err:
+        ScanSettings(parameter="K", start=2.0, stop=1.0, steps=3).check()
+    assert err.value.parameter == "stop" and "start (2)" in err.value.render({})
+    path = rm_case(tmp_path, 1.0)
+    rc = main(["scan", str(path), "--parameter", "K", "--from", "2", "--to", "1", "--steps", "3",
+               "--out", str(tmp_path / "o"), "--quiet"])
+    err_text = capsys.readouterr().err
+    assert rc == 2 and "error: command line: --to: must be greater than --from (2)" in err_text
+    assert not (tmp_path / "o").exists()
