@@ -12,7 +12,7 @@ from . import __version__
 from .api import AssessSettings
 from .case import Case, load_case
 from .effects import event_text
-from .errors import CaseError, SettingError, WriteError, spell
+from .errors import CaseError, InstallationError, SettingError, WriteError, spell
 from .execute import WorkerLost
 from .pipeline import Execution
 
@@ -339,6 +339,9 @@ def main(argv: list[str] | None = None) -> int:
     except WriteError as exc:
         print(f"error: {exc.path}: {spell(exc.message, FLAGS)}", file=sys.stderr)
         return 2
+    except InstallationError as exc:
+        print(f"error: installation: {exc}", file=sys.stderr)
+        return 1
     except OSError as exc:
         # not raised as a ReadError or WriteError: say what the system said, and where
         print(f"error: {exc.filename or getattr(args, 'out', None) or 'impact'}: {exc.strerror or exc}", file=sys.stderr)

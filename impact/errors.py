@@ -72,7 +72,12 @@ def spell(message: str, names: Mapping[str, str]) -> str:
 
 
 class ReadError(CaseError):
-    """An input file exists (or should) but could not be read: permissions, a folder, I/O."""
+    """An input that exists (or should) but cannot be used: a case file that cannot be read
+    (permissions, a folder, I/O), or a results folder that is missing, incomplete or damaged."""
+
+
+class InstallationError(Exception):
+    """impact's own files (the report templates) are missing: a broken installation, not bad input."""
 
 
 class WriteError(Exception):

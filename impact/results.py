@@ -11,12 +11,13 @@ from __future__ import annotations
 import json
 import os
 import shutil
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .errors import CaseError, ReadError, SettingError, WriteError
+from .errors import ReadError, SettingError, WriteError
 
 
 def write_csv(frame: pd.DataFrame, path: Path):
@@ -47,11 +48,11 @@ def read_manifest(results: Path) -> dict:
     try:
         manifest = json.loads(path.read_bytes().decode("utf-8"))
     except FileNotFoundError:
-        raise CaseError(str(results), "manifest.json", "not found; point at a directory written by `impact assess`") from None
+        raise ReadError(str(results), "manifest.json", "not found; point at a directory written by `impact assess`") from None
     except UnicodeDecodeError as exc:
-        raise CaseError(str(path), "", f"is not UTF-8 text (byte {exc.start}); the results folder is damaged") from None
+        raise ReadError(str(path), "", f"is not UTF-8 text (byte {exc.start}); the results folder is damaged") from None
     except json.JSONDecodeError as exc:
-        raise CaseError(str(path), "", f"is not valid JSON ({exc})") from None
+        raise ReadError(str(path), "", f"is not valid JSON ({exc})") from None
     except OSError as exc:
         raise ReadError(str(path), "", f"cannot be read ({exc.strerror or exc})") from None
     check_manifest(manifest, path)
@@ -118,29 +119,29 @@ def _type_name(kind) -> str:
 def check_manifest(manifest, path: Path):
     """Refuse a manifest whose fields the report needs are missing or of the wrong type."""
     if not isinstance(manifest, dict):
-        raise CaseError(str(path), "", "must be a JSON object; the results folder is damaged")
+        raise ReadError(str(path), "", "must be a JSON object; the results folder is damaged")
     for key, (kind, required) in MANIFEST_FIELDS.items():
         if key not in manifest:
             if required:
-                raise CaseError(str(path), key, "missing; the results directory is incomplete")
+                raise ReadError(str(path), key, "missing; the results directory is incomplete")
             continue
         v = manifest[key]
         if isinstance(v, bool) or not isinstance(v, kind):
-            raise CaseError(str(path), key, f"must be {_type_name(kind)}, got {type(v).__name__}; the results folder is damaged")
+            raise ReadError(str(path), key, f"must be {_type_name(kind)}, got {type(v).__name__}; the results folder is damaged")
     for i, h in enumerate(manifest["horizons"]):
         if isinstance(h, bool) or not isinstance(h, _NUMBER):
-            raise CaseError(str(path), f"horizons[{i}]", f"must be a number, got {h!r}")
+            raise ReadError(str(path), f"horizons[{i}]", f"must be a number, got {h!r}")
     if not manifest["horizons"]:
-        raise CaseError(str(path), "horizons", "must list at least one horizon")
+        raise ReadError(str(path), "horizons", "must list at least one horizon")
     for key, fields in MANIFEST_ENTRIES.items():
         for i, entry in enumerate(manifest.get(key, [])):
             if not isinstance(entry, dict):
-                raise CaseError(str(path), f"{key}[{i}]", f"must be an object, got {type(entry).__name__}")
+                raise ReadError(str(path), f"{key}[{i}]", f"must be an object, got {type(entry).__name__}")
             for f, kind in fields.items():
                 if f in entry and not isinstance(entry[f], kind):
-                    raise CaseError(str(path), f"{key}[{i}].{f}", f"must be {_type_name(kind)}, got {type(entry[f]).__name__}")
+                    raise ReadError(str(path), f"{key}[{i}].{f}", f"must be {_type_name(kind)}, got {type(entry[f]).__name__}")
                 if f not in entry and f == "name":
-                    raise CaseError(str(path), f"{key}[{i}].name", "missing; the results folder is damaged")
+                    raise ReadError(str(path), f"{key}[{i}].name", "missing; the results folder is damaged")
 
 
 def check_table(frame: pd.DataFrame, path: Path, relative: str):
@@ -153,13 +154,13 @@ def check_table(frame: pd.DataFrame, path: Path, relative: str):
     required, numeric = TABLES[relative]
     missing = [c for c in required if c not in frame.columns]
     if missing:
-        raise CaseError(str(path), missing[0], f"column missing (the table needs: {', '.join(required)}); "
+        raise ReadError(str(path), missing[0], f"column missing (the table needs: {', '.join(required)}); "
                                                "the results folder is damaged")
     for c in numeric:
         cells = frame[c].astype(str)
         bad = cells[(cells != "") & pd.to_numeric(cells, errors="coerce").isna() & (cells.str.lower() != "nan")]
         if len(bad):
-            raise CaseError(str(path), c, f"row {int(bad.index[0]) + 2} holds {bad.iloc[0]!r}, not a number; "
+            raise ReadError(str(path), c, f"row {int(bad.index[0]) + 2} holds {bad.iloc[0]!r}, not a number; "
                                           "the results folder is damaged")
 
 
@@ -284,3 +285,94 @@ def _atomic_write(path: Path, data: bytes):
     finally:
         if tmp.exists():
             tmp.unlink()
+
+
+# ----------------------------------------------------------------------------- reading back
+
+# columns kept as text when a results table is read back (every other column is a number)
+TEXT_COLUMNS = {
+    "option", "species", "metric", "unit", "role", "direct", "statistic", "interval", "objective", "measure", "event",
+    "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
+    "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
+    "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
+}
+
+@dataclass
+class Results:
+    """A results directory read back: the manifest and its tables.
+
+    ``sensitivity`` and ``dynamics`` map file stems to tables (``None`` when the stage did not run).
+    """
+
+    path: Path
+    manifest: dict
+    risk: pd.DataFrame
+    bands: pd.DataFrame
+    priors: pd.DataFrame
+    effects: pd.DataFrame
+    objectives: pd.DataFrame
+    comparisons: pd.DataFrame
+    sensitivity: dict | None = None
+    dynamics: dict | None = None
+
+
+def read_table(path: Path) -> pd.DataFrame:
+    """Read a results CSV keeping names as text (a species called "NA" stays "NA").
+
+    The table is checked against the results schema (:data:`impact.results.TABLES`) first: a
+    missing column or text in a number column is refused naming the file and the column.
+    """
+    path = Path(path)
+    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics") else path.name
+    try:
+        df = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except FileNotFoundError:
+        raise ReadError(str(path.parent), path.name, "not found; point at a directory written by `impact assess`") from None
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise ReadError(str(path), "", f"is not a readable CSV table ({exc})") from None
+    except OSError as exc:
+        raise ReadError(str(path), "", f"cannot be read ({exc.strerror or exc})") from None
+    check_table(df, path, relative)
+    for c in df.columns:
+        if c not in TEXT_COLUMNS:
+            df[c] = pd.to_numeric(df[c].replace("", "nan"), errors="coerce")
+    return df
+
+
+def read_stage(folder: Path) -> dict | None:
+    if not folder.is_dir():
+        return None
+    out = {}
+    for p in sorted(folder.iterdir()):
+        if p.suffix == ".csv":
+            out[p.stem] = read_table(p)
+        elif p.suffix == ".json":
+            try:
+                out[p.stem] = json.loads(p.read_bytes().decode("utf-8"))
+            except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+                raise ReadError(str(p), "", f"is not valid UTF-8 JSON ({exc}); the results folder is damaged") from None
+            except OSError as exc:
+                raise ReadError(str(p), "", f"cannot be read ({exc.strerror or exc})") from None
+    return out or None
+
+
+def load_results(path) -> Results:
+    """Read a results directory written by ``impact assess``, checked against the results schema."""
+    path = Path(path)
+    if not path.is_dir():
+        raise ReadError(str(path), "", "is not a results directory (run `impact assess` first)")
+    manifest = read_manifest(path)
+    return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
+                   read_table(path / "priors.csv"), read_table(path / "effects.csv"),
+                   read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
+                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"))
+
+
+def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):
+    r = risk[(risk.option == option) & (risk.species == species) & (risk.metric == metric)
+             & np.isclose(risk.horizon, horizon)]
+    return None if r.empty else r.iloc[0]
+
+
+def option_names(m: dict) -> list[str]:
+    return [o["name"] for o in m["options"]]

@@ -30,7 +30,7 @@ STAGES = [
     {"assess"},
     {"effects", "results", "outfolder", "budget"},
     {"decision", "sensitivity", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
-    {"cautions", "verdict", "webfigure", "report"},
+    {"cautions", "verdict", "webfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},
 ]

@@ -12,7 +12,8 @@ import pytest
 
 from impact.case import load_case
 from impact.cli import build_parser, main
-from impact.report import ASSET_SCHEME, Assets, fmt_cell, make_fetcher, render_pdf, report_html, load_results, write_report
+from impact.formatting import fmt_cell
+from impact.report import ASSET_SCHEME, Assets, make_fetcher, render_pdf, report_html, load_results, write_report
 
 pypdf = pytest.importorskip("pypdf")
 

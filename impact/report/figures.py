@@ -1,0 +1,158 @@
+"""The report's figures (matplotlib, SVG or PNG bytes) and the assets WeasyPrint may fetch."""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ..results import Results
+
+ASSET_SCHEME = "impact-asset:"
+KIND_STYLE = {
+    "predation": ("#c0392b", "-", "eats"),
+    "scavenging": ("#8e5b2e", "-", "scavenges"),
+    "competition": ("#555555", "--", "competes with"),
+    "mutualism": ("#1e8449", "-", "benefits"),
+}
+OPTION_COLOURS = ("#d35400", "#2471a3", "#7d3c98", "#117a65", "#b7950b", "#a93226")
+BASELINE_COLOUR = "#566573"
+REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "aperiodic": "#f39c12", "undetermined": "#aab7b8",
+                  "chaotic": "#c0392b", "extinction": "#1c2833"}
+
+
+def mpl_text(s) -> str:
+    # case text must not switch matplotlib into mathtext
+    return str(s).replace("$", r"\$")
+
+
+def svg_bytes(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
+    return buf.getvalue()
+
+
+# Data-heavy charts (many lines, bars or points) go in as PNG: as SVG each costs seconds to write
+# and seconds more for the PDF engine to draw, for no gain at print resolution.
+PNG_DPI = 200
+
+
+def png_bytes(fig) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=PNG_DPI, bbox_inches="tight", metadata={"Software": None})
+    return buf.getvalue()
+
+
+def new_figure(w, h):
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(w, h))
+    fig.set_layout_engine("constrained")
+    return fig
+
+
+def bands_figure(res: Results, option: str, colour: str) -> bytes:
+    """Median and 50 %/90 % bands per species, baseline and option on shared axes."""
+    m = res.manifest
+    species = [s["name"] for s in m["species"]]
+    units = {s["name"]: s.get("unit", "") for s in m["species"]}
+    ncol = 2 if len(species) > 1 else 1
+    nrow = math.ceil(len(species) / ncol)
+    fig = new_figure(6.6, 1.9 * nrow + 0.5)
+    axes = fig.subplots(nrow, ncol, sharex=True, squeeze=False)
+    ivs = {iv["name"]: iv for iv in m.get("interventions", [])}
+    opt = next((o for o in m["options"] if o["name"] == option), {"interventions": []})
+    for k, sp in enumerate(species):
+        ax = axes[k // ncol][k % ncol]
+        for name, col in (("baseline", BASELINE_COLOUR), (option, colour)):
+            b = res.bands[(res.bands.option == name) & (res.bands.species == sp)].sort_values("time")
+            if b.empty:
+                continue
+            ax.fill_between(b.time, b.q05, b.q95, color=col, alpha=0.15, linewidth=0)
+            ax.fill_between(b.time, b.q25, b.q75, color=col, alpha=0.35, linewidth=0)
+            ax.plot(b.time, b.q50, color=col, linewidth=1.4, label=mpl_text(name))
+        for ivn in opt.get("interventions", []):
+            iv = ivs.get(ivn)
+            if iv is not None:
+                ax.axvline(iv["start"], color="#7f8c8d", linewidth=0.7, linestyle=":")
+        ax.set_title(mpl_text(sp), fontsize=9)
+        ax.set_ylabel(mpl_text(units.get(sp, "")), fontsize=7)
+        ax.tick_params(labelsize=7)
+        ax.set_ylim(bottom=0)
+    for k in range(len(species), nrow * ncol):
+        axes[k // ncol][k % ncol].axis("off")
+    for ax in axes[-1]:
+        ax.set_xlabel(mpl_text(m["time_unit"]), fontsize=8)
+    axes[0][0].legend(fontsize=7, loc="best")
+    return png_bytes(fig)
+
+
+def regime_figure(shares: pd.DataFrame) -> bytes:
+    """Share of members in each dynamical regime, per option."""
+    opts = list(dict.fromkeys(shares.option))
+    fig = new_figure(6.0, 0.45 * len(opts) + 1.2)
+    ax = fig.add_subplot()
+    left = np.zeros(len(opts))
+    for reg in dict.fromkeys(shares.regime):
+        vals = np.array([shares[(shares.option == o) & (shares.regime == reg)].share.sum() for o in opts])
+        ax.barh(range(len(opts)), vals, left=left, color=REGIME_COLOURS.get(reg, "#95a5a6"), label=mpl_text(reg))
+        left += vals
+    ax.set_yticks(range(len(opts)), [mpl_text(o) for o in opts], fontsize=8)
+    ax.set_xlim(0, 1)
+    ax.set_xlabel("share of members", fontsize=8)
+    ax.tick_params(labelsize=7)
+    ax.legend(fontsize=7, ncol=5, loc="upper center", bbox_to_anchor=(0.5, -0.25), frameon=False)
+    return svg_bytes(fig)
+
+
+def distribution_figure(regimes: pd.DataFrame, unit: str) -> bytes:
+    """Histograms of the largest Lyapunov exponent and the predictability horizon, per option."""
+    fig = new_figure(6.6, 2.6)
+    axes = fig.subplots(1, 2)
+    for k, opt in enumerate(dict.fromkeys(regimes.option)):
+        r = regimes[regimes.option == opt]
+        col = BASELINE_COLOUR if opt == "baseline" else OPTION_COLOURS[(k - 1) % len(OPTION_COLOURS)]
+        for ax, col_name in zip(axes, ("lyapunov", "horizon_time")):
+            v = r[col_name].to_numpy(float)
+            v = v[np.isfinite(v)]
+            if v.size:
+                ax.hist(v, bins=30, histtype="step", color=col, label=mpl_text(opt), linewidth=1.2)
+    axes[0].set_xlabel(f"largest Lyapunov exponent (1/{mpl_text(unit)})", fontsize=8)
+    axes[1].set_xlabel(f"predictability horizon ({mpl_text(unit)})", fontsize=8)
+    for ax in axes:
+        ax.set_ylabel("members", fontsize=8)
+        ax.tick_params(labelsize=7)
+    axes[0].legend(fontsize=7)
+    return png_bytes(fig)
+
+
+def scan_figure(scan: pd.DataFrame, parameter: str) -> bytes:
+    """Bifurcation diagram: section values against the scanned parameter, coloured by regime."""
+    s = scan[scan.parameter == parameter]
+    fig = new_figure(6.0, 3.0)
+    ax = fig.add_subplot()
+    for reg in dict.fromkeys(s.regime):
+        r = s[s.regime == reg]
+        ax.scatter(r.value, r.section_value, s=2, color=REGIME_COLOURS.get(reg, "#95a5a6"), label=mpl_text(reg), linewidths=0)
+    ax.set_xlabel(mpl_text(parameter), fontsize=8)
+    ax.set_ylabel("section value", fontsize=8)
+    ax.tick_params(labelsize=7)
+    ax.legend(fontsize=7, markerscale=4)
+    return png_bytes(fig)
+
+
+
+@dataclass
+class Assets:
+    """Named bytes served to WeasyPrint under ``impact-asset:NAME``."""
+
+    files: dict = field(default_factory=dict)  # name -> (bytes, mime type)
+
+    def add(self, name: str, data: bytes, mime: str) -> str:
+        self.files[name] = (data, mime)
+        return ASSET_SCHEME + name
+
+

@@ -1,0 +1,150 @@
+"""The report's document: the template context, the jinja2 rendering and WeasyPrint's typesetting."""
+
+from __future__ import annotations
+
+from importlib import resources
+from pathlib import Path
+
+from ..cautions import cautions
+from ..errors import InstallationError, SettingError, WriteError
+from ..formatting import fmt_num, fmt_prob
+from ..results import Results, load_results, write_file_atomic
+from ..verdict import reading, thin_run
+from ..webfigure import food_web_svg
+from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
+from .sections import dynamics_context, sensitivity_context
+from .tables import comparisons_context, effects_table_context, iucn_rows, objectives_context, risk_table_context
+
+PAPERS = {"a4": "A4", "letter": "letter"}
+ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
+
+
+def report_context(res: Results, assets: Assets) -> dict:
+    """Everything the template prints, already formatted from the saved numbers."""
+    m = res.manifest
+    counts = m["counts"]
+    failed = {k: int(v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()}
+    options = []
+    for k, o in enumerate(m["options"]):
+        colour = OPTION_COLOURS[k % len(OPTION_COLOURS)]
+        options.append(dict(name=o["name"], description=o.get("description", ""), interventions=o.get("interventions", []),
+                            touches=o["touches"], failed=failed.get(o["name"], 0),
+                            figure=assets.add(f"bands-{k}.png", bands_figure(res, o["name"], colour), "image/png"),
+                            risk=risk_table_context(res, o["name"]), effects=effects_table_context(res, o["name"])))
+    thin, why = thin_run(m)
+    verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
+    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity)
+    priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
+                   source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
+    failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()]
+    return dict(
+        m=m, case=m["case"], title=m["case"].get("title", ""), date=str(m.get("started_utc", ""))[:10],
+        verdict=verdict, caution=m.get("caution", ""), warnings=[w.text for w in warnings],
+        # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
+        top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m["judgement"],
+        objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
+        species=m["species"], interactions=m.get("interactions") or [], equations=m.get("equations", []),
+        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
+        interventions=m.get("interventions", []), options=options, iucn=iucn_rows(res),
+        sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets),
+        counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
+        horizons=[fmt_num(h) for h in m["horizons"]], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
+        command=" ".join(str(a) for a in m.get("command", [])), packages=m.get("packages", {}),
+        assumptions=m.get("assumptions", []), plausibility=m.get("plausibility", ""),
+    )
+
+
+
+def template_root():
+    """Folder holding report.html and its assets (installed package data or the source checkout)."""
+    try:
+        root = resources.files("impact.templates")
+        if root.joinpath("report.html").is_file():
+            return root
+    except ModuleNotFoundError:
+        pass
+    root = Path(__file__).resolve().parent.parent.parent / "templates"
+    if (root / "report.html").is_file():
+        return root
+    raise InstallationError("the report templates (report.html, report.css) were not found; reinstall impact")
+
+
+def template_assets(root) -> Assets:
+    """Every stylesheet or image shipped beside the templates, by file name."""
+    a = Assets()
+    for entry in root.iterdir():
+        mime = ASSET_TYPES.get(Path(entry.name).suffix)
+        if mime and entry.is_file():
+            a.add(entry.name, entry.read_bytes(), mime)
+    return a
+
+
+def _fetcher_class():
+    from weasyprint.urls import URLFetcher, URLFetcherResponse
+
+    class AssetFetcher(URLFetcher):
+        """Serve only named assets; refuse files, network and every other scheme."""
+
+        def __init__(self, assets: Assets):
+            super().__init__(allowed_protocols=())
+            self.assets = assets
+            self.served: list[str] = []
+            self.refused: list[str] = []
+
+        def fetch(self, url, headers=None):
+            name = url[len(ASSET_SCHEME):] if url.startswith(ASSET_SCHEME) else None
+            if name is None or name not in self.assets.files:
+                self.refused.append(url)
+                raise ValueError(f"refused to fetch {url!r}: only the report's own assets are served")
+            data, mime = self.assets.files[name]
+            self.served.append(url)
+            return URLFetcherResponse(url, body=data, headers={"Content-Type": mime})
+
+    return AssetFetcher
+
+
+def make_fetcher(assets: Assets):
+    """A WeasyPrint URL fetcher serving ``assets`` only."""
+    return _fetcher_class()(assets)
+
+
+def render_pdf(html: str, assets: Assets):
+    """Typeset HTML with the restricted fetcher; returns (pdf bytes, fetcher)."""
+    import logging
+
+    from weasyprint import HTML
+
+    fetcher = make_fetcher(assets)
+    # refused fetches are expected for hostile input; keep them out of the user's terminal
+    logging.getLogger("weasyprint").setLevel(logging.ERROR)
+    pdf = HTML(string=html, base_url=ASSET_SCHEME, url_fetcher=fetcher).write_pdf()
+    return pdf, fetcher
+
+
+def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
+    """The filled template and the assets it links to."""
+    import jinja2
+
+    if paper not in PAPERS:
+        raise SettingError("paper", f"must be one of {', '.join(PAPERS)}")
+    root = template_root()
+    assets = template_assets(root)
+    env = jinja2.Environment(loader=jinja2.FunctionLoader(lambda n: root.joinpath(n).read_text(encoding="utf-8")),
+                             autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+    ctx = report_context(res, assets)
+    html = env.get_template("report.html").render(**ctx, paper=PAPERS[paper], asset=ASSET_SCHEME)
+    return html, assets
+
+
+def write_report(results_dir, out=None, paper: str = "a4") -> Path:
+    """Build the PDF from a saved results directory; written to a temporary name, then renamed."""
+    res = load_results(results_dir)
+    out = Path(out) if out is not None else Path(results_dir) / "report.pdf"
+    html, assets = report_html(res, paper)
+    pdf, _ = render_pdf(html, assets)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        write_file_atomic(out, pdf)  # mode from the umask, like the tables beside it
+    except OSError as exc:
+        raise WriteError(exc.filename or out, f"cannot write the report ({exc.strerror or exc})") from None
+    return out

@@ -1,0 +1,161 @@
+"""The report's sensitivity and dynamics sections, and the terminal's sentences on what the decision hinges on."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from ..cautions import share_text
+from ..formatting import fmt_bare_points, fmt_num, fmt_points, fmt_prob
+from ..results import Results
+from .figures import Assets, distribution_figure, regime_figure, scan_figure
+
+# the sensitivity section stays within two pages: per option at most this many outputs, each with
+# its top parameters; the full tables are in sensitivity/*.csv
+MAX_DRIVER_ROWS = 8
+TOP_DRIVERS = 3
+TOP_INFORMATION = 5
+NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
+
+
+def _index_text(r) -> str:
+    v, lo, hi = (_clean(x) for x in (r.value, r.low, r.high))
+    return f"{v:.2f} [{lo:.2f}, {hi:.2f}]"
+
+
+def _information_context(info: pd.DataFrame) -> list[dict]:
+    out = []
+    for obj, g in info.groupby("objective", sort=False):
+        evpi = g[g.kind == "evpi"].iloc[0]
+        params = g[g.kind == "evppi"].sort_values("value", ascending=False)
+        top = params.iloc[0] if len(params) else None
+        best = "doing nothing (the baseline)" if evpi.best_choice == "baseline" else f"“{evpi.best_choice}”"
+        sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in "
+                    f"{fmt_prob(evpi.best_chance)} of members). Knowing every uncertain number exactly would raise that "
+                    f"chance by {fmt_points(_clean(evpi.value))} [{fmt_bare_points(_clean(evpi.low))}, "
+                    f"{fmt_bare_points(_clean(evpi.high))}] on average (EVPI)")
+        if top is not None and _clean(top.value) > 0:
+            sentence += (f"; the single number most worth measuring is {top.parameter} "
+                         f"({fmt_points(_clean(top.value))} [{fmt_bare_points(_clean(top.low))}, "
+                         f"{fmt_bare_points(_clean(top.high))}], EVPPI).")
+        else:
+            sentence += "; no single number is worth measuring for this choice (every EVPPI is zero)."
+        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"]])
+        rows = [dict(parameter=r.parameter + (" (group)" if r.kind == "group evppi" else ""),
+                     value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
+                           f"{fmt_bare_points(_clean(r.high))}]",
+                     share=fmt_prob(_clean(r.value) / evpi.value) if evpi.value > NEGLIGIBLE else "—")
+                for _, r in shown.iterrows()]
+        out.append(dict(objective=obj, sentence=sentence, rows=rows, n=fmt_num(evpi.n)))
+    return out
+
+
+def _clean(v) -> float:
+    v = float(v)
+    return 0.0 if abs(v) < NEGLIGIBLE else v
+
+
+def _drivers_context(drv: pd.DataFrame, roles: dict | None = None) -> list[dict]:
+    # objectives first, then targets and protected species, then the rest in declaration order
+    roles = roles or {}
+    rank = {"target": 1, "protected": 1}
+    out = []
+    for opt, g in drv.groupby("option", sort=False):
+        rows = []
+        for (output, sp), h in g.groupby(["output", "species"], sort=False):
+            h = h[np.isfinite(h.value.astype(float))].sort_values("value", ascending=False).head(TOP_DRIVERS)
+            if h.empty:
+                continue
+            rows.append(dict(output=output, species=sp, order=0 if output.startswith("objective") else
+                             2 - rank.get(roles.get(sp), 0), top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()]))
+        rows.sort(key=lambda r: r["order"])  # stable: declaration order within each rank
+        out.append(dict(option=opt, rows=rows[:MAX_DRIVER_ROWS], omitted=max(len(rows) - MAX_DRIVER_ROWS, 0),
+                        n=fmt_num(g.n.iloc[0]), conditional_on=g.conditional_on.iloc[0]))
+    return out
+
+
+def _screen_context(s: dict) -> dict | None:
+    """One paragraph on the Saltelli screen of the prior box: what makes today's web implausible, convergence."""
+    idx, cv = s.get("indices"), s.get("convergence")
+    if idx is None or idx.empty:
+        return None
+    meta = s.get("sensitivity") if isinstance(s.get("sensitivity"), dict) else {}
+    plaus = idx[(idx.metric == "plausible") & (idx.option == "baseline")]
+    plaus = plaus[np.isfinite(plaus.ST.astype(float))].sort_values("ST", ascending=False).head(TOP_DRIVERS)
+    drivers = "; ".join(f"{r.parameter} (total order {fmt_num(r.ST)} ± {fmt_num(r.ST_conf)})"
+                        + (" — interval crosses 0 or 1" if r.ST - r.ST_conf < 0 or r.ST + r.ST_conf > 1 else "")
+                        for _, r in plaus.iterrows())
+    settled = cv is not None and bool(cv[(cv.option == "baseline") & (cv.metric == "plausible")].converged
+                                      .astype(str).str.lower().isin(["true", "1", "yes"]).all())
+    if drivers and not settled:
+        # an unconverged ranking is no headline: say so in the same sentence
+        drivers += " (NOT converged: indicative only)"
+    bad = 0 if cv is None else int((~cv.converged.astype(str).str.lower().isin(["true", "1", "yes"])).sum())
+    total = 0 if cv is None else len(cv)
+    return dict(N=meta.get("N", "not recorded"), runs=meta.get("runs", "not recorded"), drivers=drivers,
+                converged=f"{total - bad} of {total} outputs converged" if total else "convergence not recorded",
+                bad=bad)
+
+
+def hinges_text(res: Results) -> str:
+    """Plain sentences for the terminal: what each objective's choice hinges on, and what drives each outcome."""
+    s = res.sensitivity or {}
+    info, drv = s.get("information"), s.get("drivers")
+    lines = []
+    if info is not None and not info.empty:
+        lines += [t["sentence"] for t in _information_context(info)]
+    if drv is not None and not drv.empty:
+        for t in _drivers_context(drv):
+            for r in t["rows"]:
+                if r["output"].startswith("objective"):
+                    name = r["output"].removeprefix("objective ").removesuffix(": good outcome")
+                    lines.append(f"Under “{t['option']}”, whether {name} goes well depends mostly on "
+                                 + " and ".join(r["top"][:2]) + " (share of its variance explained, with interval).")
+    return "\n".join(lines)
+
+
+def sensitivity_context(res: Results, assets: Assets) -> dict | None:
+    s = res.sensitivity
+    if not s:
+        return None
+    info, drv = s.get("information"), s.get("drivers")
+    return dict(information=_information_context(info) if info is not None and not info.empty else [],
+                drivers=_drivers_context(drv, {x["name"]: x["role"] for x in res.manifest["species"]})
+                if drv is not None and not drv.empty else [],
+                screen=_screen_context(s), files=sorted(f"sensitivity/{k}.csv" for k, v in s.items()
+                                                        if isinstance(v, pd.DataFrame)))
+
+
+def dynamics_context(res: Results, assets: Assets) -> dict | None:
+    d = res.dynamics
+    if not d:
+        return None
+    unit = res.manifest["time_unit"]
+    ctx = dict(figures=[], shares=[], transitions=[], scan_run=False)
+    sh = d.get("regime_shares")
+    if sh is not None and not sh.empty:
+        ctx["figures"].append(dict(src=assets.add("regimes.svg", regime_figure(sh), "image/svg+xml"),
+                                   caption="Share of screened members in each dynamical regime, per option "
+                                           "(long-run attractor, noise off; intervals in regime_shares.csv)."))
+        for _, r in sh.iterrows():
+            ctx["shares"].append(dict(option=r.option, regime=r.regime, share=share_text(r), count=fmt_num(r["count"]),
+                                      lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
+    rg = d.get("regimes")
+    if rg is not None and not rg.empty:
+        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit), "image/png"),
+                                   caption="Distribution over members of the largest Lyapunov exponent and of the "
+                                           "predictability horizon, per option."))
+    sc = d.get("scan")
+    if sc is not None and not sc.empty:
+        ctx["scan_run"] = True
+        for k, p in enumerate(dict.fromkeys(sc.parameter)):
+            ctx["figures"].append(dict(src=assets.add(f"scan-{k}.png", scan_figure(sc, p), "image/png"),
+                                       caption=f"Bifurcation diagram: long-run section values as {p} is scanned."))
+    tr = d.get("transitions")
+    if tr is not None and not tr.empty:
+        for _, r in tr.iterrows():
+            ctx["transitions"].append(dict(parameter=r.parameter, between=f"{fmt_num(r.from_value)} – {fmt_num(r.to_value)}",
+                                           change=f"{r.from_regime} → {r.to_regime}", kind=r.kind))
+    return ctx
+
+
