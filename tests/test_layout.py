@@ -29,7 +29,7 @@ STAGES = [
      "execute"},
     {"assess"},
     {"effects", "results", "outfolder", "budget"},
-    {"decision", "sensitivity", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
+    {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"cautions", "verdict", "webfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},

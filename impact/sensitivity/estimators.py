@@ -1,0 +1,211 @@
+"""Estimators: SALib's Sobol and Morris analyses with the failure rule, the N/2 convergence check,
+the generic study of any model of unit rows, and given-data first-order indices."""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+
+from .designs import (DEFAULT_FAILURE_LIMIT, DEFAULT_TOLERANCE, MIN_BLOCKS, MorrisDesign, SobolDesign, UnitModel,
+                      salib_seed, sobol_design, unit_problem)
+
+
+@dataclass(frozen=True)
+class Indices:
+    """Sobol indices of one output.
+
+    Attributes
+    ----------
+    status : str
+        ``ok``, ``constant`` (no variance to apportion) or ``refused`` (too many failures).
+    S1, S1_conf, ST, ST_conf : ndarray (D,)
+        ``*_conf`` is the bootstrap half-width at the requested confidence (NaN unless ok).
+    S2, S2_conf : ndarray (D, D) or None
+        Upper triangle filled when the design has second-order blocks.
+    failed_points : int
+        Design points without a finite value.
+    blocks_used : int
+        Base samples entering the estimate (blocks with a failed point are dropped whole).
+    message : str
+    """
+
+    status: str
+    S1: np.ndarray
+    S1_conf: np.ndarray
+    ST: np.ndarray
+    ST_conf: np.ndarray
+    S2: np.ndarray | None
+    S2_conf: np.ndarray | None
+    failed_points: int
+    blocks_used: int
+    message: str = ""
+
+
+def no_indices(design: SobolDesign, status: str, failed: int, used: int, message: str) -> Indices:
+    D = design.D
+    fill = 0.0 if status == "constant" else np.nan
+    s2 = np.full((D, D), np.nan) if design.second_order else None
+    if s2 is not None and status == "constant":
+        s2[np.triu_indices(D, 1)] = 0.0
+    z = np.full(D, fill)
+    return Indices(status, z, z.copy(), z.copy(), z.copy(), s2, None if s2 is None else s2.copy(), failed, used, message)
+
+
+def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.95, resamples: int = 100,
+                  failure_limit: float = DEFAULT_FAILURE_LIMIT, seed: int = 0) -> Indices:
+    """First-, total- and second-order Sobol indices with bootstrap CIs (Saltelli et al. 2010; SALib).
+
+    Parameters
+    ----------
+    design : SobolDesign
+    y : ndarray (design.runs,)
+        One output per design row; NaN marks a failed point.
+    failure_limit : float
+        Largest share of failed points for which indices are still presented.
+    """
+    from SALib.analyze import sobol as sobol_analyze
+
+    y = np.asarray(y, float)
+    if y.shape != (design.runs,):
+        raise ValueError(f"expected {design.runs} outputs for this design, got shape {y.shape}")
+    bad = ~np.isfinite(y)
+    n_bad = int(bad.sum())
+    good_block = ~bad.reshape(design.N, design.step).any(axis=1)
+    used = int(good_block.sum())
+    if n_bad > failure_limit * design.runs:
+        return no_indices(design, "refused", n_bad, used,
+                      f"{n_bad} of {design.runs} design points ({n_bad / design.runs:.1%}) have no value, "
+                      f"more than the declared limit of {failure_limit:.0%}; indices are not presented")
+    if used < MIN_BLOCKS:
+        return no_indices(design, "refused", n_bad, used,
+                      f"only {used} complete base samples remain (at least {MIN_BLOCKS} needed)")
+    yk = y.reshape(design.N, design.step)[good_block].ravel()
+    if np.ptp(yk) <= 1e-12 * max(1.0, float(np.abs(yk).max())):
+        return no_indices(design, "constant", n_bad, used, "the output does not vary over the design")
+    with warnings.catch_warnings():
+        # SALib warns when a bootstrap resample of an indicator happens to be constant; harmless here
+        warnings.simplefilter("ignore", RuntimeWarning)
+        warnings.simplefilter("ignore", UserWarning)
+        S = sobol_analyze.analyze(design.problem(), yk, calc_second_order=design.second_order,
+                                  num_resamples=resamples, conf_level=confidence, seed=salib_seed(seed, 2))
+    s2 = np.asarray(S["S2"], float) if design.second_order else None
+    s2c = np.asarray(S["S2_conf"], float) if design.second_order else None
+    msg = f"{n_bad} failed points; {design.N - used} base samples dropped" if n_bad else ""
+    return Indices("ok", np.asarray(S["S1"], float), np.asarray(S["S1_conf"], float),
+                   np.asarray(S["ST"], float), np.asarray(S["ST_conf"], float), s2, s2c, n_bad, used, msg)
+
+
+def morris_effects(design: MorrisDesign, y: np.ndarray, *, seed: int = 0) -> dict[str, np.ndarray]:
+    """Elementary-effect summaries mu* and sigma (Morris 1991; Campolongo et al. 2007; SALib).
+
+    Parameters
+    ----------
+    y : ndarray (design.runs,)
+        NaN values are replaced by the output median so one failure does not void a trajectory.
+
+    Returns
+    -------
+    dict with ndarrays (D,): ``mu_star``, ``sigma``, ``mu_star_conf``
+    """
+    from SALib.analyze import morris as morris_analyze
+
+    y = np.asarray(y, float)
+    ok = np.isfinite(y)
+    if not ok.any() or np.ptp(y[ok]) == 0:
+        z = np.zeros(design.D)
+        return {"mu_star": z, "sigma": z.copy(), "mu_star_conf": z.copy()}
+    y = np.where(ok, y, np.median(y[ok]))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        S = morris_analyze.analyze(unit_problem(design.names), design.unit, y, num_levels=design.levels,
+                                   seed=salib_seed(seed, 3))
+    return {k: np.asarray(S[k], float) for k in ("mu_star", "sigma", "mu_star_conf")}
+
+
+def convergence(full: Indices, half: Indices, tolerance: float) -> dict:
+    """Shift of the indices from N/2 to N and CI width at N, against a declared tolerance."""
+    if full.status != "ok" or half.status != "ok":
+        conv = full.status == "constant" and half.status == "constant"
+        return dict(max_shift=0.0 if conv else np.nan, max_ci_width=0.0 if conv else np.nan,
+                    tolerance=tolerance, converged=conv)
+    shift = float(np.nanmax(np.abs(np.r_[full.S1 - half.S1, full.ST - half.ST])))
+    width = float(np.nanmax(2.0 * np.r_[full.S1_conf, full.ST_conf]))
+    return dict(max_shift=shift, max_ci_width=width, tolerance=tolerance,
+                converged=bool(shift <= tolerance and width <= tolerance))
+
+
+@dataclass(frozen=True)
+class Study:
+    """A whole Sobol study of a model with K outputs.
+
+    Attributes
+    ----------
+    design : SobolDesign
+    outputs : ndarray (design.runs, K)
+    indices : list of Indices (K,)
+        At N base samples.
+    half : list of Indices (K,)
+        At N/2 (the first half of the same design).
+    convergence : list of dict (K,)
+    """
+
+    design: SobolDesign
+    outputs: np.ndarray
+    indices: list
+    half: list
+    convergence: list
+
+
+def sobol_study(model: UnitModel, names: Sequence[str], N: int, *, second_order: bool = False, seed: int = 0,
+                confidence: float = 0.95, resamples: int = 100, tolerance: float = DEFAULT_TOLERANCE,
+                failure_limit: float = DEFAULT_FAILURE_LIMIT) -> Study:
+    """Design, run and estimate: the one path used for analytic checks and for the food web.
+
+    Parameters
+    ----------
+    model : callable, unit rows ndarray (n, D) -> ndarray (n, K)
+        Maps points of the unit hypercube to K outputs (NaN for a failed point).
+    """
+    design = sobol_design(names, N, second_order, seed)
+    Y = np.asarray(model(design.unit), float)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    half_design = design.head(N // 2)
+    kw = dict(confidence=confidence, resamples=resamples, failure_limit=failure_limit, seed=seed)
+    full = [sobol_indices(design, Y[:, k], **kw) for k in range(Y.shape[1])]
+    half = [sobol_indices(half_design, Y[: half_design.runs, k], **kw) for k in range(Y.shape[1])]
+    conv = [convergence(f, h, tolerance) for f, h in zip(full, half)]
+    return Study(design, Y, full, half, conv)
+
+
+def through_priors(f: Callable[[np.ndarray], np.ndarray], priors: Sequence) -> UnitModel:
+    """Wrap a model of parameter values as a model of unit rows, mapping each column by its prior's ppf."""
+    def model(unit: np.ndarray) -> np.ndarray:
+        X = np.column_stack([p.ppf(unit[:, j]) for j, p in enumerate(priors)])
+        return f(X)
+    return model
+
+
+def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """First-order indices from given data by random balance designs (Tarantola et al. 2006; Plischke 2010; SALib).
+
+    Returns
+    -------
+    S1, S1_conf : ndarray (D,)
+    """
+    from SALib.analyze import rbd_fast
+
+    ok = np.isfinite(y)
+    X, y = X[ok], y[ok]
+    D = X.shape[1]
+    if y.size < 64 or np.ptp(y) == 0:
+        return np.full(D, np.nan), np.full(D, np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        S = rbd_fast.analyze(unit_problem(names), X, y, seed=salib_seed(seed, 4))
+    return np.asarray(S["S1"], float), np.asarray(S["S1_conf"], float)
+
+
