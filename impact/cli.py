@@ -240,23 +240,23 @@ def build_parser() -> argparse.ArgumentParser:
     sub = ap.add_subparsers(dest="command", required=True)
 
     p = sub.add_parser("check", help="validate a case file and print what was understood")
-    p.add_argument("case")
+    p.add_argument("case", help="the case file (TOML)")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("assess", help="run the full assessment of a case")
-    p.add_argument("case")
-    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p.add_argument("case", help="the case file (TOML)")
+    p.add_argument("--out", required=True, metavar="DIR", help="results folder; an existing one is refused unless --replace-results")
     p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
-    p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's)")
-    p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
+    p.add_argument("--members", type=int, default=None, help="plausible members wanted (default: the case's case.members)")
+    p.add_argument("--seed", type=int, default=None, help="seed of the one random path, 0 or more (default: the case's case.seed)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.add_argument("--no-report", action="store_true", help="do not write report.pdf")
     p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size of report.pdf (default a4)")
-    p.add_argument("--no-dynamics", action="store_true", help="skip the regime / Lyapunov diagnostics")
-    p.add_argument("--no-sensitivity", action="store_true", help="skip the Sobol sensitivity stage")
+    p.add_argument("--no-dynamics", action="store_true", help="skip the regime, Lyapunov exponent and predictability diagnostics")
+    p.add_argument("--no-sensitivity", action="store_true", help="skip what the decision hinges on (main effects, value of information) and the Sobol screen of the priors")
     p.add_argument("--base-samples", type=int, default=128,
-                   help="Sobol base samples N for the sensitivity stage, a power of two (default 128, kept small for speed)")
+                   help="Sobol base samples N of the prior screen, a power of two of at least 16 (default 128, kept small for speed)")
     _executor_flags(p)
     p.add_argument("--resume", action="store_true",
                    help="reuse the chunks an interrupted run of the same case, seed and members saved")
@@ -264,52 +264,73 @@ def build_parser() -> argparse.ArgumentParser:
                    help="members per chunk of work and checkpoint (default: an even share per worker, 100-2000)")
     p.set_defaults(func=cmd_assess)
 
-    p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
-    p.add_argument("case")
-    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric over the prior box, on its own")
+    p.add_argument("case", help="the case file (TOML)")
+    p.add_argument("--out", required=True, metavar="DIR", help="results folder; an existing one is refused unless --replace-results")
     p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
-    p.add_argument("--base-samples", type=int, default=1024, help="Sobol base samples N, a power of two (default 1024)")
+    p.add_argument("--base-samples", type=int, default=1024, help="Sobol base samples N, a power of two of at least 16 (default 1024)")
     p.add_argument("--second-order", action="store_true", help="also estimate second-order (pairwise) indices")
     p.add_argument("--seed", type=int, default=None, help="seed of the design scramble and bootstrap (default: the case's)")
     p.add_argument("--screen", choices=("auto", "morris", "none"), default="auto",
-                   help="Morris screening before Sobol: auto = only with more than 20 uncertain parameters")
+                   help="Morris screening before Sobol: auto = only with more than 20 uncertain parameters (default auto)")
     p.add_argument("--tolerance", type=float, default=0.2,
                    help="widest acceptable full CI width and N/2-to-N shift of an index (default 0.2)")
-    p.add_argument("--failure-limit", type=float, default=0.05, help="largest share of failed design points (default 0.05)")
+    p.add_argument("--failure-limit", type=float, default=0.05, help="largest share of failed design points before an output is refused, 0 to 1 (default 0.05)")
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     _executor_flags(p)
     p.set_defaults(func=cmd_sensitivity)
 
     p = sub.add_parser("scan", help="bifurcation scan of one parameter or intervention intensity")
-    p.add_argument("case")
-    p.add_argument("--parameter", required=True, help="a declared parameter, or INTERVENTION.rate|fraction|factor")
-    p.add_argument("--from", dest="start", type=float, required=True)
-    p.add_argument("--to", dest="stop", type=float, required=True)
+    p.add_argument("case", help="the case file (TOML)")
+    p.add_argument("--parameter", required=True, metavar="NAME", help="a declared parameter, or INTERVENTION.rate|fraction|factor")
+    p.add_argument("--from", dest="start", type=float, required=True, help="first value, in the quantity's unit")
+    p.add_argument("--to", dest="stop", type=float, required=True, help="last value, greater than --from")
     p.add_argument("--steps", type=int, required=True, help="number of values (at least 2)")
-    p.add_argument("--option", default=None, help="run under this option's press interventions")
-    p.add_argument("--out", required=True, help="results folder; an existing one is refused unless --replace-results")
+    p.add_argument("--option", default=None, metavar="OPTION", help="run under this option's interventions (needed to scan an intervention intensity)")
+    p.add_argument("--out", required=True, metavar="DIR", help="results folder; an existing one is refused unless --replace-results")
     p.add_argument(FLAGS["replace_results"], action="store_true",
                    help="replace the files impact wrote in an existing --out folder (other files are kept)")
-    p.add_argument("--transient", type=float, default=None, help="time discarded at each value")
-    p.add_argument("--window", type=float, default=None, help="time diagnosed at each value")
-    p.add_argument("--sample-dt", type=float, default=None, help="sampling / renormalisation interval")
-    p.add_argument("--max-period", type=int, default=None, help="longest period looked for (default 8)")
+    p.add_argument("--transient", type=float, default=None, help="time discarded at each value, in the case's time unit (default: from the web's time scales)")
+    p.add_argument("--window", type=float, default=None, help="time diagnosed at each value, in the case's time unit (default: from the web's time scales, checked by doubling)")
+    p.add_argument("--sample-dt", type=float, default=None, help="longest integration step and sampling interval, in the case's time unit (default: from the web's time scales)")
+    p.add_argument("--max-period", type=int, default=None, help="longest period looked for, 1 to 64 (default 8)")
     p.add_argument("--period-tol", type=float, default=None,
-                   help="section values are equal within this fraction of the oscillation's amplitude (default 1e-3)")
+                   help="section values are equal within this fraction of the oscillation's amplitude, 0 to 1 (default 0.001)")
     p.add_argument("--section", default=None, metavar="SPECIES",
                    help="species whose successive maxima form the Poincaré section (default: the last declared species)")
-    p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing")
+    p.add_argument("--parallel", action="store_true", help="run all values side by side from the initial state instead of continuing from the previous value")
     _executor_flags(p)
     p.add_argument("--quiet", action="store_true", help="no progress lines")
     p.set_defaults(func=cmd_scan)
 
     p = sub.add_parser("report", help="rebuild the PDF report from a saved results directory (no re-simulation)")
     p.add_argument("results", help="results directory written by `impact assess`")
-    p.add_argument("--out", default=None, help="PDF file (default: RESULTS/report.pdf)")
+    p.add_argument("--out", default=None, metavar="FILE", help="PDF file (default: RESULTS/report.pdf)")
     p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size (default a4)")
     p.set_defaults(func=cmd_report)
     return ap
+
+
+def command_reference() -> str:
+    """Every subcommand and option with its default, as Markdown (README's command reference)."""
+    sub = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
+    helps = {c.dest: c.help for c in sub._choices_actions}
+    out = []
+    for name, p in sub.choices.items():
+        out += [f"**`impact {name}`**: {helps[name]}.", "", "| argument | meaning |", "|---|---|"]
+        for a in p._actions:
+            if isinstance(a, argparse._HelpAction):
+                continue
+            flag = " / ".join(f"`{o}`" for o in a.option_strings) or f"`{a.dest.upper()}`"
+            if a.option_strings and a.nargs != 0:
+                value = a.metavar or ("{" + ",".join(a.choices) + "}" if a.choices else
+                                      {int: "N", float: "X"}.get(a.type, a.dest.upper()))
+                flag = f"`{a.option_strings[0]} {value}`"
+            need = " (required)" if a.required and a.option_strings else ""
+            out.append(f"| {flag} | {(a.help or '').replace('|', '/')}{need}. |")
+        out.append("")
+    return "\n".join(out).rstrip() + "\n"
 
 
 class Terminated(KeyboardInterrupt):
