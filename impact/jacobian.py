@@ -126,13 +126,36 @@ class WebTangent:
     Coefficients are gathered once per active set, as in :class:`impact.model.WebRHS`.
     """
 
-    def __init__(self, web: FoodWeb, p: WebParams, c: Controls):
+    def __init__(self, web: FoodWeb, p: WebParams, c: Controls, engine: str = "compiled"):
         from .model import WebRHS
 
         self.web = web
         self._rhs = WebRHS(web, p, c)
+        self.engine = engine
+        if engine == "compiled":
+            # the compiled kernel (impact.engine.tangent): same arithmetic, member by member
+            from .engine.web import pack_coefficients, pack_structure
+            from .model import segment_coefficients
+
+            co = segment_coefficients(web, p, c)
+            self._st = pack_structure(web)
+            self._coef = pack_coefficients(co, np.arange(co.scale.shape[0]))
+            self._key, self._rows = None, None
 
     def __call__(self, t, y, v, idx):
+        """``(f, Jv)`` for members ``idx`` (see :meth:`evaluate`)."""
+        if self.engine != "compiled":
+            return self.evaluate(t, y, v, idx)
+        from .engine.tangent import batch_jvp
+
+        if self._key is not idx:
+            self._rows, self._key = np.ascontiguousarray(self._coef[idx]), idx
+        out, jv = np.empty_like(y), np.empty_like(y)
+        batch_jvp(self._st, self._rows, np.ascontiguousarray(y, dtype=float), np.ascontiguousarray(v, dtype=float),
+                  out, jv)
+        return out, jv
+
+    def evaluate(self, t, y, v, idx):
         """``(f, Jv)`` for members ``idx``.
 
         Parameters
