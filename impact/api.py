@@ -35,6 +35,8 @@ from .case import load_case as _read_case
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
 from .errors import SettingError
+from .manifest import (CaseRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest, ObjectiveRecord,
+                       OptionRecord, SpeciesRecord)
 from .model import equations
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
@@ -100,7 +102,7 @@ class Assessment:
 
     case: Case
     ensemble: Ensemble
-    manifest: dict
+    manifest: Manifest
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     records: dict[str, dict] = field(default_factory=dict)
 
@@ -123,7 +125,7 @@ class Assessment:
     @property
     def thin(self) -> bool:
         """Too few plausible members for a verdict (``risk.min_members``)."""
-        return int(self.manifest["counts"]["kept"]) < self.case.risk.min_members
+        return self.manifest.counts.kept < self.case.risk.min_members
 
     def write(self, folder: Path) -> None:
         """Write every table and record and the manifest into ``folder`` (no report, no summary)."""
@@ -134,7 +136,7 @@ class Assessment:
             write_csv(frame, folder / rel)
         for rel, rec in self.records.items():
             write_json(rec, folder / rel)
-        write_json(self.manifest, folder / "manifest.json")
+        write_json(self.manifest.to_json(), folder / "manifest.json")
 
 
 def package_versions() -> dict[str, str]:
@@ -158,39 +160,38 @@ def priors_table(case: Case) -> pd.DataFrame:
 
 
 def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,
-                 seconds: float) -> dict:
+                 seconds: float, stages: tuple[str, ...] = ("assess",), sensitivity: dict | None = None,
+                 execution: dict | None = None) -> Manifest:
     """The manifest of an assessment: what was run, on what, and everything the report needs of the case."""
-    return {
-        "tool": "impact", "version": __version__,
-        "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                 "analyst": case.analyst, "description": case.description, "invented": case.invented},
-        "command": list(command), "started_utc": started.isoformat(timespec="seconds"), "seconds": round(seconds, 2),
-        "seed": seed, "counts": {**ens.counts, "failed_by_option": failures},
-        "time_unit": case.time_unit, "horizon": case.horizon, "horizons": list(case.risk.horizons),
-        "confidence": case.risk.confidence, "recovery_fraction": case.risk.recovery_fraction,
-        "species": [dict(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
-                         generation_time=s.generation_time, present=s.present, growth=s.growth, role=s.role,
-                         material_change=case.material_change(s.name)) for s in case.species],
-        "options": [dict(name=o.name, interventions=list(o.interventions), description=o.description,
-                         touches=sorted(case.touched(o))) for o in case.options],
-        "objectives": [dict(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
-                            requirement=o.requirement, bound=o.bound, event=event_text(case, o),
-                            description=o.description) for o in case.objectives],
-        "judgement": {"material_change": case.risk.material_change, "material_risk": case.risk.material_risk,
-                      "min_members": case.risk.min_members,
-                      "likelihood_scale": "IPCC likelihood scale (Mastrandrea et al. 2010)"},
-        "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
-                               description=iv.description) for iv in case.interventions],
+    return Manifest(
+        tool="impact", version=__version__,
+        case=CaseRecord(path=str(Path(case.path).resolve()), sha256=case.sha256, title=case.title,
+                        analyst=case.analyst, description=case.description, invented=case.invented),
+        command=tuple(str(a) for a in command), started_utc=started.isoformat(timespec="seconds"),
+        seconds=round(seconds, 2), seed=seed, counts=Counts(**ens.counts, failed_by_option=failures),
+        time_unit=case.time_unit, horizon=case.horizon, horizons=tuple(case.risk.horizons),
+        confidence=case.risk.confidence, recovery_fraction=case.risk.recovery_fraction,
+        species=tuple(SpeciesRecord(name=s.name, unit=s.unit, quasi_extinction=s.quasi_extinction, outbreak=s.outbreak,
+                                    generation_time=s.generation_time, present=s.present, growth=s.growth, role=s.role,
+                                    material_change=case.material_change(s.name)) for s in case.species),
+        options=tuple(OptionRecord(name=o.name, interventions=tuple(o.interventions), description=o.description,
+                                   touches=tuple(sorted(case.touched(o)))) for o in case.options),
+        objectives=tuple(ObjectiveRecord(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
+                                         requirement=o.requirement, bound=o.bound, event=event_text(case, o),
+                                         description=o.description) for o in case.objectives),
+        judgement=Judgement(material_change=case.risk.material_change, material_risk=case.risk.material_risk,
+                            min_members=case.risk.min_members,
+                            likelihood_scale="IPCC likelihood scale (Mastrandrea et al. 2010)"),
+        interventions=tuple(InterventionRecord(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start,
+                                               end=iv.end, description=iv.description) for iv in case.interventions),
         # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
-        "interactions": ([dict(kind=f.kind, **{"from": f.consumer, "to": f.resource}, response=f.response)
-                          for f in case.feeding]
-                         + [dict(kind="competition", **{"from": c.competitor, "to": c.species}, response=None)
-                            for c in case.competition]
-                         + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
-                            for u in case.mutualism]),
-        "equations": equations(case), "assumptions": list(case.notes), "plausibility": PLAUSIBILITY_RULE,
-        "packages": package_versions(), "platform": platform.platform(), "stages": ["assess"], "caution": CAUTION,
-    }
+        interactions=(tuple(InteractionRecord(f.kind, f.consumer, f.resource, f.response) for f in case.feeding)
+                      + tuple(InteractionRecord("competition", c.competitor, c.species) for c in case.competition)
+                      + tuple(InteractionRecord("mutualism", u.partner, u.beneficiary) for u in case.mutualism)),
+        equations=tuple(equations(case)), assumptions=tuple(case.notes), plausibility=PLAUSIBILITY_RULE,
+        packages=package_versions(), platform=platform.platform(), stages=tuple(stages), caution=CAUTION,
+        sensitivity=sensitivity, execution=execution,
+    )
 
 
 def prior_screen(case: Case, settings, progress: Progress | None = None, executor=None, store=None
@@ -208,26 +209,29 @@ def prior_screen(case: Case, settings, progress: Progress | None = None, executo
     return tables, {"sensitivity/sensitivity.json": info}, entry
 
 
-def _sensitivity_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, result: Assessment,
-                       progress, executor, store) -> None:
+def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, tables: dict,
+                    records: dict, progress, executor, store) -> tuple[list[str], dict | None]:
+    """What the decision hinges on (kept members) and the Sobol screen of the prior box.
+
+    Adds the stage's tables and records; returns the stages run and the manifest's entry.
+    """
     from .sensitivity import Settings as ScreenSettings
 
+    stages = []
     if case.uncertain:
         if progress:
             progress("sensitivity and value of information on the plausible members")
-        result.tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
+        tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
         if case.objectives:
-            result.tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
-        result.manifest["stages"].append("sensitivity")
+            tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+        stages.append("sensitivity")
     if len(case.uncertain) < 2:
-        result.manifest["sensitivity"] = {
-            "skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
-        return
+        return stages, {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
     screen = ScreenSettings(base_samples=settings.base_samples, seed=seed, confidence=case.risk.confidence)
-    tables, records, entry = prior_screen(case, screen, progress, executor, store)
-    result.tables.update(tables)
-    result.records.update(records)
-    result.manifest["sensitivity"] = entry
+    screen_tables, screen_records, entry = prior_screen(case, screen, progress, executor, store)
+    tables.update(screen_tables)
+    records.update(screen_records)
+    return stages, entry
 
 
 def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
@@ -256,27 +260,29 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
     if progress:
         progress("tabulating risk")
-    failures = failure_counts(runs)
-    manifest = manifest_for(case, ens, failures, seed, command or ["python", "impact.api.assess"], started, 0.0)
-    result = Assessment(case, ens, manifest, {
+    tables = {
         "risk.csv": risk_table(case, runs), "effects.csv": effects_table(case, runs),
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
         "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
-        "priors.csv": priors_table(case)})
+        "priors.csv": priors_table(case)}
+    records: dict[str, dict] = {}
+    stages, sensitivity = ["assess"], None
     if settings.sensitivity:
-        _sensitivity_stage(case, settings, seed, ens, runs, result, progress, executor, store)
+        more, sensitivity = _decision_stage(case, settings, seed, ens, runs, tables, records, progress, executor, store)
+        stages += more
     if settings.dynamics:
         from .screen import assess_stage
 
         dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
-        result.tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
-        result.records["dynamics/dynamics.json"] = record
-        manifest["stages"].append("dynamics")
-    manifest["seconds"] = round(time.monotonic() - t0, 2)
-    manifest["execution"] = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
-                             "chunks_computed": getattr(store, "saved", 0)}
-    return result
+        tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
+        records["dynamics/dynamics.json"] = record
+        stages.append("dynamics")
+    execution = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
+                 "chunks_computed": getattr(store, "saved", 0)}
+    manifest = manifest_for(case, ens, failure_counts(runs), seed, command or ["python", "impact.api.assess"], started,
+                            time.monotonic() - t0, tuple(stages), sensitivity, execution)
+    return Assessment(case, ens, manifest, tables, records)
 
 
 def summary_text(case: Case, folder: Path) -> str:
@@ -285,13 +291,13 @@ def summary_text(case: Case, folder: Path) -> str:
     from .verdict import reading, reading_text
 
     res = load_results(folder)
-    counts, risk = res.manifest["counts"], res.risk
+    counts, risk = res.manifest.counts, res.risk
     L = [case.title,
-         f"draws: {counts['tried']} tried, {counts['kept']} plausible kept ({counts['failed']} failed numerically, "
-         f"{counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)"]
-    if counts["kept"] < counts["wanted"]:
-        L.append(f"WARNING: only {counts['kept']} of {counts['wanted']} wanted members were plausible within the draw limit")
-    for opt, f in counts["failed_by_option"].items():
+         f"draws: {counts.tried} tried, {counts.kept} plausible kept ({counts.failed} failed numerically, "
+         f"{counts.extinct} lost a species, {counts.out_of_range} outside observed ranges)"]
+    if counts.kept < counts.wanted:
+        L.append(f"WARNING: only {counts.kept} of {counts.wanted} wanted members were plausible within the draw limit")
+    for opt, f in counts.failed_by_option.items():
         if f["failed"]:
             L.append(f"WARNING: {f['failed']} members failed numerically under {opt}: "
                      + ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed"))

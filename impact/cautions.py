@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from .formatting import fmt_num, fmt_prob
+from .manifest import Manifest
 
 RANK_THIN, RANK_SHORTFALL, RANK_FAILURES, RANK_UNDECIDED = 0, 1, 2, 3
 RANK_IMPLAUSIBLE, RANK_PREDICTABILITY, RANK_OSCILLATION, RANK_SENSITIVITY, RANK_INVENTED = 4, 5, 6, 7, 8
@@ -40,16 +41,16 @@ def _join(parts: list[str]) -> str:
     return "; ".join(parts)
 
 
-def _member_cautions(m: dict, thin_reason: str) -> list[Caution]:
-    c = m["counts"]
+def _member_cautions(m: Manifest, thin_reason: str) -> list[Caution]:
+    c = m.counts
     out = []
     if thin_reason:
         out.append(Caution(RANK_THIN, thin_reason))
-    tried, kept, wanted = int(c["tried"]), int(c["kept"]), int(c.get("wanted", c["kept"]))
+    tried, kept, wanted = c.tried, c.kept, c.wanted
     if kept < wanted and not thin_reason:
         out.append(Caution(RANK_SHORTFALL, f"Only {kept} of the {wanted} wanted plausible members were found within "
                                            "the draw limit; every interval is wider than planned."))
-    failed = {opt: f for opt, f in (c.get("failed_by_option") or {}).items() if f.get("failed")}
+    failed = {opt: f for opt, f in c.failed_by_option.items() if f.get("failed")}
     if failed:
         parts = []
         for opt, f in failed.items():
@@ -59,11 +60,11 @@ def _member_cautions(m: dict, thin_reason: str) -> list[Caution]:
                                           "table gives the n behind each number): " + _join(parts) + "."))
     if tried and kept / tried < IMPLAUSIBLE_SHARE:
         out.append(Caution(RANK_IMPLAUSIBLE, f"Most draws were implausible: {kept} of {tried} draws tried were kept "
-                                             f"({c.get('failed', 0)} failed numerically, {c.get('extinct', 0)} lost a "
-                                             f"species, {c.get('out_of_range', 0)} lay outside an observed range). The "
+                                             f"({c.failed} failed numerically, {c.extinct} lost a "
+                                             f"species, {c.out_of_range} lay outside an observed range). The "
                                              "priors and the observations disagree."))
-    elif c.get("failed", 0):
-        out.append(Caution(RANK_FAILURES, f"{c['failed']} of {tried} draws failed numerically during spin-up and "
+    elif c.failed:
+        out.append(Caution(RANK_FAILURES, f"{c.failed} of {tried} draws failed numerically during spin-up and "
                                           "were not kept."))
     return out
 
@@ -84,11 +85,11 @@ def share_text(r) -> str:
     return fmt_prob(r.share)
 
 
-def _regime_cautions(m: dict, dynamics: dict) -> list[Caution]:
+def _regime_cautions(m: Manifest, dynamics: dict) -> list[Caution]:
     shares = dynamics.get("regime_shares")
     if shares is None or shares.empty:
         return []
-    H, unit = float(m["horizon"]), m["time_unit"]
+    H, unit = float(m.horizon), m.time_unit
     out = []
     if "shortfall_max" in shares:
         short = shares[(shares.share > 0) & (shares.shortfall_max.astype(float) > 0)]
@@ -150,13 +151,13 @@ def _sensitivity_cautions(sens: dict) -> list[Caution]:
     return out
 
 
-def cautions(m: dict, objectives: pd.DataFrame, thin_reason: str, dynamics: dict | None,
+def cautions(m: Manifest, objectives: pd.DataFrame, thin_reason: str, dynamics: dict | None,
              sensitivity: dict | None) -> list[Caution]:
     """Every specific warning of a results folder, one per concern, most serious first."""
     out = _member_cautions(m, thin_reason)
     out += _objective_cautions(objectives)
     out += _regime_cautions(m, dynamics or {})
     out += _sensitivity_cautions(sensitivity or {})
-    if m["case"].get("invented"):
+    if m.case.invented:
         out.append(Caution(RANK_INVENTED, "The case file is marked INVENTED: it is an example, not real site data."))
     return sorted(out, key=lambda c: c.rank)

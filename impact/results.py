@@ -2,7 +2,7 @@
 
 Outputs are written into a partial sibling folder and moved into place only when complete
 (:mod:`impact.outfolder`), so an interrupted or failed run never leaves half-written results
-behind. :data:`TABLES` and :data:`MANIFEST_FIELDS` are the schema ``impact report`` checks a
+behind. :data:`TABLES` and :class:`impact.manifest.Manifest` are the schema ``impact report`` checks a
 results folder against before reading a number from it.
 """
 
@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import ReadError, SettingError, WriteError
+from .manifest import Manifest
 
 
 def write_csv(frame: pd.DataFrame, path: Path):
@@ -42,8 +43,8 @@ def _jsonable(x):
     raise TypeError(f"not JSON serialisable: {type(x).__name__}")
 
 
-def read_manifest(results: Path) -> dict:
-    """``manifest.json`` of a results folder, checked against :data:`MANIFEST_FIELDS`."""
+def read_manifest(results: Path) -> Manifest:
+    """``manifest.json`` of a results folder, read into a :class:`impact.manifest.Manifest`."""
     path = Path(results) / "manifest.json"
     try:
         manifest = json.loads(path.read_bytes().decode("utf-8"))
@@ -55,25 +56,10 @@ def read_manifest(results: Path) -> dict:
         raise ReadError(str(path), "", f"is not valid JSON ({exc})") from None
     except OSError as exc:
         raise ReadError(str(path), "", f"cannot be read ({exc.strerror or exc})") from None
-    check_manifest(manifest, path)
-    return manifest
+    return Manifest.from_json(manifest, path)
 
 
 # ----------------------------------------------------------------------------- schema
-
-# Manifest fields the report reads: name -> (type, required). Lists of tables name the keys each
-# entry must have, with their types.
-_NUMBER = (int, float)
-MANIFEST_FIELDS = {
-    "case": (dict, True), "species": (list, True), "options": (list, True), "counts": (dict, True),
-    "horizons": (list, True), "time_unit": (str, True), "horizon": (_NUMBER, False),
-    "confidence": (_NUMBER, False), "seed": (int, False), "stages": (list, False),
-    "interventions": (list, False), "interactions": (list, False), "equations": (list, False),
-    "assumptions": (list, False), "command": (list, False), "packages": (dict, False), "execution": (dict, False),
-    "judgement": (dict, True), "objectives": (list, True),
-}
-MANIFEST_ENTRIES = {"species": {"name": str, "role": str}, "options": {"name": str, "interventions": list, "touches": list},
-                    "interventions": {"name": str}}
 
 # Results tables: relative path -> (columns that must be there, those of them that hold numbers).
 # Stage tables are optional (the stage may not have run); when present they must match.
@@ -108,40 +94,6 @@ TABLES = {
     "dynamics/transitions.csv": (("parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"),
                                  ("from_value", "to_value")),
 }
-
-
-def _type_name(kind) -> str:
-    kinds = kind if isinstance(kind, tuple) else (kind,)
-    return " or ".join({dict: "an object", list: "a list", str: "text", int: "a whole number",
-                        float: "a number"}[k] for k in kinds)
-
-
-def check_manifest(manifest, path: Path):
-    """Refuse a manifest whose fields the report needs are missing or of the wrong type."""
-    if not isinstance(manifest, dict):
-        raise ReadError(str(path), "", "must be a JSON object; the results folder is damaged")
-    for key, (kind, required) in MANIFEST_FIELDS.items():
-        if key not in manifest:
-            if required:
-                raise ReadError(str(path), key, "missing; the results directory is incomplete")
-            continue
-        v = manifest[key]
-        if isinstance(v, bool) or not isinstance(v, kind):
-            raise ReadError(str(path), key, f"must be {_type_name(kind)}, got {type(v).__name__}; the results folder is damaged")
-    for i, h in enumerate(manifest["horizons"]):
-        if isinstance(h, bool) or not isinstance(h, _NUMBER):
-            raise ReadError(str(path), f"horizons[{i}]", f"must be a number, got {h!r}")
-    if not manifest["horizons"]:
-        raise ReadError(str(path), "horizons", "must list at least one horizon")
-    for key, fields in MANIFEST_ENTRIES.items():
-        for i, entry in enumerate(manifest.get(key, [])):
-            if not isinstance(entry, dict):
-                raise ReadError(str(path), f"{key}[{i}]", f"must be an object, got {type(entry).__name__}")
-            for f, kind in fields.items():
-                if f in entry and not isinstance(entry[f], kind):
-                    raise ReadError(str(path), f"{key}[{i}].{f}", f"must be {_type_name(kind)}, got {type(entry[f]).__name__}")
-                if f not in entry and f == "name":
-                    raise ReadError(str(path), f"{key}[{i}].name", "missing; the results folder is damaged")
 
 
 def check_table(frame: pd.DataFrame, path: Path, relative: str):
@@ -305,7 +257,7 @@ class Results:
     """
 
     path: Path
-    manifest: dict
+    manifest: Manifest
     risk: pd.DataFrame
     bands: pd.DataFrame
     priors: pd.DataFrame
@@ -372,7 +324,3 @@ def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon
     r = risk[(risk.option == option) & (risk.species == species) & (risk.metric == metric)
              & np.isclose(risk.horizon, horizon)]
     return None if r.empty else r.iloc[0]
-
-
-def option_names(m: dict) -> list[str]:
-    return [o["name"] for o in m["options"]]

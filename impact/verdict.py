@@ -25,6 +25,7 @@ import pandas as pd
 
 from .formatting import fmt_bare_points, fmt_bare_prob, fmt_change, fmt_num, fmt_points, fmt_prob
 from .likelihood import LOWER_TERMS, likelihood_term
+from .manifest import Manifest
 
 # a material change is listed once it is more than "unlikely" on the likelihood scale
 LISTING_PROBABILITY = LOWER_TERMS[-1][0]
@@ -89,15 +90,15 @@ def _one(df: pd.DataFrame, **eq):
     return None if r.empty else r.iloc[0]
 
 
-def thin_run(manifest: dict) -> tuple[bool, str]:
+def thin_run(manifest: Manifest) -> tuple[bool, str]:
     """Whether the run holds too few plausible members for a verdict, and why (empty when not)."""
-    kept = int(manifest["counts"]["kept"])
-    need = int(manifest["judgement"]["min_members"])
+    kept = manifest.counts.kept
+    need = manifest.judgement.min_members
     if kept >= need:
         return False, ""
     # widest exact 95 % half-width is at p = 1/2; about 1/sqrt(n) (normal approximation)
     half = 1.0 / math.sqrt(max(kept, 1))
-    wanted = int(manifest["counts"].get("wanted", kept))
+    wanted = manifest.counts.wanted
     remedy = (f"ask for at least {need} members (--members, or case.members)" if wanted < need else
               "widen the priors or the observed ranges, or raise case.max_draws, so that more draws are plausible")
     return True, (f"NO VERDICT: only {kept} plausible members were kept, fewer than the {need} this case requires "
@@ -127,10 +128,10 @@ def _risk_pair(risk: pd.DataFrame, option: str, species: str, metric: str, h: fl
     return f"{fmt_prob(b.value)} → {fmt_prob(o.value)}"
 
 
-def target_line(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, option: str, species: str) -> Item:
+def target_line(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, option: str, species: str) -> Item:
     """The outcome for a target species: its quasi-extinction chance and its change in abundance."""
-    H = max(m["horizons"])
-    unit = m["time_unit"]
+    H = max(m.horizons)
+    unit = m.time_unit
     parts = []
     q = _one(risk, option=option, species=species, metric="quasi_extinction", horizon=H)
     b = _one(risk, option="baseline", species=species, metric="quasi_extinction", horizon=H)
@@ -145,14 +146,14 @@ def target_line(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, option: str,
     return Item(f"{species} (target)", "; ".join(parts) + "." if parts else "no outcome saved.")
 
 
-def introduced_item(m: dict, risk: pd.DataFrame, option: str, species: str) -> Item:
+def introduced_item(m: Manifest, risk: pd.DataFrame, option: str, species: str) -> Item:
     """A species absent today that the option brings in: where it stands by the last horizon."""
-    H = max(m["horizons"])
+    H = max(m.horizons)
     r = _one(risk, option=option, species=species, metric="mean_abundance", horizon=H)
     body = "absent without the option, so no paired change exists"
     if r is not None:
-        unit = next(s["unit"] for s in m["species"] if s["name"] == species)
-        body += (f"; mean abundance over 0–{fmt_num(H)} {m['time_unit']} under the option {fmt_num(r.value)} {unit} "
+        unit = next(s.unit for s in m.species if s.name == species)
+        body += (f"; mean abundance over 0–{fmt_num(H)} {m.time_unit} under the option {fmt_num(r.value)} {unit} "
                  f"(median; 5–95 % of members {fmt_num(r.low)} to {fmt_num(r.high)})")
     return Item(f"{species} (introduced by this option)", body + ".")
 
@@ -163,7 +164,7 @@ class _Effect:
     item: Item
 
 
-def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: dict) -> tuple[str, float, float]:
+def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: Manifest) -> tuple[str, float, float]:
     """The abundance side of an effect at the horizon where a material change is likeliest."""
     e = _pick(effects, option=option, species=species, metric="mean_abundance")
     pm = e[(e.statistic == "p_material") & (e.n.astype(float) > 0)]
@@ -176,14 +177,14 @@ def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: dict) -
     size = abs(math.log1p(max(float(med.value), -0.999999))) if med is not None and np.isfinite(med.value) else 0.0
     down = _one(e, horizon=h, statistic="p_material_decrease")
     up = _one(e, horizon=h, statistic="p_material_increase")
-    text = (f"mean abundance over 0–{fmt_num(h)} {m['time_unit']} {fmt_change(med.value)} (median paired change; "
+    text = (f"mean abundance over 0–{fmt_num(h)} {m.time_unit} {fmt_change(med.value)} (median paired change; "
             f"5–95 % of members {fmt_change(med.low)} to {fmt_change(med.high)}); chance of a material change "
             f"(±{fmt_change(best.threshold).lstrip('+')}): {with_term(best.value, best.low, best.high)}"
             f" (a fall {fmt_prob(down.value)}, a rise {fmt_prob(up.value)})")
     return text, float(best.value), size
 
 
-def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species: str, m: dict) -> list[str]:
+def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species: str, m: Manifest) -> list[str]:
     """Quasi-extinction and outbreak chances that move by at least the material risk."""
     out = []
     for metric, name in EVENT_NAMES.items():
@@ -194,38 +195,38 @@ def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species
         r = d.loc[d.value.abs().idxmax()]
         if abs(float(r.value)) + 1e-12 < float(r.threshold):
             continue
-        out.append(f"{name} by {fmt_num(r.horizon)} {m['time_unit']} "
+        out.append(f"{name} by {fmt_num(r.horizon)} {m.time_unit} "
                    f"{_risk_pair(risk, option, species, metric, float(r.horizon))} "
                    f"({fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}])")
     return out
 
 
-def option_reading(m: dict, risk: pd.DataFrame, effects: pd.DataFrame, objectives: pd.DataFrame,
+def option_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objectives: pd.DataFrame,
                    option: str) -> OptionReading:
     """Objectives, targets, material side effects (largest first) and the quiet species of one option."""
     objs = tuple(objective_line(r) for _, r in objectives[objectives.option == option].iterrows())
     targets, sides, quiet = [], [], []
-    touched = set(next(o for o in m["options"] if o["name"] == option)["touches"])
-    for s in m["species"]:
-        sp = s["name"]
-        if s["role"] == "target":
+    touched = set(next(o for o in m.options if o.name == option).touches)
+    for s in m.species:
+        sp = s.name
+        if s.role == "target":
             targets.append(target_line(m, risk, effects, option, sp))
             continue
-        if not s["present"]:
+        if not s.present:
             if sp in touched:
                 sides.append(_Effect(math.inf, introduced_item(m, risk, option, sp)))
             continue
         abundance, p_mat, size = _abundance_part(effects, option, sp, m)
         events = _event_parts(effects, risk, option, sp, m)
-        tag = ("protected, " if s["role"] == "protected" else "") + (
+        tag = ("protected, " if s.role == "protected" else "") + (
             "direct: the option acts on it" if sp in touched else "indirect: through the food web")
         if p_mat > LISTING_PROBABILITY or events:
             body = "; ".join(x for x in [abundance, *events] if x) + "."
             sides.append(_Effect(size, Item(f"{sp} ({tag})", body)))
         else:
-            pm = _one(effects, option=option, species=sp, metric="mean_abundance", horizon=max(m["horizons"]),
+            pm = _one(effects, option=option, species=sp, metric="mean_abundance", horizon=max(m.horizons),
                       statistic="p_material")
-            flags = [f for f in ("protected" if s["role"] == "protected" else "", "direct" if sp in touched else "") if f]
+            flags = [f for f in ("protected" if s.role == "protected" else "", "direct" if sp in touched else "") if f]
             quiet.append(f"{sp}{' (' + ', '.join(flags) + ')' if flags else ''}"
                          + (f" {with_term(pm.value, pm.low, pm.high)}" if pm is not None and pm.n > 0 else ""))
     sides.sort(key=lambda e: -e.size)
@@ -249,13 +250,13 @@ def best_lines(comparisons: pd.DataFrame) -> tuple[str, ...]:
     return tuple(out)
 
 
-def reading(manifest: dict, risk: pd.DataFrame, effects: pd.DataFrame, objectives: pd.DataFrame,
+def reading(manifest: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objectives: pd.DataFrame,
             comparisons: pd.DataFrame) -> Reading:
     """The whole page-1 verdict from the saved manifest and tables."""
     thin, why = thin_run(manifest)
     if thin:
         return Reading(True, why, (), ())
-    opts = tuple(option_reading(manifest, risk, effects, objectives, o["name"]) for o in manifest["options"])
+    opts = tuple(option_reading(manifest, risk, effects, objectives, o.name) for o in manifest.options)
     return Reading(False, "", opts, best_lines(comparisons))
 
 

@@ -9,9 +9,12 @@ option's interventions act on are drawn with a heavy outline and listed in the l
 from __future__ import annotations
 
 import io
+from typing import Sequence
 
 import networkx as nx
 import numpy as np
+
+from .manifest import InteractionRecord, Manifest
 
 FEEDING = ("predation", "scavenging")
 KIND_STYLE = {
@@ -24,15 +27,15 @@ RESPONSE_LABELS = {"holling1": "Holling I", "holling2": "Holling II", "holling3"
 TOUCHED_COLOUR = "#d35400"
 
 
-def trophic_positions(names: list[str], links: list[dict]) -> tuple[dict, dict]:
+def trophic_positions(names: list[str], links: Sequence[InteractionRecord]) -> tuple[dict, dict]:
     """Trophic level and (x, y) position of every node.
 
     Parameters
     ----------
     names : list of str
         Species (and the carrion pool) in declaration order.
-    links : list of dict
-        Saved interactions with ``kind``, ``from`` (the consumer or actor) and ``to``.
+    links : sequence of InteractionRecord
+        Saved interactions (``kind``, ``actor``: the consumer or actor, ``target``).
 
     Returns
     -------
@@ -41,8 +44,8 @@ def trophic_positions(names: list[str], links: list[dict]) -> tuple[dict, dict]:
     g = nx.DiGraph()
     g.add_nodes_from(names)
     for it in links:
-        if it["kind"] in FEEDING:
-            g.add_edge(it["to"], it["from"])  # resource → consumer
+        if it.kind in FEEDING:
+            g.add_edge(it.target, it.actor)  # resource → consumer
     try:
         levels = {k: float(v) for k, v in nx.trophic_levels(g).items()}
     except (nx.NetworkXError, np.linalg.LinAlgError, ZeroDivisionError):
@@ -60,40 +63,40 @@ def trophic_positions(names: list[str], links: list[dict]) -> tuple[dict, dict]:
     return levels, pos
 
 
-def food_web_svg(m: dict) -> bytes:
+def food_web_svg(m: Manifest) -> bytes:
     """The diagram as SVG, from the manifest's species, interactions and options."""
     from matplotlib.figure import Figure
     from matplotlib.lines import Line2D
     from matplotlib.patches import FancyArrowPatch
 
-    links = m.get("interactions") or []
-    names = [s["name"] for s in m["species"]]
+    links = m.interactions
+    names = [s.name for s in m.species]
     for it in links:
-        for end in (it["from"], it["to"]):
+        for end in (it.actor, it.target):
             if end not in names:
                 names.append(end)
     levels, pos = trophic_positions(names, links)
     touched: dict[str, list[str]] = {}
-    for o in m["options"]:
-        for sp in o.get("touches", []):
-            touched.setdefault(sp, []).append(o["name"])
-    roles = {s["name"]: s.get("role", "other") for s in m["species"]}
+    for o in m.options:
+        for sp in o.touches:
+            touched.setdefault(sp, []).append(o.name)
+    roles = {s.name: s.role for s in m.species}
     fig = Figure(figsize=(6.4, 1.4 + 1.15 * max(1.0, max(levels.values()))))
     fig.set_layout_engine("constrained")
     ax = fig.add_subplot()
     ax.axis("off")
     for it in links:
-        colour, style = KIND_STYLE.get(it["kind"], ("#000000", ":"))
-        src, dst = (it["to"], it["from"]) if it["kind"] in FEEDING else (it["from"], it["to"])
+        colour, style = KIND_STYLE.get(it.kind, ("#000000", ":"))
+        src, dst = (it.target, it.actor) if it.kind in FEEDING else (it.actor, it.target)
         a, b = np.array(pos[src]), np.array(pos[dst])
-        both = "<|-|>" if it["kind"] == "competition" else "-|>"
+        both = "<|-|>" if it.kind == "competition" else "-|>"
         ax.add_patch(FancyArrowPatch(a, b, arrowstyle=both, mutation_scale=12, color=colour, linestyle=style,
                                      linewidth=1.4, connectionstyle="arc3,rad=0.12", shrinkA=16, shrinkB=16))
-        label = RESPONSE_LABELS.get(it.get("response") or "", it["kind"]) if it["kind"] in FEEDING else it["kind"]
+        label = RESPONSE_LABELS.get(it.response or "", it.kind) if it.kind in FEEDING else it.kind
         mid = (a + b) / 2 + np.array([0.04, 0.0])
         ax.text(*mid, _escape(label), fontsize=6, color=colour, ha="center", va="center",
                 bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.85))
-    present = {s["name"]: s.get("present", True) for s in m["species"]}
+    present = {s.name: s.present for s in m.species}
     for n, (x, y) in pos.items():
         tag = {"target": "\n(target)", "protected": "\n(protected)"}.get(roles.get(n, "other"), "")
         edge = TOUCHED_COLOUR if n in touched else "#1c2833"
@@ -105,7 +108,7 @@ def food_web_svg(m: dict) -> bytes:
     ax.set_ylim(min(ys) - 0.45, max(ys) + 0.45)
     ax.set_ylabel("trophic level")
     handles = [Line2D([], [], color=KIND_STYLE[k][0], linestyle=KIND_STYLE[k][1], label=k)
-               for k in dict.fromkeys(it["kind"] for it in links) if k in KIND_STYLE]
+               for k in dict.fromkeys(it.kind for it in links) if k in KIND_STYLE]
     handles += [Line2D([], [], color=TOUCHED_COLOUR, lw=2.4, label=f"acted on by: {_escape(n)} ({', '.join(map(_escape, o))})")
                 for n, o in touched.items()]
     if handles:

@@ -34,6 +34,35 @@ def test_api_round_trip_matches_the_command_line(tmp_path):
     rebuilt = impact.build_report(api_out, tmp_path / "again.pdf")
     assert PdfReader(str(rebuilt)).pages[0].extract_text() == first[0]
     assert (api_out / "summary.txt").read_text().split("verdict")[1] == (cli_out / "summary.txt").read_text().split("verdict")[1]
+    # the manifest is typed, written and read in one place: what was saved is what is read back
+    assert loaded.manifest == result.manifest
+    assert loaded.manifest.counts.kept == 120 and loaded.manifest.option_names == ["apex only", "apex and meso"]
+
+
+def test_a_manifest_entry_of_the_wrong_type_is_named(tmp_path):
+    import json
+
+    from impact.errors import ReadError
+    from impact.manifest import Manifest
+
+    path = write_case(tmp_path, mesopredator_case(members=100))
+    result = impact.assess(impact.load_case(path), impact.AssessSettings(sensitivity=False, dynamics=False))
+    data = json.loads(json.dumps(result.manifest.to_json()))
+    assert Manifest.from_json(data) == result.manifest
+    data["species"][1]["role"] = 3
+    try:
+        Manifest.from_json(data, "x/manifest.json")
+    except ReadError as exc:
+        assert exc.field == "species[1].role" and "text" in exc.message
+    else:
+        raise AssertionError("a wrong type was read")
+    del data["species"][1]["role"]
+    try:
+        Manifest.from_json(data, "x/manifest.json")
+    except ReadError as exc:
+        assert exc.field == "species[1].role" and "missing" in exc.message
+    else:
+        raise AssertionError("a missing field was read")
 
 
 def test_every_written_column_is_documented_and_every_documented_column_written(tmp_path):

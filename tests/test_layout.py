@@ -28,7 +28,7 @@ STAGES = [
     {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "simulate",
      "execute"},
     {"assess"},
-    {"effects", "results", "outfolder", "budget"},
+    {"effects", "results", "manifest", "outfolder", "budget"},
     {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"cautions", "verdict", "webfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},

@@ -57,14 +57,14 @@ def new_figure(w, h):
 def bands_figure(res: Results, option: str, colour: str) -> bytes:
     """Median and 50 %/90 % bands per species, baseline and option on shared axes."""
     m = res.manifest
-    species = [s["name"] for s in m["species"]]
-    units = {s["name"]: s.get("unit", "") for s in m["species"]}
+    species = [s.name for s in m.species]
+    units = {s.name: s.unit for s in m.species}
     ncol = 2 if len(species) > 1 else 1
     nrow = math.ceil(len(species) / ncol)
     fig = new_figure(6.6, 1.9 * nrow + 0.5)
     axes = fig.subplots(nrow, ncol, sharex=True, squeeze=False)
-    ivs = {iv["name"]: iv for iv in m.get("interventions", [])}
-    opt = next((o for o in m["options"] if o["name"] == option), {"interventions": []})
+    ivs = {iv.name: iv for iv in m.interventions}
+    chosen = next((o.interventions for o in m.options if o.name == option), ())
     for k, sp in enumerate(species):
         ax = axes[k // ncol][k % ncol]
         for name, col in (("baseline", BASELINE_COLOUR), (option, colour)):
@@ -74,10 +74,10 @@ def bands_figure(res: Results, option: str, colour: str) -> bytes:
             ax.fill_between(b.time, b.q05, b.q95, color=col, alpha=0.15, linewidth=0)
             ax.fill_between(b.time, b.q25, b.q75, color=col, alpha=0.35, linewidth=0)
             ax.plot(b.time, b.q50, color=col, linewidth=1.4, label=mpl_text(name))
-        for ivn in opt.get("interventions", []):
+        for ivn in chosen:
             iv = ivs.get(ivn)
             if iv is not None:
-                ax.axvline(iv["start"], color="#7f8c8d", linewidth=0.7, linestyle=":")
+                ax.axvline(iv.start, color="#7f8c8d", linewidth=0.7, linestyle=":")
         ax.set_title(mpl_text(sp), fontsize=9)
         ax.set_ylabel(mpl_text(units.get(sp, "")), fontsize=7)
         ax.tick_params(labelsize=7)
@@ -85,7 +85,7 @@ def bands_figure(res: Results, option: str, colour: str) -> bytes:
     for k in range(len(species), nrow * ncol):
         axes[k // ncol][k % ncol].axis("off")
     for ax in axes[-1]:
-        ax.set_xlabel(mpl_text(m["time_unit"]), fontsize=8)
+        ax.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     axes[0][0].legend(fontsize=7, loc="best")
     return png_bytes(fig)
 

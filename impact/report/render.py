@@ -22,35 +22,35 @@ ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
 def report_context(res: Results, assets: Assets) -> dict:
     """Everything the template prints, already formatted from the saved numbers."""
     m = res.manifest
-    counts = m["counts"]
-    failed = {k: int(v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()}
+    counts = m.counts
+    failed = {k: int(v.get("failed", 0)) for k, v in counts.failed_by_option.items()}
     options = []
-    for k, o in enumerate(m["options"]):
+    for k, o in enumerate(m.options):
         colour = OPTION_COLOURS[k % len(OPTION_COLOURS)]
-        options.append(dict(name=o["name"], description=o.get("description", ""), interventions=o.get("interventions", []),
-                            touches=o["touches"], failed=failed.get(o["name"], 0),
-                            figure=assets.add(f"bands-{k}.png", bands_figure(res, o["name"], colour), "image/png"),
-                            risk=risk_table_context(res, o["name"]), effects=effects_table_context(res, o["name"])))
+        options.append(dict(name=o.name, description=o.description, interventions=o.interventions,
+                            touches=o.touches, failed=failed.get(o.name, 0),
+                            figure=assets.add(f"bands-{k}.png", bands_figure(res, o.name, colour), "image/png"),
+                            risk=risk_table_context(res, o.name), effects=effects_table_context(res, o.name)))
     thin, why = thin_run(m)
     verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
     warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
-    failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()]
+    failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
     return dict(
-        m=m, case=m["case"], title=m["case"].get("title", ""), date=str(m.get("started_utc", ""))[:10],
-        verdict=verdict, caution=m.get("caution", ""), warnings=[w.text for w in warnings],
+        m=m, case=m.case, title=m.case.title, date=m.started_utc[:10],
+        verdict=verdict, caution=m.caution, warnings=[w.text for w in warnings],
         # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
-        top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m["judgement"],
+        top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
-        species=m["species"], interactions=m.get("interactions") or [], equations=m.get("equations", []),
+        species=m.species, interactions=m.interactions, equations=m.equations,
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
-        interventions=m.get("interventions", []), options=options, iucn=iucn_rows(res),
+        interventions=m.interventions, options=options, iucn=iucn_rows(res),
         sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
-        horizons=[fmt_num(h) for h in m["horizons"]], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
-        command=" ".join(str(a) for a in m.get("command", [])), packages=m.get("packages", {}),
-        assumptions=m.get("assumptions", []), plausibility=m.get("plausibility", ""),
+        horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
+        command=" ".join(m.command), packages=m.packages,
+        assumptions=m.assumptions, plausibility=m.plausibility,
     )
 
 

@@ -120,7 +120,7 @@ def sensitivity_context(res: Results, assets: Assets) -> dict | None:
         return None
     info, drv = s.get("information"), s.get("drivers")
     return dict(information=_information_context(info) if info is not None and not info.empty else [],
-                drivers=_drivers_context(drv, {x["name"]: x["role"] for x in res.manifest["species"]})
+                drivers=_drivers_context(drv, res.manifest.roles)
                 if drv is not None and not drv.empty else [],
                 screen=_screen_context(s), files=sorted(f"sensitivity/{k}.csv" for k, v in s.items()
                                                         if isinstance(v, pd.DataFrame)))
@@ -130,7 +130,7 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
     d = res.dynamics
     if not d:
         return None
-    unit = res.manifest["time_unit"]
+    unit = res.manifest.time_unit
     ctx = dict(figures=[], shares=[], transitions=[], scan_run=False)
     sh = d.get("regime_shares")
     if sh is not None and not sh.empty:

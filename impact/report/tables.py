@@ -9,7 +9,8 @@ import pandas as pd
 from ..formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from ..iucn import CATEGORY_NAMES, criterion_e_in_units, years_per_unit
 from ..metrics import describe_interval
-from ..results import Results, option_names, risk_row
+from ..manifest import Manifest
+from ..results import Results, risk_row
 from ..verdict import with_term
 
 RISK_METRICS = (
@@ -43,11 +44,11 @@ def _n_note(n, kept: int) -> str:
 
 def risk_table_context(res: Results, option: str) -> dict:
     m = res.manifest
-    hs = list(m["horizons"])
-    kept = int(m["counts"]["kept"])
+    hs = list(m.horizons)
+    kept = m.counts.kept
     rows = []
-    for s in m["species"]:
-        sp = s["name"]
+    for s in m.species:
+        sp = s.name
         for metric, label in RISK_METRICS:
             cells, any_value = [], False
             for h in hs:
@@ -74,15 +75,15 @@ EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)", "p
 def effects_table_context(res: Results, option: str) -> dict:
     """Per species and horizon: the paired change, its material and worse chances, and event chance changes."""
     e = res.effects[res.effects.option == option]
-    kept = int(res.manifest["counts"]["kept"])
-    hs = list(res.manifest["horizons"])
+    kept = res.manifest.counts.kept
+    hs = list(res.manifest.horizons)
     rows = []
-    for s in res.manifest["species"]:
-        sp = s["name"]
+    for s in res.manifest.species:
+        sp = s.name
         es = e[e.species == sp]
         if es.empty:
             continue
-        tag = s["role"] + ", " + ("direct" if bool(str(es.direct.iloc[0]).lower() == "true") else "indirect")
+        tag = s.role + ", " + ("direct" if bool(str(es.direct.iloc[0]).lower() == "true") else "indirect")
         for metric, stats, label in (("mean_abundance", ("median_change", "p_material", "p_worse"), "abundance"),
                                      ("quasi_extinction", ("difference", "p_worse"), "quasi-extinction"),
                                      ("outbreak", ("difference", "p_worse"), "outbreak")):
@@ -133,19 +134,19 @@ def iucn_rows(res: Results) -> list[dict]:
     """Indicative criterion E reading per option and species with a generation time."""
     m = res.manifest
     rows = []
-    for opt in ["baseline", *option_names(m)]:
-        for s in m["species"]:
+    for opt in ["baseline", *m.option_names]:
+        for s in m.species:
             # a target's loss is the aim of an option, not a conservation concern
-            if s.get("generation_time") is None or s["role"] == "target":
+            if s.generation_time is None or s.role == "target":
                 continue
             probs = {}
-            for h in m["horizons"]:
-                r = risk_row(res.risk, opt, s["name"], "quasi_extinction", h)
+            for h in m.horizons:
+                r = risk_row(res.risk, opt, s.name, "quasi_extinction", h)
                 if r is not None:
                     probs[float(h)] = float(r.value)
             if not probs:
                 continue
-            reading = criterion_e_in_units(probs, s["generation_time"], m["time_unit"])
+            reading = criterion_e_in_units(probs, s.generation_time, m.time_unit)
             tests = []
             for t in reading.tests:
                 if t.met is None:
@@ -156,12 +157,12 @@ def iucn_rows(res: Results) -> list[dict]:
                     tests.append(f"{fmt_prob(probs[h_case])} by {fmt_num(h_case)} {'≥' if t.met else '<'} "
                                  f"{t.threshold:.0%}")
             cat = reading.category
-            rows.append(dict(option=opt, species=s["name"], generation_time=fmt_num(s["generation_time"]),
+            rows.append(dict(option=opt, species=s.name, generation_time=fmt_num(s.generation_time),
                              tests=tests, category=cat, category_name=CATEGORY_NAMES.get(cat, cat), note=reading.note))
     return rows
 
 
-def years_per_case_unit(m: dict) -> float:
-    return years_per_unit(m["time_unit"]) or 1.0
+def years_per_case_unit(m: Manifest) -> float:
+    return years_per_unit(m.time_unit) or 1.0
 
 
