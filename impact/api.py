@@ -363,7 +363,17 @@ def load(folder):
 
 
 def build_report(folder, out=None, paper: str = "a4") -> Path:
-    """Build ``report.pdf`` (or ``out``) from a saved results folder alone."""
+    """Build ``report.pdf`` (or ``out``) from a saved results folder alone.
+
+    Writing into the results folder takes its lock, so a report is never written while another
+    run replaces that folder (that run is named in the refusal).
+    """
+    from .outfolder import OutputFolder
     from .report import write_report
 
-    return write_report(folder, out, paper=paper)
+    folder = Path(folder)
+    target = Path(out) if out is not None else folder / "report.pdf"
+    if not folder.is_dir() or target.resolve().parent != folder.resolve():
+        return write_report(folder, target, paper=paper)
+    with OutputFolder(folder, replace=True):
+        return write_report(folder, target, paper=paper)

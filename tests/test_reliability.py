@@ -145,6 +145,22 @@ def test_a_live_lock_refuses_at_once_and_touches_no_checkpoint(small, tmp_path, 
     assert (ckpt / "fingerprint.json").exists() and lock.exists() and not out.exists()
 
 
+def test_report_into_a_folder_another_run_holds_is_refused(small, tmp_path, capsys):
+    """Rebuilding report.pdf inside a results folder takes its lock: never while a run replaces it."""
+    _, results = small
+    copy = tmp_path / "copy"
+    shutil.copytree(results, copy)
+    before = (copy / "report.pdf").read_bytes() if (copy / "report.pdf").exists() else None
+    lock = _lock(copy)  # held by this very process: alive
+    assert main(["report", str(copy)]) == 2
+    assert "in use by another impact run" in capsys.readouterr().err
+    after = (copy / "report.pdf").read_bytes() if (copy / "report.pdf").exists() else None
+    assert after == before
+    lock.unlink()
+    assert main(["report", str(copy)]) == 0 and (copy / "report.pdf").exists()
+    assert not lock.exists()  # released
+
+
 def test_a_lock_from_another_host_says_how_to_clear_it(small, tmp_path, capsys):
     case, _ = small
     out = tmp_path / "out"
