@@ -15,8 +15,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .engine.control import (ERROR_EXPONENT, FAILURE_REASONS, MAX_FACTOR, MIN_FACTOR,
-                             MIN_RTOL, MIN_STEP_ULPS, SAFETY, DormandPrince54, Failure)
+from .engine.control import FAILURE_REASONS, MIN_RTOL, MIN_STEP_ULPS, DormandPrince54, Failure
+from .stepper import error_norm, as_tolerance, select_initial_step, Active, Model, trial_step, next_step, project, nonfinite_rows
 
 __all__ = ["FAILURE_REASONS", "DormandPrince54", "Failure", "SegmentResult", "StepView",
            "integrate", "integrate_segment", "error_norm"]
@@ -59,94 +59,6 @@ class SegmentResult:
     v: np.ndarray | None = None
 
 
-def libm_power(x, p: float) -> np.ndarray:
-    """``x ** p`` elementwise through the C library's ``pow``, as compiled code computes it.
-
-    numpy's vectorised power may differ from ``pow`` in the last bit on CPUs with wide SIMD units;
-    the step controller raises errors to a power, so one differing bit in a step size would part
-    the reference from the compiled kernel. ``0 ** p`` for ``p < 0`` is ``inf`` (as numpy).
-    """
-    from .engine.kernel import power_array  # numba is loaded on first use only
-
-    x = np.asarray(x, dtype=float)
-    return power_array(np.ascontiguousarray(x).ravel(), float(p)).reshape(x.shape)
-
-
-def _rms_rows(x):
-    """Per-row RMS of ``x`` (m, n), summed column by column so the order never depends on m."""
-    n = x.shape[1]
-    acc = x[:, 0] * x[:, 0]
-    for j in range(1, n):
-        acc += x[:, j] * x[:, j]
-    return np.sqrt(acc / n)
-
-
-def error_norm(K, E, tmp, hcol, y, y_new, rtol, atol):
-    """Per-member RMS of the embedded error estimate, scaled by ``atol + rtol·max(|y|, |y_new|)``: (m,)."""
-    err = _combine(K, E, tmp)
-    err *= hcol
-    scale = np.maximum(np.abs(y), np.abs(y_new))
-    scale *= rtol
-    scale += atol
-    err /= scale
-    return _rms_rows(err)
-
-
-def _combine(K, coeffs, tmp):
-    """Fixed-order elementwise sum ``sum_i coeffs[i] * K[i]`` skipping zero weights."""
-    out = None
-    for k, c in zip(K, coeffs):
-        if c == 0:
-            continue
-        if out is None:
-            out = k * c
-        else:
-            np.multiply(k, c, out=tmp)
-            out += tmp
-    return out
-
-
-def _as_tolerance(value, n, name):
-    arr = np.asarray(value, dtype=float)
-    if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
-        raise ValueError(f"{name} must be a scalar or have shape ({n},), got shape {arr.shape}")
-    if np.any(~np.isfinite(arr)) or np.any(arr < 0):
-        raise ValueError(f"{name} must be finite and non-negative")
-    return arr
-
-
-def _select_initial_step(fun, t0, y0, f0, members, t_bound, direction, order, rtol, atol):
-    """Per-member initial step after Hairer, Norsett & Wanner (1993), Sec. II.4.
-
-    Same rule as ``scipy.integrate._ivp.common.select_initial_step`` applied to each row.
-
-    Returns
-    -------
-    h : ndarray, shape (m,)
-        Positive step sizes.
-    nfev : int
-        Right-hand-side calls used (0 or 1).
-    """
-    interval = abs(t_bound - t0)
-    scale = atol + np.abs(y0) * rtol
-    d0 = _rms_rows(y0 / scale)
-    d1 = _rms_rows(f0 / scale)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        h0 = np.where((d0 < 1e-5) | (d1 < 1e-5), 1e-6, 0.01 * d0 / d1)
-    h0 = np.minimum(h0, interval)
-    y1 = y0 + (h0 * direction)[:, None] * f0
-    f1 = np.asarray(fun(t0 + h0 * direction, y1, members), dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        d2 = _rms_rows((f1 - f0) / scale) / h0
-        small = (d1 <= 1e-15) & (d2 <= 1e-15)
-        h1 = np.where(small, np.maximum(1e-6, h0 * 1e-3),
-                      libm_power(0.01 / np.maximum(d1, d2), 1 / (order + 1)))
-    h = np.minimum(np.minimum(100 * h0, h1), interval)
-    # A non-finite f1 gives NaN here; start tiny and let the controller grow the step.
-    h = np.where(np.isfinite(h) & (h > 0), h, np.minimum(1e-6, interval))
-    return h, 1
-
-
 @dataclass(frozen=True)
 class StepView:
     """One iteration of the stepper as an observer sees it (arrays over the active members).
@@ -181,139 +93,6 @@ class StepView:
     g_new: np.ndarray | None
 
 
-class _Active:
-    """Per-member arrays of the members still integrating, compacted together when some leave."""
-
-    FIELDS = ("idx", "y", "f", "v", "g", "t", "h", "mem", "ymin", "ymax", "rejected", "hgood",
-              "nacc", "last_nonfinite")
-
-    def __init__(self, **arrays):
-        for name in self.FIELDS:
-            setattr(self, name, arrays.get(name))
-
-    def keep(self, mask):
-        ki = np.flatnonzero(mask)
-        for name in self.FIELDS:
-            a = getattr(self, name)
-            if a is not None:
-                setattr(self, name, np.take(a, ki, axis=0))
-
-
-class _Model:
-    """The right-hand side with or without its tangent, behind one calling convention."""
-
-    def __init__(self, fun, with_tangent: bool):
-        self.fun, self.with_tangent, self.nfev = fun, with_tangent, 0
-
-    def __call__(self, t, y, v, mem):
-        """``(f, g)`` with ``g = J·v`` (None without a tangent)."""
-        self.nfev += 1
-        if self.with_tangent:
-            f, g = self.fun(t, y, v, mem)
-            return np.asarray(f, dtype=float), np.asarray(g, dtype=float)
-        return np.asarray(self.fun(t, y, mem), dtype=float), None
-
-    def state_only(self, t, y, mem):
-        """``f`` alone (for the initial step choice)."""
-        return self(t, y, np.zeros_like(y) if self.with_tangent else None, mem)[0]
-
-
-def _trial_step(model: _Model, b: _Active, hs, t_new):
-    """One Dormand-Prince step of state (and tangent) for every active member.
-
-    Returns ``y_new, v_new, f_new, g_new, K, hcol`` with ``K`` the state stages (FSAL stage last)
-    and ``hcol`` the signed step repeated over the columns, (m, n).
-    """
-    A, B, C = DormandPrince54.A, DormandPrince54.B, DormandPrince54.C
-    n = b.y.shape[1]
-    # A full (m, n) copy of the step: broadcasting an (m, 1) column is several times slower.
-    hcol = np.repeat(hs, n).reshape(-1, n)
-    tmp = np.empty_like(b.y)
-    K, L = [b.f], [b.g]
-    for s in range(1, DormandPrince54.n_stages):
-        dy = _combine(K, A[s, :s], tmp)
-        dy *= hcol
-        dy += b.y
-        dv = None
-        if b.v is not None:
-            dv = _combine(L, A[s, :s], tmp)
-            dv *= hcol
-            dv += b.v
-        k, l = model(b.t + C[s] * hs, dy, dv, b.mem)
-        K.append(k)
-        L.append(l)
-    y_new = _combine(K, B, tmp)
-    y_new *= hcol
-    y_new += b.y
-    v_new = None
-    if b.v is not None:
-        v_new = _combine(L, B, tmp)
-        v_new *= hcol
-        v_new += b.v
-    f_new, g_new = model(t_new, y_new, v_new, b.mem)
-    K.append(f_new)
-    return y_new, v_new, f_new, g_new, K, hcol
-
-
-def _next_step(err_norm, hs, rejected, hmax):
-    """Step-size controller: ``(h, accept, finite)`` per member.
-
-    An accepted step grows by ``SAFETY·err^(-1/5)`` (at most ``MAX_FACTOR``, not at all right
-    after a rejection); a rejected one shrinks by the same rule (at least ``MIN_FACTOR``, exactly
-    that when the error is not finite). Hairer, Norsett & Wanner (1993), Sec. II.4.
-    """
-    finite = np.isfinite(err_norm)
-    accept = err_norm < 1
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        factor = SAFETY * libm_power(err_norm, ERROR_EXPONENT)
-        grow = np.where(err_norm == 0, MAX_FACTOR, np.minimum(MAX_FACTOR, factor))
-        grow = np.where(rejected, np.minimum(1.0, grow), grow)
-        shrink = np.where(finite, np.maximum(MIN_FACTOR, factor), MIN_FACTOR)
-    h = np.abs(hs) * np.where(accept, grow, shrink)
-    if np.isfinite(hmax):
-        h = np.minimum(h, hmax)
-    return h, accept, finite
-
-
-def _project(model: _Model, b: _Active, accept, t_new, y_new, v_new, f_new, g_new):
-    """Project accepted states onto y ≥ 0 in place; returns rows whose new derivative is not finite.
-
-    Each row is judged on its own (``y_new >= 0`` is False for NaN, so a non-finite row never
-    hides the negative entries of the others). The derivative of a projected row is evaluated
-    again so the stored FSAL stage belongs to the projected state. The tangent of an absent
-    species (y ≤ 0) is set to zero: the web is closed, so it stays on the face of present species.
-    """
-    bad = np.zeros(len(accept), dtype=bool)
-    if np.all(y_new > 0):
-        return bad
-    neg = accept & np.any(y_new < 0, axis=1)
-    if neg.any():
-        y_new[neg] = np.maximum(y_new[neg], 0.0)
-    if v_new is not None:
-        v_new[y_new <= 0] = 0.0
-    if neg.any():
-        f, g = model(t_new[neg], y_new[neg], None if v_new is None else v_new[neg], b.mem[neg])
-        f_new[neg] = f
-        ok = np.all(np.isfinite(f), axis=1)
-        if g_new is not None:
-            g_new[neg] = g
-            ok &= np.all(np.isfinite(g), axis=1)
-        bad[neg] = ~ok
-    return bad
-
-
-def _nonfinite_rows(b: _Active, accept):
-    """Accepted rows whose state or tangent is not finite (a safety net: a finite error norm
-    implies a finite state)."""
-    arrays = [a for a in (b.y, b.v, b.g) if a is not None]
-    if all(np.isfinite(a).all() for a in arrays):
-        return np.zeros(len(accept), dtype=bool)
-    ok = np.ones(len(accept), dtype=bool)
-    for a in arrays:
-        ok &= np.all(np.isfinite(a), axis=1)
-    return accept & ~ok
-
-
 def _check_inputs(y0, t0, t1, rtol, atol, members, max_steps, nonnegative, tangent):
     """Validated ``(y0, t0, t1, rtol, atol, members, max_steps, v0)`` (programming errors raise)."""
     y0 = np.array(y0, dtype=float)
@@ -325,8 +104,8 @@ def _check_inputs(y0, t0, t1, rtol, atol, members, max_steps, nonnegative, tange
     t0, t1 = float(t0), float(t1)
     if not (np.isfinite(t0) and np.isfinite(t1)):
         raise ValueError("t0 and t1 must be finite")
-    rtol = _as_tolerance(rtol, n, "rtol")
-    atol = _as_tolerance(atol, n, "atol")
+    rtol = as_tolerance(rtol, n, "rtol")
+    atol = as_tolerance(atol, n, "atol")
     if np.any(rtol < MIN_RTOL):
         warnings.warn(f"rtol below {MIN_RTOL:.3g} raised to that value", stacklevel=3)
         rtol = np.maximum(rtol, MIN_RTOL)
@@ -397,7 +176,7 @@ def integrate_segment(fun, t0: float, t1: float, y0, *, rtol=1e-6, atol=1e-9, h0
     y0, t0, t1, rtol, atol, members, max_steps, v0 = _check_inputs(
         y0, t0, t1, rtol, atol, members, max_steps, nonnegative, tangent)
     M, n = y0.shape
-    model = _Model(fun, v0 is not None)
+    model = Model(fun, v0 is not None)
     out = _Outputs(y0, v0)
     if M == 0 or t1 == t0:
         return out.trivial(h0)
@@ -429,15 +208,15 @@ def _iterate(model, b, out, t1, direction, rtol, atol, nonnegative, max_steps, b
     t_new[clipped] = t1
     hs = t_new - b.t  # signed step actually attempted
     with np.errstate(over="ignore", invalid="ignore"):
-        y_new, v_new, f_new, g_new, K, hcol = _trial_step(model, b, hs, t_new)
+        y_new, v_new, f_new, g_new, K, hcol = trial_step(model, b, hs, t_new)
         err_norm = error_norm(K, DormandPrince54.E, np.empty_like(b.y), hcol, b.y, y_new, rtol, atol)
-    b.h, accept, finite = _next_step(err_norm, hs, b.rejected, hmax)
+    b.h, accept, finite = next_step(err_norm, hs, b.rejected, hmax)
     b.rejected = ~accept
     b.last_nonfinite = ~finite
     fail = np.zeros(b.idx.size, dtype=bool)
     if accept.any():
         if nonnegative:
-            bad = _project(model, b, accept, t_new, y_new, v_new, f_new, g_new)
+            bad = project(model, b, accept, t_new, y_new, v_new, f_new, g_new)
             out.reason[b.idx[bad]] = Failure.NONFINITE
             fail |= bad
         # Take the new arrays and put back the (usually few) rejected rows; cheaper than
@@ -455,7 +234,7 @@ def _iterate(model, b, out, t1, direction, rtol, atol, nonnegative, max_steps, b
         b.nacc += accept
         good = accept & ~clipped
         b.hgood[good] = np.abs(hs[good])
-        nonfin = _nonfinite_rows(b, accept) & ~fail
+        nonfin = nonfinite_rows(b, accept) & ~fail
         out.reason[b.idx[nonfin]] = Failure.NONFINITE
         fail |= nonfin
         # ``<=`` is False for NaN, so a failed row never hides another's blow-up.
@@ -488,7 +267,7 @@ class _Outputs:
         self.reason = np.zeros(M, dtype=np.int8)
         self.nsteps = np.zeros(M, dtype=np.int64)
 
-    def retire(self, b: _Active, leave, done):
+    def retire(self, b: Active, leave, done):
         """Write rows of members leaving the active set."""
         ki = np.flatnonzero(leave)
         rows, ok = b.idx[ki], done[ki]
@@ -515,7 +294,7 @@ class _Outputs:
                              nfev, self.nsteps, self.v)
 
 
-def _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction) -> _Active:
+def _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction) -> Active:
     """Evaluate the initial derivatives, drop non-finite members and choose first steps."""
     M, n = y0.shape
     bad = ~np.all(np.isfinite(y0), axis=1)
@@ -523,7 +302,7 @@ def _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction)
         bad |= ~np.all(np.isfinite(v0), axis=1)
     out.reason[bad] = Failure.NONFINITE
     idx = np.flatnonzero(~bad)
-    b = _Active(idx=idx, y=y0[idx], v=None if v0 is None else v0[idx], mem=members[idx],
+    b = Active(idx=idx, y=y0[idx], v=None if v0 is None else v0[idx], mem=members[idx],
                 t=np.full(idx.size, t0))
     if idx.size:
         b.f, b.g = model(b.t, b.y, b.v, b.mem)
@@ -543,7 +322,7 @@ def _start(model, out, y0, v0, t0, t1, h0, members, rtol, atol, hmax, direction)
         b.h = np.broadcast_to(np.asarray(h0, dtype=float), (M,))[b.idx].copy()
     need = ~(np.isfinite(b.h) & (b.h > 0))
     if need.any():
-        b.h[need], _ = _select_initial_step(model.state_only, t0, b.y[need], b.f[need],
+        b.h[need], _ = select_initial_step(model.state_only, t0, b.y[need], b.f[need],
                                             b.mem[need], t1, direction,
                                             DormandPrince54.error_estimator_order, rtol, atol)
     b.h = np.minimum(np.minimum(b.h, abs(t1 - t0)), hmax)

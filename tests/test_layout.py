@@ -25,7 +25,7 @@ def test_no_module_imports_a_private_name_of_another():
 STAGES = [
     {"errors", "formatting", "likelihood", "priors", "metrics", "iucn", "voi", "dictionary", "__init__"},
     {"case"},
-    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "simulate",
+    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "stepper", "simulate",
      "execute"},
     {"assess"},
     {"effects", "results", "manifest", "outfolder", "budget"},

@@ -174,7 +174,7 @@ def rms(x, n):
 
 @kernel_jit
 def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
-    """Per-member copy of :func:`impact.integrate._select_initial_step` (HNW 1993, Sec. II.4)."""
+    """Per-member copy of :func:`impact.stepper.select_initial_step` (HNW 1993, Sec. II.4)."""
     n = y0.shape[0]
     interval = abs(t1 - t0)
     for j in range(n):
@@ -217,7 +217,7 @@ def all_finite(x):
 @kernel_jit
 def combine_stages(K, coeffs, count, out):
     """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
-    order of :func:`impact.integrate._combine`."""
+    order of :func:`impact.stepper.combine`."""
     n = out.shape[0]
     first = True
     for s in range(count):
@@ -294,7 +294,7 @@ def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
 
 @kernel_inline
 def next_step(err, hs, rejected):
-    """The controller of :func:`impact.integrate._next_step` for one member: the next step size."""
+    """The controller of :func:`impact.stepper.next_step` for one member: the next step size."""
     factor = SAFETY * err ** ERROR_EXPONENT if err != 0 else math.inf
     if err < 1:
         grow = MAX_FACTOR if err == 0 else nmin(MAX_FACTOR, factor)
