@@ -16,11 +16,24 @@ MAX_DRIVER_ROWS = 8
 TOP_DRIVERS = 3
 TOP_INFORMATION = 5
 NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
+# a share of variance below this (printed as 0.00 or 0.01) explains nothing a reader can act on
+VISIBLE_SHARE = 0.01
+
+
+def _two_places(v: float) -> str:
+    return "n/a" if not np.isfinite(v) else f"{round(v, 2) + 0.0:.2f}"  # + 0.0: never "-0.00"
 
 
 def _index_text(r) -> str:
     v, lo, hi = (_clean(x) for x in (r.value, r.low, r.high))
-    return f"{v:.2f} [{lo:.2f}, {hi:.2f}]"
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return f"{_two_places(v)} (no interval: the outcome barely varies across members)"
+    return f"{_two_places(v)} [{_two_places(lo)}, {_two_places(hi)}]"
+
+
+def _explains(r) -> bool:
+    """An index a sentence may lean on: visibly above zero, with an interval."""
+    return float(r.value) >= VISIBLE_SHARE and np.isfinite(float(r.low)) and np.isfinite(float(r.high))
 
 
 def _information_context(info: pd.DataFrame) -> list[dict]:
@@ -67,7 +80,8 @@ def _drivers_context(drv: pd.DataFrame, roles: dict | None = None) -> list[dict]
             if h.empty:
                 continue
             rows.append(dict(output=output, species=sp, order=0 if output.startswith("objective") else
-                             2 - rank.get(roles.get(sp), 0), top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()]))
+                             2 - rank.get(roles.get(sp), 0), top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()],
+                             explained=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows() if _explains(r)]))
         rows.sort(key=lambda r: r["order"])  # stable: declaration order within each rank
         out.append(dict(option=opt, rows=rows[:MAX_DRIVER_ROWS], omitted=max(len(rows) - MAX_DRIVER_ROWS, 0),
                         n=fmt_num(g.n.iloc[0]), conditional_on=g.conditional_on.iloc[0]))
@@ -107,10 +121,16 @@ def hinges_text(res: Results) -> str:
     if drv is not None and not drv.empty:
         for t in _drivers_context(drv):
             for r in t["rows"]:
-                if r["output"].startswith("objective"):
-                    name = r["output"].removeprefix("objective ").removesuffix(": good outcome")
+                if not r["output"].startswith("objective"):
+                    continue
+                name = r["output"].removeprefix("objective ").removesuffix(": good outcome")
+                if r["explained"]:
                     lines.append(f"Under “{t['option']}”, whether {name} goes well depends mostly on "
-                                 + " and ".join(r["top"][:2]) + " (share of its variance explained, with interval).")
+                                 + " and ".join(r["explained"][:2]) + " (share of its variance explained, with interval).")
+                else:
+                    lines.append(f"Under “{t['option']}”, no single uncertain number explains a visible share of whether "
+                                 f"{name} goes well (the outcome barely varies across the plausible members, or no "
+                                 f"parameter alone explains it).")
     return "\n".join(lines)
 
 
