@@ -28,8 +28,8 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .assess import (Ensemble, assess_members, bands_table, draw_ensemble, failure_counts, members_table,
-                     risk_table)
+from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
+from .calibrate import Calibration, build_ensemble, calibration_tables
 from .case import Case
 from .case import load_case as _read_case
 from .decision import drivers_table, information_table
@@ -87,6 +87,7 @@ class Assessment:
     manifest: dict
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     records: dict[str, dict] = field(default_factory=dict)
+    calibration: Calibration | None = None
 
     @property
     def risk(self) -> pd.DataFrame:
@@ -236,7 +237,7 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     members = settings.members if settings.members is not None else case.members
     seed = settings.seed if settings.seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
-    ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
+    ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
     if progress:
         progress("tabulating risk")
@@ -247,7 +248,8 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
         "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
-        "priors.csv": priors_table(case)})
+        "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}, calibration=cal)
+    manifest["calibration"] = cal.record()
     if settings.sensitivity:
         _sensitivity_stage(case, settings, seed, ens, runs, result, progress, executor, store)
     if settings.dynamics:

@@ -27,7 +27,7 @@ STAGES = [
     {"case"},
     {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "simulate",
      "execute"},
-    {"assess"},
+    {"assess", "observe", "calibrate"},
     {"effects", "results", "outfolder", "budget"},
     {"decision", "sensitivity", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"cautions", "verdict", "webfigure", "report"},
