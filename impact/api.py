@@ -272,9 +272,19 @@ def summary_text(case: Case, folder: Path) -> str:
 
     res = load_results(folder)
     counts, risk = res.manifest["counts"], res.risk
-    L = [case.title,
-         f"draws: {counts['tried']} tried, {counts['kept']} plausible kept ({counts['failed']} failed numerically, "
-         f"{counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)"]
+    L = [case.title]
+    cal = res.manifest.get("calibration", {})
+    if cal.get("sampler") == "smc":
+        L.append(f"ensemble: {counts['kept']} members calibrated by sequential Monte Carlo ({cal['simulations']} "
+                 f"simulations in {cal['generations']} generations, move acceptance {cal['acceptance']:.0%}, "
+                 f"{cal['distinct']:.0%} distinct members; {cal['prior_acceptance']:.1%} of prior draws met every "
+                 "constraint)")
+    else:
+        L.append(f"draws: {counts['tried']} tried, {counts['kept']} plausible kept ({counts['failed']} failed "
+                 f"numerically, {counts['extinct']} lost a species, {counts['out_of_range']} outside observed ranges)")
+    if case.monitoring:
+        L.append("monitoring data weighed: " + ", ".join(f"{s.species} ({len(s.times)} {s.kind} values, {s.error})"
+                                                          for s in case.monitoring))
     if counts["kept"] < counts["wanted"]:
         L.append(f"WARNING: only {counts['kept']} of {counts['wanted']} wanted members were plausible within the draw limit")
     for opt, f in counts["failed_by_option"].items():

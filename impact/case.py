@@ -902,14 +902,15 @@ def _series_from_csv(r: _Reader, where: str, name: str) -> tuple[list, list]:
     except OSError as exc:
         raise ReadError(str(path), "", f"cannot read the monitoring file named by {where}.file "
                                        f"({exc.strerror or exc}); the path is relative to the case file") from None
-    rows = list(csv.reader(text.splitlines()))
-    if not rows or [h.strip() for h in rows[0]] != list(SERIES_COLUMNS):
-        raise CaseError(str(path), "header", f"the first line must be the columns {','.join(SERIES_COLUMNS)} "
-                                             f"(one row per observation), got {','.join(rows[0]) if rows else 'nothing'}")
+    # lines starting with "#" are comments (a source, or a note that the data are invented)
+    rows = [(k, row) for k, row in enumerate(csv.reader(text.splitlines()), start=1)
+            if row and not row[0].lstrip().startswith("#") and any(c.strip() for c in row)]
+    if not rows or [h.strip() for h in rows[0][1]] != list(SERIES_COLUMNS):
+        raise CaseError(str(path), "header", f"the first line (after # comments) must be the columns "
+                                             f"{','.join(SERIES_COLUMNS)}, one row per observation; got "
+                                             f"{','.join(rows[0][1]) if rows else 'nothing'}")
     times, values = [], []
-    for k, row in enumerate(rows[1:], start=2):
-        if not any(c.strip() for c in row):
-            continue
+    for k, row in rows[1:]:
         if len(row) != 2:
             raise CaseError(str(path), f"line {k}", f"must hold 2 cells (time, value), got {len(row)}")
         for col, cell, out in zip(SERIES_COLUMNS, row, (times, values)):

@@ -107,6 +107,14 @@ def describe_case(case: Case) -> str:
     L.append(f"observed today ({len(case.observed)}):")
     for o in case.observed:
         L.append(f"  {o.species} in [{o.low:g}, {o.high:g}]" + (f"  source: {o.source}" if o.source else ""))
+    for m in case.monitoring:
+        L.append(f"  monitoring of {m.species}: {len(m.times)} {m.kind} values from {m.times[0]:g} to {m.times[-1]:g} "
+                 f"{case.time_unit} ({m.error}; detection {m.detection}, scale {m.scale})"
+                 + (f" from {m.file}" if m.file else "") + (f"  source: {m.source}" if m.source else ""))
+    for c in case.change_limits:
+        bounds = " and ".join(b for b in (f"grows at most ×{c.up:g}" if c.up else "",
+                                          f"falls at most ÷{c.down:g}" if c.down else "") if b)
+        L.append(f"  limit on change of {c.species}: {bounds} per {c.step:g} {case.time_unit} from {c.start:g} to {c.end:g}")
     L.append(f"interventions ({len(case.interventions)}):")
     for iv in case.interventions:
         when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"
