@@ -50,6 +50,7 @@ MAX_GENERATIONS = 80
 MIN_DISTINCT = 0.5    # refuse a posterior with fewer distinct members than this share (common practice)
 STALL = 3             # generations without a 1 % fall of the tolerance before the sampler gives up
 SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
+TARGET_ACCEPTANCE = 0.25
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
@@ -239,31 +240,57 @@ class _Population:
         self.ev = {k: np.where(mask.reshape((-1,) + (1,) * (v.ndim - 1)), ev[k], v) for k, v in self.ev.items()}
 
 
-def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget_left: int):
-    """Random-walk Metropolis steps on every particle, the population simulated as one batch per step.
+def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget_left: int, scale: float = 1.0,
+          rows: np.ndarray | None = None):
+    """Random-walk Metropolis steps on the particles ``rows`` (default all), simulated as one batch per step.
 
-    Returns the moved population, the acceptance rate, the steps taken and wanted, and the simulations spent
-    (fewer steps than wanted when the budget ran out).
+    The proposal covariance is ``scale × 2.38²/D`` times the whole population's covariance.
+    Returns the population (moved in place), the acceptance rate, the steps taken and wanted, and
+    the simulations spent (fewer steps than wanted when the budget ran out).
     """
     N, D = pop.z.shape
-    cov = np.atleast_2d(np.cov(pop.z, rowvar=False)) * (2.38 ** 2 / D) + 1e-10 * np.eye(D)
+    rows = np.arange(N) if rows is None else rows
+    cov = np.atleast_2d(np.cov(pop.z, rowvar=False)) * (scale * 2.38 ** 2 / D) + 1e-10 * np.eye(D)
     chol = np.linalg.cholesky(cov)
+    sub = pop.take(rows)
+    n = len(rows)
     steps, accepted, sims, wanted = 0, 0, 0, 1
-    while steps < wanted and sims + N <= budget_left:
-        prop = pop.z + rng.standard_normal((N, D)) @ chol.T
+    while n and steps < wanted and sims + n <= budget_left:
+        prop = sub.z + rng.standard_normal((n, D)) @ chol.T
         ev = evaluate(case, _unit(prop), executor)
-        sims += N
+        sims += n
         with np.errstate(invalid="ignore"):
-            log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (pop.z ** 2).sum(1)
-                     + (beta * (ev["loglik"] - pop.ev["loglik"]) if beta > 0 else 0.0))
-        ok = (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (np.log(rng.random(N)) < np.nan_to_num(log_a, nan=-np.inf))
-        pop.replace(ok, prop, ev)
+            log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (sub.z ** 2).sum(1)
+                     + (beta * (ev["loglik"] - sub.ev["loglik"]) if beta > 0 else 0.0))
+        ok = (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (np.log(rng.random(n)) < np.nan_to_num(log_a, nan=-np.inf))
+        sub.replace(ok, prop, ev)
         accepted += int(ok.sum())
         steps += 1
         if steps == 1:
             a = ok.mean()
+            if a < 0.5 * TARGET_ACCEPTANCE:
+                # the first step shows the steps are too long: shorten them for the rest (and count on the
+                # acceptance the shorter steps should reach when setting how many to take)
+                chol = chol * np.sqrt(_rescale(1.0, a))
+                a = max(a, 0.5 * TARGET_ACCEPTANCE)
             wanted = MAX_STEPS if a == 0 else 1 if a == 1 else int(min(MAX_STEPS, np.ceil(np.log(STAY) / np.log1p(-a))))
-    return pop, accepted / max(steps * N, 1), steps, wanted, sims
+    pop.z[rows] = sub.z
+    for k, v in sub.ev.items():
+        pop.ev[k][rows] = v
+    return pop, accepted / max(steps * n, 1), steps, wanted, sims
+
+
+def _rescale(scale: float, acceptance: float) -> float:
+    """The proposal scale (a variance factor) for the next steps, from the last steps' acceptance.
+
+    As the tolerance falls the particles fill a thinner, often curved region, where steps sized by
+    the particles' covariance mostly leave it. For a random walk across a thin region the acceptance
+    falls in proportion to the step length, so the variance factor is multiplied by the square of
+    acceptance / 0.25 (within 0.1–2 per adjustment), holding the acceptance near 0.25 (adaptive tuning
+    in the spirit of Fearnhead & Taylor 2013; the rule and its bounds are common practice, no source).
+    """
+    factor = float(np.clip((max(acceptance, 1e-3) / TARGET_ACCEPTANCE) ** 2, 0.1, 2.0))
+    return float(np.clip(scale * factor, 1e-4, 1.0))
 
 
 def _refuse(case: Case, why: str, history) -> CalibrationError:
@@ -312,6 +339,7 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
     history = [dict(generation=0, tolerance=np.inf, temperature=beta, ess=float(N), acceptance=np.nan, steps=0,
                     simulations=sims)]
     accepted = proposed = stalled = 0
+    scale = 1.0
     for g in range(1, MAX_GENERATIONS + 1):
         d, ll = pop.ev["distance"], pop.ev["loglik"]
         if eps > 0:
@@ -332,15 +360,28 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
         else:
             break
         ess = _ess(w)
+        tempering = new_beta != beta
         eps, beta, acc, steps = new_eps, new_beta, np.nan, 0
         # equal weights: the particles already follow the new target, no resampling or move needed
         if w.min() < w.max():
             rng = calibration_generator(seed, g)
-            pop = pop.take(_systematic(w, rng))
-            pop, acc, steps, wanted, spent_g = _move(case, pop, eps, beta, rng, executor, budget - sims)
+            if not tempering:
+                # a tolerance step: survivors stay, the dropped particles are replaced by copies of
+                # survivors, and only those copies are moved (replenishment; Drovandi & Pettitt 2011)
+                dead = np.flatnonzero(w == 0)
+                pop = pop.take(np.arange(N))
+                copies = pop.take(rng.choice(np.flatnonzero(w > 0), dead.size))
+                pop.z[dead] = copies.z
+                for k, v in copies.ev.items():
+                    pop.ev[k][dead] = v
+                rows = dead
+            else:
+                pop, rows = pop.take(_systematic(w, rng)), np.arange(N)
+            pop, acc, steps, wanted, spent_g = _move(case, pop, eps, beta, rng, executor, budget - sims, scale, rows)
+            scale = _rescale(scale, acc)
             sims += spent_g
-            accepted += int(round(acc * steps * N))
-            proposed += steps * N
+            accepted += int(round(acc * steps * rows.size))
+            proposed += steps * rows.size
             if steps < wanted:
                 history.append(dict(generation=g, tolerance=eps, temperature=beta, ess=ess, acceptance=acc,
                                     steps=steps, simulations=sims))
