@@ -173,6 +173,10 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                             for c in case.competition]
                          + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
                             for u in case.mutualism]),
+        "monitoring": [dict(species=s.species, kind=s.kind, error=s.error, observations=len(s.times),
+                            first=s.times[0], last=s.times[-1], file=s.file, source=s.source) for s in case.monitoring],
+        "change_limits": [dict(species=c.species, up_at_most=c.up, down_at_most=c.down, step=c.step, start=c.start,
+                               end=c.end, source=c.source) for c in case.change_limits],
         "equations": equations(case), "assumptions": list(case.notes), "plausibility": PLAUSIBILITY_RULE,
         "packages": package_versions(), "platform": platform.platform(), "stages": ["assess"], "caution": CAUTION,
     }

@@ -38,6 +38,7 @@ from .errors import CaseError, ReadError, WriteError
 from .formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
 from .metrics import describe_interval
 from .verdict import reading, thin_run, with_term
+from .calibfigure import calibration_context
 from .webfigure import food_web_svg
 from .iucn import CATEGORY_NAMES, criterion_e_in_units
 
@@ -49,6 +50,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
+    "informed",
 }
 RISK_METRICS = (
     ("quasi_extinction", "Quasi-extinction probability"),
@@ -89,6 +91,7 @@ class Results:
     comparisons: pd.DataFrame
     sensitivity: dict | None = None
     dynamics: dict | None = None
+    calibration: dict | None = None
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -100,7 +103,7 @@ def read_table(path: Path) -> pd.DataFrame:
     from .results import check_table
 
     path = Path(path)
-    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics") else path.name
+    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics", "calibration") else path.name
     try:
         df = pd.read_csv(path, dtype=str, keep_default_na=False)
     except FileNotFoundError:
@@ -144,7 +147,8 @@ def load_results(path) -> Results:
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
-                   _read_stage(path / "sensitivity"), _read_stage(path / "dynamics"))
+                   _read_stage(path / "sensitivity"), _read_stage(path / "dynamics"),
+                   _read_stage(path / "calibration"))
 
 
 # ----------------------------------------------------------------------------- derived readings
@@ -601,7 +605,7 @@ def report_context(res: Results, assets: Assets) -> dict:
                             risk=_risk_table(res, o["name"]), effects=_effects_table(res, o["name"])))
     thin, why = thin_run(m)
     verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
-    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity)
+    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity, res.calibration)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in (counts.get("failed_by_option") or {}).items()]
@@ -615,6 +619,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
         interventions=m.get("interventions", []), options=options, iucn=iucn_rows(res),
         sensitivity=_sensitivity_context(res, assets), dynamics=_dynamics_context(res, assets),
+        calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
         horizons=[fmt_num(h) for h in m["horizons"]], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
         command=" ".join(str(a) for a in m.get("command", [])), packages=m.get("packages", {}),

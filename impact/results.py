@@ -77,6 +77,15 @@ MANIFEST_ENTRIES = {"species": {"name": str, "role": str}, "options": {"name": s
 # Results tables: relative path -> (columns that must be there, those of them that hold numbers).
 # Stage tables are optional (the stage may not have run); when present they must match.
 TABLES = {
+    "calibration/posterior.csv": (("parameter", "prior_q05", "prior_q50", "prior_q95", "posterior_q05",
+                                   "posterior_q50", "posterior_q95", "contraction", "informed"),
+                                  ("prior_q05", "prior_q50", "prior_q95", "posterior_q05", "posterior_q50",
+                                   "posterior_q95", "contraction")),
+    "calibration/generations.csv": (("generation", "tolerance", "temperature", "ess", "acceptance", "steps",
+                                     "simulations"), ("generation", "tolerance", "temperature", "ess", "acceptance",
+                                                      "steps", "simulations")),
+    "calibration/predictive.csv": (("species", "time", "observed", "kind", "q05", "q25", "q50", "q75", "q95"),
+                                   ("time", "observed", "q05", "q25", "q50", "q75", "q95")),
     "risk.csv": (("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n"),
                  ("horizon", "value", "low", "high", "level", "n")),
     "effects.csv": (("option", "species", "role", "direct", "metric", "horizon", "statistic", "value", "low", "high",

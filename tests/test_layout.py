@@ -30,7 +30,7 @@ STAGES = [
     {"assess", "observe", "calibrate"},
     {"effects", "results", "outfolder", "budget"},
     {"decision", "sensitivity", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
-    {"cautions", "verdict", "webfigure", "report"},
+    {"cautions", "verdict", "webfigure", "calibfigure", "report"},
     {"api"},
     {"cli"},
 ]
