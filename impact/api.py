@@ -29,9 +29,11 @@ import pandas as pd
 
 from . import __version__
 from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
-from .calibrate import Calibration, build_ensemble, calibration_tables
+from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
+                        ensemble_from_arrays)
 from .case import Case
 from .case import load_case as _read_case
+from .errors import CaseError
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
 from .model import equations
@@ -219,9 +221,90 @@ def _sensitivity_stage(case: Case, settings: AssessSettings, seed: int, ens: Ens
     result.manifest["sensitivity"] = entry
 
 
+@dataclass
+class PosteriorEnsemble:
+    """A calibrated ensemble on its own (``impact calibrate``), for a later assessment to reuse.
+
+    ``tables`` holds ``parameters.csv`` and the ``calibration/`` tables by relative path;
+    ``source`` is the folder it was read from (None when built in this process).
+    """
+
+    case: Case
+    ensemble: Ensemble
+    calibration: Calibration
+    manifest: dict
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    source: str | None = None
+
+
+def calibrate(case: Case, members: int | None = None, seed: int | None = None, *, progress: Progress | None = None,
+              executor=None, command: list[str] | None = None) -> PosteriorEnsemble:
+    """Build the ensemble of ``case`` (calibrated where it has data) without running any option."""
+    members = members if members is not None else case.members
+    seed = seed if seed is not None else case.seed
+    started, t0 = datetime.now(timezone.utc), time.monotonic()
+    ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
+    tables = {"parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+              "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
+    manifest = {"tool": "impact", "version": __version__, "stages": ["calibrate"],
+                "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                         "invented": case.invented},
+                "command": list(command or ["python", "impact.api.calibrate"]),
+                "started_utc": started.isoformat(timespec="seconds"), "seconds": round(time.monotonic() - t0, 2),
+                "seed": seed, "members": len(ens.draws), "counts": ens.counts, "calibration": cal.record(),
+                "packages": package_versions()}
+    return PosteriorEnsemble(case, ens, cal, manifest, tables)
+
+
+def save_ensemble(post: PosteriorEnsemble, out, *, replace: bool = False) -> Path:
+    """Write a posterior ensemble folder: ensemble.npz, parameters.csv, calibration/, manifest.json, README.md."""
+    from .dictionary import write_dictionary
+    from .outfolder import OutputFolder
+    from .results import write_csv, write_ensemble, write_json
+
+    folder = OutputFolder(out, replace=replace)
+    with folder:
+        with folder.stage() as tmp:
+            write_ensemble(tmp, post.ensemble.draws, post.ensemble.unit, post.ensemble.today)
+            for rel, frame in post.tables.items():
+                write_csv(frame, tmp / rel)
+            write_json(post.manifest, tmp / "manifest.json")
+            write_dictionary(tmp)
+    return folder.path
+
+
+def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
+    """Read a folder written by :func:`save_ensemble` for ``case``; refused when calibrated for another case file."""
+    import json
+
+    from .report import read_table
+    from .results import read_ensemble
+
+    folder = Path(folder)
+    path = folder / "manifest.json"
+    try:
+        manifest = json.loads(path.read_bytes().decode("utf-8"))
+        record, sha = manifest["calibration"], manifest["case"]["sha256"]
+    except FileNotFoundError:
+        raise CaseError(str(folder), "manifest.json", "not found; point at a folder written by `impact calibrate`") from None
+    except (ValueError, KeyError, TypeError) as exc:
+        raise CaseError(str(path), "", f"is not the manifest of a posterior ensemble ({exc})") from None
+    if sha != case.sha256:
+        raise CaseError(str(path), "case.sha256", f"the ensemble was calibrated for another version of the case file "
+                                                  f"({manifest['case'].get('path')}); calibrate {case.path} again")
+    arrays = read_ensemble(folder)
+    if arrays["unit"].shape[1] != len(case.uncertain):
+        raise CaseError(str(folder / "ensemble.npz"), "unit", "columns do not match the case's uncertain parameters")
+    tables = {f"calibration/{p.name}": read_table(p) for p in sorted((folder / "calibration").glob("*.csv"))}
+    gens = tables.get("calibration/generations.csv")
+    cal = calibration_from_record(record, gens.to_dict("records") if gens is not None else None)
+    ens = ensemble_from_arrays(case, arrays["draws"], arrays["unit"], arrays["today"], manifest.get("counts", {}))
+    return PosteriorEnsemble(case, ens, cal, manifest, tables, str(folder.resolve()))
+
+
 def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
            executor=None, store=None, block: int | None = None, chunk: int | None = None,
-           command: list[str] | None = None) -> Assessment:
+           command: list[str] | None = None, ensemble: PosteriorEnsemble | None = None) -> Assessment:
     """Run the whole assessment of ``case`` in memory and return it.
 
     Parameters
@@ -234,6 +317,9 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         Draw indices per screening block and members per run chunk; results never depend on them.
     command : list of str, optional
         How the run was asked for, recorded in the manifest (default: a note that it came from Python).
+    ensemble : PosteriorEnsemble, optional
+        A calibrated ensemble to reuse (from :func:`calibrate` or :func:`load_ensemble`) instead of
+        drawing one; ``settings.members``, if given, must equal its size.
     """
     from .execute import InProcess
 
@@ -241,7 +327,13 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     members = settings.members if settings.members is not None else case.members
     seed = settings.seed if settings.seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
-    ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
+    if ensemble is not None:
+        if settings.members is not None and settings.members != len(ensemble.ensemble.draws):
+            raise CaseError("command line", "--members", f"the reused ensemble has {len(ensemble.ensemble.draws)} "
+                                                         f"members, not {settings.members}; leave --members out")
+        ens, cal = ensemble.ensemble, ensemble.calibration
+    else:
+        ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
     if progress:
         progress("tabulating risk")
@@ -252,8 +344,11 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
         "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
-        "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}, calibration=cal)
-    manifest["calibration"] = cal.record()
+        "priors.csv": priors_table(case),
+        **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
+           else calibration_tables(case, ens, cal, seed))}, calibration=cal)
+    manifest["calibration"] = cal.record() if ensemble is None else {
+        **ensemble.manifest["calibration"], "reused_from": ensemble.source or "this process"}
     if settings.sensitivity:
         _sensitivity_stage(case, settings, seed, ens, runs, result, progress, executor, store)
     if settings.dynamics:

@@ -574,3 +574,15 @@ def calibration_tables(case: Case, ens: Ensemble, cal: Calibration, seed: int) -
     if pred is not None:
         out["calibration/predictive.csv"] = pred
     return out
+
+
+def ensemble_from_arrays(case: Case, draws: np.ndarray, unit: np.ndarray, today: np.ndarray, counts: dict) -> Ensemble:
+    """An :class:`impact.assess.Ensemble` rebuilt from saved arrays (a posterior ensemble reused)."""
+    return _make(case, np.asarray(draws), np.asarray(unit, float), np.asarray(today, float), counts)
+
+
+def calibration_from_record(record: dict, generations: list | None = None) -> Calibration:
+    """A :class:`Calibration` from its manifest entry (no recorded states: the predictive table is not redrawn)."""
+    return Calibration(record["sampler"], int(record["simulations"]), float(record["acceptance"]),
+                       float(record["prior_acceptance"]), list(generations or []), float(record.get("distinct", 1.0)),
+                       bool(record.get("converged", True)), float(record.get("seconds", 0.0)))

@@ -199,6 +199,15 @@ def cmd_assess(args) -> int:
     from .results import Checkpoints
 
     case = load_case(args.case)
+    reused = None
+    if args.ensemble is not None:
+        from .api import load_ensemble
+
+        reused = load_ensemble(args.ensemble, case)
+        if args.members is not None and args.members != len(reused.ensemble.draws):
+            raise CaseError("command line", "--members", f"the ensemble in {args.ensemble} has "
+                                                         f"{len(reused.ensemble.draws)} members; leave --members out")
+        args.members = len(reused.ensemble.draws)
     members, seed, folder, est = _assess_plan(args, case)
     progress = _Progress(args.quiet)
     progress(est.describe(), force=True)
@@ -214,7 +223,8 @@ def cmd_assess(args) -> int:
             block = (earlier or {}).get("draw_block") or draw_block_size(members, executor.workers)
             fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": seed, "members": members,
                            "max_draws": case.max_draws, "draw_block": block, "run_chunk": chunk,
-                           "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples}}
+                           "sensitivity": None if args.no_sensitivity else {"base_samples": args.base_samples},
+                           "ensemble": None if reused is None else reused.source}
             store = Checkpoints(folder.path, fingerprint, resume=args.resume)
             if args.resume and any(store.dir.glob("*.npz")):
                 progress(f"resuming from {len(list(store.dir.glob('*.npz')))} saved chunks in {store.dir}", force=True)
@@ -222,7 +232,7 @@ def cmd_assess(args) -> int:
                                       base_samples=args.base_samples, dynamics=not args.no_dynamics)
             try:
                 result = assess(case, settings, progress=lambda m: progress(m, force=True), executor=executor,
-                                store=store, block=block, chunk=chunk, command=sys.argv)
+                                store=store, block=block, chunk=chunk, command=sys.argv, ensemble=reused)
             except CaseError:
                 store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
                 raise
@@ -365,6 +375,36 @@ def cmd_sensitivity(args) -> int:
     return 0
 
 
+def cmd_calibrate(args) -> int:
+    from .api import calibrate, save_ensemble
+    from .execute import make_executor
+    from .outfolder import OutputFolder
+
+    case = load_case(args.case)
+    members = args.members if args.members is not None else case.members
+    seed = args.seed if args.seed is not None else case.seed
+    if members < 1:
+        raise CaseError("command line", "--members", "must be at least 1")
+    if seed < 0:
+        raise CaseError("command line", "--seed", "must be a non-negative whole number")
+    OutputFolder(args.out, replace=args.replace_results)  # refuse a bad --out before any simulation
+    progress = _Progress(args.quiet)
+    executor = make_executor(args.workers, args.cluster)
+    try:
+        post = calibrate(case, members, seed, progress=lambda m: progress(m, force=True), executor=executor,
+                         command=sys.argv)
+        out = save_ensemble(post, args.out, replace=args.replace_results)
+    except BaseException:
+        executor.abort()
+        raise
+    executor.close()
+    c = post.manifest["calibration"]
+    print(f"{len(post.ensemble.draws)} members built by {c['sampler']}: {c['simulations']} simulations, acceptance "
+          f"{c['acceptance']:.1%}, {c['seconds']:.1f} s")
+    print(f"ensemble written to {out}; assess it with: impact assess {case.path} --ensemble {out} --out DIR")
+    return 0
+
+
 def _executor_flags(p):
     g = p.add_mutually_exclusive_group()
     g.add_argument("--workers", type=int, default=None,
@@ -401,7 +441,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="reuse the chunks an interrupted run of the same case, seed and members saved")
     p.add_argument("--chunk-members", type=int, default=None,
                    help="members per chunk of work and checkpoint (default: an even share per worker, 100-2000)")
+    p.add_argument("--ensemble", default=None, metavar="DIR",
+                   help="reuse the ensemble `impact calibrate` wrote in DIR instead of drawing one")
     p.set_defaults(func=cmd_assess)
+
+    p = sub.add_parser("calibrate", help="build the (posterior) ensemble of a case alone, for assessments to reuse")
+    p.add_argument("case")
+    p.add_argument("--out", required=True, help="ensemble folder; an existing one is refused unless --replace-results")
+    p.add_argument(REPLACE_FLAG, action="store_true",
+                   help="replace the files impact wrote in an existing --out folder (other files are kept)")
+    p.add_argument("--members", type=int, default=None, help="members wanted (default: the case's)")
+    p.add_argument("--seed", type=int, default=None, help="random seed (default: the case's)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    _executor_flags(p)
+    p.set_defaults(func=cmd_calibrate)
 
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric to the uncertain parameters")
     p.add_argument("case")

@@ -294,3 +294,35 @@ def _atomic_write(path: Path, data: bytes):
     finally:
         if tmp.exists():
             tmp.unlink()
+
+
+ENSEMBLE_FILE = "ensemble.npz"
+ENSEMBLE_ARRAYS = ("draws", "unit", "today")
+
+
+def write_ensemble(folder: Path, draws: np.ndarray, unit: np.ndarray, today: np.ndarray) -> None:
+    """A posterior ensemble as plain arrays (no pickles): draw numbers (M,), unit rows (M, D), states today (M, n)."""
+    buf = __import__("io").BytesIO()
+    np.savez(buf, draws=draws, unit=unit, today=today)
+    Path(folder).mkdir(parents=True, exist_ok=True)
+    write_file_atomic(Path(folder) / ENSEMBLE_FILE, buf.getvalue())
+
+
+def read_ensemble(folder: Path) -> dict[str, np.ndarray]:
+    """Read ``ensemble.npz`` of a folder written by ``impact calibrate``, refusing a damaged one."""
+    path = Path(folder) / ENSEMBLE_FILE
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            arrays = {k: z[k] for k in ENSEMBLE_ARRAYS}
+    except FileNotFoundError:
+        raise CaseError(str(folder), ENSEMBLE_FILE, "not found; point at a folder written by `impact calibrate`") from None
+    except KeyError as exc:
+        raise CaseError(str(path), str(exc), "array missing; the ensemble folder is damaged") from None
+    except (ValueError, OSError, EOFError) as exc:
+        raise ReadError(str(path), "", f"cannot be read as an ensemble ({exc})") from None
+    M = arrays["draws"].shape[0]
+    if arrays["unit"].ndim != 2 or arrays["today"].ndim != 2 or any(a.shape[0] != M for a in arrays.values()):
+        raise CaseError(str(path), "", "arrays of inconsistent shapes; the ensemble folder is damaged")
+    if not np.isfinite(arrays["unit"]).all() or ((arrays["unit"] <= 0) | (arrays["unit"] >= 1)).any():
+        raise CaseError(str(path), "unit", "values outside (0, 1); the ensemble folder is damaged")
+    return arrays

@@ -197,3 +197,88 @@ def test_monitoring_data_move_the_posterior_towards_the_truth(tmp_path):
     assert np.quantile(ens.values["r"], 0.95) < 0.6 < table.loc["r", "prior_q95"]
     assert table.loc["r", "contraction"] > 0.5 and table.loc["r", "informed"]
     assert not table.loc["q", "informed"]
+
+
+# ---- results folder and report ----------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def calibrated_folder(tmp_path_factory):
+    import impact.api as api
+
+    d = tmp_path_factory.mktemp("calibrated")
+    case = load_case(write_case(d, growth_case(120)))
+    result = api.assess(case, api.AssessSettings(members=120, sensitivity=False, dynamics=False))
+    return api.save(result, d / "out")
+
+
+def test_the_results_folder_says_which_sampler_built_the_ensemble(calibrated_folder):
+    import json
+
+    from impact.dictionary import check_folder
+
+    m = json.loads((calibrated_folder / "manifest.json").read_text())
+    assert m["calibration"]["sampler"] == "smc" and m["calibration"]["converged"]
+    assert m["calibration"]["simulations"] == m["counts"]["tried"] > 120
+    assert 0 < m["calibration"]["acceptance"] < 1 and m["monitoring"][0]["species"] == "newt"
+    for name in ("posterior", "generations", "predictive"):
+        assert (calibrated_folder / "calibration" / f"{name}.csv").is_file()
+    assert check_folder(calibrated_folder) == []
+
+
+def test_the_report_shows_data_against_the_posterior_predictive(calibrated_folder):
+    from pypdf import PdfReader
+
+    text = " ".join(p.extract_text() for p in PdfReader(str(calibrated_folder / "report.pdf")).pages)
+    assert "What the monitoring data taught" in text
+    assert "Monitoring of newt against the calibrated ensemble" in text
+    assert "Prior against posterior" in text and "Diagnostics of the sampler" in text
+
+
+def test_a_caution_when_the_data_inform_little_or_do_not_fit(calibrated_folder):
+    from impact.cautions import cautions
+    from impact.report import load_results
+
+    res = load_results(calibrated_folder)
+    texts = [c.text for c in cautions(res.manifest, res.objectives, "", None, None, res.calibration)]
+    assert not any("informed little" in t or "does not reproduce" in t for t in texts)
+    cal = dict(res.calibration)
+    cal["posterior"] = cal["posterior"].assign(informed="False")
+    pred = cal["predictive"].copy()
+    pred["observed"] = pred["q95"] * 10 + 1  # every observation far above its band
+    cal["predictive"] = pred
+    texts = [c.text for c in cautions(res.manifest, res.objectives, "", None, None, cal)]
+    assert any("informed little" in t for t in texts)
+    assert any("newt 5 of 5" in t and "does not reproduce" in t for t in texts)
+
+
+def test_a_saved_posterior_ensemble_is_reused_with_the_same_tables(tmp_path):
+    import impact.api as api
+
+    case = load_case(write_case(tmp_path, growth_case(100)))
+    settings = api.AssessSettings(sensitivity=False, dynamics=False)
+    direct = api.assess(case, settings)
+    folder = api.save_ensemble(api.calibrate(case, 100), tmp_path / "posterior")
+    assert (folder / "ensemble.npz").is_file() and (folder / "calibration" / "predictive.csv").is_file()
+    reused = api.assess(case, settings, ensemble=api.load_ensemble(folder, case))
+    for name in ("risk.csv", "effects.csv", "bands.csv", "parameters.csv"):
+        assert reused.tables[name].equals(direct.tables[name]), name
+    assert reused.manifest["calibration"]["reused_from"] == str(folder.resolve())
+    assert reused.manifest["calibration"]["simulations"] == direct.manifest["calibration"]["simulations"]
+
+
+def test_the_command_line_calibrates_then_assesses_and_refuses_another_case(tmp_path, capsys):
+    from impact.cli import main
+
+    f = write_case(tmp_path, growth_case(100))
+    assert main(["calibrate", str(f), "--out", str(tmp_path / "post"), "--quiet", "--workers", "1"]) == 0
+    assert "built by smc" in capsys.readouterr().out
+    flags = ["--quiet", "--workers", "1", "--no-sensitivity", "--no-dynamics", "--no-report"]
+    assert main(["assess", str(f), "--ensemble", str(tmp_path / "post"), "--out", str(tmp_path / "a"), *flags]) == 0
+    d = growth_case(100)
+    d["monitoring"][0]["values"][0] = 91
+    g = write_case(tmp_path, d, name="changed.toml")
+    capsys.readouterr()
+    assert main(["assess", str(g), "--ensemble", str(tmp_path / "post"), "--out", str(tmp_path / "b"), *flags]) == 2
+    err = capsys.readouterr().err
+    assert "case.sha256" in err and "another version of the case file" in err
+    assert not (tmp_path / "b").exists()
