@@ -335,72 +335,90 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
     pop = _Population(z, evaluate(case, _unit(z), executor))
     sims = spent + N
     prior_ok = float((pop.ev["distance"] == 0).mean())
-    eps, beta = np.inf, (0.0 if case.monitoring else 1.0)
-    history = [dict(generation=0, tolerance=np.inf, temperature=beta, ess=float(N), acceptance=np.nan, steps=0,
-                    simulations=sims)]
-    accepted = proposed = stalled = 0
-    scale = 1.0
+    state = dict(eps=np.inf, beta=0.0 if case.monitoring else 1.0, stalled=0, scale=1.0, accepted=0, proposed=0)
+    history = [dict(generation=0, tolerance=np.inf, temperature=state["beta"], ess=float(N), acceptance=np.nan,
+                    steps=0, simulations=sims)]
     for g in range(1, MAX_GENERATIONS + 1):
-        d, ll = pop.ev["distance"], pop.ev["loglik"]
-        if eps > 0:
-            new_eps = 0.0 if (d == 0).mean() >= KEEP else float(np.quantile(d, KEEP, method="inverted_cdf"))
-            if not np.isfinite(new_eps):
-                raise _refuse(case, "more than half of the prior draws failed numerically", history)
-            stalled = stalled + 1 if new_eps > 0.99 * eps else 0
-            if stalled >= STALL:
-                raise _refuse(case, "the distance from the constraints stopped falling", history)
-            w = (d <= new_eps).astype(float)
-            new_beta = beta
-        elif beta < 1.0:
-            if not np.isfinite(ll).any():
-                raise _refuse(case, "the monitoring data are impossible under every member", history)
-            new_eps, new_beta = eps, _next_temperature(ll, beta, KEEP * N)
-            lw = np.where(np.isfinite(ll), (new_beta - beta) * np.where(np.isfinite(ll), ll, 0.0), -np.inf)
-            w = np.exp(lw - lw.max())
-        else:
+        target = _next_target(case, pop, state, history)
+        if target is None:
             break
+        new_eps, new_beta, w = target
         ess = _ess(w)
-        tempering = new_beta != beta
-        eps, beta, acc, steps = new_eps, new_beta, np.nan, 0
+        tempering = new_beta != state["beta"]
+        state.update(eps=new_eps, beta=new_beta)
+        acc, steps, wanted = np.nan, 0, 0
         # equal weights: the particles already follow the new target, no resampling or move needed
         if w.min() < w.max():
             rng = calibration_generator(seed, g)
-            if not tempering:
-                # a tolerance step: survivors stay, the dropped particles are replaced by copies of
-                # survivors, and only those copies are moved (replenishment; Drovandi & Pettitt 2011)
-                dead = np.flatnonzero(w == 0)
-                pop = pop.take(np.arange(N))
-                copies = pop.take(rng.choice(np.flatnonzero(w > 0), dead.size))
-                pop.z[dead] = copies.z
-                for k, v in copies.ev.items():
-                    pop.ev[k][dead] = v
-                rows = dead
-            else:
-                pop, rows = pop.take(_systematic(w, rng)), np.arange(N)
-            pop, acc, steps, wanted, spent_g = _move(case, pop, eps, beta, rng, executor, budget - sims, scale, rows)
-            scale = _rescale(scale, acc)
+            pop, rows = _resample(pop, w, tempering, rng)
+            pop, acc, steps, wanted, spent_g = _move(case, pop, new_eps, new_beta, rng, executor, budget - sims,
+                                                     state["scale"], rows)
+            state["scale"] = _rescale(state["scale"], acc)
             sims += spent_g
-            accepted += int(round(acc * steps * rows.size))
-            proposed += steps * rows.size
-            if steps < wanted:
-                history.append(dict(generation=g, tolerance=eps, temperature=beta, ess=ess, acceptance=acc,
-                                    steps=steps, simulations=sims))
-                raise _refuse(case, f"the budget of {budget} simulations ran out", history)
-        history.append(dict(generation=g, tolerance=eps, temperature=beta, ess=ess, acceptance=acc, steps=steps,
-                            simulations=sims))
+            state["accepted"] += int(round(acc * steps * rows.size))
+            state["proposed"] += steps * rows.size
+        history.append(dict(generation=g, tolerance=new_eps, temperature=new_beta, ess=ess, acceptance=acc,
+                            steps=steps, simulations=sims))
+        if steps < wanted:
+            raise _refuse(case, f"the budget of {budget} simulations ran out", history)
         if progress:
             moved = f"move acceptance {acc:.0%} over {steps} steps" if steps else "no move needed"
-            progress(f"calibrating (SMC) generation {g}: tolerance {eps:.3g}, temperature {beta:.3g}, "
+            progress(f"calibrating (SMC) generation {g}: tolerance {new_eps:.3g}, temperature {new_beta:.3g}, "
                      f"ESS {ess:.0f} of {N}, {moved}, {sims} simulations")
     else:
         raise _refuse(case, f"{MAX_GENERATIONS} generations were not enough", history)
     distinct = len(np.unique(pop.z, axis=0)) / N
-    cal = Calibration("smc", sims, accepted / max(proposed, 1), prior_ok, history, distinct,
+    cal = Calibration("smc", sims, state["accepted"] / max(state["proposed"], 1), prior_ok, history, distinct,
                       distinct >= MIN_DISTINCT, time.monotonic() - t_start, pop.ev["recorded"], record_times(case))
     if not cal.converged:
         raise _refuse(case, f"only {distinct:.0%} of the final members are distinct (at least "
                             f"{MIN_DISTINCT:.0%} needed): the move steps could not mix", history)
     return _unit(pop.z), pop.ev, cal
+
+
+def _next_target(case: Case, pop: _Population, state: dict, history: list):
+    """The next tolerance (while constraints are unmet) or temperature, and the particles' weights.
+
+    Returns ``(eps, beta, weights (N,))``, or None when the posterior is reached.
+    """
+    d, ll = pop.ev["distance"], pop.ev["loglik"]
+    eps, beta = state["eps"], state["beta"]
+    N = d.size
+    if eps > 0:
+        new_eps = 0.0 if (d == 0).mean() >= KEEP else float(np.quantile(d, KEEP, method="inverted_cdf"))
+        if not np.isfinite(new_eps):
+            raise _refuse(case, "more than half of the prior draws failed numerically", history)
+        state["stalled"] = state["stalled"] + 1 if new_eps > 0.99 * eps else 0
+        if state["stalled"] >= STALL:
+            raise _refuse(case, "the distance from the constraints stopped falling", history)
+        return new_eps, beta, (d <= new_eps).astype(float)
+    if beta < 1.0:
+        finite = np.isfinite(ll)
+        if not finite.any():
+            raise _refuse(case, "the monitoring data are impossible under every member", history)
+        new_beta = _next_temperature(ll, beta, KEEP * N)
+        lw = np.where(finite, (new_beta - beta) * np.where(finite, ll, 0.0), -np.inf)
+        return eps, new_beta, np.exp(lw - lw.max())
+    return None
+
+
+def _resample(pop: _Population, w: np.ndarray, tempering: bool, rng) -> tuple[_Population, np.ndarray]:
+    """Resample by the weights; returns the population and the rows to move.
+
+    A tolerance step (0/1 weights) keeps the survivors where they are and replaces the dropped
+    particles by copies of survivors, and only those copies are moved (replenishment; Drovandi &
+    Pettitt 2011); a temperature step resamples everyone (systematic) and moves everyone.
+    """
+    N = w.size
+    if tempering:
+        return pop.take(_systematic(w, rng)), np.arange(N)
+    dead = np.flatnonzero(w == 0)
+    pop = pop.take(np.arange(N))
+    copies = pop.take(rng.choice(np.flatnonzero(w > 0), dead.size))
+    pop.z[dead] = copies.z
+    for k, v in copies.ev.items():
+        pop.ev[k][dead] = v
+    return pop, dead
 
 
 def rejection(case: Case, members: int, seed: int, executor=None, progress=None,

@@ -282,3 +282,23 @@ def test_the_command_line_calibrates_then_assesses_and_refuses_another_case(tmp_
     err = capsys.readouterr().err
     assert "case.sha256" in err and "another version of the case file" in err
     assert not (tmp_path / "b").exists()
+
+
+def test_a_budget_too_small_is_refused_not_presented(tmp_path):
+    d = growth_case(100)
+    d["calibration"] = {"max_simulations": 1500}
+    case = load_case(write_case(tmp_path, d))
+    with pytest.raises(CalibrationError) as err:
+        build_ensemble(case, 100, case.seed)
+    assert "budget of 1500 simulations ran out" in err.value.message
+
+
+def test_check_describes_the_monitoring_and_the_limits(tmp_path, capsys):
+    from impact.cli import main
+
+    d = growth_case()
+    d["change_limits"] = [{"species": "newt", "up_at_most": 2.0}]
+    assert main(["check", str(write_case(tmp_path, d))]) == 0
+    out = capsys.readouterr().out
+    assert "monitoring of newt: 5 count values from -8 to 0 year (negative-binomial; detection detect" in out
+    assert "limit on change of newt: grows at most ×2 per 1 year from -10 to 0" in out
