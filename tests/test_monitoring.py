@@ -302,3 +302,16 @@ def test_check_describes_the_monitoring_and_the_limits(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "monitoring of newt: 5 count values from -8 to 0 year (negative-binomial; detection detect" in out
     assert "limit on change of newt: grows at most ×2 per 1 year from -10 to 0" in out
+
+
+def test_the_calibrated_ensemble_does_not_depend_on_the_executor(tmp_path):
+    from impact.execute import LocalPool
+
+    case = load_case(write_case(tmp_path, growth_case(150)))
+    here, _ = build_ensemble(case, 150, case.seed)
+    pool = LocalPool(2)
+    try:
+        there, _ = build_ensemble(case, 150, case.seed, executor=pool)
+    finally:
+        pool.close()
+    assert np.array_equal(here.unit, there.unit) and np.array_equal(here.today, there.today)
