@@ -315,3 +315,28 @@ def test_the_calibrated_ensemble_does_not_depend_on_the_executor(tmp_path):
     finally:
         pool.close()
     assert np.array_equal(here.unit, there.unit) and np.array_equal(here.today, there.today)
+
+
+def test_the_observation_models_agree_with_scipy():
+    """Poisson, negative binomial with size k (variance μ + μ²/k: n = k, p = k/(k + μ) in scipy's
+    parametrisation) and lognormal on an index (median scale × N), against scipy.stats."""
+    from scipy import stats
+
+    from impact.case import MonitoringSeries
+    from impact.observe import series_log_likelihood
+
+    N = np.array([[10.0, 20.0, 0.5], [3.0, 7.0, 40.0]])
+    y = (4.0, 15.0, 0.0)
+    values = {"det": np.array([0.4, 0.9]), "k": np.array([2.0, 30.0])}
+    mu = values["det"][:, None] * 1.5 * N
+    pois = MonitoringSeries("a", "count", (0.0, 1.0, 2.0), y, "poisson", "det", 1.5)
+    assert np.allclose(series_log_likelihood(pois, values, N), stats.poisson.logpmf(y, mu).sum(1))
+    nb = MonitoringSeries("a", "count", (0.0, 1.0, 2.0), y, "negative-binomial", "det", 1.5, dispersion="k")
+    k = values["k"][:, None]
+    assert np.allclose(series_log_likelihood(nb, values, N), stats.nbinom.logpmf(y, k, k / (k + mu)).sum(1))
+    yi = (4.0, 15.0, 0.7)
+    ln = MonitoringSeries("a", "index", (0.0, 1.0, 2.0), yi, "lognormal", 1.0, 1.5, log_sd=0.3)
+    assert np.allclose(series_log_likelihood(ln, values, N), stats.lognorm.logpdf(yi, 0.3, scale=1.5 * N).sum(1))
+    # a positive count where the model has no animals is impossible
+    one = {"det": np.array([0.4])}
+    assert series_log_likelihood(pois, one, np.array([[10.0, 0.0, 1.0]])).tolist() == [-np.inf]
