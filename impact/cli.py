@@ -115,6 +115,10 @@ def describe_case(case: Case) -> str:
         bounds = " and ".join(b for b in (f"grows at most ×{c.up:g}" if c.up else "",
                                           f"falls at most ÷{c.down:g}" if c.down else "") if b)
         L.append(f"  limit on change of {c.species}: {bounds} per {c.step:g} {case.time_unit} from {c.start:g} to {c.end:g}")
+    if case.calibration is not None:
+        c = case.calibration
+        L.append(f"calibration: sampler {c.sampler}, rejection while at least {c.min_acceptance:.0%} of draws are kept"
+                 + (f", at most {c.max_simulations} simulations" if c.max_simulations else ""))
     L.append(f"interventions ({len(case.interventions)}):")
     for iv in case.interventions:
         when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"

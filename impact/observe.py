@@ -42,9 +42,9 @@ def has_data(case: Case) -> bool:
     return bool(case.monitoring or case.change_limits)
 
 
-def _columns(case: Case, times: np.ndarray, series_times) -> np.ndarray:
-    idx = np.searchsorted(times, np.round(np.asarray(series_times, float), 12))
-    return idx
+def _columns(times: np.ndarray, series_times) -> np.ndarray:
+    """Positions of ``series_times`` among the record times (every one of them is a record time)."""
+    return np.searchsorted(times, np.round(np.asarray(series_times, float), 12))
 
 
 def series_log_likelihood(s: MonitoringSeries, values: dict, abundance: np.ndarray) -> np.ndarray:
@@ -92,7 +92,7 @@ def log_likelihood(case: Case, values: dict, recorded: np.ndarray, times: np.nda
     col = {n: i for i, n in enumerate(case.species_names)}
     out = np.zeros(recorded.shape[0])
     for s in case.monitoring:
-        out += series_log_likelihood(s, values, recorded[:, _columns(case, times, s.times), col[s.species]])
+        out += series_log_likelihood(s, values, recorded[:, _columns(times, s.times), col[s.species]])
     return out
 
 
@@ -132,7 +132,7 @@ def distance(case: Case, recorded: np.ndarray, times: np.ndarray, late_min: np.n
         low = np.log(ob.low) if ob.low > 0 else -np.inf
         parts["range"] += np.maximum(0.0, low - x) + np.maximum(0.0, x - np.log(ob.high))
     for lim in case.change_limits:
-        idx = _columns(case, times, lim.check_times())
+        idx = _columns(times, lim.check_times())
         x = _log(recorded[:, idx, col[lim.species]])
         dt = np.diff(times[idx]) / lim.step
         step = np.diff(x, axis=1)
@@ -158,7 +158,7 @@ def draw_observations(case: Case, values: dict, recorded: np.ndarray, times: np.
     col = {n: i for i, n in enumerate(case.species_names)}
     out = {}
     for s in case.monitoring:
-        N = recorded[:, _columns(case, times, s.times), col[s.species]]
+        N = recorded[:, _columns(times, s.times), col[s.species]]
         M, K = N.shape
         ok = np.isfinite(N).all(axis=1)
         N = np.where(np.isfinite(N), np.maximum(N, 0.0), 0.0)
