@@ -28,15 +28,16 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .assess import (Ensemble, assess_members, bands_table, draw_ensemble, failure_counts, members_table,
-                     risk_table)
+from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
+from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
+                        ensemble_from_arrays)
 from .case import Case
 from .case import load_case as _read_case
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
-from .errors import SettingError
-from .manifest import (CaseRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest, ObjectiveRecord,
-                       OptionRecord, SpeciesRecord)
+from .errors import ReadError, SettingError
+from .manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest,
+                       MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
 from .model import equations
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
@@ -105,6 +106,7 @@ class Assessment:
     manifest: Manifest
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     records: dict[str, dict] = field(default_factory=dict)
+    calibration: Calibration | None = None
 
     @property
     def risk(self) -> pd.DataFrame:
@@ -161,7 +163,7 @@ def priors_table(case: Case) -> pd.DataFrame:
 
 def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,
                  seconds: float, stages: tuple[str, ...] = ("assess",), sensitivity: dict | None = None,
-                 execution: dict | None = None) -> Manifest:
+                 execution: dict | None = None, calibration: dict | None = None) -> Manifest:
     """The manifest of an assessment: what was run, on what, and everything the report needs of the case."""
     return Manifest(
         tool="impact", version=__version__,
@@ -190,7 +192,12 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                       + tuple(InteractionRecord("mutualism", u.partner, u.beneficiary) for u in case.mutualism)),
         equations=tuple(equations(case)), assumptions=tuple(case.notes), plausibility=PLAUSIBILITY_RULE,
         packages=package_versions(), platform=platform.platform(), stages=tuple(stages), caution=CAUTION,
-        sensitivity=sensitivity, execution=execution,
+        sensitivity=sensitivity, execution=execution, calibration=calibration,
+        monitoring=tuple(MonitoringRecord(species=m.species, kind=m.kind, error=m.error, observations=len(m.times),
+                                          first=m.times[0], last=m.times[-1], file=m.file, source=m.source)
+                         for m in case.monitoring),
+        change_limits=tuple(ChangeLimitRecord(species=c.species, up_at_most=c.up, down_at_most=c.down, step=c.step,
+                                              start=c.start, end=c.end, source=c.source) for c in case.change_limits),
     )
 
 
@@ -234,9 +241,90 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
     return stages, entry
 
 
+@dataclass
+class PosteriorEnsemble:
+    """A calibrated ensemble on its own (``impact calibrate``), for a later assessment to reuse.
+
+    ``tables`` holds ``parameters.csv`` and the ``calibration/`` tables by relative path;
+    ``source`` is the folder it was read from (None when built in this process).
+    """
+
+    case: Case
+    ensemble: Ensemble
+    calibration: Calibration
+    manifest: dict
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    source: str | None = None
+
+
+def calibrate(case: Case, members: int | None = None, seed: int | None = None, *, progress: Progress | None = None,
+              executor=None, command: list[str] | None = None) -> PosteriorEnsemble:
+    """Build the ensemble of ``case`` (calibrated where it has data) without running any option."""
+    members = members if members is not None else case.members
+    seed = seed if seed is not None else case.seed
+    started, t0 = datetime.now(timezone.utc), time.monotonic()
+    ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
+    tables = {"parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+              "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
+    manifest = {"tool": "impact", "version": __version__, "stages": ["calibrate"],
+                "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
+                         "invented": case.invented},
+                "command": list(command or ["python", "impact.api.calibrate"]),
+                "started_utc": started.isoformat(timespec="seconds"), "seconds": round(time.monotonic() - t0, 2),
+                "seed": seed, "members": len(ens.draws), "counts": ens.counts, "calibration": cal.record(),
+                "packages": package_versions()}
+    return PosteriorEnsemble(case, ens, cal, manifest, tables)
+
+
+def save_ensemble(post: PosteriorEnsemble, out, *, replace: bool = False) -> Path:
+    """Write a posterior ensemble folder: ensemble.npz, parameters.csv, calibration/, manifest.json, README.md."""
+    from .dictionary import write_dictionary
+    from .outfolder import OutputFolder
+    from .results import write_csv, write_ensemble, write_json
+
+    folder = OutputFolder(out, replace=replace)
+    with folder:
+        with folder.stage() as tmp:
+            write_ensemble(tmp, post.ensemble.draws, post.ensemble.unit, post.ensemble.today)
+            for rel, frame in post.tables.items():
+                write_csv(frame, tmp / rel)
+            write_json(post.manifest, tmp / "manifest.json")
+            write_dictionary(tmp)
+    return folder.path
+
+
+def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
+    """Read a folder written by :func:`save_ensemble` for ``case``; refused when calibrated for another case file."""
+    import json
+
+    from .report import read_table
+    from .results import read_ensemble
+
+    folder = Path(folder)
+    path = folder / "manifest.json"
+    try:
+        manifest = json.loads(path.read_bytes().decode("utf-8"))
+        record, sha = manifest["calibration"], manifest["case"]["sha256"]
+    except FileNotFoundError:
+        raise ReadError(str(folder), "manifest.json", "not found; point at a folder written by `impact calibrate`") from None
+    except (ValueError, KeyError, TypeError) as exc:
+        raise ReadError(str(path), "", f"is not the manifest of a posterior ensemble ({exc})") from None
+    if sha != case.sha256:
+        raise SettingError("ensemble", f"{folder} was calibrated for another version of the case file "
+                                       f"({manifest['case'].get('path')}); calibrate {case.path} again")
+    arrays = read_ensemble(folder)
+    if arrays["unit"].shape[1] != len(case.uncertain):
+        raise ReadError(str(folder / "ensemble.npz"), "unit", "columns do not match the case's uncertain parameters")
+    tables = {f"calibration/{p.name}": read_table(p) for p in sorted((folder / "calibration").glob("*.csv"))}
+    gens = tables.get("calibration/generations.csv")
+    cal = calibration_from_record(record, gens.to_dict("records") if gens is not None else None)
+    ens = ensemble_from_arrays(case, arrays["draws"], arrays["unit"], arrays["today"], manifest.get("counts", {}))
+    return PosteriorEnsemble(case, ens, cal, manifest, tables, str(folder.resolve()))
+
+
 def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
            executor=None, store=None, block: int | None = None, chunk: int | None = None,
-           command: list[str] | None = None) -> Assessment:
+           command: list[str] | None = None, ensemble: PosteriorEnsemble | None = None) -> Assessment:
     """Run the whole assessment of ``case`` in memory and return it.
 
     Parameters
@@ -249,14 +337,25 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         Draw indices per screening block and members per run chunk; results never depend on them.
     command : list of str, optional
         How the run was asked for, recorded in the manifest (default: a note that it came from Python).
+    ensemble : PosteriorEnsemble, optional
+        A calibrated ensemble to reuse (from :func:`calibrate` or :func:`load_ensemble`) instead of
+        drawing one; ``settings.members``, if given, must equal its size.
     """
     from .execute import InProcess
 
     executor = executor or InProcess()
+    if ensemble is not None:
+        if settings.members is not None and settings.members != len(ensemble.ensemble.draws):
+            raise SettingError("members", f"the reused ensemble has {len(ensemble.ensemble.draws)} members, not "
+                                          f"{settings.members}; leave `members` out")
+        settings = replace(settings, members=len(ensemble.ensemble.draws))
     settings = settings.resolved(case)
     members, seed = settings.members, settings.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
-    ens = draw_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
+    if ensemble is not None:
+        ens, cal = ensemble.ensemble, ensemble.calibration
+    else:
+        ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
     if progress:
         progress("tabulating risk")
@@ -265,9 +364,13 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
         "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
-        "priors.csv": priors_table(case)}
+        "priors.csv": priors_table(case),
+        **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
+           else calibration_tables(case, ens, cal, seed))}
     records: dict[str, dict] = {}
     stages, sensitivity = ["assess"], None
+    calibration = cal.record() if ensemble is None else {
+        **ensemble.manifest["calibration"], "reused_from": ensemble.source or "this process"}
     if settings.sensitivity:
         more, sensitivity = _decision_stage(case, settings, seed, ens, runs, tables, records, progress, executor, store)
         stages += more
@@ -281,8 +384,8 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     execution = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
                  "chunks_computed": getattr(store, "saved", 0)}
     manifest = manifest_for(case, ens, failure_counts(runs), seed, command or ["python", "impact.api.assess"], started,
-                            time.monotonic() - t0, tuple(stages), sensitivity, execution)
-    return Assessment(case, ens, manifest, tables, records)
+                            time.monotonic() - t0, tuple(stages), sensitivity, execution, calibration)
+    return Assessment(case, ens, manifest, tables, records, calibration=cal)
 
 
 def summary_text(case: Case, folder: Path) -> str:
@@ -292,9 +395,19 @@ def summary_text(case: Case, folder: Path) -> str:
 
     res = load_results(folder)
     counts, risk = res.manifest.counts, res.risk
-    L = [case.title,
-         f"draws: {counts.tried} tried, {counts.kept} plausible kept ({counts.failed} failed numerically, "
-         f"{counts.extinct} lost a species, {counts.out_of_range} outside observed ranges)"]
+    L = [case.title]
+    cal = res.manifest.calibration or {}
+    if cal.get("sampler") == "smc":
+        L.append(f"ensemble: {counts.kept} members calibrated by sequential Monte Carlo ({cal['simulations']} "
+                 f"simulations in {cal['generations']} generations, move acceptance {cal['acceptance']:.0%}, "
+                 f"{cal['distinct']:.0%} distinct members; {cal['prior_acceptance']:.1%} of prior draws met every "
+                 "constraint)")
+    else:
+        L.append(f"draws: {counts.tried} tried, {counts.kept} plausible kept ({counts.failed} failed "
+                 f"numerically, {counts.extinct} lost a species, {counts.out_of_range} outside observed ranges)")
+    if case.monitoring:
+        L.append("monitoring data weighed: " + ", ".join(f"{s.species} ({len(s.times)} {s.kind} values, {s.error})"
+                                                          for s in case.monitoring))
     if counts.kept < counts.wanted:
         L.append(f"WARNING: only {counts.kept} of {counts.wanted} wanted members were plausible within the draw limit")
     for opt, f in counts.failed_by_option.items():

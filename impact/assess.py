@@ -118,8 +118,17 @@ def _ensemble(case: Case, draws, unit, today, counts) -> Ensemble:
     return Ensemble(draws, unit, values, web_params(case, values, len(draws)), today, counts)
 
 
+class LowAcceptance(Exception):
+    """The first round of draws kept fewer than the share asked for (``min_rate`` of :func:`draw_ensemble`)."""
+
+    def __init__(self, tried: int, kept: int):
+        self.tried, self.kept = tried, kept
+        super().__init__(f"{kept} of {tried} draws plausible")
+
+
 def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = None,
-                  progress: Progress | None = None, executor=None, store=None, block: int | None = None) -> Ensemble:
+                  progress: Progress | None = None, executor=None, store=None, block: int | None = None,
+                  min_rate: float | None = None) -> Ensemble:
     """The first ``members`` plausible draws in index order (at most ``max_draws`` tried).
 
     ``tried`` and the rejection counts cover the draws up to the last one kept, so they do not
@@ -133,6 +142,9 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
         Finished blocks are saved there and reused on a resumed run.
     block : int, optional
         Draw indices per block (default :func:`draw_block_size`); results do not depend on it.
+    min_rate : float, optional
+        Raise :class:`LowAcceptance` when the first round of blocks keeps fewer than this share
+        of its draws and not enough members (the caller then turns to another sampler).
     """
     from .execute import InProcess, count
 
@@ -163,6 +175,9 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
                 store.put(f"draws-{todo[i]}", res)
         n_kept = sum(int(b["kept"].sum()) for b in blocks.values())
         tried = sum(b["draws"].size for b in blocks.values())
+        if min_rate is not None and n_kept < members and n_kept < min_rate * tried:
+            raise LowAcceptance(tried, n_kept)
+        min_rate = None  # judged on the first round only
         rate = max(n_kept / tried, 1e-3)
         count(progress, "drawing today's ecosystem", min(n_kept, members), members, f"plausible, {tried} tried")
     order = sorted(blocks)

@@ -234,6 +234,9 @@ class Case:
     objectives: tuple[Objective, ...] = field(default=())
     groups: tuple[ParameterGroup, ...] = field(default=())
     dynamics: "DynamicsTable | None" = None
+    monitoring: "tuple[MonitoringSeries, ...]" = ()
+    change_limits: "tuple[ChangeLimit, ...]" = ()
+    calibration: "CalibrationTable | None" = None
 
     @property
     def species_names(self) -> tuple[str, ...]:
@@ -438,7 +441,7 @@ def unused_parameters(case: Case) -> tuple[str, ...]:
     """
     used = set()
     for item in (*case.species, *case.feeding, *case.competition, *case.mutualism, *case.interventions,
-                 *((case.carrion,) if case.carrion is not None else ())):
+                 *((case.carrion,) if case.carrion is not None else ()), *case.monitoring):
         for f in item.__dataclass_fields__.values():
             v = getattr(item, f.name)
             if "Quantity" in str(f.type) and isinstance(v, str):
@@ -673,6 +676,10 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     uncertain = {p.name for p in parameters if p.uncertain}
     groups = tuple(_read_group(r, i, raw, uncertain) for i, raw in enumerate(top.get("parameter_groups", [], "list")))
     _unique(r, groups, "name", "parameter_groups")
+    monitoring = tuple(_read_monitoring(r, i, raw, names, spinup) for i, raw in enumerate(top.get("monitoring", [], "list")))
+    _unique(r, monitoring, "species", "monitoring")
+    limits = tuple(_read_change_limit(r, i, raw, names, spinup) for i, raw in enumerate(top.get("change_limits", [], "list")))
+    calibration = _read_calibration(r, top.get("calibration", None, "any"))
     top.done()
 
     pnames = {p.name: p for p in parameters}
@@ -693,6 +700,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
         observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
         objectives=objectives, groups=groups, dynamics=dynamics,
+        monitoring=monitoring, change_limits=limits, calibration=calibration,
     )
 
 
@@ -794,4 +802,209 @@ def _read_dynamics(r: _Reader, raw: Any, species: list[str]) -> DynamicsTable | 
     t.done()
     if out.section is not None:
         r.choice("dynamics.section", out.section, species)
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# monitoring data, limits on change, and the calibration settings
+
+# what a monitoring series holds, and the observation models allowed for each
+SERIES_KINDS = {"count": ("poisson", "negative-binomial"), "index": ("lognormal",)}
+SERIES_COLUMNS = ("time", "value")
+SAMPLERS = ("auto", "rejection", "smc")
+DEFAULT_MIN_ACCEPTANCE = 0.05
+
+
+@dataclass(frozen=True)
+class MonitoringSeries:
+    """A count series or an abundance index for one species, observed before today.
+
+    Times are in the case's time unit relative to today (0 = the end of spin-up; negative is
+    the past) and lie within the spin-up. The expected count is ``detection × scale × N`` and
+    the median index ``scale × N``, for the model's abundance ``N`` at each time.
+
+    Attributes
+    ----------
+    times, values : tuple of float (K,)
+        Strictly increasing times; counts (whole numbers >= 0) or index values (> 0).
+    error : str
+        ``poisson`` or ``negative-binomial`` for counts, ``lognormal`` for an index.
+    dispersion : Quantity or None
+        Negative binomial size k (variance ``μ + μ²/k``).
+    log_sd : Quantity or None
+        Standard deviation of log(index) around log(scale × N).
+    file : str or None
+        The CSV file the values came from (as written in the case), if any.
+    """
+
+    species: str
+    kind: str
+    times: tuple[float, ...]
+    values: tuple[float, ...]
+    error: str
+    detection: Quantity = 1.0
+    scale: Quantity = 1.0
+    dispersion: Quantity | None = None
+    log_sd: Quantity | None = None
+    source: str = ""
+    file: str | None = None
+
+
+@dataclass(frozen=True)
+class ChangeLimit:
+    """Declared bounds on how fast a species can change before today.
+
+    Over every step of ``step`` time units from ``start`` to ``end`` (relative to today), the
+    abundance may grow by at most a factor ``up`` and shrink by at most a factor ``down``
+    (``down = 2``: never below half of the previous value), in proportion for a shorter step.
+    """
+
+    species: str
+    up: float | None
+    down: float | None
+    step: float
+    start: float
+    end: float
+    source: str = ""
+
+    def check_times(self) -> tuple[float, ...]:
+        """Times at which the abundance is compared with the previous one (start included)."""
+        n = int(math.floor((self.end - self.start) / self.step + 1e-9))
+        ts = [self.start + k * self.step for k in range(n + 1)]
+        if self.end - ts[-1] > 1e-9 * max(1.0, abs(self.end)):
+            ts.append(self.end)
+        return tuple(round(t, 12) for t in ts)
+
+
+@dataclass(frozen=True)
+class CalibrationTable:
+    """The optional ``[calibration]`` table: which sampler builds the ensemble and its budget.
+
+    ``sampler = "auto"`` draws by rejection while at least ``min_acceptance`` of the prior draws
+    are kept and there is no monitoring data to weigh, and by sequential Monte Carlo otherwise.
+    ``max_simulations`` (default 200 per member) bounds the spin-ups a calibration may spend.
+    """
+
+    sampler: str = "auto"
+    min_acceptance: float = DEFAULT_MIN_ACCEPTANCE
+    max_simulations: int | None = None
+
+
+def _series_from_csv(r: _Reader, where: str, name: str) -> tuple[list, list]:
+    """Times and values from a CSV file named in the case (relative to the case file)."""
+    import csv
+
+    path = (Path(r.path).parent / name)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise CaseError(str(path), "", f"is not UTF-8 text (named by {where}.file)") from None
+    except OSError as exc:
+        raise ReadError(str(path), "", f"cannot read the monitoring file named by {where}.file "
+                                       f"({exc.strerror or exc}); the path is relative to the case file") from None
+    # lines starting with "#" are comments (a source, or a note that the data are invented)
+    rows = [(k, row) for k, row in enumerate(csv.reader(text.splitlines()), start=1)
+            if row and not row[0].lstrip().startswith("#") and any(c.strip() for c in row)]
+    if not rows or [h.strip() for h in rows[0][1]] != list(SERIES_COLUMNS):
+        raise CaseError(str(path), "header", f"the first line (after # comments) must be the columns "
+                                             f"{','.join(SERIES_COLUMNS)}, one row per observation; got "
+                                             f"{','.join(rows[0][1]) if rows else 'nothing'}")
+    times, values = [], []
+    for k, row in rows[1:]:
+        if len(row) != 2:
+            raise CaseError(str(path), f"line {k}", f"must hold 2 cells (time, value), got {len(row)}")
+        for col, cell, out in zip(SERIES_COLUMNS, row, (times, values)):
+            try:
+                x = float(cell)
+            except ValueError:
+                raise CaseError(str(path), f"line {k}.{col}", f"must be a number, got {cell.strip()!r}") from None
+            if not math.isfinite(x):
+                raise CaseError(str(path), f"line {k}.{col}", f"must be finite, got {cell.strip()!r}")
+            out.append(x)
+    return times, values
+
+
+def _series_values(r: _Reader, t: _Table, base: str) -> tuple[list, list, str | None]:
+    """Times and values inline (``times``, ``values``) or from ``file``: exactly one of the two."""
+    inline = [k for k in ("times", "values") if k in t.data]
+    if "file" in t.data:
+        if inline:
+            r.fail(f"{base}.{inline[0]}", "give the series either inline (times, values) or in a file, not both")
+        name = t.get("file", kind="str")
+        return (*_series_from_csv(r, base, name), name)
+    times, values = t.get("times", kind="list"), t.get("values", kind="list")
+    for key, lst in (("times", times), ("values", values)):
+        if any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x) for x in lst):
+            r.fail(f"{base}.{key}", "must be a list of finite numbers")
+    return [float(x) for x in times], [float(x) for x in values], None
+
+
+def _read_monitoring(r: _Reader, i: int, raw: Any, names: set[str], spinup: float) -> MonitoringSeries:
+    """One ``[[monitoring]]`` entry: a species' count series or index, and its observation model."""
+    t = _Table(r, raw, f"monitoring[{i}]")
+    sp = t.get("species", kind="str")
+    if sp not in names:
+        r.fail(f"monitoring[{i}].species", f"unknown species {sp!r}; declared species: {', '.join(sorted(names))}")
+    t.path = base = f"monitoring.{sp}"
+    kind = r.choice(f"{base}.kind", t.get("kind", "count", "str"), tuple(SERIES_KINDS))
+    error = r.choice(f"{base}.error", t.get("error", SERIES_KINDS[kind][0], "str"), SERIES_KINDS[kind])
+    times, values, file = _series_values(r, t, base)
+    where = f"{base}.{'file' if file else 'values'}"
+    if len(times) != len(values):
+        r.fail(where, f"{len(times)} times but {len(values)} values; give one value per time")
+    if len(times) < 2:
+        r.fail(where, "needs at least two observations")
+    if any(b <= a for a, b in zip(times, times[1:])):
+        r.fail(f"{base}.{'file' if file else 'times'}", "times must be strictly increasing")
+    if times[0] < -spinup or times[-1] > 0:
+        r.fail(f"{base}.{'file' if file else 'times'}",
+               f"times are counted from today (0, the end of spin-up) and must lie in [{-spinup:g}, 0] "
+               f"(case.spinup = {spinup:g}); got {times[0]:g} to {times[-1]:g}")
+    if kind == "count" and any(v < 0 or v != math.floor(v) for v in values):
+        r.fail(where, "counts must be whole numbers >= 0")
+    if kind == "index" and any(v <= 0 for v in values):
+        r.fail(where, "index values must be > 0 (a lognormal error needs positive values)")
+    detection = t.quantity("detection", 1.0, low=0, low_open=True, high=1) if kind == "count" else 1.0
+    scale = t.quantity("scale", 1.0, low=0, low_open=True)
+    dispersion = t.quantity("dispersion", low=0, low_open=True) if error == "negative-binomial" else None
+    log_sd = t.quantity("log_sd", low=0, low_open=True) if error == "lognormal" else None
+    source = t.get("source", "", "str")
+    t.done()
+    return MonitoringSeries(sp, kind, tuple(times), tuple(values), error, detection, scale, dispersion, log_sd,
+                            source, file)
+
+
+def _read_change_limit(r: _Reader, i: int, raw: Any, names: set[str], spinup: float) -> ChangeLimit:
+    """One ``[[change_limits]]`` entry: the largest rise and fall per step before today."""
+    t = _Table(r, raw, f"change_limits[{i}]")
+    sp = t.get("species", kind="str")
+    if sp not in names:
+        r.fail(f"change_limits[{i}].species", f"unknown species {sp!r}; declared species: {', '.join(sorted(names))}")
+    t.path = base = f"change_limits.{sp}"
+    up = t.number("up_at_most", None, low=1, low_open=True)
+    down = t.number("down_at_most", None, low=1, low_open=True)
+    if up is None and down is None:
+        r.fail(f"{base}.up_at_most", "give up_at_most (e.g. 2: never more than doubling per step), "
+                                     "down_at_most (e.g. 2: never below half per step), or both")
+    step = t.number("step", 1.0, low=0, low_open=True)
+    start = t.number("start", -0.5 * spinup, low=-spinup, high=0)
+    end = t.number("end", 0.0, low=-spinup, high=0)
+    if end - start < step - 1e-12:
+        r.fail(f"{base}.end", f"the window [{start:g}, {end:g}] must hold at least one step of {step:g}")
+    source = t.get("source", "", "str")
+    t.done()
+    return ChangeLimit(sp, up, down, step, start, end, source)
+
+
+def _read_calibration(r: _Reader, raw: Any) -> CalibrationTable | None:
+    """Read ``[calibration]`` (absent: None, every setting at its default)."""
+    if raw is None:
+        return None
+    t = _Table(r, raw, "calibration")
+    out = CalibrationTable(
+        sampler=r.choice("calibration.sampler", t.get("sampler", "auto", "str"), SAMPLERS),
+        min_acceptance=t.number("min_acceptance", DEFAULT_MIN_ACCEPTANCE, low=0, low_open=True, high=1),
+        max_simulations=t.number("max_simulations", None, low=1, integer=True),
+    )
+    t.done()
     return out

@@ -23,6 +23,10 @@ from .manifest import Manifest
 
 RANK_THIN, RANK_SHORTFALL, RANK_FAILURES, RANK_UNDECIDED = 0, 1, 2, 3
 RANK_IMPLAUSIBLE, RANK_PREDICTABILITY, RANK_OSCILLATION, RANK_SENSITIVITY, RANK_INVENTED = 4, 5, 6, 7, 8
+RANK_CALIBRATION = RANK_IMPLAUSIBLE
+# observations outside the posterior predictive 5-95 % band: about 10 % is expected; more than this
+# share says the model cannot reproduce the monitoring (common practice, no source)
+MISFIT_SHARE = 0.3
 # more than half of the draws rejected: priors at odds with observations (common practice, no source)
 IMPLAUSIBLE_SHARE = 0.5
 OSCILLATING = {"cycle": "cycling", "irregular": "aperiodic (neither settling nor repeating)",
@@ -58,7 +62,16 @@ def _member_cautions(m: Manifest, thin_reason: str) -> list[Caution]:
             parts.append(f"{f['failed']} of {kept} under {opt}" + (f" ({reasons})" if reasons else ""))
         out.append(Caution(RANK_FAILURES, "Members that failed numerically (counted, not dropped silently; every "
                                           "table gives the n behind each number): " + _join(parts) + "."))
-    if tried and kept / tried < IMPLAUSIBLE_SHARE:
+    cal = m.calibration or {}
+    if cal.get("sampler") == "smc":
+        # SMC spends many simulations per member by design: judge the priors on the prior draws
+        share = float(cal.get("prior_acceptance", 1.0))
+        if share < IMPLAUSIBLE_SHARE:
+            out.append(Caution(RANK_IMPLAUSIBLE, f"Most prior draws were implausible: {fmt_prob(share)} met every "
+                                                 "constraint (persistence, observed ranges, limits on change). The "
+                                                 "ensemble was calibrated by sequential Monte Carlo, so every member "
+                                                 "meets them, but the priors and the observations disagree."))
+    elif tried and kept / tried < IMPLAUSIBLE_SHARE:
         out.append(Caution(RANK_IMPLAUSIBLE, f"Most draws were implausible: {kept} of {tried} draws tried were kept "
                                              f"({c.failed} failed numerically, {c.extinct} lost a "
                                              f"species, {c.out_of_range} lay outside an observed range). The "
@@ -151,10 +164,36 @@ def _sensitivity_cautions(sens: dict) -> list[Caution]:
     return out
 
 
+def _calibration_cautions(calibration: dict) -> list[Caution]:
+    """Data that informed little, and data the calibrated model does not reproduce."""
+    out = []
+    post, pred = calibration.get("posterior"), calibration.get("predictive")
+    if pred is None or pred.empty:
+        return out
+    if post is not None and not post.empty and not post.informed.astype(str).str.lower().isin(["true", "1"]).any():
+        best = post.loc[post.contraction.astype(float).idxmax()]
+        out.append(Caution(RANK_CALIBRATION, "The monitoring data informed little: no uncertain parameter lost a fifth "
+                                             f"of its prior variance (largest: {best.parameter}, "
+                                             f"{fmt_prob(max(float(best.contraction), 0.0))}; calibration/posterior.csv). "
+                                             "The risks rest on the priors much as without the data."))
+    parts = []
+    for sp, g in pred.groupby("species", sort=False):
+        outside = int(((g.observed < g.q05) | (g.observed > g.q95)).sum())
+        if outside > MISFIT_SHARE * len(g):
+            parts.append(f"{sp} {outside} of {len(g)}")
+    if parts:
+        out.append(Caution(RANK_CALIBRATION, "Monitoring data outside the calibrated model's 5–95 % predictive band "
+                                             "(about 1 in 10 is expected): " + _join(parts) + ". The model does not "
+                                             "reproduce these series; its structure or the observation model may be "
+                                             "wrong."))
+    return out
+
+
 def cautions(m: Manifest, objectives: pd.DataFrame, thin_reason: str, dynamics: dict | None,
-             sensitivity: dict | None) -> list[Caution]:
+             sensitivity: dict | None, calibration: dict | None = None) -> list[Caution]:
     """Every specific warning of a results folder, one per concern, most serious first."""
     out = _member_cautions(m, thin_reason)
+    out += _calibration_cautions(calibration or {})
     out += _objective_cautions(objectives)
     out += _regime_cautions(m, dynamics or {})
     out += _sensitivity_cautions(sensitivity or {})

@@ -20,7 +20,7 @@ from .pipeline import Execution
 FLAGS = {name: "--" + name.replace("_", "-") for name in (
     "members", "seed", "workers", "cluster", "chunk_members", "out", "replace_results", "resume", "paper",
     "base_samples", "parameter", "option", "section", "steps", "transient", "window", "sample_dt", "max_period",
-    "period_tol", "tolerance", "failure_limit")}
+    "period_tol", "tolerance", "failure_limit", "ensemble")}
 FLAGS.update(start="--from", stop="--to")
 
 # exit status of `impact assess` when the results are written but too thin for a verdict
@@ -112,6 +112,18 @@ def describe_case(case: Case) -> str:
     L.append(f"observed today ({len(case.observed)}):")
     for o in case.observed:
         L.append(f"  {o.species} in [{o.low:g}, {o.high:g}]" + (f"  source: {o.source}" if o.source else ""))
+    for m in case.monitoring:
+        L.append(f"  monitoring of {m.species}: {len(m.times)} {m.kind} values from {m.times[0]:g} to {m.times[-1]:g} "
+                 f"{case.time_unit} ({m.error}; detection {m.detection}, scale {m.scale})"
+                 + (f" from {m.file}" if m.file else "") + (f"  source: {m.source}" if m.source else ""))
+    for c in case.change_limits:
+        bounds = " and ".join(b for b in (f"grows at most ×{c.up:g}" if c.up else "",
+                                          f"falls at most ÷{c.down:g}" if c.down else "") if b)
+        L.append(f"  limit on change of {c.species}: {bounds} per {c.step:g} {case.time_unit} from {c.start:g} to {c.end:g}")
+    if case.calibration is not None:
+        c = case.calibration
+        L.append(f"calibration: sampler {c.sampler}, rejection while at least {c.min_acceptance:.0%} of draws are kept"
+                 + (f", at most {c.max_simulations} simulations" if c.max_simulations else ""))
     L.append(f"interventions ({len(case.interventions)}):")
     for iv in case.interventions:
         when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"
@@ -155,6 +167,11 @@ def cmd_assess(args) -> int:
     from .pipeline import assess_to_folder, unused_warnings
 
     case = load_case(args.case)
+    reused = None
+    if args.ensemble is not None:
+        from .api import load_ensemble
+
+        reused = load_ensemble(args.ensemble, case)
     settings = AssessSettings(members=args.members, seed=args.seed, sensitivity=not args.no_sensitivity,
                               base_samples=args.base_samples, dynamics=not args.no_dynamics)
     for line in unused_warnings(case):
@@ -162,7 +179,7 @@ def cmd_assess(args) -> int:
     progress = _Progress(args.quiet)
     written = assess_to_folder(case, settings, args.out, replace=args.replace_results, resume=args.resume,
                                report=not args.no_report, paper=args.paper, execution=_execution(args),
-                               progress=lambda m: progress(m, force=True), command=sys.argv)
+                               progress=lambda m: progress(m, force=True), command=sys.argv, ensemble=reused)
     print(written.summary)
     print(f"results written to {written.path}")
     _say_replaced(written)
@@ -226,6 +243,18 @@ def cmd_sensitivity(args) -> int:
     return 0
 
 
+def cmd_calibrate(args) -> int:
+    from .pipeline import calibrate_to_folder
+
+    case = load_case(args.case)
+    written = calibrate_to_folder(case, args.out, members=args.members, seed=args.seed, replace=args.replace_results,
+                                  execution=_execution(args), progress=_Progress(args.quiet), command=sys.argv)
+    print(written.summary)
+    print(f"ensemble written to {written.path}; assess it with: impact assess {case.path} --ensemble {written.path} "
+          "--out DIR")
+    return 0
+
+
 def _executor_flags(p):
     g = p.add_mutually_exclusive_group()
     g.add_argument("--workers", type=int, default=None,
@@ -262,7 +291,21 @@ def build_parser() -> argparse.ArgumentParser:
                    help="reuse the chunks an interrupted run of the same case, seed and members saved")
     p.add_argument("--chunk-members", type=int, default=None,
                    help="members per chunk of work and checkpoint (default: an even share per worker, 100-2000)")
+    p.add_argument("--ensemble", default=None, metavar="DIR",
+                   help="reuse the ensemble `impact calibrate` wrote in DIR instead of drawing one")
     p.set_defaults(func=cmd_assess)
+
+    p = sub.add_parser("calibrate", help="build the (posterior) ensemble of a case alone, for assessments to reuse")
+    p.add_argument("case", help="the case file (TOML)")
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="ensemble folder; an existing one is refused unless --replace-results")
+    p.add_argument(FLAGS["replace_results"], action="store_true",
+                   help="replace the files impact wrote in an existing --out folder (other files are kept)")
+    p.add_argument("--members", type=int, default=None, help="members wanted (default: the case's case.members)")
+    p.add_argument("--seed", type=int, default=None, help="seed of the one random path, 0 or more (default: the case's case.seed)")
+    p.add_argument("--quiet", action="store_true", help="no progress lines")
+    _executor_flags(p)
+    p.set_defaults(func=cmd_calibrate)
 
     p = sub.add_parser("sensitivity", help="Sobol global sensitivity of every risk metric over the prior box, on its own")
     p.add_argument("case", help="the case file (TOML)")

@@ -98,6 +98,26 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "basis": "what was measured"}),
     "dynamics/risk_by_regime.csv": ("Risk metrics within each regime, per option.", {
         "option": "run", "regime": "regime", "species": "species", "metric": "metric", "value": "value"}),
+    "calibration/posterior.csv": ("Prior against posterior for each uncertain parameter: what the monitoring data "
+                                  "and the constraints taught.", {
+        "parameter": "uncertain parameter", "unit": "its unit", "prior_q05": "5 % prior quantile",
+        "prior_q50": "prior median", "prior_q95": "95 % prior quantile", "prior_mean": "prior mean",
+        "prior_sd": "prior standard deviation", "posterior_q05": "5 % quantile over the members",
+        "posterior_q50": "median over the members", "posterior_q95": "95 % quantile over the members",
+        "posterior_mean": "mean over the members", "posterior_sd": "standard deviation over the members",
+        "contraction": "share of the prior variance removed (1 − posterior variance / prior variance)",
+        "informed": "True when the contraction is at least 0.2"}),
+    "calibration/generations.csv": ("The sequential Monte Carlo sampler's generations (diagnostics).", {
+        "generation": "generation (0: prior draws)", "tolerance": "largest distance from the constraints allowed "
+        "(0: every constraint met; inf: none imposed)", "temperature": "power of the likelihood (1: the posterior)",
+        "ess": "effective sample size of the reweighted particles before resampling", "acceptance":
+        "share of move proposals accepted (blank when no move was needed)", "steps": "move steps taken",
+        "simulations": "spin-ups spent so far, pilot draws included"}),
+    "calibration/predictive.csv": ("Monitoring data against the posterior predictive bands (replicate data, one "
+                                   "per member).", {
+        "species": "monitored species", "time": "time of the observation (0 = today, negative = before)",
+        "observed": "the count or index observed", "kind": "count or index", "q05": "5 % quantile of replicates",
+        "q25": "25 % quantile", "q50": "median", "q75": "75 % quantile", "q95": "95 % quantile"}),
 }
 
 

@@ -110,6 +110,33 @@ class InteractionRecord:
     response: str | None = None
 
 
+@dataclass(frozen=True)
+class MonitoringRecord:
+    """A monitoring series the calibration weighed (its values are in ``calibration/``)."""
+
+    species: str
+    kind: str
+    error: str
+    observations: int
+    first: float
+    last: float
+    file: str | None = None
+    source: str = ""
+
+
+@dataclass(frozen=True)
+class ChangeLimitRecord:
+    """A declared limit on a species' change between times (``None``: no limit that way)."""
+
+    species: str
+    up_at_most: float | None
+    down_at_most: float | None
+    step: float
+    start: float
+    end: float
+    source: str = ""
+
+
 # JSON keys that are not the field's name (``from`` is a Python keyword)
 JSON_KEYS = {InteractionRecord: {"actor": "from", "target": "to"}}
 
@@ -119,7 +146,9 @@ class Manifest:
     """``manifest.json`` of an assessment.
 
     ``sensitivity`` and ``execution`` are short summaries of those stages (their full records
-    are ``sensitivity/sensitivity.json`` and the executor's description); ``None`` when absent.
+    are ``sensitivity/sensitivity.json`` and the executor's description); ``calibration`` is the
+    sampler's record (which sampler built the ensemble, its simulations and acceptance; see
+    :meth:`impact.calibrate.Calibration.record`); ``None`` when absent.
     """
 
     case: CaseRecord
@@ -150,6 +179,9 @@ class Manifest:
     caution: str = ""
     sensitivity: dict | None = None
     execution: dict | None = None
+    monitoring: tuple[MonitoringRecord, ...] = ()
+    change_limits: tuple[ChangeLimitRecord, ...] = ()
+    calibration: dict | None = None
 
     @property
     def option_names(self) -> list[str]:

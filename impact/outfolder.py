@@ -44,6 +44,7 @@ TOOL_FILES = frozenset({
     "sensitivity/convergence.csv", "sensitivity/sensitivity.json",
     "dynamics/regimes.csv", "dynamics/regime_shares.csv", "dynamics/risk_by_regime.csv", "dynamics/scan.csv",
     "dynamics/scan_points.csv", "dynamics/transitions.csv", "dynamics/dynamics.json",
+    "calibration/posterior.csv", "calibration/generations.csv", "calibration/predictive.csv", "ensemble.npz",
 })
 
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 import sys
 import time
 from dataclasses import dataclass, field
+from dataclasses import replace as replace_settings
 from pathlib import Path
 
 import numpy as np
@@ -90,7 +91,7 @@ def unused_warnings(case: Case) -> list[str]:
 
 
 def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool = False,
-                    execution: Execution = Execution()):
+                    execution: Execution = Execution(), ensemble=None):
     """Check every setting, the results folder and the resource estimate; touch nothing on disk.
 
     Returns
@@ -106,6 +107,12 @@ def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool 
     from .outfolder import OutputFolder
 
     given = settings.members is not None
+    if ensemble is not None:  # a reused ensemble sets the members
+        size = len(ensemble.ensemble.draws)
+        if given and settings.members != size:
+            raise SettingError("members", f"the reused ensemble has {size} members, not {settings.members}; "
+                                          "leave `members` out")
+        settings = replace_settings(settings, members=size)
     settings = settings.resolved(case)
     execution.check()
     folder = OutputFolder(out, replace=replace)
@@ -117,7 +124,8 @@ def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool 
 
 def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool = False, resume: bool = False,
                      report: bool = True, paper: str = "a4", execution: Execution = Execution(),
-                     progress: Progress | None = None, command: list[str] | None = None) -> Written:
+                     progress: Progress | None = None, command: list[str] | None = None,
+                     ensemble=None) -> Written:
     """Run an assessment and write its results folder (tables, manifest, report.pdf, summary.txt).
 
     Parameters
@@ -128,11 +136,14 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
         Reuse the chunks an interrupted run with the same settings saved beside ``out``.
     command : list of str, optional
         How the run was asked for, recorded in the manifest.
+    ensemble : impact.api.PosteriorEnsemble, optional
+        A calibrated ensemble to assess (from :func:`calibrate_to_folder`) instead of drawing one.
     """
     from .assess import draw_block_size, run_chunk_size
     from .results import Checkpoints
 
-    settings, folder, est = plan_assessment(case, settings, out, replace=replace, execution=execution)
+    settings, folder, est = plan_assessment(case, settings, out, replace=replace, execution=execution,
+                                            ensemble=ensemble)
     if progress:
         progress(est.describe())
     executor = execution.executor()
@@ -148,14 +159,15 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
             fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": settings.seed,
                            "members": settings.members, "max_draws": case.max_draws, "draw_block": block,
                            "run_chunk": chunk,
-                           "sensitivity": {"base_samples": settings.base_samples} if settings.sensitivity else None}
+                           "sensitivity": {"base_samples": settings.base_samples} if settings.sensitivity else None,
+                           "ensemble": None if ensemble is None else ensemble.source}
             store = Checkpoints(folder.path, fingerprint, resume=resume)
             saved = len(list(store.dir.glob("*.npz"))) if resume else 0
             if saved and progress:
                 progress(f"resuming from {saved} saved chunks in {store.dir}")
             try:
                 result = assess(case, settings, progress=progress, executor=executor, store=store, block=block,
-                                chunk=chunk, command=command)
+                                chunk=chunk, command=command, ensemble=ensemble)
             except CaseError:
                 store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
                 raise
@@ -167,6 +179,31 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
         raise
     executor.close()
     return Written(folder.path, folder.replaced, folder.kept, folder.stale_lock, text, result)
+
+
+def calibrate_to_folder(case: Case, out, *, members: int | None = None, seed: int | None = None,
+                        replace: bool = False, execution: Execution = Execution(),
+                        progress: Progress | None = None, command: list[str] | None = None) -> Written:
+    """Build the (posterior) ensemble of ``case`` alone and write it for later assessments to reuse."""
+    from .api import calibrate, save_ensemble
+    from .outfolder import OutputFolder
+
+    settings = AssessSettings(members=members, seed=seed, sensitivity=False).resolved(case)
+    execution.check()
+    OutputFolder(out, replace=replace)  # refuse a bad folder before any simulation
+    executor = execution.executor()
+    try:
+        post = calibrate(case, settings.members, settings.seed, progress=progress, executor=executor,
+                         command=command)
+        path = save_ensemble(post, out, replace=replace)
+    except BaseException:
+        executor.abort()
+        raise
+    executor.close()
+    c = post.manifest["calibration"]
+    summary = (f"{len(post.ensemble.draws)} members built by {c['sampler']}: {c['simulations']} simulations, "
+               f"acceptance {c['acceptance']:.1%}, {c['seconds']:.1f} s")
+    return Written(path, summary=summary)
 
 
 def screen_to_folder(case: Case, settings, out, *, replace: bool = False, execution: Execution = Execution(),

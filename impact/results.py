@@ -64,6 +64,15 @@ def read_manifest(results: Path) -> Manifest:
 # Results tables: relative path -> (columns that must be there, those of them that hold numbers).
 # Stage tables are optional (the stage may not have run); when present they must match.
 TABLES = {
+    "calibration/posterior.csv": (("parameter", "prior_q05", "prior_q50", "prior_q95", "posterior_q05",
+                                   "posterior_q50", "posterior_q95", "contraction", "informed"),
+                                  ("prior_q05", "prior_q50", "prior_q95", "posterior_q05", "posterior_q50",
+                                   "posterior_q95", "contraction")),
+    "calibration/generations.csv": (("generation", "tolerance", "temperature", "ess", "acceptance", "steps",
+                                     "simulations"), ("generation", "tolerance", "temperature", "ess", "acceptance",
+                                                      "steps", "simulations")),
+    "calibration/predictive.csv": (("species", "time", "observed", "kind", "q05", "q25", "q50", "q75", "q95"),
+                                   ("time", "observed", "q05", "q25", "q50", "q75", "q95")),
     "risk.csv": (("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n"),
                  ("horizon", "value", "low", "high", "level", "n")),
     "effects.csv": (("option", "species", "role", "direct", "metric", "horizon", "statistic", "value", "low", "high",
@@ -247,6 +256,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
+    "informed",
 }
 
 @dataclass
@@ -266,6 +276,7 @@ class Results:
     comparisons: pd.DataFrame
     sensitivity: dict | None = None
     dynamics: dict | None = None
+    calibration: dict | None = None
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -275,7 +286,7 @@ def read_table(path: Path) -> pd.DataFrame:
     missing column or text in a number column is refused naming the file and the column.
     """
     path = Path(path)
-    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics") else path.name
+    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics", "calibration") else path.name
     try:
         df = pd.read_csv(path, dtype=str, keep_default_na=False)
     except FileNotFoundError:
@@ -317,10 +328,42 @@ def load_results(path) -> Results:
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
-                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"))
+                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"))
 
 
 def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):
     r = risk[(risk.option == option) & (risk.species == species) & (risk.metric == metric)
              & np.isclose(risk.horizon, horizon)]
     return None if r.empty else r.iloc[0]
+
+
+ENSEMBLE_FILE = "ensemble.npz"
+ENSEMBLE_ARRAYS = ("draws", "unit", "today")
+
+
+def write_ensemble(folder: Path, draws: np.ndarray, unit: np.ndarray, today: np.ndarray) -> None:
+    """A posterior ensemble as plain arrays (no pickles): draw numbers (M,), unit rows (M, D), states today (M, n)."""
+    buf = __import__("io").BytesIO()
+    np.savez(buf, draws=draws, unit=unit, today=today)
+    Path(folder).mkdir(parents=True, exist_ok=True)
+    write_file_atomic(Path(folder) / ENSEMBLE_FILE, buf.getvalue())
+
+
+def read_ensemble(folder: Path) -> dict[str, np.ndarray]:
+    """Read ``ensemble.npz`` of a folder written by ``impact calibrate``, refusing a damaged one."""
+    path = Path(folder) / ENSEMBLE_FILE
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            arrays = {k: z[k] for k in ENSEMBLE_ARRAYS}
+    except FileNotFoundError:
+        raise ReadError(str(folder), ENSEMBLE_FILE, "not found; point at a folder written by `impact calibrate`") from None
+    except KeyError as exc:
+        raise ReadError(str(path), str(exc), "array missing; the ensemble folder is damaged") from None
+    except (ValueError, OSError, EOFError) as exc:
+        raise ReadError(str(path), "", f"cannot be read as an ensemble ({exc})") from None
+    M = arrays["draws"].shape[0]
+    if arrays["unit"].ndim != 2 or arrays["today"].ndim != 2 or any(a.shape[0] != M for a in arrays.values()):
+        raise ReadError(str(path), "", "arrays of inconsistent shapes; the ensemble folder is damaged")
+    if not np.isfinite(arrays["unit"]).all() or ((arrays["unit"] <= 0) | (arrays["unit"] >= 1)).any():
+        raise ReadError(str(path), "unit", "values outside (0, 1); the ensemble folder is damaged")
+    return arrays

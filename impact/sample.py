@@ -77,3 +77,13 @@ def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
     """One unit-uniform per member for a chance event of the named intervention: (M,)."""
     tag = zlib.crc32(name.encode("utf-8"))
     return np.array([_generator(seed, int(i), PURPOSE_EVENTS, tag).random() for i in draws])
+
+
+# Population-level streams of the calibration (resampling, proposals, acceptance) are keyed by a
+# first spawn-key element no draw index reaches, so they never coincide with a member's streams.
+CALIBRATION_KEY = 2 ** 62
+
+
+def calibration_generator(seed: int, generation: int, purpose: int = 0) -> np.random.Generator:
+    """The calibration's random stream for one generation (and purpose) of the sampler."""
+    return _generator(seed, CALIBRATION_KEY, int(generation), int(purpose))

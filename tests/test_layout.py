@@ -27,10 +27,10 @@ STAGES = [
     {"case"},
     {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "stepper", "simulate",
      "execute"},
-    {"assess"},
+    {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},
     {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
-    {"cautions", "verdict", "webfigure", "report", "tables", "figures", "sections", "render"},
+    {"cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},
 ]

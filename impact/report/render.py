@@ -5,6 +5,7 @@ from __future__ import annotations
 from importlib import resources
 from pathlib import Path
 
+from ..calibfigure import calibration_context
 from ..cautions import cautions
 from ..errors import InstallationError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
@@ -33,7 +34,7 @@ def report_context(res: Results, assets: Assets) -> dict:
                             risk=risk_table_context(res, o.name), effects=effects_table_context(res, o.name)))
     thin, why = thin_run(m)
     verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
-    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity)
+    warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity, res.calibration)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
@@ -47,6 +48,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
         interventions=m.interventions, options=options, iucn=iucn_rows(res),
         sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets),
+        calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
         horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
         command=" ".join(m.command), packages=m.packages,
