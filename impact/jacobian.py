@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .model import RESPONSE_POWER, Controls, FoodWeb, WebParams, intakes
+from .model import RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes
 
 
 def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
@@ -28,6 +28,9 @@ def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np
             ah = p.a[idx, l] * p.h[idx, l]
             denom[link.consumer] = denom[link.consumer] + ah * powered[l]
             dden[link.consumer][:, link.resource] += ah * dpow[l]
+    for j in web.interference:
+        denom[j] = denom[j] + p.gamma[idx, j] * y[:, j]
+        dden[j][:, j] += p.gamma[idx, j]
     out = []
     for l, link in enumerate(web.links):
         a = p.a[idx, l]
@@ -62,18 +65,20 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
     rp = np.maximum(r, 0.0)
     G = c.phi[idx] * (1.0 - c.fertility[idx])
     J = np.zeros((m, n, n))
+    births, Jb = _births_and_gradient(web, p, y, idx)
 
-    # births r⁺ N (1 + Σ β P/(H+P)), scaled by G
-    boost = np.ones_like(N)
-    for u, (ben, par) in enumerate(web.mutualism):
-        P = N[:, par]
-        H = p.H[idx, u]
-        boost[:, ben] += p.beta[idx, u] * P / (H + P)
-        J[:, ben, par] += G[:, ben] * rp[:, ben] * N[:, ben] * p.beta[idx, u] * H / ((H + P) ** 2)
-    for i in range(S):
-        J[:, i, i] += G[:, i] * rp[:, i] * boost[:, i]
+    # births B scaled by G and by the fertile share σ = N/(N + s) under sterile releases
+    sigma = np.ones_like(N)
+    for i in web.sterile:
+        sigma[:, i] = fertile_share(N[:, i], c.sterile[idx, i])
+    J[:, :S, :] += (G * sigma)[:, :, None] * Jb
+    for i in web.sterile:
+        s = c.sterile[idx, i]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dsigma = np.where(s > 0, s / ((N[:, i] + s) ** 2), 0.0)
+        J[:, i, i] += G[:, i] * births[:, i] * dsigma
 
-    # feeding: consumer gains e·I·N_c, resource loses I·N_c
+    # feeding: the resource loses I·N_c (the consumer's gain is in the births)
     if web.links:
         I = intakes(web, p, y, idx)
         dI = _intake_gradients(web, p, y, idx)
@@ -81,7 +86,6 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
             j = link.consumer
             d_eaten = dI[l] * N[:, j][:, None]
             d_eaten[:, j] += I[l]
-            J[:, j, :] += (G[:, j] * p.e[idx, l])[:, None] * d_eaten
             J[:, link.resource, :] -= d_eaten
 
     # logistic crowding r N (N + Σ α N_j) / (κ K)
@@ -95,6 +99,9 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
             J[:, i, i] -= coef[:, i] * (crowd[:, i] + N[:, i])
         for k, (i, jj) in enumerate(web.competition):
             J[:, i, jj] -= coef[:, i] * N[:, i] * p.alpha[idx, k]
+    if web.crowding:
+        for i in range(S):
+            J[:, i, i] -= 2.0 * p.quad[idx, i] * N[:, i]
 
     q = c.harvest[idx]
     lin = np.minimum(r, 0.0) - mort - q
@@ -105,6 +112,47 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
         J[:, S, :S] += (mort + c.carcass[idx] * q) * web.carrion_yield
         J[:, S, S] -= p.decay[idx]
     return J
+
+
+def _births_and_gradient(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> tuple[np.ndarray, np.ndarray]:
+    """Births before controls, B_i = r⁺ N_i (1 + Σ β P/(H+P)) P_o/(H_o+P_o) + Σ e I N_i, and ∂B/∂y.
+
+    Returns
+    -------
+    B : ndarray (m, S)
+    dB : ndarray (m, S, n_state)
+    """
+    m, n = y.shape
+    S = web.n_species
+    N = y[:, :S]
+    rp = np.maximum(p.r[idx], 0.0)
+    boost = np.ones_like(N)
+    dboost = np.zeros((m, S, n))
+    for u, (ben, par) in enumerate(web.mutualism):
+        P, H = N[:, par], p.H[idx, u]
+        boost[:, ben] += p.beta[idx, u] * P / (H + P)
+        dboost[:, ben, par] += p.beta[idx, u] * H / ((H + P) ** 2)
+    ob = np.ones_like(N)
+    dob = np.zeros((m, S, n))
+    for ben, par in web.obligate:
+        P, H = N[:, par], p.obH[idx, ben]
+        ob[:, ben] = P / (H + P)
+        dob[:, ben, par] = H / ((H + P) ** 2)
+    B = rp * N * boost * ob
+    dB = (rp * N)[:, :, None] * (dboost * ob[:, :, None] + boost[:, :, None] * dob)
+    for i in range(S):
+        dB[:, i, i] += rp[:, i] * boost[:, i] * ob[:, i]
+    if web.links:
+        I = intakes(web, p, y, idx)
+        dI = _intake_gradients(web, p, y, idx)
+        for l, link in enumerate(web.links):
+            j = link.consumer
+            e = p.e[idx, l]
+            B[:, j] += e * I[l] * N[:, j]
+            d_eaten = dI[l] * N[:, j][:, None]
+            d_eaten[:, j] += I[l]
+            dB[:, j, :] += e[:, None] * d_eaten
+    return B, dB
 
 
 def tangent(J: np.ndarray, v: np.ndarray) -> np.ndarray:
@@ -166,6 +214,13 @@ class WebTangent:
         else:
             births = rpos * N
             dbirths = rpos * dN_
+        if web.obligate:
+            obH = g["obH"]
+            for ben, par in web.obligate:
+                P, dP, Ho = N[:, par], dN_[:, par], obH[:, ben]
+                share = P / (Ho + P)
+                dbirths[:, ben] = dbirths[:, ben] * share + births[:, ben] * Ho / ((Ho + P) * (Ho + P)) * dP
+                births[:, ben] = births[:, ben] * share
         out = np.empty_like(y)
         jv = np.empty_like(y)
         if web.links:
@@ -189,6 +244,10 @@ class WebTangent:
                     j = link.consumer
                     denom[j] = term + denom[j] if j in denom else term + 1.0
                     dden[j] = dterm + dden[j] if j in dden else dterm
+            gam = g["gamma"]
+            for j in web.interference:
+                denom[j] = denom[j] + gam[:, j] * N[:, j]
+                dden[j] = dden[j] + gam[:, j] * dN_[:, j]
             for l, link in enumerate(web.links):
                 j = link.consumer
                 if link.response == "holling1":
@@ -206,6 +265,15 @@ class WebTangent:
                 dloss[:, link.resource] += deaten
         f = g["scale"] * births
         df = g["scale"] * dbirths
+        if web.sterile:
+            ster = g["sterile"]
+            for i in web.sterile:
+                s = ster[:, i]
+                share = fertile_share(N[:, i], s)
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    dshare = np.where(s > 0, s / ((N[:, i] + s) * (N[:, i] + s)), 0.0)
+                df[:, i] = df[:, i] * share + f[:, i] * dshare * dN_[:, i]
+                f[:, i] = f[:, i] * share
         if web.logistic.any():
             crowd = N.copy()
             dcrowd = dN_.copy()
@@ -216,6 +284,9 @@ class WebTangent:
             dens = g["dens"]
             f -= dens * N * crowd
             df -= dens * (dN_ * crowd + N * dcrowd)
+        if web.crowding:
+            f -= g["quad"] * N * N
+            df -= 2.0 * g["quad"] * N * dN_
         f += g["lin"] * N
         df += g["lin"] * dN_
         if web.links:

@@ -3,18 +3,31 @@
 State layout: one column per declared species (in case order), then one column for the
 carrion pool when the case declares one.  For species i (abundance N_i)::
 
-    dN_i/dt =  φ_i (1 − f_i) [ r⁺_i N_i (1 + Σ_u β_u P_u/(H_u + P_u)) + Σ_{l: i eats} e_l I_l N_i ]
+    dN_i/dt =  φ_i (1 − f_i) σ_i [ r⁺_i N_i (1 + Σ β_u P_u/(H_u + P_u)) · P_o/(H_o + P_o)
+                                  + Σ_{l: i eats} e_l I_l N_i ]
              − [logistic]  r_i N_i (N_i + Σ_j α_ij N_j) / (κ_i K_i)
-             + r⁻_i N_i − m_i N_i − q_i N_i − Σ_{l: i eaten} I_l N_consumer(l)
+             − μ_i N_i² + r⁻_i N_i − m_i N_i − q_i N_i − Σ_{l: i eaten} I_l N_consumer(l)
 
     dC/dt   =  Σ_i y_i (m_i N_i + c_i q_i N_i) − δ C − Σ_{l: carrion eaten} I_l N_consumer(l)
 
 with per-capita intake I_l of consumer j on resource R by Holling type I (a R),
-II (a R / D_j) or III (a R² / D_j), where D_j = 1 + Σ_{j's type II/III links} a h R^q
-shares handling time across all of j's resources (so omnivory uses the same machinery).
-φ is the environmental growth multiplier, f the fertility suppression, κ the habitat factor,
-q the harvest rate and c marks harvests that leave carcasses.  r⁺ = max(r, 0) are births,
-r⁻ = min(r, 0) an exponential decline that fertility control does not touch.
+II (a R / D_j) or III (a R² / D_j), or Beddington–DeAngelis (a R / D_j), where
+D_j = 1 + Σ_{j's saturating links} a h R^q + γ_j N_j shares handling time across all of j's
+resources (so omnivory uses the same machinery) and γ_j is j's interference with its own kind
+(0 unless j feeds with a Beddington–DeAngelis response; Beddington 1975, DeAngelis et al. 1975).
+
+φ is the environmental growth multiplier times the breeding-season multiplier (1 inside the
+season's breeding parts, the declared ``outside`` level elsewhere), f the fertility
+suppression, σ_i = N_i/(N_i + s_i) the share of fertile matings when s_i sterile individuals
+(density × competitiveness) are present (Knipling 1955; σ = 1 without releases), κ the
+carrying-capacity factor, q the harvest rate and c marks harvests that leave carcasses.
+r⁺ = max(r, 0) are births, r⁻ = min(r, 0) an exponential decline that fertility control does
+not touch; μ_i is crowding (density-dependent) mortality.
+
+Mutualism: a facultative partner u multiplies births by at most 1 + β_u, so a logistic
+beneficiary alone settles at K (1 + β P/(H + P)), not K. An obligate partner o (at most one per
+species) makes births P_o/(H_o + P_o) of their maximum and none without it (pollination-limited
+seed set; the saturating consumer–resource form of Holland & DeAngelis 2010).
 """
 
 from __future__ import annotations
@@ -25,7 +38,7 @@ import numpy as np
 
 from .case import CARRION, Case
 
-RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2}
+RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deangelis": 1}
 
 
 @dataclass(frozen=True)
@@ -48,6 +61,10 @@ class FoodWeb:
     mutualism: tuple[tuple[int, int], ...]  # (beneficiary, partner)
     carrion_yield: np.ndarray  # (S,)
     unit: tuple[str, ...]
+    obligate: tuple[tuple[int, int], ...] = ()  # (beneficiary, partner), one per beneficiary at most
+    interference: tuple[int, ...] = ()  # consumers whose handling denominator has γ N
+    crowding: bool = False  # some species has crowding mortality
+    sterile: tuple[int, ...] = ()  # species that sterile releases may act on
 
     @property
     def n_species(self) -> int:
@@ -77,6 +94,12 @@ class WebParams:
         half-saturation; ``decay`` : ndarray (M,) carrion decay rate.
     initial : ndarray (M, n_state)
     noise_sd : ndarray (M, S)
+    quad : ndarray (M, S)
+        Crowding mortality μ (zeros by default).
+    obH : ndarray (M, S)
+        Half-saturation of each species' obligate partner (ones where there is none).
+    gamma : ndarray (M, S)
+        Interference of each consumer (zeros by default).
     """
 
     r: np.ndarray
@@ -91,22 +114,35 @@ class WebParams:
     decay: np.ndarray
     initial: np.ndarray
     noise_sd: np.ndarray
+    quad: np.ndarray | None = None
+    obH: np.ndarray | None = None
+    gamma: np.ndarray | None = None
+
+    def __post_init__(self):
+        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0)):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(self.r.shape, fill))
 
 
 @dataclass(frozen=True)
 class Controls:
     """Piecewise-constant controls during one segment, each ``(M, S)``."""
 
-    phi: np.ndarray  # environmental growth multiplier
+    phi: np.ndarray  # environmental growth multiplier (times the breeding-season multiplier)
     fertility: np.ndarray  # fraction of births suppressed
     habitat: np.ndarray  # carrying-capacity factor
     harvest: np.ndarray  # proportional removal rate
     carcass: np.ndarray  # 1 where harvested animals are left as carrion
+    sterile: np.ndarray | None = None  # sterile individuals present (density × competitiveness)
+
+    def __post_init__(self):
+        if self.sterile is None:
+            object.__setattr__(self, "sterile", np.zeros(self.phi.shape))
 
     @staticmethod
     def neutral(members: int, n_species: int) -> "Controls":
         one, zero = np.ones((members, n_species)), np.zeros((members, n_species))
-        return Controls(one, zero, one.copy(), zero.copy(), zero.copy())
+        return Controls(one, zero, one.copy(), zero.copy(), zero.copy(), zero.copy())
 
 
 def build_web(case: Case) -> FoodWeb:
@@ -115,15 +151,21 @@ def build_web(case: Case) -> FoodWeb:
     col = {n: i for i, n in enumerate(names)}
     col[CARRION] = len(names)
     links = tuple(Link(col[f.consumer], col[f.resource], f.response, f.kind) for f in case.feeding)
+    interference = sorted({col[f.consumer] for f in case.feeding if f.response == "beddington-deangelis"})
+    sterile = sorted({col[iv.species] for iv in case.interventions if iv.kind == "sterile-release"})
     return FoodWeb(
         species=names,
         has_carrion=case.carrion is not None,
         logistic=np.array([s.growth == "logistic" for s in case.species]),
         links=links,
         competition=tuple((col[c.species], col[c.competitor]) for c in case.competition),
-        mutualism=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism),
+        mutualism=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism if not u.obligate),
         carrion_yield=np.array([s.carrion_yield for s in case.species], float),
         unit=tuple(s.unit for s in case.species),
+        obligate=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism if u.obligate),
+        interference=tuple(interference),
+        crowding=any(s.crowding_mortality != 0.0 for s in case.species),
+        sterile=tuple(sterile),
     )
 
 
@@ -158,6 +200,9 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         decay = resolve(case.carrion.decay_rate, values, members)
     else:
         decay = np.zeros(members)
+    facultative = [u for u in case.mutualism if not u.obligate]
+    obligate = {u.beneficiary: u.half_saturation for u in case.mutualism if u.obligate}
+    gamma = {f.consumer: f.interference for f in case.feeding if f.response == "beddington-deangelis"}
     return WebParams(
         r=col([s.growth_rate for s in sp]),
         K=K,
@@ -166,15 +211,19 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         h=col([f.handling_time for f in case.feeding]),
         e=col([f.efficiency for f in case.feeding]),
         alpha=col([c.coefficient for c in case.competition]),
-        beta=col([u.max_benefit for u in case.mutualism]),
-        H=col([u.half_saturation for u in case.mutualism]),
+        beta=col([u.max_benefit for u in facultative]),
+        H=col([u.half_saturation for u in facultative]),
         decay=decay,
         initial=initial,
         noise_sd=col([s.noise_sd for s in sp]),
+        quad=col([s.crowding_mortality for s in sp]),
+        obH=col([obligate.get(s.name, 1.0) for s in sp]),
+        gamma=col([gamma.get(s.name, 0.0) for s in sp]),
     )
 
 
-def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) -> list[np.ndarray]:
+def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
+                    gamma: np.ndarray | None = None) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link from gathered coefficients.
 
     Parameters
@@ -182,6 +231,8 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
     a, ah : ndarray (m, L)
         Attack rate and attack rate × handling time of each link, per member.
     y : ndarray (m, n_state)
+    gamma : ndarray (m, S), optional
+        Interference of each consumer (used for ``web.interference`` only).
 
     Returns
     -------
@@ -196,6 +247,8 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
         if link.response != "holling1":
             term = ah[:, l] * Rq
             denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
+    for j in web.interference:
+        denom[j] = denom[j] + gamma[:, j] * y[:, j]
     return [a[:, l] * powered[l] if link.response == "holling1" else a[:, l] * powered[l] / denom[link.consumer]
             for l, link in enumerate(web.links)]
 
@@ -203,7 +256,7 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
 def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link for members ``idx``: list of ndarray (m,)."""
     a = p.a[idx]
-    return feeding_intakes(web, a, a * p.h[idx], y)
+    return feeding_intakes(web, a, a * p.h[idx], y, p.gamma[idx])
 
 
 @dataclass(frozen=True)
@@ -222,6 +275,10 @@ class SegmentCoefficients:
         r / (κ K) for logistic species, else 0.
     inflow : ndarray (M, S)
         (m + c q) · carrion yield (zeros without a carrion pool).
+    quad, obH, gamma : ndarray (M, S)
+        Crowding mortality, obligate partner's half-saturation, interference.
+    sterile : ndarray (M, S)
+        Sterile individuals present (density × competitiveness; 0 without releases).
     a, ah, e : ndarray (M, L)
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
@@ -232,6 +289,10 @@ class SegmentCoefficients:
     lin: np.ndarray
     dens: np.ndarray
     inflow: np.ndarray
+    quad: np.ndarray
+    obH: np.ndarray
+    gamma: np.ndarray
+    sterile: np.ndarray
     a: np.ndarray
     ah: np.ndarray
     e: np.ndarray
@@ -253,7 +314,17 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        a=p.a, ah=p.a * p.h, e=p.e, alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, a=p.a, ah=p.a * p.h, e=p.e, alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+
+
+def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Share of fertile matings N/(N + s) with s sterile individuals present; exactly 1 where s = 0.
+
+    Knipling (1955): with random mating and equally competitive sterile males, a wild
+    female's mate is fertile with probability N/(N + s).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(s > 0, N / (N + s), 1.0)
 
 
 class WebRHS:
@@ -303,23 +374,34 @@ class WebRHS:
                 P = N[:, par]
                 boost[:, ben] += beta[:, u] * P / (H[:, u] + P)
             births *= boost
+        if web.obligate:
+            obH = g["obH"]
+            for ben, par in web.obligate:
+                P = N[:, par]
+                births[:, ben] *= P / (obH[:, ben] + P)
         out = np.empty_like(y)
         if web.links:
             loss = np.zeros_like(y)
             e = g["e"]
-            I = feeding_intakes(web, g["a"], g["ah"], y)
+            I = feeding_intakes(web, g["a"], g["ah"], y, g["gamma"])
             for l, link in enumerate(web.links):
                 j = link.consumer
                 eaten = I[l] * N[:, j]
                 births[:, j] += e[:, l] * eaten
                 loss[:, link.resource] += eaten
         dN = g["scale"] * births
+        if web.sterile:
+            ster = g["sterile"]
+            for i in web.sterile:
+                dN[:, i] *= fertile_share(N[:, i], ster[:, i])
         if web.logistic.any():
             crowd = N.copy()
             alpha = g["alpha"]
             for k, (i, j) in enumerate(web.competition):
                 crowd[:, i] += alpha[:, k] * N[:, j]
             dN -= g["dens"] * N * crowd
+        if web.crowding:
+            dN -= g["quad"] * N * N
         dN += g["lin"] * N
         if web.links:
             dN -= loss[:, :S]

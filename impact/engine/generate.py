@@ -40,13 +40,16 @@ def cache_dir() -> Path:
 
 def rhs_source(st: np.ndarray) -> str:
     """Straight-line ``web_rhs(st, cf, y, out, work)`` for the structure table ``st``."""
-    S, n, carrion, L, Cc, U, logistic = (int(x) for x in st[: kernel.HEADER])
+    S, n, carrion, L, Cc, U, logistic, crowding = (int(x) for x in st[: kernel.HEADER])
     H = kernel.HEADER
     cons, res = st[H:H + L], st[H + L:H + 2 * L]
     power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
     comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
-    mut = st[H + 4 * L + 2 * Cc:].reshape(-1, 2)
-    o_a = 5 * S
+    op = H + 4 * L + 2 * Cc + 2 * U
+    mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
+    partner, interfere, sterile = st[op:op + S], st[op + S:op + 2 * S], st[op + 2 * S:op + 3 * S]
+    o_quad, o_obH, o_gam, o_ster = 5 * S, 6 * S, 7 * S, 8 * S
+    o_a = 9 * S
     o_ah, o_e, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -58,6 +61,7 @@ def rhs_source(st: np.ndarray) -> str:
         body += [f"q{b} = 1.0" for b in bens]
         body += [f"q{b} += cf[{o_be + u}] * y{p} / (cf[{o_H + u}] + y{p})" for u, (b, p) in enumerate(mut)]
         body += [f"b{b} *= q{b}" for b in bens]
+    body += [f"b{i} *= y{p} / (cf[{o_obH + i}] + y{p})" for i, p in enumerate(partner) if p >= 0]
     if L:
         body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res})]
         seen = set()
@@ -68,6 +72,7 @@ def rhs_source(st: np.ndarray) -> str:
             j = int(cons[l])
             body.append(f"d{j} = cf[{o_ah + l}] * ({Rq}) + " + ("1.0" if j not in seen else f"d{j}"))
             seen.add(j)
+        body += [f"d{j} = d{j} + cf[{o_gam + j}] * y{j}" for j in range(S) if interfere[j]]
         for l in range(L):
             Rq = f"(y{res[l]} * y{res[l]})" if power[l] == 2 else f"y{res[l]}"
             j = int(cons[l])
@@ -75,10 +80,15 @@ def rhs_source(st: np.ndarray) -> str:
             body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten",
                      f"loss{res[l]} += eaten"]
     body += [f"o{i} = cf[{i}] * b{i}" for i in range(S)]
+    for i in range(S):
+        if sterile[i]:
+            body += [f"if cf[{o_ster + i}] > 0:", f"    o{i} *= y{i} / (y{i} + cf[{o_ster + i}])"]
     if logistic:
         body += [f"c{i} = y{i}" for i in range(S)]
         body += [f"c{i} += cf[{o_al + k}] * y{j}" for k, (i, j) in enumerate(comp)]
         body += [f"o{i} -= cf[{3 * S + i}] * y{i} * c{i}" for i in range(S)]
+    if crowding:
+        body += [f"o{i} -= cf[{o_quad + i}] * y{i} * y{i}" for i in range(S)]
     body += [f"o{i} += cf[{2 * S + i}] * y{i}" for i in range(S)]
     eaten_species = sorted({int(r) for r in res if r < S})
     body += [f"o{i} -= loss{i}" for i in eaten_species]

@@ -8,10 +8,12 @@ numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.
 so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
 Members are independent by construction: nothing is shared between rows.
 
-Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any``, then per feeding link
-consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc) and mutualism
-pairs (2·U). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow (S each),
-a, ah, e (L each), alpha (Cc), beta, H (U each), decay (1).
+Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any``, then per
+feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
+mutualism pairs (2·U), and per species its obligate partner (S; −1 for none), an interference
+flag (S) and a sterile-release flag (S). Coefficient rows (float64, one per member): scale, rpos,
+lin, dens, inflow, quad, obH, gamma, sterile (S each), a, ah, e (L each), alpha (Cc), beta, H
+(U each), decay (1).
 """
 
 from __future__ import annotations
@@ -24,7 +26,7 @@ import numpy as np
 from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
                       DormandPrince54, Failure)
 
-HEADER = 7  # entries of the structure table before the per-link columns
+HEADER = 8  # entries of the structure table before the per-link columns
 
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
@@ -68,8 +70,11 @@ def nmax(a, b):
 @kernel_inline
 def feeding(st, cf, y, births, loss, den, seen, o_a):
     """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
-    resources' losses (handling denominators shared by each consumer's type II/III links)."""
-    n, L = st[1], st[3]
+    resources' losses (handling denominators shared by each consumer's saturating links, plus
+    the consumer's interference γ·N for a Beddington–DeAngelis consumer)."""
+    S, n, L = st[0], st[1], st[3]
+    gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + S
+    o_gam = 7 * S
     o_ah, o_e = o_a + L, o_a + 2 * L
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     for i in range(n):
@@ -86,6 +91,9 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
                 seen[j] = 1.0
             else:
                 den[j] = term + den[j]
+    for i in range(S):
+        if st[gp + i] == 1:
+            den[i] = den[i] + cf[o_gam + i] * y[i]
     for l in range(L):
         R = y[st[lr + l]]
         Rq = R * R if st[lp + l] == 2 else R
@@ -108,13 +116,16 @@ def web_rhs(st, cf, y, out, work):
     """
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_a = 5 * S
+    o_quad, o_obH, o_ster = 5 * S, 6 * S, 8 * S
+    o_a = 9 * S
     o_al = o_a + 3 * L
     o_be = o_al + Cc
     o_H = o_be + U
     o_dec = o_H + U
     cp = HEADER + 4 * L
     up = cp + 2 * Cc
+    op = up + 2 * U  # obligate partners, then interference and sterile flags
+    sp = op + 2 * S
     births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
     for i in range(S):
         births[i] = cf[o_rpos + i] * y[i]
@@ -127,10 +138,20 @@ def web_rhs(st, cf, y, out, work):
             crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
         for i in range(S):
             births[i] *= crowd[i]
+    for i in range(S):
+        par = st[op + i]
+        if par >= 0:
+            P = y[par]
+            births[i] *= P / (cf[o_obH + i] + P)
     if L > 0:
         feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):
         out[i] = cf[i] * births[i]
+    for i in range(S):
+        if st[sp + i] == 1:
+            sd = cf[o_ster + i]
+            if sd > 0:
+                out[i] *= y[i] / (y[i] + sd)
     if logistic:
         for i in range(S):
             crowd[i] = y[i]
@@ -139,6 +160,9 @@ def web_rhs(st, cf, y, out, work):
             crowd[i] += cf[o_al + k] * y[j]
         for i in range(S):
             out[i] -= cf[o_dens + i] * y[i] * crowd[i]
+    if st[7]:
+        for i in range(S):
+            out[i] -= cf[o_quad + i] * y[i] * y[i]
     for i in range(S):
         out[i] += cf[o_lin + i] * y[i]
     if L > 0:

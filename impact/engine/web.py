@@ -27,13 +27,17 @@ DEFAULT_ENGINE = "compiled"
 def pack_structure(web: FoodWeb) -> np.ndarray:
     """The web's structure as the kernel's int64 table (layout in :mod:`impact.engine.kernel`)."""
     links = web.links
-    head = [web.n_species, web.n_state, int(web.has_carrion), len(links), len(web.competition),
-            len(web.mutualism), int(web.logistic.any())]
+    S = web.n_species
+    head = [S, web.n_state, int(web.has_carrion), len(links), len(web.competition),
+            len(web.mutualism), int(web.logistic.any()), int(web.crowding)]
     cols = ([l.consumer for l in links] + [l.resource for l in links]
             + [RESPONSE_POWER[l.response] for l in links]
             + [int(l.response == "holling1") for l in links])
     pairs = [x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
-    return np.array(head + cols + pairs, dtype=np.int64)
+    partner = dict(web.obligate)
+    per_species = ([partner.get(i, -1) for i in range(S)] + [int(i in web.interference) for i in range(S)]
+                   + [int(i in web.sterile) for i in range(S)])
+    return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
 def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray) -> np.ndarray:
