@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import subprocess
+from dataclasses import replace
 import sys
 from pathlib import Path
 
@@ -74,9 +75,11 @@ def test_spin_up_and_option_runs_match_the_numpy_reference(name, tmp_path):
 RESPONSES = ("holling1", "holling2", "holling3")
 
 
-def random_web(seed: int, members: int):
+def random_web(seed: int, members: int, new_terms: bool = False):
     """An invented web: 3-5 species, random feeding links (every response), carrion, competition
-    and mutualism, with random parameters and controls; returns ``(web, params, controls)``."""
+    and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
+    ``new_terms`` adds an obligate partner, predator interference, crowding mortality and sterile
+    releases."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -88,7 +91,10 @@ def random_web(seed: int, members: int):
     web = FoodWeb(species=tuple(f"s{i}" for i in range(S)), has_carrion=True, logistic=logistic,
                   links=tuple(Link(c, r, resp, "predation") for (c, r), resp in links.items()),
                   competition=((0, 1), (1, 0)), mutualism=((0, S - 1),),
-                  carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S)
+                  carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S,
+                  # the scavenger S−1 has a saturating link (on carrion), so it can carry interference
+                  obligate=((1, S - 1),) if new_terms else (), interference=(S - 1,) if new_terms else (),
+                  crowding=new_terms, sterile=(0, 2) if new_terms else ())
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -101,13 +107,17 @@ def random_web(seed: int, members: int):
                   initial=np.concatenate([u(10, 100, S), u(0, 5, 1)], axis=1), noise_sd=np.zeros((M, S)))
     c = Controls(phi=u(0.8, 1.2, S), fertility=u(0.0, 0.3, S), habitat=u(0.7, 1.3, S),
                  harvest=u(0.0, 0.1, S), carcass=(u(0, 1, S) > 0.5).astype(float))
+    if new_terms:
+        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S))
+        c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
 
 
-@pytest.mark.parametrize("seed, engines", [(0, COMPILED), (1, COMPILED), (2, ["table"]), (3, ["table"]),
-                                           (4, ["table"]), (5, ["table"])])
-def test_random_webs_match_the_numpy_reference(seed, engines):
-    web, p, c = random_web(seed, 16)
+@pytest.mark.parametrize("seed, engines, new_terms", [
+    (0, COMPILED, False), (1, COMPILED, False), (2, ["table"], False), (3, ["table"], False),
+    (4, ["table"], False), (5, ["table"], False), (6, COMPILED, True), (7, ["table"], True), (8, ["table"], True)])
+def test_random_webs_match_the_numpy_reference(seed, engines, new_terms):
+    web, p, c = random_web(seed, 16, new_terms)
     kw = dict(rtol=1e-8, atol=1e-10)
     ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="numpy", **kw)
     assert (~ref.failed).sum() >= 8  # most members run through, so the comparison means something

@@ -33,6 +33,30 @@ def _web_with(tmp_path, response):
     return case, build_web(case)
 
 
+def _web_with_new_terms(tmp_path, response):
+    """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
+    Beddington–DeAngelis fox and sterile releases on the hare."""
+    data = web_case()
+    data["interactions"][0]["response"] = response
+    data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
+    data["interactions"][1]["interference"] = 0.2
+    data["species"][2]["crowding_mortality"] = 0.01
+    data["species"] += [
+        {"name": "moth", "growth": "logistic", "growth_rate": 1.5, "carrying_capacity": 80.0, "initial": 30.0,
+         "quasi_extinction": 1.0, "crowding_mortality": 0.002},
+        {"name": "flower", "growth": "logistic", "growth_rate": 0.8, "carrying_capacity": 300.0, "mortality": 0.1,
+         "initial": 100.0, "quasi_extinction": 1.0}]
+    data["interactions"] += [
+        {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "moth", "half_saturation": 20.0},
+        {"kind": "mutualism", "beneficiary": "moth", "partner": "flower", "max_benefit": 0.5, "half_saturation": 50.0},
+        {"kind": "predation", "predator": "hare", "prey": "flower", "response": response, "attack_rate": 0.001,
+         "handling_time": 0.1, "efficiency": 0.2}]
+    data["interventions"].append({"name": "sterile hares", "kind": "sterile-release", "species": "hare",
+                                  "sterile_density": 30.0})
+    case = load_case(write_case(tmp_path, data))
+    return case, build_web(case)
+
+
 def _fd_jacobian(f, y, eps):
     m, n = y.shape
     J = np.empty((m, n, n))
@@ -45,9 +69,9 @@ def _fd_jacobian(f, y, eps):
     return J
 
 
-def _random_point(tmp_path, response, controlled, seed, M=5):
+def _random_point(tmp_path, response, controlled, seed, M=5, new_terms=False):
     """A web with one response type, M members' parameters, controls (neutral or random) and states."""
-    case, web = _web_with(tmp_path, response)
+    case, web = (_web_with_new_terms if new_terms else _web_with)(tmp_path, response)
     rng = np.random.default_rng(seed)
     values = parameter_values(case, rng.random((M, len(case.uncertain))))
     p = web_params(case, values, M)
@@ -56,15 +80,17 @@ def _random_point(tmp_path, response, controlled, seed, M=5):
     if controlled:
         c = Controls(phi=rng.uniform(0.7, 1.3, (M, S)), fertility=rng.uniform(0, 0.5, (M, S)),
                      habitat=rng.uniform(0.5, 1.5, (M, S)), harvest=rng.uniform(0, 0.3, (M, S)),
-                     carcass=(rng.random((M, S)) < 0.5).astype(float))
+                     carcass=(rng.random((M, S)) < 0.5).astype(float),
+                     sterile=rng.uniform(0, 40, (M, S)) * (rng.random((M, S)) < 0.7))
     y = rng.uniform(0.5, 2.0, (M, web.n_state)) * np.concatenate([p.initial[:, :S], np.full((M, 1), 20.0)], axis=1)
     return web, p, c, y, rng
 
 
 @pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
 @pytest.mark.parametrize("controlled", [False, True])
-def test_jacobian_matches_central_differences(tmp_path, response, controlled):
-    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1)
+@pytest.mark.parametrize("new_terms", [False, True])
+def test_jacobian_matches_central_differences(tmp_path, response, controlled, new_terms):
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1, new_terms=new_terms)
     M = y.shape[0]
     idx = np.arange(M)
     J = jacobian(web, p, c, y, idx)
@@ -97,9 +123,10 @@ def test_tangent_is_the_matrix_vector_product():
 
 @pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
 @pytest.mark.parametrize("controlled", [False, True])
-def test_directional_derivative_matches_central_differences(tmp_path, response, controlled):
+@pytest.mark.parametrize("new_terms", [False, True])
+def test_directional_derivative_matches_central_differences(tmp_path, response, controlled, new_terms):
     """J·v without forming J equals (f(y + εv) − f(y − εv))/(2ε) to O(ε²) (Press et al. 2007, Sec. 5.7)."""
-    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 4)
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 4, new_terms=new_terms)
     M = y.shape[0]
     v = rng.normal(size=y.shape) * y  # perturbations on the scale of each state
     idx = np.arange(M)
