@@ -170,7 +170,8 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                           for f in case.feeding]
                          + [dict(kind="competition", **{"from": c.competitor, "to": c.species}, response=None)
                             for c in case.competition]
-                         + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary}, response=None)
+                         + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary},
+                                 response="obligate" if u.obligate else None)
                             for u in case.mutualism]),
         "equations": equations(case), "assumptions": list(case.notes), "plausibility": PLAUSIBILITY_RULE,
         "packages": package_versions(), "platform": platform.platform(), "stages": ["assess"], "caution": CAUTION,

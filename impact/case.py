@@ -161,6 +161,7 @@ class Intervention:
     sterile_density: Quantity | None = None
     competitiveness: Quantity = 1.0
     windows: tuple[tuple[float, float], ...] = ()  # active spans when scheduled by season
+    season_parts: tuple[int, int] | None = None  # the parts of every season it acts in, as declared
 
     def event_times(self) -> tuple[float, ...]:
         """Times at which the state jumps (culls, eradication, releases)."""
@@ -701,6 +702,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             if parts is not None:
                 first, last = _season_span(r, f"{base}.season_parts", parts, seasons)
                 kw["windows"] = seasons.windows(first, last, start, end)
+                kw["season_parts"] = (first, last)
         elif kind == "pulse-cull":
             if ("times" in t.data) == ("season_part" in t.data):
                 r.fail(f"{base}.times", "give exactly one of times (a list of cull times) or season_part "

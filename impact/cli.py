@@ -81,6 +81,11 @@ def describe_case(case: Case) -> str:
             bits.append(f"K={s.carrying_capacity}")
         if s.mortality != 0.0:
             bits.append(f"m={s.mortality}")
+        if s.crowding_mortality != 0.0:
+            bits.append(f"crowding mortality={s.crowding_mortality}")
+        if s.breeding_season is not None:
+            bits.append(f"breeds in {case.seasons.part_name}s {s.breeding_season[0]}–{s.breeding_season[1]} "
+                        f"(births × {s.breeding_outside:g} outside)")
         bits.append(f"initial={s.initial}")
         if not s.present:
             bits.append("absent today")
@@ -94,11 +99,21 @@ def describe_case(case: Case) -> str:
         L.append(f"  {s.name} [{s.unit}]: " + ", ".join(str(b) for b in bits))
     L.append(f"interactions ({len(case.feeding) + len(case.competition) + len(case.mutualism)}):")
     for f in case.feeding:
-        L.append(f"  {f.kind}: {f.consumer} eats {f.resource} ({f.response}; a={f.attack_rate}, h={f.handling_time}, e={f.efficiency})")
+        gamma = f", interference={f.interference}" if f.response == "beddington-deangelis" else ""
+        L.append(f"  {f.kind}: {f.consumer} eats {f.resource} ({f.response}; a={f.attack_rate}, h={f.handling_time}, "
+                 f"e={f.efficiency}{gamma})")
     for c in case.competition:
         L.append(f"  competition: {c.competitor} crowds {c.species} (alpha={c.coefficient})")
     for u in case.mutualism:
-        L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, half-saturation={u.half_saturation})")
+        if u.obligate:
+            L.append(f"  obligate mutualism: {u.beneficiary} breeds only with {u.partner} "
+                     f"(births × P/(half-saturation + P), half-saturation={u.half_saturation})")
+        else:
+            L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, "
+                     f"half-saturation={u.half_saturation}; carrying capacity up to K·(1 + max))")
+    if case.seasons is not None:
+        sea = case.seasons
+        L.append(f"seasons: {sea.length:g} {case.time_unit} in {sea.parts} {sea.part_name}s; today starts a season")
     if case.carrion is not None:
         L.append(f"carrion pool: decay rate {case.carrion.decay_rate}")
     L.append(f"parameters ({len(case.parameters)}, {len(case.uncertain)} uncertain):")
@@ -112,7 +127,11 @@ def describe_case(case: Case) -> str:
         when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"
         if iv.kind == "pulse-cull":
             when = "at " + ", ".join(f"{t:g}" for t in iv.times)
-        L.append(f"  {iv.name}: {iv.kind} of {iv.species} {when} {case.time_unit}")
+        when += f" {case.time_unit}"
+        if iv.season_parts is not None:
+            when += f", only in {case.seasons.part_name}s {iv.season_parts[0]}–{iv.season_parts[1]} of each season"
+        what = f" ({iv.sterile_density} sterile × competitiveness {iv.competitiveness})" if iv.kind == "sterile-release" else ""
+        L.append(f"  {iv.name}: {iv.kind} of {iv.species}{what} {when}")
     L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))
     L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
              f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")

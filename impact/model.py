@@ -436,26 +436,33 @@ def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarr
 
 
 def equations(case: Case) -> list[str]:
-    """Human-readable equations of the built model, one line per state variable."""
-    web = build_web(case)
+    """Human-readable equations of the built model, one line per state variable, then the
+    definitions of the terms they use (units in README's case-file tables)."""
     lines = []
-    for i, s in enumerate(case.species):
+    sterile = {iv.species for iv in case.interventions if iv.kind == "sterile-release"}
+    for s in case.species:
         n = s.name
         terms = []
         birth = []
         if s.growth in ("logistic", "exponential"):
-            ben = [case.mutualism[u].partner for u, (b, _) in enumerate(web.mutualism) if b == i]
-            g = f"r_{n}·{n}" + (f"·(1 + Σ benefit from {', '.join(ben)})" if ben else "")
+            ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
+            need = [u.partner for u in case.mutualism if u.beneficiary == n and u.obligate]
+            g = f"r_{n}·{n}" + (f"·(1 + Σ β·P/(H+P) for P in {', '.join(ben)})" if ben else "")
+            g += "".join(f"·{x}/(H_o+{x})" for x in need)
             birth.append(g)
         for f in case.feeding:
             if f.consumer == n:
                 birth.append(f"e·I({f.resource})·{n}")
         if birth:
-            terms.append(f"φ·(1−f)·[{' + '.join(birth)}]")
+            scale = "φ·s(t)" if s.breeding_season is not None else "φ"
+            scale += "·(1−f)" + (f"·{n}/({n}+S)" if n in sterile else "")
+            terms.append(f"{scale}·[{' + '.join(birth)}]")
         if s.growth == "logistic":
             comps = [c.competitor for c in case.competition if c.species == n]
             crowd = n + "".join(f" + α·{x}" for x in comps)
             terms.append(f"− r_{n}·{n}·({crowd})/(κ·K_{n})")
+        if s.crowding_mortality != 0.0:
+            terms.append(f"− μ_{n}·{n}²")
         if s.mortality != 0.0:
             terms.append(f"− m_{n}·{n}")
         for f in case.feeding:
@@ -469,5 +476,12 @@ def equations(case: Case) -> list[str]:
         scav = [f.consumer for f in case.feeding if f.resource == CARRION]
         lines.append("dcarrion/dt = Σ yield·(m·N + harvest carcasses) − δ·carrion"
                      + "".join(f" − I_{x}(carrion)·{x}" for x in scav))
-    lines.append("I = a·R (type I), a·R/(1+Σ a·h·R) (type II), a·R²/(1+Σ a·h·R²) (type III), summed over the consumer's resources")
+    lines.append("I = a·R (type I), a·R/D (type II), a·R²/D (type III), a·R/D (Beddington–DeAngelis) with "
+                 "D = 1 + Σ a·h·R^q over the consumer's saturating links + γ·C for a Beddington–DeAngelis consumer C")
+    if any(u.obligate for u in case.mutualism):
+        lines.append("obligate mutualism: births × P/(H_o + P), none without the partner P (Holland & DeAngelis 2010)")
+    if any(s.breeding_season is not None for s in case.species):
+        lines.append(f"s(t) = 1 in the breeding {case.seasons.part_name}s of each season, the declared outside level elsewhere")
+    if sterile:
+        lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
     return lines

@@ -161,3 +161,93 @@ def test_parameter_groups_name_uncertain_parameters_only(tmp_path):
     with pytest.raises(CaseError) as err:
         load_case(write_case(tmp_path, d))
     assert err.value.field == "parameter_groups.both.parameters" and "not an uncertain parameter" in err.value.message
+
+
+# --- the terms of pollinator-dependent, seasonal webs --------------------------------------------
+
+SEASONS = {"length": 1.0, "parts": 52, "part_name": "week"}
+
+
+def _with(edit):
+    data = web_case()
+    edit(data)
+    return data
+
+
+BAD_TERMS = [
+    ("kind and its alias type together", lambda d: d["interactions"][0].update(kind="predation"),
+     "interactions[0].type", "`type` is its older alias"),
+    ("obligate mutualism with a max_benefit", lambda d: d["interactions"][4].update(dependence="obligate"),
+     "interactions[4].max_benefit", "no max_benefit"),
+    ("unknown dependence", lambda d: d["interactions"][4].update(dependence="partial"),
+     "interactions[4].dependence", "facultative, obligate"),
+    ("interference on a Holling II link", lambda d: d["interactions"][1].update(interference=0.1),
+     "interactions[1].interference", "beddington-deangelis"),
+    ("holling2 and beddington-deangelis for one consumer",
+     lambda d: (d["interactions"][1].update(response="beddington-deangelis", interference=0.1),
+                d["interactions"].append({"type": "predation", "predator": "fox", "prey": "beetle", "response": "holling2",
+                                          "attack_rate": 0.01, "handling_time": 0.1, "efficiency": 0.1})),
+     "interactions", "mixes holling2 and beddington-deangelis"),
+    ("negative crowding mortality", lambda d: d["species"][2].update(crowding_mortality=-0.1),
+     "species.fox.crowding_mortality", ">= 0"),
+    ("breeding season without [seasons]", lambda d: d["species"][0].update(breeding_season={"first": 1, "last": 3}),
+     "species.grass.breeding_season", "needs a [seasons] table"),
+    ("breeding season past the last part",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"first": 50, "last": 53})),
+     "species.grass.breeding_season", "from 1 to 52"),
+    ("season parts of an intervention out of range",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][2].update(season_parts=[0, 4])),
+     "interventions.no-op.season_parts", "two whole numbers from 1 to 52"),
+    ("first arrival of a species present today",
+     lambda d: d["interventions"][2].update(kind="first-arrival", time=1.0, amount=3.0, rate=None),
+     "interventions.no-op.species", "use kind = \"release\""),
+    ("sterile release without a density",
+     lambda d: d["interventions"].append({"name": "sit", "kind": "sterile-release", "species": "hare"}),
+     "interventions.sit.sterile_density", "required"),
+    ("pulse cull with both times and a season part",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][0].update(season_part=10)),
+     "interventions.fox cull.times", "exactly one of times"),
+]
+
+
+def _drop_none(data):
+    for iv in data["interventions"]:
+        for k in [k for k, v in iv.items() if v is None]:
+            del iv[k]
+    return data
+
+
+@pytest.mark.parametrize("desc,edit,field,words", BAD_TERMS, ids=[b[0] for b in BAD_TERMS])
+def test_bad_new_terms_name_the_field(tmp_path, desc, edit, field, words):
+    f = write_case(tmp_path, _drop_none(_with(edit)))
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert err.value.field == field
+    assert words in err.value.message
+
+
+def test_new_terms_and_aliases_are_read(tmp_path):
+    def edit(d):
+        d["seasons"] = SEASONS
+        for it in d["interactions"]:
+            it["kind"] = it.pop("type")  # the selector key of interventions, now also of interactions
+        d["interactions"][1].update(response="beddington-deangelis", interference="fox_a")
+        d["interactions"][4].update(dependence="obligate")
+        del d["interactions"][4]["max_benefit"]
+        d["species"][0].update(breeding_season={"first": 48, "last": 4, "outside": 0.1}, crowding_mortality=0.001)
+        d["interventions"] += [
+            {"name": "more grass", "kind": "habitat-change", "species": "grass", "factor": 1.2, "season_parts": [10, 14]},
+            {"name": "stock hares", "kind": "introduction", "species": "hare", "time": 2.0, "amount": 5.0},
+            {"name": "sit", "kind": "sterile-release", "species": "hare", "sterile_density": 40.0, "competitiveness": 0.5},
+            {"name": "spring cull", "kind": "pulse-cull", "species": "fox", "season_part": 14, "start": 2.0, "end": 6.0,
+             "fraction": 0.5}]
+    case = load_case(write_case(tmp_path, _with(edit)))
+    assert case.feeding[1].response == "beddington-deangelis" and case.feeding[1].interference == "fox_a"
+    assert case.mutualism[0].obligate and case.mutualism[0].max_benefit == 0.0
+    assert case.species[0].breeding_season == (48, 4) and case.species[0].breeding_outside == 0.1
+    assert case.intervention("more grass").kind == "carrying-capacity-change"  # documented alias
+    assert case.intervention("more grass").windows[0] == (9 / 52, 14 / 52)
+    assert case.intervention("stock hares").kind == "release"  # documented alias
+    assert case.intervention("spring cull").times == tuple(k + 13 / 52 for k in (2, 3, 4, 5))
+    # a wrapping breeding season (weeks 48 to 4) is one span across the turn of the season
+    assert case.seasons.windows(48, 4, 0.0, 2.0) == ((0.0, 4 / 52), (47 / 52, 1 + 4 / 52), (1 + 47 / 52, 2.0))
