@@ -21,7 +21,8 @@ Quantity = float | str  # a number, or the name of a parameter in [parameters]
 
 GROWTH_FORMS = ("logistic", "exponential", "none")
 RESPONSES = ("holling1", "holling2", "holling3", "beddington-deangelis")
-INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism")
+INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism", "alternative-food")
+OTHER_FOOD = "'s other food"  # a consumer's constant alternative food is named CONSUMER + this
 # how a beneficiary depends on its mutualist partner: a bonus on births, or no births without it
 DEPENDENCES = ("facultative", "obligate")
 # what the assessment wants for a species: options are meant to remove or reduce a target,
@@ -92,7 +93,8 @@ class Species:
 
 @dataclass(frozen=True)
 class Feeding:
-    """Predation or scavenging: ``consumer`` eats ``resource`` (a species or the carrion pool)."""
+    """Predation, scavenging or alternative food: ``consumer`` eats ``resource`` (a species, the
+    carrion pool, or a constant food of density ``food_density`` named CONSUMER + OTHER_FOOD)."""
 
     kind: str
     consumer: str
@@ -102,6 +104,7 @@ class Feeding:
     handling_time: Quantity
     efficiency: Quantity
     interference: Quantity = 0.0
+    food_density: Quantity | None = None  # alternative food only: its constant density
 
 
 @dataclass(frozen=True)
@@ -606,13 +609,20 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             r.fail(f"interactions[{i}].type", "give the interaction's kind once: `kind` (`type` is its older alias)")
         key = "type" if "type" in t.data else "kind"
         kind = r.choice(f"interactions[{i}].{key}", t.get(key, kind="str"), INTERACTION_KINDS)
-        if kind in ("predation", "scavenging"):
-            who = "predator" if kind == "predation" else "scavenger"
+        if kind in ("predation", "scavenging", "alternative-food"):
+            who = {"predation": "predator", "scavenging": "scavenger", "alternative-food": "consumer"}[kind]
             consumer = species_ref(f"interactions[{i}].{who}", t.get(who, kind="str"))
+            density = None
             if kind == "predation":
                 resource = species_ref(f"interactions[{i}].prey", t.get("prey", kind="str"))
                 if resource == consumer:
                     r.fail(f"interactions[{i}].prey", "a predator cannot be its own prey in this model")
+            elif kind == "alternative-food":
+                resource = consumer + OTHER_FOOD
+                if any(f.resource == resource for f in feeding):
+                    r.fail(f"interactions[{i}].consumer", f"{consumer!r} already has an alternative food; "
+                                                          "declare one per consumer (its density can be a parameter)")
+                density = t.quantity("density", low=0)
             else:
                 resource = CARRION
             response = r.choice(f"interactions[{i}].response", t.get("response", "holling2", "str"), RESPONSES)
@@ -624,7 +634,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             if response != "beddington-deangelis" and "interference" in t.data:
                 r.fail(f"interactions[{i}].interference", "applies only to response = \"beddington-deangelis\"")
             interference = t.quantity("interference", 0.0, low=0)
-            feeding.append(Feeding(kind, consumer, resource, response, attack, handling, eff, interference))
+            feeding.append(Feeding(kind, consumer, resource, response, attack, handling, eff, interference, density))
         elif kind == "competition":
             sp = species_ref(f"interactions[{i}].species", t.get("species", kind="str"))
             comp = species_ref(f"interactions[{i}].competitor", t.get("competitor", kind="str"))

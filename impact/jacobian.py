@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .model import RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes
+from .model import RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes, resource_density
 
 
 def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
@@ -20,14 +20,16 @@ def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np
     dden = [np.zeros((m, n)) for _ in range(S)]
     powered, dpow = [], []
     for l, link in enumerate(web.links):
-        R = y[:, link.resource]
+        R = resource_density(link, l, y, p.food[idx])
         q = RESPONSE_POWER[link.response]
         powered.append(R * R if q == 2 else R)
-        dpow.append(2.0 * R if q == 2 else np.ones(m))
+        # a constant alternative food has no state column: its density does not vary
+        dpow.append((2.0 * R if q == 2 else np.ones(m)) if link.resource >= 0 else np.zeros(m))
         if link.response != "holling1":
             ah = p.a[idx, l] * p.h[idx, l]
             denom[link.consumer] = denom[link.consumer] + ah * powered[l]
-            dden[link.consumer][:, link.resource] += ah * dpow[l]
+            if link.resource >= 0:
+                dden[link.consumer][:, link.resource] += ah * dpow[l]
     for j in web.interference:
         denom[j] = denom[j] + p.gamma[idx, j] * y[:, j]
         dden[j][:, j] += p.gamma[idx, j]
@@ -36,11 +38,13 @@ def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np
         a = p.a[idx, l]
         g = np.zeros((m, n))
         if link.response == "holling1":
-            g[:, link.resource] = a
+            if link.resource >= 0:
+                g[:, link.resource] = a
         else:
             D = denom[link.consumer]
             g -= (a * powered[l] / (D * D))[:, None] * dden[link.consumer]
-            g[:, link.resource] += a * dpow[l] / D
+            if link.resource >= 0:
+                g[:, link.resource] += a * dpow[l] / D
         out.append(g)
     return out
 
@@ -84,6 +88,8 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
         dI = _intake_gradients(web, p, y, idx)
         for l, link in enumerate(web.links):
             j = link.consumer
+            if link.resource < 0:
+                continue  # an alternative food is not depleted
             d_eaten = dI[l] * N[:, j][:, None]
             d_eaten[:, j] += I[l]
             J[:, link.resource, :] -= d_eaten
@@ -231,8 +237,10 @@ class WebTangent:
             denom: dict[int, np.ndarray] = {}
             dden: dict[int, np.ndarray] = {}
             powered, dpowered = [], []
+            food = g["food"]
             for l, link in enumerate(web.links):
-                R, dR = y[:, link.resource], v[:, link.resource]
+                R = resource_density(link, l, y, food)
+                dR = v[:, link.resource] if link.resource >= 0 else np.zeros_like(R)
                 if RESPONSE_POWER[link.response] == 2:
                     Rq, dRq = R * R, 2.0 * R * dR
                 else:
@@ -261,8 +269,9 @@ class WebTangent:
                 deaten = dI * N[:, j] + I * dN_[:, j]
                 births[:, j] += e[:, l] * eaten
                 dbirths[:, j] += e[:, l] * deaten
-                loss[:, link.resource] += eaten
-                dloss[:, link.resource] += deaten
+                if link.resource >= 0:
+                    loss[:, link.resource] += eaten
+                    dloss[:, link.resource] += deaten
         f = g["scale"] * births
         df = g["scale"] * dbirths
         if web.sterile:

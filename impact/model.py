@@ -44,7 +44,7 @@ RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deang
 @dataclass(frozen=True)
 class Link:
     consumer: int
-    resource: int  # state column (the carrion pool is column S)
+    resource: int  # state column (the carrion pool is column S); −1 for a constant alternative food
     response: str
     kind: str
 
@@ -100,6 +100,8 @@ class WebParams:
         Half-saturation of each species' obligate partner (ones where there is none).
     gamma : ndarray (M, S)
         Interference of each consumer (zeros by default).
+    food : ndarray (M, L)
+        Density of a link's constant alternative food (zeros for links to a species or carrion).
     """
 
     r: np.ndarray
@@ -117,11 +119,14 @@ class WebParams:
     quad: np.ndarray | None = None
     obH: np.ndarray | None = None
     gamma: np.ndarray | None = None
+    food: np.ndarray | None = None
 
     def __post_init__(self):
         for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
+        if self.food is None:
+            object.__setattr__(self, "food", np.zeros(self.a.shape))
 
 
 @dataclass(frozen=True)
@@ -150,7 +155,7 @@ def build_web(case: Case) -> FoodWeb:
     names = case.species_names
     col = {n: i for i, n in enumerate(names)}
     col[CARRION] = len(names)
-    links = tuple(Link(col[f.consumer], col[f.resource], f.response, f.kind) for f in case.feeding)
+    links = tuple(Link(col[f.consumer], col.get(f.resource, -1), f.response, f.kind) for f in case.feeding)
     interference = sorted({col[f.consumer] for f in case.feeding if f.response == "beddington-deangelis"})
     sterile = sorted({col[iv.species] for iv in case.interventions if iv.kind == "sterile-release"})
     return FoodWeb(
@@ -219,11 +224,17 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         quad=col([s.crowding_mortality for s in sp]),
         obH=col([obligate.get(s.name, 1.0) for s in sp]),
         gamma=col([gamma.get(s.name, 0.0) for s in sp]),
+        food=col([f.food_density or 0.0 for f in case.feeding]),
     )
 
 
+def resource_density(link: Link, l: int, y: np.ndarray, food: np.ndarray) -> np.ndarray:
+    """Density of a link's resource: its state column, or the constant alternative food: (m,)."""
+    return y[:, link.resource] if link.resource >= 0 else food[:, l]
+
+
 def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
-                    gamma: np.ndarray | None = None) -> list[np.ndarray]:
+                    gamma: np.ndarray | None = None, food: np.ndarray | None = None) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link from gathered coefficients.
 
     Parameters
@@ -233,6 +244,8 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
     y : ndarray (m, n_state)
     gamma : ndarray (m, S), optional
         Interference of each consumer (used for ``web.interference`` only).
+    food : ndarray (m, L), optional
+        Alternative food densities (used for links with ``resource == -1`` only).
 
     Returns
     -------
@@ -241,7 +254,7 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
     denom: dict[int, np.ndarray] = {}
     powered = []
     for l, link in enumerate(web.links):
-        R = y[:, link.resource]
+        R = resource_density(link, l, y, food)
         Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
         powered.append(Rq)
         if link.response != "holling1":
@@ -256,7 +269,7 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
 def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link for members ``idx``: list of ndarray (m,)."""
     a = p.a[idx]
-    return feeding_intakes(web, a, a * p.h[idx], y, p.gamma[idx])
+    return feeding_intakes(web, a, a * p.h[idx], y, p.gamma[idx], p.food[idx])
 
 
 @dataclass(frozen=True)
@@ -277,6 +290,8 @@ class SegmentCoefficients:
         (m + c q) · carrion yield (zeros without a carrion pool).
     quad, obH, gamma : ndarray (M, S)
         Crowding mortality, obligate partner's half-saturation, interference.
+    food : ndarray (M, L)
+        Alternative food density per link (0 for links to a state variable).
     sterile : ndarray (M, S)
         Sterile individuals present (density × competitiveness; 0 without releases).
     a, ah, e : ndarray (M, L)
@@ -296,6 +311,7 @@ class SegmentCoefficients:
     a: np.ndarray
     ah: np.ndarray
     e: np.ndarray
+    food: np.ndarray
     alpha: np.ndarray
     beta: np.ndarray
     H: np.ndarray
@@ -314,7 +330,8 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, a=p.a, ah=p.a * p.h, e=p.e, alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
+        alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
 
 
 def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
@@ -383,12 +400,13 @@ class WebRHS:
         if web.links:
             loss = np.zeros_like(y)
             e = g["e"]
-            I = feeding_intakes(web, g["a"], g["ah"], y, g["gamma"])
+            I = feeding_intakes(web, g["a"], g["ah"], y, g["gamma"], g["food"])
             for l, link in enumerate(web.links):
                 j = link.consumer
                 eaten = I[l] * N[:, j]
                 births[:, j] += e[:, l] * eaten
-                loss[:, link.resource] += eaten
+                if link.resource >= 0:  # an alternative food is not depleted
+                    loss[:, link.resource] += eaten
         dN = g["scale"] * births
         if web.sterile:
             ster = g["sterile"]

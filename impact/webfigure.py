@@ -13,10 +13,11 @@ import io
 import networkx as nx
 import numpy as np
 
-FEEDING = ("predation", "scavenging")
+FEEDING = ("predation", "scavenging", "alternative-food")
 KIND_STYLE = {
     "predation": ("#c0392b", "-"),
     "scavenging": ("#8e5b2e", "-"),
+    "alternative-food": ("#8e5b2e", "--"),
     "competition": ("#555555", "--"),
     "mutualism": ("#1e8449", "-"),
 }

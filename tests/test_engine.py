@@ -88,6 +88,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
         for resource in rng.choice(consumer, size=int(rng.integers(1, 3)), replace=False):
             links[(consumer, int(resource))] = RESPONSES[int(rng.integers(3))]
     links[(S - 1, S)] = RESPONSES[int(rng.integers(1, 3))]  # a scavenger on the carrion pool
+    if new_terms:
+        links[(S - 1, -1)] = RESPONSES[int(rng.integers(3))]  # ... with a constant alternative food
     web = FoodWeb(species=tuple(f"s{i}" for i in range(S)), has_carrion=True, logistic=logistic,
                   links=tuple(Link(c, r, resp, "predation") for (c, r), resp in links.items()),
                   competition=((0, 1), (1, 0)), mutualism=((0, S - 1),),
@@ -108,7 +110,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
     c = Controls(phi=u(0.8, 1.2, S), fertility=u(0.0, 0.3, S), habitat=u(0.7, 1.3, S),
                  harvest=u(0.0, 0.1, S), carcass=(u(0, 1, S) > 0.5).astype(float))
     if new_terms:
-        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S))
+        food = np.array([link.resource < 0 for link in web.links]) * u(1.0, 20.0, L)
+        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S), food=food)
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
 

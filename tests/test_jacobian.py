@@ -50,7 +50,9 @@ def _web_with_new_terms(tmp_path, response):
         {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "moth", "half_saturation": 20.0},
         {"kind": "mutualism", "beneficiary": "moth", "partner": "flower", "max_benefit": 0.5, "half_saturation": 50.0},
         {"kind": "predation", "predator": "hare", "prey": "flower", "response": response, "attack_rate": 0.001,
-         "handling_time": 0.1, "efficiency": 0.2}]
+         "handling_time": 0.1, "efficiency": 0.2},
+        {"kind": "alternative-food", "consumer": "fox", "density": 50.0, "response": "beddington-deangelis",
+         "interference": 0.2, "attack_rate": 0.01, "handling_time": 0.2, "efficiency": 0.05}]
     data["interventions"].append({"name": "sterile hares", "kind": "sterile-release", "species": "hare",
                                   "sterile_density": 30.0})
     case = load_case(write_case(tmp_path, data))

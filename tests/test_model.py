@@ -386,3 +386,23 @@ def test_harvest_scheduled_by_season_acts_only_in_its_weeks(tmp_path):
     t = run.times
     inside = sum(np.clip(t - (k + 9 / 52), 0, 5 / 52) for k in (1, 2, 3))
     assert rel_err_tol_units(run.states[0, :, 0], 10.0 * np.exp(r * t - q * inside), RTOL) < 100
+
+
+def test_alternative_food_is_a_constant_resource_in_the_shared_denominator(tmp_path):
+    # multi-resource Holling II (Murdoch 1973 form) with one resource held constant at F:
+    # I_R = a1 R / (1 + a1 h1 R + a2 h2 F), I_F = a2 F / (same); the food is never depleted.
+    a1, h1, e1, a2, h2, e2, F, m = 0.1, 0.2, 0.1, 0.05, 0.5, 0.3, 40.0, 0.3
+    sp = [{"name": "prey", "growth": "exponential", "growth_rate": 0.0, "initial": 30.0, "quasi_extinction": 0.0},
+          {"name": "cat", "growth": "none", "mortality": m, "initial": 2.0, "quasi_extinction": 0.0}]
+    inter = [{"kind": "predation", "predator": "cat", "prey": "prey", "response": "holling2", "attack_rate": a1,
+              "handling_time": h1, "efficiency": e1},
+             {"kind": "alternative-food", "consumer": "cat", "density": F, "response": "holling2", "attack_rate": a2,
+              "handling_time": h2, "efficiency": e2}]
+    D = 1 + a1 * h1 * 30.0 + a2 * h2 * F
+    I1, I2 = a1 * 30.0 / D, a2 * F / D
+    np.testing.assert_allclose(_rhs_of(tmp_path, one_species_case(sp, extra={"interactions": inter}))[0],
+                               [-I1 * 2.0, (e1 * I1 + e2 * I2) * 2.0 - m * 2.0], rtol=1e-14)
+    # on the alternative food alone the consumer grows exponentially: P0 exp((e a F/(1 + a h F) − m) t)
+    case, run = simulate(tmp_path, one_species_case(sp[1:], extra={"interactions": inter[1:]}), option=None)
+    rate = e2 * a2 * F / (1 + a2 * h2 * F) - m
+    assert rel_err_tol_units(run.states[0, :, 0], 2.0 * np.exp(rate * run.times), RTOL) < 100

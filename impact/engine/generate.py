@@ -50,7 +50,7 @@ def rhs_source(st: np.ndarray) -> str:
     partner, interfere, sterile = st[op:op + S], st[op + S:op + 2 * S], st[op + 2 * S:op + 3 * S]
     o_quad, o_obH, o_gam, o_ster = 5 * S, 6 * S, 7 * S, 8 * S
     o_a = 9 * S
-    o_ah, o_e, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L
+    o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
     o_dec = o_H + U
@@ -62,23 +62,26 @@ def rhs_source(st: np.ndarray) -> str:
         body += [f"q{b} += cf[{o_be + u}] * y{p} / (cf[{o_H + u}] + y{p})" for u, (b, p) in enumerate(mut)]
         body += [f"b{b} *= q{b}" for b in bens]
     body += [f"b{i} *= y{p} / (cf[{o_obH + i}] + y{p})" for i, p in enumerate(partner) if p >= 0]
+    # a link's resource: its state variable, or (resource −1) the constant alternative food
+    dens = [f"y{res[l]}" if res[l] >= 0 else f"cf[{o_food + l}]" for l in range(L)]
     if L:
-        body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res})]
+        body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res if r >= 0})]
         seen = set()
         for l in range(L):
             if type1[l]:
                 continue
-            Rq = f"y{res[l]} * y{res[l]}" if power[l] == 2 else f"y{res[l]}"
+            Rq = f"{dens[l]} * {dens[l]}" if power[l] == 2 else dens[l]
             j = int(cons[l])
             body.append(f"d{j} = cf[{o_ah + l}] * ({Rq}) + " + ("1.0" if j not in seen else f"d{j}"))
             seen.add(j)
         body += [f"d{j} = d{j} + cf[{o_gam + j}] * y{j}" for j in range(S) if interfere[j]]
         for l in range(L):
-            Rq = f"(y{res[l]} * y{res[l]})" if power[l] == 2 else f"y{res[l]}"
+            Rq = f"({dens[l]} * {dens[l]})" if power[l] == 2 else dens[l]
             j = int(cons[l])
             intake = f"cf[{o_a + l}] * {Rq}" + ("" if type1[l] else f" / d{j}")
-            body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten",
-                     f"loss{res[l]} += eaten"]
+            body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten"]
+            if res[l] >= 0:
+                body.append(f"loss{res[l]} += eaten")
     body += [f"o{i} = cf[{i}] * b{i}" for i in range(S)]
     for i in range(S):
         if sterile[i]:
@@ -90,7 +93,7 @@ def rhs_source(st: np.ndarray) -> str:
     if crowding:
         body += [f"o{i} -= cf[{o_quad + i}] * y{i} * y{i}" for i in range(S)]
     body += [f"o{i} += cf[{2 * S + i}] * y{i}" for i in range(S)]
-    eaten_species = sorted({int(r) for r in res if r < S})
+    eaten_species = sorted({int(r) for r in res if 0 <= r < S})
     body += [f"o{i} -= loss{i}" for i in eaten_species]
     if carrion:
         body.append(f"g = cf[{4 * S}] * y0")

@@ -12,8 +12,9 @@ Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_a
 feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
 mutualism pairs (2·U), and per species its obligate partner (S; −1 for none), an interference
 flag (S) and a sterile-release flag (S). Coefficient rows (float64, one per member): scale, rpos,
-lin, dens, inflow, quad, obH, gamma, sterile (S each), a, ah, e (L each), alpha (Cc), beta, H
-(U each), decay (1).
+lin, dens, inflow, quad, obH, gamma, sterile (S each), a, ah, e, food (L each), alpha (Cc), beta,
+H (U each), decay (1). A link whose resource is −1 eats a constant alternative food of density
+``food``.
 """
 
 from __future__ import annotations
@@ -75,14 +76,15 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
     S, n, L = st[0], st[1], st[3]
     gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + S
     o_gam = 7 * S
-    o_ah, o_e = o_a + L, o_a + 2 * L
+    o_ah, o_e, o_food = o_a + L, o_a + 2 * L, o_a + 3 * L
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     for i in range(n):
         loss[i] = 0.0
         seen[i] = 0.0
     for l in range(L):
         if st[l1 + l] == 0:
-            R = y[st[lr + l]]
+            res = st[lr + l]
+            R = y[res] if res >= 0 else cf[o_food + l]
             Rq = R * R if st[lp + l] == 2 else R
             term = cf[o_ah + l] * Rq
             j = st[lc + l]
@@ -95,7 +97,8 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
         if st[gp + i] == 1:
             den[i] = den[i] + cf[o_gam + i] * y[i]
     for l in range(L):
-        R = y[st[lr + l]]
+        res = st[lr + l]
+        R = y[res] if res >= 0 else cf[o_food + l]
         Rq = R * R if st[lp + l] == 2 else R
         j = st[lc + l]
         if st[l1 + l] == 1:
@@ -104,7 +107,8 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
             I = cf[o_a + l] * Rq / den[j]
         eaten = I * y[j]
         births[j] += cf[o_e + l] * eaten
-        loss[st[lr + l]] += eaten
+        if res >= 0:  # an alternative food is not depleted
+            loss[res] += eaten
 
 
 @kernel_jit
@@ -118,7 +122,7 @@ def web_rhs(st, cf, y, out, work):
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
     o_quad, o_obH, o_ster = 5 * S, 6 * S, 8 * S
     o_a = 9 * S
-    o_al = o_a + 3 * L
+    o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
     o_dec = o_H + U
