@@ -109,16 +109,17 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
 
     ``values`` maps parameter names to ndarray (M,) or scalars.
     """
-    from .simulate import controls_at
+    from .simulate import controls_at, season_mean_phi
 
     S = len(case.species)
     if option_name is None:
-        return Controls.neutral(M, S)
+        return replace(Controls.neutral(M, S), phi=season_mean_phi(case, M))
     opt = next(o for o in case.options if o.name == option_name)
     always = tuple(replace(iv, start=-np.inf, end=np.inf) if iv.name in opt.interventions else iv
                    for iv in case.interventions)
     vals = {k: np.broadcast_to(np.asarray(v, float), (M,)).copy() for k, v in values.items()}
-    return controls_at(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
+    return controls_at(replace(case, interventions=always), opt, vals, 0.0, season_mean_phi(case, M), M, S,
+                       season_averaged=True)
 
 
 def _scan_rows(parameter, v, out, i, keep_sections, species):

@@ -110,7 +110,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         Settings for dynamics.json.
     """
     from .execute import InProcess, count
-    from .simulate import controls_at
+    from .simulate import controls_at, season_mean_phi
 
     s, declared = (settings, {}) if settings is not None else declared_settings(case, SCREEN)
     sec_col, sec_name = section_species(case, section)
@@ -124,7 +124,9 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     t_last = H - 1e-9 * max(H, 1.0)
     opts = {None: "baseline", **{o: o.name for o in case.options}}
     vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
+    # seasons are averaged: the diagnostics look for the autonomous web's own regime
+    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, season_mean_phi(case, sel.size), sel.size, S,
+                                                 season_averaged=True),
                           runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
     results = {}
     count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")

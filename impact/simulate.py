@@ -98,7 +98,31 @@ def breeding_multiplier(case: Case, t: float) -> np.ndarray | None:
     return out
 
 
-def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int) -> Controls:
+def season_share(case: Case, parts: tuple[int, int] | None) -> float:
+    """Share of a season covered by parts ``parts`` = (first, last), wrapping; 1 for None."""
+    if parts is None or case.seasons is None:
+        return 1.0
+    first, last = parts
+    n = last - first + 1 if first <= last else case.seasons.parts - first + 1 + last
+    return n / case.seasons.parts
+
+
+def season_mean_phi(case: Case, M: int) -> np.ndarray:
+    """Season-mean breeding multiplier of every species, (M, S): share + outside·(1 − share)."""
+    row = [season_share(case, s.breeding_season) * (1.0 - s.breeding_outside) + s.breeding_outside
+           if s.breeding_season is not None else 1.0 for s in case.species]
+    return np.tile(np.array(row, float), (M, 1))
+
+
+def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int,
+                season_averaged: bool = False) -> Controls:
+    """Controls of ``option`` at time ``t_mid`` (inside a segment), with growth multipliers ``phi`` (M, S).
+
+    ``season_averaged`` gives the season-averaged controls the regime diagnostics follow: an
+    intervention scheduled by season acts whenever it is on (between ``start`` and ``end``), at
+    its rate (fraction, sterile density) times the share of the season it covers, or with its
+    carrying-capacity factor raised to that share.
+    """
     from .model import resolve  # local: keeps the public surface of this module small
 
     c = Controls.neutral(M, S)
@@ -108,20 +132,21 @@ def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np
     col = {n: i for i, n in enumerate(case.species_names)}
     for name in option.interventions:
         iv = case.intervention(name)
-        if not iv.active(t_mid):
+        w = season_share(case, iv.season_parts) if season_averaged else 1.0
+        if not (iv.start <= t_mid < iv.end if season_averaged else iv.active(t_mid)):
             continue
         j = col[iv.species]
         if iv.kind == "press-harvest":
-            c.harvest[:, j] += resolve(iv.rate, values, M)
+            c.harvest[:, j] += w * resolve(iv.rate, values, M)
             if iv.carcasses_to_carrion:
                 c.carcass[:, j] = 1.0
         elif iv.kind == "fertility-control":
             # several suppressions combine multiplicatively on the surviving births
-            c.fertility[:, j] = 1.0 - (1.0 - c.fertility[:, j]) * (1.0 - resolve(iv.fraction, values, M))
+            c.fertility[:, j] = 1.0 - (1.0 - c.fertility[:, j]) * (1.0 - w * resolve(iv.fraction, values, M))
         elif iv.kind == "carrying-capacity-change":
-            c.habitat[:, j] *= resolve(iv.factor, values, M)
+            c.habitat[:, j] *= resolve(iv.factor, values, M) ** w
         elif iv.kind == "sterile-release":
-            c.sterile[:, j] += resolve(iv.sterile_density, values, M) * resolve(iv.competitiveness, values, M)
+            c.sterile[:, j] += w * resolve(iv.sterile_density, values, M) * resolve(iv.competitiveness, values, M)
     return c
 
 

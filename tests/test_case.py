@@ -14,7 +14,7 @@ from impact.errors import CaseError
 CASEWORK = __import__("pathlib").Path(__file__).parent.parent / "casework"
 
 
-@pytest.mark.parametrize("name", ["island_mesopredator.toml", "predator_prey.toml"])
+@pytest.mark.parametrize("name", ["island_mesopredator.toml", "predator_prey.toml", "moth_pollinator.toml"])
 def test_example_cases_load_and_are_marked_invented(name):
     case = load_case(CASEWORK / name)
     assert case.invented

@@ -203,7 +203,8 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0]])\n"
+        # scale, rpos, lin, dens, inflow, quad, obH, gamma, sterile, decay (the kernel's column order)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0]])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

@@ -406,3 +406,56 @@ def test_alternative_food_is_a_constant_resource_in_the_shared_denominator(tmp_p
     case, run = simulate(tmp_path, one_species_case(sp[1:], extra={"interactions": inter[1:]}), option=None)
     rate = e2 * a2 * F / (1 + a2 * h2 * F) - m
     assert rel_err_tol_units(run.states[0, :, 0], 2.0 * np.exp(rate * run.times), RTOL) < 100
+
+
+def test_season_averaged_controls_keep_the_forced_webs_mean(tmp_path):
+    # For dN/dt = r s(t) N − r N²/K the season mean of the periodic solution is K·mean(s) (see the
+    # periodic-solution test above), which is the equilibrium of the season-averaged web that the
+    # regime diagnostics follow (births × mean(s)); a seasonal harvest averages to rate × share.
+    from impact.simulate import controls_at, season_mean_phi
+
+    data = _seasonal_logistic(0.3)
+    data["interventions"][0].update(rate=2.0, season_parts=[50, 3])  # weeks 50–52 and 1–3: 6 of 52
+    case = load_case(write_case(tmp_path, data))
+    w = 21 / 52
+    np.testing.assert_allclose(season_mean_phi(case, 2), w + 0.3 * (1 - w), rtol=1e-15)
+    c = controls_at(case, case.options[0], {}, 0.5, season_mean_phi(case, 2), 2, 1, season_averaged=True)
+    np.testing.assert_allclose(c.harvest, 2.0 * 6 / 52, rtol=1e-15)
+    assert controls_at(case, case.options[0], {}, 0.5, np.ones((2, 1)), 2, 1).harvest.max() == 0.0  # week 27: off
+
+
+def test_suppressing_the_pollinator_lowers_seed_set_and_raises_the_plants_risk():
+    # The invented casework/moth_pollinator.toml: the primrose's births are r·s(t)·N·P/(H + P), increasing
+    # in the moth P, so an option that lowers the moth in every member must lower the primrose's
+    # pollination share and its abundance in that member (a consequence of the model, no published
+    # source); releases that drive the moth out leave the primrose without births, and it falls below
+    # its quasi-extinction level as dN/dt = −r N²/K − m N requires.
+    from pathlib import Path
+
+    from impact.simulate import plausibility, spin_up
+
+    case = load_case(Path(__file__).resolve().parent.parent / "casework" / "moth_pollinator.toml")
+    web = build_web(case)
+    M = 12
+    vals = parameter_values(case, np.random.default_rng(np.random.SeedSequence(16)).random((M, len(case.uncertain))))
+    p = web_params(case, vals, M)
+    today, late, failed, _ = spin_up(case, web, p)
+    assert plausibility(case, web, today, late, failed)["kept"].all()
+    u = {iv.name: np.full(M, 0.5) for iv in case.interventions}
+    runs = {o.name if o else "baseline": run_option(case, web, p, vals, today, o, None, u) for o in [None, *case.options]}
+    moth, plant = case.species_names.index("hawkmoth"), case.species_names.index("primrose")
+    H = p.obH[:, plant]
+
+    def share(run):  # time-mean pollination share P/(H + P) per member
+        P = run.states[:, :, moth]
+        return (P / (H[:, None] + P)).mean(axis=1)
+
+    base = runs["baseline"]
+    for name in ("spray", "sterile release"):
+        run = runs[name]
+        assert np.all(run.states[:, :, moth].mean(axis=1) < base.states[:, :, moth].mean(axis=1))
+        assert np.all(share(run) < share(base))
+        assert np.all(run.states[:, :, plant].mean(axis=1) < base.states[:, :, plant].mean(axis=1))
+    level = case.species_by_name("primrose").quasi_extinction
+    assert np.all(base.cummin[:, -1, plant] > level)
+    assert np.all(runs["sterile release"].cummin[:, -1, plant] < level)
