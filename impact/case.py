@@ -89,6 +89,8 @@ class Species:
     crowding_mortality: Quantity = 0.0
     breeding_season: tuple[int, int] | None = None  # first and last part of the season with births
     breeding_outside: float = 0.0  # births multiplier outside the breeding season
+    matures_into: str | None = None  # this species is the juvenile stage of that one
+    maturation_rate: Quantity = 0.0
 
 
 @dataclass(frozen=True)
@@ -587,12 +589,20 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         crowding = t.quantity("crowding_mortality", 0.0, low=0)
         breeding, outside = _read_breeding(r, t.get("breeding_season", None, "any"), f"species.{name}.breeding_season",
                                            seasons)
+        adult = t.get("matures_into", None, "str")
+        maturation = 0.0
+        if adult is not None:
+            if growth != "none":
+                r.fail(f"species.{name}.growth", "a juvenile stage (matures_into) does not breed: growth must be "
+                                                 "\"none\"; its numbers come from the births of the stage it matures into")
+            maturation = t.quantity("maturation_rate", low=0, low_open=True)
         t.done()
         species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
-                               role, material, crowding, breeding, outside))
+                               role, material, crowding, breeding, outside, adult, maturation))
     species = tuple(species)
     _unique(r, species, "name", "species")
     names = {s.name for s in species}
+    _check_stages(r, species)
 
     def species_ref(f, v, allow_carrion=False):
         if v == CARRION and allow_carrion:
@@ -972,3 +982,20 @@ def _check_interference(r: _Reader, feeding: list[Feeding]):
         if len({g.interference for g in mine if g.response == "beddington-deangelis"}) > 1:
             r.fail("interactions", f"{f.consumer!r} declares different interference values; interference is a property "
                                    "of the consumer: give the same number or parameter on each of its links")
+
+
+def _check_stages(r: _Reader, species: tuple[Species, ...]):
+    """Two life stages per species at most: a juvenile matures into an adult that is no juvenile."""
+    by_name = {s.name: s for s in species}
+    adults: set[str] = set()
+    for s in species:
+        if s.matures_into is None:
+            continue
+        f = f"species.{s.name}.matures_into"
+        if s.matures_into not in by_name or s.matures_into == s.name:
+            r.fail(f, f"must name another declared species (the adult stage); declared: {', '.join(sorted(by_name))}")
+        if by_name[s.matures_into].matures_into is not None:
+            r.fail(f, f"{s.matures_into!r} is itself a juvenile stage; a species has two stages at most")
+        if s.matures_into in adults:
+            r.fail(f, f"{s.matures_into!r} already has a juvenile stage; one per adult")
+        adults.add(s.matures_into)

@@ -75,12 +75,19 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
     sigma = np.ones_like(N)
     for i in web.sterile:
         sigma[:, i] = fertile_share(N[:, i], c.sterile[idx, i])
-    J[:, :S, :] += (G * sigma)[:, :, None] * Jb
+    Jbirth = (G * sigma)[:, :, None] * Jb
     for i in web.sterile:
         s = c.sterile[idx, i]
         with np.errstate(divide="ignore", invalid="ignore"):
             dsigma = np.where(s > 0, s / ((N[:, i] + s) ** 2), 0.0)
-        J[:, i, i] += G[:, i] * births[:, i] * dsigma
+        Jbirth[:, i, i] += G[:, i] * births[:, i] * dsigma
+    # life stages: the adult's births are born as juveniles, which mature at a rate
+    for j, a in web.stages:
+        Jbirth[:, j, :] += Jbirth[:, a, :]
+        Jbirth[:, a, :] = 0.0
+        J[:, j, j] -= p.mat[idx, j]
+        J[:, a, j] += p.mat[idx, j]
+    J[:, :S, :] += Jbirth
 
     # feeding: the resource loses I·N_c (the consumer's gain is in the births)
     if web.links:
@@ -283,6 +290,17 @@ class WebTangent:
                     dshare = np.where(s > 0, s / ((N[:, i] + s) * (N[:, i] + s)), 0.0)
                 df[:, i] = df[:, i] * share + f[:, i] * dshare * dN_[:, i]
                 f[:, i] = f[:, i] * share
+        if web.stages:
+            mat = g["mat"]
+            for j, a in web.stages:
+                f[:, j] += f[:, a]
+                df[:, j] += df[:, a]
+                f[:, a] = 0.0
+                df[:, a] = 0.0
+                f[:, j] -= mat[:, j] * N[:, j]
+                df[:, j] -= mat[:, j] * dN_[:, j]
+                f[:, a] += mat[:, j] * N[:, j]
+                df[:, a] += mat[:, j] * dN_[:, j]
         if web.logistic.any():
             crowd = N.copy()
             dcrowd = dN_.copy()

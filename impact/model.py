@@ -65,6 +65,7 @@ class FoodWeb:
     interference: tuple[int, ...] = ()  # consumers whose handling denominator has γ N
     crowding: bool = False  # some species has crowding mortality
     sterile: tuple[int, ...] = ()  # species that sterile releases may act on
+    stages: tuple[tuple[int, int], ...] = ()  # (juvenile, adult): the adult's births are born as juveniles
 
     @property
     def n_species(self) -> int:
@@ -102,6 +103,8 @@ class WebParams:
         Interference of each consumer (zeros by default).
     food : ndarray (M, L)
         Density of a link's constant alternative food (zeros for links to a species or carrion).
+    mat : ndarray (M, S)
+        Maturation rate of each juvenile stage (zeros elsewhere).
     """
 
     r: np.ndarray
@@ -120,9 +123,10 @@ class WebParams:
     obH: np.ndarray | None = None
     gamma: np.ndarray | None = None
     food: np.ndarray | None = None
+    mat: np.ndarray | None = None
 
     def __post_init__(self):
-        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0)):
+        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0), ("mat", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
         if self.food is None:
@@ -171,6 +175,7 @@ def build_web(case: Case) -> FoodWeb:
         interference=tuple(interference),
         crowding=any(s.crowding_mortality != 0.0 for s in case.species),
         sterile=tuple(sterile),
+        stages=tuple((col[s.name], col[s.matures_into]) for s in case.species if s.matures_into is not None),
     )
 
 
@@ -225,6 +230,7 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         obH=col([obligate.get(s.name, 1.0) for s in sp]),
         gamma=col([gamma.get(s.name, 0.0) for s in sp]),
         food=col([f.food_density or 0.0 for f in case.feeding]),
+        mat=col([s.maturation_rate for s in sp]),
     )
 
 
@@ -294,6 +300,8 @@ class SegmentCoefficients:
         Alternative food density per link (0 for links to a state variable).
     sterile : ndarray (M, S)
         Sterile individuals present (density × competitiveness; 0 without releases).
+    mat : ndarray (M, S)
+        Maturation rate of juvenile stages.
     a, ah, e : ndarray (M, L)
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
@@ -308,6 +316,7 @@ class SegmentCoefficients:
     obH: np.ndarray
     gamma: np.ndarray
     sterile: np.ndarray
+    mat: np.ndarray
     a: np.ndarray
     ah: np.ndarray
     e: np.ndarray
@@ -330,7 +339,7 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
+        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, mat=p.mat, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
         alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
 
 
@@ -412,6 +421,14 @@ class WebRHS:
             ster = g["sterile"]
             for i in web.sterile:
                 dN[:, i] *= fertile_share(N[:, i], ster[:, i])
+        if web.stages:
+            mat = g["mat"]
+            for j, a in web.stages:
+                dN[:, j] += dN[:, a]  # the adult's births are born as juveniles
+                dN[:, a] = 0.0
+                flow = mat[:, j] * N[:, j]
+                dN[:, j] -= flow
+                dN[:, a] += flow
         if web.logistic.any():
             crowd = N.copy()
             alpha = g["alpha"]

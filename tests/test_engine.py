@@ -78,8 +78,8 @@ RESPONSES = ("holling1", "holling2", "holling3")
 def random_web(seed: int, members: int, new_terms: bool = False):
     """An invented web: 3-5 species, random feeding links (every response), carrion, competition
     and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
-    ``new_terms`` adds an obligate partner, predator interference, crowding mortality and sterile
-    releases."""
+    ``new_terms`` adds an obligate partner, predator interference, crowding mortality, sterile
+    releases, an alternative food and a juvenile stage."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -96,7 +96,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                   carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S,
                   # the scavenger S−1 has a saturating link (on carrion), so it can carry interference
                   obligate=((1, S - 1),) if new_terms else (), interference=(S - 1,) if new_terms else (),
-                  crowding=new_terms, sterile=(0, 2) if new_terms else ())
+                  crowding=new_terms, sterile=(0, 2) if new_terms else (),
+                  stages=((2, 1),) if new_terms else ())  # species 2 is the juvenile stage of species 1
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -111,7 +112,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                  harvest=u(0.0, 0.1, S), carcass=(u(0, 1, S) > 0.5).astype(float))
     if new_terms:
         food = np.array([link.resource < 0 for link in web.links]) * u(1.0, 20.0, L)
-        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S), food=food)
+        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S), food=food,
+                    mat=u(0.2, 2.0, S))
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
 
@@ -203,8 +205,8 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        # scale, rpos, lin, dens, inflow, quad, obH, gamma, sterile, decay (the kernel's column order)
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0]])\n"
+        # scale, rpos, lin, dens, inflow, quad, obH, gamma, sterile, mat, decay (the kernel's column order)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0]])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

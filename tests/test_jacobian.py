@@ -35,7 +35,8 @@ def _web_with(tmp_path, response):
 
 def _web_with_new_terms(tmp_path, response):
     """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
-    Beddington–DeAngelis fox and sterile releases on the hare."""
+    Beddington–DeAngelis fox with an alternative food, sterile releases on the hare and a juvenile
+    stage (leverets) of the hare."""
     data = web_case()
     data["interactions"][0]["response"] = response
     data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
@@ -55,6 +56,10 @@ def _web_with_new_terms(tmp_path, response):
          "interference": 0.2, "attack_rate": 0.01, "handling_time": 0.2, "efficiency": 0.05}]
     data["interventions"].append({"name": "sterile hares", "kind": "sterile-release", "species": "hare",
                                   "sterile_density": 30.0})
+    data["species"].append({"name": "leveret", "growth": "none", "mortality": 0.3, "initial": 20.0, "quasi_extinction": 1.0,
+                            "matures_into": "hare", "maturation_rate": 0.8})
+    data["interactions"].append({"kind": "predation", "predator": "fox", "prey": "leveret", "response": "beddington-deangelis",
+                                 "interference": 0.2, "attack_rate": 0.05, "handling_time": 0.1, "efficiency": 0.1})
     case = load_case(write_case(tmp_path, data))
     return case, build_web(case)
 

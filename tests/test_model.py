@@ -459,3 +459,23 @@ def test_suppressing_the_pollinator_lowers_seed_set_and_raises_the_plants_risk()
     level = case.species_by_name("primrose").quasi_extinction
     assert np.all(base.cummin[:, -1, plant] > level)
     assert np.all(runs["sterile release"].cummin[:, -1, plant] < level)
+
+
+def test_two_stage_equilibrium(tmp_path):
+    # Juveniles J born from adults at b, maturing at μ, dying at d_J; adults with deaths d_A and
+    # crowding c: J' = b A − (μ + d_J) J, A' = μ J − d_A A − c A². From J' = A' = 0:
+    # A* = (b μ/(μ + d_J) − d_A)/c, J* = b A*/(μ + d_J); the adults persist iff
+    # R0 = b μ/((μ + d_J) d_A) > 1 (the stage-structured net reproductive number, e.g. de Roos &
+    # Persson 2013, ch. 3; from memory).
+    b, mu, dJ, dA, c = 3.0, 0.5, 0.4, 0.6, 0.01
+    sp = [{"name": "larva", "growth": "none", "mortality": dJ, "initial": 10.0, "quasi_extinction": 0.0,
+           "matures_into": "adult", "maturation_rate": mu},
+          {"name": "adult", "growth": "exponential", "growth_rate": b, "mortality": dA, "crowding_mortality": c,
+           "initial": 5.0, "quasi_extinction": 0.0}]
+    case, run = simulate(tmp_path, one_species_case(sp, horizon=200.0), option=None)
+    A = (b * mu / (mu + dJ) - dA) / c
+    np.testing.assert_allclose(run.states[0, -1, :2], [b * A / (mu + dJ), A], rtol=1e-6)
+    # below R0 = 1 both stages die out (slowest rate here about −0.21 per year)
+    sp[1]["growth_rate"] = 0.5 * dA * (mu + dJ) / mu  # R0 = 0.5
+    case, run = simulate(tmp_path, one_species_case(sp, horizon=200.0), option=None)
+    assert np.all(run.states[0, -1, :2] < 1e-3)

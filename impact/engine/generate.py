@@ -48,8 +48,9 @@ def rhs_source(st: np.ndarray) -> str:
     op = H + 4 * L + 2 * Cc + 2 * U
     mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
     partner, interfere, sterile = st[op:op + S], st[op + S:op + 2 * S], st[op + 2 * S:op + 3 * S]
-    o_quad, o_obH, o_gam, o_ster = 5 * S, 6 * S, 7 * S, 8 * S
-    o_a = 9 * S
+    adult = st[op + 3 * S:op + 4 * S]
+    o_quad, o_obH, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S, 9 * S
+    o_a = 10 * S
     o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -86,6 +87,10 @@ def rhs_source(st: np.ndarray) -> str:
     for i in range(S):
         if sterile[i]:
             body += [f"if cf[{o_ster + i}] > 0:", f"    o{i} *= y{i} / (y{i} + cf[{o_ster + i}])"]
+    for i in range(S):
+        if adult[i] >= 0:
+            a = int(adult[i])
+            body += [f"o{i} += o{a}", f"o{a} = 0.0", f"flow = cf[{o_mat + i}] * y{i}", f"o{i} -= flow", f"o{a} += flow"]
     if logistic:
         body += [f"c{i} = y{i}" for i in range(S)]
         body += [f"c{i} += cf[{o_al + k}] * y{j}" for k, (i, j) in enumerate(comp)]

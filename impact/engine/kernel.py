@@ -11,8 +11,9 @@ Members are independent by construction: nothing is shared between rows.
 Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any``, then per
 feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
 mutualism pairs (2·U), and per species its obligate partner (S; −1 for none), an interference
-flag (S) and a sterile-release flag (S). Coefficient rows (float64, one per member): scale, rpos,
-lin, dens, inflow, quad, obH, gamma, sterile (S each), a, ah, e, food (L each), alpha (Cc), beta,
+flag (S), a sterile-release flag (S) and the adult stage a juvenile matures into (S; −1 for
+none). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow, quad, obH,
+gamma, sterile, mat (S each), a, ah, e, food (L each), alpha (Cc), beta,
 H (U each), decay (1). A link whose resource is −1 eats a constant alternative food of density
 ``food``.
 """
@@ -120,8 +121,8 @@ def web_rhs(st, cf, y, out, work):
     """
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_quad, o_obH, o_ster = 5 * S, 6 * S, 8 * S
-    o_a = 9 * S
+    o_quad, o_obH, o_ster, o_mat = 5 * S, 6 * S, 8 * S, 9 * S
+    o_a = 10 * S
     o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -156,6 +157,15 @@ def web_rhs(st, cf, y, out, work):
             sd = cf[o_ster + i]
             if sd > 0:
                 out[i] *= y[i] / (y[i] + sd)
+    ap = sp + S  # adult stage of each juvenile
+    for i in range(S):
+        a = st[ap + i]
+        if a >= 0:
+            out[i] += out[a]
+            out[a] = 0.0
+            flow = cf[o_mat + i] * y[i]
+            out[i] -= flow
+            out[a] += flow
     if logistic:
         for i in range(S):
             crowd[i] = y[i]

@@ -37,6 +37,8 @@ def pack_structure(web: FoodWeb) -> np.ndarray:
     partner = dict(web.obligate)
     per_species = ([partner.get(i, -1) for i in range(S)] + [int(i in web.interference) for i in range(S)]
                    + [int(i in web.sterile) for i in range(S)])
+    adult = dict(web.stages)
+    per_species += [adult.get(i, -1) for i in range(S)]
     return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
