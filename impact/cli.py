@@ -86,6 +86,8 @@ def describe_case(case: Case) -> str:
         if s.breeding_season is not None:
             bits.append(f"breeds in {case.seasons.part_name}s {s.breeding_season[0]}–{s.breeding_season[1]} "
                         f"(births × {s.breeding_outside:g} outside)")
+        if s.matures_into is not None:
+            bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
         bits.append(f"initial={s.initial}")
         if not s.present:
             bits.append("absent today")

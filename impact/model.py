@@ -475,9 +475,14 @@ def equations(case: Case) -> list[str]:
     definitions of the terms they use (units in README's case-file tables)."""
     lines = []
     sterile = {iv.species for iv in case.interventions if iv.kind == "sterile-release"}
+    juvenile = {s.matures_into: s.name for s in case.species if s.matures_into is not None}
     for s in case.species:
         n = s.name
         terms = []
+        if n in juvenile:
+            terms.append(f"(births born as {juvenile[n]}) + μ_{juvenile[n]}·{juvenile[n]}")
+        if s.matures_into is not None:
+            terms.append(f"+ births of {s.matures_into} − μ_{n}·{n}")
         birth = []
         if s.growth in ("logistic", "exponential"):
             ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
@@ -519,4 +524,7 @@ def equations(case: Case) -> list[str]:
         lines.append(f"s(t) = 1 in the breeding {case.seasons.part_name}s of each season, the declared outside level elsewhere")
     if sterile:
         lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
+    if juvenile:
+        lines.append("life stages: an adult's births (the bracket above) are born into its juvenile stage, "
+                     "which matures into the adult at rate μ")
     return lines
