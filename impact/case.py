@@ -89,6 +89,8 @@ class Species:
     crowding_mortality: Quantity = 0.0
     breeding_season: tuple[int, int] | None = None  # first and last part of the season with births
     breeding_outside: float = 0.0  # births multiplier outside the breeding season
+    breeding_amplitude: Quantity | None = None  # sinusoidal breeding: births × (1 + A cos(...))
+    breeding_peak: float | None = None  # the season part where a sinusoidal breeding season peaks
     matures_into: str | None = None  # this species is the juvenile stage of that one
     maturation_rate: Quantity = 0.0
 
@@ -218,6 +220,10 @@ class Seasons:
                 else:
                     spans.append([lo, hi])
         return tuple((a, b) for a, b in spans)
+
+    def peak_time(self, part: float) -> float:
+        """Time within a season of the middle of part ``part`` (1-based; fractions allowed)."""
+        return (part - 0.5) * self.length / self.parts
 
     def starts_of_part(self, part: int, t0: float, t1: float) -> tuple[float, ...]:
         """Times in [t0, t1] at which part ``part`` of a season begins."""
@@ -587,8 +593,8 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         role = r.choice(f"species.{name}.role", t.get("role", "other", "str"), ROLES)
         material = t.number("material_change", None, low=0, low_open=True)
         crowding = t.quantity("crowding_mortality", 0.0, low=0)
-        breeding, outside = _read_breeding(r, t.get("breeding_season", None, "any"), f"species.{name}.breeding_season",
-                                           seasons)
+        breeding, outside, amplitude, peak = _read_breeding(r, t.get("breeding_season", None, "any"),
+                                                            f"species.{name}.breeding_season", seasons)
         adult = t.get("matures_into", None, "str")
         maturation = 0.0
         if adult is not None:
@@ -598,7 +604,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             maturation = t.quantity("maturation_rate", low=0, low_open=True)
         t.done()
         species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
-                               role, material, crowding, breeding, outside, adult, maturation))
+                               role, material, crowding, breeding, outside, amplitude, peak, adult, maturation))
     species = tuple(species)
     _unique(r, species, "name", "species")
     names = {s.name for s in species}
@@ -958,15 +964,25 @@ def _season_span(r: _Reader, f: str, parts: Any, seasons: Seasons | None) -> tup
     return int(parts[0]), int(parts[1])
 
 
-def _read_breeding(r: _Reader, raw: Any, f: str, seasons: Seasons | None) -> tuple[tuple[int, int] | None, float]:
-    """A species' ``breeding_season = {first, last, outside}`` (absent: no seasonal births)."""
+def _read_breeding(r: _Reader, raw: Any, f: str, seasons: Seasons | None):
+    """A species' ``breeding_season``: a window ``{first, last, outside}`` or a sinusoid
+    ``{amplitude, peak}``; returns (span, outside, amplitude, peak), all None/0 when absent."""
     if raw is None:
-        return None, 0.0
+        return None, 0.0, None, None
     t = _Table(r, raw, f)
+    if seasons is None:
+        r.fail(f, "a breeding season needs a [seasons] table (length, parts)")
+    if "amplitude" in t.data or "peak" in t.data:
+        amplitude = t.quantity("amplitude", low=0, high=1)
+        peak = t.number("peak", low=0.5, high=seasons.parts + 0.5)
+        t.done()
+        return None, 0.0, amplitude, peak
+    if "first" not in t.data:
+        r.fail(f, "give either first and last (a window, with outside) or amplitude and peak (a sinusoid)")
     span = _season_span(r, f, [t.get("first", kind="int"), t.get("last", kind="int")], seasons)
     outside = t.number("outside", 0.0, low=0, high=1)
     t.done()
-    return span, outside
+    return span, outside, None, None
 
 
 def _check_interference(r: _Reader, feeding: list[Feeding]):

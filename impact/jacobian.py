@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .model import RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes, resource_density
+from .model import (RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes, resource_density,
+                    season_wave)
 
 
 def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
@@ -49,13 +50,15 @@ def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np
     return out
 
 
-def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarray:
+def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None) -> np.ndarray:
     """Jacobian ∂rhs/∂y of :func:`impact.model.rhs` for members ``idx``.
 
     Parameters
     ----------
     y : ndarray (m, n_state)
     idx : int ndarray (m,)
+    t : ndarray (m,), optional
+        Times, for a sinusoidal breeding season (None: its season mean).
 
     Returns
     -------
@@ -68,6 +71,9 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.
     r, mort = p.r[idx], p.m[idx]
     rp = np.maximum(r, 0.0)
     G = c.phi[idx] * (1.0 - c.fertility[idx])
+    if web.wave:
+        G[:, list(web.wave)] *= season_wave({"amp": p.amp[idx] * c.wave[idx], "omega": p.omega[idx], "phase": p.phase[idx]},
+                                            web.wave, t)
     J = np.zeros((m, n, n))
     births, Jb = _births_and_gradient(web, p, y, idx)
 
@@ -198,8 +204,8 @@ class WebTangent:
 
         Parameters
         ----------
-        t : ndarray (m,)
-            Unused: controls are constant within a segment.
+        t : ndarray (m,) or None
+            Per-member times (only a sinusoidal breeding season depends on them).
         y, v : ndarray (m, n_state)
             States and tangent vectors.
         idx : int ndarray (m,)
@@ -281,6 +287,10 @@ class WebTangent:
                     dloss[:, link.resource] += deaten
         f = g["scale"] * births
         df = g["scale"] * dbirths
+        if web.wave:
+            w = season_wave(g, web.wave, t)
+            f[:, list(web.wave)] *= w
+            df[:, list(web.wave)] *= w
         if web.sterile:
             ster = g["sterile"]
             for i in web.sterile:

@@ -66,6 +66,7 @@ class FoodWeb:
     crowding: bool = False  # some species has crowding mortality
     sterile: tuple[int, ...] = ()  # species that sterile releases may act on
     stages: tuple[tuple[int, int], ...] = ()  # (juvenile, adult): the adult's births are born as juveniles
+    wave: tuple[int, ...] = ()  # species whose births follow a sinusoidal breeding season
 
     @property
     def n_species(self) -> int:
@@ -105,6 +106,9 @@ class WebParams:
         Density of a link's constant alternative food (zeros for links to a species or carrion).
     mat : ndarray (M, S)
         Maturation rate of each juvenile stage (zeros elsewhere).
+    amp, omega, phase : ndarray (M, S)
+        Amplitude A, angular frequency ω = 2π/season length and phase ω·t_peak of a sinusoidal
+        breeding season (births × (1 + A cos(ω t − ω t_peak))); zeros elsewhere.
     """
 
     r: np.ndarray
@@ -124,9 +128,13 @@ class WebParams:
     gamma: np.ndarray | None = None
     food: np.ndarray | None = None
     mat: np.ndarray | None = None
+    amp: np.ndarray | None = None
+    omega: np.ndarray | None = None
+    phase: np.ndarray | None = None
 
     def __post_init__(self):
-        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0), ("mat", 0.0)):
+        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
+                           ("phase", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
         if self.food is None:
@@ -143,15 +151,17 @@ class Controls:
     harvest: np.ndarray  # proportional removal rate
     carcass: np.ndarray  # 1 where harvested animals are left as carrion
     sterile: np.ndarray | None = None  # sterile individuals present (density × competitiveness)
+    wave: np.ndarray | None = None  # 1: sinusoidal breeding seasons act; 0: the season-averaged web
 
     def __post_init__(self):
-        if self.sterile is None:
-            object.__setattr__(self, "sterile", np.zeros(self.phi.shape))
+        for name, fill in (("sterile", 0.0), ("wave", 1.0)):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(self.phi.shape, fill))
 
     @staticmethod
     def neutral(members: int, n_species: int) -> "Controls":
         one, zero = np.ones((members, n_species)), np.zeros((members, n_species))
-        return Controls(one, zero, one.copy(), zero.copy(), zero.copy(), zero.copy())
+        return Controls(one, zero, one.copy(), zero.copy(), zero.copy(), zero.copy(), one.copy())
 
 
 def build_web(case: Case) -> FoodWeb:
@@ -176,6 +186,7 @@ def build_web(case: Case) -> FoodWeb:
         crowding=any(s.crowding_mortality != 0.0 for s in case.species),
         sterile=tuple(sterile),
         stages=tuple((col[s.name], col[s.matures_into]) for s in case.species if s.matures_into is not None),
+        wave=tuple(i for i, s in enumerate(case.species) if s.breeding_amplitude is not None),
     )
 
 
@@ -211,6 +222,7 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
     else:
         decay = np.zeros(members)
     facultative = [u for u in case.mutualism if not u.obligate]
+    omega = 2.0 * np.pi / case.seasons.length if case.seasons is not None else 0.0
     obligate = {u.beneficiary: u.half_saturation for u in case.mutualism if u.obligate}
     gamma = {f.consumer: f.interference for f in case.feeding if f.response == "beddington-deangelis"}
     return WebParams(
@@ -231,6 +243,10 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         gamma=col([gamma.get(s.name, 0.0) for s in sp]),
         food=col([f.food_density or 0.0 for f in case.feeding]),
         mat=col([s.maturation_rate for s in sp]),
+        amp=col([s.breeding_amplitude if s.breeding_amplitude is not None else 0.0 for s in sp]),
+        omega=col([omega if s.breeding_amplitude is not None else 0.0 for s in sp]),
+        phase=col([omega * case.seasons.peak_time(s.breeding_peak) if s.breeding_amplitude is not None else 0.0
+                   for s in sp]),
     )
 
 
@@ -302,6 +318,8 @@ class SegmentCoefficients:
         Sterile individuals present (density × competitiveness; 0 without releases).
     mat : ndarray (M, S)
         Maturation rate of juvenile stages.
+    amp, omega, phase : ndarray (M, S)
+        Sinusoidal breeding: births × (1 + amp·cos(omega·t − phase)).
     a, ah, e : ndarray (M, L)
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
@@ -317,6 +335,9 @@ class SegmentCoefficients:
     gamma: np.ndarray
     sterile: np.ndarray
     mat: np.ndarray
+    amp: np.ndarray
+    omega: np.ndarray
+    phase: np.ndarray
     a: np.ndarray
     ah: np.ndarray
     e: np.ndarray
@@ -339,8 +360,26 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, mat=p.mat, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
+        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, mat=p.mat, amp=p.amp * c.wave,
+        omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
         alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+
+
+def season_wave(g: dict, species: tuple[int, ...], t) -> np.ndarray:
+    """Births multiplier 1 + A·cos(ω t − ω t_peak) of sinusoidally breeding species: (m, len(species)).
+
+    ``g`` holds gathered coefficients ``amp``, ``omega``, ``phase``; ``t`` (m,) per-member times
+    (None: the season-averaged web, multiplier 1). The cosine goes through the C library, as in
+    the compiled kernel, so that both agree to the bit.
+    """
+    from .engine.kernel import cos_array  # numba is loaded on first use only
+
+    cols = list(species)
+    amp = g["amp"][:, cols]
+    if t is None:
+        return np.ones_like(amp)
+    arg = g["omega"][:, cols] * np.asarray(t, float)[:, None] - g["phase"][:, cols]
+    return 1.0 + amp * cos_array(np.ascontiguousarray(arg).ravel()).reshape(arg.shape)
 
 
 def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
@@ -379,8 +418,9 @@ class WebRHS:
 
         Parameters
         ----------
-        t : ndarray (m,)
-            Unused: controls are constant within a segment.
+        t : ndarray (m,) or None
+            Per-member times: controls are constant within a segment, and only a sinusoidal
+            breeding season depends on time (None: its season mean).
         y : ndarray (m, n_state)
         idx : int ndarray (m,)
 
@@ -417,6 +457,8 @@ class WebRHS:
                 if link.resource >= 0:  # an alternative food is not depleted
                     loss[:, link.resource] += eaten
         dN = g["scale"] * births
+        if web.wave:
+            dN[:, list(web.wave)] *= season_wave(g, web.wave, t)
         if web.sterile:
             ster = g["sterile"]
             for i in web.sterile:
@@ -454,7 +496,7 @@ class WebRHS:
         return out
 
 
-def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarray:
+def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None) -> np.ndarray:
     """Right-hand side for members ``idx`` (see the module docstring for the equations).
 
     Parameters
@@ -462,12 +504,14 @@ def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarr
     y : ndarray (m, n_state)
     idx : int ndarray (m,)
         Member indices into ``p`` and ``c``.
+    t : ndarray (m,), optional
+        Times (only a sinusoidal breeding season depends on them; None: its season mean).
 
     Returns
     -------
     ndarray (m, n_state)
     """
-    return WebRHS(web, p, c)(None, y, np.asarray(idx))
+    return WebRHS(web, p, c)(t, y, np.asarray(idx))
 
 
 def equations(case: Case) -> list[str]:

@@ -113,7 +113,7 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
 
     S = len(case.species)
     if option_name is None:
-        return replace(Controls.neutral(M, S), phi=season_mean_phi(case, M))
+        return replace(Controls.neutral(M, S), phi=season_mean_phi(case, M), wave=np.zeros((M, S)))
     opt = next(o for o in case.options if o.name == option_name)
     always = tuple(replace(iv, start=-np.inf, end=np.inf) if iv.name in opt.interventions else iv
                    for iv in case.interventions)

@@ -127,6 +127,8 @@ def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np
 
     c = Controls.neutral(M, S)
     c = replace(c, phi=phi)
+    if season_averaged:  # a sinusoidal breeding season averages to births × 1
+        c = replace(c, wave=np.zeros((M, S)))
     if option is None:
         return c
     col = {n: i for i, n in enumerate(case.species_names)}

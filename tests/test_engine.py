@@ -79,7 +79,7 @@ def random_web(seed: int, members: int, new_terms: bool = False):
     """An invented web: 3-5 species, random feeding links (every response), carrion, competition
     and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
     ``new_terms`` adds an obligate partner, predator interference, crowding mortality, sterile
-    releases, an alternative food and a juvenile stage."""
+    releases, an alternative food, a juvenile stage and a sinusoidal breeding season."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -97,7 +97,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                   # the scavenger S−1 has a saturating link (on carrion), so it can carry interference
                   obligate=((1, S - 1),) if new_terms else (), interference=(S - 1,) if new_terms else (),
                   crowding=new_terms, sterile=(0, 2) if new_terms else (),
-                  stages=((2, 1),) if new_terms else ())  # species 2 is the juvenile stage of species 1
+                  stages=((2, 1),) if new_terms else (),  # species 2 is the juvenile stage of species 1
+                  wave=(0,) if new_terms else ())  # species 0 breeds in a sinusoidal season
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -113,7 +114,7 @@ def random_web(seed: int, members: int, new_terms: bool = False):
     if new_terms:
         food = np.array([link.resource < 0 for link in web.links]) * u(1.0, 20.0, L)
         p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S), food=food,
-                    mat=u(0.2, 2.0, S))
+                    mat=u(0.2, 2.0, S), amp=u(0.0, 1.0, S), omega=u(3.0, 7.0, S), phase=u(0.0, 6.0, S))
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
 

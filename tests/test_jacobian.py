@@ -36,15 +36,16 @@ def _web_with(tmp_path, response):
 def _web_with_new_terms(tmp_path, response):
     """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
     Beddington–DeAngelis fox with an alternative food, sterile releases on the hare and a juvenile
-    stage (leverets) of the hare."""
+    stage (leverets) of the hare; the moth breeds in a sinusoidal season."""
     data = web_case()
     data["interactions"][0]["response"] = response
     data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
     data["interactions"][1]["interference"] = 0.2
     data["species"][2]["crowding_mortality"] = 0.01
+    data["seasons"] = {"length": 1.0, "parts": 12, "part_name": "month"}
     data["species"] += [
         {"name": "moth", "growth": "logistic", "growth_rate": 1.5, "carrying_capacity": 80.0, "initial": 30.0,
-         "quasi_extinction": 1.0, "crowding_mortality": 0.002},
+         "quasi_extinction": 1.0, "crowding_mortality": 0.002, "breeding_season": {"amplitude": 0.7, "peak": 7}},
         {"name": "flower", "growth": "logistic", "growth_rate": 0.8, "carrying_capacity": 300.0, "mortality": 0.1,
          "initial": 100.0, "quasi_extinction": 1.0}]
     data["interactions"] += [
@@ -100,8 +101,9 @@ def test_jacobian_matches_central_differences(tmp_path, response, controlled, ne
     web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1, new_terms=new_terms)
     M = y.shape[0]
     idx = np.arange(M)
-    J = jacobian(web, p, c, y, idx)
-    Jfd = _fd_jacobian(lambda yy: rhs(web, p, c, yy, idx), y, 1e-6)
+    t = rng.uniform(0.0, 3.0, M)  # times matter for a sinusoidal breeding season
+    J = jacobian(web, p, c, y, idx, t)
+    Jfd = _fd_jacobian(lambda yy: rhs(web, p, c, yy, idx, t), y, 1e-6)
     scale = np.abs(Jfd).max(axis=2, keepdims=True) + 1e-12
     assert np.all(np.abs(J - Jfd) / scale < 1e-6)
 
@@ -137,9 +139,10 @@ def test_directional_derivative_matches_central_differences(tmp_path, response, 
     M = y.shape[0]
     v = rng.normal(size=y.shape) * y  # perturbations on the scale of each state
     idx = np.arange(M)
-    f, jv = WebTangent(web, p, c)(None, y, v, idx)
-    np.testing.assert_allclose(f, rhs(web, p, c, y, idx), rtol=1e-13, atol=1e-12)
+    t = rng.uniform(0.0, 3.0, M)
+    f, jv = WebTangent(web, p, c)(t, y, v, idx)
+    np.testing.assert_allclose(f, rhs(web, p, c, y, idx, t), rtol=1e-13, atol=1e-12)
     eps = 1e-6
-    fd = (rhs(web, p, c, y + eps * v, idx) - rhs(web, p, c, y - eps * v, idx)) / (2 * eps)
+    fd = (rhs(web, p, c, y + eps * v, idx, t) - rhs(web, p, c, y - eps * v, idx, t)) / (2 * eps)
     scale = np.abs(fd).max(axis=1, keepdims=True) + 1e-12
     assert np.all(np.abs(jv - fd) / scale < 1e-6)

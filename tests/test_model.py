@@ -482,3 +482,29 @@ def test_two_stage_equilibrium(tmp_path):
     sp[1]["growth_rate"] = 0.5 * dA * (mu + dJ) / mu  # R0 = 0.5
     case, run = simulate(tmp_path, one_species_case(sp, horizon=200.0), option=None)
     assert np.all(run.states[0, -1, :2] < 1e-3)
+
+
+def test_sinusoidal_breeding_logistic_periodic_solution(tmp_path):
+    # dN/dt = r (1 + A cos(ω(t − t_p))) N − r N²/K. With u = 1/N, du/dt = −r s(t) u + r/K is linear
+    # (Bernoulli's substitution, as for the window above; Nisbet & Gurney 1982, from memory): with
+    # R(t) = ∫₀ᵗ r s, the periodic solution has u(0) = ∫₀ᵀ (r/K) e^{R(τ) − R(T)} dτ / (1 − e^{−R(T)}),
+    # and the season mean of N is K·mean(s) = K exactly.
+    from scipy.integrate import quad
+
+    r, K, A, peak = 1.5, 100.0, 0.8, 20  # the peak in the middle of week 20
+    sp = {"name": "plant", "growth": "logistic", "growth_rate": r, "carrying_capacity": K, "initial": 20.0,
+          "quasi_extinction": 0.0, "breeding_season": {"amplitude": A, "peak": peak}}
+    data = one_species_case(sp, horizon=30.0, extra={"seasons": {"length": 1.0, "parts": 52, "part_name": "week"}})
+    data["case"]["output_step"] = 1.0 / 52
+    case, run = simulate(tmp_path, data, option=None, members=1)
+    w, tp = 2 * np.pi, (peak - 0.5) / 52
+
+    def R(t):
+        return r * (t + A / w * (np.sin(w * (t - tp)) + np.sin(w * tp)))
+
+    u0 = quad(lambda s: r / K * np.exp(R(s) - R(1.0)), 0.0, 1.0, epsabs=1e-14, epsrel=1e-13)[0] / (1 - np.exp(-R(1.0)))
+    t, N = run.times, run.states[0, :, 0]
+    starts = np.isclose(t % 1.0, 0.0) & (t >= 20)
+    np.testing.assert_allclose(N[starts], 1 / u0, rtol=1e-6)
+    last = t >= 29.0 - 1e-9
+    assert np.trapezoid(N[last], t[last]) == pytest.approx(K, rel=5e-4)

@@ -39,7 +39,7 @@ def cache_dir() -> Path:
 
 
 def rhs_source(st: np.ndarray) -> str:
-    """Straight-line ``web_rhs(st, cf, y, out, work)`` for the structure table ``st``."""
+    """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``."""
     S, n, carrion, L, Cc, U, logistic, crowding = (int(x) for x in st[: kernel.HEADER])
     H = kernel.HEADER
     cons, res = st[H:H + L], st[H + L:H + 2 * L]
@@ -48,9 +48,10 @@ def rhs_source(st: np.ndarray) -> str:
     op = H + 4 * L + 2 * Cc + 2 * U
     mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
     partner, interfere, sterile = st[op:op + S], st[op + S:op + 2 * S], st[op + 2 * S:op + 3 * S]
-    adult = st[op + 3 * S:op + 4 * S]
+    adult, wave = st[op + 3 * S:op + 4 * S], st[op + 4 * S:op + 5 * S]
     o_quad, o_obH, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S, 9 * S
-    o_a = 10 * S
+    o_amp, o_om, o_ph = 10 * S, 11 * S, 12 * S
+    o_a = 13 * S
     o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -84,6 +85,8 @@ def rhs_source(st: np.ndarray) -> str:
             if res[l] >= 0:
                 body.append(f"loss{res[l]} += eaten")
     body += [f"o{i} = cf[{i}] * b{i}" for i in range(S)]
+    body += [f"o{i} *= 1.0 + cf[{o_amp + i}] * math.cos(cf[{o_om + i}] * t - cf[{o_ph + i}])"
+             for i in range(S) if wave[i]]
     for i in range(S):
         if sterile[i]:
             body += [f"if cf[{o_ster + i}] > 0:", f"    o{i} *= y{i} / (y{i} + cf[{o_ster + i}])"]
@@ -107,7 +110,7 @@ def rhs_source(st: np.ndarray) -> str:
         if S in {int(r) for r in res}:
             body.append(f"o{S} -= loss{S}")
     body += [f"out[{i}] = o{i}" for i in range(n)]
-    return "@kernel_jit\ndef web_rhs(st, cf, y, out, work):\n" + "".join(f"    {b}\n" for b in body)
+    return "@kernel_jit\ndef web_rhs(st, cf, t, y, out, work):\n" + "".join(f"    {b}\n" for b in body)
 
 
 def module_source(st: np.ndarray) -> str:

@@ -11,9 +11,9 @@ Members are independent by construction: nothing is shared between rows.
 Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any``, then per
 feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
 mutualism pairs (2·U), and per species its obligate partner (S; −1 for none), an interference
-flag (S), a sterile-release flag (S) and the adult stage a juvenile matures into (S; −1 for
-none). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow, quad, obH,
-gamma, sterile, mat (S each), a, ah, e, food (L each), alpha (Cc), beta,
+flag (S), a sterile-release flag (S), the adult stage a juvenile matures into (S; −1 for
+none) and a sinusoidal-breeding flag (S). Coefficient rows (float64, one per member): scale,
+rpos, lin, dens, inflow, quad, obH, gamma, sterile, mat, amp, omega, phase (S each), a, ah, e, food (L each), alpha (Cc), beta,
 H (U each), decay (1). A link whose resource is −1 eats a constant alternative food of density
 ``food``.
 """
@@ -32,13 +32,14 @@ HEADER = 8  # entries of the structure table before the per-link columns
 
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
-__all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
+__all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
-           "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment"]
 
 A = DormandPrince54.A.copy()
 B = DormandPrince54.B.copy()
+C = DormandPrince54.C.copy()
 E = DormandPrince54.E.copy()
 STAGES = DormandPrince54.n_stages
 INITIAL_EXPONENT = 1.0 / (DormandPrince54.error_estimator_order + 1)
@@ -113,16 +114,18 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
 
 
 @kernel_jit
-def web_rhs(st, cf, y, out, work):
+def web_rhs(st, cf, t, y, out, work):
     """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
 
-    ``st`` structure table, ``cf`` the member's coefficient row, ``y`` (n,), ``out`` (n,),
-    ``work`` (5, n) scratch (births, loss, denominators, crowding or boost, seen flags).
+    ``st`` structure table, ``cf`` the member's coefficient row, ``t`` the time (for seasonal
+    births), ``y`` (n,), ``out`` (n,), ``work`` (5, n) scratch (births, loss, denominators,
+    crowding or boost, seen flags).
     """
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
     o_quad, o_obH, o_ster, o_mat = 5 * S, 6 * S, 8 * S, 9 * S
-    o_a = 10 * S
+    o_amp, o_om, o_ph = 10 * S, 11 * S, 12 * S
+    o_a = 13 * S
     o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -152,6 +155,10 @@ def web_rhs(st, cf, y, out, work):
         feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):
         out[i] = cf[i] * births[i]
+    wp = sp + 2 * S  # sinusoidal breeding flags
+    for i in range(S):
+        if st[wp + i] == 1:
+            out[i] *= 1.0 + cf[o_amp + i] * math.cos(cf[o_om + i] * t - cf[o_ph + i])
     for i in range(S):
         if st[sp + i] == 1:
             sd = cf[o_ster + i]
@@ -203,6 +210,15 @@ def power_array(x, p):
 
 
 @kernel_jit
+def cos_array(x):
+    """``cos(x)`` elementwise through the C library (as the kernel computes it)."""
+    out = np.empty_like(x)
+    for i in range(x.shape[0]):
+        out[i] = math.cos(x[i])
+    return out
+
+
+@kernel_jit
 def rms(x, n):
     acc = x[0] * x[0]
     for j in range(1, n):
@@ -230,7 +246,7 @@ def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc
     h0 = nmin(h0, interval)
     for j in range(n):
         y1[j] = y0[j] + (h0 * direction) * f0[j]
-    web_rhs(st, cf, y1, f1, work)
+    web_rhs(st, cf, t0 + h0 * direction, y1, f1, work)
     for j in range(n):
         y1[j] = (f1[j] - f0[j]) / sc[j]
     d2 = rms(y1, n) / h0
@@ -294,7 +310,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
         if not all_finite(y):
             reason[m] = NONFINITE
             continue
-        web_rhs(st, cf, y, K[0], work)
+        web_rhs(st, cf, t0, y, K[0], work)
         nfev += 1
         if not all_finite(K[0]):
             reason[m] = NONFINITE
@@ -310,7 +326,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
 
 
 @kernel_inline
-def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
+def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
     """One Dormand-Prince step of size ``hs`` from ``y`` (derivative in ``K[0]``) into ``y_new``
     (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.integrate.error_norm`."""
     n = y.shape[0]
@@ -318,11 +334,11 @@ def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
         combine_stages(K, A[s], s, tmp)
         for j in range(n):
             tmp[j] = tmp[j] * hs + y[j]
-        web_rhs(st, cf, tmp, K[s], work)
+        web_rhs(st, cf, t + C[s] * hs, tmp, K[s], work)
     combine_stages(K, B, STAGES, y_new)
     for j in range(n):
         y_new[j] = y_new[j] * hs + y[j]
-    web_rhs(st, cf, y_new, K[STAGES], work)
+    web_rhs(st, cf, t_new, y_new, K[STAGES], work)
     combine_stages(K, E, STAGES + 1, tmp)
     for j in range(n):
         scale = nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
@@ -343,7 +359,7 @@ def next_step(err, hs, rejected):
 
 
 @kernel_inline
-def accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax):
+def accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax):
     """Take ``y_new`` (projected onto y ≥ 0) as the state; returns (failure code, evaluations)."""
     n = y.shape[0]
     code = 0
@@ -356,7 +372,7 @@ def accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax):
         # keep FSAL consistent: the stored derivative must belong to the projected state
         for j in range(n):
             y_new[j] = nmax(y_new[j], 0.0)
-        web_rhs(st, cf, y_new, K[STAGES], work)
+        web_rhs(st, cf, t_new, y_new, K[STAGES], work)
         nfev = 1
         if not all_finite(K[STAGES]):
             code = NONFINITE
@@ -398,14 +414,14 @@ def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
         if clipped:
             t_new = t1
         hs = t_new - t
-        err = trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol)
+        err = trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol)
         nfev += STAGES
         h = next_step(err, hs, rejected)
         rejected = not err < 1
         last_nonfinite = not math.isfinite(err)
         if rejected:
             continue
-        code, extra = accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax)
+        code, extra = accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax)
         nfev += extra
         t = t_new
         nacc += 1

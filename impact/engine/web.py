@@ -38,7 +38,7 @@ def pack_structure(web: FoodWeb) -> np.ndarray:
     per_species = ([partner.get(i, -1) for i in range(S)] + [int(i in web.interference) for i in range(S)]
                    + [int(i in web.sterile) for i in range(S)])
     adult = dict(web.stages)
-    per_species += [adult.get(i, -1) for i in range(S)]
+    per_species += [adult.get(i, -1) for i in range(S)] + [int(i in web.wave) for i in range(S)]
     return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
