@@ -86,6 +86,8 @@ def describe_case(case: Case) -> str:
         if s.breeding_season is not None:
             bits.append(f"breeds in {case.seasons.part_name}s {s.breeding_season[0]}–{s.breeding_season[1]} "
                         f"(births × {s.breeding_outside:g} outside)")
+        if s.breeding_amplitude is not None:
+            bits.append(f"births × (1 + {s.breeding_amplitude}·cos), peaking in {case.seasons.part_name} {s.breeding_peak:g}")
         if s.matures_into is not None:
             bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
         bits.append(f"initial={s.initial}")
@@ -154,7 +156,7 @@ def cmd_check(args) -> int:
 
     case = load_case(args.case)
     print(describe_case(case))
-    for line in _unused_warnings(case, unused_parameters(case)):
+    for line in _unused_warnings(case, unused_parameters(case)) + _unit_warnings(case):
         print(line)
     est = estimate(case, case.members, machine_cores())
     print(est.describe())
@@ -168,6 +170,13 @@ def _unused_warnings(case: Case, names) -> list[str]:
     return [f"warning: {case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears "
             f"in the sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
             for n in names]
+
+
+def _unit_warnings(case: Case) -> list[str]:
+    """Parameters whose unit names another time unit than the field they feed."""
+    from .case import unit_warnings
+
+    return [f"warning: {case.path}: {w}" for w in unit_warnings(case)]
 
 
 def _assess_plan(args, case: Case):
@@ -201,7 +210,7 @@ def _assess_plan(args, case: Case):
     folder = OutputFolder(args.out, replace=args.replace_results)
     est = estimate(case, members, 1 if args.cluster else (args.workers or machine_cores()), out=folder.path)
     check_fits(est, case, ("command line", "--members") if args.members is not None else (case.path, "case.members"))
-    for line in _unused_warnings(case, unused_parameters(case)):
+    for line in _unused_warnings(case, unused_parameters(case)) + _unit_warnings(case):
         print(line, file=sys.stderr)
     return members, seed, folder, est
 

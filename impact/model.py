@@ -538,7 +538,8 @@ def equations(case: Case) -> list[str]:
             if f.consumer == n:
                 birth.append(f"e·I({f.resource})·{n}")
         if birth:
-            scale = "φ·s(t)" if s.breeding_season is not None else "φ"
+            seasonal = s.breeding_season is not None or s.breeding_amplitude is not None
+            scale = "φ·s(t)" if seasonal else "φ"
             scale += "·(1−f)" + (f"·{n}/({n}+S)" if n in sterile else "")
             terms.append(f"{scale}·[{' + '.join(birth)}]")
         if s.growth == "logistic":
@@ -566,6 +567,9 @@ def equations(case: Case) -> list[str]:
         lines.append("obligate mutualism: births × P/(H_o + P), none without the partner P (Holland & DeAngelis 2010)")
     if any(s.breeding_season is not None for s in case.species):
         lines.append(f"s(t) = 1 in the breeding {case.seasons.part_name}s of each season, the declared outside level elsewhere")
+    if any(s.breeding_amplitude is not None for s in case.species):
+        lines.append(f"s(t) = 1 + A·cos(2π(t − t_peak)/{case.seasons.length:g}) for a sinusoidal breeding season "
+                     f"(t_peak the middle of the peak {case.seasons.part_name})")
     if sterile:
         lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
     if juvenile:

@@ -208,6 +208,12 @@ BAD_TERMS = [
      lambda d: d["interactions"].extend([{"kind": "alternative-food", "consumer": "fox", "density": 10.0, "attack_rate": 0.1,
                                           "handling_time": 0.1, "efficiency": 0.1}] * 2),
      "interactions[6].consumer", "already has an alternative food"),
+    ("sinusoidal breeding with an amplitude above one",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"amplitude": 1.5, "peak": 20})),
+     "species.grass.breeding_season.amplitude", "<= 1"),
+    ("breeding season mixing a window and a sinusoid",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"amplitude": 0.5, "peak": 20, "first": 3})),
+     "species.grass.breeding_season.first", "unknown key"),
     ("juvenile stage that breeds", lambda d: d["species"][0].update(matures_into="hare", maturation_rate=1.0),
      "species.grass.growth", "does not breed"),
     ("juvenile of an unknown species", lambda d: d["species"][1].update(matures_into="owl", maturation_rate=1.0),
@@ -265,3 +271,21 @@ def test_new_terms_and_aliases_are_read(tmp_path):
     assert case.intervention("spring cull").times == tuple(k + 13 / 52 for k in (2, 3, 4, 5))
     # a wrapping breeding season (weeks 48 to 4) is one span across the turn of the season
     assert case.seasons.windows(48, 4, 0.0, 2.0) == ((0.0, 4 / 52), (47 / 52, 1 + 4 / 52), (1 + 47 / 52, 2.0))
+
+
+def test_units_that_name_another_time_unit_are_warned_about(tmp_path, capsys):
+    # README's units table: rates are per time unit of the case, efficiencies have no time in them
+    from impact.case import unit_warnings
+    from impact.cli import main
+
+    data = web_case()
+    data["parameters"]["grass_r"]["unit"] = "1/day"  # a growth rate, but the case counts years
+    data["parameters"]["cull"]["unit"] = "fraction per year"  # a cull fraction has no time in it
+    f = write_case(tmp_path, data)
+    warnings = unit_warnings(load_case(f))
+    assert len(warnings) == 2
+    assert "parameters.grass_r" in warnings[0] and "'year'" in warnings[0] and "species.grass.growth_rate" in warnings[0]
+    assert "parameters.cull" in warnings[1] and "no time in its dimension" in warnings[1]
+    assert main(["check", str(f)]) == 0
+    assert capsys.readouterr().out.count("warning:") == 2
+    assert unit_warnings(load_case(write_case(tmp_path, web_case()))) == ()  # ha/year, 1/year: consistent
