@@ -514,40 +514,52 @@ def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None) -> 
     return WebRHS(web, p, c)(t, y, np.asarray(idx))
 
 
+def _birth_text(case: Case, s, sterile: set[str]) -> str:
+    """The births term of one species as text ('' when it has none)."""
+    n = s.name
+    birth = []
+    if s.growth in ("logistic", "exponential"):
+        ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
+        need = [u.partner for u in case.mutualism if u.beneficiary == n and u.obligate]
+        g = f"r_{n}·{n}" + (f"·(1 + Σ β·P/(H+P) for P in {', '.join(ben)})" if ben else "")
+        g += "".join(f"·{x}/(H_o+{x})" for x in need)
+        birth.append(g)
+    birth += [f"e·I({f.resource})·{n}" for f in case.feeding if f.consumer == n]
+    if not birth:
+        return ""
+    seasonal = s.breeding_season is not None or s.breeding_amplitude is not None
+    scale = ("φ·s(t)" if seasonal else "φ") + "·(1−f)" + (f"·{n}/({n}+S)" if n in sterile else "")
+    return f"{scale}·[{' + '.join(birth)}]"
+
+
 def equations(case: Case) -> list[str]:
     """Human-readable equations of the built model, one line per state variable, then the
     definitions of the terms they use (units in README's case-file tables)."""
     lines = []
     sterile = {iv.species for iv in case.interventions if iv.kind == "sterile-release"}
     juvenile = {s.matures_into: s.name for s in case.species if s.matures_into is not None}
+    stage_births = []
     for s in case.species:
         n = s.name
         terms = []
-        if n in juvenile:
-            terms.append(f"(births born as {juvenile[n]}) + μ_{juvenile[n]}·{juvenile[n]}")
+        births = _birth_text(case, s, sterile)
         if s.matures_into is not None:
-            terms.append(f"+ births of {s.matures_into} − μ_{n}·{n}")
-        birth = []
-        if s.growth in ("logistic", "exponential"):
-            ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
-            need = [u.partner for u in case.mutualism if u.beneficiary == n and u.obligate]
-            g = f"r_{n}·{n}" + (f"·(1 + Σ β·P/(H+P) for P in {', '.join(ben)})" if ben else "")
-            g += "".join(f"·{x}/(H_o+{x})" for x in need)
-            birth.append(g)
-        for f in case.feeding:
-            if f.consumer == n:
-                birth.append(f"e·I({f.resource})·{n}")
-        if birth:
-            seasonal = s.breeding_season is not None or s.breeding_amplitude is not None
-            scale = "φ·s(t)" if seasonal else "φ"
-            scale += "·(1−f)" + (f"·{n}/({n}+S)" if n in sterile else "")
-            terms.append(f"{scale}·[{' + '.join(birth)}]")
+            terms.append(f"births of {s.matures_into}")
+        if n in juvenile:
+            terms.append(f"μ_{juvenile[n]}·{juvenile[n]}")
+            if births:
+                stage_births.append(f"births of {n} (born as {juvenile[n]}) = {births}")
+        elif births:
+            terms.append(births)
+        terms = [" + ".join(terms)] if terms else []
         if s.growth == "logistic":
             comps = [c.competitor for c in case.competition if c.species == n]
             crowd = n + "".join(f" + α·{x}" for x in comps)
             terms.append(f"− r_{n}·{n}·({crowd})/(κ·K_{n})")
         if s.crowding_mortality != 0.0:
             terms.append(f"− μ_{n}·{n}²")
+        if s.matures_into is not None:
+            terms.append(f"− μ_{n}·{n}")
         if s.mortality != 0.0:
             terms.append(f"− m_{n}·{n}")
         for f in case.feeding:
@@ -561,6 +573,7 @@ def equations(case: Case) -> list[str]:
         scav = [f.consumer for f in case.feeding if f.resource == CARRION]
         lines.append("dcarrion/dt = Σ yield·(m·N + harvest carcasses) − δ·carrion"
                      + "".join(f" − I_{x}(carrion)·{x}" for x in scav))
+    lines += stage_births
     lines.append("I = a·R (type I), a·R/D (type II), a·R²/D (type III), a·R/D (Beddington–DeAngelis) with "
                  "D = 1 + Σ a·h·R^q over the consumer's saturating links + γ·C for a Beddington–DeAngelis consumer C")
     if any(u.obligate for u in case.mutualism):
@@ -573,6 +586,6 @@ def equations(case: Case) -> list[str]:
     if sterile:
         lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
     if juvenile:
-        lines.append("life stages: an adult's births (the bracket above) are born into its juvenile stage, "
-                     "which matures into the adult at rate μ")
+        lines.append("life stages: an adult's births are born into its juvenile stage, which matures into the "
+                     "adult at rate μ (de Roos & Persson 2013)")
     return lines
