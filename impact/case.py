@@ -1038,12 +1038,29 @@ def _time_words(text: str) -> set[str]:
     return found
 
 
+def _plain(unit: str) -> str:
+    return "".join(unit.lower().split())
+
+
+def _abundance_of(case: Case, item, name: str) -> "Species | None":
+    """The species whose abundance unit a field is in (None for fields of other dimensions)."""
+    if isinstance(item, Species) and name in ("carrying_capacity", "initial"):
+        return item
+    if isinstance(item, Mutualism) and name == "half_saturation":
+        return case.species_by_name(item.partner)
+    if isinstance(item, Intervention) and name in ("sterile_density", "amount"):
+        return case.species_by_name(item.species)
+    return None
+
+
 def unit_warnings(case: Case) -> tuple[str, ...]:
-    """Parameters whose declared unit disagrees in time with the field they feed.
+    """Parameters whose declared unit disagrees with the field they feed.
 
     A rate's or a handling time's unit must name the case's ``time_unit`` (when that is a known
     time word) and no other; a field without time in its dimension (efficiencies, coefficients,
-    abundances, fractions) must name none. Units are free text, so this is a warning, not an error.
+    abundances, fractions) must name none; an abundance (carrying capacity, initial abundance, a
+    partner's half-saturation, a sterile density, an amount released) must be in its species'
+    declared unit. Units are free text, so this is a warning, not an error.
     """
     own = _time_words(case.time_unit)
     params = {p.name: p for p in case.parameters}
@@ -1062,10 +1079,13 @@ def unit_warnings(case: Case) -> tuple[str, ...]:
                 continue
             words = _time_words(params[ref].unit)
             timed = f.name in PER_TIME_FIELDS or f.name in TIME_FIELDS
+            whose = _abundance_of(case, item, f.name)
             if timed and own and words and words != own:
                 problem = f"names {', '.join(sorted(words))}, but the case's time unit is {case.time_unit!r}"
             elif not timed and words:
                 problem = "names a time unit, but this field has no time in its dimension"
+            elif whose is not None and _plain(params[ref].unit) != _plain(whose.unit):
+                problem = f"is not {whose.name}'s unit {whose.unit!r}"
             else:
                 continue
             if (ref, f.name) not in seen:

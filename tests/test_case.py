@@ -289,3 +289,9 @@ def test_units_that_name_another_time_unit_are_warned_about(tmp_path, capsys):
     assert main(["check", str(f)]) == 0
     assert capsys.readouterr().out.count("warning:") == 2
     assert unit_warnings(load_case(write_case(tmp_path, web_case()))) == ()  # ha/year, 1/year: consistent
+    data = web_case()
+    data["species"][0]["unit"] = "g/m2"
+    data["parameters"]["k"] = {"distribution": "uniform", "low": 900.0, "high": 1100.0, "unit": "kg/ha"}
+    data["species"][0]["carrying_capacity"] = "k"
+    (warning,) = unit_warnings(load_case(write_case(tmp_path, data)))
+    assert "parameters.k" in warning and "not grass's unit 'g/m2'" in warning
