@@ -14,6 +14,9 @@ from .errors import CaseError
 from .integrate import FAILURE_REASONS
 from .model import Controls, build_web, web_params
 
+# intervention fields that `--parameter INTERVENTION.FIELD` may vary
+INTENSITIES = ("rate", "fraction", "factor", "sterile_density")
+
 
 def transitions(parameter: str, values: np.ndarray, regime, period) -> pd.DataFrame:
     """Changes of (regime, period) between scan values, with a kind for each change.
@@ -87,7 +90,7 @@ def scan_target(case: Case, name: str, option_name: str | None):
         ivs = {iv.name: iv for iv in case.interventions}
         if iv_name in ivs:
             iv = ivs[iv_name]
-            allowed = [f for f in ("rate", "fraction", "factor") if getattr(iv, f) is not None]
+            allowed = [f for f in INTENSITIES if getattr(iv, f) is not None]
             if fld not in allowed:
                 raise CaseError("command line", "--parameter",
                                 f"intervention {iv_name!r} ({iv.kind}) has no intensity {fld!r}; use one of: {', '.join(allowed) or 'none'}")
@@ -99,7 +102,7 @@ def scan_target(case: Case, name: str, option_name: str | None):
                 new_iv = replace(iv, **{fld: float(v)})
                 return replace(case, interventions=tuple(new_iv if x.name == iv_name else x for x in case.interventions)), base
             return at
-    choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in ("rate", "fraction", "factor")
+    choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in INTENSITIES
                               if getattr(iv, f) is not None]
     raise CaseError("command line", "--parameter", f"unknown quantity {name!r}; choose a parameter or an intervention intensity: {', '.join(choices)}")
 
