@@ -174,7 +174,7 @@ def _unused_warnings(case: Case, names) -> list[str]:
 
 def _unit_warnings(case: Case) -> list[str]:
     """Parameters whose unit names another time unit than the field they feed."""
-    from .case import unit_warnings
+    from .units import unit_warnings
 
     return [f"warning: {case.path}: {w}" for w in unit_warnings(case)]
 

@@ -275,7 +275,7 @@ def test_new_terms_and_aliases_are_read(tmp_path):
 
 def test_units_that_name_another_time_unit_are_warned_about(tmp_path, capsys):
     # README's units table: rates are per time unit of the case, efficiencies have no time in them
-    from impact.case import unit_warnings
+    from impact.units import unit_warnings
     from impact.cli import main
 
     data = web_case()
