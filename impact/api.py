@@ -30,7 +30,7 @@ import pandas as pd
 from . import __version__
 from .assess import (Ensemble, assess_members, bands_table, draw_ensemble, failure_counts, members_table,
                      risk_table)
-from .case import Case
+from .case import Case, schedule_text
 from .case import load_case as _read_case
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
@@ -164,7 +164,8 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                       "min_members": case.risk.min_members,
                       "likelihood_scale": "IPCC likelihood scale (Mastrandrea et al. 2010)"},
         "interventions": [dict(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start, end=iv.end,
-                               description=iv.description) for iv in case.interventions],
+                               description=iv.description, schedule=schedule_text(case, iv))
+                          for iv in case.interventions],
         # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
         "interactions": ([dict(kind=f.kind, **{"from": f.consumer, "to": f.resource}, response=f.response)
                           for f in case.feeding]
@@ -172,7 +173,9 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                             for c in case.competition]
                          + [dict(kind="mutualism", **{"from": u.partner, "to": u.beneficiary},
                                  response="obligate" if u.obligate else None)
-                            for u in case.mutualism]),
+                            for u in case.mutualism]
+                         + [dict(kind="life-stage", **{"from": s.name, "to": s.matures_into}, response=None)
+                            for s in case.species if s.matures_into is not None]),
         "equations": equations(case), "assumptions": list(case.notes), "plausibility": PLAUSIBILITY_RULE,
         "packages": package_versions(), "platform": platform.platform(), "stages": ["assess"], "caution": CAUTION,
     }

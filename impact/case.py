@@ -355,6 +355,14 @@ class Case:
         raise KeyError(name)
 
 
+def schedule_text(case: Case, iv: Intervention) -> str:
+    """How an intervention is scheduled by season, in words ("" when it is not)."""
+    if iv.season_parts is None or case.seasons is None:
+        return ""
+    first, last = iv.season_parts
+    return f"only in {case.seasons.part_name}s {first}–{last} of every season"
+
+
 # --------------------------------------------------------------------------------------------
 # reading helpers
 

@@ -12,7 +12,7 @@ import numpy as np
 
 from . import __version__
 from .api import AssessSettings, assess, package_versions, prior_screen, write_results
-from .case import Case, load_case
+from .case import Case, load_case, schedule_text
 from .effects import event_text
 from .errors import CaseError, WriteError
 from .execute import WorkerLost
@@ -133,7 +133,7 @@ def describe_case(case: Case) -> str:
             when = "at " + ", ".join(f"{t:g}" for t in iv.times)
         when += f" {case.time_unit}"
         if iv.season_parts is not None:
-            when += f", only in {case.seasons.part_name}s {iv.season_parts[0]}–{iv.season_parts[1]} of each season"
+            when += ", " + schedule_text(case, iv)
         what = f" ({iv.sterile_density} sterile × competitiveness {iv.competitiveness})" if iv.kind == "sterile-release" else ""
         L.append(f"  {iv.name}: {iv.kind} of {iv.species}{what} {when}")
     L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))

@@ -20,6 +20,7 @@ KIND_STYLE = {
     "alternative-food": ("#8e5b2e", "--"),
     "competition": ("#555555", "--"),
     "mutualism": ("#1e8449", "-"),
+    "life-stage": ("#7d3c98", ":"),
 }
 RESPONSE_LABELS = {"holling1": "Holling I", "holling2": "Holling II", "holling3": "Holling III",
                    "beddington-deangelis": "Beddington–DeAngelis"}
