@@ -292,6 +292,10 @@ def test_beddington_deangelis_reduces_to_holling2_and_matches_its_equilibrium(tm
     # isocline r(1 − N/K) = a P / D gives P = e r N (1 − N/K)/m, and D = e a N/m gives
     # γ e r N²/K + (e a − m a h − γ e r) N − m = 0 (derived here; the model's isocline analysis is in
     # Cantrell & Cosner 2001, J. Math. Anal. Appl. 257:206–222, from memory).
+    # the predator isocline itself: e a N/(1 + a h N + γ P) = m  ⇔  P = ((e a − m a h) N − m)/(m γ)
+    P_iso = ((e * a - m * a * h) * N - m) / (m * g)
+    data = web("beddington-deangelis", g, P0=P_iso)
+    assert abs(_rhs_of(tmp_path, data)[0, 1]) < 1e-14 * m * P_iso
     N_star = max(np.roots([g * e * r / K, e * a - m * a * h - g * e * r, -m]).real)
     P_star = e * r * N_star * (1 - N_star / K) / m
     case, run = simulate(tmp_path, web("beddington-deangelis", g, horizon=600.0), option=None, members=1)
