@@ -125,7 +125,8 @@ class Mutualism:
     """Saturating benefit of ``partner`` to the births of ``beneficiary``.
 
     Facultative: births × (1 + max_benefit·P/(half_saturation + P)). Obligate: births ×
-    P/(half_saturation + P), none without the partner (``max_benefit`` is 0 and unused).
+    P/(half_saturation + P), none without the partner (``max_benefit`` is 0 and unused); with
+    several obligate partners, births × (1 − Π half_saturation/(half_saturation + P)).
     """
 
     beneficiary: str
@@ -676,13 +677,12 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
                 if "max_benefit" in t.data:
                     r.fail(f"interactions[{i}].max_benefit", "an obligate mutualism has no max_benefit: births are "
                                                              "r·P/(half_saturation + P), at most r")
-                if any(u.obligate and u.beneficiary == ben for u in mutualism):
-                    r.fail(f"interactions[{i}].beneficiary", f"{ben!r} already depends obligately on a partner; "
-                                                             "one obligate partner per species")
                 mb = 0.0
             else:
                 mb = t.quantity("max_benefit", low=0)
             hs = t.quantity("half_saturation", low=0, low_open=True)
+            if any(u.beneficiary == ben and u.partner == par for u in mutualism):
+                r.fail(f"interactions[{i}].partner", f"{par!r} is already declared a mutualist partner of {ben!r}")
             mutualism.append(Mutualism(ben, par, mb, hs, dep == "obligate"))
         t.done()
 

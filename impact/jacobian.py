@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .model import (RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes, resource_density,
-                    season_wave)
+from .model import (RESPONSE_POWER, Controls, FoodWeb, WebParams, fertile_share, intakes, pollinated_share,
+                    resource_density, season_wave)
 
 
 def _intake_gradients(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
@@ -133,6 +133,23 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None
     return J
 
 
+def _pollinated_gradient(web: FoodWeb, obH: np.ndarray, N: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """The obligate share 1 − Π_o H_o/(H_o + P_o) of births, (m, S), and its gradient (m, S, n):
+    ∂/∂P_o = H_o/(H_o + P_o)² Π_{k≠o} H_k/(H_k + P_k)."""
+    m, S = N.shape
+    miss = {}
+    for u, (ben, par) in enumerate(web.obligate):
+        miss.setdefault(ben, []).append((u, par, obH[:, u] / (obH[:, u] + N[:, par])))
+    ob = pollinated_share(web, obH, N)
+    dob = np.zeros((m, S, n))
+    for ben, parts in miss.items():
+        for u, par, q in parts:
+            others = np.prod([qq for uu, _, qq in parts if uu != u], axis=0) if len(parts) > 1 else 1.0
+            H = obH[:, u]
+            dob[:, ben, par] += others * H / ((H + N[:, par]) ** 2)
+    return ob, dob
+
+
 def _births_and_gradient(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> tuple[np.ndarray, np.ndarray]:
     """Births before controls, B_i = r⁺ N_i (1 + Σ β P/(H+P)) P_o/(H_o+P_o) + Σ e I N_i, and ∂B/∂y.
 
@@ -151,12 +168,7 @@ def _births_and_gradient(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> tupl
         P, H = N[:, par], p.H[idx, u]
         boost[:, ben] += p.beta[idx, u] * P / (H + P)
         dboost[:, ben, par] += p.beta[idx, u] * H / ((H + P) ** 2)
-    ob = np.ones_like(N)
-    dob = np.zeros((m, S, n))
-    for ben, par in web.obligate:
-        P, H = N[:, par], p.obH[idx, ben]
-        ob[:, ben] = P / (H + P)
-        dob[:, ben, par] = H / ((H + P) ** 2)
+    ob, dob = _pollinated_gradient(web, p.obH[idx], N, n)
     B = rp * N * boost * ob
     dB = (rp * N)[:, :, None] * (dboost * ob[:, :, None] + boost[:, :, None] * dob)
     for i in range(S):
@@ -172,6 +184,14 @@ def _births_and_gradient(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> tupl
             d_eaten[:, j] += I[l]
             dB[:, j, :] += e[:, None] * d_eaten
     return B, dB
+
+
+def _along(D: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Per-member D·v for D (m, S, S), v (m, S), summed column by column (no BLAS across members)."""
+    out = D[:, :, 0] * v[:, 0:1]
+    for j in range(1, v.shape[1]):
+        out = out + D[:, :, j] * v[:, j:j + 1]
+    return out
 
 
 def tangent(J: np.ndarray, v: np.ndarray) -> np.ndarray:
@@ -234,12 +254,10 @@ class WebTangent:
             births = rpos * N
             dbirths = rpos * dN_
         if web.obligate:
-            obH = g["obH"]
-            for ben, par in web.obligate:
-                P, dP, Ho = N[:, par], dN_[:, par], obH[:, ben]
-                share = P / (Ho + P)
-                dbirths[:, ben] = dbirths[:, ben] * share + births[:, ben] * Ho / ((Ho + P) * (Ho + P)) * dP
-                births[:, ben] = births[:, ben] * share
+            share, dshare = _pollinated_gradient(web, g["obH"], N, y.shape[1])
+            dshare_v = _along(dshare[:, :, :S], dN_)
+            dbirths = dbirths * share + births * dshare_v
+            births = births * share
         out = np.empty_like(y)
         jv = np.empty_like(y)
         if web.links:

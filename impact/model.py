@@ -25,9 +25,10 @@ r⁺ = max(r, 0) are births, r⁻ = min(r, 0) an exponential decline that fertil
 not touch; μ_i is crowding (density-dependent) mortality.
 
 Mutualism: a facultative partner u multiplies births by at most 1 + β_u, so a logistic
-beneficiary alone settles at K (1 + β P/(H + P)), not K. An obligate partner o (at most one per
-species) makes births P_o/(H_o + P_o) of their maximum and none without it (pollination-limited
-seed set; the saturating consumer–resource form of Holland & DeAngelis 2010).
+beneficiary alone settles at K (1 + β P/(H + P)), not K. An obligate partner o makes births
+P_o/(H_o + P_o) of their maximum and none without it (pollination-limited seed set; the
+saturating consumer–resource form of Holland & DeAngelis 2010); with several obligate partners,
+each pollinating independently, 1 − Π_o H_o/(H_o + P_o) (written P_o/(H_o + P_o) above for one).
 """
 
 from __future__ import annotations
@@ -61,7 +62,7 @@ class FoodWeb:
     mutualism: tuple[tuple[int, int], ...]  # (beneficiary, partner)
     carrion_yield: np.ndarray  # (S,)
     unit: tuple[str, ...]
-    obligate: tuple[tuple[int, int], ...] = ()  # (beneficiary, partner), one per beneficiary at most
+    obligate: tuple[tuple[int, int], ...] = ()  # (beneficiary, partner) of each obligate mutualism
     interference: tuple[int, ...] = ()  # consumers whose handling denominator has γ N
     crowding: bool = False  # some species has crowding mortality
     sterile: tuple[int, ...] = ()  # species that sterile releases may act on
@@ -98,8 +99,8 @@ class WebParams:
     noise_sd : ndarray (M, S)
     quad : ndarray (M, S)
         Crowding mortality μ (zeros by default).
-    obH : ndarray (M, S)
-        Half-saturation of each species' obligate partner (ones where there is none).
+    obH : ndarray (M, O)
+        Half-saturation of each obligate mutualism.
     gamma : ndarray (M, S)
         Interference of each consumer (zeros by default).
     food : ndarray (M, L)
@@ -133,10 +134,12 @@ class WebParams:
     phase: np.ndarray | None = None
 
     def __post_init__(self):
-        for name, fill in (("quad", 0.0), ("obH", 1.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
+        for name, fill in (("quad", 0.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
                            ("phase", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
+        if self.obH is None:
+            object.__setattr__(self, "obH", np.ones((self.r.shape[0], 0)))
         if self.food is None:
             object.__setattr__(self, "food", np.zeros(self.a.shape))
 
@@ -223,7 +226,6 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         decay = np.zeros(members)
     facultative = [u for u in case.mutualism if not u.obligate]
     omega = 2.0 * np.pi / case.seasons.length if case.seasons is not None else 0.0
-    obligate = {u.beneficiary: u.half_saturation for u in case.mutualism if u.obligate}
     gamma = {f.consumer: f.interference for f in case.feeding if f.response == "beddington-deangelis"}
     return WebParams(
         r=col([s.growth_rate for s in sp]),
@@ -239,7 +241,7 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         initial=initial,
         noise_sd=col([s.noise_sd for s in sp]),
         quad=col([s.crowding_mortality for s in sp]),
-        obH=col([obligate.get(s.name, 1.0) for s in sp]),
+        obH=col([u.half_saturation for u in case.mutualism if u.obligate]),
         gamma=col([gamma.get(s.name, 0.0) for s in sp]),
         food=col([f.food_density or 0.0 for f in case.feeding]),
         mat=col([s.maturation_rate for s in sp]),
@@ -310,12 +312,14 @@ class SegmentCoefficients:
         r / (κ K) for logistic species, else 0.
     inflow : ndarray (M, S)
         (m + c q) · carrion yield (zeros without a carrion pool).
-    quad, obH, gamma : ndarray (M, S)
-        Crowding mortality, obligate partner's half-saturation, interference.
+    quad, gamma : ndarray (M, S)
+        Crowding mortality, interference.
     food : ndarray (M, L)
         Alternative food density per link (0 for links to a state variable).
     sterile : ndarray (M, S)
         Sterile individuals present (density × competitiveness; 0 without releases).
+    obH : ndarray (M, O)
+        Half-saturation of each obligate mutualism.
     mat : ndarray (M, S)
         Maturation rate of juvenile stages.
     amp, omega, phase : ndarray (M, S)
@@ -331,7 +335,6 @@ class SegmentCoefficients:
     dens: np.ndarray
     inflow: np.ndarray
     quad: np.ndarray
-    obH: np.ndarray
     gamma: np.ndarray
     sterile: np.ndarray
     mat: np.ndarray
@@ -345,6 +348,7 @@ class SegmentCoefficients:
     alpha: np.ndarray
     beta: np.ndarray
     H: np.ndarray
+    obH: np.ndarray
     decay: np.ndarray
 
 
@@ -360,9 +364,9 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        quad=p.quad, obH=p.obH, gamma=p.gamma, sterile=c.sterile, mat=p.mat, amp=p.amp * c.wave,
+        quad=p.quad, gamma=p.gamma, sterile=c.sterile, mat=p.mat, amp=p.amp * c.wave,
         omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
-        alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay)
 
 
 def season_wave(g: dict, species: tuple[int, ...], t) -> np.ndarray:
@@ -380,6 +384,24 @@ def season_wave(g: dict, species: tuple[int, ...], t) -> np.ndarray:
         return np.ones_like(amp)
     arg = g["omega"][:, cols] * np.asarray(t, float)[:, None] - g["phase"][:, cols]
     return 1.0 + amp * cos_array(np.ascontiguousarray(arg).ravel()).reshape(arg.shape)
+
+
+def pollinated_share(web: FoodWeb, obH: np.ndarray, N: np.ndarray) -> np.ndarray:
+    """Share of births that obligate partners allow, 1 − Π_o H_o/(H_o + P_o): (m, S), 1 elsewhere.
+
+    Each partner o independently pollinates with chance P_o/(H_o + P_o); the sum
+    Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) gives the same share without cancellation (one
+    partner: exactly P/(H + P)), in the order of the compiled kernels.
+    """
+    share, miss = {}, {}
+    for u, (ben, par) in enumerate(web.obligate):
+        P, H = N[:, par], obH[:, u]
+        share[ben] = share.get(ben, 0.0) + miss.get(ben, 1.0) * (P / (H + P))
+        miss[ben] = miss.get(ben, 1.0) * (H / (H + P))
+    out = np.ones_like(N)
+    for ben, s in share.items():
+        out[:, ben] = s
+    return out
 
 
 def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
@@ -441,10 +463,7 @@ class WebRHS:
                 boost[:, ben] += beta[:, u] * P / (H[:, u] + P)
             births *= boost
         if web.obligate:
-            obH = g["obH"]
-            for ben, par in web.obligate:
-                P = N[:, par]
-                births[:, ben] *= P / (obH[:, ben] + P)
+            births = births * pollinated_share(web, g["obH"], N)
         out = np.empty_like(y)
         if web.links:
             loss = np.zeros_like(y)
@@ -522,7 +541,10 @@ def _birth_text(case: Case, s, sterile: set[str]) -> str:
         ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
         need = [u.partner for u in case.mutualism if u.beneficiary == n and u.obligate]
         g = f"r_{n}·{n}" + (f"·(1 + Σ β·P/(H+P) for P in {', '.join(ben)})" if ben else "")
-        g += "".join(f"·{x}/(H_o+{x})" for x in need)
+        if len(need) == 1:
+            g += f"·{need[0]}/(H_o+{need[0]})"
+        elif need:
+            g += f"·(1 − Π H_o/(H_o+P) for P in {', '.join(need)})"
         birth.append(g)
     birth += [f"e·I({f.resource})·{n}" for f in case.feeding if f.consumer == n]
     if not birth:

@@ -179,6 +179,9 @@ BAD_TERMS = [
      "interactions[0].type", "`type` is its older alias"),
     ("obligate mutualism with a max_benefit", lambda d: d["interactions"][4].update(dependence="obligate"),
      "interactions[4].max_benefit", "no max_benefit"),
+    ("the same mutualist pair twice",
+     lambda d: d["interactions"].append(dict(d["interactions"][4], dependence="obligate", max_benefit=None)),
+     "interactions[5].partner", "already declared a mutualist partner"),
     ("unknown dependence", lambda d: d["interactions"][4].update(dependence="partial"),
      "interactions[4].dependence", "facultative, obligate"),
     ("interference on a Holling II link", lambda d: d["interactions"][1].update(interference=0.1),
@@ -231,7 +234,7 @@ BAD_TERMS = [
 
 
 def _drop_none(data):
-    for iv in data["interventions"]:
+    for iv in data["interventions"] + data["interactions"]:
         for k in [k for k, v in iv.items() if v is None]:
             del iv[k]
     return data

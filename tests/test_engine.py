@@ -95,7 +95,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                   competition=((0, 1), (1, 0)), mutualism=((0, S - 1),),
                   carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S,
                   # the scavenger S−1 has a saturating link (on carrion), so it can carry interference
-                  obligate=((1, S - 1),) if new_terms else (), interference=(S - 1,) if new_terms else (),
+                  # species 1 breeds only with species S−1 or 2 (two obligate partners)
+                  obligate=((1, S - 1), (1, 2)) if new_terms else (), interference=(S - 1,) if new_terms else (),
                   crowding=new_terms, sterile=(0, 2) if new_terms else (),
                   stages=((2, 1),) if new_terms else (),  # species 2 is the juvenile stage of species 1
                   wave=(0,) if new_terms else ())  # species 0 breeds in a sinusoidal season
@@ -113,7 +114,7 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                  harvest=u(0.0, 0.1, S), carcass=(u(0, 1, S) > 0.5).astype(float))
     if new_terms:
         food = np.array([link.resource < 0 for link in web.links]) * u(1.0, 20.0, L)
-        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, S), gamma=u(0.0, 0.5, S), food=food,
+        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, 2), gamma=u(0.0, 0.5, S), food=food,
                     mat=u(0.2, 2.0, S), amp=u(0.0, 1.0, S), omega=u(3.0, 7.0, S), phase=u(0.0, 6.0, S))
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
@@ -207,8 +208,9 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        # scale, rpos, lin, dens, inflow, quad, obH, gamma, sterile, mat, decay (the kernel's column order)
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0]])\n"
+        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay (the
+        # kernel's column order, model.SegmentCoefficients)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 9])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

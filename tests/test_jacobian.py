@@ -50,6 +50,7 @@ def _web_with_new_terms(tmp_path, response):
          "initial": 100.0, "quasi_extinction": 1.0}]
     data["interactions"] += [
         {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "moth", "half_saturation": 20.0},
+        {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "beetle", "half_saturation": 3.0},
         {"kind": "mutualism", "beneficiary": "moth", "partner": "flower", "max_benefit": 0.5, "half_saturation": 50.0},
         {"kind": "predation", "predator": "hare", "prey": "flower", "response": response, "attack_rate": 0.001,
          "handling_time": 0.1, "efficiency": 0.2},

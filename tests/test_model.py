@@ -233,6 +233,22 @@ def test_obligate_plant_persists_only_above_the_pollinator_threshold(tmp_path):
     np.testing.assert_allclose(_rhs_of(tmp_path, data)[0, 0], -r * 40.0 ** 2 / K, rtol=1e-14)
 
 
+def test_two_obligate_pollinators_pollinate_independently(tmp_path):
+    # Two pollinators visiting independently: a flower stays unpollinated with chance
+    # Π H_o/(H_o + P_o), so births are r N (1 − Π H_o/(H_o + P_o)) and, with P constant,
+    # N* = K (1 − Π H_o/(H_o + P_o) − m/r) (derived here; closed form).
+    r, K, m = 1.0, 200.0, 0.1
+    sp = [{"name": "plant", "growth": "logistic", "growth_rate": r, "carrying_capacity": K, "mortality": m,
+           "initial": 50.0, "quasi_extinction": 0.0},
+          {"name": "bee", "growth": "exponential", "growth_rate": 0.0, "initial": 10.0, "quasi_extinction": 0.0},
+          {"name": "moth", "growth": "exponential", "growth_rate": 0.0, "initial": 4.0, "quasi_extinction": 0.0}]
+    inter = [{"kind": "mutualism", "dependence": "obligate", "beneficiary": "plant", "partner": "bee", "half_saturation": 30.0},
+             {"kind": "mutualism", "dependence": "obligate", "beneficiary": "plant", "partner": "moth", "half_saturation": 5.0}]
+    case, run = simulate(tmp_path, one_species_case(sp, horizon=300.0, extra={"interactions": inter}), option=None)
+    unpollinated = 30.0 / 40.0 * 5.0 / 9.0
+    assert run.states[0, -1, 0] == pytest.approx(K * (1 - unpollinated - m / r), rel=1e-6)
+
+
 def _obligate_pair(N0, P0, horizon=400.0):
     """Plant and pollinator that each breed only with the other (saturating, obligate both ways)."""
     sp = [{"name": "plant", "growth": "logistic", "growth_rate": 1.0, "carrying_capacity": 100.0, "mortality": 0.2,
@@ -451,7 +467,7 @@ def test_suppressing_the_pollinator_lowers_seed_set_and_raises_the_plants_risk()
     runs = {o.name if o else "baseline": run_option(case, web, p, vals, today, o, None, u) for o in [None, *case.options]}
     runs = {k: replace(r, states=r.states[kept], cummin=r.cummin[kept]) for k, r in runs.items()}
     moth, plant = case.species_names.index("hawkmoth"), case.species_names.index("primrose")
-    H = p.obH[kept, plant]
+    H = p.obH[kept, 0]  # the case's one obligate mutualism
 
     def share(run):  # time-mean pollination share P/(H + P) per member
         P = run.states[:, :, moth]

@@ -40,22 +40,25 @@ def cache_dir() -> Path:
 
 def rhs_source(st: np.ndarray) -> str:
     """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``."""
-    S, n, carrion, L, Cc, U, logistic, crowding = (int(x) for x in st[: kernel.HEADER])
+    S, n, carrion, L, Cc, U, logistic, crowding, O = (int(x) for x in st[: kernel.HEADER])
     H = kernel.HEADER
     cons, res = st[H:H + L], st[H + L:H + 2 * L]
     power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
     comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
     op = H + 4 * L + 2 * Cc + 2 * U
     mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
-    partner, interfere, sterile = st[op:op + S], st[op + S:op + 2 * S], st[op + 2 * S:op + 3 * S]
-    adult, wave = st[op + 3 * S:op + 4 * S], st[op + 4 * S:op + 5 * S]
-    o_quad, o_obH, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S, 9 * S
-    o_amp, o_om, o_ph = 10 * S, 11 * S, 12 * S
-    o_a = 13 * S
+    obl = st[op:op + 2 * O].reshape(-1, 2)
+    fp = op + 2 * O  # per-species flags
+    interfere, sterile = st[fp:fp + S], st[fp + S:fp + 2 * S]
+    adult, wave = st[fp + 2 * S:fp + 3 * S], st[fp + 3 * S:fp + 4 * S]
+    o_quad, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S
+    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
+    o_a = 12 * S
     o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
-    o_dec = o_H + U
+    o_obH = o_H + U
+    o_dec = o_obH + O
     body = [f"y{i} = y[{i}]" for i in range(n)]
     body += [f"b{i} = cf[{S + i}] * y{i}" for i in range(S)]
     if U:
@@ -63,7 +66,13 @@ def rhs_source(st: np.ndarray) -> str:
         body += [f"q{b} = 1.0" for b in bens]
         body += [f"q{b} += cf[{o_be + u}] * y{p} / (cf[{o_H + u}] + y{p})" for u, (b, p) in enumerate(mut)]
         body += [f"b{b} *= q{b}" for b in bens]
-    body += [f"b{i} *= y{p} / (cf[{o_obH + i}] + y{p})" for i, p in enumerate(partner) if p >= 0]
+    if O:  # pollinated share Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k), as the table kernel
+        bens = sorted({int(b) for b, _ in obl})
+        body += [f"g{b} = 0.0" for b in bens] + [f"m{b} = 1.0" for b in bens]
+        for u, (b, p) in enumerate(obl):
+            body += [f"g{b} = g{b} + m{b} * (y{p} / (cf[{o_obH + u}] + y{p}))",
+                     f"m{b} = m{b} * (cf[{o_obH + u}] / (cf[{o_obH + u}] + y{p}))"]
+        body += [f"b{b} *= g{b}" for b in bens]
     # a link's resource: its state variable, or (resource −1) the constant alternative food
     dens = [f"y{res[l]}" if res[l] >= 0 else f"cf[{o_food + l}]" for l in range(L)]
     if L:

@@ -8,13 +8,13 @@ numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.
 so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
 Members are independent by construction: nothing is shared between rows.
 
-Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any``, then per
+Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any, O``, then per
 feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
-mutualism pairs (2·U), and per species its obligate partner (S; −1 for none), an interference
-flag (S), a sterile-release flag (S), the adult stage a juvenile matures into (S; −1 for
-none) and a sinusoidal-breeding flag (S). Coefficient rows (float64, one per member): scale,
-rpos, lin, dens, inflow, quad, obH, gamma, sterile, mat, amp, omega, phase (S each), a, ah, e, food (L each), alpha (Cc), beta,
-H (U each), decay (1). A link whose resource is −1 eats a constant alternative food of density
+facultative mutualism pairs (2·U), obligate mutualism pairs (2·O), and per species an
+interference flag (S), a sterile-release flag (S), the adult stage a juvenile matures into (S; −1
+for none) and a sinusoidal-breeding flag (S). Coefficient rows (float64, one per member): scale,
+rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase (S each), a, ah, e, food
+(L each), alpha (Cc), beta, H (U each), obH (O), decay (1). A link whose resource is −1 eats a constant alternative food of density
 ``food``.
 """
 
@@ -28,7 +28,7 @@ import numpy as np
 from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
                       DormandPrince54, Failure)
 
-HEADER = 8  # entries of the structure table before the per-link columns
+HEADER = 9  # entries of the structure table before the per-link columns
 
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
@@ -76,8 +76,8 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
     resources' losses (handling denominators shared by each consumer's saturating links, plus
     the consumer's interference γ·N for a Beddington–DeAngelis consumer)."""
     S, n, L = st[0], st[1], st[3]
-    gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + S
-    o_gam = 7 * S
+    gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + 2 * st[8]
+    o_gam = 6 * S
     o_ah, o_e, o_food = o_a + L, o_a + 2 * L, o_a + 3 * L
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     for i in range(n):
@@ -123,17 +123,19 @@ def web_rhs(st, cf, t, y, out, work):
     """
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_quad, o_obH, o_ster, o_mat = 5 * S, 6 * S, 8 * S, 9 * S
-    o_amp, o_om, o_ph = 10 * S, 11 * S, 12 * S
-    o_a = 13 * S
+    O = st[8]
+    o_quad, o_ster, o_mat = 5 * S, 7 * S, 8 * S
+    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
+    o_a = 12 * S
     o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
-    o_dec = o_H + U
+    o_obH = o_H + U
+    o_dec = o_obH + O
     cp = HEADER + 4 * L
     up = cp + 2 * Cc
-    op = up + 2 * U  # obligate partners, then interference and sterile flags
-    sp = op + 2 * S
+    op = up + 2 * U  # obligate pairs, then the interference and sterile flags
+    sp = op + 2 * O + S
     births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
     for i in range(S):
         births[i] = cf[o_rpos + i] * y[i]
@@ -146,11 +148,23 @@ def web_rhs(st, cf, t, y, out, work):
             crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
         for i in range(S):
             births[i] *= crowd[i]
-    for i in range(S):
-        par = st[op + i]
-        if par >= 0:
+    if O > 0:
+        # share of births an obligate partner allows: 1 − Π H/(H + P), summed without cancellation
+        # as Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) (loss, den, seen are scratch until feeding)
+        for i in range(S):
+            loss[i] = 0.0
+            den[i] = 1.0
+            seen[i] = 0.0
+        for u in range(O):
+            ben, par = st[op + 2 * u], st[op + 2 * u + 1]
             P = y[par]
-            births[i] *= P / (cf[o_obH + i] + P)
+            Hh = cf[o_obH + u]
+            loss[ben] = loss[ben] + den[ben] * (P / (Hh + P))
+            den[ben] = den[ben] * (Hh / (Hh + P))
+            seen[ben] = 1.0
+        for i in range(S):
+            if seen[i] == 1.0:
+                births[i] *= loss[i]
     if L > 0:
         feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):

@@ -29,14 +29,13 @@ def pack_structure(web: FoodWeb) -> np.ndarray:
     links = web.links
     S = web.n_species
     head = [S, web.n_state, int(web.has_carrion), len(links), len(web.competition),
-            len(web.mutualism), int(web.logistic.any()), int(web.crowding)]
+            len(web.mutualism), int(web.logistic.any()), int(web.crowding), len(web.obligate)]
     cols = ([l.consumer for l in links] + [l.resource for l in links]
             + [RESPONSE_POWER[l.response] for l in links]
             + [int(l.response == "holling1") for l in links])
-    pairs = [x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
-    partner = dict(web.obligate)
-    per_species = ([partner.get(i, -1) for i in range(S)] + [int(i in web.interference) for i in range(S)]
-                   + [int(i in web.sterile) for i in range(S)])
+    pairs = ([x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
+             + [x for pair in web.obligate for x in pair])
+    per_species = [int(i in web.interference) for i in range(S)] + [int(i in web.sterile) for i in range(S)]
     adult = dict(web.stages)
     per_species += [adult.get(i, -1) for i in range(S)] + [int(i in web.wave) for i in range(S)]
     return np.array(head + cols + pairs + per_species, dtype=np.int64)
