@@ -152,6 +152,8 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         member_selection=("every kept member" if sel.size == M else
                           f"a random subset of {sel.size} of {M} kept members (seed {seed}, the same members for every option)"),
         basis=ATTRACTOR, start="each option's state at the horizon", controls="press controls in force just before the horizon",
+        seasons=("averaged: births at their season-mean multiplier, interventions scheduled by season at their rate "
+                 "times the share of the season they cover" if case.seasons is not None else "none declared"),
         noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
         share_interval=f"Wilson score interval, {SHARE_CONFIDENCE:.0%}", assessment_horizon=H,
         horizon_amplitude=HORIZON, counts=counts, declared=declared,
