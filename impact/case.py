@@ -672,6 +672,9 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             par = species_ref(f"interactions[{i}].partner", t.get("partner", kind="str"))
             if par == ben:
                 r.fail(f"interactions[{i}].partner", "a species cannot be its own mutualist partner")
+            if next(s for s in species if s.name == ben).growth == "none":
+                r.fail(f"interactions[{i}].beneficiary", f"a mutualism acts on births at growth_rate; {ben!r} has "
+                                                         "growth = \"none\" (give it logistic or exponential growth)")
             dep = r.choice(f"interactions[{i}].dependence", t.get("dependence", "facultative", "str"), DEPENDENCES)
             if dep == "obligate":
                 if "max_benefit" in t.data:
