@@ -403,6 +403,10 @@ def test_harvest_scheduled_by_season_acts_only_in_its_weeks(tmp_path):
     data["case"]["output_step"] = 0.25
     case, run = simulate(tmp_path, data)
     assert case.intervention("spray").windows == tuple((k + 9 / 52, k + 14 / 52) for k in (1, 2, 3))
+    from impact.simulate import segment_times  # the time line is cut at every window edge (step control)
+
+    cuts = set(segment_times(case, case.options[0], False).tolist())
+    assert {t for w in case.intervention("spray").windows for t in w} <= cuts
     t = run.times
     inside = sum(np.clip(t - (k + 9 / 52), 0, 5 / 52) for k in (1, 2, 3))
     assert rel_err_tol_units(run.states[0, :, 0], 10.0 * np.exp(r * t - q * inside), RTOL) < 100
