@@ -31,7 +31,7 @@ from . import __version__
 from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
 from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
                         ensemble_from_arrays)
-from .case import Case
+from .case import Case, schedule_text
 from .case import load_case as _read_case
 from .decision import drivers_table, information_table
 from .effects import comparisons_table, effects_table, event_text, objectives_table
@@ -185,11 +185,15 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                             min_members=case.risk.min_members,
                             likelihood_scale="IPCC likelihood scale (Mastrandrea et al. 2010)"),
         interventions=tuple(InterventionRecord(name=iv.name, kind=iv.kind, species=iv.species, start=iv.start,
-                                               end=iv.end, description=iv.description) for iv in case.interventions),
+                                               end=iv.end, description=iv.description, schedule=schedule_text(case, iv))
+                            for iv in case.interventions),
         # who acts on whom, for the report's food-web diagram (drawn from saved results alone)
         interactions=(tuple(InteractionRecord(f.kind, f.consumer, f.resource, f.response) for f in case.feeding)
                       + tuple(InteractionRecord("competition", c.competitor, c.species) for c in case.competition)
-                      + tuple(InteractionRecord("mutualism", u.partner, u.beneficiary) for u in case.mutualism)),
+                      + tuple(InteractionRecord("mutualism", u.partner, u.beneficiary, "obligate" if u.obligate else None)
+                              for u in case.mutualism)
+                      + tuple(InteractionRecord("life-stage", s.name, s.matures_into) for s in case.species
+                              if s.matures_into is not None)),
         equations=tuple(equations(case)), assumptions=tuple(case.notes), plausibility=PLAUSIBILITY_RULE,
         packages=package_versions(), platform=platform.platform(), stages=tuple(stages), caution=CAUTION,
         sensitivity=sensitivity, execution=execution, calibration=calibration,

@@ -20,8 +20,11 @@ from .priors import DISTRIBUTIONS, Fixed, Prior, prior_problems
 Quantity = float | str  # a number, or the name of a parameter in [parameters]
 
 GROWTH_FORMS = ("logistic", "exponential", "none")
-RESPONSES = ("holling1", "holling2", "holling3")
-INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism")
+RESPONSES = ("holling1", "holling2", "holling3", "beddington-deangelis")
+INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism", "alternative-food")
+OTHER_FOOD = "'s other food"  # a consumer's constant alternative food is named CONSUMER + this
+# how a beneficiary depends on its mutualist partner: a bonus on births, or no births without it
+DEPENDENCES = ("facultative", "obligate")
 # what the assessment wants for a species: options are meant to remove or reduce a target,
 # to spare a protected species; every other species is watched for side effects
 ROLES = ("target", "protected", "other")
@@ -38,9 +41,17 @@ INTERVENTION_KINDS = (
     "pulse-cull",
     "eradication",
     "fertility-control",
-    "introduction",
-    "habitat-change",
+    "sterile-release",
+    "carrying-capacity-change",
+    "release",
+    "first-arrival",
 )
+# older names still read, each as a documented alias of the name it maps to
+KIND_ALIASES = {"habitat-change": "carrying-capacity-change", "introduction": "release"}
+# kinds acting over [start, end] (optionally only in some parts of every season)
+SPAN_KINDS = ("press-harvest", "fertility-control", "sterile-release", "carrying-capacity-change")
+# kinds adding animals at one time
+ARRIVAL_KINDS = ("release", "first-arrival")
 CARRION = "carrion"
 
 
@@ -75,11 +86,19 @@ class Species:
     description: str
     role: str = "other"
     material_change: float | None = None
+    crowding_mortality: Quantity = 0.0
+    breeding_season: tuple[int, int] | None = None  # first and last part of the season with births
+    breeding_outside: float = 0.0  # births multiplier outside the breeding season
+    breeding_amplitude: Quantity | None = None  # sinusoidal breeding: births × (1 + A cos(...))
+    breeding_peak: float | None = None  # the season part where a sinusoidal breeding season peaks
+    matures_into: str | None = None  # this species is the juvenile stage of that one
+    maturation_rate: Quantity = 0.0
 
 
 @dataclass(frozen=True)
 class Feeding:
-    """Predation or scavenging: ``consumer`` eats ``resource`` (a species or the carrion pool)."""
+    """Predation, scavenging or alternative food: ``consumer`` eats ``resource`` (a species, the
+    carrion pool, or a constant food of density ``food_density`` named CONSUMER + OTHER_FOOD)."""
 
     kind: str
     consumer: str
@@ -88,6 +107,8 @@ class Feeding:
     attack_rate: Quantity
     handling_time: Quantity
     efficiency: Quantity
+    interference: Quantity = 0.0
+    food_density: Quantity | None = None  # alternative food only: its constant density
 
 
 @dataclass(frozen=True)
@@ -101,12 +122,18 @@ class Competition:
 
 @dataclass(frozen=True)
 class Mutualism:
-    """Saturating benefit of ``partner`` to the births of ``beneficiary``."""
+    """Saturating benefit of ``partner`` to the births of ``beneficiary``.
+
+    Facultative: births × (1 + max_benefit·P/(half_saturation + P)). Obligate: births ×
+    P/(half_saturation + P), none without the partner (``max_benefit`` is 0 and unused); with
+    several obligate partners, births × (1 − Π half_saturation/(half_saturation + P)).
+    """
 
     beneficiary: str
     partner: str
     max_benefit: Quantity
     half_saturation: Quantity
+    obligate: bool = False
 
 
 @dataclass(frozen=True)
@@ -139,14 +166,71 @@ class Intervention:
     factor: Quantity | None = None
     carcasses_to_carrion: bool = False
     description: str = ""
+    sterile_density: Quantity | None = None
+    competitiveness: Quantity = 1.0
+    windows: tuple[tuple[float, float], ...] = ()  # active spans when scheduled by season
+    season_parts: tuple[int, int] | None = None  # the parts of every season it acts in, as declared
 
     def event_times(self) -> tuple[float, ...]:
-        """Times at which the state jumps (culls, eradication, introduction)."""
+        """Times at which the state jumps (culls, eradication, releases)."""
         if self.kind == "pulse-cull":
             return self.times
-        if self.kind in ("eradication", "introduction"):
+        if self.kind in ("eradication", *ARRIVAL_KINDS):
             return (self.start,)
         return ()
+
+    def active(self, t: float) -> bool:
+        """Whether a span intervention acts at time ``t`` (inside a segment)."""
+        if self.windows:
+            return any(a <= t < b for a, b in self.windows)
+        return self.start <= t < self.end
+
+    def boundaries(self) -> tuple[float, ...]:
+        """Times where the intervention's controls switch (segment boundaries)."""
+        edges = {self.start, self.end, *self.event_times()}
+        for a, b in self.windows:
+            edges.update((a, b))
+        return tuple(sorted(edges))
+
+
+@dataclass(frozen=True)
+class Seasons:
+    """The optional ``[seasons]`` table: a season of ``length`` time units cut into ``parts``.
+
+    Time 0 (today) is the start of a season; part k (1-based) covers
+    [(k − 1)·length/parts, k·length/parts) of every season.
+    """
+
+    length: float
+    parts: int = 1
+    part_name: str = "part"
+
+    def windows(self, first: int, last: int, t0: float, t1: float) -> tuple[tuple[float, float], ...]:
+        """Spans inside [t0, t1] that fall in parts ``first``..``last`` (inclusive; wraps when
+        ``first > last``), merged where they touch."""
+        L, P = self.length, self.parts
+        pieces = [((first - 1) / P, last / P)] if first <= last else [(0.0, last / P), ((first - 1) / P, 1.0)]
+        spans: list[list[float]] = []
+        for k in range(math.floor(t0 / L) - 1, math.ceil(t1 / L) + 1):
+            for a, b in pieces:
+                lo, hi = max(t0, L * (k + a)), min(t1, L * (k + b))
+                if hi <= lo:
+                    continue
+                if spans and abs(spans[-1][1] - lo) <= 1e-12 * max(1.0, abs(lo)):
+                    spans[-1][1] = hi
+                else:
+                    spans.append([lo, hi])
+        return tuple((a, b) for a, b in spans)
+
+    def peak_time(self, part: float) -> float:
+        """Time within a season of the middle of part ``part`` (1-based; fractions allowed)."""
+        return (part - 0.5) * self.length / self.parts
+
+    def starts_of_part(self, part: int, t0: float, t1: float) -> tuple[float, ...]:
+        """Times in [t0, t1] at which part ``part`` of a season begins."""
+        L, P = self.length, self.parts
+        ks = range(math.floor(t0 / L) - 1, math.ceil(t1 / L) + 1)
+        return tuple(t for t in (L * (k + (part - 1) / P) for k in ks) if t0 <= t <= t1)
 
 
 @dataclass(frozen=True)
@@ -237,6 +321,7 @@ class Case:
     monitoring: "tuple[MonitoringSeries, ...]" = ()
     change_limits: "tuple[ChangeLimit, ...]" = ()
     calibration: "CalibrationTable | None" = None
+    seasons: Seasons | None = None
 
     @property
     def species_names(self) -> tuple[str, ...]:
@@ -272,6 +357,14 @@ class Case:
             if iv.name == name:
                 return iv
         raise KeyError(name)
+
+
+def schedule_text(case: Case, iv: Intervention) -> str:
+    """How an intervention is scheduled by season, in words ("" when it is not)."""
+    if iv.season_parts is None or case.seasons is None:
+        return ""
+    first, last = iv.season_parts
+    return f"only in {case.seasons.part_name}s {first}–{last} of every season"
 
 
 # --------------------------------------------------------------------------------------------
@@ -479,6 +572,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         r.fail("parameters", "must be a table of named parameters")
     parameters = tuple(_read_parameter(r, n, v) for n, v in params_raw.items())
 
+    seasons = _read_seasons(r, top.get("seasons", None, "any"))
     species_raw = top.get("species", kind="list")
     if not species_raw:
         r.fail("species", "at least one species is required")
@@ -510,12 +604,23 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         desc = t.get("description", "", "str")
         role = r.choice(f"species.{name}.role", t.get("role", "other", "str"), ROLES)
         material = t.number("material_change", None, low=0, low_open=True)
+        crowding = t.quantity("crowding_mortality", 0.0, low=0)
+        breeding, outside, amplitude, peak = _read_breeding(r, t.get("breeding_season", None, "any"),
+                                                            f"species.{name}.breeding_season", seasons)
+        adult = t.get("matures_into", None, "str")
+        maturation = 0.0
+        if adult is not None:
+            if growth != "none":
+                r.fail(f"species.{name}.growth", "a juvenile stage (matures_into) does not breed: growth must be "
+                                                 "\"none\"; its numbers come from the births of the stage it matures into")
+            maturation = t.quantity("maturation_rate", low=0, low_open=True)
         t.done()
         species.append(Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
-                               role, material))
+                               role, material, crowding, breeding, outside, amplitude, peak, adult, maturation))
     species = tuple(species)
     _unique(r, species, "name", "species")
     names = {s.name for s in species}
+    _check_stages(r, species)
 
     def species_ref(f, v, allow_carrion=False):
         if v == CARRION and allow_carrion:
@@ -528,23 +633,36 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     feeding, competition, mutualism = [], [], []
     for i, raw in enumerate(top.get("interactions", [], "list")):
         t = _Table(r, raw, f"interactions[{i}]")
-        kind = r.choice(f"interactions[{i}].type", t.get("type", kind="str"), INTERACTION_KINDS)
-        if kind in ("predation", "scavenging"):
-            who = "predator" if kind == "predation" else "scavenger"
+        if "kind" in t.data and "type" in t.data:
+            r.fail(f"interactions[{i}].type", "give the interaction's kind once: `kind` (`type` is its older alias)")
+        key = "type" if "type" in t.data else "kind"
+        kind = r.choice(f"interactions[{i}].{key}", t.get(key, kind="str"), INTERACTION_KINDS)
+        if kind in ("predation", "scavenging", "alternative-food"):
+            who = {"predation": "predator", "scavenging": "scavenger", "alternative-food": "consumer"}[kind]
             consumer = species_ref(f"interactions[{i}].{who}", t.get(who, kind="str"))
+            density = None
             if kind == "predation":
                 resource = species_ref(f"interactions[{i}].prey", t.get("prey", kind="str"))
                 if resource == consumer:
                     r.fail(f"interactions[{i}].prey", "a predator cannot be its own prey in this model")
+            elif kind == "alternative-food":
+                resource = consumer + OTHER_FOOD
+                if any(f.resource == resource for f in feeding):
+                    r.fail(f"interactions[{i}].consumer", f"{consumer!r} already has an alternative food; "
+                                                          "declare one per consumer (its density can be a parameter)")
+                density = t.quantity("density", low=0)
             else:
                 resource = CARRION
             response = r.choice(f"interactions[{i}].response", t.get("response", "holling2", "str"), RESPONSES)
             attack = t.quantity("attack_rate", low=0, low_open=True)
             handling = t.quantity("handling_time", 0.0, low=0)
-            if response != "holling1" and handling == 0.0:
+            if response in ("holling2", "holling3") and handling == 0.0:
                 r.fail(f"interactions[{i}].handling_time", f"is required and must be > 0 for a {response} response")
             eff = t.quantity("efficiency", low=0)
-            feeding.append(Feeding(kind, consumer, resource, response, attack, handling, eff))
+            if response != "beddington-deangelis" and "interference" in t.data:
+                r.fail(f"interactions[{i}].interference", "applies only to response = \"beddington-deangelis\"")
+            interference = t.quantity("interference", 0.0, low=0)
+            feeding.append(Feeding(kind, consumer, resource, response, attack, handling, eff, interference, density))
         elif kind == "competition":
             sp = species_ref(f"interactions[{i}].species", t.get("species", kind="str"))
             comp = species_ref(f"interactions[{i}].competitor", t.get("competitor", kind="str"))
@@ -555,11 +673,26 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         else:
             ben = species_ref(f"interactions[{i}].beneficiary", t.get("beneficiary", kind="str"))
             par = species_ref(f"interactions[{i}].partner", t.get("partner", kind="str"))
-            mb = t.quantity("max_benefit", low=0)
+            if par == ben:
+                r.fail(f"interactions[{i}].partner", "a species cannot be its own mutualist partner")
+            if next(s for s in species if s.name == ben).growth == "none":
+                r.fail(f"interactions[{i}].beneficiary", f"a mutualism acts on births at growth_rate; {ben!r} has "
+                                                         "growth = \"none\" (give it logistic or exponential growth)")
+            dep = r.choice(f"interactions[{i}].dependence", t.get("dependence", "facultative", "str"), DEPENDENCES)
+            if dep == "obligate":
+                if "max_benefit" in t.data:
+                    r.fail(f"interactions[{i}].max_benefit", "an obligate mutualism has no max_benefit: births are "
+                                                             "r·P/(half_saturation + P), at most r")
+                mb = 0.0
+            else:
+                mb = t.quantity("max_benefit", low=0)
             hs = t.quantity("half_saturation", low=0, low_open=True)
-            mutualism.append(Mutualism(ben, par, mb, hs))
+            if any(u.beneficiary == ben and u.partner == par for u in mutualism):
+                r.fail(f"interactions[{i}].partner", f"{par!r} is already declared a mutualist partner of {ben!r}")
+            mutualism.append(Mutualism(ben, par, mb, hs, dep == "obligate"))
         t.done()
 
+    _check_interference(r, feeding)
     carrion = None
     if "carrion" in top.data:
         t = _Table(r, top.get("carrion"), "carrion")
@@ -585,10 +718,12 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         name = t.get("name", kind="str")
         t.path = f"interventions.{name}"
         base = f"interventions.{name}"
-        kind = r.choice(f"{base}.kind", t.get("kind", kind="str"), INTERVENTION_KINDS)
+        given = t.get("kind", kind="str")
+        kind = r.choice(f"{base}.kind", KIND_ALIASES.get(given, given), INTERVENTION_KINDS + tuple(KIND_ALIASES))
         sp = species_ref(f"{base}.species", t.get("species", kind="str"))
+        target = next(s for s in species if s.name == sp)
         kw: dict[str, Any] = {}
-        if kind in ("press-harvest", "fertility-control", "habitat-change"):
+        if kind in SPAN_KINDS:
             start = t.number("start", 0.0)
             end = t.number("end", horizon)
             if kind == "press-harvest":
@@ -596,15 +731,33 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
                 kw["carcasses_to_carrion"] = t.get("carcasses_to_carrion", False, "bool")
             elif kind == "fertility-control":
                 kw["fraction"] = t.quantity("fraction", low=0, high=1)
+            elif kind == "sterile-release":
+                kw["sterile_density"] = t.quantity("sterile_density", low=0, low_open=True)
+                kw["competitiveness"] = t.quantity("competitiveness", 1.0, low=0, low_open=True)
             else:
-                if next(s for s in species if s.name == sp).growth != "logistic":
-                    r.fail(f"{base}.species", f"habitat change scales a carrying capacity; {sp!r} is not logistic")
+                if target.growth != "logistic":
+                    r.fail(f"{base}.species", f"a carrying-capacity change scales a carrying capacity; {sp!r} is not logistic")
                 kw["factor"] = t.quantity("factor", low=0, low_open=True)
+            parts = t.get("season_parts", None, "list")
+            if parts is not None:
+                first, last = _season_span(r, f"{base}.season_parts", parts, seasons)
+                kw["windows"] = seasons.windows(first, last, start, end)
+                kw["season_parts"] = (first, last)
         elif kind == "pulse-cull":
-            times = t.get("times", kind="list")
-            if not times or any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x)
-                                for x in times):
-                r.fail(f"{base}.times", "must be a non-empty list of finite numbers (times of each cull)")
+            if ("times" in t.data) == ("season_part" in t.data):
+                r.fail(f"{base}.times", "give exactly one of times (a list of cull times) or season_part "
+                                        "(a cull at the start of that part of every season between start and end)")
+            if "times" in t.data:
+                times = t.get("times", kind="list")
+                if not times or any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x)
+                                    for x in times):
+                    r.fail(f"{base}.times", "must be a non-empty list of finite numbers (times of each cull)")
+            else:
+                part = t.number("season_part", integer=True)
+                first, _ = _season_span(r, f"{base}.season_part", [part, part], seasons)
+                times = seasons.starts_of_part(first, t.number("start", 0.0), t.number("end", horizon))
+                if not times:
+                    r.fail(f"{base}.season_part", "no season reaches that part between start and end")
             times = tuple(sorted(float(x) for x in times))
             kw["times"] = times
             kw["fraction"] = t.quantity("fraction", low=0, high=1)
@@ -615,11 +768,14 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
             end = start
             kw["failure_probability"] = t.quantity("failure_probability", 0.0, low=0, high=1)
             kw["residual_fraction"] = t.quantity("residual_fraction", 0.0, low=0, high=1)
-        else:  # introduction
+        else:  # release or first arrival
+            if kind == "first-arrival" and target.present:
+                r.fail(f"{base}.species", f"a first arrival brings a species absent today; {sp!r} is declared present "
+                                          "(use kind = \"release\" to add to a present population, or set present = false)")
             start = t.number("time")
             end = start
             kw["amount"] = t.quantity("amount", low=0, low_open=True)
-        for label, v in (("start" if kind not in ("eradication", "introduction") else "time", start), ("end", end)):
+        for label, v in (("start" if kind not in ("eradication", *ARRIVAL_KINDS) else "time", start), ("end", end)):
             if not 0 <= v <= horizon:
                 r.fail(f"{base}.{label}" if kind != "pulse-cull" else f"{base}.times",
                        f"{v:g} lies outside the assessment period [0, {horizon:g}] {time_unit}")
@@ -699,7 +855,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         parameters=parameters, species=species, feeding=tuple(feeding),
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion,
         observed=tuple(observed), interventions=interventions, options=options, risk=risk, notes=notes,
-        objectives=objectives, groups=groups, dynamics=dynamics,
+        objectives=objectives, groups=groups, dynamics=dynamics, seasons=seasons,
         monitoring=monitoring, change_limits=limits, calibration=calibration,
     )
 
@@ -1008,3 +1164,79 @@ def _read_calibration(r: _Reader, raw: Any) -> CalibrationTable | None:
     )
     t.done()
     return out
+
+
+def _read_seasons(r: _Reader, raw: Any) -> Seasons | None:
+    """Read ``[seasons]`` (absent: None)."""
+    if raw is None:
+        return None
+    t = _Table(r, raw, "seasons")
+    out = Seasons(t.number("length", low=0, low_open=True), t.number("parts", 1, low=1, high=10_000, integer=True),
+                  t.get("part_name", "part", "str"))
+    t.done()
+    return out
+
+
+def _season_span(r: _Reader, f: str, parts: Any, seasons: Seasons | None) -> tuple[int, int]:
+    """A ``[first, last]`` pair of season parts, checked against ``[seasons]``."""
+    if seasons is None:
+        r.fail(f, "scheduling by season needs a [seasons] table (length, parts)")
+    if (not isinstance(parts, list) or len(parts) != 2
+            or any(isinstance(x, bool) or not isinstance(x, int) or not 1 <= x <= seasons.parts for x in parts)):
+        r.fail(f, f"must be [first, last]: two whole numbers from 1 to {seasons.parts} "
+                  f"(the {seasons.part_name}s of a season; first > last wraps across the season's end)")
+    return int(parts[0]), int(parts[1])
+
+
+def _read_breeding(r: _Reader, raw: Any, f: str, seasons: Seasons | None):
+    """A species' ``breeding_season``: a window ``{first, last, outside}`` or a sinusoid
+    ``{amplitude, peak}``; returns (span, outside, amplitude, peak), all None/0 when absent."""
+    if raw is None:
+        return None, 0.0, None, None
+    t = _Table(r, raw, f)
+    if seasons is None:
+        r.fail(f, "a breeding season needs a [seasons] table (length, parts)")
+    if "amplitude" in t.data or "peak" in t.data:
+        amplitude = t.quantity("amplitude", low=0, high=1)
+        peak = t.number("peak", low=0.5, high=seasons.parts + 0.5)
+        t.done()
+        return None, 0.0, amplitude, peak
+    if "first" not in t.data:
+        r.fail(f, "give either first and last (a window, with outside) or amplitude and peak (a sinusoid)")
+    span = _season_span(r, f, [t.get("first", kind="int"), t.get("last", kind="int")], seasons)
+    outside = t.number("outside", 0.0, low=0, high=1)
+    t.done()
+    return span, outside, None, None
+
+
+def _check_interference(r: _Reader, feeding: list[Feeding]):
+    """Interference belongs to a consumer: one value for all of its Beddington–DeAngelis links,
+    which cannot be mixed with Holling type II links (they share one handling denominator)."""
+    for f in feeding:
+        if f.response != "beddington-deangelis":
+            continue
+        mine = [g for g in feeding if g.consumer == f.consumer]
+        if any(g.response == "holling2" for g in mine):
+            r.fail("interactions", f"{f.consumer!r} mixes holling2 and beddington-deangelis responses; its links share "
+                                   "one denominator, so use beddington-deangelis for all of them")
+        if len({g.interference for g in mine if g.response == "beddington-deangelis"}) > 1:
+            r.fail("interactions", f"{f.consumer!r} declares different interference values; interference is a property "
+                                   "of the consumer: give the same number or parameter on each of its links")
+
+
+def _check_stages(r: _Reader, species: tuple[Species, ...]):
+    """Two life stages per species at most: a juvenile matures into an adult that is no juvenile."""
+    by_name = {s.name: s for s in species}
+    adults: set[str] = set()
+    for s in species:
+        if s.matures_into is None:
+            continue
+        f = f"species.{s.name}.matures_into"
+        if s.matures_into not in by_name or s.matures_into == s.name:
+            r.fail(f, f"must name another declared species (the adult stage); declared: {', '.join(sorted(by_name))}")
+        if by_name[s.matures_into].matures_into is not None:
+            r.fail(f, f"{s.matures_into!r} is itself a juvenile stage; a species has two stages at most")
+        if s.matures_into in adults:
+            r.fail(f, f"{s.matures_into!r} already has a juvenile stage; one per adult")
+        adults.add(s.matures_into)
+

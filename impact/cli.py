@@ -10,7 +10,7 @@ import time
 
 from . import __version__
 from .api import AssessSettings
-from .case import Case, load_case
+from .case import Case, load_case, schedule_text
 from .effects import event_text
 from .errors import CaseError, InstallationError, SettingError, WriteError, spell
 from .execute import WorkerLost
@@ -86,6 +86,15 @@ def describe_case(case: Case) -> str:
             bits.append(f"K={s.carrying_capacity}")
         if s.mortality != 0.0:
             bits.append(f"m={s.mortality}")
+        if s.crowding_mortality != 0.0:
+            bits.append(f"crowding mortality={s.crowding_mortality}")
+        if s.breeding_season is not None:
+            bits.append(f"breeds in {case.seasons.part_name}s {s.breeding_season[0]}–{s.breeding_season[1]} "
+                        f"(births × {s.breeding_outside:g} outside)")
+        if s.breeding_amplitude is not None:
+            bits.append(f"births × (1 + {s.breeding_amplitude}·cos), peaking in {case.seasons.part_name} {s.breeding_peak:g}")
+        if s.matures_into is not None:
+            bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
         bits.append(f"initial={s.initial}")
         if not s.present:
             bits.append("absent today")
@@ -99,11 +108,21 @@ def describe_case(case: Case) -> str:
         L.append(f"  {s.name} [{s.unit}]: " + ", ".join(str(b) for b in bits))
     L.append(f"interactions ({len(case.feeding) + len(case.competition) + len(case.mutualism)}):")
     for f in case.feeding:
-        L.append(f"  {f.kind}: {f.consumer} eats {f.resource} ({f.response}; a={f.attack_rate}, h={f.handling_time}, e={f.efficiency})")
+        gamma = f", interference={f.interference}" if f.response == "beddington-deangelis" else ""
+        L.append(f"  {f.kind}: {f.consumer} eats {f.resource} ({f.response}; a={f.attack_rate}, h={f.handling_time}, "
+                 f"e={f.efficiency}{gamma})")
     for c in case.competition:
         L.append(f"  competition: {c.competitor} crowds {c.species} (alpha={c.coefficient})")
     for u in case.mutualism:
-        L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, half-saturation={u.half_saturation})")
+        if u.obligate:
+            L.append(f"  obligate mutualism: {u.beneficiary} breeds only with {u.partner} "
+                     f"(births × P/(half-saturation + P), half-saturation={u.half_saturation})")
+        else:
+            L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, "
+                     f"half-saturation={u.half_saturation}; carrying capacity up to K·(1 + max))")
+    if case.seasons is not None:
+        sea = case.seasons
+        L.append(f"seasons: {sea.length:g} {case.time_unit} in {sea.parts} {sea.part_name}s; today starts a season")
     if case.carrion is not None:
         L.append(f"carrion pool: decay rate {case.carrion.decay_rate}")
     L.append(f"parameters ({len(case.parameters)}, {len(case.uncertain)} uncertain):")
@@ -129,7 +148,11 @@ def describe_case(case: Case) -> str:
         when = f"at {iv.start:g}" if iv.start == iv.end else f"{iv.start:g}–{iv.end:g}"
         if iv.kind == "pulse-cull":
             when = "at " + ", ".join(f"{t:g}" for t in iv.times)
-        L.append(f"  {iv.name}: {iv.kind} of {iv.species} {when} {case.time_unit}")
+        when += f" {case.time_unit}"
+        if iv.season_parts is not None:
+            when += ", " + schedule_text(case, iv)
+        what = f" ({iv.sterile_density} sterile × competitiveness {iv.competitiveness})" if iv.kind == "sterile-release" else ""
+        L.append(f"  {iv.name}: {iv.kind} of {iv.species}{what} {when}")
     L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))
     L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
              f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")
@@ -146,11 +169,11 @@ def describe_case(case: Case) -> str:
 def cmd_check(args) -> int:
     from .budget import check_fits, estimate
     from .execute import machine_cores
-    from .pipeline import unused_warnings
+    from .pipeline import case_warnings
 
     case = load_case(args.case)
     print(describe_case(case))
-    for line in unused_warnings(case):
+    for line in case_warnings(case):
         print(f"warning: {line}")
     est = estimate(case, case.members, machine_cores())
     print(est.describe())
@@ -164,7 +187,7 @@ def _execution(args) -> Execution:
 
 
 def cmd_assess(args) -> int:
-    from .pipeline import assess_to_folder, unused_warnings
+    from .pipeline import assess_to_folder, case_warnings
 
     case = load_case(args.case)
     reused = None
@@ -174,7 +197,7 @@ def cmd_assess(args) -> int:
         reused = load_ensemble(args.ensemble, case)
     settings = AssessSettings(members=args.members, seed=args.seed, sensitivity=not args.no_sensitivity,
                               base_samples=args.base_samples, dynamics=not args.no_dynamics)
-    for line in unused_warnings(case):
+    for line in case_warnings(case):
         print(f"warning: {line}", file=sys.stderr)
     progress = _Progress(args.quiet)
     written = assess_to_folder(case, settings, args.out, replace=args.replace_results, resume=args.resume,

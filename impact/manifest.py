@@ -98,6 +98,7 @@ class InterventionRecord:
     start: float = 0.0
     end: float = 0.0
     description: str = ""
+    schedule: str = ""
 
 
 @dataclass(frozen=True)

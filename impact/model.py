@@ -3,18 +3,32 @@
 State layout: one column per declared species (in case order), then one column for the
 carrion pool when the case declares one.  For species i (abundance N_i)::
 
-    dN_i/dt =  φ_i (1 − f_i) [ r⁺_i N_i (1 + Σ_u β_u P_u/(H_u + P_u)) + Σ_{l: i eats} e_l I_l N_i ]
+    dN_i/dt =  φ_i (1 − f_i) σ_i [ r⁺_i N_i (1 + Σ β_u P_u/(H_u + P_u)) · P_o/(H_o + P_o)
+                                  + Σ_{l: i eats} e_l I_l N_i ]
              − [logistic]  r_i N_i (N_i + Σ_j α_ij N_j) / (κ_i K_i)
-             + r⁻_i N_i − m_i N_i − q_i N_i − Σ_{l: i eaten} I_l N_consumer(l)
+             − μ_i N_i² + r⁻_i N_i − m_i N_i − q_i N_i − Σ_{l: i eaten} I_l N_consumer(l)
 
     dC/dt   =  Σ_i y_i (m_i N_i + c_i q_i N_i) − δ C − Σ_{l: carrion eaten} I_l N_consumer(l)
 
 with per-capita intake I_l of consumer j on resource R by Holling type I (a R),
-II (a R / D_j) or III (a R² / D_j), where D_j = 1 + Σ_{j's type II/III links} a h R^q
-shares handling time across all of j's resources (so omnivory uses the same machinery).
-φ is the environmental growth multiplier, f the fertility suppression, κ the habitat factor,
-q the harvest rate and c marks harvests that leave carcasses.  r⁺ = max(r, 0) are births,
-r⁻ = min(r, 0) an exponential decline that fertility control does not touch.
+II (a R / D_j) or III (a R² / D_j), or Beddington–DeAngelis (a R / D_j), where
+D_j = 1 + Σ_{j's saturating links} a h R^q + γ_j N_j shares handling time across all of j's
+resources (so omnivory uses the same machinery) and γ_j is j's interference with its own kind
+(0 unless j feeds with a Beddington–DeAngelis response; Beddington 1975, DeAngelis et al. 1975).
+
+φ is the environmental growth multiplier times the breeding-season multiplier (1 inside the
+season's breeding parts, the declared ``outside`` level elsewhere), f the fertility
+suppression, σ_i = N_i/(N_i + s_i) the share of fertile matings when s_i sterile individuals
+(density × competitiveness) are present (Knipling 1955; σ = 1 without releases), κ the
+carrying-capacity factor, q the harvest rate and c marks harvests that leave carcasses.
+r⁺ = max(r, 0) are births, r⁻ = min(r, 0) an exponential decline that fertility control does
+not touch; μ_i is crowding (density-dependent) mortality.
+
+Mutualism: a facultative partner u multiplies births by at most 1 + β_u, so a logistic
+beneficiary alone settles at K (1 + β P/(H + P)), not K. An obligate partner o makes births
+P_o/(H_o + P_o) of their maximum and none without it (pollination-limited seed set; the
+saturating consumer–resource form of Holland & DeAngelis 2010); with several obligate partners,
+each pollinating independently, 1 − Π_o H_o/(H_o + P_o) (written P_o/(H_o + P_o) above for one).
 """
 
 from __future__ import annotations
@@ -25,13 +39,13 @@ import numpy as np
 
 from .case import CARRION, Case
 
-RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2}
+RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deangelis": 1}
 
 
 @dataclass(frozen=True)
 class Link:
     consumer: int
-    resource: int  # state column (the carrion pool is column S)
+    resource: int  # state column (the carrion pool is column S); −1 for a constant alternative food
     response: str
     kind: str
 
@@ -48,6 +62,12 @@ class FoodWeb:
     mutualism: tuple[tuple[int, int], ...]  # (beneficiary, partner)
     carrion_yield: np.ndarray  # (S,)
     unit: tuple[str, ...]
+    obligate: tuple[tuple[int, int], ...] = ()  # (beneficiary, partner) of each obligate mutualism
+    interference: tuple[int, ...] = ()  # consumers whose handling denominator has γ N
+    crowding: bool = False  # some species has crowding mortality
+    sterile: tuple[int, ...] = ()  # species that sterile releases may act on
+    stages: tuple[tuple[int, int], ...] = ()  # (juvenile, adult): the adult's births are born as juveniles
+    wave: tuple[int, ...] = ()  # species whose births follow a sinusoidal breeding season
 
     @property
     def n_species(self) -> int:
@@ -77,6 +97,19 @@ class WebParams:
         half-saturation; ``decay`` : ndarray (M,) carrion decay rate.
     initial : ndarray (M, n_state)
     noise_sd : ndarray (M, S)
+    quad : ndarray (M, S)
+        Crowding mortality μ (zeros by default).
+    obH : ndarray (M, O)
+        Half-saturation of each obligate mutualism.
+    gamma : ndarray (M, S)
+        Interference of each consumer (zeros by default).
+    food : ndarray (M, L)
+        Density of a link's constant alternative food (zeros for links to a species or carrion).
+    mat : ndarray (M, S)
+        Maturation rate of each juvenile stage (zeros elsewhere).
+    amp, omega, phase : ndarray (M, S)
+        Amplitude A, angular frequency ω = 2π/season length and phase ω·t_peak of a sinusoidal
+        breeding season (births × (1 + A cos(ω t − ω t_peak))); zeros elsewhere.
     """
 
     r: np.ndarray
@@ -91,22 +124,47 @@ class WebParams:
     decay: np.ndarray
     initial: np.ndarray
     noise_sd: np.ndarray
+    quad: np.ndarray | None = None
+    obH: np.ndarray | None = None
+    gamma: np.ndarray | None = None
+    food: np.ndarray | None = None
+    mat: np.ndarray | None = None
+    amp: np.ndarray | None = None
+    omega: np.ndarray | None = None
+    phase: np.ndarray | None = None
+
+    def __post_init__(self):
+        for name, fill in (("quad", 0.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
+                           ("phase", 0.0)):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(self.r.shape, fill))
+        if self.obH is None:
+            object.__setattr__(self, "obH", np.ones((self.r.shape[0], 0)))
+        if self.food is None:
+            object.__setattr__(self, "food", np.zeros(self.a.shape))
 
 
 @dataclass(frozen=True)
 class Controls:
     """Piecewise-constant controls during one segment, each ``(M, S)``."""
 
-    phi: np.ndarray  # environmental growth multiplier
+    phi: np.ndarray  # environmental growth multiplier (times the breeding-season multiplier)
     fertility: np.ndarray  # fraction of births suppressed
     habitat: np.ndarray  # carrying-capacity factor
     harvest: np.ndarray  # proportional removal rate
     carcass: np.ndarray  # 1 where harvested animals are left as carrion
+    sterile: np.ndarray | None = None  # sterile individuals present (density × competitiveness)
+    wave: np.ndarray | None = None  # 1: sinusoidal breeding seasons act; 0: the season-averaged web
+
+    def __post_init__(self):
+        for name, fill in (("sterile", 0.0), ("wave", 1.0)):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(self.phi.shape, fill))
 
     @staticmethod
     def neutral(members: int, n_species: int) -> "Controls":
         one, zero = np.ones((members, n_species)), np.zeros((members, n_species))
-        return Controls(one, zero, one.copy(), zero.copy(), zero.copy())
+        return Controls(one, zero, one.copy(), zero.copy(), zero.copy(), zero.copy(), one.copy())
 
 
 def build_web(case: Case) -> FoodWeb:
@@ -114,16 +172,24 @@ def build_web(case: Case) -> FoodWeb:
     names = case.species_names
     col = {n: i for i, n in enumerate(names)}
     col[CARRION] = len(names)
-    links = tuple(Link(col[f.consumer], col[f.resource], f.response, f.kind) for f in case.feeding)
+    links = tuple(Link(col[f.consumer], col.get(f.resource, -1), f.response, f.kind) for f in case.feeding)
+    interference = sorted({col[f.consumer] for f in case.feeding if f.response == "beddington-deangelis"})
+    sterile = sorted({col[iv.species] for iv in case.interventions if iv.kind == "sterile-release"})
     return FoodWeb(
         species=names,
         has_carrion=case.carrion is not None,
         logistic=np.array([s.growth == "logistic" for s in case.species]),
         links=links,
         competition=tuple((col[c.species], col[c.competitor]) for c in case.competition),
-        mutualism=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism),
+        mutualism=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism if not u.obligate),
         carrion_yield=np.array([s.carrion_yield for s in case.species], float),
         unit=tuple(s.unit for s in case.species),
+        obligate=tuple((col[u.beneficiary], col[u.partner]) for u in case.mutualism if u.obligate),
+        interference=tuple(interference),
+        crowding=any(s.crowding_mortality != 0.0 for s in case.species),
+        sterile=tuple(sterile),
+        stages=tuple((col[s.name], col[s.matures_into]) for s in case.species if s.matures_into is not None),
+        wave=tuple(i for i, s in enumerate(case.species) if s.breeding_amplitude is not None),
     )
 
 
@@ -158,6 +224,9 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         decay = resolve(case.carrion.decay_rate, values, members)
     else:
         decay = np.zeros(members)
+    facultative = [u for u in case.mutualism if not u.obligate]
+    omega = 2.0 * np.pi / case.seasons.length if case.seasons is not None else 0.0
+    gamma = {f.consumer: f.interference for f in case.feeding if f.response == "beddington-deangelis"}
     return WebParams(
         r=col([s.growth_rate for s in sp]),
         K=K,
@@ -166,15 +235,30 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         h=col([f.handling_time for f in case.feeding]),
         e=col([f.efficiency for f in case.feeding]),
         alpha=col([c.coefficient for c in case.competition]),
-        beta=col([u.max_benefit for u in case.mutualism]),
-        H=col([u.half_saturation for u in case.mutualism]),
+        beta=col([u.max_benefit for u in facultative]),
+        H=col([u.half_saturation for u in facultative]),
         decay=decay,
         initial=initial,
         noise_sd=col([s.noise_sd for s in sp]),
+        quad=col([s.crowding_mortality for s in sp]),
+        obH=col([u.half_saturation for u in case.mutualism if u.obligate]),
+        gamma=col([gamma.get(s.name, 0.0) for s in sp]),
+        food=col([f.food_density or 0.0 for f in case.feeding]),
+        mat=col([s.maturation_rate for s in sp]),
+        amp=col([s.breeding_amplitude if s.breeding_amplitude is not None else 0.0 for s in sp]),
+        omega=col([omega if s.breeding_amplitude is not None else 0.0 for s in sp]),
+        phase=col([omega * case.seasons.peak_time(s.breeding_peak) if s.breeding_amplitude is not None else 0.0
+                   for s in sp]),
     )
 
 
-def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) -> list[np.ndarray]:
+def resource_density(link: Link, l: int, y: np.ndarray, food: np.ndarray) -> np.ndarray:
+    """Density of a link's resource: its state column, or the constant alternative food: (m,)."""
+    return y[:, link.resource] if link.resource >= 0 else food[:, l]
+
+
+def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
+                    gamma: np.ndarray | None = None, food: np.ndarray | None = None) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link from gathered coefficients.
 
     Parameters
@@ -182,6 +266,10 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
     a, ah : ndarray (m, L)
         Attack rate and attack rate × handling time of each link, per member.
     y : ndarray (m, n_state)
+    gamma : ndarray (m, S), optional
+        Interference of each consumer (used for ``web.interference`` only).
+    food : ndarray (m, L), optional
+        Alternative food densities (used for links with ``resource == -1`` only).
 
     Returns
     -------
@@ -190,12 +278,14 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
     denom: dict[int, np.ndarray] = {}
     powered = []
     for l, link in enumerate(web.links):
-        R = y[:, link.resource]
+        R = resource_density(link, l, y, food)
         Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
         powered.append(Rq)
         if link.response != "holling1":
             term = ah[:, l] * Rq
             denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
+    for j in web.interference:
+        denom[j] = denom[j] + gamma[:, j] * y[:, j]
     return [a[:, l] * powered[l] if link.response == "holling1" else a[:, l] * powered[l] / denom[link.consumer]
             for l, link in enumerate(web.links)]
 
@@ -203,7 +293,7 @@ def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray) 
 def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
     """Per-capita intake I_l of each feeding link for members ``idx``: list of ndarray (m,)."""
     a = p.a[idx]
-    return feeding_intakes(web, a, a * p.h[idx], y)
+    return feeding_intakes(web, a, a * p.h[idx], y, p.gamma[idx], p.food[idx])
 
 
 @dataclass(frozen=True)
@@ -222,6 +312,18 @@ class SegmentCoefficients:
         r / (κ K) for logistic species, else 0.
     inflow : ndarray (M, S)
         (m + c q) · carrion yield (zeros without a carrion pool).
+    quad, gamma : ndarray (M, S)
+        Crowding mortality, interference.
+    food : ndarray (M, L)
+        Alternative food density per link (0 for links to a state variable).
+    sterile : ndarray (M, S)
+        Sterile individuals present (density × competitiveness; 0 without releases).
+    obH : ndarray (M, O)
+        Half-saturation of each obligate mutualism.
+    mat : ndarray (M, S)
+        Maturation rate of juvenile stages.
+    amp, omega, phase : ndarray (M, S)
+        Sinusoidal breeding: births × (1 + amp·cos(omega·t − phase)).
     a, ah, e : ndarray (M, L)
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
@@ -232,12 +334,21 @@ class SegmentCoefficients:
     lin: np.ndarray
     dens: np.ndarray
     inflow: np.ndarray
+    quad: np.ndarray
+    gamma: np.ndarray
+    sterile: np.ndarray
+    mat: np.ndarray
+    amp: np.ndarray
+    omega: np.ndarray
+    phase: np.ndarray
     a: np.ndarray
     ah: np.ndarray
     e: np.ndarray
+    food: np.ndarray
     alpha: np.ndarray
     beta: np.ndarray
     H: np.ndarray
+    obH: np.ndarray
     decay: np.ndarray
 
 
@@ -253,7 +364,54 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
         lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        a=p.a, ah=p.a * p.h, e=p.e, alpha=p.alpha, beta=p.beta, H=p.H, decay=p.decay)
+        quad=p.quad, gamma=p.gamma, sterile=c.sterile, mat=p.mat, amp=p.amp * c.wave,
+        omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
+        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay)
+
+
+def season_wave(g: dict, species: tuple[int, ...], t) -> np.ndarray:
+    """Births multiplier 1 + A·cos(ω t − ω t_peak) of sinusoidally breeding species: (m, len(species)).
+
+    ``g`` holds gathered coefficients ``amp``, ``omega``, ``phase``; ``t`` (m,) per-member times
+    (None: the season-averaged web, multiplier 1). The cosine goes through the C library, as in
+    the compiled kernel, so that both agree to the bit.
+    """
+    from .engine.kernel import cos_array  # numba is loaded on first use only
+
+    cols = list(species)
+    amp = g["amp"][:, cols]
+    if t is None:
+        return np.ones_like(amp)
+    arg = g["omega"][:, cols] * np.asarray(t, float)[:, None] - g["phase"][:, cols]
+    return 1.0 + amp * cos_array(np.ascontiguousarray(arg).ravel()).reshape(arg.shape)
+
+
+def pollinated_share(web: FoodWeb, obH: np.ndarray, N: np.ndarray) -> np.ndarray:
+    """Share of births that obligate partners allow, 1 − Π_o H_o/(H_o + P_o): (m, S), 1 elsewhere.
+
+    Each partner o independently pollinates with chance P_o/(H_o + P_o); the sum
+    Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) gives the same share without cancellation (one
+    partner: exactly P/(H + P)), in the order of the compiled kernels.
+    """
+    share, miss = {}, {}
+    for u, (ben, par) in enumerate(web.obligate):
+        P, H = N[:, par], obH[:, u]
+        share[ben] = share.get(ben, 0.0) + miss.get(ben, 1.0) * (P / (H + P))
+        miss[ben] = miss.get(ben, 1.0) * (H / (H + P))
+    out = np.ones_like(N)
+    for ben, s in share.items():
+        out[:, ben] = s
+    return out
+
+
+def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Share of fertile matings N/(N + s) with s sterile individuals present; exactly 1 where s = 0.
+
+    Knipling (1955): with random mating and equally competitive sterile males, a wild
+    female's mate is fertile with probability N/(N + s).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(s > 0, N / (N + s), 1.0)
 
 
 class WebRHS:
@@ -282,8 +440,9 @@ class WebRHS:
 
         Parameters
         ----------
-        t : ndarray (m,)
-            Unused: controls are constant within a segment.
+        t : ndarray (m,) or None
+            Per-member times: controls are constant within a segment, and only a sinusoidal
+            breeding season depends on time (None: its season mean).
         y : ndarray (m, n_state)
         idx : int ndarray (m,)
 
@@ -303,23 +462,42 @@ class WebRHS:
                 P = N[:, par]
                 boost[:, ben] += beta[:, u] * P / (H[:, u] + P)
             births *= boost
+        if web.obligate:
+            births = births * pollinated_share(web, g["obH"], N)
         out = np.empty_like(y)
         if web.links:
             loss = np.zeros_like(y)
             e = g["e"]
-            I = feeding_intakes(web, g["a"], g["ah"], y)
+            I = feeding_intakes(web, g["a"], g["ah"], y, g["gamma"], g["food"])
             for l, link in enumerate(web.links):
                 j = link.consumer
                 eaten = I[l] * N[:, j]
                 births[:, j] += e[:, l] * eaten
-                loss[:, link.resource] += eaten
+                if link.resource >= 0:  # an alternative food is not depleted
+                    loss[:, link.resource] += eaten
         dN = g["scale"] * births
+        if web.wave:
+            dN[:, list(web.wave)] *= season_wave(g, web.wave, t)
+        if web.sterile:
+            ster = g["sterile"]
+            for i in web.sterile:
+                dN[:, i] *= fertile_share(N[:, i], ster[:, i])
+        if web.stages:
+            mat = g["mat"]
+            for j, a in web.stages:
+                dN[:, j] += dN[:, a]  # the adult's births are born as juveniles
+                dN[:, a] = 0.0
+                flow = mat[:, j] * N[:, j]
+                dN[:, j] -= flow
+                dN[:, a] += flow
         if web.logistic.any():
             crowd = N.copy()
             alpha = g["alpha"]
             for k, (i, j) in enumerate(web.competition):
                 crowd[:, i] += alpha[:, k] * N[:, j]
             dN -= g["dens"] * N * crowd
+        if web.crowding:
+            dN -= g["quad"] * N * N
         dN += g["lin"] * N
         if web.links:
             dN -= loss[:, :S]
@@ -337,7 +515,7 @@ class WebRHS:
         return out
 
 
-def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarray:
+def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None) -> np.ndarray:
     """Right-hand side for members ``idx`` (see the module docstring for the equations).
 
     Parameters
@@ -345,35 +523,65 @@ def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx) -> np.ndarr
     y : ndarray (m, n_state)
     idx : int ndarray (m,)
         Member indices into ``p`` and ``c``.
+    t : ndarray (m,), optional
+        Times (only a sinusoidal breeding season depends on them; None: its season mean).
 
     Returns
     -------
     ndarray (m, n_state)
     """
-    return WebRHS(web, p, c)(None, y, np.asarray(idx))
+    return WebRHS(web, p, c)(t, y, np.asarray(idx))
+
+
+def _birth_text(case: Case, s, sterile: set[str]) -> str:
+    """The births term of one species as text ('' when it has none)."""
+    n = s.name
+    birth = []
+    if s.growth in ("logistic", "exponential"):
+        ben = [u.partner for u in case.mutualism if u.beneficiary == n and not u.obligate]
+        need = [u.partner for u in case.mutualism if u.beneficiary == n and u.obligate]
+        g = f"r_{n}·{n}" + (f"·(1 + Σ β·P/(H+P) for P in {', '.join(ben)})" if ben else "")
+        if len(need) == 1:
+            g += f"·{need[0]}/(H_o+{need[0]})"
+        elif need:
+            g += f"·(1 − Π H_o/(H_o+P) for P in {', '.join(need)})"
+        birth.append(g)
+    birth += [f"e·I({f.resource})·{n}" for f in case.feeding if f.consumer == n]
+    if not birth:
+        return ""
+    seasonal = s.breeding_season is not None or s.breeding_amplitude is not None
+    scale = ("φ·s(t)" if seasonal else "φ") + "·(1−f)" + (f"·{n}/({n}+S)" if n in sterile else "")
+    return f"{scale}·[{' + '.join(birth)}]"
 
 
 def equations(case: Case) -> list[str]:
-    """Human-readable equations of the built model, one line per state variable."""
-    web = build_web(case)
+    """Human-readable equations of the built model, one line per state variable, then the
+    definitions of the terms they use (units in README's case-file tables)."""
     lines = []
-    for i, s in enumerate(case.species):
+    sterile = {iv.species for iv in case.interventions if iv.kind == "sterile-release"}
+    juvenile = {s.matures_into: s.name for s in case.species if s.matures_into is not None}
+    stage_births = []
+    for s in case.species:
         n = s.name
         terms = []
-        birth = []
-        if s.growth in ("logistic", "exponential"):
-            ben = [case.mutualism[u].partner for u, (b, _) in enumerate(web.mutualism) if b == i]
-            g = f"r_{n}·{n}" + (f"·(1 + Σ benefit from {', '.join(ben)})" if ben else "")
-            birth.append(g)
-        for f in case.feeding:
-            if f.consumer == n:
-                birth.append(f"e·I({f.resource})·{n}")
-        if birth:
-            terms.append(f"φ·(1−f)·[{' + '.join(birth)}]")
+        births = _birth_text(case, s, sterile)
+        if s.matures_into is not None:
+            terms.append(f"births of {s.matures_into}")
+        if n in juvenile:
+            terms.append(f"μ_{juvenile[n]}·{juvenile[n]}")
+            if births:
+                stage_births.append(f"births of {n} (born as {juvenile[n]}) = {births}")
+        elif births:
+            terms.append(births)
+        terms = [" + ".join(terms)] if terms else []
         if s.growth == "logistic":
             comps = [c.competitor for c in case.competition if c.species == n]
             crowd = n + "".join(f" + α·{x}" for x in comps)
             terms.append(f"− r_{n}·{n}·({crowd})/(κ·K_{n})")
+        if s.crowding_mortality != 0.0:
+            terms.append(f"− μ_{n}·{n}²")
+        if s.matures_into is not None:
+            terms.append(f"− μ_{n}·{n}")
         if s.mortality != 0.0:
             terms.append(f"− m_{n}·{n}")
         for f in case.feeding:
@@ -387,5 +595,19 @@ def equations(case: Case) -> list[str]:
         scav = [f.consumer for f in case.feeding if f.resource == CARRION]
         lines.append("dcarrion/dt = Σ yield·(m·N + harvest carcasses) − δ·carrion"
                      + "".join(f" − I_{x}(carrion)·{x}" for x in scav))
-    lines.append("I = a·R (type I), a·R/(1+Σ a·h·R) (type II), a·R²/(1+Σ a·h·R²) (type III), summed over the consumer's resources")
+    lines += stage_births
+    lines.append("I = a·R (type I), a·R/D (type II), a·R²/D (type III), a·R/D (Beddington–DeAngelis) with "
+                 "D = 1 + Σ a·h·R^q over the consumer's saturating links + γ·C for a Beddington–DeAngelis consumer C")
+    if any(u.obligate for u in case.mutualism):
+        lines.append("obligate mutualism: births × P/(H_o + P), none without the partner P (Holland & DeAngelis 2010)")
+    if any(s.breeding_season is not None for s in case.species):
+        lines.append(f"s(t) = 1 in the breeding {case.seasons.part_name}s of each season, the declared outside level elsewhere")
+    if any(s.breeding_amplitude is not None for s in case.species):
+        lines.append(f"s(t) = 1 + A·cos(2π(t − t_peak)/{case.seasons.length:g}) for a sinusoidal breeding season "
+                     f"(t_peak the middle of the peak {case.seasons.part_name})")
+    if sterile:
+        lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
+    if juvenile:
+        lines.append("life stages: an adult's births are born into its juvenile stage, which matures into the "
+                     "adult at rate μ (de Roos & Persson 2013)")
     return lines

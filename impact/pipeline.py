@@ -83,11 +83,15 @@ class Written:
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
 
 
-def unused_warnings(case: Case) -> list[str]:
-    """Declared parameters no field uses: sampled and reported, but they change nothing."""
-    return [f"{case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears in the "
-            f"sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
-            for n in unused_parameters(case)]
+def case_warnings(case: Case) -> list[str]:
+    """What a valid case may still get wrong: parameters no field uses (sampled and reported, but
+    they change nothing), and units that name another time unit or abundance unit than the field."""
+    from .units import unit_warnings
+
+    return ([f"{case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears in the "
+             f"sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
+             for n in unused_parameters(case)]
+            + [f"{case.path}: {w}" for w in unit_warnings(case)])
 
 
 def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool = False,

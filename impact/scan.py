@@ -14,6 +14,9 @@ from .errors import SettingError
 from .integrate import FAILURE_REASONS
 from .model import Controls, build_web, web_params
 
+# intervention fields that `--parameter INTERVENTION.FIELD` may vary
+INTENSITIES = ("rate", "fraction", "factor", "sterile_density")
+
 
 def transitions(parameter: str, values: np.ndarray, regime, period) -> pd.DataFrame:
     """Changes of (regime, period) between scan values, with a kind for each change.
@@ -87,7 +90,7 @@ def scan_target(case: Case, name: str, option_name: str | None):
         ivs = {iv.name: iv for iv in case.interventions}
         if iv_name in ivs:
             iv = ivs[iv_name]
-            allowed = [f for f in ("rate", "fraction", "factor") if getattr(iv, f) is not None]
+            allowed = [f for f in INTENSITIES if getattr(iv, f) is not None]
             if fld not in allowed:
                 raise SettingError("parameter", f"intervention {iv_name!r} ({iv.kind}) has no intensity {fld!r}; use one of: {', '.join(allowed) or 'none'}")
             opt = next((o for o in case.options if o.name == option_name), None)
@@ -97,7 +100,7 @@ def scan_target(case: Case, name: str, option_name: str | None):
                 new_iv = replace(iv, **{fld: float(v)})
                 return replace(case, interventions=tuple(new_iv if x.name == iv_name else x for x in case.interventions)), base
             return at
-    choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in ("rate", "fraction", "factor")
+    choices = sorted(base) + [f"{iv.name}.{f}" for iv in case.interventions for f in INTENSITIES
                               if getattr(iv, f) is not None]
     raise SettingError("parameter", f"unknown quantity {name!r}; choose a parameter or an intervention intensity: {', '.join(choices)}")
 
@@ -107,16 +110,17 @@ def steady_controls(case: Case, option_name: str | None, values: dict, M: int) -
 
     ``values`` maps parameter names to ndarray (M,) or scalars.
     """
-    from .simulate import controls_at
+    from .simulate import controls_at, season_mean_phi
 
     S = len(case.species)
     if option_name is None:
-        return Controls.neutral(M, S)
+        return replace(Controls.neutral(M, S), phi=season_mean_phi(case, M), wave=np.zeros((M, S)))
     opt = next(o for o in case.options if o.name == option_name)
     always = tuple(replace(iv, start=-np.inf, end=np.inf) if iv.name in opt.interventions else iv
                    for iv in case.interventions)
     vals = {k: np.broadcast_to(np.asarray(v, float), (M,)).copy() for k, v in values.items()}
-    return controls_at(replace(case, interventions=always), opt, vals, 0.0, np.ones((M, S)), M, S)
+    return controls_at(replace(case, interventions=always), opt, vals, 0.0, season_mean_phi(case, M), M, S,
+                       season_averaged=True)
 
 
 def _scan_rows(parameter, v, out, i, keep_sections, species):

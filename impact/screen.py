@@ -110,7 +110,7 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         Settings for dynamics.json.
     """
     from .execute import InProcess, count
-    from .simulate import controls_at
+    from .simulate import controls_at, season_mean_phi
 
     s, declared = (settings, {}) if settings is not None else declared_settings(case, SCREEN)
     sec_col, sec_name = section_species(case, section)
@@ -124,7 +124,9 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
     t_last = H - 1e-9 * max(H, 1.0)
     opts = {None: "baseline", **{o: o.name for o in case.options}}
     vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, np.ones((sel.size, S)), sel.size, S),
+    # seasons are averaged: the diagnostics look for the autonomous web's own regime
+    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, season_mean_phi(case, sel.size), sel.size, S,
+                                                 season_averaged=True),
                           runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
     results = {}
     count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
@@ -150,6 +152,8 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         member_selection=("every kept member" if sel.size == M else
                           f"a random subset of {sel.size} of {M} kept members (seed {seed}, the same members for every option)"),
         basis=ATTRACTOR, start="each option's state at the horizon", controls="press controls in force just before the horizon",
+        seasons=("averaged: births at their season-mean multiplier, interventions scheduled by season at their rate "
+                 "times the share of the season they cover" if case.seasons is not None else "none declared"),
         noise="off (deterministic)", events="none after the horizon", section=f"maxima of {sec_name}",
         share_interval=f"Wilson score interval, {SHARE_CONFIDENCE:.0%}", assessment_horizon=H,
         horizon_amplitude=HORIZON, counts=counts, declared=declared,

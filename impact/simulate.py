@@ -1,8 +1,10 @@
 """Simulate the ensemble: spin-up, plausibility filter and paired option runs.
 
 Time is cut into segments at every output time, every time-unit boundary (where the
-environmental multipliers are redrawn) and every intervention start, end or event, so the
-right-hand side is smooth inside each segment and jumps happen only between segments.
+environmental multipliers are redrawn), every edge of a breeding season or of an intervention
+scheduled by season, and every intervention start, end or event, so the right-hand side is
+smooth inside each segment and jumps happen only between segments: the step control of each
+segment never straddles a switch.
 """
 
 from __future__ import annotations
@@ -11,7 +13,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from .case import Case, Option
+from .case import ARRIVAL_KINDS, Case, Option
 from .engine.web import DEFAULT_ENGINE, web_segment
 from .model import Controls, FoodWeb, WebParams
 
@@ -60,36 +62,93 @@ def segment_times(case: Case, option: Option | None, with_noise: bool) -> np.nda
     ts = set(output_times(case).tolist())
     if with_noise:
         ts.update(float(k) for k in range(int(np.floor(H)) + 1))
+    ts.update(breeding_edges(case, 0.0, H))
     if option is not None:
         for name in option.interventions:
-            iv = case.intervention(name)
-            ts.update((iv.start, iv.end))
-            ts.update(iv.event_times())
+            ts.update(case.intervention(name).boundaries())
     return np.array(sorted(t for t in ts if 0.0 <= t <= H))
 
 
-def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int) -> Controls:
+def breeding_edges(case: Case, t0: float, t1: float) -> set[float]:
+    """Times in [t0, t1] where some species' breeding season opens or closes."""
+    edges: set[float] = set()
+    if case.seasons is None:
+        return edges
+    for s in case.species:
+        if s.breeding_season is not None:
+            for a, b in case.seasons.windows(*s.breeding_season, t0, t1):
+                edges.update((a, b))
+    return edges
+
+
+def breeding_multiplier(case: Case, t: float) -> np.ndarray | None:
+    """Births multiplier of every species at time ``t`` from its breeding season: (S,), or None
+    when no species declares one. 1 inside the season's breeding parts, ``outside`` elsewhere."""
+    if case.seasons is None or all(s.breeding_season is None for s in case.species):
+        return None
+    sea = case.seasons
+    part = int(np.floor((t / sea.length) % 1.0 * sea.parts)) + 1
+    out = np.ones(len(case.species))
+    for i, s in enumerate(case.species):
+        if s.breeding_season is None:
+            continue
+        first, last = s.breeding_season
+        inside = first <= part <= last if first <= last else (part >= first or part <= last)
+        out[i] = 1.0 if inside else s.breeding_outside
+    return out
+
+
+def season_share(case: Case, parts: tuple[int, int] | None) -> float:
+    """Share of a season covered by parts ``parts`` = (first, last), wrapping; 1 for None."""
+    if parts is None or case.seasons is None:
+        return 1.0
+    first, last = parts
+    n = last - first + 1 if first <= last else case.seasons.parts - first + 1 + last
+    return n / case.seasons.parts
+
+
+def season_mean_phi(case: Case, M: int) -> np.ndarray:
+    """Season-mean breeding multiplier of every species, (M, S): share + outside·(1 − share)."""
+    row = [season_share(case, s.breeding_season) * (1.0 - s.breeding_outside) + s.breeding_outside
+           if s.breeding_season is not None else 1.0 for s in case.species]
+    return np.tile(np.array(row, float), (M, 1))
+
+
+def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np.ndarray, M: int, S: int,
+                season_averaged: bool = False) -> Controls:
+    """Controls of ``option`` at time ``t_mid`` (inside a segment), with growth multipliers ``phi`` (M, S).
+
+    ``season_averaged`` gives the season-averaged controls the regime diagnostics follow: an
+    intervention scheduled by season acts whenever it is on (between ``start`` and ``end``), at
+    its rate (fraction, sterile density) times the share of the season it covers, or with its
+    carrying-capacity factor raised to that share.
+    """
     from .model import resolve  # local: keeps the public surface of this module small
 
     c = Controls.neutral(M, S)
     c = replace(c, phi=phi)
+    if season_averaged:  # a sinusoidal breeding season averages to births × 1
+        c = replace(c, wave=np.zeros((M, S)))
     if option is None:
         return c
     col = {n: i for i, n in enumerate(case.species_names)}
     for name in option.interventions:
         iv = case.intervention(name)
-        if not iv.start <= t_mid < iv.end:
+        w = season_share(case, iv.season_parts) if season_averaged else 1.0
+        if not (iv.start <= t_mid < iv.end if season_averaged else iv.active(t_mid)):
             continue
         j = col[iv.species]
         if iv.kind == "press-harvest":
-            c.harvest[:, j] += resolve(iv.rate, values, M)
+            c.harvest[:, j] += w * resolve(iv.rate, values, M)
             if iv.carcasses_to_carrion:
                 c.carcass[:, j] = 1.0
         elif iv.kind == "fertility-control":
             # several suppressions combine multiplicatively on the surviving births
-            c.fertility[:, j] = 1.0 - (1.0 - c.fertility[:, j]) * (1.0 - resolve(iv.fraction, values, M))
-        elif iv.kind == "habitat-change":
-            c.habitat[:, j] *= resolve(iv.factor, values, M)
+            c.fertility[:, j] = 1.0 - (1.0 - c.fertility[:, j]) * (1.0 - w * resolve(iv.fraction, values, M))
+        elif iv.kind == "carrying-capacity-change":
+            c.habitat[:, j] *= resolve(iv.factor, values, M) ** w
+        elif iv.kind == "sterile-release":
+            c.sterile[:, j] += w * resolve(iv.sterile_density, values, M) * resolve(iv.competitiveness, values, M)
     return c
 
 
@@ -114,7 +173,7 @@ def _apply_events(case: Case, web: FoodWeb, option: Option | None, values, event
         elif iv.kind == "eradication":
             fails = event_u[name] < resolve(iv.failure_probability, values, M)
             y[:, j] = np.where(fails, y[:, j] * resolve(iv.residual_fraction, values, M), 0.0)
-        elif iv.kind == "introduction":
+        elif iv.kind in ARRIVAL_KINDS:
             y[:, j] += resolve(iv.amount, values, M)
 
 
@@ -156,6 +215,9 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
         t0, t1 = times[k], times[k + 1]
         mid = 0.5 * (t0 + t1)
         phi = noise[:, int(np.floor(mid))] if noise is not None else ones
+        season = breeding_multiplier(case, mid)
+        if season is not None:
+            phi = phi * season
         c = controls_at(case, option, values, mid, phi, M, S)
         active = np.flatnonzero(~failed)
         if active.size:
@@ -199,21 +261,30 @@ def spin_up(case: Case, web: FoodWeb, p: WebParams,
     M, n = y.shape
     if case.spinup <= 0:
         return y, y.copy(), ~np.isfinite(y).all(axis=1), np.zeros(M, np.int8)
-    c = Controls.neutral(M, web.n_species)
+    S = web.n_species
     half = -0.5 * case.spinup
-    first = web_segment(web, p, c, -case.spinup, half, y, rtol=case.rtol, atol=case.atol, engine=engine)
-    failed = first.failed.copy()
-    reason = first.reason.copy()
-    today = np.full_like(y, np.nan)
-    late_min = np.full_like(y, np.nan)
-    ok = np.flatnonzero(~failed)
-    if ok.size:
-        second = web_segment(web, p, c, half, 0.0, first.y[ok], rtol=case.rtol, atol=case.atol,
-                             h0=first.h[ok], members=ok, engine=engine)
-        today[ok] = second.y
-        late_min[ok] = np.minimum(second.ymin, second.y)
-        failed[ok[second.failed]] = True
-        reason[ok[second.failed]] = second.reason[second.failed]
+    # cut at the breeding seasons' edges too, so the step control never straddles one
+    times = sorted({-case.spinup, half, 0.0} | breeding_edges(case, -case.spinup, 0.0))
+    failed = np.zeros(M, bool)
+    reason = np.zeros(M, np.int8)
+    h = np.full(M, np.nan)
+    late_min = np.full_like(y, np.inf)
+    for t0, t1 in zip(times[:-1], times[1:]):
+        ok = np.flatnonzero(~failed)
+        if not ok.size:
+            break
+        season = breeding_multiplier(case, 0.5 * (t0 + t1))
+        c = Controls.neutral(M, S) if season is None else replace(Controls.neutral(M, S), phi=np.tile(season, (M, 1)))
+        h0 = None if t0 == -case.spinup else h[ok]
+        seg = web_segment(web, p, c, t0, t1, y[ok], rtol=case.rtol, atol=case.atol, h0=h0, members=ok, engine=engine)
+        y[ok] = seg.y
+        h[ok] = seg.h
+        if t0 >= half:
+            late_min[ok] = np.minimum(late_min[ok], np.minimum(seg.ymin, seg.y))
+        failed[ok[seg.failed]] = True
+        reason[ok[seg.failed]] = seg.reason[seg.failed]
+    today = np.where(failed[:, None], np.nan, y)
+    late_min[failed] = np.nan
     return today, late_min, failed, reason
 
 

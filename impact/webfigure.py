@@ -16,14 +16,17 @@ import numpy as np
 
 from .manifest import InteractionRecord, Manifest
 
-FEEDING = ("predation", "scavenging")
+FEEDING = ("predation", "scavenging", "alternative-food")
 KIND_STYLE = {
     "predation": ("#c0392b", "-"),
     "scavenging": ("#8e5b2e", "-"),
+    "alternative-food": ("#8e5b2e", "--"),
     "competition": ("#555555", "--"),
     "mutualism": ("#1e8449", "-"),
+    "life-stage": ("#7d3c98", ":"),
 }
-RESPONSE_LABELS = {"holling1": "Holling I", "holling2": "Holling II", "holling3": "Holling III"}
+RESPONSE_LABELS = {"holling1": "Holling I", "holling2": "Holling II", "holling3": "Holling III",
+                   "beddington-deangelis": "Beddington–DeAngelis"}
 TOUCHED_COLOUR = "#d35400"
 
 
@@ -92,7 +95,10 @@ def food_web_svg(m: Manifest) -> bytes:
         both = "<|-|>" if it.kind == "competition" else "-|>"
         ax.add_patch(FancyArrowPatch(a, b, arrowstyle=both, mutation_scale=12, color=colour, linestyle=style,
                                      linewidth=1.4, connectionstyle="arc3,rad=0.12", shrinkA=16, shrinkB=16))
-        label = RESPONSE_LABELS.get(it.response or "", it.kind) if it.kind in FEEDING else it.kind
+        if it.kind in FEEDING:
+            label = RESPONSE_LABELS.get(it.response or "", it.kind)
+        else:  # a mutualism saved with response "obligate" is drawn as such
+            label = f"{it.response} {it.kind}" if it.response == "obligate" else it.kind
         mid = (a + b) / 2 + np.array([0.04, 0.0])
         ax.text(*mid, _escape(label), fontsize=6, color=colour, ha="center", va="center",
                 bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.85))

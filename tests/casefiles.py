@@ -15,6 +15,8 @@ def _value(v) -> str:
         return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_value(x) for x in v) + "]"
+    if isinstance(v, dict):  # an inline table (inside an array of tables)
+        return "{" + ", ".join(f"{_key(k)} = {_value(x)}" for k, x in v.items()) + "}"
     raise TypeError(type(v))
 
 

@@ -14,7 +14,7 @@ from impact.errors import CaseError
 CASEWORK = __import__("pathlib").Path(__file__).parent.parent / "casework"
 
 
-@pytest.mark.parametrize("name", ["island_mesopredator.toml", "predator_prey.toml"])
+@pytest.mark.parametrize("name", ["island_mesopredator.toml", "predator_prey.toml", "moth_pollinator.toml"])
 def test_example_cases_load_and_are_marked_invented(name):
     case = load_case(CASEWORK / name)
     assert case.invented
@@ -161,3 +161,143 @@ def test_parameter_groups_name_uncertain_parameters_only(tmp_path):
     with pytest.raises(CaseError) as err:
         load_case(write_case(tmp_path, d))
     assert err.value.field == "parameter_groups.both.parameters" and "not an uncertain parameter" in err.value.message
+
+
+# --- the terms of pollinator-dependent, seasonal webs --------------------------------------------
+
+SEASONS = {"length": 1.0, "parts": 52, "part_name": "week"}
+
+
+def _with(edit):
+    data = web_case()
+    edit(data)
+    return data
+
+
+BAD_TERMS = [
+    ("kind and its alias type together", lambda d: d["interactions"][0].update(kind="predation"),
+     "interactions[0].type", "`type` is its older alias"),
+    ("obligate mutualism with a max_benefit", lambda d: d["interactions"][4].update(dependence="obligate"),
+     "interactions[4].max_benefit", "no max_benefit"),
+    ("the same mutualist pair twice",
+     lambda d: d["interactions"].append(dict(d["interactions"][4], dependence="obligate", max_benefit=None)),
+     "interactions[5].partner", "already declared a mutualist partner"),
+    ("mutualism on a species without births of its own",
+     lambda d: d["interactions"][4].update(beneficiary="hare"),
+     "interactions[4].beneficiary", "growth = \"none\""),
+    ("unknown dependence", lambda d: d["interactions"][4].update(dependence="partial"),
+     "interactions[4].dependence", "facultative, obligate"),
+    ("interference on a Holling II link", lambda d: d["interactions"][1].update(interference=0.1),
+     "interactions[1].interference", "beddington-deangelis"),
+    ("holling2 and beddington-deangelis for one consumer",
+     lambda d: (d["interactions"][1].update(response="beddington-deangelis", interference=0.1),
+                d["interactions"].append({"type": "predation", "predator": "fox", "prey": "beetle", "response": "holling2",
+                                          "attack_rate": 0.01, "handling_time": 0.1, "efficiency": 0.1})),
+     "interactions", "mixes holling2 and beddington-deangelis"),
+    ("negative crowding mortality", lambda d: d["species"][2].update(crowding_mortality=-0.1),
+     "species.fox.crowding_mortality", ">= 0"),
+    ("breeding season without [seasons]", lambda d: d["species"][0].update(breeding_season={"first": 1, "last": 3}),
+     "species.grass.breeding_season", "needs a [seasons] table"),
+    ("breeding season past the last part",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"first": 50, "last": 53})),
+     "species.grass.breeding_season", "from 1 to 52"),
+    ("season parts of an intervention out of range",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][2].update(season_parts=[0, 4])),
+     "interventions.no-op.season_parts", "two whole numbers from 1 to 52"),
+    ("first arrival of a species present today",
+     lambda d: d["interventions"][2].update(kind="first-arrival", time=1.0, amount=3.0, rate=None),
+     "interventions.no-op.species", "use kind = \"release\""),
+    ("sterile release without a density",
+     lambda d: d["interventions"].append({"name": "sit", "kind": "sterile-release", "species": "hare"}),
+     "interventions.sit.sterile_density", "required"),
+    ("two alternative foods for one consumer",
+     lambda d: d["interactions"].extend([{"kind": "alternative-food", "consumer": "fox", "density": 10.0, "attack_rate": 0.1,
+                                          "handling_time": 0.1, "efficiency": 0.1}] * 2),
+     "interactions[6].consumer", "already has an alternative food"),
+    ("sinusoidal breeding with an amplitude above one",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"amplitude": 1.5, "peak": 20})),
+     "species.grass.breeding_season.amplitude", "<= 1"),
+    ("breeding season mixing a window and a sinusoid",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"amplitude": 0.5, "peak": 20, "first": 3})),
+     "species.grass.breeding_season.first", "unknown key"),
+    ("juvenile stage that breeds", lambda d: d["species"][0].update(matures_into="hare", maturation_rate=1.0),
+     "species.grass.growth", "does not breed"),
+    ("juvenile of an unknown species", lambda d: d["species"][1].update(matures_into="owl", maturation_rate=1.0),
+     "species.hare.matures_into", "must name another declared species"),
+    ("juvenile without a maturation rate", lambda d: d["species"][1].update(matures_into="fox"),
+     "species.hare.maturation_rate", "required"),
+    ("a chain of three stages",
+     lambda d: (d["species"][1].update(matures_into="fox", maturation_rate=1.0),
+                d["species"][3].update(matures_into="hare", maturation_rate=1.0)),
+     "species.beetle.matures_into", "itself a juvenile stage"),
+    ("pulse cull with both times and a season part",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][0].update(season_part=10)),
+     "interventions.fox cull.times", "exactly one of times"),
+]
+
+
+def _drop_none(data):
+    for iv in data["interventions"] + data["interactions"]:
+        for k in [k for k, v in iv.items() if v is None]:
+            del iv[k]
+    return data
+
+
+@pytest.mark.parametrize("desc,edit,field,words", BAD_TERMS, ids=[b[0] for b in BAD_TERMS])
+def test_bad_new_terms_name_the_field(tmp_path, desc, edit, field, words):
+    f = write_case(tmp_path, _drop_none(_with(edit)))
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert err.value.field == field
+    assert words in err.value.message
+
+
+def test_new_terms_and_aliases_are_read(tmp_path):
+    def edit(d):
+        d["seasons"] = SEASONS
+        for it in d["interactions"]:
+            it["kind"] = it.pop("type")  # the selector key of interventions, now also of interactions
+        d["interactions"][1].update(response="beddington-deangelis", interference="fox_a")
+        d["interactions"][4].update(dependence="obligate")
+        del d["interactions"][4]["max_benefit"]
+        d["species"][0].update(breeding_season={"first": 48, "last": 4, "outside": 0.1}, crowding_mortality=0.001)
+        d["interventions"] += [
+            {"name": "more grass", "kind": "habitat-change", "species": "grass", "factor": 1.2, "season_parts": [10, 14]},
+            {"name": "stock hares", "kind": "introduction", "species": "hare", "time": 2.0, "amount": 5.0},
+            {"name": "sit", "kind": "sterile-release", "species": "hare", "sterile_density": 40.0, "competitiveness": 0.5},
+            {"name": "spring cull", "kind": "pulse-cull", "species": "fox", "season_part": 14, "start": 2.0, "end": 6.0,
+             "fraction": 0.5}]
+    case = load_case(write_case(tmp_path, _with(edit)))
+    assert case.feeding[1].response == "beddington-deangelis" and case.feeding[1].interference == "fox_a"
+    assert case.mutualism[0].obligate and case.mutualism[0].max_benefit == 0.0
+    assert case.species[0].breeding_season == (48, 4) and case.species[0].breeding_outside == 0.1
+    assert case.intervention("more grass").kind == "carrying-capacity-change"  # documented alias
+    assert case.intervention("more grass").windows[0] == (9 / 52, 14 / 52)
+    assert case.intervention("stock hares").kind == "release"  # documented alias
+    assert case.intervention("spring cull").times == tuple(k + 13 / 52 for k in (2, 3, 4, 5))
+    # a wrapping breeding season (weeks 48 to 4) is one span across the turn of the season
+    assert case.seasons.windows(48, 4, 0.0, 2.0) == ((0.0, 4 / 52), (47 / 52, 1 + 4 / 52), (1 + 47 / 52, 2.0))
+
+
+def test_units_that_name_another_time_unit_are_warned_about(tmp_path, capsys):
+    # README's units table: rates are per time unit of the case, efficiencies have no time in them
+    from impact.units import unit_warnings
+    from impact.cli import main
+
+    data = web_case()
+    data["parameters"]["grass_r"]["unit"] = "1/day"  # a growth rate, but the case counts years
+    data["parameters"]["cull"]["unit"] = "fraction per year"  # a cull fraction has no time in it
+    f = write_case(tmp_path, data)
+    warnings = unit_warnings(load_case(f))
+    assert len(warnings) == 2
+    assert "parameters.grass_r" in warnings[0] and "'year'" in warnings[0] and "species.grass.growth_rate" in warnings[0]
+    assert "parameters.cull" in warnings[1] and "no time in its dimension" in warnings[1]
+    assert main(["check", str(f)]) == 0
+    assert capsys.readouterr().out.count("warning:") == 2
+    assert unit_warnings(load_case(write_case(tmp_path, web_case()))) == ()  # ha/year, 1/year: consistent
+    data = web_case()
+    data["species"][0]["unit"] = "g/m2"
+    data["parameters"]["k"] = {"distribution": "uniform", "low": 900.0, "high": 1100.0, "unit": "kg/ha"}
+    data["species"][0]["carrying_capacity"] = "k"
+    (warning,) = unit_warnings(load_case(write_case(tmp_path, data)))
+    assert "parameters.k" in warning and "not grass's unit 'g/m2'" in warning

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import subprocess
+from dataclasses import replace
 import sys
 from pathlib import Path
 
@@ -74,9 +75,11 @@ def test_spin_up_and_option_runs_match_the_numpy_reference(name, tmp_path):
 RESPONSES = ("holling1", "holling2", "holling3")
 
 
-def random_web(seed: int, members: int):
+def random_web(seed: int, members: int, new_terms: bool = False):
     """An invented web: 3-5 species, random feeding links (every response), carrion, competition
-    and mutualism, with random parameters and controls; returns ``(web, params, controls)``."""
+    and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
+    ``new_terms`` adds an obligate partner, predator interference, crowding mortality, sterile
+    releases, an alternative food, a juvenile stage and a sinusoidal breeding season."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -85,10 +88,18 @@ def random_web(seed: int, members: int):
         for resource in rng.choice(consumer, size=int(rng.integers(1, 3)), replace=False):
             links[(consumer, int(resource))] = RESPONSES[int(rng.integers(3))]
     links[(S - 1, S)] = RESPONSES[int(rng.integers(1, 3))]  # a scavenger on the carrion pool
+    if new_terms:
+        links[(S - 1, -1)] = RESPONSES[int(rng.integers(3))]  # ... with a constant alternative food
     web = FoodWeb(species=tuple(f"s{i}" for i in range(S)), has_carrion=True, logistic=logistic,
                   links=tuple(Link(c, r, resp, "predation") for (c, r), resp in links.items()),
                   competition=((0, 1), (1, 0)), mutualism=((0, S - 1),),
-                  carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S)
+                  carrion_yield=rng.uniform(0, 1, S), unit=("n",) * S,
+                  # the scavenger S−1 has a saturating link (on carrion), so it can carry interference
+                  # species 1 breeds only with species S−1 or 2 (two obligate partners)
+                  obligate=((1, S - 1), (1, 2)) if new_terms else (), interference=(S - 1,) if new_terms else (),
+                  crowding=new_terms, sterile=(0, 2) if new_terms else (),
+                  stages=((2, 1),) if new_terms else (),  # species 2 is the juvenile stage of species 1
+                  wave=(0,) if new_terms else ())  # species 0 breeds in a sinusoidal season
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -101,13 +112,19 @@ def random_web(seed: int, members: int):
                   initial=np.concatenate([u(10, 100, S), u(0, 5, 1)], axis=1), noise_sd=np.zeros((M, S)))
     c = Controls(phi=u(0.8, 1.2, S), fertility=u(0.0, 0.3, S), habitat=u(0.7, 1.3, S),
                  harvest=u(0.0, 0.1, S), carcass=(u(0, 1, S) > 0.5).astype(float))
+    if new_terms:
+        food = np.array([link.resource < 0 for link in web.links]) * u(1.0, 20.0, L)
+        p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, 2), gamma=u(0.0, 0.5, S), food=food,
+                    mat=u(0.2, 2.0, S), amp=u(0.0, 1.0, S), omega=u(3.0, 7.0, S), phase=u(0.0, 6.0, S))
+        c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     return web, p, c
 
 
-@pytest.mark.parametrize("seed, engines", [(0, COMPILED), (1, COMPILED), (2, ["table"]), (3, ["table"]),
-                                           (4, ["table"]), (5, ["table"])])
-def test_random_webs_match_the_numpy_reference(seed, engines):
-    web, p, c = random_web(seed, 16)
+@pytest.mark.parametrize("seed, engines, new_terms", [
+    (0, COMPILED, False), (1, COMPILED, False), (2, ["table"], False), (3, ["table"], False),
+    (4, ["table"], False), (5, ["table"], False), (6, COMPILED, True), (7, ["table"], True), (8, ["table"], True)])
+def test_random_webs_match_the_numpy_reference(seed, engines, new_terms):
+    web, p, c = random_web(seed, 16, new_terms)
     kw = dict(rtol=1e-8, atol=1e-10)
     ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="numpy", **kw)
     assert (~ref.failed).sum() >= 8  # most members run through, so the comparison means something
@@ -167,7 +184,7 @@ def one_species_web():
 
 def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp_path, monkeypatch):
     monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setattr(generate, "_loaded", {})  # another test may have loaded this structure already
+    monkeypatch.setattr(generate, "_loaded", {})  # another test of this process may have loaded the structure
     st = pack_structure(one_species_web())
     module = generate.specialised(st)
     assert generate.specialised(st) is module
@@ -191,7 +208,9 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1, 0.0, 0.0]])\n"
+        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay (the
+        # kernel's column order, model.SegmentCoefficients)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 9])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

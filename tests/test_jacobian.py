@@ -7,6 +7,8 @@ relative is what a correct analytic Jacobian gives at ε ~ 1e-5 relative.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -33,6 +35,39 @@ def _web_with(tmp_path, response):
     return case, build_web(case)
 
 
+def _web_with_new_terms(tmp_path, response):
+    """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
+    Beddington–DeAngelis fox with an alternative food, sterile releases on the hare and a juvenile
+    stage (leverets) of the hare; the moth breeds in a sinusoidal season."""
+    data = web_case()
+    data["interactions"][0]["response"] = response
+    data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
+    data["interactions"][1]["interference"] = 0.2
+    data["species"][2]["crowding_mortality"] = 0.01
+    data["seasons"] = {"length": 1.0, "parts": 12, "part_name": "month"}
+    data["species"] += [
+        {"name": "moth", "growth": "logistic", "growth_rate": 1.5, "carrying_capacity": 80.0, "initial": 30.0,
+         "quasi_extinction": 1.0, "crowding_mortality": 0.002, "breeding_season": {"amplitude": 0.7, "peak": 7}},
+        {"name": "flower", "growth": "logistic", "growth_rate": 0.8, "carrying_capacity": 300.0, "mortality": 0.1,
+         "initial": 100.0, "quasi_extinction": 1.0}]
+    data["interactions"] += [
+        {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "moth", "half_saturation": 20.0},
+        {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "beetle", "half_saturation": 3.0},
+        {"kind": "mutualism", "beneficiary": "moth", "partner": "flower", "max_benefit": 0.5, "half_saturation": 50.0},
+        {"kind": "predation", "predator": "hare", "prey": "flower", "response": response, "attack_rate": 0.001,
+         "handling_time": 0.1, "efficiency": 0.2},
+        {"kind": "alternative-food", "consumer": "fox", "density": 50.0, "response": "beddington-deangelis",
+         "interference": 0.2, "attack_rate": 0.01, "handling_time": 0.2, "efficiency": 0.05}]
+    data["interventions"].append({"name": "sterile hares", "kind": "sterile-release", "species": "hare",
+                                  "sterile_density": 30.0})
+    data["species"].append({"name": "leveret", "growth": "none", "mortality": 0.3, "initial": 20.0, "quasi_extinction": 1.0,
+                            "matures_into": "hare", "maturation_rate": 0.8})
+    data["interactions"].append({"kind": "predation", "predator": "fox", "prey": "leveret", "response": "beddington-deangelis",
+                                 "interference": 0.2, "attack_rate": 0.05, "handling_time": 0.1, "efficiency": 0.1})
+    case = load_case(write_case(tmp_path, data))
+    return case, build_web(case)
+
+
 def _fd_jacobian(f, y, eps):
     m, n = y.shape
     J = np.empty((m, n, n))
@@ -45,9 +80,9 @@ def _fd_jacobian(f, y, eps):
     return J
 
 
-def _random_point(tmp_path, response, controlled, seed, M=5):
+def _random_point(tmp_path, response, controlled, seed, M=5, new_terms=False):
     """A web with one response type, M members' parameters, controls (neutral or random) and states."""
-    case, web = _web_with(tmp_path, response)
+    case, web = (_web_with_new_terms if new_terms else _web_with)(tmp_path, response)
     rng = np.random.default_rng(seed)
     values = parameter_values(case, rng.random((M, len(case.uncertain))))
     p = web_params(case, values, M)
@@ -56,19 +91,22 @@ def _random_point(tmp_path, response, controlled, seed, M=5):
     if controlled:
         c = Controls(phi=rng.uniform(0.7, 1.3, (M, S)), fertility=rng.uniform(0, 0.5, (M, S)),
                      habitat=rng.uniform(0.5, 1.5, (M, S)), harvest=rng.uniform(0, 0.3, (M, S)),
-                     carcass=(rng.random((M, S)) < 0.5).astype(float))
+                     carcass=(rng.random((M, S)) < 0.5).astype(float),
+                     sterile=rng.uniform(0, 40, (M, S)) * (rng.random((M, S)) < 0.7))
     y = rng.uniform(0.5, 2.0, (M, web.n_state)) * np.concatenate([p.initial[:, :S], np.full((M, 1), 20.0)], axis=1)
     return web, p, c, y, rng
 
 
 @pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
 @pytest.mark.parametrize("controlled", [False, True])
-def test_jacobian_matches_central_differences(tmp_path, response, controlled):
-    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1)
+@pytest.mark.parametrize("new_terms", [False, True])
+def test_jacobian_matches_central_differences(tmp_path, response, controlled, new_terms):
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 1, new_terms=new_terms)
     M = y.shape[0]
     idx = np.arange(M)
-    J = jacobian(web, p, c, y, idx)
-    Jfd = _fd_jacobian(lambda yy: rhs(web, p, c, yy, idx), y, 1e-6)
+    t = rng.uniform(0.0, 3.0, M)  # times matter for a sinusoidal breeding season
+    J = jacobian(web, p, c, y, idx, t)
+    Jfd = _fd_jacobian(lambda yy: rhs(web, p, c, yy, idx, t), y, 1e-6)
     scale = np.abs(Jfd).max(axis=2, keepdims=True) + 1e-12
     assert np.all(np.abs(J - Jfd) / scale < 1e-6)
 
@@ -97,16 +135,18 @@ def test_tangent_is_the_matrix_vector_product():
 
 @pytest.mark.parametrize("response", ["holling1", "holling2", "holling3"])
 @pytest.mark.parametrize("controlled", [False, True])
-def test_directional_derivative_matches_central_differences(tmp_path, response, controlled):
+@pytest.mark.parametrize("new_terms", [False, True])
+def test_directional_derivative_matches_central_differences(tmp_path, response, controlled, new_terms):
     """J·v without forming J equals (f(y + εv) − f(y − εv))/(2ε) to O(ε²) (Press et al. 2007, Sec. 5.7)."""
-    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 4)
+    web, p, c, y, rng = _random_point(tmp_path, response, controlled, 4, new_terms=new_terms)
     M = y.shape[0]
     v = rng.normal(size=y.shape) * y  # perturbations on the scale of each state
     idx = np.arange(M)
-    f, jv = WebTangent(web, p, c)(None, y, v, idx)
-    np.testing.assert_allclose(f, rhs(web, p, c, y, idx), rtol=1e-13, atol=1e-12)
+    t = rng.uniform(0.0, 3.0, M)
+    f, jv = WebTangent(web, p, c)(t, y, v, idx)
+    np.testing.assert_allclose(f, rhs(web, p, c, y, idx, t), rtol=1e-13, atol=1e-12)
     eps = 1e-6
-    fd = (rhs(web, p, c, y + eps * v, idx) - rhs(web, p, c, y - eps * v, idx)) / (2 * eps)
+    fd = (rhs(web, p, c, y + eps * v, idx, t) - rhs(web, p, c, y - eps * v, idx, t)) / (2 * eps)
     scale = np.abs(fd).max(axis=1, keepdims=True) + 1e-12
     assert np.all(np.abs(jv - fd) / scale < 1e-6)
 
@@ -129,3 +169,23 @@ def test_compiled_tangent_equals_the_numpy_reference(tmp_path, response, control
     f2, jv2 = WebTangent(web, p, c, engine="compiled")(None, y[sub], v[sub], sub)
     np.testing.assert_array_equal(f2, f[sub])
     np.testing.assert_array_equal(jv2, jv[sub])
+
+
+@pytest.mark.parametrize("name,engine", [("island_mesopredator", "compiled"), ("moth_pollinator", "numpy")])
+def test_compiled_tangent_covers_its_terms_and_leaves_the_rest_to_the_reference(name, engine):
+    """A web with a term the compiled J·v does not know (life stages, crowding, seasons...) is
+    evaluated by the numpy reference: the choice is made per web, never silently wrong."""
+    case = load_case(Path(__file__).resolve().parent.parent / "casework" / f"{name}.toml")
+    web = build_web(case)
+    M = 3
+    values = parameter_values(case, np.full((M, len(case.uncertain)), 0.5))
+    p = web_params(case, values, M)
+    c = Controls.neutral(M, web.n_species)
+    jvp = WebTangent(web, p, c)
+    assert jvp.engine == engine
+    y = np.abs(p.initial) + 1.0
+    v = np.linspace(0.5, 1.5, y.size).reshape(y.shape)
+    f, jv = jvp(None, y, v, np.arange(M))
+    ref_f, ref_jv = WebTangent(web, p, c, engine="numpy")(None, y, v, np.arange(M))
+    np.testing.assert_allclose(f, ref_f, rtol=1e-13)
+    np.testing.assert_allclose(jv, ref_jv, rtol=1e-12, atol=1e-12 * np.abs(ref_jv).max())

@@ -39,18 +39,26 @@ def cache_dir() -> Path:
 
 
 def rhs_source(st: np.ndarray) -> str:
-    """Straight-line ``web_rhs(st, cf, y, out, work)`` for the structure table ``st``."""
-    S, n, carrion, L, Cc, U, logistic = (int(x) for x in st[: kernel.HEADER])
+    """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``."""
+    S, n, carrion, L, Cc, U, logistic, crowding, O = (int(x) for x in st[: kernel.HEADER])
     H = kernel.HEADER
     cons, res = st[H:H + L], st[H + L:H + 2 * L]
     power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
     comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
-    mut = st[H + 4 * L + 2 * Cc:].reshape(-1, 2)
-    o_a = 5 * S
-    o_ah, o_e, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L
+    op = H + 4 * L + 2 * Cc + 2 * U
+    mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
+    obl = st[op:op + 2 * O].reshape(-1, 2)
+    fp = op + 2 * O  # per-species flags
+    interfere, sterile = st[fp:fp + S], st[fp + S:fp + 2 * S]
+    adult, wave = st[fp + 2 * S:fp + 3 * S], st[fp + 3 * S:fp + 4 * S]
+    o_quad, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S
+    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
+    o_a = 12 * S
+    o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
-    o_dec = o_H + U
+    o_obH = o_H + U
+    o_dec = o_obH + O
     body = [f"y{i} = y[{i}]" for i in range(n)]
     body += [f"b{i} = cf[{S + i}] * y{i}" for i in range(S)]
     if U:
@@ -58,29 +66,51 @@ def rhs_source(st: np.ndarray) -> str:
         body += [f"q{b} = 1.0" for b in bens]
         body += [f"q{b} += cf[{o_be + u}] * y{p} / (cf[{o_H + u}] + y{p})" for u, (b, p) in enumerate(mut)]
         body += [f"b{b} *= q{b}" for b in bens]
+    if O:  # pollinated share Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k), as the table kernel
+        bens = sorted({int(b) for b, _ in obl})
+        body += [f"g{b} = 0.0" for b in bens] + [f"m{b} = 1.0" for b in bens]
+        for u, (b, p) in enumerate(obl):
+            body += [f"g{b} = g{b} + m{b} * (y{p} / (cf[{o_obH + u}] + y{p}))",
+                     f"m{b} = m{b} * (cf[{o_obH + u}] / (cf[{o_obH + u}] + y{p}))"]
+        body += [f"b{b} *= g{b}" for b in bens]
+    # a link's resource: its state variable, or (resource −1) the constant alternative food
+    dens = [f"y{res[l]}" if res[l] >= 0 else f"cf[{o_food + l}]" for l in range(L)]
     if L:
-        body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res})]
+        body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res if r >= 0})]
         seen = set()
         for l in range(L):
             if type1[l]:
                 continue
-            Rq = f"y{res[l]} * y{res[l]}" if power[l] == 2 else f"y{res[l]}"
+            Rq = f"{dens[l]} * {dens[l]}" if power[l] == 2 else dens[l]
             j = int(cons[l])
             body.append(f"d{j} = cf[{o_ah + l}] * ({Rq}) + " + ("1.0" if j not in seen else f"d{j}"))
             seen.add(j)
+        body += [f"d{j} = d{j} + cf[{o_gam + j}] * y{j}" for j in range(S) if interfere[j]]
         for l in range(L):
-            Rq = f"(y{res[l]} * y{res[l]})" if power[l] == 2 else f"y{res[l]}"
+            Rq = f"({dens[l]} * {dens[l]})" if power[l] == 2 else dens[l]
             j = int(cons[l])
             intake = f"cf[{o_a + l}] * {Rq}" + ("" if type1[l] else f" / d{j}")
-            body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten",
-                     f"loss{res[l]} += eaten"]
+            body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten"]
+            if res[l] >= 0:
+                body.append(f"loss{res[l]} += eaten")
     body += [f"o{i} = cf[{i}] * b{i}" for i in range(S)]
+    body += [f"o{i} *= 1.0 + cf[{o_amp + i}] * math.cos(cf[{o_om + i}] * t - cf[{o_ph + i}])"
+             for i in range(S) if wave[i]]
+    for i in range(S):
+        if sterile[i]:
+            body += [f"if cf[{o_ster + i}] > 0:", f"    o{i} *= y{i} / (y{i} + cf[{o_ster + i}])"]
+    for i in range(S):
+        if adult[i] >= 0:
+            a = int(adult[i])
+            body += [f"o{i} += o{a}", f"o{a} = 0.0", f"flow = cf[{o_mat + i}] * y{i}", f"o{i} -= flow", f"o{a} += flow"]
     if logistic:
         body += [f"c{i} = y{i}" for i in range(S)]
         body += [f"c{i} += cf[{o_al + k}] * y{j}" for k, (i, j) in enumerate(comp)]
         body += [f"o{i} -= cf[{3 * S + i}] * y{i} * c{i}" for i in range(S)]
+    if crowding:
+        body += [f"o{i} -= cf[{o_quad + i}] * y{i} * y{i}" for i in range(S)]
     body += [f"o{i} += cf[{2 * S + i}] * y{i}" for i in range(S)]
-    eaten_species = sorted({int(r) for r in res if r < S})
+    eaten_species = sorted({int(r) for r in res if 0 <= r < S})
     body += [f"o{i} -= loss{i}" for i in eaten_species]
     if carrion:
         body.append(f"g = cf[{4 * S}] * y0")
@@ -89,7 +119,7 @@ def rhs_source(st: np.ndarray) -> str:
         if S in {int(r) for r in res}:
             body.append(f"o{S} -= loss{S}")
     body += [f"out[{i}] = o{i}" for i in range(n)]
-    return "@kernel_jit\ndef web_rhs(st, cf, y, out, work):\n" + "".join(f"    {b}\n" for b in body)
+    return "@kernel_jit\ndef web_rhs(st, cf, t, y, out, work):\n" + "".join(f"    {b}\n" for b in body)
 
 
 def module_source(st: np.ndarray) -> str:

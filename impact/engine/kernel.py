@@ -8,10 +8,14 @@ numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.
 so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
 Members are independent by construction: nothing is shared between rows.
 
-Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any``, then per feeding link
-consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc) and mutualism
-pairs (2·U). Coefficient rows (float64, one per member): scale, rpos, lin, dens, inflow (S each),
-a, ah, e (L each), alpha (Cc), beta, H (U each), decay (1).
+Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any, O``, then per
+feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
+facultative mutualism pairs (2·U), obligate mutualism pairs (2·O), and per species an
+interference flag (S), a sterile-release flag (S), the adult stage a juvenile matures into (S; −1
+for none) and a sinusoidal-breeding flag (S). Coefficient rows (float64, one per member): scale,
+rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase (S each), a, ah, e, food
+(L each), alpha (Cc), beta, H (U each), obH (O), decay (1). A link whose resource is −1 eats a constant alternative food of density
+``food``.
 """
 
 from __future__ import annotations
@@ -24,17 +28,18 @@ import numpy as np
 from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
                       DormandPrince54, Failure)
 
-HEADER = 7  # entries of the structure table before the per-link columns
+HEADER = 9  # entries of the structure table before the per-link columns
 
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
-__all__ = ["HEADER", "A", "B", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
+__all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
-           "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment"]
 
 A = DormandPrince54.A.copy()
 B = DormandPrince54.B.copy()
+C = DormandPrince54.C.copy()
 E = DormandPrince54.E.copy()
 STAGES = DormandPrince54.n_stages
 INITIAL_EXPONENT = 1.0 / (DormandPrince54.error_estimator_order + 1)
@@ -68,16 +73,20 @@ def nmax(a, b):
 @kernel_inline
 def feeding(st, cf, y, births, loss, den, seen, o_a):
     """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
-    resources' losses (handling denominators shared by each consumer's type II/III links)."""
-    n, L = st[1], st[3]
-    o_ah, o_e = o_a + L, o_a + 2 * L
+    resources' losses (handling denominators shared by each consumer's saturating links, plus
+    the consumer's interference γ·N for a Beddington–DeAngelis consumer)."""
+    S, n, L = st[0], st[1], st[3]
+    gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + 2 * st[8]
+    o_gam = 6 * S
+    o_ah, o_e, o_food = o_a + L, o_a + 2 * L, o_a + 3 * L
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     for i in range(n):
         loss[i] = 0.0
         seen[i] = 0.0
     for l in range(L):
         if st[l1 + l] == 0:
-            R = y[st[lr + l]]
+            res = st[lr + l]
+            R = y[res] if res >= 0 else cf[o_food + l]
             Rq = R * R if st[lp + l] == 2 else R
             term = cf[o_ah + l] * Rq
             j = st[lc + l]
@@ -86,8 +95,12 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
                 seen[j] = 1.0
             else:
                 den[j] = term + den[j]
+    for i in range(S):
+        if st[gp + i] == 1:
+            den[i] = den[i] + cf[o_gam + i] * y[i]
     for l in range(L):
-        R = y[st[lr + l]]
+        res = st[lr + l]
+        R = y[res] if res >= 0 else cf[o_food + l]
         Rq = R * R if st[lp + l] == 2 else R
         j = st[lc + l]
         if st[l1 + l] == 1:
@@ -96,25 +109,33 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
             I = cf[o_a + l] * Rq / den[j]
         eaten = I * y[j]
         births[j] += cf[o_e + l] * eaten
-        loss[st[lr + l]] += eaten
+        if res >= 0:  # an alternative food is not depleted
+            loss[res] += eaten
 
 
 @kernel_jit
-def web_rhs(st, cf, y, out, work):
+def web_rhs(st, cf, t, y, out, work):
     """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
 
-    ``st`` structure table, ``cf`` the member's coefficient row, ``y`` (n,), ``out`` (n,),
-    ``work`` (5, n) scratch (births, loss, denominators, crowding or boost, seen flags).
+    ``st`` structure table, ``cf`` the member's coefficient row, ``t`` the time (for seasonal
+    births), ``y`` (n,), ``out`` (n,), ``work`` (5, n) scratch (births, loss, denominators,
+    crowding or boost, seen flags).
     """
     S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_a = 5 * S
-    o_al = o_a + 3 * L
+    O = st[8]
+    o_quad, o_ster, o_mat = 5 * S, 7 * S, 8 * S
+    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
+    o_a = 12 * S
+    o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
-    o_dec = o_H + U
+    o_obH = o_H + U
+    o_dec = o_obH + O
     cp = HEADER + 4 * L
     up = cp + 2 * Cc
+    op = up + 2 * U  # obligate pairs, then the interference and sterile flags
+    sp = op + 2 * O + S
     births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
     for i in range(S):
         births[i] = cf[o_rpos + i] * y[i]
@@ -127,10 +148,45 @@ def web_rhs(st, cf, y, out, work):
             crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
         for i in range(S):
             births[i] *= crowd[i]
+    if O > 0:
+        # share of births an obligate partner allows: 1 − Π H/(H + P), summed without cancellation
+        # as Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) (loss, den, seen are scratch until feeding)
+        for i in range(S):
+            loss[i] = 0.0
+            den[i] = 1.0
+            seen[i] = 0.0
+        for u in range(O):
+            ben, par = st[op + 2 * u], st[op + 2 * u + 1]
+            P = y[par]
+            Hh = cf[o_obH + u]
+            loss[ben] = loss[ben] + den[ben] * (P / (Hh + P))
+            den[ben] = den[ben] * (Hh / (Hh + P))
+            seen[ben] = 1.0
+        for i in range(S):
+            if seen[i] == 1.0:
+                births[i] *= loss[i]
     if L > 0:
         feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):
         out[i] = cf[i] * births[i]
+    wp = sp + 2 * S  # sinusoidal breeding flags
+    for i in range(S):
+        if st[wp + i] == 1:
+            out[i] *= 1.0 + cf[o_amp + i] * math.cos(cf[o_om + i] * t - cf[o_ph + i])
+    for i in range(S):
+        if st[sp + i] == 1:
+            sd = cf[o_ster + i]
+            if sd > 0:
+                out[i] *= y[i] / (y[i] + sd)
+    ap = sp + S  # adult stage of each juvenile
+    for i in range(S):
+        a = st[ap + i]
+        if a >= 0:
+            out[i] += out[a]
+            out[a] = 0.0
+            flow = cf[o_mat + i] * y[i]
+            out[i] -= flow
+            out[a] += flow
     if logistic:
         for i in range(S):
             crowd[i] = y[i]
@@ -139,6 +195,9 @@ def web_rhs(st, cf, y, out, work):
             crowd[i] += cf[o_al + k] * y[j]
         for i in range(S):
             out[i] -= cf[o_dens + i] * y[i] * crowd[i]
+    if st[7]:
+        for i in range(S):
+            out[i] -= cf[o_quad + i] * y[i] * y[i]
     for i in range(S):
         out[i] += cf[o_lin + i] * y[i]
     if L > 0:
@@ -161,6 +220,15 @@ def power_array(x, p):
     for i in range(x.shape[0]):
         v = x[i]
         out[i] = v ** p if v != 0 or p >= 0 else math.inf
+    return out
+
+
+@kernel_jit
+def cos_array(x):
+    """``cos(x)`` elementwise through the C library (as the kernel computes it)."""
+    out = np.empty_like(x)
+    for i in range(x.shape[0]):
+        out[i] = math.cos(x[i])
     return out
 
 
@@ -192,7 +260,7 @@ def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc
     h0 = nmin(h0, interval)
     for j in range(n):
         y1[j] = y0[j] + (h0 * direction) * f0[j]
-    web_rhs(st, cf, y1, f1, work)
+    web_rhs(st, cf, t0 + h0 * direction, y1, f1, work)
     for j in range(n):
         y1[j] = (f1[j] - f0[j]) / sc[j]
     d2 = rms(y1, n) / h0
@@ -256,7 +324,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
         if not all_finite(y):
             reason[m] = NONFINITE
             continue
-        web_rhs(st, cf, y, K[0], work)
+        web_rhs(st, cf, t0, y, K[0], work)
         nfev += 1
         if not all_finite(K[0]):
             reason[m] = NONFINITE
@@ -272,7 +340,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
 
 
 @kernel_inline
-def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
+def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
     """One Dormand-Prince step of size ``hs`` from ``y`` (derivative in ``K[0]``) into ``y_new``
     (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.integrate.error_norm`."""
     n = y.shape[0]
@@ -280,11 +348,11 @@ def trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol):
         combine_stages(K, A[s], s, tmp)
         for j in range(n):
             tmp[j] = tmp[j] * hs + y[j]
-        web_rhs(st, cf, tmp, K[s], work)
+        web_rhs(st, cf, t + C[s] * hs, tmp, K[s], work)
     combine_stages(K, B, STAGES, y_new)
     for j in range(n):
         y_new[j] = y_new[j] * hs + y[j]
-    web_rhs(st, cf, y_new, K[STAGES], work)
+    web_rhs(st, cf, t_new, y_new, K[STAGES], work)
     combine_stages(K, E, STAGES + 1, tmp)
     for j in range(n):
         scale = nmax(abs(y[j]), abs(y_new[j])) * rtol[j] + atol[j]
@@ -305,7 +373,7 @@ def next_step(err, hs, rejected):
 
 
 @kernel_inline
-def accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax):
+def accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax):
     """Take ``y_new`` (projected onto y ≥ 0) as the state; returns (failure code, evaluations)."""
     n = y.shape[0]
     code = 0
@@ -318,7 +386,7 @@ def accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax):
         # keep FSAL consistent: the stored derivative must belong to the projected state
         for j in range(n):
             y_new[j] = nmax(y_new[j], 0.0)
-        web_rhs(st, cf, y_new, K[STAGES], work)
+        web_rhs(st, cf, t_new, y_new, K[STAGES], work)
         nfev = 1
         if not all_finite(K[STAGES]):
             code = NONFINITE
@@ -360,14 +428,14 @@ def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
         if clipped:
             t_new = t1
         hs = t_new - t
-        err = trial_step(st, cf, y, K, work, y_new, tmp, hs, rtol, atol)
+        err = trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol)
         nfev += STAGES
         h = next_step(err, hs, rejected)
         rejected = not err < 1
         last_nonfinite = not math.isfinite(err)
         if rejected:
             continue
-        code, extra = accept_step(st, cf, y, K, work, y_new, blowup, m, ymin, ymax)
+        code, extra = accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax)
         nfev += extra
         t = t_new
         nacc += 1

@@ -5,7 +5,8 @@ state. :class:`impact.jacobian.WebTangent` evaluates ``(f, J v)`` with whole-col
 operations, whose fixed cost per operation dominates on the small batches the diagnostics run;
 this kernel does the same arithmetic in the same order for one member at a time, so the two
 agree to rounding and a member's numbers never depend on its batch. It reads the structure table
-and coefficient rows of :mod:`impact.engine.kernel` (same layout, same packing).
+and coefficient rows of :mod:`impact.engine.kernel` (same layout, same packing) and covers the
+terms :func:`supports` lists; other webs keep the numpy reference.
 """
 
 from __future__ import annotations
@@ -13,6 +14,17 @@ from __future__ import annotations
 import numpy as np
 
 from .kernel import HEADER, kernel_jit
+
+# coefficient columns per species before the per-link ones (layout in :mod:`impact.engine.kernel`)
+PER_SPECIES_COEFFICIENTS = 12
+
+
+def supports(web) -> bool:
+    """Whether :func:`member_jvp` knows every term of ``web``: the feeding (Holling I–III), competition,
+    facultative mutualism and carrion terms. Webs with obligate mutualism, interference, crowding,
+    sterile releases, life stages, sinusoidal breeding or alternative food use the numpy reference."""
+    return not (web.obligate or web.interference or web.crowding or web.sterile or web.stages or web.wave
+                or any(link.resource < 0 for link in web.links))
 
 
 @kernel_jit
@@ -32,14 +44,14 @@ def member_jvp(st, cf, y, v, out, jv, work):
     work : float64 ndarray (10, n)
         Scratch.
     """
-    S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
+    S, n, carrion, L, Cc, U, logistic, O = st[0], st[1], st[2], st[3], st[4], st[5], st[6], st[8]
     o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_a = 5 * S
+    o_a = PER_SPECIES_COEFFICIENTS * S
     o_ah, o_e = o_a + L, o_a + 2 * L
-    o_al = o_a + 3 * L
+    o_al = o_a + 4 * L  # after a, ah, e and the alternative food of each link
     o_be = o_al + Cc
     o_H = o_be + U
-    o_dec = o_H + U
+    o_dec = o_H + U + O
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     cp = HEADER + 4 * L
     up = cp + 2 * Cc

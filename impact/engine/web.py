@@ -27,13 +27,18 @@ DEFAULT_ENGINE = "compiled"
 def pack_structure(web: FoodWeb) -> np.ndarray:
     """The web's structure as the kernel's int64 table (layout in :mod:`impact.engine.kernel`)."""
     links = web.links
-    head = [web.n_species, web.n_state, int(web.has_carrion), len(links), len(web.competition),
-            len(web.mutualism), int(web.logistic.any())]
+    S = web.n_species
+    head = [S, web.n_state, int(web.has_carrion), len(links), len(web.competition),
+            len(web.mutualism), int(web.logistic.any()), int(web.crowding), len(web.obligate)]
     cols = ([l.consumer for l in links] + [l.resource for l in links]
             + [RESPONSE_POWER[l.response] for l in links]
             + [int(l.response == "holling1") for l in links])
-    pairs = [x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
-    return np.array(head + cols + pairs, dtype=np.int64)
+    pairs = ([x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
+             + [x for pair in web.obligate for x in pair])
+    per_species = [int(i in web.interference) for i in range(S)] + [int(i in web.sterile) for i in range(S)]
+    adult = dict(web.stages)
+    per_species += [adult.get(i, -1) for i in range(S)] + [int(i in web.wave) for i in range(S)]
+    return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
 def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray) -> np.ndarray:

@@ -15,8 +15,10 @@ ASSET_SCHEME = "impact-asset:"
 KIND_STYLE = {
     "predation": ("#c0392b", "-", "eats"),
     "scavenging": ("#8e5b2e", "-", "scavenges"),
+    "alternative-food": ("#8e5b2e", "--", "eats"),
     "competition": ("#555555", "--", "competes with"),
     "mutualism": ("#1e8449", "-", "benefits"),
+    "life-stage": ("#7d3c98", ":", "matures into"),
 }
 OPTION_COLOURS = ("#d35400", "#2471a3", "#7d3c98", "#117a65", "#b7950b", "#a93226")
 BASELINE_COLOUR = "#566573"
