@@ -27,8 +27,11 @@ from .formatting import fmt_bare_points, fmt_bare_prob, fmt_change, fmt_num, fmt
 from .likelihood import LOWER_TERMS, likelihood_term
 from .manifest import Manifest
 
-# a material change is listed once it is more than "unlikely" on the likelihood scale
+# a material change is listed once it is more than "unlikely" on the likelihood scale; for a species
+# the case protects, once it is more than "very unlikely" (a board wants a one-in-five chance of
+# harming a protected species named, not filed under "unlikely"; common practice, no source)
 LISTING_PROBABILITY = LOWER_TERMS[-1][0]
+PROTECTED_LISTING_PROBABILITY = LOWER_TERMS[-2][0]
 EVENT_NAMES = {"quasi_extinction": "quasi-extinction", "outbreak": "outbreak"}
 REQUIREMENT_TEXT = {
     "chance_at_least": "needs a chance of at least {b}",
@@ -220,7 +223,8 @@ def option_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objec
         events = _event_parts(effects, risk, option, sp, m)
         tag = ("protected, " if s.role == "protected" else "") + (
             "direct: the option acts on it" if sp in touched else "indirect: through the food web")
-        if p_mat > LISTING_PROBABILITY or events:
+        listing = PROTECTED_LISTING_PROBABILITY if s.role == "protected" else LISTING_PROBABILITY
+        if p_mat > listing or events:
             body = "; ".join(x for x in [abundance, *events] if x) + "."
             sides.append(_Effect(size, Item(f"{sp} ({tag})", body)))
         else:

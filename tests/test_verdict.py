@@ -131,3 +131,30 @@ def test_every_probability_on_page_one_is_in_the_tables(tmp_path):
     assert len(tokens) > 30
     missing = [t for t in tokens if t.strip() not in forms]
     assert not missing, f"page-1 numbers not found in the tables: {missing[:10]}"
+
+
+@pytest.mark.slow
+def test_a_protected_species_is_listed_above_a_one_in_ten_chance_of_a_material_change(tmp_path):
+    """The listing rule read off every option of the invented pollinator case: a protected species
+    is named as a side effect once its chance of a material change exceeds 10 % (more than "very
+    unlikely"), any other species above 33 %; the quiet list holds only the rest. (The levels are
+    the IPCC scale's boundaries, Mastrandrea et al. 2010; the stricter level for protected species
+    is common practice, no source.)"""
+    case = Path(__file__).resolve().parent.parent / "casework" / "moth_pollinator.toml"
+    out = tmp_path / "out"
+    assert main(["assess", str(case), "--out", str(out), "--quiet", "--workers", "1", "--members", "150",
+                 "--no-sensitivity", "--no-dynamics", "--no-report"]) == 0
+    res = load_results(out)
+    roles = res.manifest.roles
+    r = _reading(res)
+    for o in r.options:
+        e = res.effects[(res.effects.option == o.option) & (res.effects.metric == "mean_abundance")
+                        & (res.effects.statistic == "p_material")]
+        listed = {x.head.split(" (")[0] for x in o.side_effects}
+        for sp, g in e.groupby("species"):
+            if roles[sp] == "target":
+                continue
+            top = g.value.astype(float).max()
+            level = 0.10 if roles[sp] == "protected" else 0.33
+            if top > level:
+                assert sp in listed, (o.option, sp, top)
