@@ -137,6 +137,12 @@ def _regime_cautions(m: Manifest, dynamics: dict) -> list[Caution]:
         out.append(Caution(RANK_OSCILLATION, "Members whose regime the screen could not settle: "
                            + _join([f"{r.option} {share_text(r)}" for _, r in und.iterrows()])
                            + (f" (why: {why})" if why else "") + "; their long-run behaviour is unknown."))
+    record = dynamics.get("dynamics") if isinstance(dynamics.get("dynamics"), dict) else {}
+    if str(record.get("seasons", "")).startswith("averaged"):
+        out.append(Caution(RANK_OSCILLATION, "The case has seasons; the regime screen and the predictability horizon "
+                                             "describe the season-averaged web (births at their season-mean rate), not "
+                                             "the seasonally forced one, which can cycle or become irregular where the "
+                                             "averaged web settles. The risk tables and bands come from the forced runs."))
     return out
 
 

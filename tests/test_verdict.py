@@ -158,3 +158,20 @@ def test_a_protected_species_is_listed_above_a_one_in_ten_chance_of_a_material_c
             level = 0.10 if roles[sp] == "protected" else 0.33
             if top > level:
                 assert sp in listed, (o.option, sp, top)
+
+
+@pytest.mark.slow
+def test_a_seasonal_case_warns_that_the_regime_screen_sees_the_averaged_web(tmp_path):
+    """The regime screen of a case with seasons runs the season-averaged web; the warnings must
+    say so, since the forced web can cycle where the averaged one settles."""
+    from impact.cautions import cautions
+    from impact.verdict import thin_run
+
+    case = Path(__file__).resolve().parent.parent / "casework" / "moth_pollinator.toml"
+    out = tmp_path / "out"
+    assert main(["assess", str(case), "--out", str(out), "--quiet", "--workers", "1", "--members", "8",
+                 "--no-sensitivity", "--no-report"]) in (0, EXIT_NO_VERDICT)
+    res = load_results(out)
+    texts = [w.text for w in cautions(res.manifest, res.objectives, thin_run(res.manifest)[1], res.dynamics,
+                                      res.sensitivity, res.calibration)]
+    assert any("season-averaged web" in t for t in texts), texts
