@@ -126,12 +126,14 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
         ok = np.isfinite(nb).all(axis=1)
         means = nb[ok].mean(axis=0)
         best = int(np.argmax(means))
+        # every choice as good as the best (the same members count for all, so ties are exact)
+        tied = "; ".join(c for c, m in zip(choices, means) if m == means[best])
         vals = information_values(nb[ok], X[ok], names, groups={g.name: list(g.parameters) for g in case.groups},
                                   resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
         for key, e in vals.items():
             kind = "evpi" if key == "all parameters" else ("group evppi" if key in group_names else "evppi")
             rows.append(dict(objective=obj.name, parameter=key, kind=kind,
                              value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",
-                             level=case.risk.confidence, n=int(ok.sum()), best_choice=choices[best],
+                             level=case.risk.confidence, n=int(ok.sum()), best_choice=tied,
                              best_chance=float(means[best]), unit="probability of a good outcome"))
     return pd.DataFrame(rows, columns=list(INFORMATION_COLUMNS))

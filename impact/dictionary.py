@@ -62,7 +62,7 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "objective": "objective", "parameter": "parameter, declared group, or all parameters", "kind":
         "evpi, evppi or group evppi", "value": "rise in the chance of a good outcome (probability units)",
         "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
-        "best_choice": "the choice made now (doing nothing = baseline)", "best_chance":
+        "best_choice": "the choice made now (doing nothing = baseline); choices tied for best are joined by \"; \"", "best_chance":
         "its chance of a good outcome", "unit": "unit of value"}),
     "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
         "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",

@@ -108,3 +108,20 @@ def test_the_sensitivity_section_keeps_its_page_budget(tmp_path):
     end = next(i for i, t in enumerate(pages) if "How far ahead the projection holds" in t and i > start)
     assert end - start <= 2
     assert (out / "sensitivity" / "drivers.csv").exists() and (out / "sensitivity" / "information.csv").exists()
+
+
+def test_choices_tied_for_best_are_all_named(tmp_path):
+    """Two options made of the same intervention give the same outcome in every member (the paired
+    design: one member, one chance of failure): neither is "the" best choice, and the table and sentence must say they are tied."""
+    from impact.report import hinges_text, load_results
+    from impact.cli import main
+
+    d = _goat_case(members=150)
+    d["options"].append({"name": "eradicate twice over", "interventions": ["shoot"]})
+    out = tmp_path / "out"
+    assert main(["assess", str(write_case(tmp_path, d)), "--out", str(out), "--quiet", "--workers", "1",
+                 "--no-dynamics", "--no-report", "--base-samples", "16"]) == 0
+    res = load_results(out)
+    info = res.sensitivity["information"]
+    assert set(info.best_choice.iloc[0].split("; ")) == {"eradicate", "eradicate twice over"}
+    assert "“eradicate” and “eradicate twice over”, tied" in hinges_text(res)

@@ -42,7 +42,8 @@ def _information_context(info: pd.DataFrame) -> list[dict]:
         evpi = g[g.kind == "evpi"].iloc[0]
         params = g[g.kind == "evppi"].sort_values("value", ascending=False)
         top = params.iloc[0] if len(params) else None
-        best = "doing nothing (the baseline)" if evpi.best_choice == "baseline" else f"“{evpi.best_choice}”"
+        names = ["doing nothing (the baseline)" if c == "baseline" else f"“{c}”" for c in str(evpi.best_choice).split("; ")]
+        best = names[0] if len(names) == 1 else f"{', '.join(names[:-1])} and {names[-1]}, tied"
         sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in "
                     f"{fmt_prob(evpi.best_chance)} of members). Knowing every uncertain number exactly would raise that "
                     f"chance by {fmt_points(_clean(evpi.value))} [{fmt_bare_points(_clean(evpi.low))}, "
