@@ -428,8 +428,13 @@ def summary_text(case: Case, folder: Path) -> str:
             r = risk[(risk.option == opt) & (risk.species == sp) & np.isclose(risk.horizon, H)]
             q, d = r[r.metric == "quasi_extinction"], r[r.metric == "mean_change"]
             cell = (f"{q.value.iloc[0]:5.1%} [{q.low.iloc[0]:.1%}, {q.high.iloc[0]:.1%}]" if len(q) else "   n/a")
-            cells.append(f"{opt}: {cell}" + (f" {d.value.iloc[0]:+.0%}" if len(d) else ""))
+            change = float(d.value.iloc[0]) if len(d) else float("nan")
+            # no paired change exists for a species absent without the option (an introduction)
+            cells.append(f"{opt}: {cell}" + (f" {change:+.0%}" if np.isfinite(change) else ""))
         L.append(f"  {sp:<{width}}  " + " | ".join(cells))
+    absent = [s.name for s in case.species if not s.present]
+    if absent:
+        L.append(f"  (n/a: no quasi-extinction chance or paired change for a species absent today: {', '.join(absent)})")
     L.append("verdict (the same as page 1 of report.pdf):")
     L.append(reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)))
     hinges = hinges_text(res)

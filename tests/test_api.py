@@ -78,3 +78,16 @@ def test_every_written_column_is_documented_and_every_documented_column_written(
         assert f"## `{rel}`" in readme
         for col in DICTIONARY[rel][1]:
             assert f"| `{col}` |" in readme
+
+
+def test_the_terminal_summary_prints_no_nan_for_an_introduced_species(tmp_path):
+    """A species absent today (released by an option) has no paired change: the summary says so
+    instead of printing "nan"."""
+    from pathlib import Path
+
+    case = Path(__file__).resolve().parent.parent / "casework" / "orchard_biocontrol.toml"
+    out = tmp_path / "out"
+    assert main(["assess", str(case), "--out", str(out), "--quiet", "--workers", "1", "--members", "100",
+                 "--no-sensitivity", "--no-dynamics", "--no-report"]) == 0
+    text = (out / "summary.txt").read_text()
+    assert "nan" not in text.lower() and "absent today: wasp" in text
