@@ -22,11 +22,11 @@ from __future__ import annotations
 from .designs import MorrisDesign, SobolDesign, morris_design, sobol_design
 from .estimators import Indices, Study, convergence, given_data_first_order, morris_effects, sobol_indices, sobol_study, through_priors
 from .outputs import METRIC_TEXT, PLAUSIBLE, DesignTask, FoodWebModel, design_chunk, output_labels, point_metrics, point_streams
-from .study import (CONV_COLUMNS, INDEX_COLUMNS, POLICY, RANK_COLUMNS, S2_COLUMNS, Settings, StageResult, check_settings, screen,
+from .study import (CONV_COLUMNS, INDEX_COLUMNS, POLICY, RANK_COLUMNS, S2_COLUMNS, Settings, StageResult, check_settings, morris_screen,
                     sensitivity_stage, summary_lines)
 
 __all__ = ["CONV_COLUMNS", "INDEX_COLUMNS", "METRIC_TEXT", "PLAUSIBLE", "POLICY", "RANK_COLUMNS", "S2_COLUMNS", "DesignTask",
            "FoodWebModel", "Indices", "MorrisDesign", "Settings", "SobolDesign", "StageResult", "Study", "check_settings",
            "convergence", "design_chunk", "given_data_first_order", "morris_design", "morris_effects", "output_labels",
-           "point_metrics", "point_streams", "screen", "sensitivity_stage", "sobol_design", "sobol_indices", "sobol_study",
+           "point_metrics", "point_streams", "sensitivity_stage", "sobol_design", "sobol_indices", "sobol_study", "morris_screen",
            "summary_lines", "through_priors"]

@@ -91,7 +91,7 @@ RANK_COLUMNS = ["option", "metric", "species", "rank", "parameter", "ST", "ST_co
 CONV_COLUMNS = ["option", "metric", "species", "max_shift", "max_ci_width", "tolerance", "converged"]
 
 
-def screen(case: Case, settings: Settings, progress=None, executor=None, store=None) -> dict:
+def morris_screen(case: Case, settings: Settings, progress=None, executor=None, store=None) -> dict:
     """Morris screening of every uncertain parameter over every output; which to keep."""
     names = [p.name for p in case.uncertain]
     D = len(names)
@@ -172,7 +172,7 @@ def sensitivity_stage(case: Case, settings: Settings, progress=None, executor=No
     screening = {"method": "none", "reason": f"{len(all_names)} uncertain parameters (screening above {SCREEN_ABOVE})"}
     names = all_names
     if do_screen:
-        screening = screen(case, settings, progress, executor, store)
+        screening = morris_screen(case, settings, progress, executor, store)
         names = screening["kept"]
     varied = np.array([all_names.index(n) for n in names])
     model = FoodWebModel(case, settings.seed, varied, np.full(len(all_names), 0.5), progress=progress,
