@@ -31,24 +31,26 @@ class _Progress:
     """Progress lines on stderr: stage messages, and counts with rate and time left.
 
     Silent with ``--quiet`` or when stderr is not a terminal (logs and pipes stay clean).
+    ``clock`` is the time source (seconds); a test gives its own instead of patching the process's.
     """
 
-    def __init__(self, quiet: bool, stream=None):
+    def __init__(self, quiet: bool, stream=None, clock=time.monotonic):
         self.stream = stream or sys.stderr
         self.quiet = quiet or not getattr(self.stream, "isatty", lambda: False)()
-        self.t0 = time.monotonic()
+        self.clock = clock
+        self.t0 = clock()
         self.last = 0.0
         self.started: dict[str, tuple[float, int]] = {}
 
     def __call__(self, msg: str, force: bool = False):
-        now = time.monotonic()
+        now = self.clock()
         if self.quiet or (not force and now - self.last < 0.5):
             return
         self.last = now
         print(f"[{now - self.t0:6.1f} s] {msg}", file=self.stream, flush=True)
 
     def count(self, label: str, done: int, total: int, unit: str):
-        now = time.monotonic()
+        now = self.clock()
         t_first, d_first = self.started.setdefault(label, (now, done))
         finished = done >= total
         if self.quiet or (not finished and now - self.last < 0.5):
