@@ -301,8 +301,7 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
     """Read a folder written by :func:`save_ensemble` for ``case``; refused when calibrated for another case file."""
     import json
 
-    from .report import read_table
-    from .results import read_ensemble
+    from .results import read_ensemble, read_table
 
     folder = Path(folder)
     path = folder / "manifest.json"

@@ -26,6 +26,12 @@ def fmt_num(v) -> str:
     return f"{v:.3g}"
 
 
+def fmt_index(v) -> str:
+    """A share of variance (a sensitivity index) as printed: two decimals, never "-0.00"."""
+    v = float(v)
+    return "n/a" if not math.isfinite(v) else f"{round(v, 2) + 0.0:.2f}"  # + 0.0 turns -0.0 into 0.0
+
+
 def fmt_prob(v) -> str:
     """A saved probability as printed: a percentage with one decimal."""
     v = float(v)

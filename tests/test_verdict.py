@@ -175,3 +175,10 @@ def test_a_seasonal_case_warns_that_the_regime_screen_sees_the_averaged_web(tmp_
     texts = [w.text for w in cautions(res.manifest, res.objectives, thin_run(res.manifest)[1], res.dynamics,
                                       res.sensitivity, res.calibration)]
     assert any("season-averaged web" in t for t in texts), texts
+
+
+def test_an_index_is_printed_to_two_places_and_never_as_minus_zero():
+    from impact.formatting import fmt_index
+
+    assert fmt_index(-0.001) == "0.00" and fmt_index(0.256) == "0.26" and fmt_index(-0.03) == "-0.03"
+    assert fmt_index(float("nan")) == "n/a"

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from ..cautions import share_text
-from ..formatting import fmt_bare_points, fmt_num, fmt_points, fmt_prob
+from ..formatting import fmt_bare_points, fmt_index, fmt_num, fmt_points, fmt_prob
 from ..results import Results
 from .figures import Assets, distribution_figure, regime_figure, scan_figure
 
@@ -20,15 +20,11 @@ NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
 VISIBLE_SHARE = 0.01
 
 
-def _two_places(v: float) -> str:
-    return "n/a" if not np.isfinite(v) else f"{round(v, 2) + 0.0:.2f}"  # + 0.0: never "-0.00"
-
-
 def _index_text(r) -> str:
     v, lo, hi = (_clean(x) for x in (r.value, r.low, r.high))
     if not (np.isfinite(lo) and np.isfinite(hi)):
-        return f"{_two_places(v)} (no interval: the outcome barely varies across members)"
-    return f"{_two_places(v)} [{_two_places(lo)}, {_two_places(hi)}]"
+        return f"{fmt_index(v)} (no interval: the outcome barely varies across members)"
+    return f"{fmt_index(v)} [{fmt_index(lo)}, {fmt_index(hi)}]"
 
 
 def _explains(r) -> bool:
