@@ -45,7 +45,7 @@ class Estimate:
     ----------
     members, runs, output_points, n_state, workers : int
         Ensemble size, runs per member (baseline and options), points of the output grid,
-        state columns, and worker processes the estimate assumes.
+        state columns, and local workers the estimate assumes (each holding one chunk).
     per_member : int
         Memory that grows with each member (summaries kept, bands and members table).
     fixed : int

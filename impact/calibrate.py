@@ -51,6 +51,7 @@ MIN_DISTINCT = 0.5    # refuse a posterior with fewer distinct members than this
 STALL = 3             # generations without a 1 % fall of the tolerance before the sampler gives up
 SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
 TARGET_ACCEPTANCE = 0.25
+EVAL_CHUNK = 2048      # rows per chunk of a batch at most (a chunk cannot be stopped halfway)
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
@@ -180,7 +181,8 @@ def evaluate(case: Case, unit: np.ndarray, executor=None) -> dict[str, np.ndarra
 
     executor = executor or InProcess()
     M = unit.shape[0]
-    size = max(64, int(np.ceil(M / max(executor.workers, 1))))
+    # an even share per worker, at most EVAL_CHUNK rows: a long chunk would hold up an interrupt
+    size = min(EVAL_CHUNK, max(64, int(np.ceil(M / max(executor.workers, 1)))))
     starts = list(range(0, M, size))
     parts: dict[int, dict] = {}
     for i, res in executor.map(evaluate_chunk, [EvalTask(case, unit[a:a + size]) for a in starts]):

@@ -18,7 +18,7 @@ from .pipeline import Execution
 
 # API parameter -> flag: errors name the library's parameter, the command line shows its flag
 FLAGS = {name: "--" + name.replace("_", "-") for name in (
-    "members", "seed", "workers", "cluster", "chunk_members", "out", "replace_results", "resume", "paper",
+    "members", "seed", "workers", "processes", "cluster", "chunk_members", "out", "replace_results", "resume", "paper",
     "base_samples", "parameter", "option", "section", "steps", "transient", "window", "sample_dt", "max_period",
     "period_tol", "tolerance", "failure_limit", "ensemble")}
 FLAGS.update(start="--from", stop="--to")
@@ -185,7 +185,8 @@ def cmd_check(args) -> int:
 
 
 def _execution(args) -> Execution:
-    return Execution(workers=args.workers, cluster=args.cluster, chunk_members=getattr(args, "chunk_members", None))
+    return Execution(workers=args.workers, cluster=args.cluster, chunk_members=getattr(args, "chunk_members", None),
+                     processes=args.processes)
 
 
 def cmd_assess(args) -> int:
@@ -283,9 +284,13 @@ def cmd_calibrate(args) -> int:
 def _executor_flags(p):
     g = p.add_mutually_exclusive_group()
     g.add_argument("--workers", type=int, default=None,
-                   help="worker processes on this machine (default: its cores; 1 computes in this process)")
+                   help="workers on this machine, threads of this process (default: its cores; 1 computes in this "
+                        "process alone)")
     g.add_argument("--cluster", default=None, metavar="ADDRESS",
                    help="a running dask.distributed scheduler, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--processes", action="store_true",
+                   help="local workers are processes, not threads (the Python between the compiled steps then "
+                        "runs side by side too)")
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -6,7 +6,10 @@ order, so what is computed never depends on where or in which order it ran. Thre
 executors share that interface:
 
 * :class:`InProcess` computes in the calling process (tests, small runs, ``--workers 1``);
-* :class:`LocalPool` uses a pool of worker processes on this machine (the default);
+* :class:`LocalThreads` computes in threads of the calling process (the default on one machine:
+  the compiled engine releases Python's lock while it integrates, so threads share the cores
+  without starting processes or copying tasks and results between them);
+* :class:`LocalPool` uses a pool of worker processes on this machine;
 * :class:`DaskCluster` ships tasks to a running dask.distributed scheduler.
 
 No executor draws random numbers or decides anything about the science: a task carries
@@ -79,6 +82,56 @@ class InProcess:
 
     def describe(self) -> dict:
         return {"executor": self.name, "workers": 1}
+
+
+class LocalThreads:
+    """Threads of the calling process, computing tasks side by side.
+
+    What runs in parallel is the compiled kernels (which release Python's global lock); the
+    Python around them takes turns. Tasks share the process's memory, so nothing is copied or
+    pickled. A running task cannot be stopped: on an interrupt the tasks not yet started are
+    dropped and the running ones finish their chunk (chunks are short by design).
+    """
+
+    name = "threads"
+
+    def __init__(self, workers: int):
+        self.workers = int(workers)
+        self._pool = None
+
+    def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
+        from concurrent.futures import ThreadPoolExecutor
+
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=self.workers, thread_name_prefix="impact")
+        pending: dict[Future, int] = {}
+        todo = list(range(len(tasks)))
+        limit = 2 * self.workers  # bounded in flight: results stream back, memory stays flat
+        try:
+            while todo or pending:
+                while todo and len(pending) < limit:
+                    i = todo.pop(0)
+                    pending[self._pool.submit(fn, tasks[i])] = i
+                done, _ = wait(list(pending), return_when=FIRST_COMPLETED)
+                for fut in sorted(done, key=pending.__getitem__):
+                    yield pending.pop(fut), fut.result()
+        finally:
+            for fut in pending:
+                fut.cancel()
+
+    def close(self):
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+
+    def abort(self):
+        """Drop the tasks not started; the running ones end with their chunk."""
+        pool, self._pool = self._pool, None
+        if pool is not None:
+            pool.shutdown(wait=False, cancel_futures=True)
+
+    def describe(self) -> dict:
+        return {"executor": self.name, "workers": self.workers}
 
 
 class LocalPool:
@@ -226,14 +279,17 @@ class WorkerLost(Exception):
     """A chunk could not be computed because its worker kept dying."""
 
 
-def make_executor(workers: int | None = None, cluster: str | None = None):
-    """The executor the command line asks for: a cluster, a pool, or in-process for one worker."""
+def make_executor(workers: int | None = None, cluster: str | None = None, processes: bool = False):
+    """The executor asked for: a cluster; else ``workers`` threads (or worker processes with
+    ``processes``) on this machine, or this process alone for one worker."""
     if cluster:
         return DaskCluster(cluster)
     n = machine_cores() if workers is None else int(workers)
     if n < 1:
         raise SettingError("workers", f"must be at least 1, got {n}")
-    return InProcess() if n == 1 else LocalPool(n)
+    if n == 1:
+        return InProcess()
+    return LocalPool(n) if processes else LocalThreads(n)
 
 
 def count(progress, label: str, done: int, total: int, unit: str = "members"):

@@ -31,7 +31,11 @@ class Execution:
     Attributes
     ----------
     workers : int, optional
-        Local worker processes (default: the machine's cores; 1 computes in this process).
+        Local workers (default: the machine's cores; 1 computes in this process alone).
+    processes : bool
+        Local workers are processes rather than threads of this process. Threads are the
+        default: the compiled engine releases Python's lock, so they share the cores with
+        nothing copied between them; processes also run the Python between kernel calls side by side.
     cluster : str, optional
         Address of a Dask scheduler; its workers compute instead of local ones.
     chunk_members : int, optional
@@ -41,17 +45,20 @@ class Execution:
     workers: int | None = None
     cluster: str | None = None
     chunk_members: int | None = None
+    processes: bool = False
 
     def check(self) -> None:
         if self.workers is not None and self.workers < 1:
             raise SettingError("workers", f"must be at least 1, got {self.workers}")
         if self.chunk_members is not None and self.chunk_members < 1:
             raise SettingError("chunk_members", f"must be at least 1, got {self.chunk_members}")
+        if self.processes and self.cluster:
+            raise SettingError("processes", "applies to workers on this machine; a cluster's workers are its own")
 
     def executor(self):
         from .execute import make_executor
 
-        return make_executor(self.workers, self.cluster)
+        return make_executor(self.workers, self.cluster, self.processes)
 
 
 @dataclass

@@ -17,7 +17,7 @@ from casefiles import web_case, write_case
 from impact.assess import PER_MEMBER, assess_members, draw_ensemble, run_options, summarise
 from impact.case import load_case
 from impact.cli import _Progress, main
-from impact.execute import DaskCluster, InProcess, LocalPool
+from impact.execute import DaskCluster, InProcess, LocalPool, LocalThreads, make_executor
 
 CORE = ["--quiet", "--no-dynamics", "--no-report"]
 
@@ -90,8 +90,10 @@ def test_pool_draws_the_same_ensemble(web):
     assert other.counts == ens.counts
 
 
-@pytest.mark.parametrize("flags", [["--workers", "2", "--chunk-members", "50"], ["--workers", "1", "--chunk-members", "33"]],
-                         ids=["pool-2-workers", "in-process-other-chunks"])
+@pytest.mark.parametrize("flags", [["--workers", "2", "--chunk-members", "50"],
+                                   ["--workers", "2", "--processes", "--chunk-members", "50"],
+                                   ["--workers", "1", "--chunk-members", "33"]],
+                         ids=["threads-2-workers", "pool-2-workers", "in-process-other-chunks"])
 def test_pool_reproduces_in_process_tables(web, reference, tmp_path, flags):
     case, _ = web
     out = tmp_path / "out"
@@ -150,6 +152,45 @@ def _square_or_die(task):
     return value * value
 
 
+def test_the_default_local_executor_is_threads_and_processes_on_request():
+    assert isinstance(make_executor(2), LocalThreads)
+    assert isinstance(make_executor(2, processes=True), LocalPool)
+    assert isinstance(make_executor(1), InProcess)
+
+
+def test_threads_run_tasks_side_by_side_and_return_every_result():
+    import threading
+
+    barrier = threading.Barrier(2, timeout=10)
+
+    def meet(k):
+        # both workers must be inside a task at once for the barrier to open
+        if k < 2:
+            barrier.wait()
+        return k * k
+
+    ex = LocalThreads(2)
+    try:
+        got = dict(ex.map(meet, list(range(6))))
+    finally:
+        ex.close()
+    assert got == {k: k * k for k in range(6)}
+
+
+def test_threads_pass_a_task_error_on(tmp_path):
+    def fail(k):
+        if k == 3:
+            raise ValueError("chunk 3 failed")
+        return k
+
+    ex = LocalThreads(2)
+    try:
+        with pytest.raises(ValueError, match="chunk 3"):
+            dict(ex.map(fail, list(range(6))))
+    finally:
+        ex.abort()
+
+
 def test_pool_retries_the_chunks_of_a_worker_that_died(tmp_path):
     pool = LocalPool(2)
     try:
@@ -201,6 +242,14 @@ def test_bad_executor_flags_exit_2(web, tmp_path, capsys, flag, value):
     case, _ = web
     assert main(["assess", case.path, "--out", str(tmp_path / "out"), flag, value, *CORE]) == 2
     assert flag in capsys.readouterr().err
+
+
+def test_processes_with_a_cluster_is_refused_naming_the_flag(web, tmp_path, capsys):
+    case, _ = web
+    rc = main(["assess", case.path, "--out", str(tmp_path / "out"), "--processes", "--cluster", "tcp://127.0.0.1:9", *CORE])
+    err = capsys.readouterr().err
+    assert rc == 2 and "--processes" in err and "Traceback" not in err
+    assert not (tmp_path / "out").exists()
 
 
 def test_unwritable_output_folder_is_a_clear_error(web, tmp_path, capsys):

@@ -304,12 +304,13 @@ def test_check_describes_the_monitoring_and_the_limits(tmp_path, capsys):
     assert "limit on change of newt: grows at most ×2 per 1 year from -10 to 0" in out
 
 
-def test_the_calibrated_ensemble_does_not_depend_on_the_executor(tmp_path):
-    from impact.execute import LocalPool
+@pytest.mark.parametrize("kind", ["processes", "threads"])
+def test_the_calibrated_ensemble_does_not_depend_on_the_executor(tmp_path, kind):
+    from impact.execute import LocalPool, LocalThreads
 
     case = load_case(write_case(tmp_path, growth_case(150)))
     here, _ = build_ensemble(case, 150, case.seed)
-    pool = LocalPool(2)
+    pool = LocalPool(2) if kind == "processes" else LocalThreads(2)
     try:
         there, _ = build_ensemble(case, 150, case.seed, executor=pool)
     finally:

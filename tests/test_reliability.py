@@ -441,10 +441,11 @@ def _interruptible_by_ctrl_c():
     signal.signal(signal.SIGINT, signal.SIG_DFL)
 
 
-def _interrupted_then_resumed(case: Path, ref: Path, work: Path, sig: int, after_chunks: int):
+def _interrupted_then_resumed(case: Path, ref: Path, work: Path, sig: int, after_chunks: int, workers: str = "1"):
     out = work / "out"
     ckpt = work / ".out.checkpoints"
-    cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(out), "--chunk-members", "25", *CORE]
+    cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(out), "--chunk-members", "25", *CORE,
+           "--workers", workers]  # the last --workers given is the one argparse keeps
     # A job started in the background by a non-interactive shell (as CI runs the suite) inherits
     # SIGINT ignored (POSIX), and Python keeps it so; the run under test is the interactive one.
     proc = subprocess.Popen(cmd, env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
@@ -493,6 +494,20 @@ def test_interrupted_runs_resume_to_identical_tables(interruptible, tmp_path, si
     assert hits >= 1
 
 
+@pytest.mark.slow
+def test_a_run_on_threads_interrupted_by_sigterm_resumes_to_identical_tables(interruptible, tmp_path):
+    """The same check on two worker threads (the default on one machine): the running chunks end
+    with their chunk, the rest are dropped, exit 143, nothing half-written; a resumed run matches
+    the one-worker reference. Interruption points as above (seeded, below 20 of 26 chunks)."""
+    case, ref = interruptible
+    hits = 0
+    for k, after in enumerate(np.random.default_rng(1415).integers(0, 20, size=2)):
+        work = tmp_path / f"p{k}"
+        work.mkdir()
+        hits += _interrupted_then_resumed(case, ref, work, signal.SIGTERM, int(after), workers="2")
+    assert hits >= 1
+
+
 def _children(pid: int) -> list[int]:
     kids = []
     for stat in Path("/proc").glob("[0-9]*/stat"):
@@ -519,7 +534,8 @@ def test_pool_workers_end_with_their_parent(tmp_path, sig):
     """SIGKILL: the workers notice their parent is gone. SIGTERM: the parent ends them and exits 143."""
     case = write_case(tmp_path, decline_case(members=2000))
     cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(tmp_path / "out"),
-           "--workers", "2", "--chunk-members", "100", "--quiet", "--no-sensitivity", "--no-dynamics", "--no-report"]
+           "--workers", "2", "--processes", "--chunk-members", "100", "--quiet", "--no-sensitivity", "--no-dynamics",
+           "--no-report"]
     proc = subprocess.Popen(cmd, env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
         assert _wait_for(lambda: len(_children(proc.pid)) >= 2 or proc.poll() is not None, 180)
