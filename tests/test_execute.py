@@ -113,7 +113,8 @@ def test_dask_cluster_reproduces_in_process_tables(web, reference, tmp_path, clu
     assert json.loads((out / "manifest.json").read_text())["execution"]["executor"] == "dask cluster"
 
 
-def test_pool_reproduces_the_in_process_dynamics_tables(web):
+@pytest.mark.parametrize("kind", [LocalPool, LocalThreads], ids=["processes", "threads"])
+def test_pool_reproduces_the_in_process_dynamics_tables(web, kind):
     import pandas as pd
 
     from impact.dynamics import DynamicsSettings
@@ -123,7 +124,7 @@ def test_pool_reproduces_the_in_process_dynamics_tables(web):
     runs = assess_members(case, ens, case.seed)
     s = DynamicsSettings(transient=10.0, window=20.0, sample_dt=0.5, screen_members=4)
     here, _ = assess_stage(case, ens.params, ens.values, runs, settings=s)
-    pool = LocalPool(2)
+    pool = kind(2)
     try:
         there, _ = assess_stage(case, ens.params, ens.values, runs, settings=s, executor=pool)
     finally:
