@@ -39,8 +39,8 @@ from .errors import CaseError
 from .model import WebParams, build_web, web_params
 from .observe import distance, draw_observations, has_data, log_likelihood, record_times
 from .sample import calibration_generator, member_uniforms, parameter_values
-from .engine.web import web_segment
-from .model import Controls
+from .engine.web import pack_coefficients, web_segment
+from .model import Controls, segment_coefficients
 
 # SMC settings (the values of the papers cited in the module docstring; common practice)
 KEEP = 0.5            # share of particles kept per tolerance step, and ESS target per temperature step
@@ -136,12 +136,14 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
     slot = {float(t): i for i, t in enumerate(times)}
     if -case.spinup in slot:
         recorded[:, slot[-case.spinup]] = y
+    # parameters and controls are the same in every segment: their coefficient rows are packed once
+    packed = pack_coefficients(segment_coefficients(web, p, c), np.arange(M))
     for t0, t1 in zip(bounds[:-1], bounds[1:]):
         ok = np.flatnonzero(~failed)
         if ok.size:
             h0 = None if np.isnan(h[ok]).any() else h[ok]
             seg = web_segment(web, p, c, float(t0), float(t1), y[ok], rtol=case.rtol, atol=case.atol,
-                              h0=h0, members=ok)
+                              h0=h0, members=ok, coef=packed if ok.size == M else packed[ok])
             y[ok], h[ok] = seg.y, seg.h
             if t0 >= half:
                 late_min[ok] = np.minimum(late_min[ok], seg.ymin)

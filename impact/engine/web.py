@@ -78,7 +78,7 @@ def _tolerance(value, n: int, name: str) -> np.ndarray:
 
 def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y0, *, rtol, atol,
                 h0=None, members=None, engine: str = DEFAULT_ENGINE, max_steps: int = 100_000,
-                blowup: float = 1e12) -> SegmentResult:
+                blowup: float = 1e12, coef: np.ndarray | None = None) -> SegmentResult:
     """Integrate members of the web from ``t0`` to ``t1`` under fixed controls, projected onto y ≥ 0.
 
     Parameters
@@ -93,6 +93,10 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
     members : int ndarray (m,), optional
         Rows of ``p`` and ``c``; default ``arange(m)``.
     engine : {"compiled", "table", "numpy"}
+    coef : ndarray (m, P), optional
+        The members' coefficient rows as :func:`pack_coefficients` gives them for ``p`` and ``c``
+        (compiled engines): a caller integrating many segments under the same parameters and
+        controls packs them once.
 
     Returns
     -------
@@ -125,7 +129,10 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         return SegmentResult(y_out, y0.copy(), y0.copy(), h, reason != 0, reason, 0, nsteps)
     ymin, ymax, h_out = y0.copy(), y0.copy(), np.full(m, np.nan)
     st = pack_structure(web)
-    coef = pack_coefficients(segment_coefficients(web, p, c), members)
+    if coef is None:
+        coef = pack_coefficients(segment_coefficients(web, p, c), members)
+    elif coef.shape[0] != m:
+        raise ValueError(f"coef has {coef.shape[0]} rows for {m} members")
     nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
