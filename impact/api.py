@@ -325,6 +325,19 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
     return PosteriorEnsemble(case, ens, cal, manifest, tables, str(folder.resolve()))
 
 
+class _StageClock:
+    """Wall seconds of each stage of a run, for the manifest (where the time went)."""
+
+    def __init__(self, start: float):
+        self.last = start
+        self.seconds: dict[str, float] = {}
+
+    def lap(self, stage: str):
+        now = time.monotonic()
+        self.seconds[stage] = round(now - self.last, 2)
+        self.last = now
+
+
 def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
            executor=None, store=None, block: int | None = None, chunk: int | None = None,
            command: list[str] | None = None, ensemble: PosteriorEnsemble | None = None) -> Assessment:
@@ -359,7 +372,10 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         ens, cal = ensemble.ensemble, ensemble.calibration
     else:
         ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor, store=store, block=block)
+    clock = _StageClock(t0)
+    clock.lap("ensemble")
     runs = assess_members(case, ens, seed, progress=progress, executor=executor, store=store, chunk=chunk)
+    clock.lap("option_runs")
     if progress:
         progress("tabulating risk")
     tables = {
@@ -370,6 +386,7 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         "priors.csv": priors_table(case),
         **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
            else calibration_tables(case, ens, cal, seed))}
+    clock.lap("tables")
     records: dict[str, dict] = {}
     stages, sensitivity = ["assess"], None
     calibration = cal.record() if ensemble is None else {
@@ -377,6 +394,7 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     if settings.sensitivity:
         more, sensitivity = _decision_stage(case, settings, seed, ens, runs, tables, records, progress, executor, store)
         stages += more
+        clock.lap("sensitivity")
     if settings.dynamics:
         from .screen import assess_stage
 
@@ -384,8 +402,9 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
         tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
         records["dynamics/dynamics.json"] = record
         stages.append("dynamics")
+        clock.lap("dynamics")
     execution = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
-                 "chunks_computed": getattr(store, "saved", 0)}
+                 "chunks_computed": getattr(store, "saved", 0), "stage_seconds": clock.seconds}
     manifest = manifest_for(case, ens, failure_counts(runs), seed, command or ["python", "impact.api.assess"], started,
                             time.monotonic() - t0, tuple(stages), sensitivity, execution, calibration)
     return Assessment(case, ens, manifest, tables, records, calibration=cal)
