@@ -12,13 +12,16 @@ Prints, each measured in this same run:
    reached; first-run compilation of a never-seen structure and loading from the disk cache
    (bench_engine.py);
 1. the ensemble integrator against a per-member ``solve_ivp`` loop (bench_integrator.py);
-2. the demo's core stage (draws + paired option runs) on 1 worker against a 2-worker pool;
+2. the core stage (draws from the priors + paired option runs: the demo case without its
+   monitoring data) at 1,000 and 10,000 members on 1 worker, 2 threads and 2 processes, with
+   each stage's seconds from the manifests; 2b. the demo's SMC calibration on 1 worker and on 2
+   threads (simulations per second);
 3. the local pool against a Dask LocalCluster with 2 worker processes, same work;
-4. the full demo assessment (every stage and the PDF) with the default executor: wall time,
-   and the peak memory of one in-process run;
+4. the full demo assessment (every stage and the PDF, calibration included) with the default
+   executor and in-process: wall time, each stage's seconds, peak memory of the in-process run;
 5. member throughput of the core stage at 1k, 10k and 100k members (in-process, so the
    peak memory is the whole run's): the cost should grow linearly, so members per second
-   should stay flat.
+   should stay flat; and the 100,000-member core stage on 2 threads.
 
 Every timing is of a separate ``impact`` process (``os.wait4`` gives its own peak resident
 memory), so import costs are included the way a user meets them.
@@ -27,6 +30,7 @@ memory), so import costs are included the way a user meets them.
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import platform
 import subprocess
@@ -61,6 +65,27 @@ def same_tables(a: Path, b: Path) -> str:
     return "yes" if all((a / f).read_bytes() == (b / f).read_bytes() for f in TABLES) else "NO"
 
 
+def prior_only(case: Path, work: Path) -> Path:
+    """A copy of ``case`` without its monitoring data, limits on change and calibration settings:
+    the core stage as drawn from the priors (draws screened for plausibility, then paired runs)."""
+    dropped = ("[[monitoring]]", "[[change_limits]]", "[calibration]")
+    kept, skip = [], False
+    for line in case.read_text().splitlines():
+        if line.startswith("["):
+            skip = line.strip() in dropped
+        if not skip:
+            kept.append(line)
+    out = work / ("prior_" + case.name)
+    out.write_text("\n".join(kept) + "\n")
+    return out
+
+
+def stage_seconds(results: Path) -> str:
+    """The wall seconds of each stage, from a results folder's manifest."""
+    st = json.loads((results / "manifest.json").read_text())["execution"].get("stage_seconds", {})
+    return ", ".join(f"{k} {v:.1f}" for k, v in st.items())
+
+
 def section(title: str):
     print(f"\n== {title}")
 
@@ -84,21 +109,28 @@ def main(argv=None) -> int:
 
     bench_integrator.main([])
 
-    section("2. demo core stage (1000 members): 1 worker vs a 2-worker process pool")
-    t1, _ = run_impact(["assess", args.case, "--out", str(work / "w1"), "--workers", "1", *CORE])
-    t2, _ = run_impact(["assess", args.case, "--out", str(work / "w2"), "--workers", "2", *CORE])
-    print(f"1 worker (in-process)        {t1:7.2f} s")
-    print(f"2-worker pool                {t2:7.2f} s")
-    print(f"speed-up                     {t1 / t2:7.2f}x  (ideal 2x on 2 cores)")
-    print(f"identical tables             {same_tables(work / 'w1', work / 'w2')}")
-    # at 1000 members the pool's start-up and each worker's imports are most of the time;
-    # 10,000 members show what two workers gain on the work itself
-    t10a, _ = run_impact(["assess", args.case, "--out", str(work / "x1"), "--workers", "1",
-                          "--members", "10000", *CORE])
-    t10b, _ = run_impact(["assess", args.case, "--out", str(work / "x2"), "--workers", "2",
-                          "--members", "10000", *CORE])
-    print(f"10,000 members: 1 worker {t10a:.2f} s, 2-worker pool {t10b:.2f} s, "
-          f"speed-up {t10a / t10b:.2f}x, identical tables {same_tables(work / 'x1', work / 'x2')}")
+    prior = prior_only(Path(args.case), work)
+    section("2. core stage (draws from the prior + paired option runs; the demo without its monitoring data), "
+            "1 worker vs 2 threads vs 2 processes")
+    for n in (1000, 10000):
+        t1, _ = run_impact(["assess", str(prior), "--out", str(work / f"c1-{n}"), "--workers", "1", "--members", str(n), *CORE])
+        tt, _ = run_impact(["assess", str(prior), "--out", str(work / f"ct-{n}"), "--workers", "2", "--members", str(n), *CORE])
+        tp, _ = run_impact(["assess", str(prior), "--out", str(work / f"cp-{n}"), "--workers", "2", "--processes",
+                            "--members", str(n), *CORE])
+        same = "yes" if same_tables(work / f"c1-{n}", work / f"ct-{n}") == same_tables(work / f"c1-{n}", work / f"cp-{n}") == "yes" else "NO"
+        print(f"{n:>6} members: 1 worker {t1:6.2f} s | 2 threads {tt:6.2f} s ({t1 / tt:4.2f}x) | "
+              f"2 processes {tp:6.2f} s ({t1 / tp:4.2f}x) | identical tables {same}  (ideal 2x on 2 cores)")
+    t2 = tp
+    print("the same work by stage, from the 10,000-member runs' manifests (wall seconds):")
+    for tag in ("c1", "ct", "cp"):
+        print(f"  {tag}: {stage_seconds(work / f'{tag}-10000')}")
+
+    section("2b. calibration of the demo (SMC, 1,000 members): simulations per second, 1 worker vs 2 threads")
+    for w in ("1", "2"):
+        t, _ = run_impact(["calibrate", args.case, "--out", str(work / f"cal{w}"), "--workers", w, "--quiet"])
+        cal = json.loads((work / f"cal{w}" / "manifest.json").read_text())["calibration"]
+        print(f"{w} worker(s): {t:6.2f} s wall, {cal['simulations']:,} simulations, "
+              f"{cal['simulations_per_second']:,.0f} per second in the sampler")
 
     section("3. local 2-worker pool vs Dask LocalCluster (2 worker processes), same work")
     try:
@@ -108,33 +140,33 @@ def main(argv=None) -> int:
     else:
         with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                           dashboard_address=None, silence_logs=40) as cluster:
-            td, _ = run_impact(["assess", args.case, "--out", str(work / "dask"), "--cluster",
-                                cluster.scheduler_address, *CORE])
+            td, _ = run_impact(["assess", str(prior), "--out", str(work / "dask"), "--cluster",
+                                cluster.scheduler_address, "--members", "10000", *CORE])
         print(f"2-worker pool                {t2:7.2f} s")
         print(f"Dask LocalCluster            {td:7.2f} s")
         print(f"Dask / pool                  {td / t2:7.2f}x")
-        print(f"identical tables             {same_tables(work / 'w1', work / 'dask')}")
+        print(f"identical tables             {same_tables(work / 'c1-10000', work / 'dask')}")
 
     section("4. full demo assessment (all stages + PDF)")
     tf, _ = run_impact(["assess", args.case, "--out", str(work / "full"), "--quiet"])
     tf1, mem1 = run_impact(["assess", args.case, "--out", str(work / "full1"), "--quiet", "--workers", "1"])
-    print(f"default executor ({os.cpu_count()} workers)   {tf:7.2f} s")
-    print(f"in-process                   {tf1:7.2f} s, peak memory {mem1:.0f} MiB")
+    print(f"default executor ({os.cpu_count()} threads)    {tf:7.2f} s  stages: {stage_seconds(work / 'full')}")
+    print(f"in-process                   {tf1:7.2f} s  stages: {stage_seconds(work / 'full1')}, peak memory {mem1:.0f} MiB")
 
-    section("5. core-stage throughput vs ensemble size (in-process; cost should grow linearly)")
+    section("5. core-stage throughput vs ensemble size (prior draws; in-process; cost should grow linearly)")
     sizes = [1000, 10000] if args.quick else [1000, 10000, 100000]
     base_rate = None
     for n in sizes:
-        t, mem = run_impact(["assess", args.case, "--out", str(work / f"n{n}"), "--members", str(n),
+        t, mem = run_impact(["assess", str(prior), "--out", str(work / f"n{n}"), "--members", str(n),
                              "--workers", "1", *CORE])
         rate = n / t
         base_rate = base_rate or rate
         print(f"{n:>7} members  {t:8.1f} s  {rate:7.1f} members/s  ({rate / base_rate:4.2f} of the 1k rate)  "
               f"peak memory {mem:6.0f} MiB")
     if not args.quick:
-        t, _ = run_impact(["assess", args.case, "--out", str(work / "n100000p"), "--members", "100000",
+        t, _ = run_impact(["assess", str(prior), "--out", str(work / "n100000t"), "--members", "100000",
                            "--workers", "2", *CORE])
-        print(f" 100000 members  {t:8.1f} s with the 2-worker pool")
+        print(f" 100000 members  {t:8.1f} s on 2 threads  stages: {stage_seconds(work / 'n100000t')}")
     print(f"\n(work files in {work})")
     return 0
 
