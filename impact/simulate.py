@@ -14,8 +14,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .case import ARRIVAL_KINDS, Case, Option
-from .engine.web import DEFAULT_ENGINE, web_segment
-from .model import Controls, FoodWeb, WebParams
+from .engine.web import DEFAULT_ENGINE, Jumps, pack_coefficients, web_run, web_segment
+from .model import Controls, FoodWeb, WebParams, segment_coefficients
 
 REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
                       "range": "outside an observed range today"}
@@ -177,10 +177,90 @@ def _apply_events(case: Case, web: FoodWeb, option: Option | None, values, event
             y[:, j] += resolve(iv.amount, values, M)
 
 
+def segment_controls(case: Case, option: Option | None, values, times: np.ndarray, noise: np.ndarray | None,
+                     M: int, S: int):
+    """Controls of each segment between ``times`` (a generator of :class:`Controls`)."""
+    ones = np.ones((M, S))
+    for t0, t1 in zip(times[:-1], times[1:]):
+        mid = 0.5 * (t0 + t1)
+        phi = noise[:, int(np.floor(mid))] if noise is not None else ones
+        season = breeding_multiplier(case, mid)
+        if season is not None:
+            phi = phi * season
+        yield controls_at(case, option, values, mid, phi, M, S)
+
+
+def boundary_jumps(case: Case, web: FoodWeb, option: Option | None, values, event_u, times: np.ndarray,
+                   M: int) -> Jumps:
+    """The jumps of :func:`_apply_events` at boundaries 1 … K of ``times``, for the whole-run kernel."""
+    from .engine.kernel import JUMP_ADD, JUMP_CULL, JUMP_ERADICATE
+    from .model import resolve
+
+    col = {n: i for i, n in enumerate(case.species_names)}
+    start, kind, species, cy, value, fails = [0, 0], [], [], [], [], []
+    for t in times[1:]:
+        for name in (option.interventions if option is not None else ()):
+            iv = case.intervention(name)
+            if t not in iv.event_times():
+                continue
+            j = col[iv.species]
+            if iv.kind == "pulse-cull":
+                kind.append(JUMP_CULL)
+                value.append(resolve(iv.fraction, values, M))
+                fails.append(np.zeros(M))
+                cy.append(web.carrion_yield[j] if iv.carcasses_to_carrion and web.has_carrion else -1.0)
+            elif iv.kind == "eradication":
+                kind.append(JUMP_ERADICATE)
+                value.append(resolve(iv.residual_fraction, values, M))
+                fails.append((event_u[name] < resolve(iv.failure_probability, values, M)).astype(float))
+                cy.append(-1.0)
+            elif iv.kind in ARRIVAL_KINDS:
+                kind.append(JUMP_ADD)
+                value.append(resolve(iv.amount, values, M))
+                fails.append(np.zeros(M))
+                cy.append(-1.0)
+            else:
+                continue
+            species.append(j)
+        start.append(len(kind))
+    E = len(kind)
+    cols = (lambda rows: np.ascontiguousarray(np.stack(rows, axis=1), dtype=float) if E else np.zeros((M, 0)))
+    return Jumps(np.array(start, np.int64), np.array(kind, np.int64), np.array(species, np.int64),
+                 np.array(cy, float), cols(value), cols(fails))
+
+
 def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
                option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
                engine: str = DEFAULT_ENGINE) -> Run:
     """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline).
+
+    With a compiled engine each member's whole run (every segment, its controls and noise, the
+    jumps between) is one compiled loop; the numpy engine steps segment by segment
+    (:func:`run_option_by_segment`, the reference: both give the same numbers to the bit).
+    Arguments as :func:`run_option_by_segment`.
+    """
+    if engine == "numpy":
+        return run_option_by_segment(case, web, p, values, y0, option, noise, event_u, engine)
+    M, n = y0.shape
+    times = segment_times(case, option, noise is not None)
+    out_t = output_times(case)
+    slot = {float(t): i for i, t in enumerate(out_t)}
+    slot_of = np.array([slot.get(float(t), -1) for t in times], np.int64)
+    rows = np.arange(M)
+    coef = np.stack([pack_coefficients(segment_coefficients(web, p, c), rows)
+                     for c in segment_controls(case, option, values, times, noise, M, web.n_species)])
+    y = y0.copy()
+    _apply_events(case, web, option, values, event_u, times[0], y)
+    jumps = boundary_jumps(case, web, option, values, event_u, times, M)
+    res = web_run(web, coef, times, y, jumps, slot_of, len(out_t), rtol=case.rtol, atol=case.atol, engine=engine)
+    return Run(out_t, res.states, res.cummin, res.cummax, res.reason != 0, res.reason, res.nfev)
+
+
+def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
+                          option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
+                          engine: str = DEFAULT_ENGINE) -> Run:
+    """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline), one
+    segment at a time for the whole ensemble.
 
     Parameters
     ----------

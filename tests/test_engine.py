@@ -24,7 +24,7 @@ from impact.engine.control import Failure
 from impact.engine.web import ENGINES, pack_structure, web_segment
 from impact.model import Controls, FoodWeb, Link, WebParams, WebRHS, build_web, web_params
 from impact.sample import event_uniforms, noise_multipliers, parameter_values
-from impact.simulate import run_option, spin_up
+from impact.simulate import run_option, run_option_by_segment, spin_up
 
 ROOT = Path(__file__).resolve().parent.parent
 CASES = [str(p) for p in sorted((ROOT / "casework").glob("*.toml"))] + ["web_case"]
@@ -68,6 +68,30 @@ def test_spin_up_and_option_runs_match_the_numpy_reference(name, tmp_path):
             assert np.array_equal(runs[e].reason, ref.reason)
             for field in ("states", "cummin", "cummax"):
                 assert_same(getattr(runs[e], field), getattr(ref, field))
+
+
+def _paired_inputs(case, p, M: int):
+    draws = np.arange(M)
+    noise = noise_multipliers(1, draws, p.noise_sd, int(np.ceil(case.horizon)) + 1) \
+        if (p.noise_sd > 0).any() else None
+    return noise, {iv.name: event_uniforms(1, draws, iv.name) for iv in case.interventions}
+
+
+@pytest.mark.parametrize("name", CASES, ids=lambda s: Path(s).stem)
+def test_a_whole_run_in_one_kernel_call_equals_the_run_segment_by_segment(name, tmp_path):
+    # The whole-run kernel repeats the per-segment calls' arithmetic (each member continuing from
+    # its step size, jumps and running extremes between segments): equal to the bit, same work.
+    case = load(name, tmp_path)
+    web = build_web(case)
+    vals, p = ensemble(case, 10)
+    today = spin_up(case, web, p)[0]
+    noise, event_u = _paired_inputs(case, p, 10)
+    for opt in [None, *case.options]:
+        whole = run_option(case, web, p, vals, today, opt, noise, event_u, engine="compiled")
+        parts = run_option_by_segment(case, web, p, vals, today, opt, noise, event_u, engine="compiled")
+        for field in ("states", "cummin", "cummax", "failed", "reason"):
+            assert np.array_equal(getattr(whole, field), getattr(parts, field), equal_nan=True), field
+        assert whole.nfev == parts.nfev
 
 
 # --- random webs --------------------------------------------------------------------------------
@@ -172,6 +196,28 @@ def test_member_alone_equals_member_in_a_batch_with_a_failing_member(engine, tmp
         alone = web_segment(web, p, c, 0.0, 5.0, p.initial[k:k + 1], members=np.array([k]), **kw)
         for field in ("y", "ymin", "ymax", "h", "reason", "nsteps"):
             assert np.array_equal(getattr(alone, field)[0], getattr(batch, field)[k], equal_nan=True)
+
+
+@pytest.mark.parametrize("engine", COMPILED)
+def test_a_whole_run_of_a_member_alone_equals_its_run_in_a_batch_with_a_failing_member(engine, tmp_path):
+    # As above for whole option runs (culls, eradication with chance failure, noise): member 3's
+    # foxes grow at 40/year without a limit and blow up; the others must not notice.
+    case = load("web_case", tmp_path)
+    web = build_web(case)
+    vals, p = ensemble(case, 6)
+    p.r[3, 2] = 40.0
+    today = p.initial.copy()
+    noise, event_u = _paired_inputs(case, p, 6)
+    opt = case.options[-1]
+    batch = run_option(case, web, p, vals, today, opt, noise, event_u, engine=engine)
+    assert batch.failed.tolist() == [False, False, False, True, False, False]
+    for k in range(6):
+        one = replace(p, **{f: getattr(p, f)[k:k + 1] for f in WebParams.__dataclass_fields__})
+        alone = run_option(case, web, one, {n: np.asarray(v)[k:k + 1] for n, v in vals.items()}, today[k:k + 1], opt,
+                           None if noise is None else noise[k:k + 1], {n: u[k:k + 1] for n, u in event_u.items()},
+                           engine=engine)
+        for field in ("states", "cummin", "cummax", "reason"):
+            assert np.array_equal(getattr(alone, field)[0], getattr(batch, field)[k], equal_nan=True), field
 
 
 # --- the on-disk kernel cache -------------------------------------------------------------------

@@ -25,7 +25,8 @@ import numpy as np
 from . import kernel
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
-STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member")
+STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member",
+                     "run_members")
 _loaded: dict[tuple[str, bytes], object] = {}  # (cache folder, structure table bytes) -> loaded module
 
 

@@ -35,7 +35,7 @@ HEADER = 9  # entries of the structure table before the per-link columns
 __all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
            "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
-           "member", "segment"]
+           "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
 
 A = DormandPrince54.A.copy()
 B = DormandPrince54.B.copy()
@@ -451,4 +451,108 @@ def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol,
     h_out[m] = hgood if math.isfinite(hgood) else h
     for j in range(n):
         y_out[m, j] = y[j] if code == 0 else math.nan
+    return nfev
+
+
+# Kinds of the jumps a run applies at segment boundaries (see :func:`run_members`).
+JUMP_CULL = 0         # removed = y·value; y −= removed; the carrion pool gains yield·removed (yield ≥ 0)
+JUMP_ERADICATE = 1    # y = y·value where the eradication fails (aux = 1), else 0
+JUMP_ADD = 2          # y += value
+
+
+@kernel_jit
+def run_members(st, coef, times, y0, jump_start, jump_kind, jump_species, jump_yield, jump_value, jump_aux,
+                rtol, atol, max_steps, blowup, slot_of, states, cummin, cummax, reason):
+    """A whole option run of every member: the segments between ``times`` in turn, each under its
+    own coefficient rows, with the jumps at the boundaries, recording states and running extremes
+    at the output slots. Returns the member right-hand-side evaluations.
+
+    The arithmetic is that of :func:`segment` called once per segment (each member continuing from
+    its previous step size) with the jumps and running extremes of
+    :func:`impact.simulate.run_option` between calls, so both give the same numbers to the bit.
+
+    ``coef`` (K, M, P) coefficient rows per segment; ``times`` (K+1,); ``y0`` (M, n) the state after
+    the jumps at ``times[0]`` (non-finite rows have failed); jumps at boundary b are entries
+    ``jump_start[b]`` to ``jump_start[b+1] − 1`` of ``jump_kind``, ``jump_species``, ``jump_yield``
+    (E,) and ``jump_value``, ``jump_aux`` (M, E); ``slot_of`` (K+1,) the output slot of each
+    boundary or −1; ``states``, ``cummin``, ``cummax`` (M, T, n) NaN-filled, slot of boundary 0
+    written by the caller; ``reason`` (M,) int8 failure codes (written).
+    """
+    K = coef.shape[0]
+    M, n = y0.shape
+    S = st[0]
+    KS = np.empty((STAGES + 1, n))
+    work = np.empty((5, n))
+    y, y_new, tmp, sc = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+    lo, hi = np.empty(n), np.empty(n)
+    y_end, smin, smax = np.empty((1, n)), np.empty((1, n)), np.empty((1, n))
+    h_end = np.empty(1)
+    code1 = np.zeros(1, dtype=np.int8)
+    steps1 = np.zeros(1, dtype=np.int64)
+    nfev = 0
+    for m in range(M):
+        for j in range(n):
+            y[j] = y0[m, j]
+            lo[j] = y[j]
+            hi[j] = y[j]
+        failed = not all_finite(y)
+        reason[m] = NONFINITE if failed else 0
+        h = math.nan
+        for k in range(K):
+            t0, t1 = times[k], times[k + 1]
+            if not failed:
+                cf = coef[k, m]
+                code = 0
+                if not all_finite(y):
+                    code = NONFINITE
+                else:
+                    web_rhs(st, cf, t0, y, KS[0], work)
+                    nfev += 1
+                    if not all_finite(KS[0]):
+                        code = NONFINITE
+                if code == 0:
+                    if not (math.isfinite(h) and h > 0):
+                        h = initial_step(st, cf, t0, t1, y, KS[0], rtol, atol, 1.0, work, tmp, KS[1], sc)
+                        nfev += 1
+                    h = nmin(h, abs(t1 - t0))
+                    for j in range(n):
+                        smin[0, j] = y[j]
+                        smax[0, j] = y[j]
+                    nfev += member(st, cf, y, KS, work, y_new, tmp, sc, h, t0, t1, 1.0, rtol, atol,
+                                   max_steps, blowup, 0, y_end, smin, smax, h_end, code1, steps1)
+                    code = code1[0]
+                    h = h_end[0]
+                    for j in range(n):
+                        y[j] = y_end[0, j]
+                        lo[j] = nmin(lo[j], smin[0, j])
+                        hi[j] = nmax(hi[j], smax[0, j])
+                if code != 0:
+                    failed = True
+                    reason[m] = code
+            for e in range(jump_start[k + 1], jump_start[k + 2]):
+                j = jump_species[e]
+                kind = jump_kind[e]
+                if kind == JUMP_CULL:
+                    removed = y[j] * jump_value[m, e]
+                    y[j] = y[j] - removed
+                    if jump_yield[e] >= 0:
+                        y[S] = y[S] + jump_yield[e] * removed
+                elif kind == JUMP_ERADICATE:
+                    y[j] = y[j] * jump_value[m, e] if jump_aux[m, e] != 0 else 0.0
+                else:
+                    y[j] = y[j] + jump_value[m, e]
+            for j in range(n):
+                lo[j] = nmin(lo[j], y[j])
+                hi[j] = nmax(hi[j], y[j])
+            if failed:
+                for j in range(n):
+                    y[j] = math.nan
+                    lo[j] = math.nan
+                    hi[j] = math.nan
+            s = slot_of[k + 1]
+            if s >= 0:
+                for j in range(n):
+                    states[m, s, j] = y[j]
+                    cummin[m, s, j] = lo[j]
+                    cummax[m, s, j] = hi[j]
     return nfev

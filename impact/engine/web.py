@@ -12,6 +12,7 @@ the compiled ones have no per-step fixed cost, and the generated one is the fast
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -136,3 +137,84 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
     nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
+
+
+@dataclass(frozen=True)
+class Jumps:
+    """Instant changes of state at segment boundaries (culls, eradications, arrivals), in the
+    order they apply: entries ``start[b]`` to ``start[b + 1] − 1`` act at boundary ``b``.
+
+    Attributes
+    ----------
+    start : int64 ndarray (K + 2,)
+    kind : int64 ndarray (E,)
+        :data:`impact.engine.kernel.JUMP_CULL`, ``JUMP_ERADICATE`` or ``JUMP_ADD``.
+    species : int64 ndarray (E,)
+    carrion_yield : float ndarray (E,)
+        Carrion per culled individual, or −1 where culled animals are not left as carrion.
+    value : float ndarray (M, E)
+        Fraction culled, residual fraction of a failed eradication, or amount added.
+    fails : float ndarray (M, E)
+        1 where an eradication fails (other kinds: unused).
+    """
+
+    start: np.ndarray
+    kind: np.ndarray
+    species: np.ndarray
+    carrion_yield: np.ndarray
+    value: np.ndarray
+    fails: np.ndarray
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """A whole run of every member: states and running extremes at the output slots (M, T, n),
+    failure codes (M,) and member right-hand-side evaluations."""
+
+    states: np.ndarray
+    cummin: np.ndarray
+    cummax: np.ndarray
+    reason: np.ndarray
+    nfev: int
+
+
+def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, jumps: Jumps,
+            slot_of: np.ndarray, T: int, *, rtol, atol, engine: str = DEFAULT_ENGINE,
+            max_steps: int = 100_000, blowup: float = 1e12) -> RunResult:
+    """Integrate every member through all segments of a run in one compiled call.
+
+    Parameters
+    ----------
+    coef : ndarray (K, M, P)
+        Each segment's coefficient rows (:func:`pack_coefficients`).
+    times : ndarray (K + 1,)
+        Segment boundaries, increasing.
+    y0 : ndarray (M, n_state)
+        State after the jumps at ``times[0]``; non-finite rows have failed.
+    slot_of : int ndarray (K + 1,)
+        Output slot of each boundary, or −1; slot ``slot_of[0]`` holds ``y0``.
+    engine : {"compiled", "table"}
+
+    Returns
+    -------
+    RunResult
+        The same numbers as :func:`web_segment` called segment by segment with the jumps between.
+    """
+    if engine not in ("compiled", "table"):
+        raise ValueError(f"engine must be 'compiled' or 'table' for a whole run, got {engine!r}")
+    y0 = np.ascontiguousarray(y0, dtype=float)
+    M, n = y0.shape
+    if coef.shape[:2] != (len(times) - 1, M):
+        raise ValueError(f"coef has shape {coef.shape} for {len(times) - 1} segments of {M} members")
+    rtol = _tolerance(rtol, n, "rtol")
+    atol = _tolerance(atol, n, "atol")
+    states, cummin, cummax = (np.full((M, T, n), np.nan) for _ in range(3))
+    if slot_of[0] >= 0:
+        states[:, slot_of[0]] = cummin[:, slot_of[0]] = cummax[:, slot_of[0]] = y0
+    reason = np.zeros(M, dtype=np.int8)
+    st = pack_structure(web)
+    nfev = compiled_kernel(st, engine).run_members(
+        st, np.ascontiguousarray(coef, dtype=float), np.asarray(times, float), y0, jumps.start, jumps.kind,
+        jumps.species, jumps.carrion_yield, jumps.value, jumps.fails, rtol, atol, int(max_steps), float(blowup),
+        np.asarray(slot_of, np.int64), states, cummin, cummax, reason)
+    return RunResult(states, cummin, cummax, reason, int(nfev))
