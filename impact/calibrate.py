@@ -39,7 +39,7 @@ from .errors import CaseError
 from .model import WebParams, build_web, web_params
 from .observe import distance, draw_observations, has_data, log_likelihood, record_times
 from .sample import calibration_generator, member_uniforms, parameter_values
-from .engine.web import pack_coefficients, web_segment
+from .engine.web import no_jumps, pack_coefficients, web_run
 from .model import Controls, segment_coefficients
 
 # SMC settings (the values of the papers cited in the module docstring; common practice)
@@ -129,32 +129,26 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
         return recorded, y.copy(), ~np.isfinite(y).all(axis=1)
     half = -0.5 * case.spinup
     bounds = np.array(sorted({-case.spinup, half, *times.tolist()}))
-    c = Controls.neutral(M, web.n_species)
-    failed = ~np.isfinite(y).all(axis=1)
-    h = np.full(M, np.nan)
-    late_min = np.full((M, n), np.inf)
+    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, web.n_species)), np.arange(M))
     slot = {float(t): i for i, t in enumerate(times)}
-    if -case.spinup in slot:
-        recorded[:, slot[-case.spinup]] = y
-    # parameters and controls are the same in every segment: their coefficient rows are packed once
-    packed = pack_coefficients(segment_coefficients(web, p, c), np.arange(M))
-    for t0, t1 in zip(bounds[:-1], bounds[1:]):
-        ok = np.flatnonzero(~failed)
-        if ok.size:
-            h0 = None if np.isnan(h[ok]).any() else h[ok]
-            seg = web_segment(web, p, c, float(t0), float(t1), y[ok], rtol=case.rtol, atol=case.atol,
-                              h0=h0, members=ok, coef=packed if ok.size == M else packed[ok])
-            y[ok], h[ok] = seg.y, seg.h
-            if t0 >= half:
-                late_min[ok] = np.minimum(late_min[ok], seg.ymin)
-            failed[ok[seg.failed]] = True
-        y[failed] = np.nan
-        if t1 == half:
-            late_min = np.minimum(late_min, y)
-        if float(t1) in slot:
-            recorded[:, slot[float(t1)]] = y
-    late_min = np.where(failed[:, None], np.nan, np.minimum(late_min, y))
-    return recorded, late_min, failed
+    cut = int(np.searchsorted(bounds, half))
+    # Two whole runs in the compiled kernel, the second continuing from the first's end state and
+    # step sizes: up to -spinup/2, then on to the last record time. Each run's last boundary goes
+    # to an extra slot R (its end state; for the second, its running minimum is the late minimum).
+    runs, h = [], None
+    for part in (bounds[:cut + 1], bounds[cut:]):
+        K = len(part) - 1
+        slot_of = np.array([slot.get(float(t), -1) for t in part[:-1]] + [R], np.int64)
+        run = web_run(web, coef[None], part, y, no_jumps(K, M), slot_of, R + 1,
+                      rtol=case.rtol, atol=case.atol, h0=h)
+        if float(part[-1]) in slot:
+            run.states[:, slot[float(part[-1])]] = run.states[:, R]
+        runs.append(run)
+        y, h = run.states[:, R], run.h
+    first, second = runs
+    recorded = np.where(np.isnan(second.states[:, :R]), first.states[:, :R], second.states[:, :R])
+    failed = (first.reason != 0) | (second.reason != 0)
+    return recorded, second.cummin[:, R], failed
 
 
 @dataclass(frozen=True)

@@ -461,8 +461,8 @@ JUMP_ADD = 2          # y += value
 
 
 @kernel_jit
-def run_members(st, coef, times, y0, jump_start, jump_kind, jump_species, jump_yield, jump_value, jump_aux,
-                rtol, atol, max_steps, blowup, slot_of, states, cummin, cummax, reason):
+def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, jump_yield, jump_value, jump_aux,
+                rtol, atol, max_steps, blowup, slot_of, states, cummin, cummax, reason, h_out):
     """A whole option run of every member: the segments between ``times`` in turn, each under its
     own coefficient rows, with the jumps at the boundaries, recording states and running extremes
     at the output slots. Returns the member right-hand-side evaluations.
@@ -471,14 +471,15 @@ def run_members(st, coef, times, y0, jump_start, jump_kind, jump_species, jump_y
     its previous step size) with the jumps and running extremes of
     :func:`impact.simulate.run_option` between calls, so both give the same numbers to the bit.
 
-    ``coef`` (K, M, P) coefficient rows per segment; ``times`` (K+1,); ``y0`` (M, n) the state after
-    the jumps at ``times[0]`` (non-finite rows have failed); jumps at boundary b are entries
+    ``coef`` (K, M, P) coefficient rows per segment, or (1, M, P) for every segment; ``times`` (K+1,); ``y0`` (M, n) the state after
+    the jumps at ``times[0]`` (non-finite rows have failed); ``h0`` (M,) first step sizes (NaN:
+    choose); ``h_out`` (M,) the step size each member would continue with (written); jumps at boundary b are entries
     ``jump_start[b]`` to ``jump_start[b+1] − 1`` of ``jump_kind``, ``jump_species``, ``jump_yield``
     (E,) and ``jump_value``, ``jump_aux`` (M, E); ``slot_of`` (K+1,) the output slot of each
     boundary or −1; ``states``, ``cummin``, ``cummax`` (M, T, n) NaN-filled, slot of boundary 0
     written by the caller; ``reason`` (M,) int8 failure codes (written).
     """
-    K = coef.shape[0]
+    K = times.shape[0] - 1
     M, n = y0.shape
     S = st[0]
     KS = np.empty((STAGES + 1, n))
@@ -497,11 +498,11 @@ def run_members(st, coef, times, y0, jump_start, jump_kind, jump_species, jump_y
             hi[j] = y[j]
         failed = not all_finite(y)
         reason[m] = NONFINITE if failed else 0
-        h = math.nan
+        h = h0[m]
         for k in range(K):
             t0, t1 = times[k], times[k + 1]
             if not failed:
-                cf = coef[k, m]
+                cf = coef[k if coef.shape[0] > 1 else 0, m]
                 code = 0
                 if not all_finite(y):
                     code = NONFINITE
@@ -555,4 +556,5 @@ def run_members(st, coef, times, y0, jump_start, jump_kind, jump_species, jump_y
                     states[m, s, j] = y[j]
                     cummin[m, s, j] = lo[j]
                     cummax[m, s, j] = hi[j]
+        h_out[m] = h
     return nfev

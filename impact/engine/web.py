@@ -169,30 +169,34 @@ class Jumps:
 @dataclass(frozen=True)
 class RunResult:
     """A whole run of every member: states and running extremes at the output slots (M, T, n),
-    failure codes (M,) and member right-hand-side evaluations."""
+    failure codes (M,), the step size each member would continue with (M,) and member
+    right-hand-side evaluations."""
 
     states: np.ndarray
     cummin: np.ndarray
     cummax: np.ndarray
     reason: np.ndarray
+    h: np.ndarray
     nfev: int
 
 
 def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, jumps: Jumps,
-            slot_of: np.ndarray, T: int, *, rtol, atol, engine: str = DEFAULT_ENGINE,
+            slot_of: np.ndarray, T: int, *, rtol, atol, h0=None, engine: str = DEFAULT_ENGINE,
             max_steps: int = 100_000, blowup: float = 1e12) -> RunResult:
     """Integrate every member through all segments of a run in one compiled call.
 
     Parameters
     ----------
-    coef : ndarray (K, M, P)
-        Each segment's coefficient rows (:func:`pack_coefficients`).
+    coef : ndarray (K, M, P) or (1, M, P)
+        Each segment's coefficient rows (:func:`pack_coefficients`), or one set for every segment.
     times : ndarray (K + 1,)
         Segment boundaries, increasing.
     y0 : ndarray (M, n_state)
         State after the jumps at ``times[0]``; non-finite rows have failed.
     slot_of : int ndarray (K + 1,)
         Output slot of each boundary, or −1; slot ``slot_of[0]`` holds ``y0``.
+    h0 : ndarray (M,), optional
+        First step sizes, e.g. those of a run this one continues (NaN or None: chosen).
     engine : {"compiled", "table"}
 
     Returns
@@ -204,7 +208,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
         raise ValueError(f"engine must be 'compiled' or 'table' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
-    if coef.shape[:2] != (len(times) - 1, M):
+    if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:
         raise ValueError(f"coef has shape {coef.shape} for {len(times) - 1} segments of {M} members")
     rtol = _tolerance(rtol, n, "rtol")
     atol = _tolerance(atol, n, "atol")
@@ -212,9 +216,17 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     if slot_of[0] >= 0:
         states[:, slot_of[0]] = cummin[:, slot_of[0]] = cummax[:, slot_of[0]] = y0
     reason = np.zeros(M, dtype=np.int8)
+    h = np.full(M, np.nan) if h0 is None else np.array(np.broadcast_to(np.asarray(h0, float), (M,)))
+    h_out = np.full(M, np.nan)
     st = pack_structure(web)
     nfev = compiled_kernel(st, engine).run_members(
-        st, np.ascontiguousarray(coef, dtype=float), np.asarray(times, float), y0, jumps.start, jumps.kind,
+        st, np.ascontiguousarray(coef, dtype=float), np.asarray(times, float), y0, h, jumps.start, jumps.kind,
         jumps.species, jumps.carrion_yield, jumps.value, jumps.fails, rtol, atol, int(max_steps), float(blowup),
-        np.asarray(slot_of, np.int64), states, cummin, cummax, reason)
-    return RunResult(states, cummin, cummax, reason, int(nfev))
+        np.asarray(slot_of, np.int64), states, cummin, cummax, reason, h_out)
+    return RunResult(states, cummin, cummax, reason, h_out, int(nfev))
+
+
+def no_jumps(segments: int, members: int) -> Jumps:
+    """Jumps for a run without any (``segments`` segments, ``members`` members)."""
+    return Jumps(np.zeros(segments + 2, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0),
+                 np.zeros((members, 0)), np.zeros((members, 0)))
