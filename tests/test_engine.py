@@ -94,6 +94,27 @@ def test_a_whole_run_in_one_kernel_call_equals_the_run_segment_by_segment(name, 
         assert whole.nfev == parts.nfev
 
 
+def test_a_run_continued_from_its_step_sizes_equals_the_run_in_one_call(tmp_path):
+    # Calibration spin-ups run in two calls, the second continuing from the first's end state and
+    # step sizes: the same numbers as one call over every boundary (DEVELOPERS.md, no source).
+    from impact.engine.web import no_jumps, pack_coefficients, web_run
+    from impact.model import segment_coefficients
+
+    case = load("web_case", tmp_path)
+    web = build_web(case)
+    _, p = ensemble(case, 8)
+    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(8, web.n_species)), np.arange(8))[None]
+    times = np.array([-30.0, -15.0, -5.0, -1.0, 0.0])
+    kw = dict(rtol=1e-6, atol=1e-9)
+    whole = web_run(web, coef, times, p.initial, no_jumps(4, 8), np.array([-1, -1, 0, 1, 2]), 3, **kw)
+    first = web_run(web, coef, times[:2], p.initial, no_jumps(1, 8), np.array([-1, 0]), 1, **kw)
+    second = web_run(web, coef, times[1:], first.states[:, 0], no_jumps(3, 8), np.array([-1, 0, 1, 2]), 3,
+                     h0=first.h, **kw)
+    assert np.array_equal(whole.states, second.states, equal_nan=True)
+    assert np.array_equal(whole.h, second.h)
+    assert whole.nfev == first.nfev + second.nfev
+
+
 # --- random webs --------------------------------------------------------------------------------
 
 RESPONSES = ("holling1", "holling2", "holling3")
