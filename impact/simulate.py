@@ -290,15 +290,9 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
     _apply_events(case, web, option, values, event_u, times[0], y)
     lo, hi = y.copy(), y.copy()
     states[:, 0], cummin[:, 0], cummax[:, 0] = y, lo, hi
-    ones = np.ones((M, S))
-    for k in range(len(times) - 1):
+    controls = segment_controls(case, option, values, times, noise, M, S)
+    for k, c in enumerate(controls):
         t0, t1 = times[k], times[k + 1]
-        mid = 0.5 * (t0 + t1)
-        phi = noise[:, int(np.floor(mid))] if noise is not None else ones
-        season = breeding_multiplier(case, mid)
-        if season is not None:
-            phi = phi * season
-        c = controls_at(case, option, values, mid, phi, M, S)
         active = np.flatnonzero(~failed)
         if active.size:
             h0 = h[active]
