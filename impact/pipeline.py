@@ -155,6 +155,10 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
 
     settings, folder, est = plan_assessment(case, settings, out, replace=replace, execution=execution,
                                             ensemble=ensemble)
+    if report:
+        from .report.preload import preload
+
+        preload()  # the report's libraries load while the compiled stages run
     if progress:
         progress(est.describe())
     executor = execution.executor()
