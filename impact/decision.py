@@ -24,7 +24,7 @@ import pandas as pd
 
 from .case import Case
 from .effects import BASELINE, objective_outcome
-from .voi import design_matrix, fitted_means, information_values
+from .voi import bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, weighted_fit, weighted_fitted
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
                   "conditional_on")
@@ -49,15 +49,43 @@ def main_effects(Y: np.ndarray, X: np.ndarray, *, resamples: int = RESAMPLES, co
     M, P = X.shape
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_DRIVERS,))
     rng = np.random.Generator(np.random.PCG64(ss))
-    boot = [rng.integers(0, M, M) for _ in range(resamples)]
+    W = bootstrap_counts(rng, M, resamples)
+    var = _weighted_moments(W, Y, W @ Y / M)[1]  # each resample's output variance, shared by every parameter
     out = np.full((3, P, Y.shape[1]), np.nan)
     a = (1 - confidence) / 2
     for j in range(P):
         D = design_matrix(X[:, [j]])
         out[0, j] = _adjusted_r2(Y, D)
-        reps = np.stack([_adjusted_r2(Y[i], D[i]) for i in boot])
+        reps = _weighted_adjusted_r2(Y, D, W, var)
         out[1, j], out[2, j] = np.quantile(reps, a, axis=0), np.quantile(reps, 1 - a, axis=0)
     return out[0], out[1], out[2]
+
+
+def _weighted_moments(W: np.ndarray, Y: np.ndarray, fit) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and variance (R, K') of ``Y`` (M, K') minus a fit, under member weights ``W`` (R, M).
+
+    ``fit`` is either the fitted level per resample (R, K') or a function of a member slice giving the
+    fitted values laid out (R, K', m); the deviations are formed first so no large moments cancel.
+    """
+    R, M = W.shape
+    s1, s2 = np.zeros((R, Y.shape[1])), np.zeros((R, Y.shape[1]))
+    for sl in member_slices(M, R * Y.shape[1]):
+        dev = Y[sl].T - (fit(sl) if callable(fit) else fit[:, :, None])  # (R, K', m)
+        wdev = W[:, None, sl] * dev
+        s1 += wdev.sum(axis=2)
+        s2 += (wdev * dev).sum(axis=2)
+    n = W.sum(axis=1)[:, None]
+    return s1 / n, s2 / n - (s1 / n) ** 2
+
+
+def _weighted_adjusted_r2(Y: np.ndarray, D: np.ndarray, W: np.ndarray, var: np.ndarray) -> np.ndarray:
+    """:func:`_adjusted_r2` on every resample given as member weights ``W`` (R, M): (R, K')."""
+    coef = weighted_fit(W, D, Y)  # (R, K, K')
+    resid_var = _weighted_moments(W, Y, lambda sl: weighted_fitted(coef, D[sl]))[1]
+    M, K = D.shape
+    with np.errstate(invalid="ignore", divide="ignore"):
+        adj = 1 - resid_var / var * (M - 1) / max(M - K, 1)
+    return np.where(var > 0, adj, np.nan)
 
 
 def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:

@@ -11,7 +11,9 @@ For a choice among decisions d (doing nothing and every option) with a per-membe
 
 The regression is a cubic regression spline in each parameter (B-spline basis, interior knots at
 quantiles), additive for a group plus pairwise products of the linear terms; intervals come from a
-bootstrap over members. Pure functions, arrays in and out.
+bootstrap over members. Every resample is computed at once as a row of member weights (how often the
+resample drew each member), which gives the fit on the resampled rows without gathering them. Pure
+functions, arrays in and out.
 """
 
 from __future__ import annotations
@@ -27,6 +29,7 @@ SPLINE_DEGREE = 3
 MAX_KNOTS = 6
 MEMBERS_PER_KNOT = 80
 PURPOSE_VOI = 11  # spawn-key purpose of the bootstrap streams
+BATCH_VALUES = 1 << 21  # values held at once by the weighted sums (16 MB of floats), whatever M
 
 
 def evpi(nb: np.ndarray) -> float:
@@ -81,6 +84,61 @@ def evppi_from_design(nb: np.ndarray, X: np.ndarray) -> float:
     return float(min(max(g.max(axis=1).mean() - g.mean(axis=0).max(), 0.0), evpi(nb)))
 
 
+def resample_counts(draws: np.ndarray, M: int) -> np.ndarray:
+    """How often each of ``M`` members appears in each bootstrap resample: draws (R, n) -> counts (R, M)."""
+    R = draws.shape[0]
+    return np.bincount((draws + M * np.arange(R)[:, None]).ravel(), minlength=R * M).reshape(R, M).astype(float)
+
+
+def member_slices(M: int, width: int) -> list[slice]:
+    """Slices of ``M`` members, each holding at most ~BATCH_VALUES values when a member carries ``width``."""
+    step = max(1, BATCH_VALUES // max(width, 1))
+    return [slice(lo, lo + step) for lo in range(0, M, step)]
+
+
+def weighted_fit(W: np.ndarray, X: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients of ``Y`` (M, D) on ``X`` (M, K) under each row of member weights ``W`` (R, M).
+
+    With resample counts as weights, row r is the fit of :func:`fitted_means` on the rows of resample r
+    (same normal equations and ridge), without gathering them. Returns (R, K, D).
+    """
+    R, M = W.shape
+    K = X.shape[1]
+    XY = np.hstack([X, Y])
+    moments = np.zeros((R, K, XY.shape[1]))
+    for sl in member_slices(M, R * K):
+        # R small products (K, m) @ (m, K + D): no single large product, which a threaded BLAS on a
+        # busy machine turns into spinning cores
+        moments += np.swapaxes(W[:, sl, None] * X[sl], 1, 2) @ XY[sl]
+    gram, rhs = moments[:, :, :K], moments[:, :, K:]
+    ridge = 1e-10 * np.trace(gram, axis1=1, axis2=2) / K
+    return np.linalg.solve(gram + ridge[:, None, None] * np.eye(K), rhs)
+
+
+def weighted_fitted(coef: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """Fitted values of every resample's fit ``coef`` (R, K, D) at the rows ``X`` (m, K), laid out (R, D, m)."""
+    return np.swapaxes(coef, 1, 2) @ X.T
+
+
+def weighted_evpi(nb: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """:func:`evpi` of ``nb`` (M, D) under each row of member weights ``W`` (R, M): (R,)."""
+    n = W.sum(axis=1)
+    return (W @ nb.max(axis=1)) / n - (W @ nb).max(axis=1) / n
+
+
+def weighted_evppi(nb: np.ndarray, X: np.ndarray, W: np.ndarray) -> np.ndarray:
+    """:func:`evppi_from_design` under each row of member weights ``W`` (R, M): (R,), capped alike."""
+    R, M = W.shape
+    coef = weighted_fit(W, X, nb)  # (R, K, D)
+    n = W.sum(axis=1)
+    best_each = np.zeros(R)
+    for sl in member_slices(M, R * nb.shape[1]):
+        best_each += (W[:, sl] * weighted_fitted(coef, X[sl]).max(axis=1)).sum(axis=1)
+    best_mean = np.einsum("rk,rkd->rd", W @ X, coef).max(axis=1)
+    v = (best_each - best_mean) / n
+    return np.minimum(np.maximum(v, 0.0), weighted_evpi(nb, W))
+
+
 @dataclass(frozen=True)
 class Estimate:
     """A value with its bootstrap percentile interval."""
@@ -90,16 +148,15 @@ class Estimate:
     high: float
 
 
-def _bootstrap(stat, nb: np.ndarray, x: np.ndarray | None, resamples: int, confidence: float,
-               rng: np.random.Generator) -> Estimate:
-    M = nb.shape[0]
-    value = stat(nb, x)
-    reps = np.empty(resamples)
-    for b in range(resamples):
-        i = rng.integers(0, M, M)
-        reps[b] = stat(nb[i], None if x is None else x[i])
+def _bootstrap(value: float, reps: np.ndarray, confidence: float) -> Estimate:
     a = (1 - confidence) / 2
     return Estimate(value, float(np.quantile(reps, a)), float(np.quantile(reps, 1 - a)))
+
+
+def bootstrap_counts(rng: np.random.Generator, M: int, resamples: int) -> np.ndarray:
+    """Counts (resamples, M) of members in resamples of M drawn with replacement from ``rng``."""
+    # one call draws the same numbers as one call of M per resample, in turn
+    return resample_counts(rng.integers(0, M, size=(resamples, M)), M)
 
 
 def information_values(nb: np.ndarray, X: np.ndarray, names: list[str], groups: dict[str, list[str]] | None = None,
@@ -123,11 +180,14 @@ def information_values(nb: np.ndarray, X: np.ndarray, names: list[str], groups: 
     nb = np.asarray(nb, float)
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
     streams = iter(np.random.Generator(np.random.PCG64(s)) for s in ss.spawn(1 + len(names) + len(groups or {})))
-    out = {"all parameters": _bootstrap(lambda n, _: evpi(n), nb, None, resamples, confidence, next(streams))}
+    M = nb.shape[0]
+    W = bootstrap_counts(next(streams), M, resamples)
+    out = {"all parameters": _bootstrap(evpi(nb), weighted_evpi(nb, W), confidence)}
     col = {n: j for j, n in enumerate(names)}
     wanted = {n: [n] for n in names} | dict(groups or {})
     for key, members in wanted.items():
-        # the basis is built once on all members; a bootstrap resamples its rows
+        # the basis is built once on all members; a resample weighs its rows by how often it drew them
         design = design_matrix(X[:, [col[m] for m in members]])
-        out[key] = _bootstrap(evppi_from_design, nb, design, resamples, confidence, next(streams))
+        W = bootstrap_counts(next(streams), M, resamples)
+        out[key] = _bootstrap(evppi_from_design(nb, design), weighted_evppi(nb, design, W), confidence)
     return out
