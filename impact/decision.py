@@ -24,7 +24,8 @@ import pandas as pd
 
 from .case import Case
 from .effects import BASELINE, objective_outcome
-from .voi import bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, weighted_fit, weighted_fitted
+from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, ridge_solve,
+                  weighted_normal_equations)
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
                   "conditional_on")
@@ -50,42 +51,52 @@ def main_effects(Y: np.ndarray, X: np.ndarray, *, resamples: int = RESAMPLES, co
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_DRIVERS,))
     rng = np.random.Generator(np.random.PCG64(ss))
     W = bootstrap_counts(rng, M, resamples)
-    var = _weighted_moments(W, Y, W @ Y / M)[1]  # each resample's output variance, shared by every parameter
+    # centred once, so the resamples' sums of squares below hold no large cancelling means; the fits
+    # have an intercept, so their residuals do not change (but for the 1e-10 ridge's square)
+    Yc = Y - Y.mean(axis=0)
+    sums = W @ Yc, W @ Yc**2, _constant_in(W, Y)
     out = np.full((3, P, Y.shape[1]), np.nan)
     a = (1 - confidence) / 2
     for j in range(P):
         D = design_matrix(X[:, [j]])
         out[0, j] = _adjusted_r2(Y, D)
-        reps = _weighted_adjusted_r2(Y, D, W, var)
+        reps = _weighted_adjusted_r2(Yc, D, W, sums)
         out[1, j], out[2, j] = np.quantile(reps, a, axis=0), np.quantile(reps, 1 - a, axis=0)
     return out[0], out[1], out[2]
 
 
-def _weighted_moments(W: np.ndarray, Y: np.ndarray, fit) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and variance (R, K') of ``Y`` (M, K') minus a fit, under member weights ``W`` (R, M).
+def _weighted_adjusted_r2(Yc: np.ndarray, D: np.ndarray, W: np.ndarray, sums) -> np.ndarray:
+    """:func:`_adjusted_r2` on every resample given as member weights ``W`` (R, M): (R, K').
 
-    ``fit`` is either the fitted level per resample (R, K') or a function of a member slice giving the
-    fitted values laid out (R, K', m); the deviations are formed first so no large moments cancel.
+    ``sums`` are ``W @ Yc``, ``W @ Yc**2`` and :func:`_constant_in` (R, K'). The residual sum of squares
+    comes from the normal equations (for their solution b, ``b' G b = b' r − ridge·b'b``), so no member
+    is visited again.
     """
-    R, M = W.shape
-    s1, s2 = np.zeros((R, Y.shape[1])), np.zeros((R, Y.shape[1]))
-    for sl in member_slices(M, R * Y.shape[1]):
-        dev = Y[sl].T - (fit(sl) if callable(fit) else fit[:, :, None])  # (R, K', m)
-        wdev = W[:, None, sl] * dev
-        s1 += wdev.sum(axis=2)
-        s2 += (wdev * dev).sum(axis=2)
+    gram, rhs = weighted_normal_equations(W, D, Yc)
+    coef, ridge = ridge_solve(gram, rhs)  # (R, K, K'), (R,)
+    s1, s2, constant = sums
     n = W.sum(axis=1)[:, None]
-    return s1 / n, s2 / n - (s1 / n) ** 2
-
-
-def _weighted_adjusted_r2(Y: np.ndarray, D: np.ndarray, W: np.ndarray, var: np.ndarray) -> np.ndarray:
-    """:func:`_adjusted_r2` on every resample given as member weights ``W`` (R, M): (R, K')."""
-    coef = weighted_fit(W, D, Y)  # (R, K, K')
-    resid_var = _weighted_moments(W, Y, lambda sl: weighted_fitted(coef, D[sl]))[1]
+    rss = s2 - (coef * rhs).sum(axis=1) - ridge[:, None] * (coef * coef).sum(axis=1)
+    resid_mean = (s1 - np.einsum("rk,rkj->rj", W @ D, coef)) / n
+    var = s2 / n - (s1 / n) ** 2
     M, K = D.shape
     with np.errstate(invalid="ignore", divide="ignore"):
-        adj = 1 - resid_var / var * (M - 1) / max(M - K, 1)
-    return np.where(var > 0, adj, np.nan)
+        adj = 1 - (rss / n - resid_mean**2) / var * (M - 1) / max(M - K, 1)
+    return np.where(constant, np.nan, adj)
+
+
+def _constant_in(W: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Whether each output (column of ``Y``, (M, K')) is constant on each resample (row of ``W``): (R, K').
+
+    Tested on the drawn values themselves: a variance from sums would leave rounding dust, not zero.
+    """
+    R, M = W.shape
+    lo, hi = np.full((R, Y.shape[1]), np.inf), np.full((R, Y.shape[1]), -np.inf)
+    for sl in member_slices(M, R * Y.shape[1]):
+        drawn = W[:, sl, None] > 0
+        lo = np.minimum(lo, np.where(drawn, Y[sl], np.inf).min(axis=1))
+        hi = np.maximum(hi, np.where(drawn, Y[sl], -np.inf).max(axis=1))
+    return lo == hi
 
 
 def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:
