@@ -1,5 +1,9 @@
-"""Estimators: SALib's Sobol and Morris analyses with the failure rule, the N/2 convergence check,
-the generic study of any model of unit rows, and given-data first-order indices."""
+"""Estimators: Sobol indices (SALib's estimators, every parameter and bootstrap resample at once) and
+SALib's Morris analysis with the failure rule, the N/2 convergence check, the generic study of any
+model of unit rows, and given-data first-order indices (random balance designs, likewise at once).
+
+SALib stays the reference: the tests compare these estimates with ``sobol.analyze`` and
+``rbd_fast.analyze`` on the same data and draws."""
 
 from __future__ import annotations
 
@@ -56,7 +60,8 @@ def no_indices(design: SobolDesign, status: str, failed: int, used: int, message
 
 def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.95, resamples: int = 100,
                   failure_limit: float = DEFAULT_FAILURE_LIMIT, seed: int = 0) -> Indices:
-    """First-, total- and second-order Sobol indices with bootstrap CIs (Saltelli et al. 2010; SALib).
+    """First-, total- and second-order Sobol indices with bootstrap CIs (Saltelli et al. 2010; see
+    :func:`saltelli_estimates`).
 
     Parameters
     ----------
@@ -66,8 +71,6 @@ def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.9
     failure_limit : float
         Largest share of failed points for which indices are still presented.
     """
-    from SALib.analyze import sobol as sobol_analyze
-
     y = np.asarray(y, float)
     if y.shape != (design.runs,):
         raise ValueError(f"expected {design.runs} outputs for this design, got shape {y.shape}")
@@ -85,17 +88,103 @@ def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.9
     yk = y.reshape(design.N, design.step)[good_block].ravel()
     if np.ptp(yk) <= 1e-12 * max(1.0, float(np.abs(yk).max())):
         return no_indices(design, "constant", n_bad, used, "the output does not vary over the design")
-    with warnings.catch_warnings():
-        # SALib warns when a bootstrap resample of an indicator happens to be constant; harmless here
-        warnings.simplefilter("ignore", RuntimeWarning)
-        warnings.simplefilter("ignore", UserWarning)
-        S = sobol_analyze.analyze(design.problem(), yk, calc_second_order=design.second_order,
-                                  num_resamples=resamples, conf_level=confidence, seed=salib_seed(seed, 2))
-    s2 = np.asarray(S["S2"], float) if design.second_order else None
-    s2c = np.asarray(S["S2_conf"], float) if design.second_order else None
+    S = saltelli_estimates(yk, design.D, design.second_order, np.random.default_rng(salib_seed(seed, 2)),
+                           resamples=resamples, confidence=confidence)
+    s2 = S["S2"] if design.second_order else None
+    s2c = S["S2_conf"] if design.second_order else None
     msg = f"{n_bad} failed points; {design.N - used} base samples dropped" if n_bad else ""
-    return Indices("ok", np.asarray(S["S1"], float), np.asarray(S["S1_conf"], float),
-                   np.asarray(S["ST"], float), np.asarray(S["ST_conf"], float), s2, s2c, n_bad, used, msg)
+    return Indices("ok", S["S1"], S["S1_conf"], S["ST"], S["ST_conf"], s2, s2c, n_bad, used, msg)
+
+
+def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random.Generator, *,
+                       resamples: int = 100, confidence: float = 0.95) -> dict[str, np.ndarray]:
+    """Sobol indices of one output of a Saltelli design, every parameter and resample at once.
+
+    First order by Saltelli et al. 2010 (Table 2, b), total order by Jansen's estimator (ibid., f),
+    second order by Saltelli 2002, each over the output variance of A and B; half-widths are
+    ``z * sd`` over bootstrap resamples of the base samples. These are SALib's ``sobol.analyze``
+    estimates (same draws from ``rng``, same values to rounding), without its loop over parameters.
+
+    Parameters
+    ----------
+    y : ndarray (N * step,)
+        Finite outputs in the design's row order (block i: A_i, AB_i^(1..D), [BA_i^(1..D)], B_i).
+    rng : numpy.random.Generator
+        Stream of the resamples: one draw of (N, resamples) base-sample indices.
+
+    Returns
+    -------
+    dict of ndarray: ``S1``, ``S1_conf``, ``ST``, ``ST_conf`` (D,); with second order also ``S2``,
+    ``S2_conf`` (D, D), upper triangle filled, NaN elsewhere.
+    """
+    from scipy.stats import norm
+
+    step = 2 * D + 2 if second_order else D + 2
+    y = np.asarray(y, float)
+    y = (y - y.mean()) / y.std()
+    blocks = y.reshape(-1, step)
+    N = blocks.shape[0]
+    A, B = blocks[:, 0], blocks[:, -1]
+    AB, BA = blocks[:, 1:D + 1], blocks[:, D + 1:2 * D + 1]
+    draws = rng.integers(N, size=(N, resamples))
+    z = norm.ppf(0.5 + confidence / 2)
+    # two layouts with SALib's summation order: the point estimate sums each parameter's samples as one
+    # contiguous row (AB.T, (D, N)); the resamples sum down the base samples of (N, R, D) stacks
+    point = _Layout(A, B, AB.T.copy(), BA.T.copy(), -1, 0, _output_variance(A, B))
+    Ar, Br = A[draws], B[draws]
+    reps = _Layout(Ar[..., None], Br[..., None], AB[draws], BA[draws] if second_order else None, 0, -1,
+                   _output_variance(Ar, Br)[:, None])
+    S1, ST = point.first_total()
+    S1r, STr = reps.first_total()
+    moves = np.ptp(np.r_[Ar, Br]) != 0.0
+    out = {"S1": S1, "ST": ST, "S1_conf": z * S1r.std(axis=0, ddof=1) if moves else np.zeros(D),
+           "ST_conf": z * STr.std(axis=0, ddof=1) if moves else np.zeros(D)}
+    if second_order:
+        out["S2"], out["S2_conf"] = np.full((D, D), np.nan), np.full((D, D), np.nan)
+        for j in range(D - 1):
+            k = np.arange(j + 1, D)
+            out["S2"][j, k] = point.second(j, k) - S1[j] - S1[k]
+            out["S2_conf"][j, k] = z * (reps.second(j, k) - S1r[:, j, None] - S1r[:, k]).std(axis=0, ddof=1)
+    return out
+
+
+EPS = np.finfo(float).eps
+
+
+def _output_variance(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """Variance of the A and B outputs (N,) or (N, R): () or (R,); 0 where they do not move at all."""
+    y = np.r_[A, B]
+    if np.ptp(y) <= EPS:
+        return np.zeros(y.shape[1:])
+    return np.var(y, axis=0)
+
+
+@dataclass(frozen=True)
+class _Layout:
+    """Outputs of the A, B, AB and BA blocks, with the axes that hold samples and parameters."""
+
+    A: np.ndarray
+    B: np.ndarray
+    AB: np.ndarray
+    BA: np.ndarray | None
+    samples: int
+    params: int
+    var: np.ndarray  # broadcasts against a per-parameter result
+
+    def _share(self, v: np.ndarray) -> np.ndarray:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.var > EPS, v / self.var, 0.0)
+
+    def first_total(self) -> tuple[np.ndarray, np.ndarray]:
+        """First order (Saltelli et al. 2010) and total order (Jansen), per parameter."""
+        first = np.mean(self.B * (self.AB - self.A), axis=self.samples)
+        total = 0.5 * np.mean((self.A - self.AB) ** 2, axis=self.samples)
+        return self._share(first), self._share(total)
+
+    def second(self, j: int, k: np.ndarray) -> np.ndarray:
+        """Closed second-order share V_jk / V of parameter j with each of ``k`` (Saltelli 2002)."""
+        ba_j, ab_k = np.take(self.BA, [j], axis=self.params), np.take(self.AB, k, axis=self.params)
+        return self._share(np.mean(ba_j * ab_k - self.A * self.B, axis=self.samples))
 
 
 def morris_effects(design: MorrisDesign, y: np.ndarray, *, seed: int = 0) -> dict[str, np.ndarray]:
