@@ -138,6 +138,16 @@ def test_sobol_estimates_equal_salibs_sobol_analyze_on_the_same_draws(D, N, seco
         np.testing.assert_allclose(got[key], np.asarray(ref[key], float), rtol=0, atol=1e-13, err_msg=key)
 
 
+def test_sobol_estimates_are_the_same_in_any_stack_of_parameters(monkeypatch):
+    design = sobol_design(["a", "b", "c", "d"], 32, True, seed=9)
+    y = design.unit[:, 0] * design.unit[:, 1] + design.unit[:, 2]
+    whole = estimators.saltelli_estimates(y, 4, True, np.random.default_rng(3), resamples=20)
+    monkeypatch.setattr(estimators, "SALTELLI_CHUNK", 1)  # one parameter per resample stack
+    parts = estimators.saltelli_estimates(y, 4, True, np.random.default_rng(3), resamples=20)
+    for key, v in whole.items():
+        np.testing.assert_allclose(parts[key], v, rtol=0, atol=1e-14, err_msg=key)
+
+
 # ---- given-data first-order indices (random balance designs) ----
 
 def _rbd_data(n: int, D: int, seed: int):

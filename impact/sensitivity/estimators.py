@@ -128,14 +128,17 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     AB, BA = blocks[:, 1:D + 1], blocks[:, D + 1:2 * D + 1]
     draws = rng.integers(N, size=(N, resamples))
     z = norm.ppf(0.5 + confidence / 2)
-    # two layouts with SALib's summation order: the point estimate sums each parameter's samples as one
-    # contiguous row (AB.T, (D, N)); the resamples sum down the base samples of (N, R, D) stacks
-    point = _Layout(A, B, AB.T.copy(), BA.T.copy(), -1, 0, _output_variance(A, B))
+    # SALib's summation order: the point estimate sums each parameter's samples as one contiguous row
+    # (AB.T, (D, N)); the resamples sum down the base samples of (N, R, columns) stacks
+    ABt, BAt = AB.T.copy(), BA.T.copy()
+    var = _output_variance(A, B)
+    S1, ST = _first_total(A, B, ABt, var, -1)
     Ar, Br = A[draws], B[draws]
-    reps = _Layout(Ar[..., None], Br[..., None], AB[draws], BA[draws] if second_order else None, 0, -1,
-                   _output_variance(Ar, Br)[:, None])
-    S1, ST = point.first_total()
-    S1r, STr = reps.first_total()
+    A3, B3, var_r = Ar[..., None], Br[..., None], _output_variance(Ar, Br)[:, None]
+    S1r, STr = np.empty((resamples, D)), np.empty((resamples, D))
+    per = max(1, SALTELLI_CHUNK // (N * resamples))  # parameters per stack, so memory stays bounded
+    for c in _column_chunks(np.arange(D), per):
+        S1r[:, c], STr[:, c] = _first_total(A3, B3, AB[:, c][draws], var_r, 0)
     moves = np.ptp(np.r_[Ar, Br]) != 0.0
     out = {"S1": S1, "ST": ST, "S1_conf": z * S1r.std(axis=0, ddof=1) if moves else np.zeros(D),
            "ST_conf": z * STr.std(axis=0, ddof=1) if moves else np.zeros(D)}
@@ -143,12 +146,20 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
         out["S2"], out["S2_conf"] = np.full((D, D), np.nan), np.full((D, D), np.nan)
         for j in range(D - 1):
             k = np.arange(j + 1, D)
-            out["S2"][j, k] = point.second(j, k) - S1[j] - S1[k]
-            out["S2_conf"][j, k] = z * (reps.second(j, k) - S1r[:, j, None] - S1r[:, k]).std(axis=0, ddof=1)
+            out["S2"][j, k] = _closed_second(A, B, BAt[j], ABt[k], var, -1) - S1[j] - S1[k]
+            BAj = BA[:, [j]][draws]
+            for c in _column_chunks(k, per):
+                reps = _closed_second(A3, B3, BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
+                out["S2_conf"][j, c] = z * reps.std(axis=0, ddof=1)
     return out
 
 
 EPS = np.finfo(float).eps
+SALTELLI_CHUNK = 1 << 21  # resampled values per stack (16 MB of floats), whatever N and D
+
+
+def _column_chunks(cols: np.ndarray, per: int) -> list[np.ndarray]:
+    return [cols[i:i + per] for i in range(0, len(cols), per)]
 
 
 def _output_variance(A: np.ndarray, B: np.ndarray) -> np.ndarray:
@@ -159,32 +170,21 @@ def _output_variance(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     return np.var(y, axis=0)
 
 
-@dataclass(frozen=True)
-class _Layout:
-    """Outputs of the A, B, AB and BA blocks, with the axes that hold samples and parameters."""
+def _share(v: np.ndarray, var: np.ndarray) -> np.ndarray:
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(var > EPS, v / var, 0.0)
 
-    A: np.ndarray
-    B: np.ndarray
-    AB: np.ndarray
-    BA: np.ndarray | None
-    samples: int
-    params: int
-    var: np.ndarray  # broadcasts against a per-parameter result
 
-    def _share(self, v: np.ndarray) -> np.ndarray:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.var > EPS, v / self.var, 0.0)
+def _first_total(A, B, AB, var, axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """First order (Saltelli et al. 2010) and total order (Jansen) shares, summing along ``axis``."""
+    first = np.mean(B * (AB - A), axis=axis)
+    total = 0.5 * np.mean((A - AB) ** 2, axis=axis)
+    return _share(first, var), _share(total, var)
 
-    def first_total(self) -> tuple[np.ndarray, np.ndarray]:
-        """First order (Saltelli et al. 2010) and total order (Jansen), per parameter."""
-        first = np.mean(self.B * (self.AB - self.A), axis=self.samples)
-        total = 0.5 * np.mean((self.A - self.AB) ** 2, axis=self.samples)
-        return self._share(first), self._share(total)
 
-    def second(self, j: int, k: np.ndarray) -> np.ndarray:
-        """Closed second-order share V_jk / V of parameter j with each of ``k`` (Saltelli 2002)."""
-        ba_j, ab_k = np.take(self.BA, [j], axis=self.params), np.take(self.AB, k, axis=self.params)
-        return self._share(np.mean(ba_j * ab_k - self.A * self.B, axis=self.samples))
+def _closed_second(A, B, BAj, ABk, var, axis: int) -> np.ndarray:
+    """Closed second-order share V_jk / V (Saltelli 2002) of parameter j with each column of ``ABk``."""
+    return _share(np.mean(BAj * ABk - A * B, axis=axis), var)
 
 
 def morris_effects(design: MorrisDesign, y: np.ndarray, *, seed: int = 0) -> dict[str, np.ndarray]:
