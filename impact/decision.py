@@ -25,7 +25,7 @@ import pandas as pd
 from .case import Case
 from .effects import BASELINE, objective_outcome
 from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, ridge_solve,
-                  weighted_normal_equations)
+                  weighted_normal_equations, weighted_sums)
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
                   "conditional_on")
@@ -54,7 +54,7 @@ def main_effects(Y: np.ndarray, X: np.ndarray, *, resamples: int = RESAMPLES, co
     # centred once, so the resamples' sums of squares below hold no large cancelling means; the fits
     # have an intercept, so their residuals do not change (but for the 1e-10 ridge's square)
     Yc = Y - Y.mean(axis=0)
-    sums = W @ Yc, W @ Yc**2, _constant_in(W, Y)
+    sums = weighted_sums(W, Yc), weighted_sums(W, Yc**2), _constant_in(W, Y)
     out = np.full((3, P, Y.shape[1]), np.nan)
     a = (1 - confidence) / 2
     for j in range(P):
@@ -77,7 +77,7 @@ def _weighted_adjusted_r2(Yc: np.ndarray, D: np.ndarray, W: np.ndarray, sums) ->
     s1, s2, constant = sums
     n = W.sum(axis=1)[:, None]
     rss = s2 - (coef * rhs).sum(axis=1) - ridge[:, None] * (coef * coef).sum(axis=1)
-    resid_mean = (s1 - np.einsum("rk,rkj->rj", W @ D, coef)) / n
+    resid_mean = (s1 - np.einsum("rk,rkj->rj", weighted_sums(W, D), coef)) / n
     var = s2 / n - (s1 / n) ** 2
     M, K = D.shape
     with np.errstate(invalid="ignore", divide="ignore"):

@@ -100,6 +100,15 @@ def member_slices(M: int, width: int) -> list[slice]:
     return [slice(lo, lo + step) for lo in range(0, M, step)]
 
 
+def weighted_sums(W: np.ndarray, A: np.ndarray) -> np.ndarray:
+    """``W @ A``: sums (R, c) of the columns of ``A`` (m, c) under each row of member weights ``W`` (R, m),
+    in blocks of BLAS_COLUMNS columns."""
+    out = np.empty((W.shape[0], A.shape[1]))
+    for c in range(0, A.shape[1], BLAS_COLUMNS):
+        out[:, c:c + BLAS_COLUMNS] = W @ A[:, c:c + BLAS_COLUMNS]
+    return out
+
+
 def weighted_normal_equations(W: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``X' diag(w) X`` (R, K, K) and ``X' diag(w) Y`` (R, K, D) for each row ``w`` of member weights ``W`` (R, M).
 
@@ -113,9 +122,7 @@ def weighted_normal_equations(W: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tu
     moments = np.zeros((R, width))
     for sl in member_slices(M, width):
         # every member's products x x' and x y' in a row, so the weighted sums are matrix products
-        prods = (X[sl, :, None] * XY[sl, None, :]).reshape(-1, width)
-        for c in range(0, width, BLAS_COLUMNS):
-            moments[:, c:c + BLAS_COLUMNS] += W[:, sl] @ prods[:, c:c + BLAS_COLUMNS]
+        moments += weighted_sums(W[:, sl], (X[sl, :, None] * XY[sl, None, :]).reshape(-1, width))
     moments = moments.reshape(R, K, XY.shape[1])
     return moments[:, :, :K], moments[:, :, K:]
 
@@ -141,7 +148,7 @@ def weighted_fitted(coef: np.ndarray, X: np.ndarray) -> np.ndarray:
 def weighted_evpi(nb: np.ndarray, W: np.ndarray) -> np.ndarray:
     """:func:`evpi` of ``nb`` (M, D) under each row of member weights ``W`` (R, M): (R,)."""
     n = W.sum(axis=1)
-    return (W @ nb.max(axis=1)) / n - (W @ nb).max(axis=1) / n
+    return (W @ nb.max(axis=1)) / n - weighted_sums(W, nb).max(axis=1) / n
 
 
 def weighted_evppi(nb: np.ndarray, X: np.ndarray, W: np.ndarray) -> np.ndarray:
@@ -152,7 +159,7 @@ def weighted_evppi(nb: np.ndarray, X: np.ndarray, W: np.ndarray) -> np.ndarray:
     best_each = np.zeros(R)
     for sl in member_slices(M, R * nb.shape[1]):
         best_each += (W[:, sl] * weighted_fitted(coef, X[sl]).max(axis=1)).sum(axis=1)
-    best_mean = np.einsum("rk,rkd->rd", W @ X, coef).max(axis=1)
+    best_mean = np.einsum("rk,rkd->rd", weighted_sums(W, X), coef).max(axis=1)
     v = (best_each - best_mean) / n
     return np.minimum(np.maximum(v, 0.0), weighted_evpi(nb, W))
 
