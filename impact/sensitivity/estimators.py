@@ -100,10 +100,11 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
                        resamples: int = 100, confidence: float = 0.95) -> dict[str, np.ndarray]:
     """Sobol indices of one output of a Saltelli design, every parameter and resample at once.
 
-    First order by Saltelli et al. 2010 (Table 2, b), total order by Jansen's estimator (ibid., f),
-    second order by Saltelli 2002, each over the output variance of A and B; half-widths are
-    ``z * sd`` over bootstrap resamples of the base samples. These are SALib's ``sobol.analyze``
-    estimates (same draws from ``rng``, same values to rounding), without its loop over parameters.
+    First order by Saltelli et al. 2010 (their Table 2, (b); table letters from memory), total order
+    by Jansen's estimator (ibid., (f)), second order by Saltelli 2002, each over the output variance
+    of A and B; half-widths are ``z * sd`` over bootstrap resamples of the base samples. These are
+    SALib's ``sobol.analyze`` estimates (same draws from ``rng``; point values identical, half-widths
+    to rounding), without its loop over parameters.
 
     Parameters
     ----------
@@ -290,7 +291,7 @@ def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, h
     The random-balance estimator on given data (Tarantola, Gatelli & Mara 2006; Plischke 2010, EASI):
     the outputs sorted by one input and folded (odd ranks reversed after the even ones) form a
     periodic signal whose first ``harmonics`` Fourier components carry that input's main effect;
-    the ratio to the whole spectrum is bias-corrected (Tissot & Prieur 2012, eq. 16). The
+    the ratio to the whole spectrum is bias-corrected (Tissot & Prieur 2012). The
     half-width is ``z * sd`` over bootstrap replicates, each of ``n // 2`` points drawn with
     replacement, as SALib's ``rbd_fast.analyze`` does (same draws from ``rng``, same values to
     rounding); here every replicate of every input is one row of a single real FFT.
