@@ -17,6 +17,13 @@ Prints, from one run:
 
 Target (issue 14): sensitivity and decision stages of the demo (N = 128, as ``impact assess``
 runs it) together in 2-3 CPU seconds; see bench_decision.py for the other half.
+
+Measured 2026-12-03 on a shared 2-core AMD EPYC (numpy 2.4.6, scipy 1.17.1, SALib 1.6.0), one run:
+analysis alone 0.363 CPU s vectorised against 6.772 s with SALib's loops (18.7x); the given-data
+estimator on 30 outputs 0.077 against 5.168 s (67x); the Sobol estimator on 82 outputs 0.137
+against 0.578 s (4.2x); largest difference in indices.csv 3.6e-15, the same NaNs and ranking.
+With bench_decision.py's 0.094 + 0.187 s, the two stages' analysis takes about 0.64 CPU s
+(target 2-3 s: met), against about 8.4 s before.
 """
 
 from __future__ import annotations
