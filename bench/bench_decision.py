@@ -17,9 +17,9 @@ Measured 2026-12-03 on a shared 2-core AMD EPYC (numpy 2.4.6, scipy 1.17.1), one
 members: main effects 0.094 CPU s against 0.579 s for the former loops (6.2x); value of information
 0.187 s against 1.017 s (5.4x); largest differences 1.6e-14 (drivers.csv) and 1.8e-15
 (information.csv), exact zeros kept. Extra cost 15.7 % of a core stage of 1.78 CPU s (prior
-draws, no calibration): the 10 % target is not met because the core stage itself got faster;
-the bootstrap's normal equations (100 resamples x 1,000 members x K² products per parameter) are
-most of what is left.
+draws, no calibration): the 10 % target is not met because the core stage itself got faster.
+In a profile of what is left, the resamples' normal equations (100 x 1,000 members x K² products
+per parameter) take about 40 %, then the spline bases and the fitted values per member (EVPPI).
 """
 
 from __future__ import annotations
