@@ -24,7 +24,8 @@ import pandas as pd
 
 from .case import Case
 from .effects import BASELINE, objective_outcome
-from .voi import design_matrix, fitted_means, information_values
+from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, ridge_solve,
+                  weighted_normal_equations, weighted_sums)
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
                   "conditional_on")
@@ -49,15 +50,53 @@ def main_effects(Y: np.ndarray, X: np.ndarray, *, resamples: int = RESAMPLES, co
     M, P = X.shape
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_DRIVERS,))
     rng = np.random.Generator(np.random.PCG64(ss))
-    boot = [rng.integers(0, M, M) for _ in range(resamples)]
+    W = bootstrap_counts(rng, M, resamples)
+    # centred once, so the resamples' sums of squares below hold no large cancelling means; the fits
+    # have an intercept, so their residuals do not change (but for the 1e-10 ridge's square)
+    Yc = Y - Y.mean(axis=0)
+    sums = weighted_sums(W, Yc), weighted_sums(W, Yc**2), _constant_in(W, Y)
     out = np.full((3, P, Y.shape[1]), np.nan)
     a = (1 - confidence) / 2
     for j in range(P):
         D = design_matrix(X[:, [j]])
         out[0, j] = _adjusted_r2(Y, D)
-        reps = np.stack([_adjusted_r2(Y[i], D[i]) for i in boot])
+        reps = _weighted_adjusted_r2(Yc, D, W, sums)
         out[1, j], out[2, j] = np.quantile(reps, a, axis=0), np.quantile(reps, 1 - a, axis=0)
     return out[0], out[1], out[2]
+
+
+def _weighted_adjusted_r2(Yc: np.ndarray, D: np.ndarray, W: np.ndarray, sums) -> np.ndarray:
+    """:func:`_adjusted_r2` on every resample given as member weights ``W`` (R, M): (R, K').
+
+    ``sums`` are ``W @ Yc``, ``W @ Yc**2`` and :func:`_constant_in` (R, K'). The residual sum of squares
+    comes from the normal equations (for their solution b, ``b' G b = b' r − ridge·b'b``), so no member
+    is visited again.
+    """
+    gram, rhs = weighted_normal_equations(W, D, Yc)
+    coef, ridge = ridge_solve(gram, rhs)  # (R, K, K'), (R,)
+    s1, s2, constant = sums
+    n = W.sum(axis=1)[:, None]
+    rss = s2 - (coef * rhs).sum(axis=1) - ridge[:, None] * (coef * coef).sum(axis=1)
+    resid_mean = (s1 - np.einsum("rk,rkj->rj", weighted_sums(W, D), coef)) / n
+    var = s2 / n - (s1 / n) ** 2
+    M, K = D.shape
+    with np.errstate(invalid="ignore", divide="ignore"):
+        adj = 1 - (rss / n - resid_mean**2) / var * (M - 1) / max(M - K, 1)
+    return np.where(constant, np.nan, adj)
+
+
+def _constant_in(W: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Whether each output (column of ``Y``, (M, K')) is constant on each resample (row of ``W``): (R, K').
+
+    Tested on the drawn values themselves: a variance from sums would leave rounding dust, not zero.
+    """
+    R, M = W.shape
+    lo, hi = np.full((R, Y.shape[1]), np.inf), np.full((R, Y.shape[1]), -np.inf)
+    for sl in member_slices(M, R * Y.shape[1]):
+        drawn = W[:, sl, None] > 0
+        lo = np.minimum(lo, np.where(drawn, Y[sl], np.inf).min(axis=1))
+        hi = np.maximum(hi, np.where(drawn, Y[sl], -np.inf).max(axis=1))
+    return lo == hi
 
 
 def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:

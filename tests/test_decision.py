@@ -10,7 +10,8 @@ import pytest
 from casefiles import write_case
 from impact.assess import assess_members, draw_ensemble
 from impact.case import load_case
-from impact.decision import drivers_table, information_table, main_effects
+from impact.decision import PURPOSE_DRIVERS, drivers_table, information_table, main_effects
+from impact.voi import design_matrix, fitted_means
 
 
 def test_main_effects_of_a_linear_model_in_correlated_normal_inputs():
@@ -36,6 +37,33 @@ def test_an_unrelated_parameter_has_no_main_effect():
     Y = np.sin(6 * X[:, :1]) + 0.1 * rng.normal(size=(1000, 1))
     v, lo, hi = main_effects(Y, X, resamples=100, seed=2)
     assert v[0, 0] > 0.9 and v[1, 0] < 0.01 and lo[1, 0] < 0.005
+
+
+def _adjusted_r2_on_rows(Y, D):
+    # the index on one resample's own rows, written out plainly (the definition the fast path must equal)
+    M, K = D.shape
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r2 = 1 - (Y - fitted_means(Y, D)).var(axis=0) / Y.var(axis=0)
+    return 1 - (1 - r2) * (M - 1) / (M - K)
+
+
+def test_main_effect_intervals_equal_the_resample_by_resample_estimates():
+    rng = np.random.default_rng(7)
+    M, R = 400, 30
+    X = rng.random((M, 2))
+    rare = np.zeros(M)
+    rare[0] = 1.0  # missed by about 37 % of resamples: there it does not vary and its index is NaN
+    Y = np.column_stack([np.sin(4 * X[:, 0]) + 0.5 * rng.normal(size=M), (rng.random(M) < X[:, 1]).astype(float), rare])
+    v, lo, hi = main_effects(Y, X, resamples=R, seed=3)
+    boot = np.random.Generator(np.random.PCG64(np.random.SeedSequence(3, spawn_key=(PURPOSE_DRIVERS,))))
+    draws = [boot.integers(0, M, M) for _ in range(R)]
+    for j in range(2):
+        D = design_matrix(X[:, [j]])
+        reps = np.stack([_adjusted_r2_on_rows(Y[i], D[i]) for i in draws])
+        np.testing.assert_allclose(v[j], _adjusted_r2_on_rows(Y, D), rtol=0, atol=1e-12)
+        np.testing.assert_allclose(lo[j], np.quantile(reps, 0.025, axis=0), rtol=0, atol=1e-12)
+        np.testing.assert_allclose(hi[j], np.quantile(reps, 0.975, axis=0), rtol=0, atol=1e-12)
+    assert np.isnan(lo[:, 2]).all() and np.isfinite(lo[:, :2]).all()
 
 
 def _goat_case(members: int = 600) -> dict:

@@ -15,6 +15,7 @@ from casefiles import write_case
 from impact.case import load_case
 from impact.cli import main
 from impact.priors import Uniform
+import impact.sensitivity.estimators as estimators
 from impact.sensitivity import (
     CONV_COLUMNS, INDEX_COLUMNS, RANK_COLUMNS, S2_COLUMNS, Settings, morris_design, morris_effects,
     sensitivity_stage, sobol_design, sobol_indices, sobol_study, through_priors,
@@ -114,6 +115,89 @@ def test_morris_screens_out_the_unimportant_g_factors():
     d = morris_design([f"x{i + 1}" for i in range(8)], 40, seed=3)
     mu = morris_effects(d, g_function(d.unit))["mu_star"]
     assert mu[4:].max() < 0.1 * mu[:2].min()
+
+
+# ---- the vectorised Saltelli estimator against SALib ----
+
+@pytest.mark.parametrize("D, N, second", [(5, 64, False), (3, 32, True), (1, 16, False)])
+def test_sobol_estimates_equal_salibs_sobol_analyze_on_the_same_draws(D, N, second):
+    # SALib 1.6 sobol.analyze is the reference implementation of the Saltelli et al. 2010 first-order,
+    # Jansen total-order and Saltelli 2002 second-order estimators; the same generator draws the same
+    # resamples, so the point values must agree exactly (same summation order) and the half-widths to rounding
+    from SALib.analyze import sobol as salib_sobol
+
+    design = sobol_design([f"x{j}" for j in range(D)], N, second, seed=D)
+    X = design.unit
+    y = 30.0 + np.sin(6 * X[:, 0]) + X[:, -1] ** 2 * (1 + X[:, 0])
+    ref = salib_sobol.analyze(design.problem(), y, calc_second_order=second, num_resamples=50, seed=41)
+    got = estimators.saltelli_estimates(y, D, second, np.random.default_rng(41), resamples=50)
+    assert set(got) == ({"S1", "S1_conf", "ST", "ST_conf"} | ({"S2", "S2_conf"} if second else set()))
+    for key in ("S1", "ST") + (("S2",) if second else ()):
+        np.testing.assert_array_equal(got[key], np.asarray(ref[key], float), err_msg=key)
+    for key in ("S1_conf", "ST_conf") + (("S2_conf",) if second else ()):
+        np.testing.assert_allclose(got[key], np.asarray(ref[key], float), rtol=0, atol=1e-13, err_msg=key)
+
+
+def test_sobol_estimates_are_the_same_in_any_stack_of_parameters(monkeypatch):
+    design = sobol_design(["a", "b", "c", "d"], 32, True, seed=9)
+    y = design.unit[:, 0] * design.unit[:, 1] + design.unit[:, 2]
+    whole = estimators.saltelli_estimates(y, 4, True, np.random.default_rng(3), resamples=20)
+    monkeypatch.setattr(estimators, "SALTELLI_CHUNK", 1)  # one parameter per resample stack
+    parts = estimators.saltelli_estimates(y, 4, True, np.random.default_rng(3), resamples=20)
+    for key, v in whole.items():
+        np.testing.assert_allclose(parts[key], v, rtol=0, atol=1e-14, err_msg=key)
+
+
+# ---- given-data first-order indices (random balance designs) ----
+
+def _rbd_data(n: int, D: int, seed: int):
+    rng = np.random.default_rng(seed)
+    X = rng.random((n, D))
+    # an offset far from zero: the spectrum must not depend on the output's level
+    y = 50.0 + np.sin(2 * np.pi * X[:, 0]) + X[:, 1] ** 2 + 0.3 * rng.normal(size=n)
+    return X, y
+
+
+@pytest.mark.parametrize("n, D", [(256, 4), (255, 3), (64, 2)])
+def test_given_data_estimator_equals_salibs_rbd_fast_on_the_same_draws(n, D):
+    # SALib 1.6 rbd_fast.analyze is the reference implementation of Tarantola, Gatelli & Mara 2006 with
+    # Plischke's 2010 ordering and Tissot & Prieur's 2012 bias correction; given the same generator it
+    # draws the same resamples, so point values and half-widths must agree to rounding
+    from SALib.analyze import rbd_fast
+
+    X, y = _rbd_data(n, D, seed=n)
+    names = [f"x{j}" for j in range(D)]
+    ref = rbd_fast.analyze({"num_vars": D, "names": names, "bounds": [[0, 1]] * D}, X, y, seed=77)
+    s1, conf = estimators.rbd_first_order(X, y, np.random.default_rng(77))
+    np.testing.assert_allclose(s1, ref["S1"], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(conf, ref["S1_conf"], rtol=0, atol=1e-12)
+
+
+def test_given_data_estimator_is_the_same_in_any_batch_of_parameters(monkeypatch):
+    X, y = _rbd_data(300, 5, seed=2)
+    whole = estimators.rbd_first_order(X, y, np.random.default_rng(5))
+    monkeypatch.setattr(estimators, "RBD_CHUNK", 1)  # one parameter per FFT batch
+    np.testing.assert_array_equal(estimators.rbd_first_order(X, y, np.random.default_rng(5)), whole)
+
+
+def test_given_data_first_order_of_the_ishigami_function():
+    # S1 from the closed-form partial variances (Ishigami & Homma 1990; Saltelli et al. 2008, Table 4.2) on
+    # 2,000 uniform points. Margin 1.25 x the 95 % bootstrap half-width: over 1,000 data seeds the
+    # estimate left it for some input in 1 seed (false-failure rate about 0.1 %).
+    rng = np.random.default_rng(11)
+    X = rng.uniform(-math.pi, math.pi, (2000, 3))
+    S1, _, _ = ishigami_analytic()
+    s1, conf = estimators.rbd_first_order(X, ishigami(X), np.random.default_rng(12))
+    assert np.all(np.abs(s1 - S1) <= 1.25 * conf), (s1, conf)
+    assert np.all(conf < 0.06)
+
+
+def test_given_data_first_order_needs_enough_finite_points():
+    X, y = _rbd_data(70, 2, seed=3)
+    y[:10] = np.nan  # 60 finite points left, fewer than 64
+    assert np.isnan(estimators.given_data_first_order(X, y, ["a", "b"], seed=0)[0]).all()
+    with pytest.raises(ValueError, match="names"):
+        estimators.given_data_first_order(X, y, ["a"], seed=0)
 
 
 # ---- design layout and the failure rule ----

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from impact.voi import evpi, evppi, information_values
+import impact.voi as voi
+from impact.voi import design_matrix, evpi, evppi, evppi_from_design, information_values
 
 
 def unit_normal_loss(z: float) -> float:
@@ -73,3 +74,31 @@ def test_evppi_never_exceeds_evpi_even_where_the_regression_overfits():
         res = information_values(good, x, ["a", "b", "c"], resamples=20, seed=seed)
         top = res["all parameters"].value
         assert all(res[k].value <= top + 1e-15 for k in ("a", "b", "c")), (seed, top, [res[k].value for k in "abc"])
+
+
+@pytest.mark.parametrize("batch", [None, 1000])
+def test_resamples_as_member_weights_equal_the_fits_on_gathered_rows(monkeypatch, batch):
+    # the bootstrap computes every resample at once as member counts; each must equal the estimate on the
+    # resample's own rows (an identity of least squares, checked to rounding), also when the members are
+    # summed in slices
+    if batch:
+        monkeypatch.setattr(voi, "BATCH_VALUES", batch)
+    rng = np.random.default_rng(6)
+    M = 300
+    x = rng.random((M, 2))
+    nb = np.column_stack([np.zeros(M), x[:, 0] - 0.5 + 0.3 * rng.normal(size=M), (rng.random(M) < x[:, 1]) * 0.4])
+    design = design_matrix(x)
+    draws = rng.integers(0, M, size=(7, M))
+    W = voi.resample_counts(draws, M)
+    assert (W.sum(axis=1) == M).all()
+    np.testing.assert_allclose(voi.weighted_evpi(nb, W), [evpi(nb[i]) for i in draws], rtol=0, atol=1e-13)
+    np.testing.assert_allclose(voi.weighted_evppi(nb, design, W), [evppi_from_design(nb[i], design[i]) for i in draws],
+                               rtol=0, atol=1e-12)
+
+
+def test_bootstrap_draws_one_resample_after_another():
+    # one draw of (R, M) from the stream gives the numbers R draws of M would, so intervals do not
+    # depend on how the draws are batched
+    a, b = np.random.default_rng(4), np.random.default_rng(4)
+    counts = voi.bootstrap_counts(a, 101, 5)
+    np.testing.assert_array_equal(counts, voi.resample_counts(np.stack([b.integers(0, 101, 101) for _ in range(5)]), 101))

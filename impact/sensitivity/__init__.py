@@ -6,7 +6,8 @@ Layers, from the bottom up:
 
 * :class:`SobolDesign` / :func:`sobol_design` — a Saltelli design on the unit hypercube that
   carries its own layout (N, D, second-order flag); :class:`MorrisDesign` likewise.
-* :func:`sobol_indices` — SALib's estimator on one design and a matrix of outputs, with the
+* :func:`sobol_indices` — SALib's estimators (computed for every parameter and resample at once by
+  :func:`saltelli_estimates`) on one design and a matrix of outputs, with the
   failure rule (blocks holding a failed point are dropped whole, and the output is refused
   when too many points failed).
 * :func:`sobol_study` — the generic entry point: any model ``f(unit rows (n, D)) -> (n, K)``
@@ -20,7 +21,8 @@ Numerics only; no file I/O and no printing.
 from __future__ import annotations
 
 from .designs import MorrisDesign, SobolDesign, morris_design, sobol_design
-from .estimators import Indices, Study, convergence, given_data_first_order, morris_effects, sobol_indices, sobol_study, through_priors
+from .estimators import (Indices, Study, convergence, given_data_first_order, morris_effects, rbd_first_order,
+                         saltelli_estimates, sobol_indices, sobol_study, through_priors)
 from .outputs import METRIC_TEXT, PLAUSIBLE, DesignTask, FoodWebModel, design_chunk, output_labels, point_metrics, point_streams
 from .study import (CONV_COLUMNS, INDEX_COLUMNS, POLICY, RANK_COLUMNS, S2_COLUMNS, Settings, StageResult, check_settings, morris_screen,
                     sensitivity_stage, summary_lines)
@@ -28,5 +30,5 @@ from .study import (CONV_COLUMNS, INDEX_COLUMNS, POLICY, RANK_COLUMNS, S2_COLUMN
 __all__ = ["CONV_COLUMNS", "INDEX_COLUMNS", "METRIC_TEXT", "PLAUSIBLE", "POLICY", "RANK_COLUMNS", "S2_COLUMNS", "DesignTask",
            "FoodWebModel", "Indices", "MorrisDesign", "Settings", "SobolDesign", "StageResult", "Study", "check_settings",
            "convergence", "design_chunk", "given_data_first_order", "morris_design", "morris_effects", "output_labels",
-           "point_metrics", "point_streams", "sensitivity_stage", "sobol_design", "sobol_indices", "sobol_study", "morris_screen",
+           "point_metrics", "point_streams", "rbd_first_order", "saltelli_estimates", "sensitivity_stage", "sobol_design", "sobol_indices", "sobol_study", "morris_screen",
            "summary_lines", "through_priors"]

@@ -1,5 +1,9 @@
-"""Estimators: SALib's Sobol and Morris analyses with the failure rule, the N/2 convergence check,
-the generic study of any model of unit rows, and given-data first-order indices."""
+"""Estimators: Sobol indices (SALib's estimators, every parameter and bootstrap resample at once) and
+SALib's Morris analysis with the failure rule, the N/2 convergence check, the generic study of any
+model of unit rows, and given-data first-order indices (random balance designs, likewise at once).
+
+SALib stays the reference: the tests compare these estimates with ``sobol.analyze`` and
+``rbd_fast.analyze`` on the same data and draws."""
 
 from __future__ import annotations
 
@@ -56,7 +60,8 @@ def no_indices(design: SobolDesign, status: str, failed: int, used: int, message
 
 def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.95, resamples: int = 100,
                   failure_limit: float = DEFAULT_FAILURE_LIMIT, seed: int = 0) -> Indices:
-    """First-, total- and second-order Sobol indices with bootstrap CIs (Saltelli et al. 2010; SALib).
+    """First-, total- and second-order Sobol indices with bootstrap CIs (Saltelli et al. 2010; see
+    :func:`saltelli_estimates`).
 
     Parameters
     ----------
@@ -66,8 +71,6 @@ def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.9
     failure_limit : float
         Largest share of failed points for which indices are still presented.
     """
-    from SALib.analyze import sobol as sobol_analyze
-
     y = np.asarray(y, float)
     if y.shape != (design.runs,):
         raise ValueError(f"expected {design.runs} outputs for this design, got shape {y.shape}")
@@ -85,17 +88,104 @@ def sobol_indices(design: SobolDesign, y: np.ndarray, *, confidence: float = 0.9
     yk = y.reshape(design.N, design.step)[good_block].ravel()
     if np.ptp(yk) <= 1e-12 * max(1.0, float(np.abs(yk).max())):
         return no_indices(design, "constant", n_bad, used, "the output does not vary over the design")
-    with warnings.catch_warnings():
-        # SALib warns when a bootstrap resample of an indicator happens to be constant; harmless here
-        warnings.simplefilter("ignore", RuntimeWarning)
-        warnings.simplefilter("ignore", UserWarning)
-        S = sobol_analyze.analyze(design.problem(), yk, calc_second_order=design.second_order,
-                                  num_resamples=resamples, conf_level=confidence, seed=salib_seed(seed, 2))
-    s2 = np.asarray(S["S2"], float) if design.second_order else None
-    s2c = np.asarray(S["S2_conf"], float) if design.second_order else None
+    S = saltelli_estimates(yk, design.D, design.second_order, np.random.default_rng(salib_seed(seed, 2)),
+                           resamples=resamples, confidence=confidence)
+    s2 = S["S2"] if design.second_order else None
+    s2c = S["S2_conf"] if design.second_order else None
     msg = f"{n_bad} failed points; {design.N - used} base samples dropped" if n_bad else ""
-    return Indices("ok", np.asarray(S["S1"], float), np.asarray(S["S1_conf"], float),
-                   np.asarray(S["ST"], float), np.asarray(S["ST_conf"], float), s2, s2c, n_bad, used, msg)
+    return Indices("ok", S["S1"], S["S1_conf"], S["ST"], S["ST_conf"], s2, s2c, n_bad, used, msg)
+
+
+def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random.Generator, *,
+                       resamples: int = 100, confidence: float = 0.95) -> dict[str, np.ndarray]:
+    """Sobol indices of one output of a Saltelli design, every parameter and resample at once.
+
+    First order by Saltelli et al. 2010 (their Table 2, (b); table letters from memory), total order
+    by Jansen's estimator (ibid., (f)), second order by Saltelli 2002, each over the output variance
+    of A and B; half-widths are ``z * sd`` over bootstrap resamples of the base samples. These are
+    SALib's ``sobol.analyze`` estimates (same draws from ``rng``; point values identical, half-widths
+    to rounding), without its loop over parameters.
+
+    Parameters
+    ----------
+    y : ndarray (N * step,)
+        Finite outputs in the design's row order (block i: A_i, AB_i^(1..D), [BA_i^(1..D)], B_i).
+    rng : numpy.random.Generator
+        Stream of the resamples: one draw of (N, resamples) base-sample indices.
+
+    Returns
+    -------
+    dict of ndarray: ``S1``, ``S1_conf``, ``ST``, ``ST_conf`` (D,); with second order also ``S2``,
+    ``S2_conf`` (D, D), upper triangle filled, NaN elsewhere.
+    """
+    from scipy.stats import norm
+
+    step = 2 * D + 2 if second_order else D + 2
+    y = np.asarray(y, float)
+    y = (y - y.mean()) / y.std()
+    blocks = y.reshape(-1, step)
+    N = blocks.shape[0]
+    A, B = blocks[:, 0], blocks[:, -1]
+    AB, BA = blocks[:, 1:D + 1], blocks[:, D + 1:2 * D + 1]
+    draws = rng.integers(N, size=(N, resamples))
+    z = norm.ppf(0.5 + confidence / 2)
+    # SALib's summation order: the point estimate sums each parameter's samples as one contiguous row
+    # (AB.T, (D, N)); the resamples sum down the base samples of (N, R, columns) stacks
+    ABt, BAt = AB.T.copy(), BA.T.copy()
+    var = _output_variance(A, B)
+    S1, ST = _first_total(A, B, ABt, var, -1)
+    Ar, Br = A[draws], B[draws]
+    A3, B3, var_r = Ar[..., None], Br[..., None], _output_variance(Ar, Br)[:, None]
+    S1r, STr = np.empty((resamples, D)), np.empty((resamples, D))
+    per = max(1, SALTELLI_CHUNK // (N * resamples))  # parameters per stack, so memory stays bounded
+    for c in _column_chunks(np.arange(D), per):
+        S1r[:, c], STr[:, c] = _first_total(A3, B3, AB[:, c][draws], var_r, 0)
+    moves = np.ptp(np.r_[Ar, Br]) != 0.0
+    out = {"S1": S1, "ST": ST, "S1_conf": z * S1r.std(axis=0, ddof=1) if moves else np.zeros(D),
+           "ST_conf": z * STr.std(axis=0, ddof=1) if moves else np.zeros(D)}
+    if second_order:
+        out["S2"], out["S2_conf"] = np.full((D, D), np.nan), np.full((D, D), np.nan)
+        for j in range(D - 1):
+            k = np.arange(j + 1, D)
+            out["S2"][j, k] = _closed_second(A, B, BAt[j], ABt[k], var, -1) - S1[j] - S1[k]
+            BAj = BA[:, [j]][draws]
+            for c in _column_chunks(k, per):
+                reps = _closed_second(A3, B3, BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
+                out["S2_conf"][j, c] = z * reps.std(axis=0, ddof=1)
+    return out
+
+
+EPS = np.finfo(float).eps
+SALTELLI_CHUNK = 1 << 21  # resampled values per stack (16 MB of floats), whatever N and D
+
+
+def _column_chunks(cols: np.ndarray, per: int) -> list[np.ndarray]:
+    return [cols[i:i + per] for i in range(0, len(cols), per)]
+
+
+def _output_variance(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """Variance of the A and B outputs (N,) or (N, R): () or (R,); 0 where they do not move at all."""
+    y = np.r_[A, B]
+    if np.ptp(y) <= EPS:
+        return np.zeros(y.shape[1:])
+    return np.var(y, axis=0)
+
+
+def _share(v: np.ndarray, var: np.ndarray) -> np.ndarray:
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(var > EPS, v / var, 0.0)
+
+
+def _first_total(A, B, AB, var, axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """First order (Saltelli et al. 2010) and total order (Jansen) shares, summing along ``axis``."""
+    first = np.mean(B * (AB - A), axis=axis)
+    total = 0.5 * np.mean((A - AB) ** 2, axis=axis)
+    return _share(first, var), _share(total, var)
+
+
+def _closed_second(A, B, BAj, ABk, var, axis: int) -> np.ndarray:
+    """Closed second-order share V_jk / V (Saltelli 2002) of parameter j with each column of ``ABk``."""
+    return _share(np.mean(BAj * ABk - A * B, axis=axis), var)
 
 
 def morris_effects(design: MorrisDesign, y: np.ndarray, *, seed: int = 0) -> dict[str, np.ndarray]:
@@ -189,23 +279,92 @@ def through_priors(f: Callable[[np.ndarray], np.ndarray], priors: Sequence) -> U
     return model
 
 
-def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """First-order indices from given data by random balance designs (Tarantola et al. 2006; Plischke 2010; SALib).
+RBD_HARMONICS = 10  # harmonics summed as the first-order part of the spectrum (SALib's and Plischke's default M)
+RBD_RESAMPLES = 100
+RBD_CHUNK = 1 << 21  # resampled values per FFT batch: bounds memory (~50 MB) whatever N and D
+
+
+def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, harmonics: int = RBD_HARMONICS,
+                    resamples: int = RBD_RESAMPLES, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+    """First-order indices of every column of ``X`` from given data, with bootstrap half-widths.
+
+    The random-balance estimator on given data (Tarantola, Gatelli & Mara 2006; Plischke 2010, EASI):
+    the outputs sorted by one input and folded (odd ranks reversed after the even ones) form a
+    periodic signal whose first ``harmonics`` Fourier components carry that input's main effect;
+    the ratio to the whole spectrum is bias-corrected (Tissot & Prieur 2012). The
+    half-width is ``z * sd`` over bootstrap replicates, each of ``n // 2`` points drawn with
+    replacement, as SALib's ``rbd_fast.analyze`` does (same draws from ``rng``, same values to
+    rounding); here every replicate of every input is one row of a single real FFT.
+
+    Parameters
+    ----------
+    X : ndarray (n, D)
+        Input values (any scale; only their ranks matter). Ties between distinct points are
+        broken by position.
+    y : ndarray (n,)
+        Finite outputs.
+    rng : numpy.random.Generator
+        Stream of the resamples; ``D * resamples`` draws of ``n // 2`` indices, input by input.
 
     Returns
     -------
     S1, S1_conf : ndarray (D,)
     """
-    from SALib.analyze import rbd_fast
+    from scipy.stats import norm
 
+    X, y = np.asarray(X, float), np.asarray(y, float)
+    n, D = X.shape
+    m = n // 2
+    order = np.argsort(X, axis=0, kind="stable")  # (n, D)
+    rank = np.empty_like(order)
+    np.put_along_axis(rank, order, np.arange(n)[:, None], axis=0)
+    draws = rng.integers(0, n, size=(D, resamples, m))
+    S1 = _spectral_share(y[order.T], harmonics)  # (D,)
+    reps = np.empty((D, resamples))
+    per_input = max(1, RBD_CHUNK // max(resamples * m, 1))
+    for lo in range(0, D, per_input):
+        j = np.arange(lo, min(D, lo + per_input))
+        # a resample sorted by input j is the sorted ranks of its points, read back through `order`
+        sorted_ranks = np.sort(rank[draws[j], j[:, None, None]], axis=-1)
+        reps[j] = _spectral_share(y[order[sorted_ranks, j[:, None, None]]], harmonics)
+    conf = norm.ppf(0.5 + confidence / 2.0) * reps.std(axis=1, ddof=1)
+    return S1, conf
+
+
+def _spectral_share(ys: np.ndarray, harmonics: int) -> np.ndarray:
+    """Bias-corrected share of the first harmonics in the spectrum of outputs ``ys`` (..., n) sorted by one input."""
+    n = ys.shape[-1]
+    folded = np.concatenate([ys[..., ::2], ys[..., 1::2][..., ::-1]], axis=-1)
+    folded = folded - folded.mean(axis=-1, keepdims=True)
+    power = np.abs(np.fft.rfft(folded, axis=-1)) ** 2
+    # one-sided spectrum: every bin but the mean and (n even) the Nyquist bin stands for two
+    w = np.full(power.shape[-1], 2.0)
+    w[0] = 0.0
+    if n % 2 == 0:
+        w[-1] = 1.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # a resample of an indicator can be constant: its share is NaN, and so is the half-width, as in SALib
+        s1 = (power[..., : harmonics + 1] @ w[: harmonics + 1]) / (power @ w)
+    lam = 2.0 * harmonics / n
+    return s1 - lam / (1.0 - lam) * (1.0 - s1)
+
+
+def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """First-order indices from given data by random balance designs (see :func:`rbd_first_order`).
+
+    Rows with a non-finite output are dropped; fewer than 64 left, or a constant output, gives NaN.
+
+    Returns
+    -------
+    S1, S1_conf : ndarray (D,)
+    """
+    if X.shape[1] != len(names):
+        raise ValueError(f"names: {len(names)} names for {X.shape[1]} columns of X")
     ok = np.isfinite(y)
     X, y = X[ok], y[ok]
     D = X.shape[1]
     if y.size < 64 or np.ptp(y) == 0:
         return np.full(D, np.nan), np.full(D, np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        S = rbd_fast.analyze(unit_problem(names), X, y, seed=salib_seed(seed, 4))
-    return np.asarray(S["S1"], float), np.asarray(S["S1_conf"], float)
-
-
+    # the stream SALib drew from when it computed these rows (salib_seed is itself on the SeedSequence path)
+    rng = np.random.default_rng(salib_seed(seed, 4))
+    return rbd_first_order(X, y, rng)
