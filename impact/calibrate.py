@@ -129,7 +129,7 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
         return recorded, y.copy(), ~np.isfinite(y).all(axis=1)
     half = -0.5 * case.spinup
     bounds = np.array(sorted({-case.spinup, half, *times.tolist()}))
-    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, web.n_species)), np.arange(M))
+    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, web.n_species)))
     slot = {float(t): i for i, t in enumerate(times)}
     cut = int(np.searchsorted(bounds, half))
     # Two whole runs in the compiled kernel, the second continuing from the first's end state and

@@ -246,9 +246,12 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
     out_t = output_times(case)
     slot = {float(t): i for i, t in enumerate(out_t)}
     slot_of = np.array([slot.get(float(t), -1) for t in times], np.int64)
-    rows = np.arange(M)
-    coef = np.stack([pack_coefficients(segment_coefficients(web, p, c), rows)
-                     for c in segment_controls(case, option, values, times, noise, M, web.n_species)])
+    controls = segment_controls(case, option, values, times, noise, M, web.n_species)
+    first = pack_coefficients(segment_coefficients(web, p, next(controls)))
+    coef = np.empty((len(times) - 1, *first.shape))
+    coef[0] = first
+    for k, c in enumerate(controls, start=1):
+        pack_coefficients(segment_coefficients(web, p, c), out=coef[k])
     y = y0.copy()
     _apply_events(case, web, option, values, event_u, times[0], y)
     jumps = boundary_jumps(case, web, option, values, event_u, times, M)

@@ -532,3 +532,23 @@ def test_sinusoidal_breeding_logistic_periodic_solution(tmp_path):
     np.testing.assert_allclose(N[starts], 1 / u0, rtol=1e-6)
     last = t >= 29.0 - 1e-9
     assert np.trapezoid(N[last], t[last]) == pytest.approx(K, rel=5e-4)
+
+
+def test_member_streams_are_numpy_generators_random_numbers():
+    # The parameter and event streams take PCG64's bits directly; they must be exactly
+    # Generator(PCG64(SeedSequence(seed, spawn_key=(draw, purpose, ...)))).random(), the documented
+    # random path (numpy's Generator.random: 53 high bits of each 64-bit output, times 2⁻⁵³).
+    import zlib
+
+    from impact.sample import PURPOSE_EVENTS, PURPOSE_PARAMETERS, event_uniforms, member_uniforms
+
+    def stream(seed, *key):
+        return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key)))
+
+    draws = np.array([0, 1, 7, 123_456, 2**40])
+    for seed in (0, 1, 2026):
+        ref = np.array([stream(seed, int(i), PURPOSE_PARAMETERS).random(5) for i in draws])
+        assert np.array_equal(member_uniforms(seed, draws, 5), ref)
+        tag = zlib.crc32("cull".encode("utf-8"))
+        ref = np.array([stream(seed, int(i), PURPOSE_EVENTS, tag).random() for i in draws])
+        assert np.array_equal(event_uniforms(seed, draws, "cull"), ref)

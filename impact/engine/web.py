@@ -42,11 +42,25 @@ def pack_structure(web: FoodWeb) -> np.ndarray:
     return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
-def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray) -> np.ndarray:
-    """Coefficient rows of members ``rows`` in the kernel's column order: (m, P) float64."""
-    parts = [np.take(getattr(co, f), rows, axis=0) for f in SegmentCoefficients.__dataclass_fields__]
-    parts[-1] = parts[-1][:, None]  # decay is one number per member
-    return np.ascontiguousarray(np.concatenate(parts, axis=1), dtype=float)
+def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, out: np.ndarray | None = None
+                      ) -> np.ndarray:
+    """Coefficient rows of members ``rows`` (default all) in the kernel's column order: (m, P) float64.
+
+    ``out`` (m, P), optional, receives them (a caller packing many segments fills one array).
+    """
+    fields = [getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__]
+    fields[-1] = fields[-1][:, None]  # decay is one number per member
+    if rows is not None:
+        fields = [np.take(f, rows, axis=0) for f in fields]
+    if out is None:
+        return np.ascontiguousarray(np.concatenate(fields, axis=1), dtype=float)
+    at = 0
+    for f in fields:
+        out[:, at:at + f.shape[1]] = f
+        at += f.shape[1]
+    if at != out.shape[1]:
+        raise ValueError(f"out has {out.shape[1]} columns for {at} coefficients")
+    return out
 
 
 def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
