@@ -35,7 +35,12 @@ BAND_WIDTH = 6.6
 
 
 def bands_figure(res: Results, option: str, colour: str) -> bytes:
-    """Median and 50 %/90 % bands per species, baseline and option on shared axes."""
+    """Median and 50 %/90 % bands per species, baseline and option on shared axes (PNG)."""
+    return png_bytes(bands_drawing(res, option, colour), tight=False)
+
+
+def bands_drawing(res: Results, option: str, colour: str):
+    """The matplotlib figure of :func:`bands_figure`."""
     m = res.manifest
     species = [s.name for s in m.species]
     units = {s.name: s.unit for s in m.species}
@@ -78,7 +83,7 @@ def bands_figure(res: Results, option: str, colour: str) -> bytes:
     for ax in axes[-1]:
         ax.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     axes[0][0].legend(fontsize=7, loc="best")
-    return png_bytes(fig, tight=False)
+    return fig
 
 
 def regime_figure(shares: pd.DataFrame) -> bytes:
