@@ -361,14 +361,16 @@ def test_figures_are_opaque_png(results):
     assert {Image.open(__import__("io").BytesIO(b)).mode for b, _ in images.values()} == {"RGB"}
 
 
-@pytest.mark.parametrize("scale", [1.0, 1e5])
-def test_band_panels_keep_their_labels_inside_the_figure(results, scale):
-    # the band panels have fixed margins: six-digit tick labels and the unit beside them must still fit
+@pytest.mark.parametrize("top", [None, 9e5])
+def test_band_panels_keep_their_labels_inside_the_figure(results, top):
+    # the band panels have fixed margins: six-digit tick labels (the widest matplotlib writes without an
+    # exponent) and the unit beside them must still fit
     from impact.report.figures import bands_drawing
 
     res = load_results(results)
     cols = ["q05", "q25", "q50", "q75", "q95"]
-    res.bands[cols] = res.bands[cols].astype(float) * scale
+    if top is not None:
+        res.bands[cols] = res.bands[cols].astype(float) * (top / res.bands.q95.astype(float).max())
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
     fig = bands_drawing(res, OPTIONS[1], "#d35400")

@@ -28,7 +28,7 @@ REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "aperiodic": "#f
 
 # margins of the band panels, inches: fixed, because the constrained layout engine measured every
 # tick label of every panel twice and was most of the figure's cost; wide enough for a
-# seven-digit tick label and a unit beside it
+# six-digit tick label and a unit beside it (matplotlib writes 10^6 and more with an exponent)
 BAND_MARGINS = dict(left=0.75, right=0.12, top=0.3, bottom=0.5, between_columns=0.85, between_rows=0.45)
 BAND_PANEL_HEIGHT = 1.9
 BAND_WIDTH = 6.6
