@@ -80,6 +80,10 @@ def bands_drawing(res: Results, option: str, colour: str):
         ax.set_ylim(bottom=0)
     for k in range(len(species), nrow * ncol):
         axes[k // ncol][k % ncol].axis("off")
+        if nrow > 1:  # the panel above an empty slot is the lowest of its column: it carries the time axis
+            above = axes[k // ncol - 1][k % ncol]
+            above.xaxis.set_tick_params(labelbottom=True)
+            above.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     for ax in axes[-1]:
         ax.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     axes[0][0].legend(fontsize=7, loc="best")
