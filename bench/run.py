@@ -21,7 +21,9 @@ Prints, each measured in this same run:
    executor and in-process: wall time, each stage's seconds, peak memory of the in-process run;
 5. member throughput of the core stage at 1k, 10k and 100k members (in-process, so the
    peak memory is the whole run's): the cost should grow linearly, so members per second
-   should stay flat; and the 100,000-member core stage on 2 threads.
+   should stay flat; and the 100,000-member core stage on 2 threads;
+4b. the report stage alone on the demo's saved results of 4. against a one-page document, and its
+   in-process parts (bench_report.py).
 
 Every timing is of a separate ``impact`` process (``os.wait4`` gives its own peak resident
 memory), so import costs are included the way a user meets them.
@@ -152,6 +154,11 @@ def main(argv=None) -> int:
     tf1, mem1 = run_impact(["assess", args.case, "--out", str(work / "full1"), "--quiet", "--workers", "1"])
     print(f"default executor ({os.cpu_count()} threads)    {tf:7.2f} s  stages: {stage_seconds(work / 'full')}")
     print(f"in-process                   {tf1:7.2f} s  stages: {stage_seconds(work / 'full1')}, peak memory {mem1:.0f} MiB")
+
+    section("4b. the report stage alone, on the results of 4 (bench_report.py)")
+    import bench_report
+
+    bench_report.main(["--results", str(work / "full1")])
 
     section("5. core-stage throughput vs ensemble size (prior draws; in-process; cost should grow linearly)")
     sizes = [1000, 10000] if args.quick else [1000, 10000, 100000]

@@ -5,11 +5,10 @@ Reads only the saved tables of ``calibration/`` and the manifest's ``calibration
 
 from __future__ import annotations
 
-import io
-
 import numpy as np
 import pandas as pd
 
+from .chart import mpl_text, new_figure, png_bytes
 from .formatting import fmt_num, fmt_prob
 from .manifest import Manifest
 
@@ -18,48 +17,29 @@ BAND_COLOUR = "#2471a3"
 PRIOR_COLOUR = "#aab7b8"
 
 
-def _text(s) -> str:
-    # case text must not switch matplotlib into mathtext
-    return str(s).replace("$", r"\$")
-
-
-def _png(fig) -> bytes:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=200, bbox_inches="tight", metadata={"Software": None})
-    return buf.getvalue()
-
-
-def _figure(w: float, h: float):
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(w, h))
-    fig.set_layout_engine("constrained")
-    return fig
-
-
 def predictive_figure(pred: pd.DataFrame, species: str, unit: str, time_unit: str) -> bytes:
     """One monitored species: its data against the posterior predictive 50 % and 90 % bands."""
     g = pred[pred.species == species].sort_values("time")
-    fig = _figure(6.0, 2.2)
+    fig = new_figure(6.0, 2.2)
     ax = fig.add_subplot()
     ax.fill_between(g.time, g.q05, g.q95, color=BAND_COLOUR, alpha=0.18, linewidth=0, label="90 % predictive band")
     ax.fill_between(g.time, g.q25, g.q75, color=BAND_COLOUR, alpha=0.38, linewidth=0, label="50 % predictive band")
     ax.plot(g.time, g.q50, color=BAND_COLOUR, linewidth=1.2, label="predictive median")
     ax.plot(g.time, g.observed, "o", color=DATA_COLOUR, markersize=3.5, label="monitoring data")
     kind = str(g.kind.iloc[0]) if len(g) else "count"
-    ax.set_ylabel(_text(f"{kind} ({unit})" if kind == "index" and unit else kind), fontsize=8)
-    ax.set_xlabel(_text(f"{time_unit} (0 = today)"), fontsize=8)
-    ax.set_title(_text(species), fontsize=9)
+    ax.set_ylabel(mpl_text(f"{kind} ({unit})" if kind == "index" and unit else kind), fontsize=8)
+    ax.set_xlabel(mpl_text(f"{time_unit} (0 = today)"), fontsize=8)
+    ax.set_title(mpl_text(species), fontsize=9)
     ax.tick_params(labelsize=7)
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=6.5, loc="best", frameon=False)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def posterior_figure(post: pd.DataFrame) -> bytes:
     """Each parameter's 5–95 % interval, prior and posterior, placed on the prior's own 5–95 % range."""
     n = len(post)
-    fig = _figure(6.0, 0.32 * n + 1.0)
+    fig = new_figure(6.0, 0.32 * n + 1.0)
     ax = fig.add_subplot()
     for k, (_, r) in enumerate(post.iloc[::-1].iterrows()):
         lo, hi = float(r.prior_q05), float(r.prior_q95)
@@ -73,13 +53,13 @@ def posterior_figure(post: pd.DataFrame) -> bytes:
                 solid_capstyle="butt")
         ax.plot([at(r.prior_q50)], [k + 0.15], "|", color=DATA_COLOUR, markersize=8)
         ax.plot([at(r.posterior_q50)], [k - 0.15], "|", color=DATA_COLOUR, markersize=8)
-    ax.set_yticks(range(n), [_text(p) for p in post.parameter.iloc[::-1]], fontsize=7)
+    ax.set_yticks(range(n), [mpl_text(p) for p in post.parameter.iloc[::-1]], fontsize=7)
     ax.set_xlabel("position within the prior's 5–95 % range (grey: prior, blue: posterior; ticks: medians)",
                   fontsize=7)
     ax.tick_params(axis="x", labelsize=7)
     ax.axvline(0, color=PRIOR_COLOUR, linewidth=0.5)
     ax.axvline(1, color=PRIOR_COLOUR, linewidth=0.5)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def calibration_context(manifest: Manifest, tables: dict | None, add) -> dict | None:

@@ -14,6 +14,7 @@ from typing import Sequence
 import networkx as nx
 import numpy as np
 
+from .chart import mpl_text
 from .manifest import InteractionRecord, Manifest
 
 FEEDING = ("predation", "scavenging", "alternative-food")
@@ -100,13 +101,13 @@ def food_web_svg(m: Manifest) -> bytes:
         else:  # a mutualism saved with response "obligate" is drawn as such
             label = f"{it.response} {it.kind}" if it.response == "obligate" else it.kind
         mid = (a + b) / 2 + np.array([0.04, 0.0])
-        ax.text(*mid, _escape(label), fontsize=6, color=colour, ha="center", va="center",
+        ax.text(*mid, mpl_text(label), fontsize=6, color=colour, ha="center", va="center",
                 bbox=dict(boxstyle="round,pad=0.1", fc="white", ec="none", alpha=0.85))
     present = {s.name: s.present for s in m.species}
     for n, (x, y) in pos.items():
         tag = {"target": "\n(target)", "protected": "\n(protected)"}.get(roles.get(n, "other"), "")
         edge = TOUCHED_COLOUR if n in touched else "#1c2833"
-        ax.text(x, y, _escape(n) + tag, ha="center", va="center", fontsize=8,
+        ax.text(x, y, mpl_text(n) + tag, ha="center", va="center", fontsize=8,
                 bbox=dict(boxstyle="round,pad=0.35", fc="#fdfefe" if present.get(n, True) else "#eaeded", ec=edge,
                           lw=2.4 if n in touched else 0.9))
     ys = [p[1] for p in pos.values()]
@@ -115,15 +116,10 @@ def food_web_svg(m: Manifest) -> bytes:
     ax.set_ylabel("trophic level")
     handles = [Line2D([], [], color=KIND_STYLE[k][0], linestyle=KIND_STYLE[k][1], label=k)
                for k in dict.fromkeys(it.kind for it in links) if k in KIND_STYLE]
-    handles += [Line2D([], [], color=TOUCHED_COLOUR, lw=2.4, label=f"acted on by: {_escape(n)} ({', '.join(map(_escape, o))})")
+    handles += [Line2D([], [], color=TOUCHED_COLOUR, lw=2.4, label=f"acted on by: {mpl_text(n)} ({', '.join(map(mpl_text, o))})")
                 for n, o in touched.items()]
     if handles:
         ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.02), fontsize=6.5, frameon=False, ncol=2)
     buf = io.BytesIO()
     fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
     return buf.getvalue()
-
-
-def _escape(s) -> str:
-    # case text must not switch matplotlib into mathtext
-    return str(s).replace("$", r"\$")

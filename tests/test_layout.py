@@ -30,7 +30,8 @@ STAGES = [
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},
     {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
-    {"cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render", "preload"},
+    {"chart", "cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render",
+     "preload"},
     {"api", "pipeline"},
     {"cli"},
 ]

@@ -285,3 +285,95 @@ def test_appendix_says_where_the_numbers_were_computed(results, text):
 
     x = json.loads((results / "manifest.json").read_text())["execution"]
     assert _squash(f"Computed by{x['executor']} ({x['workers']} worker") in text
+
+
+# ---- what the option tables print, and what they leave to the CSV files --------------------------------
+
+def _effects(results) -> pd.DataFrame:
+    return pd.read_csv(results / "effects.csv", keep_default_na=False)
+
+
+@pytest.mark.parametrize("species", SPECIES)
+@pytest.mark.parametrize("horizon", HORIZONS)
+def test_effects_page_one_quotes_are_in_the_tables(results, text, species, horizon):
+    # page 1 quotes the median paired change, the chance of a material change and the change in an event's
+    # chance; the PDF's effects table must print each of them (formatted here by the formatting module alone)
+    from impact.formatting import fmt_bare_points, fmt_points
+
+    e = _effects(results)
+    e = e[(e.option == OPTIONS[1]) & (e.species == species) & np.isclose(e.horizon.astype(float), horizon)]
+    for _, r in e.iterrows():
+        if r.statistic == "median_change":
+            assert _squash(fmt_cell("mean_change", r.value, r.low, r.high)) in text
+        elif r.statistic == "p_material":
+            assert _squash(fmt_cell("quasi_extinction", r.value, r.low, r.high)) in text
+        elif r.statistic == "difference":
+            assert _squash(f"{fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}]") in text
+
+
+def test_statistics_left_to_effects_csv_are_counted(results, text):
+    e = _effects(results)
+    n = int(((e.option == OPTIONS[1]) & e.statistic.isin(["p_worse", "p_material_increase", "p_material_decrease"])).sum())
+    assert n > 0
+    assert _squash("Also in effects.csv for these species under this option, not printed here") in text
+    assert _squash(f"({n} rows)") in text
+
+
+def test_long_table_keeps_whole_species_and_counts_the_rest(results):
+    from impact.report.tables import effects_table_context, risk_table_context
+
+    res = load_results(results)
+    for build, csv in ((effects_table_context, "effects.csv"), (risk_table_context, "risk.csv")):
+        full = build(res, OPTIONS[1], max_rows=10_000)
+        assert full["cut"] is None
+        first = full["rows"][0]["species"]
+        n_first = sum(r["species"] == first for r in full["rows"])
+        short = build(res, OPTIONS[1], max_rows=n_first)
+        assert [r["species"] for r in short["rows"]] == [first] * n_first
+        cut = short["cut"]
+        left = [s for s in SPECIES if s != first]
+        saved = pd.read_csv(results / csv, keep_default_na=False)
+        assert cut["species"] == left and cut["file"] == csv
+        assert cut["rows"] == len(full["rows"]) - n_first
+        assert cut["csv_rows"] == int(((saved.option == OPTIONS[1]) & saved.species.isin(left)).sum()) > 0
+
+
+def test_cut_table_names_the_csv_and_its_rows_in_the_pdf(results, tmp_path, monkeypatch):
+    from impact.report import tables
+
+    monkeypatch.setattr(tables, "MAX_TABLE_ROWS", 1)
+    text = _squash(_text(write_report(results, tmp_path / "cut.pdf")))
+    e = _effects(results)
+    # the protected kestrel comes first in predator_prey's order (declared after the vole, which the option
+    # also acts on: both are "first"; declaration order keeps the vole), so the kestrel's rows are named
+    n = int(((e.option == OPTIONS[1]) & (e.species == SPECIES[1])).sum())
+    assert _squash(f"1 more species ({SPECIES[1]})") in text
+    assert _squash(f"{n} rows of effects.csv in the results directory (option “{OPTIONS[1]}”)") in text
+
+
+def test_figures_are_opaque_png(results):
+    from PIL import Image
+
+    _, assets = report_html(load_results(results))
+    images = {k: v for k, v in assets.files.items() if v[1].startswith("image/") and k != "foodweb.svg"}
+    assert images and all(mime == "image/png" for _, mime in images.values())
+    # an alpha channel would make the PDF writer store a second, mask image for every figure
+    assert {Image.open(__import__("io").BytesIO(b)).mode for b, _ in images.values()} == {"RGB"}
+
+
+@pytest.mark.parametrize("top", [None, 9e5])
+def test_band_panels_keep_their_labels_inside_the_figure(results, top):
+    # the band panels have fixed margins: six-digit tick labels (the widest matplotlib writes without an
+    # exponent) and the unit beside them must still fit
+    from impact.report.figures import bands_drawing
+
+    res = load_results(results)
+    cols = ["q05", "q25", "q50", "q75", "q95"]
+    if top is not None:
+        res.bands[cols] = res.bands[cols].astype(float) * (top / res.bands.q95.astype(float).max())
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    fig = bands_drawing(res, OPTIONS[1], "#d35400")
+    ink = fig.get_tightbbox(FigureCanvasAgg(fig).get_renderer())  # inches, everything drawn
+    w, h = fig.get_size_inches()
+    assert ink.x0 >= 0 and ink.y0 >= 0 and ink.x1 <= w and ink.y1 <= h, (ink, w, h)

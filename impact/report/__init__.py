@@ -2,7 +2,7 @@
 
 The report reads ``manifest.json`` and the CSV tables written by ``impact assess`` (and the
 ``sensitivity/`` and ``dynamics/`` sub-directories when those stages ran), draws its figures
-with matplotlib as SVG, fills the jinja2 templates and lets WeasyPrint typeset the result.
+with matplotlib (PNG; the food-web diagram as SVG), fills the jinja2 templates and lets WeasyPrint typeset the result.
 It never re-simulates and prints no number that is not in the saved results: verdicts, warnings
 and the IUCN reading are classifications and wording of saved numbers.
 

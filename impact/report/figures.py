@@ -1,14 +1,14 @@
-"""The report's figures (matplotlib, SVG or PNG bytes) and the assets WeasyPrint may fetch."""
+"""The report's figures (matplotlib, PNG bytes) and the assets WeasyPrint may fetch."""
 
 from __future__ import annotations
 
-import io
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
+from ..chart import mpl_text, new_figure, png_bytes
 from ..results import Results
 
 ASSET_SCHEME = "impact-asset:"
@@ -26,70 +26,68 @@ REGIME_COLOURS = {"equilibrium": "#2e86c1", "cycle": "#28b463", "aperiodic": "#f
                   "chaotic": "#c0392b", "extinction": "#1c2833"}
 
 
-def mpl_text(s) -> str:
-    # case text must not switch matplotlib into mathtext
-    return str(s).replace("$", r"\$")
-
-
-def svg_bytes(fig) -> bytes:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
-    return buf.getvalue()
-
-
-# Data-heavy charts (many lines, bars or points) go in as PNG: as SVG each costs seconds to write
-# and seconds more for the PDF engine to draw, for no gain at print resolution.
-PNG_DPI = 200
-
-
-def png_bytes(fig) -> bytes:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=PNG_DPI, bbox_inches="tight", metadata={"Software": None})
-    return buf.getvalue()
-
-
-def new_figure(w, h):
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(w, h))
-    fig.set_layout_engine("constrained")
-    return fig
+# margins of the band panels, inches: fixed, because the constrained layout engine measured every
+# tick label of every panel twice and was most of the figure's cost; wide enough for a
+# six-digit tick label and a unit beside it (matplotlib writes 10^6 and more with an exponent)
+BAND_MARGINS = dict(left=0.75, right=0.12, top=0.3, bottom=0.5, between_columns=0.85, between_rows=0.45)
+BAND_PANEL_HEIGHT = 1.9
+BAND_WIDTH = 6.6
 
 
 def bands_figure(res: Results, option: str, colour: str) -> bytes:
-    """Median and 50 %/90 % bands per species, baseline and option on shared axes."""
+    """Median and 50 %/90 % bands per species, baseline and option on shared axes (PNG)."""
+    return png_bytes(bands_drawing(res, option, colour), tight=False)
+
+
+def bands_drawing(res: Results, option: str, colour: str):
+    """The matplotlib figure of :func:`bands_figure`."""
     m = res.manifest
     species = [s.name for s in m.species]
     units = {s.name: s.unit for s in m.species}
     ncol = 2 if len(species) > 1 else 1
     nrow = math.ceil(len(species) / ncol)
-    fig = new_figure(6.6, 1.9 * nrow + 0.5)
+    height = BAND_PANEL_HEIGHT * nrow + 0.5
+    fig = new_figure(BAND_WIDTH, height, layout=None)
+    g = BAND_MARGINS
+    panel_w = (BAND_WIDTH - g["left"] - g["right"] - (ncol - 1) * g["between_columns"]) / ncol
+    panel_h = (height - g["top"] - g["bottom"] - (nrow - 1) * g["between_rows"]) / nrow
+    fig.subplots_adjust(left=g["left"] / BAND_WIDTH, right=1 - g["right"] / BAND_WIDTH, top=1 - g["top"] / height,
+                        bottom=g["bottom"] / height, wspace=g["between_columns"] / panel_w,
+                        hspace=g["between_rows"] / panel_h)
     axes = fig.subplots(nrow, ncol, sharex=True, squeeze=False)
     ivs = {iv.name: iv for iv in m.interventions}
     chosen = next((o.interventions for o in m.options if o.name == option), ())
+    runs = {key: b.sort_values("time") for key, b in res.bands[res.bands.option.isin(["baseline", option])]
+            .groupby(["option", "species"], sort=False)}
     for k, sp in enumerate(species):
         ax = axes[k // ncol][k % ncol]
         for name, col in (("baseline", BASELINE_COLOUR), (option, colour)):
-            b = res.bands[(res.bands.option == name) & (res.bands.species == sp)].sort_values("time")
-            if b.empty:
+            b = runs.get((name, sp))
+            if b is None or b.empty:
                 continue
-            ax.fill_between(b.time, b.q05, b.q95, color=col, alpha=0.15, linewidth=0)
-            ax.fill_between(b.time, b.q25, b.q75, color=col, alpha=0.35, linewidth=0)
-            ax.plot(b.time, b.q50, color=col, linewidth=1.4, label=mpl_text(name))
+            t = b.time.to_numpy(float)
+            ax.fill_between(t, b.q05.to_numpy(float), b.q95.to_numpy(float), color=col, alpha=0.15, linewidth=0)
+            ax.fill_between(t, b.q25.to_numpy(float), b.q75.to_numpy(float), color=col, alpha=0.35, linewidth=0)
+            ax.plot(t, b.q50.to_numpy(float), color=col, linewidth=1.4, label=mpl_text(name))
         for ivn in chosen:
             iv = ivs.get(ivn)
             if iv is not None:
                 ax.axvline(iv.start, color="#7f8c8d", linewidth=0.7, linestyle=":")
-        ax.set_title(mpl_text(sp), fontsize=9)
+        # an explicit title height: matplotlib otherwise measures the axis below it to place the title
+        ax.set_title(mpl_text(sp), fontsize=9, y=1.0)
         ax.set_ylabel(mpl_text(units.get(sp, "")), fontsize=7)
         ax.tick_params(labelsize=7)
         ax.set_ylim(bottom=0)
     for k in range(len(species), nrow * ncol):
         axes[k // ncol][k % ncol].axis("off")
+        if nrow > 1:  # the panel above an empty slot is the lowest of its column: it carries the time axis
+            above = axes[k // ncol - 1][k % ncol]
+            above.xaxis.set_tick_params(labelbottom=True)
+            above.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     for ax in axes[-1]:
         ax.set_xlabel(mpl_text(m.time_unit), fontsize=8)
     axes[0][0].legend(fontsize=7, loc="best")
-    return png_bytes(fig)
+    return fig
 
 
 def regime_figure(shares: pd.DataFrame) -> bytes:
@@ -107,7 +105,7 @@ def regime_figure(shares: pd.DataFrame) -> bytes:
     ax.set_xlabel("share of members", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, ncol=5, loc="upper center", bbox_to_anchor=(0.5, -0.25), frameon=False)
-    return svg_bytes(fig)
+    return png_bytes(fig)
 
 
 def distribution_figure(regimes: pd.DataFrame, unit: str) -> bytes:

@@ -151,7 +151,7 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
     ctx = dict(figures=[], shares=[], transitions=[], scan_run=False)
     sh = d.get("regime_shares")
     if sh is not None and not sh.empty:
-        ctx["figures"].append(dict(src=assets.add("regimes.svg", regime_figure(sh), "image/svg+xml"),
+        ctx["figures"].append(dict(src=assets.add("regimes.png", regime_figure(sh), "image/png"),
                                    caption="Share of screened members in each dynamical regime, per option "
                                            "(long-run attractor, noise off; intervals in regime_shares.csv)."))
         for _, r in sh.iterrows():

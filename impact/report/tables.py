@@ -10,7 +10,7 @@ from ..formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_cha
 from ..iucn import CATEGORY_NAMES, criterion_e_in_units, years_per_unit
 from ..metrics import describe_interval
 from ..manifest import Manifest
-from ..results import Results, risk_row
+from ..results import Results
 from ..verdict import with_term
 
 RISK_METRICS = (
@@ -21,6 +21,11 @@ RISK_METRICS = (
     ("recovery_time", "Recovery time (median [5 %, 95 %])"),
     ("not_recovered", "Probability of no recovery within the horizon"),
 )
+# the paired change in mean abundance is the effects table's first row, the same numbers: printed once
+PDF_RISK_METRICS = tuple(x for x in RISK_METRICS if x[0] != "mean_change")
+# The PDF prints at most this many rows of an option's risk or effects table (about two pages);
+# the rows of the species beyond it stay in the CSV, and the table says how many and where.
+MAX_TABLE_ROWS = 40
 
 
 def interval_caption(table: pd.DataFrame, labels: dict) -> str:
@@ -42,64 +47,132 @@ def _n_note(n, kept: int) -> str:
     return "" if pd.isna(n) or int(n) == kept else f"n {int(n)}"
 
 
-def risk_table_context(res: Results, option: str) -> dict:
+class RowIndex:
+    """Rows of a saved table by a key of its columns and by horizon: one pass over the table instead of a
+    scan of the whole table per cell."""
+
+    def __init__(self, table: pd.DataFrame, keys: tuple[str, ...]):
+        self.groups: dict[tuple, list] = {}
+        for r in table.itertuples(index=False):
+            self.groups.setdefault(tuple(getattr(r, k) for k in keys), []).append(r)
+
+    def get(self, key: tuple, horizon: float):
+        """The first row of ``key`` at ``horizon`` (equal as ``np.isclose`` compares), or None."""
+        h = float(horizon)
+        # np.isclose's test, written out: this runs once per printed cell
+        return next((r for r in self.groups.get(key, ()) if abs(float(r.horizon) - h) <= 1e-8 + 1e-5 * abs(h)), None)
+
+
+def species_order(res: Results, option: str) -> list[str]:
+    """Species in the order a reader needs them in an option's tables: targets, protected species, species an
+    objective names and species the option acts on first (declaration order), then the others, the likeliest
+    material change first."""
+    m = res.manifest
+    touched = set(next((o.touches for o in m.options if o.name == option), ()))
+    named = {o.species for o in m.objectives}
+    e = res.effects[(res.effects.option == option) & (res.effects.statistic == "p_material")]
+    chance = e.groupby("species").value.max().to_dict() if not e.empty else {}
+    first = [s.name for s in m.species if s.role in ("target", "protected") or s.name in named or s.name in touched]
+    rest = sorted((s.name for s in m.species if s.name not in first), key=lambda sp: -float(chance.get(sp, 0.0)))
+    return first + rest
+
+
+def cut_rows(rows: list[dict], order: list[str], table: pd.DataFrame, option: str, file: str,
+             max_rows: int) -> tuple[list[dict], dict | None]:
+    """The rows of whole species, chosen in ``order`` while they fit in ``max_rows`` and printed in their own
+    order; the note names the species left out and the rows of ``file`` (the saved table, this option) holding them."""
+    by_species: dict[str, int] = {}
+    for r in rows:
+        by_species[r["species"]] = by_species.get(r["species"], 0) + 1
+    chosen, left, n = set(), [], 0
+    for sp in [x for x in order if x in by_species]:
+        if not left and (n + by_species[sp] <= max_rows or not chosen):
+            chosen.add(sp)
+            n += by_species[sp]
+        else:
+            left.append(sp)
+    if not left:
+        return rows, None
+    csv_rows = int(((table.option == option) & table.species.isin(left)).sum())
+    return [r for r in rows if r["species"] in chosen], dict(species=left, rows=len(rows) - n, csv_rows=csv_rows,
+                                                             file=file)
+
+
+def risk_table_context(res: Results, option: str, max_rows: int | None = None) -> dict:
+    """Per species and horizon the option's risk with the baseline's beneath; at most ``max_rows`` rows
+    (default ``MAX_TABLE_ROWS``), the rest named in ``cut``."""
     m = res.manifest
     hs = list(m.horizons)
     kept = m.counts.kept
+    index = RowIndex(res.risk, ("option", "species", "metric"))
     rows = []
     for s in m.species:
         sp = s.name
-        for metric, label in RISK_METRICS:
+        for metric, label in PDF_RISK_METRICS:
             cells, any_value = [], False
             for h in hs:
-                o = risk_row(res.risk, option, sp, metric, h)
-                b = risk_row(res.risk, "baseline", sp, metric, h)
+                o = index.get((option, sp, metric), h)
+                b = index.get(("baseline", sp, metric), h)
                 if o is None:
                     cells.append(None)
                     continue
                 any_value = True
                 cells.append(dict(option=fmt_cell(metric, o.value, o.low, o.high), n=_n_note(o.n, kept),
                                   baseline=None if b is None else fmt_cell(metric, b.value, b.low, b.high),
-                                  unit="" if metric in PROBABILITY_METRICS or metric == "mean_change" else o.unit))
+                                  unit="" if metric in PROBABILITY_METRICS else o.unit))
             if any_value:
                 rows.append(dict(species=sp, metric=label, cells=cells))
-    shown = res.risk[res.risk.option.isin([option, "baseline"])]
-    return dict(horizons=[fmt_num(h) for h in hs], rows=rows,
+    rows, cut = cut_rows(rows, species_order(res, option), res.risk, option, "risk.csv", max_rows or MAX_TABLE_ROWS)
+    # the caption speaks of the measures printed, nothing else of risk.csv
+    shown = res.risk[res.risk.option.isin([option, "baseline"]) & res.risk.metric.isin([x[0] for x in PDF_RISK_METRICS])]
+    return dict(horizons=[fmt_num(h) for h in hs], rows=rows, cut=cut,
                 caption=interval_caption(shown, dict(RISK_METRICS)))
 
 
 EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)", "p_material": "material change",
                  "p_worse": "worse than doing nothing", "difference": "change in chance"}
+# The statistics of effects.csv the PDF prints: the ones page 1 quotes.  The chance that a member does
+# worse than under doing nothing (p_worse) and the split of a material change into falls and rises stay
+# in effects.csv; the table says how many rows.
+PDF_EFFECTS = (("mean_abundance", ("median_change", "p_material"), "abundance"),
+               ("quasi_extinction", ("difference",), "quasi-extinction"),
+               ("outbreak", ("difference",), "outbreak"))
+CSV_ONLY_LABELS = {"p_worse": "chance of doing worse than doing nothing (p_worse)",
+                   "p_material_increase": "chance of a material rise (p_material_increase)",
+                   "p_material_decrease": "chance of a material fall (p_material_decrease)"}
 
 
-def effects_table_context(res: Results, option: str) -> dict:
-    """Per species and horizon: the paired change, its material and worse chances, and event chance changes."""
+def effects_table_context(res: Results, option: str, max_rows: int | None = None) -> dict:
+    """Per species and horizon: the paired change, its chance of being material, and event chance changes; at
+    most ``max_rows`` rows (default ``MAX_TABLE_ROWS``), the rest named in ``cut``, the statistics of effects.csv
+    not printed counted in ``others``."""
     e = res.effects[res.effects.option == option]
     kept = res.manifest.counts.kept
     hs = list(res.manifest.horizons)
+    index = RowIndex(e, ("species", "metric", "statistic"))
+    direct = e.groupby("species", sort=False).direct.first().to_dict()
     rows = []
     for s in res.manifest.species:
         sp = s.name
-        es = e[e.species == sp]
-        if es.empty:
+        if sp not in direct:
             continue
-        tag = s.role + ", " + ("direct" if bool(str(es.direct.iloc[0]).lower() == "true") else "indirect")
-        for metric, stats, label in (("mean_abundance", ("median_change", "p_material", "p_worse"), "abundance"),
-                                     ("quasi_extinction", ("difference", "p_worse"), "quasi-extinction"),
-                                     ("outbreak", ("difference", "p_worse"), "outbreak")):
+        tag = s.role + ", " + ("direct" if str(direct[sp]).lower() == "true" else "indirect")
+        for metric, stats, label in PDF_EFFECTS:
             for stat in stats:
                 cells = []
                 for h in hs:
-                    r = _row_stat(es, metric, stat, h)
+                    r = index.get((sp, metric, stat), h)
                     cells.append(None if r is None else dict(text=_effect_cell(r), n=_n_note(r.n, kept)))
                 if any(cells):
                     rows.append(dict(species=sp, tag=tag, measure=f"{label}: {EFFECT_LABELS[stat]}", cells=cells))
-    return dict(horizons=[fmt_num(h) for h in hs], rows=rows, caption=interval_caption(e, EFFECT_LABELS))
-
-
-def _row_stat(e: pd.DataFrame, metric: str, stat: str, h: float):
-    r = e[(e.metric == metric) & (e.statistic == stat) & np.isclose(e.horizon, h)]
-    return None if r.empty else r.iloc[0]
+    rows, cut = cut_rows(rows, species_order(res, option), res.effects, option, "effects.csv",
+                         max_rows or MAX_TABLE_ROWS)
+    printed = {x for _, stats, _ in PDF_EFFECTS for x in stats}
+    elsewhere = e[e.species.isin({r["species"] for r in rows}) & ~e.statistic.isin(printed)]
+    others = None if elsewhere.empty else dict(
+        rows=len(elsewhere), statistics=[CSV_ONLY_LABELS.get(x, x) for x in dict.fromkeys(elsewhere.statistic)])
+    return dict(horizons=[fmt_num(h) for h in hs], rows=rows, cut=cut, others=others,
+                caption=interval_caption(e[e.statistic.isin(printed)], EFFECT_LABELS))
 
 
 def _effect_cell(r) -> str:
@@ -133,6 +206,7 @@ def comparisons_context(res: Results) -> list[dict]:
 def iucn_rows(res: Results) -> list[dict]:
     """Indicative criterion E reading per option and species with a generation time."""
     m = res.manifest
+    index = RowIndex(res.risk, ("option", "species", "metric"))
     rows = []
     for opt in ["baseline", *m.option_names]:
         for s in m.species:
@@ -141,7 +215,7 @@ def iucn_rows(res: Results) -> list[dict]:
                 continue
             probs = {}
             for h in m.horizons:
-                r = risk_row(res.risk, opt, s.name, "quasi_extinction", h)
+                r = index.get((opt, s.name, "quasi_extinction"), h)
                 if r is not None:
                     probs[float(h)] = float(r.value)
             if not probs:

@@ -1,0 +1,118 @@
+"""Cost of the report stage alone: the PDF rebuilt from a saved demo results directory.
+
+Usage::
+
+    python bench/bench_report.py                     # assess the demo once (no PDF), then time the report
+    python bench/bench_report.py --results DIR       # time the report of an existing results directory
+
+Prints, each measured in this same run (minimum of ``--repeat`` runs, the machine may be shared):
+
+1. ``impact report DIR`` as a separate process: wall and CPU seconds (user + system of that process,
+   imports included, the way a user meets them);
+2. a process with the same imports typesetting a one-page document instead (the floor: imports and
+   WeasyPrint's fixed cost), and the report's ratio to it;
+3. in-process, the stages of the report: figures and tables (the template context), the HTML,
+   WeasyPrint's layout and its PDF writing; pages and PDF size.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "casework" / "island_mesopredator.toml"
+
+FLOOR = """
+import impact.cli, impact.api  # what `impact report` imports before it reads anything
+from impact.report.render import render_pdf, report_html
+from impact.report.figures import Assets
+import matplotlib.figure
+render_pdf("<html><body><h1>floor</h1><table><tr><td>1</td></tr></table></body></html>", Assets())
+"""
+
+def child(args: list[str]) -> tuple[float, float]:
+    """Run a Python child process: (wall seconds, CPU seconds of that process)."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen([sys.executable, *args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT)
+    _, status, usage = os.wait4(proc.pid, 0)
+    wall = time.perf_counter() - t0
+    err = proc.stderr.read().decode()
+    proc.stderr.close()
+    if os.waitstatus_to_exitcode(status) != 0:
+        raise SystemExit(f"python {' '.join(args)} failed:\n{err}")
+    return wall, usage.ru_utime + usage.ru_stime
+
+
+def best(runs: list[tuple[float, float]]) -> tuple[float, float]:
+    return min(r[0] for r in runs), min(r[1] for r in runs)
+
+
+def stages(results: Path) -> dict:
+    """Wall and CPU seconds of each in-process stage of one report."""
+    from weasyprint import HTML
+
+    from impact.report.figures import ASSET_SCHEME
+    from impact.report.render import load_results, make_fetcher, report_html
+
+    out = {}
+
+    def clock(name, fn):
+        t, c = time.perf_counter(), time.process_time()
+        v = fn()
+        out[name] = (time.perf_counter() - t, time.process_time() - c)
+        return v
+
+    res = clock("load the results", lambda: load_results(results))
+    html, assets = clock("figures, tables and HTML", lambda: report_html(res))
+    # render_pdf's two halves, timed apart
+    doc = clock("WeasyPrint layout", lambda: HTML(string=html, base_url=ASSET_SCHEME,
+                                                  url_fetcher=make_fetcher(assets)).render())
+    pdf = clock("WeasyPrint PDF writing", doc.write_pdf)
+    out["pages"], out["bytes"] = len(doc.pages), len(pdf)
+    return out
+
+
+def subsetter() -> str:
+    """Which library WeasyPrint embeds fonts with: HarfBuzz's (C, when installed) or fontTools (Python)."""
+    try:
+        from weasyprint.text.ffi import harfbuzz_subset
+    except ImportError:
+        return "unknown"
+    return "HarfBuzz (libharfbuzz-subset)" if harfbuzz_subset is not None else "fontTools (libharfbuzz-subset not found)"
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--results", default=None, help="an existing results directory (default: assess the demo once)")
+    ap.add_argument("--case", default=str(DEMO))
+    ap.add_argument("--repeat", type=int, default=3)
+    args = ap.parse_args(argv)
+    if args.results:
+        results = Path(args.results)
+    else:
+        results = Path(tempfile.mkdtemp(prefix="impact-bench-report-")) / "demo"
+        print(f"assessing {args.case} once (no PDF) into {results} ...", flush=True)
+        child(["-m", "impact.cli", "assess", args.case, "--out", str(results), "--no-report", "--quiet"])
+    pdf = results.parent / "bench-report.pdf"
+    rep = best([child(["-m", "impact.cli", "report", str(results), "--out", str(pdf)]) for _ in range(args.repeat)])
+    flo = best([child(["-c", FLOOR]) for _ in range(args.repeat)])
+    print(f"report stage, own process      wall {rep[0]:6.2f} s   CPU {rep[1]:6.2f} s   (minimum of {args.repeat})")
+    print(f"one-page floor, own process    wall {flo[0]:6.2f} s   CPU {flo[1]:6.2f} s   (same imports, one page)")
+    print(f"report / floor                 wall {rep[0] / flo[0]:6.2f}x  CPU {rep[1] / flo[1]:6.2f}x")
+    print(f"report above the floor         wall {rep[0] - flo[0]:6.2f} s   CPU {rep[1] - flo[1]:6.2f} s")
+    runs = [stages(results) for _ in range(args.repeat)]
+    for name in ("load the results", "figures, tables and HTML", "WeasyPrint layout", "WeasyPrint PDF writing"):
+        w, c = best([r[name] for r in runs])
+        print(f"  {name:<28} wall {w:6.2f} s   CPU {c:6.2f} s")
+    print(f"  {runs[0]['pages']} pages, {runs[0]['bytes'] / 1024:.0f} KiB; fonts subset by {subsetter()}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
