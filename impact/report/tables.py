@@ -130,16 +130,16 @@ def risk_table_context(res: Results, option: str, max_rows: int | None = None) -
 
 
 EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)", "p_material": "material change",
+                 "p_material_decrease": "material fall", "p_material_increase": "material rise",
                  "p_worse": "worse than doing nothing", "difference": "change in chance"}
-# The statistics of effects.csv the PDF prints: the ones page 1 quotes.  The chance that a member does
-# worse than under doing nothing (p_worse) and the split of a material change into falls and rises stay
-# in effects.csv; the table says how many rows.
-PDF_EFFECTS = (("mean_abundance", ("median_change", "p_material"), "abundance"),
+# The statistics of effects.csv the PDF prints: the ones page 1 quotes (a material change and its split
+# into falls and rises among them). The chance that a member does worse than under doing nothing
+# (p_worse) stays in effects.csv; the table says how many rows.
+PDF_EFFECTS = (("mean_abundance", ("median_change", "p_material", "p_material_decrease", "p_material_increase"),
+                "abundance"),
                ("quasi_extinction", ("difference",), "quasi-extinction"),
                ("outbreak", ("difference",), "outbreak"))
-CSV_ONLY_LABELS = {"p_worse": "chance of doing worse than doing nothing (p_worse)",
-                   "p_material_increase": "chance of a material rise (p_material_increase)",
-                   "p_material_decrease": "chance of a material fall (p_material_decrease)"}
+CSV_ONLY_LABELS = {"p_worse": "chance of doing worse than doing nothing (p_worse)"}
 
 
 def effects_table_context(res: Results, option: str, max_rows: int | None = None) -> dict:
