@@ -62,7 +62,7 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     return specialised(st)
 
 
-def _tolerance(value, n: int, name: str) -> np.ndarray:
+def tolerance(value, n: int, name: str) -> np.ndarray:
     """A tolerance as an (n,) array; the same rules as :func:`impact.integrate.integrate_segment`."""
     arr = np.asarray(value, dtype=float)
     if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
@@ -112,8 +112,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
-    rtol = _tolerance(rtol, n, "rtol")
-    atol = _tolerance(atol, n, "atol")
+    rtol = tolerance(rtol, n, "rtol")
+    atol = tolerance(atol, n, "atol")
     h = np.full(m, np.nan) if h0 is None else np.broadcast_to(np.asarray(h0, float), (m,)).copy()
     y_out = np.full((m, n), np.nan)
     reason = np.zeros(m, dtype=np.int8)
