@@ -33,7 +33,8 @@ from .tangent import member_jvp as web_jvp
 
 # Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
 # around its own straight-line J·v; everything else in __all__ it imports from here.
-FLOW_FUNCTIONS = ("face_jvp", "flow_initial_step", "flow_trial", "renormalise", "flow_stage", "flow_batch")
+FLOW_FUNCTIONS = ("face_jvp", "flow_initial_step", "flow_trial", "project", "renormalise", "flow_stage",
+                  "flow_batch")
 SECTION_CAPACITY = 64  # section values kept per member and call before a member is run again with room
 
 # The tableau's weights as rows: stage s (1–5) row s of A, STAGES the solution weights B,
@@ -49,8 +50,8 @@ SCRATCH = 7
 
 __all__ = ["STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY", "MIN_STEP_ULPS",
            "kernel_jit", "kernel_inline", "nmin", "nmax", "rms", "all_finite", "next_step", "sumsq", "unit_on_face",
-           "hermite_max", "observe", "rows_finite", "keep_stage", "WEIGHT_ROWS", "Y_NEW", "V_NEW", "TMP", "XC", "VC",
-           "F", "G", "SCRATCH", *FLOW_FUNCTIONS]
+           "hermite_max", "observe", "rows_finite", "keep_stage", "take_step", "WEIGHT_ROWS", "Y_NEW", "V_NEW", "TMP",
+           "XC", "VC", "F", "G", "SCRATCH", *FLOW_FUNCTIONS]
 
 
 @kernel_jit
@@ -231,6 +232,49 @@ def flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol):
 
 
 @kernel_inline
+def project(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
+    """Project an accepted state onto y ≥ 0 and zero the tangent of absent species; a projected
+    state's f and J·v are evaluated again (FSAL). Returns (not finite, evaluations)."""
+    n = y_new.shape[0]
+    negative = False
+    for j in range(n):
+        if y_new[j] < 0:
+            negative = True
+    if negative:
+        for j in range(n):
+            y_new[j] = nmax(y_new[j], 0.0)
+    for j in range(n):
+        if y_new[j] <= 0:
+            v_new[j] = 0.0
+    if not negative:
+        return False, 0
+    face_jvp(st, cf, y_new, v_new, fo, go, work, xc, vc)
+    keep_stage(K, L, STAGES, fo, go, n)
+    return not rows_finite(K, L, STAGES, n), 1
+
+
+@kernel_inline
+def take_step(y, v, K, L, y_new, v_new, bad, blowup):
+    """Make the accepted step the member's state; returns its failure code (non-finite state,
+    tangent or J·v, then blow-up), as :func:`impact.integrate.integrate_segment` checks them."""
+    n = y.shape[0]
+    for j in range(n):
+        y[j] = y_new[j]
+        v[j] = v_new[j]
+        K[0, j] = K[STAGES, j]
+        L[0, j] = L[STAGES, j]
+    if bad or not (all_finite(y) and all_finite(v)):
+        return NONFINITE
+    for j in range(n):
+        if not math.isfinite(L[0, j]):
+            return NONFINITE
+    for j in range(n):
+        if abs(y[j]) > blowup:
+            return BLOWUP
+    return 0
+
+
+@kernel_inline
 def renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
     """Divide the tangent ``v_new`` and its J·v (``L[STAGES]``) by the tangent's norm; returns (norm,
     evaluations). A vector with nothing left to perturb restarts on the present face, no growth
@@ -302,46 +346,16 @@ def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_ste
         last_nonfinite = not math.isfinite(err)
         if rejected:
             continue
-        # projection onto y ≥ 0; the tangent of an absent species is zero
-        negative = False
-        for j in range(n):
-            if y_new[j] < 0:
-                negative = True
-        if negative:
-            for j in range(n):
-                y_new[j] = nmax(y_new[j], 0.0)
-        for j in range(n):
-            if y_new[j] <= 0:
-                v_new[j] = 0.0
-        bad = False
-        if negative:  # the stored derivatives must belong to the projected state
-            face_jvp(st, cf, y_new, v_new, fo, go, work, xc, vc)
-            keep_stage(K, L, STAGES, fo, go, n)
-            nfev += 1
-            bad = not rows_finite(K, L, STAGES, n)
-        norm, extra = renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go)
-        nfev += extra
+        bad, extra = project(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go)
+        norm, more = renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go)
+        nfev += extra + more
         if in_window:
             observe(y, y_new, K, hs, norm, sec, m, lg, low, high, acc, sec_vals, sec_count)
-        for j in range(n):
-            y[j] = y_new[j]
-            v[j] = v_new[j]
-            K[0, j] = K[STAGES, j]
-            L[0, j] = L[STAGES, j]
+        code = take_step(y, v, K, L, y_new, v_new, bad, blowup)
         t = t_new
         nacc += 1
         if not clipped:
             hgood = abs(hs)
-        if bad or not (all_finite(y) and all_finite(v)):
-            code = NONFINITE
-        else:
-            for j in range(n):
-                if not math.isfinite(L[0, j]):
-                    code = NONFINITE
-            if code == 0:
-                for j in range(n):
-                    if abs(y[j]) > blowup:
-                        code = BLOWUP
         if code != 0 or clipped:
             break
         if nacc >= max_steps:
