@@ -3,10 +3,14 @@
 The interpreted kernel (:mod:`impact.engine.kernel`) reads the structure table at every
 evaluation; here the right-hand side is written out as straight-line code for one structure (the
 same operations in the same order, so results are identical to the bit), and the step loop is the
-interpreted kernel's own source, recompiled around it. The module is written to the kernel cache
-(``IMPACT_KERNEL_CACHE``, default ``~/.cache/impact/kernels``) under a name keyed by the structure,
-the kernel's source and the numba version, and numba caches its machine code beside it, so a
-structure pays compilation once per machine.
+interpreted kernel's own source, recompiled around it (:func:`specialised`, files ``web_*.py``).
+The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: its
+J·v (:func:`impact.engine.tangent.member_jvp`) written out (:func:`jvp_lines`), once as
+``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`, files
+``flow_*.py``). Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
+``~/.cache/impact/kernels``) under a name keyed by its source (which holds the structure) and the
+numba version, and numba caches its machine code beside it, so a structure pays compilation once
+per machine.
 """
 
 from __future__ import annotations
@@ -169,7 +173,7 @@ def jvp_lines(st: np.ndarray, y, v, f, g) -> tuple[list[str], list[int]]:
     if O or crowding or (res < 0).any() or flags[:2 * S].any() or (flags[2 * S:3 * S] >= 0).any() or flags[3 * S:].any():
         raise ValueError("structure has terms the compiled J·v does not know (see impact.engine.tangent.supports)")
     o_a = PER_SPECIES_COEFFICIENTS * S
-    o_ah, o_e, o_al = o_a + L, o_a + 2 * L, o_a + 4 * L
+    o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
     o_dec = o_H + U + O
@@ -191,34 +195,9 @@ def jvp_lines(st: np.ndarray, y, v, f, g) -> tuple[list[str], list[int]]:
     else:
         body += [f"b{i} = {c(S + i)} * {y(i)}" for i in range(S)] + [f"db{i} = {c(S + i)} * {v(i)}" for i in range(S)]
 
-    def powered(l):
-        r = int(res[l])
-        return (f"({y(r)} * {y(r)})", f"(2.0 * {y(r)} * {v(r)})") if power[l] == 2 else (y(r), v(r))
-
     eaten_cols = sorted({int(r) for r in res})
     if L:
-        body += [f"loss{r} = 0.0" for r in eaten_cols] + [f"dloss{r} = 0.0" for r in eaten_cols]
-        seen = set()
-        for l in range(L):
-            if type1[l]:
-                continue
-            Rq, dRq = powered(l)
-            j = int(cons[l])
-            if j in seen:
-                body += [f"den{j} = {c(o_ah + l)} * {Rq} + den{j}", f"dden{j} = {c(o_ah + l)} * {dRq} + dden{j}"]
-            else:
-                body += [f"den{j} = {c(o_ah + l)} * {Rq} + 1.0", f"dden{j} = {c(o_ah + l)} * {dRq}"]
-                seen.add(j)
-        for l in range(L):
-            Rq, dRq = powered(l)
-            j, r = int(cons[l]), int(res[l])
-            if type1[l]:
-                body += [f"I = {c(o_a + l)} * {Rq}", f"dI = {c(o_a + l)} * {dRq}"]
-            else:
-                body += [f"I = {c(o_a + l)} * {Rq} / den{j}", f"dI = ({c(o_a + l)} * {dRq} - I * dden{j}) / den{j}"]
-            body += [f"eaten = I * {y(j)}", f"deaten = dI * {y(j)} + I * {v(j)}",
-                     f"b{j} += {c(o_e + l)} * eaten", f"db{j} += {c(o_e + l)} * deaten",
-                     f"loss{r} += eaten", f"dloss{r} += deaten"]
+        body += _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v)
     body += [f"o{i} = {c(i)} * b{i}" for i in range(S)] + [f"w{i} = {c(i)} * db{i}" for i in range(S)]
     if logistic:
         body += [f"cr{i} = {y(i)}" for i in range(S)] + [f"dcr{i} = {v(i)}" for i in range(S)]
@@ -240,8 +219,43 @@ def jvp_lines(st: np.ndarray, y, v, f, g) -> tuple[list[str], list[int]]:
     return body, sorted(used)
 
 
-def _function(head: str, body: list[str], decorator: str = "kernel_jit") -> str:
-    return f"@{decorator}\ndef {head}:\n" + "".join(f"    {b}\n" for b in body)
+def _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v) -> list[str]:
+    """The feeding terms of :func:`jvp_lines`: handling denominators and their derivatives along v,
+    then per link the intake, e·I·N added to the consumer's births and I·N to the resource's loss."""
+    L = len(cons)
+    o_ah, o_e = o_a + L, o_a + 2 * L
+
+    def powered(l):
+        r = int(res[l])
+        return (f"({y(r)} * {y(r)})", f"(2.0 * {y(r)} * {v(r)})") if power[l] == 2 else (y(r), v(r))
+
+    body = [f"loss{r} = 0.0" for r in eaten_cols] + [f"dloss{r} = 0.0" for r in eaten_cols]
+    seen = set()
+    for l in range(L):
+        if type1[l]:
+            continue
+        Rq, dRq = powered(l)
+        j = int(cons[l])
+        if j in seen:
+            body += [f"den{j} = {c(o_ah + l)} * {Rq} + den{j}", f"dden{j} = {c(o_ah + l)} * {dRq} + dden{j}"]
+        else:
+            body += [f"den{j} = {c(o_ah + l)} * {Rq} + 1.0", f"dden{j} = {c(o_ah + l)} * {dRq}"]
+            seen.add(j)
+    for l in range(L):
+        Rq, dRq = powered(l)
+        j, r = int(cons[l]), int(res[l])
+        if type1[l]:
+            body += [f"I = {c(o_a + l)} * {Rq}", f"dI = {c(o_a + l)} * {dRq}"]
+        else:
+            body += [f"I = {c(o_a + l)} * {Rq} / den{j}", f"dI = ({c(o_a + l)} * {dRq} - I * dden{j}) / den{j}"]
+        body += [f"eaten = I * {y(j)}", f"deaten = dI * {y(j)} + I * {v(j)}",
+                 f"b{j} += {c(o_e + l)} * eaten", f"db{j} += {c(o_e + l)} * deaten",
+                 f"loss{r} += eaten", f"dloss{r} += deaten"]
+    return body
+
+
+def _function(head: str, body: list[str]) -> str:
+    return f"@kernel_jit\ndef {head}:\n" + "".join(f"    {b}\n" for b in body)
 
 
 def jvp_source(st: np.ndarray) -> str:
