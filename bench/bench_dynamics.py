@@ -1,6 +1,13 @@
-"""Cost of the Lyapunov stage relative to a plain ensemble run, and scan throughput.
+"""Cost of the Lyapunov stage relative to a plain ensemble run, the demo's regime screen, and scan throughput.
 
-Run: /tmp/venv/bin/python bench/bench_dynamics.py   (ratios are measured in the same run)
+Run: .venv/bin/python bench/bench_dynamics.py [--screen-only]   (ratios are measured in the same run)
+
+The demo's regime screen (``impact assess casework/island_mesopredator.toml``: every option's
+screened members diagnosed from their state at the horizon) is timed in CPU seconds
+(``time.process_time``, minimum of 3 repeats, the machine may be shared) with the tangent flow in
+the compiled kernel and in the numpy step loop, after one untimed run that loads (or compiles)
+the kernels. The first-run compilation of the demo web's tangent flow is timed in a fresh
+process with an empty kernel cache.
 """
 
 from __future__ import annotations
@@ -20,6 +27,77 @@ from impact.model import Controls, build_web, web_params  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 from test_dynamics import hp_case  # noqa: E402
+
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "casework" / "island_mesopredator.toml"
+
+
+def demo_screen_tasks():
+    """The demo's regime-screen tasks (one per option) as ``impact assess`` builds them."""
+    from impact.api import load_case as read_case
+    from impact.assess import assess_members
+    from impact.calibrate import build_ensemble
+    from impact.dynamics import declared_settings
+    from impact.screen import SCREEN, screen_tasks
+
+    case = read_case(DEMO)
+    ens, _ = build_ensemble(case, case.members, case.seed)
+    runs = assess_members(case, ens, case.seed)
+    settings, _ = declared_settings(case, SCREEN)
+    return screen_tasks(case, ens.params, ens.values, runs, settings, seed=case.seed)[1]
+
+
+def cpu_seconds(fn, repeats: int = 3) -> float:
+    """Minimum CPU time of ``repeats`` calls of ``fn``."""
+    best = np.inf
+    for _ in range(repeats):
+        t = time.process_time()
+        fn()
+        best = min(best, time.process_time() - t)
+    return best
+
+
+def first_compile_seconds() -> float:
+    """CPU seconds of a fresh process that compiles the demo web's tangent flow into an empty cache
+    (a one-member flow: the kernels are compiled for their argument types on first call)."""
+    import os
+    import subprocess
+    import tempfile
+
+    script = ("import time, numpy as np\n"
+              "from impact.api import load_case\n"
+              "from impact.model import build_web, web_params, Controls\n"
+              "from impact.jacobian import WebTangent\n"
+              "from impact.dynamics import lyapunov_flow\n"
+              "from impact.scan import nominal_values\n"
+              f"case = load_case({str(DEMO)!r})\n"
+              "web = build_web(case)\n"
+              "p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)\n"
+              "jvp = WebTangent(web, p, Controls.neutral(1, web.n_species))\n"
+              "t = time.process_time()\n"
+              "lyapunov_flow(None, None, np.abs(p.initial), transient=1.0, window=1.0, sample_dt=0.5, jvp=jvp)\n"
+              "print(time.process_time() - t)\n")
+    with tempfile.TemporaryDirectory() as cache:
+        out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True,
+                             env={**os.environ, "IMPACT_KERNEL_CACHE": cache}, cwd=ROOT)
+    return float(out.stdout.split()[-1])
+
+
+def demo_screen() -> None:
+    """The demo's regime screen, compiled tangent flow against the numpy step loop (same run)."""
+    from impact.screen import diagnose_task
+
+    tasks = demo_screen_tasks()
+    members = sum(t.y0.shape[0] for t in tasks)
+    for engine in ("compiled", "numpy"):
+        diagnose_task(tasks[0], engine)  # load or compile the kernels; import costs
+    times = {e: cpu_seconds(lambda: [diagnose_task(t, e) for t in tasks]) for e in ("compiled", "numpy")}
+    print(f"demo regime screen ({len(tasks)} options x {members // len(tasks)} members), CPU s, min of 3: "
+          f"numpy step loop {times['numpy']:.2f}, compiled tangent flow {times['compiled']:.2f} "
+          f"(ratio {times['numpy'] / times['compiled']:.1f}; target <= 2 s)")
+    print(f"first-run compilation of the demo web's tangent flow (fresh process, empty cache): "
+          f"{first_compile_seconds():.1f} CPU s")
 
 
 def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
@@ -48,12 +126,12 @@ def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
     d = lyapunov_flow(fun, None, p.initial, transient=0.0, window=span, sample_dt=dt, section=2, rtol=1e-7, atol=1e-9,
                       jvp=WebTangent(web, p, Controls.neutral(members, 3)))
     t_lyap = time.perf_counter() - t
-    print(f"Lyapunov stage, J·v by numpy columns: {t_numpy:.2f} s; by the compiled kernel: {t_lyap:.2f} s "
-          f"(ratio {t_numpy / t_lyap:.2f})")
+    print(f"Lyapunov stage, numpy step loop with J·v by numpy columns: {t_numpy:.2f} s; compiled tangent flow "
+          f"(generated for the web): {t_lyap:.2f} s (ratio {t_numpy / t_lyap:.2f})")
     print(f"plain ensemble run: {members} members x {span:g} time units: {t_plain:.2f} s ({plain.nfev} rhs calls)")
     print(f"Lyapunov, Jacobian matrix times v (max step {dt:g}): {t_matrix:.2f} s ({dm.nfev} calls), "
           f"ratio {t_matrix / t_plain:.2f}")
-    print(f"Lyapunov stage, J·v without J (as in diagnose_web): {t_lyap:.2f} s ({d.nfev} calls)")
+    print(f"Lyapunov stage as diagnose_web runs it (compiled tangent flow): {t_lyap:.2f} s ({d.nfev} member evaluations)")
     print(f"ratio Lyapunov / plain: {t_lyap / t_plain:.2f} (target <= 3)")
     from impact.execute import LocalPool
 
@@ -72,4 +150,6 @@ def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
 
 
 if __name__ == "__main__":
-    main()
+    demo_screen()
+    if "--screen-only" not in sys.argv:
+        main()

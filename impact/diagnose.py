@@ -58,8 +58,11 @@ class WindowRun:
 
 
 def run_subwindows(jvp, y0: np.ndarray, plan: WindowPlan, *, first_transient: float, section, members, rtol: float,
-                   atol: float, t0: float = 0.0, nonnegative: bool = True) -> WindowRun:
+                   atol: float, t0: float = 0.0, nonnegative: bool = True, engine: str = "compiled") -> WindowRun:
     """:func:`lyapunov_flow` over ``plan.n_sub`` consecutive sub-windows, each after an alignment run.
+
+    Each sub-window is one call of :func:`lyapunov_flow` (``engine`` as there): with the compiled
+    tangent flow, every member's alignment run and sub-window are one pass of its compiled loop.
 
     The first sub-window follows ``max(first_transient, plan.align)``; every later one follows an
     alignment run of between one and two ``plan.align`` from where the previous one ended, so each
@@ -83,7 +86,7 @@ def run_subwindows(jvp, y0: np.ndarray, plan: WindowPlan, *, first_transient: fl
         lead = max(first_transient, stagger) if j == 0 else stagger
         d = lyapunov_flow(None, None, y, transient=lead, window=plan.sub_window, sample_dt=plan.sample_dt,
                           section=section, rtol=rtol, atol=atol, members=members, t0=t, jvp=jvp,
-                          nonnegative=nonnegative)
+                          nonnegative=nonnegative, engine=engine)
         centre[j] = t + lead + 0.5 * plan.sub_window
         t += lead + plan.sub_window
         lyap[:, j], low[:, j], high[:, j] = d.lyapunov, d.low, d.high
@@ -133,7 +136,7 @@ def evidence(run: WindowRun, start: np.ndarray, level: np.ndarray, floor: np.nda
 
 
 def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: DynamicsSettings,
-                 extinct_level: np.ndarray, members=None, section=None, plans=None):
+                 extinct_level: np.ndarray, members=None, section=None, plans=None, engine: str = "compiled"):
     """Regime, period, λ (with its standard error) and horizon of each member from ``y0`` under fixed controls.
 
     Parameters
@@ -149,6 +152,9 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
         species (see :func:`section_species` to resolve a name).
     plans : list of (WindowPlan, rows), optional
         Default: :func:`choose_plans` (each member's own time scales).
+    engine : {"compiled", "table", "numpy"}
+        How the tangent flow is integrated (see :func:`impact.dynamics.lyapunov_flow`); every
+        engine gives the same numbers.
 
     Returns
     -------
@@ -171,7 +177,7 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
         cc = Controls(*(getattr(c, f)[members] for f in Controls.__dataclass_fields__))
         y = np.where(np.isfinite(start), start, 0.0)
         out, nfev = _diagnose_plans(web, jvp, start, s, extinct_level, members, section,
-                                    choose_plans(web, sub, cc, y, s, returns=SHORT_RETURNS))
+                                    choose_plans(web, sub, cc, y, s, returns=SHORT_RETURNS), engine)
         rest = np.flatnonzero(~np.isin(out["regime"], ("equilibrium", "extinction", "failed")))
         if rest.size:
             sub = WebParams(*(getattr(p, f)[members[rest]] for f in WebParams.__dataclass_fields__))
@@ -184,12 +190,13 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
                                 min_sub=2 * first)
             spent = out["transient"][rest] + out["window"][rest] * (1 + 1.5 * ALIGN_FRACTION)
             long = [(replace(plan, transient=0.0), rows) for plan, rows in long]
-            part, n2 = _diagnose_plans(web, jvp, out["final"][rest], s, extinct_level, members[rest], section[rest], long)
+            part, n2 = _diagnose_plans(web, jvp, out["final"][rest], s, extinct_level, members[rest], section[rest], long,
+                                       engine)
             part["transient"] = spent
             _put(out, part, rest)
             nfev += n2
     else:
-        out, nfev = _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans)
+        out, nfev = _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans, engine)
     out["horizon"] = predictability_horizon(out["lyapunov"], s.delta0, s.tolerance)
     out["nfev"] = nfev
     return out
@@ -204,11 +211,11 @@ def _put(out: dict, part: dict, rows: np.ndarray) -> None:
             out[k][rows] = v
 
 
-def _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans) -> tuple[dict, int]:
+def _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans, engine) -> tuple[dict, int]:
     M = start.shape[0]
     out, nfev = None, 0
     for plan, rows in plans:
-        part = _diagnose_plan(web, jvp, start[rows], s, extinct_level, members[rows], section[rows], plan)
+        part = _diagnose_plan(web, jvp, start[rows], s, extinct_level, members[rows], section[rows], plan, engine)
         nfev += part.pop("nfev")
         if out is None:
             out = {k: (np.empty((M,) + np.shape(v)[1:], dtype=np.asarray(v).dtype) if not isinstance(v, list) else [None] * M)
@@ -218,13 +225,13 @@ def _diagnose_plans(web, jvp, start, s, extinct_level, members, section, plans) 
 
 
 def _diagnose_plan(web: FoodWeb, jvp, start: np.ndarray, s: DynamicsSettings, extinct_level, members, section,
-                   plan: WindowPlan) -> dict:
+                   plan: WindowPlan, engine: str) -> dict:
     """:func:`diagnose_web` for members sharing one plan, with the doubling of unsettled windows."""
     M = start.shape[0]
     S = web.n_species
     level = np.asarray(extinct_level, float)
     floor = np.concatenate([level, np.zeros(web.n_state - S)])
-    kw = dict(rtol=s.rtol, atol=s.atol)
+    kw = dict(rtol=s.rtol, atol=s.atol, engine=engine)
     run = run_subwindows(jvp, start, plan, first_transient=plan.transient, section=section, members=members, **kw)
     ev, gone = evidence(run, start, level, floor, section, plan.sub_window)
     out = _verdict_columns(rg.classify(ev, s.rules), ev, gone, run, np.full(M, plan.window), web)

@@ -23,12 +23,15 @@ import numpy as np
 from . import regimes as rg
 from .case import Case
 from .errors import SettingError
+from .engine.web import tolerance
 from .integrate import StepView, integrate_segment
-from .jacobian import jacobian, tangent
+from .jacobian import WebTangent, jacobian, tangent
+from .stepper import libm_log
 from .model import Controls, FoodWeb, WebParams, WebRHS
 from .regimes import Rules
 
 PURPOSE_DYNAMICS = 8  # spawn-key purpose for choosing the screened members
+FLOW_ENGINES = ("compiled", "table", "numpy")  # see lyapunov_flow
 
 
 @dataclass(frozen=True)
@@ -220,13 +223,13 @@ class _TangentWatch:
         area *= np.repeat(s.hs, area.shape[1]).reshape(area.shape)
         if rows.size == self.lg.size and accept.all():
             # the usual case (every member active and accepted): plain in-place updates
-            self.lg += np.log(norm)
+            self.lg += libm_log(norm)
             np.minimum(self.low, s.y_new, out=self.low)
             np.maximum(self.high, s.y_new, out=self.high)
             self.acc += area
         else:
             w = accept[:, None]
-            self.lg[rows] += np.where(accept, np.log(norm), 0.0)
+            self.lg[rows] += np.where(accept, libm_log(norm), 0.0)
             self.low[rows] = np.where(w, np.minimum(self.low[rows], s.y_new), self.low[rows])
             self.high[rows] = np.where(w, np.maximum(self.high[rows], s.y_new), self.high[rows])
             self.acc[rows] += np.where(w, area, 0.0)
@@ -243,7 +246,7 @@ class _TangentWatch:
 
 def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: float, section=0,
                   rtol=1e-7, atol=1e-9, members=None, nonnegative=True, t0: float = 0.0, jvp=None,
-                  max_steps: int = 1_000_000, blowup: float = 1e12) -> Diagnosis:
+                  max_steps: int = 1_000_000, blowup: float = 1e12, engine: str = "compiled") -> Diagnosis:
     """Largest Lyapunov exponent by tangent integration with renormalisation (Benettin et al. 1980).
 
     State and tangent vector advance together on the steps of
@@ -277,16 +280,29 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         :class:`impact.jacobian.WebTangent`); default: ``fun`` and ``jac`` times ``v``.
     max_steps, blowup : as in :func:`impact.integrate.integrate_segment` (steps per stage:
         transient, then window).
+    engine : {"compiled", "table", "numpy"}
+        With ``jvp`` a :class:`impact.jacobian.WebTangent` of a web the compiled J·v covers and
+        ``nonnegative``: "compiled" runs the whole transient and window of each member in the
+        compiled tangent flow generated for the web's structure (:mod:`impact.engine.flow`),
+        "table" the same loop reading the structure table; both give the numbers of the numpy
+        step loop ("numpy", used for every other model) to the bit.
 
     Returns
     -------
     Diagnosis
-        ``nfev`` counts evaluations of the right-hand side with its tangent.
+        ``nfev`` counts evaluations of the right-hand side with its tangent (calls on a subset of
+        the ensemble in the numpy step loop, member evaluations in the compiled flow).
     """
     y_all = np.array(y0, float)
     M, n = y_all.shape
     members = np.arange(M) if members is None else np.asarray(members)
     section_all = np.broadcast_to(np.asarray(section, int), (M,)).copy()
+    if engine not in FLOW_ENGINES:
+        raise ValueError(f"engine must be one of {FLOW_ENGINES}, got {engine!r}")
+    if (engine != "numpy" and nonnegative and isinstance(jvp, WebTangent) and jvp.structure is not None
+            and transient >= 0 and window > 0):
+        return _compiled_flow(jvp, y_all, members, section_all, engine, transient=transient, window=window,
+                              sample_dt=sample_dt, rtol=rtol, atol=atol, t0=t0, max_steps=max_steps, blowup=blowup)
     if jvp is None:
         def jvp(t, x, v, mem):
             return fun(t, x, mem), tangent(jac(t, x, mem), v)
@@ -325,6 +341,29 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
                      np.where(okc, watch.low, np.nan), np.where(okc, watch.high, np.nan),
                      np.where(okc, watch.acc / (2.0 * window), np.nan), np.where(okc, diag.y, np.nan),
                      ~ok, reason, nfev + diag.nfev + watch.nfev)
+
+
+def _compiled_flow(jvp, y, members, section, engine, *, transient, window, sample_dt, rtol, atol, t0, max_steps,
+                   blowup) -> Diagnosis:
+    """:func:`lyapunov_flow` by the compiled tangent flow, one kernel call for every member."""
+    from .engine.flow import tangent_flow
+
+    n = y.shape[1]
+    st = jvp.structure
+    if engine == "table":
+        from .engine import flow as module
+    else:
+        from .engine.generate import specialised_flow
+
+        module = specialised_flow(st)
+    r = tangent_flow(module, st, jvp.coefficient_rows(members), y, t0=t0, transient=transient, window=window,
+                     hmax=sample_dt, section=section, rtol=tolerance(rtol, n, "rtol"), atol=tolerance(atol, n, "atol"),
+                     max_steps=max_steps, blowup=blowup)
+    ok = r["reason"] == 0
+    okc = ok[:, None]
+    return Diagnosis(np.where(ok, r["lg"] / window, np.nan), r["sections"], np.where(okc, r["low"], np.nan),
+                     np.where(okc, r["high"], np.nan), np.where(okc, r["acc"] / (2.0 * window), np.nan), r["final"],
+                     ~ok, r["reason"], r["nfev"])
 
 
 def _sumsq(x):

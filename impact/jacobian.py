@@ -231,6 +231,15 @@ class WebTangent:
             self._coef = pack_coefficients(co, np.arange(co.scale.shape[0]))
             self._key, self._rows = None, None
 
+    @property
+    def structure(self) -> np.ndarray | None:
+        """The web's structure table for the compiled kernels (None when the numpy reference evaluates)."""
+        return self._st if self.engine == "compiled" else None
+
+    def coefficient_rows(self, idx) -> np.ndarray:
+        """Coefficient rows of members ``idx`` in the compiled kernels' layout: (m, P)."""
+        return np.ascontiguousarray(self._coef[np.asarray(idx)])
+
     def __call__(self, t, y, v, idx):
         """``(f, Jv)`` for members ``idx`` (see :meth:`evaluate`)."""
         if self.engine != "compiled":

@@ -62,10 +62,10 @@ class DiagnoseTask:
     section: int
 
 
-def diagnose_task(task: DiagnoseTask) -> dict:
+def diagnose_task(task: DiagnoseTask, engine: str = "compiled") -> dict:
     """:func:`diagnose_web` on one task (a worker's function); drops what the tables do not need."""
     out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
-                       section=task.section)
+                       section=task.section, engine=engine)
     for key in ("sections", "final"):
         out.pop(key)
     return out
@@ -95,6 +95,27 @@ def horizon_amplitudes(case: Case, name: str, run) -> pd.DataFrame:
     return frame
 
 
+def screen_tasks(case: Case, params: WebParams, values: dict, runs: dict, s: DynamicsSettings,
+                 section: str | None = None, seed: int = 0) -> tuple[np.ndarray, list[DiagnoseTask]]:
+    """The screened members (of the kept ones) and one :class:`DiagnoseTask` per option, baseline first."""
+    from .simulate import controls_at, season_mean_phi
+
+    sec_col = section_species(case, section)[0]
+    S = len(case.species)
+    sel = screened_members(seed, runs["baseline"].members, s.screen_members)
+    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
+    level = np.array([sp.quasi_extinction for sp in case.species], float)
+    H = case.horizon
+    t_last = H - 1e-9 * max(H, 1.0)
+    opts = {None: "baseline", **{o: o.name for o in case.options}}
+    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
+    # seasons are averaged: the diagnostics look for the autonomous web's own regime
+    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, season_mean_phi(case, sel.size), sel.size, S,
+                                                 season_averaged=True),
+                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
+    return sel, tasks
+
+
 def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
                  progress=None, section: str | None = None, executor=None, seed: int = 0):
     """The regime screen of every option (the assessment's dynamics stage).
@@ -110,24 +131,13 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         Settings for dynamics.json.
     """
     from .execute import InProcess, count
-    from .simulate import controls_at, season_mean_phi
 
     s, declared = (settings, {}) if settings is not None else declared_settings(case, SCREEN)
-    sec_col, sec_name = section_species(case, section)
-    S = len(case.species)
-    base = runs["baseline"]
-    M = base.members
-    sel = screened_members(seed, M, s.screen_members)
-    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
-    level = np.array([sp.quasi_extinction for sp in case.species], float)
+    sec_name = section_species(case, section)[1]
+    M = runs["baseline"].members
     H = case.horizon
-    t_last = H - 1e-9 * max(H, 1.0)
+    sel, tasks = screen_tasks(case, params, values, runs, s, section, seed)
     opts = {None: "baseline", **{o: o.name for o in case.options}}
-    vals = {k: np.asarray(v)[sel] for k, v in values.items()}
-    # seasons are averaged: the diagnostics look for the autonomous web's own regime
-    tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, season_mean_phi(case, sel.size), sel.size, S,
-                                                 season_averaged=True),
-                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
     results = {}
     count(progress, "dynamics: diagnosing options", 0, len(tasks), "options")
     for i, out in (executor or InProcess()).map(diagnose_task, tasks):

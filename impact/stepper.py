@@ -28,6 +28,15 @@ def libm_power(x, p: float) -> np.ndarray:
     return power_array(np.ascontiguousarray(x).ravel(), float(p)).reshape(x.shape)
 
 
+def libm_log(x) -> np.ndarray:
+    """``log(x)`` elementwise through the C library's ``log``, as compiled code computes it (numpy's
+    vectorised log may differ in the last bit; see :func:`libm_power`)."""
+    from .engine.flow import log_array
+
+    x = np.asarray(x, dtype=float)
+    return log_array(np.ascontiguousarray(x).ravel()).reshape(x.shape)
+
+
 def rms_rows(x):
     """Per-row RMS of ``x`` (m, n), summed column by column so the order never depends on m."""
     n = x.shape[1]

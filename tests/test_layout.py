@@ -25,8 +25,8 @@ def test_no_module_imports_a_private_name_of_another():
 STAGES = [
     {"errors", "formatting", "likelihood", "priors", "metrics", "iucn", "voi", "dictionary", "__init__"},
     {"case", "units", "casetypes", "casereader", "casetables"},
-    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "stepper", "simulate",
-     "execute"},
+    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow",
+     "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},
     {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},

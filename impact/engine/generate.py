@@ -3,10 +3,14 @@
 The interpreted kernel (:mod:`impact.engine.kernel`) reads the structure table at every
 evaluation; here the right-hand side is written out as straight-line code for one structure (the
 same operations in the same order, so results are identical to the bit), and the step loop is the
-interpreted kernel's own source, recompiled around it. The module is written to the kernel cache
-(``IMPACT_KERNEL_CACHE``, default ``~/.cache/impact/kernels``) under a name keyed by the structure,
-the kernel's source and the numba version, and numba caches its machine code beside it, so a
-structure pays compilation once per machine.
+interpreted kernel's own source, recompiled around it (:func:`specialised`, files ``web_*.py``).
+The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: its
+J·v (:func:`impact.engine.tangent.member_jvp`) written out (:func:`jvp_lines`), once as
+``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`, files
+``flow_*.py``). Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
+``~/.cache/impact/kernels``) under a name keyed by its source (which holds the structure) and the
+numba version, and numba caches its machine code beside it, so a structure pays compilation once
+per machine.
 """
 
 from __future__ import annotations
@@ -17,17 +21,20 @@ import inspect
 import os
 import sys
 import tempfile
+import threading
 from pathlib import Path
 
 import numba
 import numpy as np
 
-from . import kernel
+from . import flow, kernel
+from .tangent import PER_SPECIES_COEFFICIENTS
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
 STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member",
                      "run_members")
-_loaded: dict[tuple[str, bytes], object] = {}  # (cache folder, structure table bytes) -> loaded module
+_loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
+_loading = threading.Lock()
 
 
 def cache_dir() -> Path:
@@ -150,20 +157,204 @@ def _fix_state_size(source: str, n: int) -> str:
     return "\n".join(lines) + "\n"
 
 
+def jvp_lines(st: np.ndarray, y, v, f, g) -> tuple[list[str], list[int]]:
+    """Straight-line statements computing ``f(y)`` and ``J(y) v`` for structure ``st``: the operations
+    of :func:`impact.engine.tangent.member_jvp` in the same order (so the results are identical to
+    the bit), for the webs :func:`impact.engine.tangent.supports` accepts.
+
+    ``y``, ``v``, ``f``, ``g`` map a state column to the name of its input or output; coefficient
+    ``k`` of the member's row is read from ``c{k}``. Returns the statements and the coefficient
+    columns they read.
+    """
+    S, n, carrion, L, Cc, U, logistic, crowding, O = (int(x) for x in st[: kernel.HEADER])
+    H = kernel.HEADER
+    cons, res = st[H:H + L], st[H + L:H + 2 * L]
+    power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
+    comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
+    mut = st[H + 4 * L + 2 * Cc:H + 4 * L + 2 * Cc + 2 * U].reshape(-1, 2)
+    flags = st[H + 4 * L + 2 * Cc + 2 * U + 2 * O:]
+    if O or crowding or (res < 0).any() or flags[:2 * S].any() or (flags[2 * S:3 * S] >= 0).any() or flags[3 * S:].any():
+        raise ValueError("structure has terms the compiled J·v does not know (see impact.engine.tangent.supports)")
+    o_a = PER_SPECIES_COEFFICIENTS * S
+    o_al = o_a + 4 * L
+    o_be = o_al + Cc
+    o_H = o_be + U
+    o_dec = o_H + U + O
+    used = set()
+
+    def c(k):
+        used.add(int(k))
+        return f"c{int(k)}"
+
+    body = []
+    if U:
+        body += [f"q{i} = 1.0" for i in range(S)] + [f"dq{i} = 0.0" for i in range(S)]
+        for u, (b, p) in enumerate(mut):
+            Hu, P = c(o_H + u), y(p)
+            body += [f"q{b} += {c(o_be + u)} * {P} / ({Hu} + {P})",
+                     f"dq{b} += {c(o_be + u)} * {Hu} / (({Hu} + {P}) * ({Hu} + {P})) * {v(p)}"]
+        body += [f"b{i} = {c(S + i)} * {y(i)} * q{i}" for i in range(S)]
+        body += [f"db{i} = {c(S + i)} * ({v(i)} * q{i} + {y(i)} * dq{i})" for i in range(S)]
+    else:
+        body += [f"b{i} = {c(S + i)} * {y(i)}" for i in range(S)] + [f"db{i} = {c(S + i)} * {v(i)}" for i in range(S)]
+
+    eaten_cols = sorted({int(r) for r in res})
+    if L:
+        body += _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v)
+    body += [f"o{i} = {c(i)} * b{i}" for i in range(S)] + [f"w{i} = {c(i)} * db{i}" for i in range(S)]
+    if logistic:
+        body += [f"cr{i} = {y(i)}" for i in range(S)] + [f"dcr{i} = {v(i)}" for i in range(S)]
+        for k, (i, j) in enumerate(comp):
+            body += [f"cr{i} += {c(o_al + k)} * {y(j)}", f"dcr{i} += {c(o_al + k)} * {v(j)}"]
+        body += [f"o{i} -= {c(3 * S + i)} * {y(i)} * cr{i}" for i in range(S)]
+        body += [f"w{i} -= {c(3 * S + i)} * ({v(i)} * cr{i} + {y(i)} * dcr{i})" for i in range(S)]
+    body += [f"o{i} += {c(2 * S + i)} * {y(i)}" for i in range(S)] + [f"w{i} += {c(2 * S + i)} * {v(i)}" for i in range(S)]
+    # a species nobody eats loses 0.0, and x − 0.0 is x to the bit: its subtraction is left out
+    body += [f"o{i} -= loss{i}" for i in eaten_cols if i < S] + [f"w{i} -= dloss{i}" for i in eaten_cols if i < S]
+    if carrion:
+        body += [f"gain = {c(4 * S)} * {y(0)}", f"dgain = {c(4 * S)} * {v(0)}"]
+        body += [f"gain = gain + {c(4 * S + i)} * {y(i)}" for i in range(1, S)]
+        body += [f"dgain = dgain + {c(4 * S + i)} * {v(i)}" for i in range(1, S)]
+        body += [f"o{S} = gain - {c(o_dec)} * {y(S)}", f"w{S} = dgain - {c(o_dec)} * {v(S)}"]
+        if S in eaten_cols:
+            body += [f"o{S} -= loss{S}", f"w{S} -= dloss{S}"]
+    body += [f"{f(i)} = o{i}" for i in range(n)] + [f"{g(i)} = w{i}" for i in range(n)]
+    return body, sorted(used)
+
+
+def _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v) -> list[str]:
+    """The feeding terms of :func:`jvp_lines`: handling denominators and their derivatives along v,
+    then per link the intake, e·I·N added to the consumer's births and I·N to the resource's loss."""
+    L = len(cons)
+    o_ah, o_e = o_a + L, o_a + 2 * L
+
+    def powered(l):
+        r = int(res[l])
+        return (f"({y(r)} * {y(r)})", f"(2.0 * {y(r)} * {v(r)})") if power[l] == 2 else (y(r), v(r))
+
+    body = [f"loss{r} = 0.0" for r in eaten_cols] + [f"dloss{r} = 0.0" for r in eaten_cols]
+    seen = set()
+    for l in range(L):
+        if type1[l]:
+            continue
+        Rq, dRq = powered(l)
+        j = int(cons[l])
+        if j in seen:
+            body += [f"den{j} = {c(o_ah + l)} * {Rq} + den{j}", f"dden{j} = {c(o_ah + l)} * {dRq} + dden{j}"]
+        else:
+            body += [f"den{j} = {c(o_ah + l)} * {Rq} + 1.0", f"dden{j} = {c(o_ah + l)} * {dRq}"]
+            seen.add(j)
+    for l in range(L):
+        Rq, dRq = powered(l)
+        j, r = int(cons[l]), int(res[l])
+        if type1[l]:
+            body += [f"I = {c(o_a + l)} * {Rq}", f"dI = {c(o_a + l)} * {dRq}"]
+        else:
+            body += [f"I = {c(o_a + l)} * {Rq} / den{j}", f"dI = ({c(o_a + l)} * {dRq} - I * dden{j}) / den{j}"]
+        body += [f"eaten = I * {y(j)}", f"deaten = dI * {y(j)} + I * {v(j)}",
+                 f"b{j} += {c(o_e + l)} * eaten", f"db{j} += {c(o_e + l)} * deaten",
+                 f"loss{r} += eaten", f"dloss{r} += deaten"]
+    return body
+
+
+def _function(head: str, body: list[str]) -> str:
+    return f"@kernel_jit\ndef {head}:\n" + "".join(f"    {b}\n" for b in body)
+
+
+def jvp_source(st: np.ndarray) -> str:
+    """Straight-line ``web_jvp(st, cf, y, v, out, jv, work)``, as :func:`impact.engine.tangent.member_jvp`."""
+    n = int(st[1])
+    lines, used = jvp_lines(st, lambda i: f"y{i}", lambda i: f"v{i}", lambda i: f"out[{i}]", lambda i: f"jv[{i}]")
+    body = [f"c{k} = cf[{k}]" for k in used] + [f"y{i} = y[{i}]" for i in range(n)] + [f"v{i} = v[{i}]" for i in range(n)]
+    return _function("web_jvp(st, cf, y, v, out, jv, work)", body + lines)
+
+
+def trial_source(st: np.ndarray) -> str:
+    """``flow_trial`` of :mod:`impact.engine.flow` for structure ``st``, with the straight-line J·v
+    written into its stage loop (one copy: numba's compile time grows faster than a function's
+    length) and the member's coefficients read once. Same operations in the same order."""
+    n = int(st[1])
+    lines, used = jvp_lines(st, lambda i: f"xp{i}", lambda i: f"vp{i}", lambda i: f"K[s, {i}]", lambda i: f"g{i}")
+    body = [f"c{k} = cf[{k}]" for k in used]
+    body += ["for s in range(1, STAGES + 1):",
+             "    for j in range(n):",
+             "        a = K[0, j] * WEIGHT_ROWS[s, 0]",
+             "        b = L[0, j] * WEIGHT_ROWS[s, 0]",
+             "        for i in range(1, s):",
+             "            w = WEIGHT_ROWS[s, i]",
+             "            if w != 0:",
+             "                a += K[i, j] * w",
+             "                b += L[i, j] * w",
+             "        x = a * hs + y[j]",
+             "        d = b * hs + v[j]",
+             "        Z[Y_NEW, j] = x",
+             "        Z[V_NEW, j] = d",
+             "        Z[XC, j] = x if (x >= 0.0 or x != x) else 0.0",  # max(x, 0) as nmax, NaN kept
+             "        Z[VC, j] = d if Z[XC, j] > 0 else 0.0"]
+    body += [f"    xp{i} = Z[XC, {i}]" for i in range(n)] + [f"    vp{i} = Z[VC, {i}]" for i in range(n)]
+    body += [f"    {line}" for line in lines]
+    body += [f"    L[s, {i}] = g{i} if xp{i} > 0 else 0.0" for i in range(n)]
+    body += ["for j in range(n):",
+             "    scale = nmax(abs(y[j]), abs(Z[Y_NEW, j])) * rtol[j] + atol[j]",
+             "    e = K[0, j] * WEIGHT_ROWS[STAGES + 1, 0]",
+             "    for i in range(1, STAGES + 1):",
+             "        w = WEIGHT_ROWS[STAGES + 1, i]",
+             "        if w != 0:",
+             "            e += K[i, j] * w",
+             "    Z[TMP, j] = e * hs / scale",
+             "acc = Z[TMP, 0] * Z[TMP, 0]",
+             "for j in range(1, n):",
+             "    acc += Z[TMP, j] * Z[TMP, j]",
+             "return math.sqrt(acc / n)"]
+    return _function("flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol)",
+                     [f"n = {n}"] + body)
+
+
+def flow_module_source(st: np.ndarray) -> str:
+    """Source of a module holding the straight-line J·v and the tangent flow's step loop around it."""
+    helpers = ", ".join(n for n in flow.__all__ if n not in flow.FLOW_FUNCTIONS)
+    parts = ['"""Generated by impact.engine.generate for one web structure; do not edit."""',
+             "import math", "import numpy as np", f"from impact.engine.flow import {helpers}", "",
+             jvp_source(st)]
+    n = int(st[1])
+    for name in flow.FLOW_FUNCTIONS:
+        if name == "flow_trial":
+            parts.append(trial_source(st))
+        else:
+            parts.append(_fix_state_size(inspect.getsource(getattr(flow, name).py_func), n))
+    return "\n".join(parts) + "\n"
+
+
 def specialised(st: np.ndarray):
-    """The generated module for structure table ``st`` (written and compiled on first use)."""
+    """The generated state kernel for structure table ``st`` (written and compiled on first use)."""
+    return _load(st, "web", module_source)
+
+
+def specialised_flow(st: np.ndarray):
+    """The generated tangent-flow kernel for structure ``st`` (a web :func:`impact.engine.tangent.supports`)."""
+    return _load(st, "flow", flow_module_source)
+
+
+def _load(st: np.ndarray, prefix: str, make_source):
     folder = cache_dir()
-    memo = (str(folder), st.tobytes())  # a kernel cache named for this run is this run's
+    memo = (str(folder), prefix, st.tobytes())  # a kernel cache named for this run is this run's
     if memo in _loaded:  # reading the kernel's source again would cost milliseconds per segment
         return _loaded[memo]
-    source = module_source(st)
+    with _loading:  # worker threads asking for the same new kernel write and compile it once
+        if memo not in _loaded:
+            _loaded[memo] = _write_and_import(st, prefix, make_source, folder)
+    return _loaded[memo]
+
+
+def _write_and_import(st: np.ndarray, prefix: str, make_source, folder: Path):
+    source = make_source(st)
     key = hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError:  # e.g. no writable home directory: fall back to the temporary directory
         folder = Path(tempfile.gettempdir()) / f"impact-kernels-{os.getuid()}"
         folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"web_{key}.py"
+    path = folder / f"{prefix}_{key}.py"
     if not path.exists() or path.read_text() != source:
         tmp = path.with_suffix(f".{os.getpid()}.tmp")
         tmp.write_text(source)
@@ -173,5 +364,4 @@ def specialised(st: np.ndarray):
     module = importlib.util.module_from_spec(spec)
     sys.modules[name] = module
     spec.loader.exec_module(module)
-    _loaded[memo] = module
     return module

@@ -77,7 +77,7 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     return specialised(st)
 
 
-def _tolerance(value, n: int, name: str) -> np.ndarray:
+def tolerance(value, n: int, name: str) -> np.ndarray:
     """A tolerance as an (n,) array; the same rules as :func:`impact.integrate.integrate_segment`."""
     arr = np.asarray(value, dtype=float)
     if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
@@ -131,8 +131,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
-    rtol = _tolerance(rtol, n, "rtol")
-    atol = _tolerance(atol, n, "atol")
+    rtol = tolerance(rtol, n, "rtol")
+    atol = tolerance(atol, n, "atol")
     h = np.full(m, np.nan) if h0 is None else np.broadcast_to(np.asarray(h0, float), (m,)).copy()
     y_out = np.full((m, n), np.nan)
     reason = np.zeros(m, dtype=np.int8)
@@ -224,8 +224,8 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     M, n = y0.shape
     if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:
         raise ValueError(f"coef has shape {coef.shape} for {len(times) - 1} segments of {M} members")
-    rtol = _tolerance(rtol, n, "rtol")
-    atol = _tolerance(atol, n, "atol")
+    rtol = tolerance(rtol, n, "rtol")
+    atol = tolerance(atol, n, "atol")
     states, cummin, cummax = (np.full((M, T, n), np.nan) for _ in range(3))
     if slot_of[0] >= 0:
         states[:, slot_of[0]] = cummin[:, slot_of[0]] = cummax[:, slot_of[0]] = y0
