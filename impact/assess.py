@@ -68,8 +68,11 @@ MAX_BLOCK = 4096
 
 
 def draw_block_size(members: int, workers: int) -> int:
-    """Draw indices per screening block: the expected need (10 % spare) shared among the workers."""
-    return int(np.clip(np.ceil(1.1 * members / max(workers, 1)), MIN_BLOCK, MAX_BLOCK))
+    """Draw indices per screening block: the expected need (10 % spare) cut into a multiple of the
+    workers' number of blocks, each at most ``MAX_BLOCK`` (so every worker gets the same share)."""
+    need, w = 1.1 * members, max(workers, 1)
+    rounds = int(np.ceil(need / (w * MAX_BLOCK)))
+    return int(np.clip(np.ceil(need / (rounds * w)), MIN_BLOCK, MAX_BLOCK))
 # Members per chunk of the option runs: a chunk is one worker's unit of work (every option on its
 # members, so noise and chance events are drawn once) and one checkpoint. The compiled engine's cost
 # is proportional to the members, so several chunks per worker balance the load; a chunk holds the
