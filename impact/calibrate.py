@@ -52,6 +52,7 @@ STALL = 3             # generations without a 1 % fall of the tolerance before t
 SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
 TARGET_ACCEPTANCE = 0.25
 EVAL_CHUNK = 2048      # rows per chunk of a batch at most (a chunk cannot be stopped halfway)
+EVAL_CHUNKS_PER_WORKER = 4
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
@@ -177,8 +178,9 @@ def evaluate(case: Case, unit: np.ndarray, executor=None) -> dict[str, np.ndarra
 
     executor = executor or InProcess()
     M = unit.shape[0]
-    # an even share per worker, at most EVAL_CHUNK rows: a long chunk would hold up an interrupt
-    size = min(EVAL_CHUNK, max(64, int(np.ceil(M / max(executor.workers, 1)))))
+    # a few chunks per worker, so members that take longer do not leave a worker idle, of 64 rows at
+    # least (each chunk has a fixed cost) and EVAL_CHUNK at most (a long chunk would hold up an interrupt)
+    size = min(EVAL_CHUNK, max(64, int(np.ceil(M / (EVAL_CHUNKS_PER_WORKER * max(executor.workers, 1))))))
     starts = list(range(0, M, size))
     parts: dict[int, dict] = {}
     for i, res in executor.map(evaluate_chunk, [EvalTask(case, unit[a:a + size]) for a in starts]):
