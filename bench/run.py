@@ -2,7 +2,7 @@
 
 Usage::
 
-    python bench/run.py            # everything, including a 100,000-member run (about 15 min on 2 cores)
+    python bench/run.py            # everything, including two 100,000-member runs (about 10 min on 2 cores)
     python bench/run.py --quick    # ensemble sizes 1k and 10k only
 
 Prints, each measured in this same run:
