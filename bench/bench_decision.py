@@ -33,7 +33,9 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "bench"))
 
+from timing import cpu_min  # noqa: E402
 import impact.decision as decision  # noqa: E402
 from impact.assess import assess_members, draw_ensemble  # noqa: E402
 from impact.case import load_case  # noqa: E402
@@ -86,15 +88,6 @@ def loop_information_values(nb, X, names, groups=None, *, resamples=200, confide
     for key, members in ({n: [n] for n in names} | dict(groups or {})).items():
         out[key] = boot(evppi_from_design, design_matrix(X[:, [col[m] for m in members]]), next(streams))
     return out
-
-
-def cpu_min(fn, repeats: int):
-    best, out = np.inf, None
-    for _ in range(repeats):
-        t = time.process_time()
-        out = fn()
-        best = min(best, time.process_time() - t)
-    return best, out
 
 
 def largest_difference(a, b, cols) -> float:

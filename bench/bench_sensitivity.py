@@ -38,7 +38,9 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "bench"))
 
+from timing import cpu_min  # noqa: E402
 import impact.sensitivity.estimators as estimators  # noqa: E402
 import impact.sensitivity.study as study  # noqa: E402
 from impact.case import load_case  # noqa: E402
@@ -98,15 +100,6 @@ def replaying_model(store: dict):
             return Y
 
     return Replaying
-
-
-def cpu_min(fn, repeats: int) -> tuple[float, object]:
-    best, out = np.inf, None
-    for _ in range(repeats):
-        t = time.process_time()
-        out = fn()
-        best = min(best, time.process_time() - t)
-    return best, out
 
 
 def main() -> int:

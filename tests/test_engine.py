@@ -80,7 +80,8 @@ def _paired_inputs(case, p, M: int):
 @pytest.mark.parametrize("name", CASES, ids=lambda s: Path(s).stem)
 def test_a_whole_run_in_one_kernel_call_equals_the_run_segment_by_segment(name, tmp_path):
     # The whole-run kernel repeats the per-segment calls' arithmetic (each member continuing from
-    # its step size, jumps and running extremes between segments): equal to the bit, same work.
+    # its step size, jumps and running extremes between segments): equal to the bit, same work (the
+    # engine contract of DEVELOPERS.md; no published source).
     case = load(name, tmp_path)
     web = build_web(case)
     vals, p = ensemble(case, 10)

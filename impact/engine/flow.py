@@ -28,7 +28,7 @@ import numpy as np
 
 from .control import MIN_STEP_ULPS
 from .kernel import (A, B, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
-                     kernel_inline, kernel_jit, next_step, nmax, nmin, rms)
+                     kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq)
 from .tangent import member_jvp as web_jvp
 
 # Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
@@ -61,15 +61,6 @@ def log_array(x):
     for i in range(x.shape[0]):
         out[i] = math.log(x[i])
     return out
-
-
-@kernel_jit
-def sumsq(x, n):
-    """Σ x_j² summed in column order (as :func:`impact.dynamics._sumsq` for one row)."""
-    acc = x[0] * x[0]
-    for j in range(1, n):
-        acc = acc + x[j] * x[j]
-    return acc
 
 
 @kernel_jit

@@ -33,7 +33,7 @@ HEADER = 9  # entries of the structure table before the per-link columns
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
 __all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
-           "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "rms", "all_finite",
+           "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "sumsq", "rms", "all_finite",
            "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
 
@@ -233,11 +233,17 @@ def cos_array(x):
 
 
 @kernel_jit
-def rms(x, n):
+def sumsq(x, n):
+    """Σ x_j² over the first ``n`` entries, summed in column order (the reference's order)."""
     acc = x[0] * x[0]
     for j in range(1, n):
-        acc += x[j] * x[j]
-    return math.sqrt(acc / n)
+        acc = acc + x[j] * x[j]
+    return acc
+
+
+@kernel_jit
+def rms(x, n):
+    return math.sqrt(sumsq(x, n) / n)
 
 
 @kernel_jit
