@@ -14,6 +14,7 @@ from .case import Case, load_case, schedule_text
 from .effects import event_text
 from .errors import CaseError, InstallationError, SettingError, WriteError, spell
 from .execute import WorkerLost
+from .interrupts import ignore_from_now_on
 from .pipeline import Execution
 
 # API parameter -> flag: errors name the library's parameter, the command line shows its flag
@@ -415,7 +416,13 @@ def _on_sigterm(signum, frame):
     raise Terminated()
 
 
-def main(argv: list[str] | None = None) -> int:
+def main(argv: list[str] | None = None, *, as_program: bool = False) -> int:
+    """Run one command; the exit status.
+
+    ``as_program``: the process ends when this returns, so once the command's outcome is decided
+    a late Ctrl-C or SIGTERM is ignored rather than turning a finished run into a killed one.
+    Otherwise (a caller in the same process) the signal handlers found are put back.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
@@ -450,10 +457,17 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{what}; no results were written{resume}", file=sys.stderr)
         return 143 if isinstance(exc, Terminated) else 130
     finally:
-        if previous is not None:  # (the final move of results ignores both: see impact.outfolder)
+        if previous is not None and as_program:
+            ignore_from_now_on()
+        elif previous is not None:  # (the final move of results ignores both: see impact.outfolder)
             signal.signal(signal.SIGTERM, previous[0])
             signal.signal(signal.SIGINT, previous[1])
 
 
+def program() -> int:
+    """The ``impact`` command."""
+    return main(as_program=True)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    sys.exit(program())

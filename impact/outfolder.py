@@ -23,12 +23,12 @@ from __future__ import annotations
 import json
 import os
 import shutil
-import signal
 import socket
 import time
 from pathlib import Path
 
 from .errors import SettingError, WriteError
+from .interrupts import ignore_from_now_on
 
 # A half-made lock file (written, not yet linked into place) older than this belongs to no
 # starting run and may be removed (seconds; the write-then-link takes milliseconds).
@@ -287,7 +287,8 @@ class _Staging:
         if kind is not None:
             shutil.rmtree(self.tmp, ignore_errors=True)
             return False
-        _ignore_interrupts()
+        # from the final move on the run has succeeded: Ctrl-C and SIGTERM no longer undo it
+        ignore_from_now_on()
         try:
             self.folder._commit(self.tmp)
         except OSError as e:
@@ -295,19 +296,6 @@ class _Staging:
                              f"could not move the finished results into place ({e.strerror or e}); the complete "
                              f"results are in {self.tmp}") from None
         return False
-
-
-def _ignore_interrupts():
-    """From the final move on the run has succeeded: Ctrl-C and SIGTERM no longer undo it.
-
-    The command line restores its handlers when the command returns; off the main thread
-    (where handlers cannot be set) nothing changes.
-    """
-    try:
-        signal.signal(signal.SIGINT, signal.SIG_IGN)
-        signal.signal(signal.SIGTERM, signal.SIG_IGN)
-    except ValueError:
-        pass
 
 
 def _move(src: Path, dst: Path):

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import ReadError, SettingError, WriteError
+from .interrupts import held
 from .manifest import Manifest
 
 
@@ -250,9 +251,11 @@ class Checkpoints:
         import io
 
         buf = io.BytesIO()
-        np.savez(buf, **arrays)
         try:
-            _atomic_write(self._path(key), buf.getvalue())
+            # an interrupt inside the zip writer would surface as the writer's own complaint
+            with held():
+                np.savez(buf, **arrays)
+                _atomic_write(self._path(key), buf.getvalue())
         except OSError as exc:
             raise WriteError(self._path(key), f"could not save a checkpoint ({exc.strerror or exc}); "
                                               "the checkpoints already written are intact: free space and rerun "
