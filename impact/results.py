@@ -49,34 +49,52 @@ def _csv_field(text: str) -> str:
     return text
 
 
-def _column_text(col: pd.Series) -> list[str] | None:
+def _column_values(col: pd.Series) -> tuple[str, list] | None:
+    """A column as (its row-format field, its values ready for it), or None for pandas' path."""
     kind = col.dtype.kind
-    values = col.tolist()
     if kind == "f":
-        return ["" if v != v else FLOAT_FORMAT % v for v in values]
+        return FLOAT_FORMAT, col.tolist()
     if kind in "iub":
-        return [str(v) for v in values]
-    if kind == "O" and all(type(v) is str and "\r" not in v for v in values):
-        return [_csv_field(v) for v in values]
-    return None
+        return "%s", col.tolist()
+    if kind != "O":
+        return None
+    values = col.tolist()
+    distinct = set(values) if all(type(v) is str for v in values) else None
+    if distinct is None or any("\r" in v for v in distinct):
+        return None
+    # results columns hold few distinct texts (options, species, statuses): quote each once
+    fields = {v: _csv_field(v) for v in distinct}
+    if any(fields[v] is not v for v in distinct):
+        values = [fields[v] for v in values]
+    return "%s", values
 
 
 def csv_text(frame: pd.DataFrame) -> str | None:
     """The CSV text pandas' ``to_csv(index=False, float_format=FLOAT_FORMAT)`` writes for a frame of
     plain columns, or None when a column is of another kind (or the column names are not unique
-    strings)."""
+    strings).
+
+    Each row is one ``%`` formatting of a row template (one Python operation a row, not one a
+    field); the rows holding a NaN, which pandas writes as an empty field, are formatted field by field.
+    """
     names = list(frame.columns)
     if (len(names) < 2 or not all(type(n) is str and "\r" not in n for n in names)
             or len(set(names)) != len(names)):
         return None  # (a one-column row of an empty text is quoted by the csv module: left to pandas)
-    cols = []
+    fields, cols, gaps = [], [], np.zeros(len(frame), bool)
     for name in names:
-        text = _column_text(frame[name])
-        if text is None:
+        column = _column_values(frame[name])
+        if column is None:
             return None
-        cols.append(text)
+        fields.append(column[0])
+        cols.append(column[1])
+        if column[0] == FLOAT_FORMAT:
+            gaps |= np.isnan(frame[name].to_numpy())
+    template = ",".join(fields)
     lines = [",".join(_csv_field(n) for n in names)]
-    lines += [",".join(row) for row in zip(*cols)]
+    lines += [template % row for row in zip(*cols)]
+    for i in np.flatnonzero(gaps):
+        lines[i + 1] = ",".join("" if f == FLOAT_FORMAT and c[i] != c[i] else f % c[i] for f, c in zip(fields, cols))
     return "\n".join(lines) + "\n"
 
 
