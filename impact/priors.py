@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 
 @dataclass(frozen=True)
@@ -109,7 +109,7 @@ class PERT:
 
     def ppf(self, u):
         alpha, beta = self._shape()
-        return self.low + (self.high - self.low) * stats.beta.ppf(np.asarray(u, float), alpha, beta)
+        return self.low + (self.high - self.low) * special.betaincinv(alpha, beta, np.asarray(u, float))
 
     def describe(self) -> str:
         return f"PERT({self.low:g}, {self.mode:g}, {self.high:g})"
@@ -131,6 +131,8 @@ class TruncatedNormal:
     def ppf(self, u):
         a = (self.low - self.mean) / self.sd
         b = (self.high - self.mean) / self.sd
+        from scipy import stats  # (slow to import; only cases with such a prior pay it)
+
         return stats.truncnorm.ppf(np.asarray(u, float), a, b, loc=self.mean, scale=self.sd)
 
     def describe(self) -> str:
@@ -149,7 +151,7 @@ class LogNormal:
     kind = "lognormal"
 
     def ppf(self, u):
-        return self.median * np.exp(self.log_sd * stats.norm.ppf(np.asarray(u, float)))
+        return self.median * np.exp(self.log_sd * special.ndtri(np.asarray(u, float)))
 
     def describe(self) -> str:
         return f"lognormal(median {self.median:g}, log-sd {self.log_sd:g})"

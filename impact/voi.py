@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import BSpline
 
 SPLINE_DEGREE = 3
 # interior knots per parameter: enough to follow a threshold-like response, few enough for
@@ -51,6 +50,8 @@ def _spline_basis(x: np.ndarray) -> np.ndarray:
     inner = np.unique(np.quantile(x, np.linspace(0, 1, n_knots + 2)[1:-1]))
     inner = inner[(inner > lo) & (inner < hi)]
     t = np.r_[[lo] * (SPLINE_DEGREE + 1), inner, [hi] * (SPLINE_DEGREE + 1)]
+    from scipy.interpolate import BSpline  # (a quarter second to import: only runs that need it pay)
+
     B = BSpline.design_matrix(np.clip(x, lo, hi), t, SPLINE_DEGREE).toarray()
     return B[:, 1:]  # the basis sums to one: drop one column so the intercept stays identifiable
 
