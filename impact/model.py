@@ -352,8 +352,13 @@ class SegmentCoefficients:
     decay: np.ndarray
 
 
-def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoefficients:
-    """Fold parameters and one segment's controls into the right-hand side's coefficients."""
+# The coefficients a segment's controls change; the others depend on the parameters alone, so a
+# run of many segments computes them once.
+CONTROLLED = ("scale", "lin", "dens", "inflow", "sterile", "amp")
+
+
+def controlled_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> dict[str, np.ndarray]:
+    """The :data:`CONTROLLED` coefficients of one segment, by name: each (M, S)."""
     S = web.n_species
     with np.errstate(divide="ignore", invalid="ignore"):
         dens = np.where(web.logistic, p.r / (c.habitat * p.K), 0.0)
@@ -361,11 +366,15 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
         inflow = (p.m + c.carcass * c.harvest) * web.carrion_yield
     else:
         inflow = np.zeros((len(p.r), S))
+    return {"scale": c.phi * (1.0 - c.fertility), "lin": np.minimum(p.r, 0.0) - p.m - c.harvest, "dens": dens,
+            "inflow": inflow, "sterile": c.sterile, "amp": p.amp * c.wave}
+
+
+def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoefficients:
+    """Fold parameters and one segment's controls into the right-hand side's coefficients."""
     return SegmentCoefficients(
-        scale=c.phi * (1.0 - c.fertility), rpos=np.maximum(p.r, 0.0),
-        lin=np.minimum(p.r, 0.0) - p.m - c.harvest, dens=dens, inflow=inflow,
-        quad=p.quad, gamma=p.gamma, sterile=c.sterile, mat=p.mat, amp=p.amp * c.wave,
-        omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
+        **controlled_coefficients(web, p, c), rpos=np.maximum(p.r, 0.0), quad=p.quad, gamma=p.gamma,
+        mat=p.mat, omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
         alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay)
 
 

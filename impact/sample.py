@@ -12,6 +12,7 @@ import zlib
 import numpy as np
 
 from .case import Case
+from .streams import MASK32, PCG64Block, seed_words
 
 PURPOSE_PARAMETERS = 0
 PURPOSE_NOISE = 1
@@ -36,9 +37,30 @@ def _uniforms(bits: np.random.PCG64, n: int) -> np.ndarray:
     return (bits.random_raw(n) >> np.uint64(11)).astype(float) * _UNIT
 
 
+def _block(seed: int, draws: np.ndarray, *key: int) -> PCG64Block | None:
+    """The members' streams ``(i, *key)`` stepped together, or None when a draw index needs more
+    than one 32-bit word (then the streams are built one by one: the same numbers)."""
+    draws = np.asarray(draws, np.int64)
+    if draws.size and (draws.min() < 0 or draws.max() > MASK32):
+        return None
+    keys = np.empty((draws.size, 1 + len(key)), np.int64)
+    keys[:, 0] = draws
+    keys[:, 1:] = key
+    return PCG64Block(seed_words(seed, keys))
+
+
+def _unit(raw: np.ndarray) -> np.ndarray:
+    return (raw >> np.uint64(11)).astype(float) * _UNIT
+
+
 def member_uniforms(seed: int, draws: np.ndarray, n: int) -> np.ndarray:
     """Unit-uniform numbers for the uncertain parameters: ndarray (len(draws), n)."""
     out = np.empty((len(draws), n))
+    block = _block(seed, draws, PURPOSE_PARAMETERS)
+    if block is not None:
+        for j in range(n):
+            out[:, j] = _unit(block.next())
+        return out
     for k, i in enumerate(draws):
         out[k] = _uniforms(_bits(seed, int(i), PURPOSE_PARAMETERS), n)
     return out
@@ -82,14 +104,29 @@ def noise_multipliers(seed: int, draws: np.ndarray, sd: np.ndarray, n_units: int
     """
     M, S = sd.shape
     z = np.empty((M, n_units, S))
-    for k, i in enumerate(draws):
-        z[k] = _generator(seed, int(i), PURPOSE_NOISE).standard_normal((n_units, S))
-    return np.exp(sd[:, None, :] * z - 0.5 * sd[:, None, :] ** 2)
+    block = _block(seed, draws, PURPOSE_NOISE)
+    if block is None:
+        for k, i in enumerate(draws):
+            z[k] = _generator(seed, int(i), PURPOSE_NOISE).standard_normal((n_units, S))
+    else:
+        # numpy's normal variates (its ziggurat) from each member's seeded state: one generator
+        # object, re-seeded per member, instead of a seed sequence and a generator per member
+        bits = np.random.PCG64(0)
+        normal = np.random.Generator(bits)
+        for k in range(M):
+            bits.state = block.state(k)
+            normal.standard_normal((n_units, S), out=z[k])
+    z *= sd[:, None, :]
+    z -= 0.5 * sd[:, None, :] ** 2
+    return np.exp(z, out=z)
 
 
 def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
     """One unit-uniform per member for a chance event of the named intervention: (M,)."""
     tag = zlib.crc32(name.encode("utf-8"))
+    block = _block(seed, draws, PURPOSE_EVENTS, tag)
+    if block is not None:
+        return _unit(block.next())
     return np.array([float(_bits(seed, int(i), PURPOSE_EVENTS, tag).random_raw() >> 11) * _UNIT for i in draws])
 
 

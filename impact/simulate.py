@@ -14,8 +14,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .case import ARRIVAL_KINDS, Case, Option
-from .engine.web import DEFAULT_ENGINE, Jumps, pack_coefficients, web_run, web_segment
-from .model import Controls, FoodWeb, WebParams, segment_coefficients
+from .engine.web import DEFAULT_ENGINE, Jumps, coefficient_columns, pack_coefficients, web_run, web_segment
+from .model import Controls, FoodWeb, WebParams, controlled_coefficients, segment_coefficients
 
 REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
                       "range": "outside an observed range today"}
@@ -247,11 +247,14 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
     slot = {float(t): i for i, t in enumerate(out_t)}
     slot_of = np.array([slot.get(float(t), -1) for t in times], np.int64)
     controls = segment_controls(case, option, values, times, noise, M, web.n_species)
-    first = pack_coefficients(segment_coefficients(web, p, next(controls)))
-    coef = np.empty((len(times) - 1, *first.shape))
-    coef[0] = first
+    first = segment_coefficients(web, p, next(controls))
+    coef = np.empty((len(times) - 1, M, sum(s.stop - s.start for s in coefficient_columns(first).values())))
+    pack_coefficients(first, out=coef[0])
+    coef[1:] = coef[0]  # the columns the controls leave alone, in one copy
+    columns = coefficient_columns(first)
     for k, c in enumerate(controls, start=1):
-        pack_coefficients(segment_coefficients(web, p, c), out=coef[k])
+        for name, value in controlled_coefficients(web, p, c).items():
+            coef[k, :, columns[name]] = value
     y = y0.copy()
     _apply_events(case, web, option, values, event_u, times[0], y)
     jumps = boundary_jumps(case, web, option, values, event_u, times, M)

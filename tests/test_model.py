@@ -552,3 +552,38 @@ def test_member_streams_are_numpy_generators_random_numbers():
         tag = zlib.crc32("cull".encode("utf-8"))
         ref = np.array([stream(seed, int(i), PURPOSE_EVENTS, tag).random() for i in draws])
         assert np.array_equal(event_uniforms(seed, draws, "cull"), ref)
+
+
+def test_streams_stepped_together_are_numpys_streams():
+    # impact.streams re-implements numpy's SeedSequence and PCG64 over whole arrays of members;
+    # the reference is numpy's own objects (the documented random path), to the bit, for small
+    # and multi-word seeds and spawn keys of one to three words, and the draws of every purpose.
+    import zlib
+
+    from impact.sample import PURPOSE_EVENTS, PURPOSE_NOISE, PURPOSE_PARAMETERS, event_uniforms, \
+        member_uniforms, noise_multipliers
+    from impact.streams import PCG64Block, seed_words
+
+    def bits(seed, *key):
+        return np.random.PCG64(np.random.SeedSequence(seed, spawn_key=key))
+
+    draws = np.r_[np.arange(40), np.random.default_rng(7).integers(0, 2**32, 60)]
+    for seed in (0, 1, 2026, 2**32, 2**100 + 3):
+        for key in ((), (PURPOSE_PARAMETERS,), (PURPOSE_EVENTS, 2**32 - 1)):
+            keys = np.column_stack([draws, *[np.full(draws.size, k) for k in key]])
+            ref = [bits(seed, int(i), *key) for i in draws]
+            assert np.array_equal(seed_words(seed, keys), [b.seed_seq.generate_state(4, np.uint64) for b in ref])
+            block = PCG64Block(seed_words(seed, keys))
+            assert [block.state(m) for m in range(draws.size)] == [b.state for b in ref]
+            for _ in range(3):
+                assert np.array_equal(block.next(), [b.random_raw() for b in ref])
+        gen = [np.random.Generator(bits(seed, int(i), PURPOSE_PARAMETERS)) for i in draws]
+        assert np.array_equal(member_uniforms(seed, draws, 4), [g.random(4) for g in gen])
+        tag = zlib.crc32("cull".encode("utf-8"))
+        gen = [np.random.Generator(bits(seed, int(i), PURPOSE_EVENTS, tag)) for i in draws]
+        assert np.array_equal(event_uniforms(seed, draws, "cull"), [g.random() for g in gen])
+        sd = np.tile([0.0, 0.1, 0.4], (draws.size, 1))
+        z = np.array([np.random.Generator(bits(seed, int(i), PURPOSE_NOISE)).standard_normal((5, 3)) for i in draws])
+        assert np.array_equal(noise_multipliers(seed, draws, sd, 5), np.exp(sd[:, None, :] * z - 0.5 * sd[:, None, :] ** 2))
+    with pytest.raises(ValueError, match="2\\*\\*32"):
+        seed_words(0, np.array([[2**32]]))

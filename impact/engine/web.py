@@ -63,6 +63,17 @@ def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, o
     return out
 
 
+def coefficient_columns(co: SegmentCoefficients) -> dict[str, slice]:
+    """Where each coefficient sits in :func:`pack_coefficients`' rows: name -> column slice."""
+    spans, at = {}, 0
+    for name in SegmentCoefficients.__dataclass_fields__:
+        value = getattr(co, name)
+        width = 1 if value.ndim == 1 else value.shape[1]
+        spans[name] = slice(at, at + width)
+        at += width
+    return spans
+
+
 def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     """Module whose ``segment`` integrates structure ``st``: generated for it, or the table one.
 
