@@ -59,8 +59,11 @@ def _column_values(col: pd.Series) -> tuple[str, list] | None:
     if kind != "O":
         return None
     values = col.tolist()
-    distinct = set(values) if all(type(v) is str for v in values) else None
-    if distinct is None or any("\r" in v for v in distinct):
+    try:
+        distinct = set(values)
+    except TypeError:  # unhashable cells
+        return None
+    if not all(type(v) is str and "\r" not in v for v in distinct):
         return None
     # results columns hold few distinct texts (options, species, statuses): quote each once
     fields = {v: _csv_field(v) for v in distinct}
