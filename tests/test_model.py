@@ -587,3 +587,26 @@ def test_streams_stepped_together_are_numpys_streams():
         assert np.array_equal(noise_multipliers(seed, draws, sd, 5), np.exp(sd[:, None, :] * z - 0.5 * sd[:, None, :] ** 2))
     with pytest.raises(ValueError, match="2\\*\\*32"):
         seed_words(0, np.array([[2**32]]))
+
+
+def test_truncated_normal_prior_is_scipys_truncated_normal():
+    # Reference: scipy.stats.truncnorm.ppf (scipy 1.17: the log-space method of
+    # impact.priors.standard_truncated_normal_ppf; identical to the bit there), to 1e-12 relative
+    # so that a later scipy's last-bit changes do not fail it. Central, one-sided, far-tail and
+    # very narrow truncations; the ends u = 0 and u = 1 give the support's ends. (Rounding can put
+    # scipy's far-tail values an ulp outside the bounds; the prior keeps them inside.)
+    from scipy import stats
+
+    from impact.priors import TruncatedNormal
+
+    u = np.r_[np.random.default_rng(5).random(2000), 1e-300, 0.5, 1 - 1e-16]
+    for mean, sd, low, high in [(0, 1, -1, 1), (5, 2, 0, 100), (5, 2, -100, 4), (0, 1, 5, 8), (0, 1, -8, -5),
+                                (0, 1, -40, -30), (10, 1, 9.99, 10.01), (2, 0.5, 0.1, 2.5)]:
+        prior = TruncatedNormal(mean, sd, low, high)
+        a, b = (low - mean) / sd, (high - mean) / sd
+        ref = stats.truncnorm.ppf(u, a, b, loc=mean, scale=sd)
+        np.testing.assert_allclose(prior.ppf(u), np.clip(ref, low, high), rtol=1e-12, atol=0)
+        assert np.all((prior.ppf(u) >= low) & (prior.ppf(u) <= high))
+        assert prior.ppf(0.0) == stats.truncnorm.ppf(0.0, a, b, loc=mean, scale=sd)
+        assert prior.ppf(1.0) == stats.truncnorm.ppf(1.0, a, b, loc=mean, scale=sd)
+        assert np.ndim(prior.ppf(0.3)) == 0
