@@ -116,8 +116,8 @@ def scalar_peak() -> float:
 FIRST_RUN = '''
 import time, numpy as np
 t0 = time.perf_counter()
-from impact.engine.web import web_segment
-from impact.model import Controls, FoodWeb, WebParams, Link
+from impact.engine.web import no_jumps, pack_coefficients, web_run, web_segment
+from impact.model import Controls, FoodWeb, WebParams, Link, segment_coefficients
 t1 = time.perf_counter()
 S = {S}
 web = FoodWeb(species=tuple("s%d" % i for i in range(S)), has_carrion=False,
@@ -129,6 +129,9 @@ p = WebParams(r=np.where(np.arange(S) == 0, 1.0, 0.0) * np.ones((M, S)), K=f(10.
               a=f(1.0, L), h=f(0.5, L), e=f(0.5, L), alpha=f(0.0, 0), beta=f(0.0, 0), H=f(0.0, 0),
               decay=np.zeros(M), initial=f(1.0, S), noise_sd=f(0.0, S))
 web_segment(web, p, Controls.neutral(M, S), 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9, engine="{engine}")
+if "{engine}" == "compiled":  # the whole-run kernel (option runs, calibration spin-ups) too
+    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, S)))[None]
+    web_run(web, coef, np.array([0.0, 1.0]), p.initial, no_jumps(1, M), np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9)
 print(t1 - t0, time.perf_counter() - t1)
 '''
 

@@ -366,6 +366,36 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
                                           f"{settings.members}; leave `members` out")
         settings = replace(settings, members=len(ensemble.ensemble.draws))
     settings = settings.resolved(case)
+    if settings.dynamics:
+        _compile_flow_aside(case)
+    try:
+        return _assessment(case, settings, progress, executor, store, block, chunk, command, ensemble)
+    finally:
+        if settings.dynamics:  # a run that ended before its regime screen leaves no helper behind
+            from .engine.generate import stop_compiling
+
+            stop_compiling()
+
+
+def _compile_flow_aside(case: Case):
+    """Have the regime screen's compiled tangent flow compiled in a helper process from the start
+    of the run, when it is not cached (:func:`impact.engine.generate.compile_flow_aside`)."""
+    from .engine.generate import compile_flow_aside
+    from .engine.tangent import supports
+    from .engine.web import pack_coefficients, pack_structure
+    from .model import Controls, build_web, segment_coefficients, web_params
+    from .scan import nominal_values
+
+    web = build_web(case)
+    if supports(web):
+        p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
+        n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
+        compile_flow_aside(pack_structure(web), n_coef)
+
+
+def _assessment(case: Case, settings: AssessSettings, progress, executor, store, block, chunk, command,
+                ensemble) -> Assessment:
+    """:func:`assess` once its settings are resolved."""
     members, seed = settings.members, settings.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
     if ensemble is not None:

@@ -141,3 +141,52 @@ def test_random_web_flow_equals_the_numpy_step_loop_to_the_bit():
     ref = lyapunov_flow(None, None, p.initial, engine="numpy", **kw)
     assert (ref.reason == 0).sum() >= 2
     same(lyapunov_flow(None, None, p.initial, **kw), ref)
+
+
+# --- compiling a never-seen structure's flow in a helper process --------------------------------
+
+
+def _logistic_web_and_params():
+    from impact.model import FoodWeb, WebParams
+
+    web = FoodWeb(species=("a",), has_carrion=False, logistic=np.array([True]), links=(), competition=(),
+                  mutualism=(), carrion_yield=np.zeros(1), unit=("n",))
+    z = np.zeros((1, 0))
+    p = WebParams(r=np.ones((1, 1)), K=np.full((1, 1), 10.0), m=np.zeros((1, 1)), a=z, h=z, e=z, alpha=z, beta=z,
+                  H=z, decay=np.zeros(1), initial=np.ones((1, 1)), noise_sd=np.zeros((1, 1)))
+    return web, p
+
+
+def test_a_never_seen_flow_is_compiled_aside_and_loaded_from_the_disk_cache(tmp_path, monkeypatch):
+    monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path))
+    monkeypatch.setattr(generate, "_loaded", {})
+    monkeypatch.setattr(generate, "_compiling", {})
+    web, p = _logistic_web_and_params()
+    st = pack_structure(web)
+    n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, 1))).shape[1]
+    assert not generate.flow_cached(st)
+    assert generate.compile_flow_aside(st, n_coef)
+    assert not generate.compile_flow_aside(st, n_coef)  # one helper per structure
+    # the run's own call (its argument types, not the helper's dummy ones) waits for the helper
+    # and finds the machine code in numba's disk cache: nothing compiles in this process
+    jvp = WebTangent(web, p, Controls.neutral(1, 1))
+    out = lyapunov_flow(None, None, np.full((1, 1), 10.0), transient=1.0, window=5.0, sample_dt=0.5, jvp=jvp)
+    assert not generate._compiling and generate.flow_cached(st)
+    module = generate.specialised_flow(st)
+    assert sum(module.flow_batch.stats.cache_hits.values()) == 1
+    assert sum(module.flow_batch.stats.cache_misses.values()) == 0
+    # At its carrying capacity K the logistic web's one Lyapunov exponent is f'(K) = -r = -1
+    # (linear stability of the equilibrium; Strogatz 2015, Nonlinear Dynamics and Chaos, §2.4).
+    assert out.lyapunov[0] == pytest.approx(-1.0, rel=1e-4)
+
+
+def test_a_helper_nobody_waited_for_is_ended_with_the_run(tmp_path, monkeypatch):
+    monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path))
+    monkeypatch.setattr(generate, "_loaded", {})
+    monkeypatch.setattr(generate, "_compiling", {})
+    web, p = _logistic_web_and_params()
+    st = pack_structure(web)
+    assert generate.compile_flow_aside(st, 13)
+    (helper,) = generate._compiling.values()
+    generate.stop_compiling()
+    assert helper.poll() is not None and not generate._compiling

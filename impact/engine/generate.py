@@ -19,6 +19,7 @@ import hashlib
 import importlib.util
 import inspect
 import os
+import subprocess
 import sys
 import tempfile
 import threading
@@ -35,6 +36,8 @@ STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_ste
                      "run_members")
 _loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
 _loading = threading.Lock()
+# (cache folder, kind, structure bytes) -> a process compiling that kernel (see compile_flow_aside)
+_compiling: dict[tuple[str, str, bytes], subprocess.Popen] = {}
 
 
 def cache_dir() -> Path:
@@ -342,8 +345,53 @@ def _load(st: np.ndarray, prefix: str, make_source):
         return _loaded[memo]
     with _loading:  # worker threads asking for the same new kernel write and compile it once
         if memo not in _loaded:
+            helper = _compiling.pop(memo, None)
+            if helper is not None:  # its machine code is on its way to the disk cache: load it from there
+                helper.wait()
             _loaded[memo] = _write_and_import(st, prefix, make_source, folder)
     return _loaded[memo]
+
+
+def flow_cached(st: np.ndarray) -> bool:
+    """Whether the tangent flow of structure ``st`` has machine code in the kernel cache."""
+    source = flow_module_source(st)
+    stem = "flow_" + hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
+    return any((cache_dir() / "__pycache__").glob(f"{stem}.flow_batch-*.nbi"))
+
+
+def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
+    """Compile the tangent flow of a never-seen structure in a separate, low-priority process.
+
+    numba compiles in Python under the interpreter's lock, so compiling in a thread beside a run's
+    workers costs the run as much time as it saves (measured); a process does not share the lock,
+    and at low priority it takes the processor time the run leaves idle. The helper writes numba's
+    disk cache; :func:`specialised_flow` waits for it and loads from there. Returns whether a
+    helper was started (not when the code is cached already).
+
+    Parameters
+    ----------
+    st : int64 ndarray
+        Structure table (:func:`impact.engine.web.pack_structure`) of a web the flow supports.
+    n_coef : int
+        Coefficient columns of the web (the width of its packed coefficient rows).
+    """
+    memo = (str(cache_dir()), "flow", st.tobytes())
+    if memo in _loaded or memo in _compiling or flow_cached(st):
+        return False
+    cmd = [sys.executable, "-m", "impact.engine.precompile", ",".join(str(int(x)) for x in st), str(int(n_coef))]
+    _compiling[memo] = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                        stderr=subprocess.DEVNULL)
+    return True
+
+
+def stop_compiling():
+    """End the helpers :func:`compile_flow_aside` started that nobody waited for (a run that ends early)."""
+    with _loading:
+        while _compiling:
+            _, helper = _compiling.popitem()
+            if helper.poll() is None:
+                helper.kill()
+            helper.wait()
 
 
 def _write_and_import(st: np.ndarray, prefix: str, make_source, folder: Path):

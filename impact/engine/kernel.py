@@ -355,7 +355,7 @@ def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
         for j in range(n):
             tmp[j] = tmp[j] * hs + y[j]
         web_rhs(st, cf, t + C[s] * hs, tmp, K[s], work)
-    combine_stages(K, B, STAGES, y_new)
+    combine_stages(K, B, np.int64(STAGES), y_new)
     for j in range(n):
         y_new[j] = y_new[j] * hs + y[j]
     web_rhs(st, cf, t_new, y_new, K[STAGES], work)
@@ -526,7 +526,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
                         smin[0, j] = y[j]
                         smax[0, j] = y[j]
                     nfev += member(st, cf, y, KS, work, y_new, tmp, sc, h, t0, t1, 1.0, rtol, atol,
-                                   max_steps, blowup, 0, y_end, smin, smax, h_end, code1, steps1)
+                                   max_steps, blowup, np.int64(0), y_end, smin, smax, h_end, code1, steps1)
                     code = code1[0]
                     h = h_end[0]
                     for j in range(n):
