@@ -19,6 +19,7 @@ Prints, each measured in this same run:
 3. the local pool against a Dask LocalCluster with 2 worker processes, same work;
 4. the full demo assessment (every stage and the PDF, calibration included) with the default
    executor and in-process: wall time, each stage's seconds, peak memory of the in-process run;
+   then with an empty kernel cache and again with that cache (what compiling costs a first run);
 5. member throughput of the core stage at 1k, 10k and 100k members (in-process, so the
    peak memory is the whole run's): the cost should grow linearly, so members per second
    should stay flat; and the 100,000-member core stage on 2 threads;
@@ -46,11 +47,11 @@ DEMO = ROOT / "casework" / "island_mesopredator.toml"
 CORE = ["--no-sensitivity", "--no-dynamics", "--no-report", "--quiet"]
 
 
-def run_impact(args: list[str]) -> tuple[float, float]:
+def run_impact(args: list[str], env: dict | None = None) -> tuple[float, float]:
     """Run ``impact`` in a child process: (wall seconds, peak resident memory of that process in MiB)."""
     t0 = time.perf_counter()
     proc = subprocess.Popen([sys.executable, "-m", "impact.cli", *args], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.PIPE, cwd=ROOT)
+                            stderr=subprocess.PIPE, cwd=ROOT, env=env)
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
     err = proc.stderr.read().decode()
@@ -154,6 +155,13 @@ def main(argv=None) -> int:
     tf1, mem1 = run_impact(["assess", args.case, "--out", str(work / "full1"), "--quiet", "--workers", "1"])
     print(f"default executor ({os.cpu_count()} threads)    {tf:7.2f} s  stages: {stage_seconds(work / 'full')}")
     print(f"in-process                   {tf1:7.2f} s  stages: {stage_seconds(work / 'full1')}, peak memory {mem1:.0f} MiB")
+    # a never-seen structure: an empty kernel cache, so the state kernel and the tangent flow compile
+    # (the flow in its helper process while the run goes on)
+    cold = {**os.environ, "IMPACT_KERNEL_CACHE": str(work / "cold-kernels")}
+    tc, _ = run_impact(["assess", args.case, "--out", str(work / "cold"), "--quiet"], env=cold)
+    tw, _ = run_impact(["assess", args.case, "--out", str(work / "warm"), "--quiet"], env=cold)
+    print(f"empty kernel cache           {tc:7.2f} s  stages: {stage_seconds(work / 'cold')}")
+    print(f"the same cache, second run   {tw:7.2f} s  (compilation added {tc - tw:.1f} s to the first run)")
 
     section("4b. the report stage alone, on the results of 4 (bench_report.py)")
     import bench_report
