@@ -347,7 +347,12 @@ def _load(st: np.ndarray, prefix: str, make_source):
         if memo not in _loaded:
             helper = _compiling.pop(memo, None)
             if helper is not None:  # its machine code is on its way to the disk cache: load it from there
-                helper.wait()
+                try:
+                    helper.wait()
+                except BaseException:  # interrupted while waiting: the helper goes too
+                    helper.kill()
+                    helper.wait()
+                    raise
             _loaded[memo] = _write_and_import(st, prefix, make_source, folder)
     return _loaded[memo]
 
