@@ -33,10 +33,6 @@ def _generator(seed: int, *key: int) -> np.random.Generator:
 _UNIT = 1.0 / 9007199254740992.0
 
 
-def _uniforms(bits: np.random.PCG64, n: int) -> np.ndarray:
-    return (bits.random_raw(n) >> np.uint64(11)).astype(float) * _UNIT
-
-
 def _block(seed: int, draws: np.ndarray, *key: int) -> PCG64Block | None:
     """The members' streams ``(i, *key)`` stepped together, or None when a draw index needs more
     than one 32-bit word (then the streams are built one by one: the same numbers)."""
@@ -62,7 +58,7 @@ def member_uniforms(seed: int, draws: np.ndarray, n: int) -> np.ndarray:
             out[:, j] = _unit(block.next())
         return out
     for k, i in enumerate(draws):
-        out[k] = _uniforms(_bits(seed, int(i), PURPOSE_PARAMETERS), n)
+        out[k] = _unit(_bits(seed, int(i), PURPOSE_PARAMETERS).random_raw(n))
     return out
 
 
@@ -121,13 +117,20 @@ def noise_multipliers(seed: int, draws: np.ndarray, sd: np.ndarray, n_units: int
     return np.exp(z, out=z)
 
 
-def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
-    """One unit-uniform per member for a chance event of the named intervention: (M,)."""
-    tag = zlib.crc32(name.encode("utf-8"))
-    block = _block(seed, draws, PURPOSE_EVENTS, tag)
+def first_uniforms(seed: int, draws: np.ndarray, *key: int) -> np.ndarray:
+    """The first unit-uniform of each member's stream ``(i, *key)``: (len(draws),).
+
+    ``Generator(PCG64(SeedSequence(seed, spawn_key=(i, *key)))).random()`` for every draw index i.
+    """
+    block = _block(seed, draws, *key)
     if block is not None:
         return _unit(block.next())
-    return np.array([float(_bits(seed, int(i), PURPOSE_EVENTS, tag).random_raw() >> 11) * _UNIT for i in draws])
+    return np.array([_unit(_bits(seed, int(i), *key).random_raw(1))[0] for i in draws])
+
+
+def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
+    """One unit-uniform per member for a chance event of the named intervention: (M,)."""
+    return first_uniforms(seed, draws, PURPOSE_EVENTS, zlib.crc32(name.encode("utf-8")))
 
 
 # Population-level streams of the calibration (resampling, proposals, acceptance) are keyed by a

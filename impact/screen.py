@@ -25,6 +25,7 @@ from .case import Case
 from .diagnose import diagnose_web
 from .dynamics import PURPOSE_DYNAMICS, DynamicsSettings, declared_settings, section_species, settings_record
 from .model import Controls, WebParams, build_web
+from .sample import first_uniforms
 
 SHARE_CONFIDENCE = 0.95
 # The screen's defaults trade each member's own window for one ensemble run per option (the
@@ -44,8 +45,7 @@ def screened_members(seed: int, M: int, n: int) -> np.ndarray:
     """
     if n >= M:
         return np.arange(M)
-    keys = np.array([np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(i, PURPOSE_DYNAMICS))))
-                     .random() for i in range(M)])
+    keys = first_uniforms(seed, np.arange(M), PURPOSE_DYNAMICS)
     return np.sort(np.argsort(keys, kind="stable")[:n])
 
 

@@ -585,6 +585,12 @@ def test_streams_stepped_together_are_numpys_streams():
         sd = np.tile([0.0, 0.1, 0.4], (draws.size, 1))
         z = np.array([np.random.Generator(bits(seed, int(i), PURPOSE_NOISE)).standard_normal((5, 3)) for i in draws])
         assert np.array_equal(noise_multipliers(seed, draws, sd, 5), np.exp(sd[:, None, :] * z - 0.5 * sd[:, None, :] ** 2))
+        # the regime screen's choice of members: the smallest first uniform of each member's stream
+        from impact.dynamics import PURPOSE_DYNAMICS
+        from impact.screen import screened_members
+
+        keys = [np.random.Generator(bits(seed, i, PURPOSE_DYNAMICS)).random() for i in range(300)]
+        assert np.array_equal(screened_members(seed, 300, 40), np.sort(np.argsort(keys, kind="stable")[:40]))
     with pytest.raises(ValueError, match="2\\*\\*32"):
         seed_words(0, np.array([[2**32]]))
 
