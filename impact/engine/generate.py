@@ -384,8 +384,11 @@ def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
     if memo in _loaded or memo in _compiling or flow_cached(st):
         return False
     cmd = [sys.executable, "-m", "impact.engine.precompile", ",".join(str(int(x)) for x in st), str(int(n_coef))]
-    _compiling[memo] = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
-                                        stderr=subprocess.DEVNULL)
+    try:
+        _compiling[memo] = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                            stderr=subprocess.DEVNULL)
+    except OSError:  # no interpreter to start (an embedded Python): the run compiles it when needed
+        return False
     return True
 
 
