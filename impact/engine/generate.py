@@ -36,6 +36,9 @@ STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_ste
                      "run_members")
 _loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
 _loading = threading.Lock()
+# Seconds a run waits for a compile helper before ending it and compiling itself (a compilation
+# takes 5-15 s on a 2-core machine; the margin covers a loaded one).
+HELPER_WAIT = 300.0
 # (cache folder, kind, structure bytes) -> a process compiling that kernel (see compile_flow_aside)
 _compiling: dict[tuple[str, str, bytes], subprocess.Popen] = {}
 
@@ -348,11 +351,12 @@ def _load(st: np.ndarray, prefix: str, make_source):
             helper = _compiling.pop(memo, None)
             if helper is not None:  # its machine code is on its way to the disk cache: load it from there
                 try:
-                    helper.wait()
-                except BaseException:  # interrupted while waiting: the helper goes too
+                    helper.wait(timeout=HELPER_WAIT)
+                except BaseException as exc:  # interrupted, or stuck: the helper goes
                     helper.kill()
                     helper.wait()
-                    raise
+                    if not isinstance(exc, subprocess.TimeoutExpired):
+                        raise
             _loaded[memo] = _write_and_import(st, prefix, make_source, folder)
     return _loaded[memo]
 
