@@ -157,10 +157,16 @@ def _logistic_web_and_params():
     return web, p
 
 
-def test_a_never_seen_flow_is_compiled_aside_and_loaded_from_the_disk_cache(tmp_path, monkeypatch):
+@pytest.fixture
+def empty_kernel_cache(tmp_path, monkeypatch):
+    """An empty kernel cache, no kernel loaded or being compiled by this process."""
     monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path))
     monkeypatch.setattr(generate, "_loaded", {})
     monkeypatch.setattr(generate, "_compiling", {})
+    return tmp_path
+
+
+def test_a_never_seen_flow_is_compiled_aside_and_loaded_from_the_disk_cache(empty_kernel_cache):
     web, p = _logistic_web_and_params()
     st = pack_structure(web)
     n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, 1))).shape[1]
@@ -180,12 +186,8 @@ def test_a_never_seen_flow_is_compiled_aside_and_loaded_from_the_disk_cache(tmp_
     assert out.lyapunov[0] == pytest.approx(-1.0, rel=1e-4)
 
 
-def test_a_helper_nobody_waited_for_is_ended_with_the_run(tmp_path, monkeypatch):
-    monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setattr(generate, "_loaded", {})
-    monkeypatch.setattr(generate, "_compiling", {})
-    web, p = _logistic_web_and_params()
-    st = pack_structure(web)
+def test_a_helper_nobody_waited_for_is_ended_with_the_run(empty_kernel_cache):
+    st = pack_structure(_logistic_web_and_params()[0])
     assert generate.compile_flow_aside(st, 13)
     (helper,) = generate._compiling.values()
     generate.stop_compiling()
