@@ -22,6 +22,7 @@ from . import __version__
 from .api import AssessSettings, Assessment, Progress, assess, package_versions, prior_screen, write_results
 from .case import Case, unused_parameters
 from .errors import CaseError, SettingError
+from .preload import DYNAMICS_LIBRARIES, REPORT_LIBRARIES, SENSITIVITY_LIBRARIES, preload
 
 
 @dataclass(frozen=True)
@@ -155,10 +156,9 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
 
     settings, folder, est = plan_assessment(case, settings, out, replace=replace, execution=execution,
                                             ensemble=ensemble)
-    if report:
-        from .report.preload import preload
-
-        preload()  # the report's libraries load while the compiled stages run
+    # the later stages' libraries load while the compiled stages run
+    preload((SENSITIVITY_LIBRARIES if settings.sensitivity else ()) + (DYNAMICS_LIBRARIES if settings.dynamics else ())
+            + (REPORT_LIBRARIES if report else ()))
     if progress:
         progress(est.describe())
     executor = execution.executor()
