@@ -152,31 +152,6 @@ def controls_at(case: Case, option: Option | None, values, t_mid: float, phi: np
     return c
 
 
-def _apply_events(case: Case, web: FoodWeb, option: Option | None, values, event_u, t: float, y: np.ndarray):
-    """Jumps at boundary time ``t`` (in place on ``y``)."""
-    if option is None:
-        return
-    from .model import resolve
-
-    M = y.shape[0]
-    col = {n: i for i, n in enumerate(case.species_names)}
-    for name in option.interventions:
-        iv = case.intervention(name)
-        if t not in iv.event_times():
-            continue
-        j = col[iv.species]
-        if iv.kind == "pulse-cull":
-            removed = y[:, j] * resolve(iv.fraction, values, M)
-            y[:, j] -= removed
-            if iv.carcasses_to_carrion and web.has_carrion:
-                y[:, web.n_species] += web.carrion_yield[j] * removed
-        elif iv.kind == "eradication":
-            fails = event_u[name] < resolve(iv.failure_probability, values, M)
-            y[:, j] = np.where(fails, y[:, j] * resolve(iv.residual_fraction, values, M), 0.0)
-        elif iv.kind in ARRIVAL_KINDS:
-            y[:, j] += resolve(iv.amount, values, M)
-
-
 def segment_controls(case: Case, option: Option | None, values, times: np.ndarray, noise: np.ndarray | None,
                      M: int, S: int):
     """Controls of each segment between ``times`` (a generator of :class:`Controls`)."""
@@ -192,13 +167,18 @@ def segment_controls(case: Case, option: Option | None, values, times: np.ndarra
 
 def boundary_jumps(case: Case, web: FoodWeb, option: Option | None, values, event_u, times: np.ndarray,
                    M: int) -> Jumps:
-    """The jumps of :func:`_apply_events` at boundaries 1 … K of ``times``, for the whole-run kernel."""
+    """The option's culls, eradications and arrivals at boundaries 0 … K of ``times``.
+
+    Entries ``start[b]`` to ``start[b + 1] − 1`` act at boundary ``b``; the whole-run kernel applies
+    those of boundaries 1 … K, :func:`apply_jumps` any (the numpy reference, and boundary 0).
+    ``event_u`` (M,) per chance event decides which eradications fail.
+    """
     from .engine.kernel import JUMP_ADD, JUMP_CULL, JUMP_ERADICATE
     from .model import resolve
 
     col = {n: i for i, n in enumerate(case.species_names)}
-    start, kind, species, cy, value, fails = [0, 0], [], [], [], [], []
-    for t in times[1:]:
+    start, kind, species, cy, value, fails = [0], [], [], [], [], []
+    for t in times:
         for name in (option.interventions if option is not None else ()):
             iv = case.intervention(name)
             if t not in iv.event_times():
@@ -229,6 +209,24 @@ def boundary_jumps(case: Case, web: FoodWeb, option: Option | None, values, even
                  np.array(cy, float), cols(value), cols(fails))
 
 
+def apply_jumps(jumps: Jumps, b: int, y: np.ndarray, carrion: int):
+    """Apply the jumps of boundary ``b`` to ``y`` (M, n_state) in place, as the whole-run kernel does;
+    ``carrion`` is the carrion pool's column."""
+    from .engine.kernel import JUMP_CULL, JUMP_ERADICATE
+
+    for e in range(jumps.start[b], jumps.start[b + 1]):
+        j = jumps.species[e]
+        if jumps.kind[e] == JUMP_CULL:
+            removed = y[:, j] * jumps.value[:, e]
+            y[:, j] -= removed
+            if jumps.carrion_yield[e] >= 0:
+                y[:, carrion] += jumps.carrion_yield[e] * removed
+        elif jumps.kind[e] == JUMP_ERADICATE:
+            y[:, j] = np.where(jumps.fails[:, e] != 0, y[:, j] * jumps.value[:, e], 0.0)
+        else:
+            y[:, j] += jumps.value[:, e]
+
+
 def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
                option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
                engine: str = DEFAULT_ENGINE) -> Run:
@@ -248,16 +246,16 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
     slot_of = np.array([slot.get(float(t), -1) for t in times], np.int64)
     controls = segment_controls(case, option, values, times, noise, M, web.n_species)
     first = segment_coefficients(web, p, next(controls))
-    coef = np.empty((len(times) - 1, M, sum(s.stop - s.start for s in coefficient_columns(first).values())))
+    columns = coefficient_columns(first)
+    coef = np.empty((len(times) - 1, M, sum(s.stop - s.start for s in columns.values())))
     pack_coefficients(first, out=coef[0])
     coef[1:] = coef[0]  # the columns the controls leave alone, in one copy
-    columns = coefficient_columns(first)
     for k, c in enumerate(controls, start=1):
         for name, value in controlled_coefficients(web, p, c).items():
             coef[k, :, columns[name]] = value
     y = y0.copy()
-    _apply_events(case, web, option, values, event_u, times[0], y)
     jumps = boundary_jumps(case, web, option, values, event_u, times, M)
+    apply_jumps(jumps, 0, y, web.n_species)
     res = web_run(web, coef, times, y, jumps, slot_of, len(out_t), rtol=case.rtol, atol=case.atol, engine=engine)
     return Run(out_t, res.states, res.cummin, res.cummax, res.reason != 0, res.reason, res.nfev)
 
@@ -293,7 +291,8 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
     reason = np.where(failed, 1, 0).astype(np.int8)
     h = np.full(M, np.nan)
     nfev = 0
-    _apply_events(case, web, option, values, event_u, times[0], y)
+    jumps = boundary_jumps(case, web, option, values, event_u, times, M)
+    apply_jumps(jumps, 0, y, S)
     lo, hi = y.copy(), y.copy()
     states[:, 0], cummin[:, 0], cummax[:, 0] = y, lo, hi
     controls = segment_controls(case, option, values, times, noise, M, S)
@@ -312,7 +311,7 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
             newly = seg.failed
             failed[active[newly]] = True
             reason[active[newly]] = seg.reason[newly]
-        _apply_events(case, web, option, values, event_u, t1, y)
+        apply_jumps(jumps, k + 1, y, S)
         lo = np.minimum(lo, y)
         hi = np.maximum(hi, y)
         y[failed] = np.nan
