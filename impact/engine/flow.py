@@ -28,7 +28,8 @@ import numpy as np
 
 from .control import MIN_STEP_ULPS
 from .kernel import (A, B, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
-                     kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq)
+                     chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq,
+                     trial_first_step)
 from .tangent import member_jvp as web_jvp
 
 # Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
@@ -50,6 +51,7 @@ SCRATCH = 7
 
 __all__ = ["STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY", "MIN_STEP_ULPS",
            "kernel_jit", "kernel_inline", "nmin", "nmax", "rms", "all_finite", "next_step", "sumsq", "unit_on_face",
+           "trial_first_step", "chosen_first_step",
            "hermite_max", "observe", "rows_finite", "keep_stage", "take_step", "WEIGHT_ROWS", "Y_NEW", "V_NEW", "TMP",
            "XC", "VC", "F", "G", "SCRATCH", *FLOW_FUNCTIONS]
 
@@ -164,26 +166,14 @@ def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc
     for j in range(n):
         y1[j] = K[0, j] / sc[j]
     d1 = rms(y1, n)
-    if d0 < 1e-5 or d1 < 1e-5:
-        h0 = 1e-6
-    else:
-        h0 = 0.01 * d0 / d1
-    h0 = nmin(h0, interval)
+    h0 = trial_first_step(d0, d1, interval)
     for j in range(n):
         y1[j] = y0[j] + (h0 * 1.0) * K[0, j]
         g1[j] = 0.0
     face_jvp(st, cf, y1, g1, fo, go, work, xc, vc)
     for j in range(n):
         y1[j] = (fo[j] - K[0, j]) / sc[j]
-    d2 = rms(y1, n) / h0
-    if d1 <= 1e-15 and d2 <= 1e-15:
-        h1 = nmax(1e-6, h0 * 1e-3)
-    else:
-        h1 = (0.01 / nmax(d1, d2)) ** INITIAL_EXPONENT
-    h = nmin(nmin(100 * h0, h1), interval)
-    if not (math.isfinite(h) and h > 0):
-        h = min(1e-6, interval)
-    return h
+    return chosen_first_step(h0, d1, rms(y1, n) / h0, interval)
 
 
 @kernel_jit

@@ -34,7 +34,7 @@ HEADER = 9  # entries of the structure table before the per-link columns
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
 __all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "sumsq", "rms", "all_finite",
-           "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "trial_first_step", "chosen_first_step", "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
 
 A = DormandPrince54.A.copy()
@@ -259,17 +259,27 @@ def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc
     for j in range(n):
         y1[j] = f0[j] / sc[j]
     d1 = rms(y1, n)
-    if d0 < 1e-5 or d1 < 1e-5:
-        h0 = 1e-6
-    else:
-        h0 = 0.01 * d0 / d1
-    h0 = nmin(h0, interval)
+    h0 = trial_first_step(d0, d1, interval)
     for j in range(n):
         y1[j] = y0[j] + (h0 * direction) * f0[j]
     web_rhs(st, cf, t0 + h0 * direction, y1, f1, work)
     for j in range(n):
         y1[j] = (f1[j] - f0[j]) / sc[j]
-    d2 = rms(y1, n) / h0
+    return chosen_first_step(h0, d1, rms(y1, n) / h0, interval)
+
+
+@kernel_inline
+def trial_first_step(d0, d1, interval):
+    """The trial step h0 of Hairer, Nørsett & Wanner (1993), Sec. II.4, from the scaled norms of y0
+    (d0) and f0 (d1): the part the state kernel and the tangent flow share."""
+    h0 = 1e-6 if (d0 < 1e-5 or d1 < 1e-5) else 0.01 * d0 / d1
+    return nmin(h0, interval)
+
+
+@kernel_inline
+def chosen_first_step(h0, d1, d2, interval):
+    """The first step from the trial step h0 and the norms of f0 (d1) and of the change of f over
+    h0 divided by h0 (d2), at most 100 h0 and the interval (HNW 1993, Sec. II.4)."""
     if d1 <= 1e-15 and d2 <= 1e-15:
         h1 = nmax(1e-6, h0 * 1e-3)
     else:
