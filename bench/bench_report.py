@@ -18,12 +18,12 @@ Prints, each measured in this same run (minimum of ``--repeat`` runs, the machin
 from __future__ import annotations
 
 import argparse
-import os
-import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from timing import run_python
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "casework" / "island_mesopredator.toml"
@@ -38,15 +38,7 @@ render_pdf("<html><body><h1>floor</h1><table><tr><td>1</td></tr></table></body><
 
 def child(args: list[str]) -> tuple[float, float]:
     """Run a Python child process: (wall seconds, CPU seconds of that process)."""
-    t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, *args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT)
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    err = proc.stderr.read().decode()
-    proc.stderr.close()
-    if os.waitstatus_to_exitcode(status) != 0:
-        raise SystemExit(f"python {' '.join(args)} failed:\n{err}")
-    return wall, usage.ru_utime + usage.ru_stime
+    return run_python(args)[:2]
 
 
 def best(runs: list[tuple[float, float]]) -> tuple[float, float]:

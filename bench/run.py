@@ -36,11 +36,11 @@ import argparse
 import json
 import os
 import platform
-import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
+
+from timing import run_python
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "casework" / "island_mesopredator.toml"
@@ -49,16 +49,8 @@ CORE = ["--no-sensitivity", "--no-dynamics", "--no-report", "--quiet"]
 
 def run_impact(args: list[str], env: dict | None = None) -> tuple[float, float]:
     """Run ``impact`` in a child process: (wall seconds, peak resident memory of that process in MiB)."""
-    t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-m", "impact.cli", *args], stdout=subprocess.DEVNULL,
-                            stderr=subprocess.PIPE, cwd=ROOT, env=env)
-    _, status, usage = os.wait4(proc.pid, 0)
-    wall = time.perf_counter() - t0
-    err = proc.stderr.read().decode()
-    proc.stderr.close()
-    if os.waitstatus_to_exitcode(status) != 0:
-        raise SystemExit(f"impact {' '.join(args)} failed:\n{err}")
-    return wall, usage.ru_maxrss / 1024.0
+    wall, _, peak = run_python(["-m", "impact.cli", *args], env)
+    return wall, peak
 
 
 TABLES = ("risk.csv", "bands.csv", "members.csv", "parameters.csv")
