@@ -84,7 +84,24 @@ class InProcess:
         return {"executor": self.name, "workers": 1}
 
 
-class LocalThreads:
+class _LocalWorkers:
+    """What the executors of this machine's workers share: a pool made on first use, ended by close."""
+
+    name = "local"
+    workers = 1
+    _pool = None
+
+    def close(self):
+        """Wait for the running tasks, then end the pool (it is made again if needed)."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+
+    def describe(self) -> dict:
+        return {"executor": self.name, "workers": self.workers}
+
+
+class LocalThreads(_LocalWorkers):
     """Threads of the calling process, computing tasks side by side.
 
     What runs in parallel is the compiled kernels (which release Python's global lock); the
@@ -119,22 +136,14 @@ class LocalThreads:
             for fut in pending:
                 fut.cancel()
 
-    def close(self):
-        if self._pool is not None:
-            self._pool.shutdown(wait=True, cancel_futures=True)
-            self._pool = None
-
     def abort(self):
         """Drop the tasks not started; the running ones end with their chunk."""
         pool, self._pool = self._pool, None
         if pool is not None:
             pool.shutdown(wait=False, cancel_futures=True)
 
-    def describe(self) -> dict:
-        return {"executor": self.name, "workers": self.workers}
 
-
-class LocalPool:
+class LocalPool(_LocalWorkers):
     """A pool of worker processes on this machine.
 
     Workers are forked from this process where the platform allows it (they start at once,
@@ -193,11 +202,6 @@ class LocalPool:
                 self._pool.shutdown(wait=False, cancel_futures=True)
                 self._pool = None
 
-    def close(self):
-        if self._pool is not None:
-            self._pool.shutdown(wait=True, cancel_futures=True)
-            self._pool = None
-
     def abort(self):
         """End the workers at once (interrupt, error): their unfinished chunks are not wanted."""
         pool, self._pool = self._pool, None
@@ -217,9 +221,6 @@ class LocalPool:
         pool.shutdown(wait=False, cancel_futures=True)
         for p in procs:
             p.join(timeout=5)
-
-    def describe(self) -> dict:
-        return {"executor": self.name, "workers": self.workers}
 
 
 class DaskCluster:
