@@ -1,15 +1,21 @@
 """The Python interface: run an assessment, get typed results back, save them, read them, report them.
 
-::
+The verbs are also ``impact.assess``, ``impact.calibrate``, ``impact.load``, ``impact.save`` and
+``impact.report``. A case is a path to a case file or a case already read by :func:`load_case`;
+the keywords override the case's own settings. (Run from a folder holding the casework; the suite
+runs this example.)
 
-    import impact.api as impact
-
-    case = impact.load_case("casework/island_mesopredator.toml")
-    result = impact.assess(case, impact.AssessSettings(members=300, dynamics=False))
-    result.effects            # paired effects, a DataFrame (the columns of effects.csv)
-    result.verdict_text()     # the page-1 verdict as text
-    folder = impact.save(result, "results/demo")          # tables, manifest, report.pdf, summary.txt
-    again = impact.load(folder)                            # the saved tables, read back and checked
+>>> import impact
+>>> result = impact.assess("casework/island_mesopredator.toml", members=200, seed=3,
+...                        sensitivity=False, dynamics=False)
+>>> result.effects.columns[:3].tolist()      # paired effects: the columns of effects.csv
+['option', 'species', 'metric']
+>>> print(result.verdict_text().splitlines()[0])      # the page-1 verdict as text
+option “cats only”:
+>>> folder = impact.save(result, "results/example", report=False)  # tables, manifest, summary.txt
+>>> again = impact.load(folder)                # the saved tables, read back and checked
+>>> again.verdict_text() == result.verdict_text()
+True
 
 The command-line interface is a thin shell over these functions.
 """
@@ -39,6 +45,9 @@ from .errors import ReadError, SettingError
 from .manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest,
                        MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
 from .model import equations
+
+__all__ = ["AssessSettings", "Assessment", "PosteriorEnsemble", "assess", "build_report", "calibrate", "load",
+           "load_case", "load_ensemble", "report", "save", "save_ensemble", "summary_text"]
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
            "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
@@ -95,18 +104,22 @@ class AssessSettings:
 
 @dataclass
 class Assessment:
-    """An assessment in memory: the case, the ensemble, the manifest and every results table.
+    """An assessment: the manifest and every results table, from a run in memory or read back from a folder.
 
     ``tables`` maps the relative path of each results file (``"risk.csv"``,
     ``"sensitivity/drivers.csv"``, ...) to its DataFrame; ``records`` does the same for JSON records.
+    ``case``, ``ensemble`` and ``calibration`` are there after a run in this process; an assessment
+    read by :func:`load` has its ``folder`` instead (and its ``case`` when the case file it names is
+    still there, unchanged).
     """
 
-    case: Case
-    ensemble: Ensemble
+    case: Case | None
+    ensemble: Ensemble | None
     manifest: Manifest
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
     records: dict[str, dict] = field(default_factory=dict)
     calibration: Calibration | None = None
+    folder: Path | None = None
 
     @property
     def risk(self) -> pd.DataFrame:
@@ -127,7 +140,15 @@ class Assessment:
     @property
     def thin(self) -> bool:
         """Too few plausible members for a verdict (``risk.min_members``)."""
-        return self.manifest.counts.kept < self.case.risk.min_members
+        return self.manifest.counts.kept < self.manifest.judgement.min_members
+
+    def verdict_text(self) -> str:
+        """The page-1 verdict as text (the same words as ``report.pdf`` and ``summary.txt``)."""
+        from .verdict import reading, reading_text
+
+        t = self.tables
+        return reading_text(reading(self.manifest, t["risk.csv"], t["effects.csv"], t["objectives.csv"],
+                                    t["comparisons.csv"]))
 
     def write(self, folder: Path) -> None:
         """Write every table and record and the manifest into ``folder`` (no report, no summary)."""
@@ -261,9 +282,13 @@ class PosteriorEnsemble:
     source: str | None = None
 
 
-def calibrate(case: Case, members: int | None = None, seed: int | None = None, *, progress: Progress | None = None,
-              executor=None, command: list[str] | None = None) -> PosteriorEnsemble:
-    """Build the ensemble of ``case`` (calibrated where it has data) without running any option."""
+def calibrate(case: Case | str | Path, members: int | None = None, seed: int | None = None, *,
+              progress: Progress | None = None, executor=None, command: list[str] | None = None) -> PosteriorEnsemble:
+    """Build the ensemble of ``case`` (calibrated where it has data) without running any option.
+
+    ``case`` is a :class:`Case` or the path of a case file.
+    """
+    case = as_case(case)
     members = members if members is not None else case.members
     seed = seed if seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
@@ -338,13 +363,29 @@ class _StageClock:
         self.last = now
 
 
-def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress: Progress | None = None,
-           executor=None, store=None, block: int | None = None, chunk: int | None = None,
-           command: list[str] | None = None, ensemble: PosteriorEnsemble | None = None) -> Assessment:
+def as_case(case: Case | str | Path) -> Case:
+    """``case`` itself, or the case file at that path read and validated (:class:`CaseError` naming the field)."""
+    if isinstance(case, Case):
+        return case
+    if isinstance(case, (str, Path)):
+        return load_case(case)
+    raise SettingError("case", f"must be a case read by load_case or the path of a case file, not {type(case).__name__}")
+
+
+def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, members: int | None = None,
+           seed: int | None = None, sensitivity: bool | None = None, base_samples: int | None = None,
+           dynamics: bool | None = None, progress: Progress | None = None, executor=None, store=None,
+           block: int | None = None, chunk: int | None = None, command: list[str] | None = None,
+           ensemble: PosteriorEnsemble | None = None) -> Assessment:
     """Run the whole assessment of ``case`` in memory and return it.
 
     Parameters
     ----------
+    case : Case or path
+        A case read by :func:`load_case`, or the path of a case file.
+    settings : AssessSettings, optional
+        What to run; the keywords ``members``, ``seed``, ``sensitivity``, ``base_samples`` and
+        ``dynamics`` override its fields one by one (see :class:`AssessSettings`).
     executor : object with ``map(fn, tasks)``, optional
         Where chunks are computed (default: this process); see :mod:`impact.execute`.
     store : impact.results.Checkpoints, optional
@@ -359,6 +400,9 @@ def assess(case: Case, settings: AssessSettings = AssessSettings(), *, progress:
     """
     from .execute import InProcess
 
+    case = as_case(case)
+    overrides = dict(members=members, seed=seed, sensitivity=sensitivity, base_samples=base_samples, dynamics=dynamics)
+    settings = replace(settings or AssessSettings(), **{k: v for k, v in overrides.items() if v is not None})
     executor = executor or InProcess()
     if ensemble is not None:
         if settings.members is not None and settings.members != len(ensemble.ensemble.draws):
@@ -518,6 +562,9 @@ def save(result: Assessment, out, *, replace: bool = False, report: bool = True,
     """Save an assessment as a results folder (locked while written; an existing one only with ``replace``)."""
     from .outfolder import OutputFolder
 
+    if result.case is None:
+        raise SettingError("result", "was read from a folder without its case file; load that case and assess it again")
+
     folder = OutputFolder(out, replace=replace)
     with folder:
         with folder.stage() as tmp:
@@ -525,11 +572,41 @@ def save(result: Assessment, out, *, replace: bool = False, report: bool = True,
     return folder.path
 
 
-def load(folder):
-    """Read a results folder back (checked against the results schema): an :class:`impact.report.Results`."""
-    from .report import load_results
+def load(folder) -> Assessment:
+    """Read a results folder back, every table checked against the results schema: an :class:`Assessment`.
 
-    return load_results(folder)
+    Its ``case`` is read from the case file the manifest names when that file is still there and
+    unchanged (same SHA-256), and is None otherwise; its ``ensemble`` is None.
+    """
+    import json
+
+    from .case import load_case as read_case
+    from .errors import CaseError
+    from .results import load_results, read_table
+
+    res = load_results(folder)  # the manifest and the core tables, checked
+    tables = {str(p.relative_to(res.path)): read_table(p)
+              for p in sorted(res.path.glob("*.csv")) + sorted(res.path.glob("*/*.csv"))}
+    records = {}
+    for p in sorted(res.path.glob("*/*.json")):
+        try:
+            records[str(p.relative_to(res.path))] = json.loads(p.read_bytes().decode("utf-8"))
+        except (ValueError, OSError) as exc:
+            raise ReadError(str(p), "", f"is not readable JSON ({exc}); the results folder is damaged") from None
+    case = None
+    recorded = Path(res.manifest.case.path)
+    if recorded.is_file():
+        try:
+            read = read_case(recorded)
+            case = read if read.sha256 == res.manifest.case.sha256 else None
+        except CaseError:
+            case = None
+    return Assessment(case, None, res.manifest, tables, records, folder=res.path)
+
+
+def report(folder, out=None, paper: str = "a4") -> Path:
+    """Build ``report.pdf`` (or ``out``) of a saved results folder: :func:`build_report`."""
+    return build_report(folder, out, paper=paper)
 
 
 def build_report(folder, out=None, paper: str = "a4") -> Path:

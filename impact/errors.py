@@ -14,7 +14,15 @@ import re
 from typing import Mapping
 
 
-class CaseError(Exception):
+class ImpactError(Exception):
+    """The base of every error impact raises on purpose: catch this to catch them all.
+
+    Each cause has its own subclass (:class:`CaseError`, :class:`SettingError`, :class:`ReadError`,
+    :class:`WriteError`, :class:`InstallationError`); anything else escaping the library is a defect.
+    """
+
+
+class CaseError(ImpactError):
     """A problem with user input, naming the file, the field path and what is allowed.
 
     Parameters
@@ -34,7 +42,7 @@ class CaseError(Exception):
         super().__init__(f"{self.file}: {field}: {message}" if field else f"{self.file}: {message}")
 
 
-class SettingError(Exception):
+class SettingError(ImpactError):
     """A run setting (a keyword of the Python API, a flag of the command line) that is not allowed.
 
     Parameters
@@ -76,11 +84,11 @@ class ReadError(CaseError):
     (permissions, a folder, I/O), or a results folder that is missing, incomplete or damaged."""
 
 
-class InstallationError(Exception):
+class InstallationError(ImpactError):
     """impact's own files (the report templates) are missing: a broken installation, not bad input."""
 
 
-class WriteError(Exception):
+class WriteError(ImpactError):
     """An output (results folder, checkpoint, lock, report) could not be written.
 
     Parameters

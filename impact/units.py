@@ -67,12 +67,18 @@ def unit_warnings(case: Case) -> tuple[str, ...]:
     for label, item in items:
         for f in item.__dataclass_fields__.values():
             ref = getattr(item, f.name)
-            if "Quantity" not in str(f.type) or not isinstance(ref, str) or not params[ref].unit:
+            if "Quantity" not in str(f.type) or not isinstance(ref, str):
                 continue
             words = _time_words(params[ref].unit)
             timed = f.name in PER_TIME_FIELDS or f.name in TIME_FIELDS
             whose = _abundance_of(case, item, f.name)
-            if timed and own and words and words != own:
+            if not params[ref].unit.strip():
+                if not timed and whose is None:
+                    continue  # a dimensionless field: no unit is a fair declaration
+                expected = (f"per {case.time_unit}" if f.name in PER_TIME_FIELDS else
+                            case.time_unit if timed else f"{whose.name}'s unit {whose.unit!r}")
+                problem = f"is missing; the field is in {expected}"
+            elif timed and own and words and words != own:
                 problem = f"names {', '.join(sorted(words))}, but the case's time unit is {case.time_unit!r}"
             elif not timed and words:
                 problem = "names a time unit, but this field has no time in its dimension"
@@ -82,6 +88,6 @@ def unit_warnings(case: Case) -> tuple[str, ...]:
                 continue
             if (ref, f.name) not in seen:
                 seen.add((ref, f.name))
-                out.append(f"parameters.{ref}: unit {params[ref].unit!r} {problem} (it feeds {label}.{f.name}; "
+                out.append(f"parameters.{ref}.unit: {params[ref].unit!r} {problem} (it feeds {label}.{f.name}; "
                            "see README, the units of the model's rates)")
     return tuple(out)
