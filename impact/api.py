@@ -86,8 +86,18 @@ class AssessSettings:
     base_samples: int = 128
     dynamics: bool = True
 
-    def resolved(self, case: Case) -> "AssessSettings":
-        """These settings with the case's values filled in and checked (:class:`SettingError`)."""
+    def resolved(self, case: Case, ensemble: "PosteriorEnsemble | None" = None) -> "AssessSettings":
+        """These settings with the case's values filled in and checked (:class:`SettingError`).
+
+        A reused ``ensemble`` sets the members; ``members``, if given, must equal its size.
+        Resolving resolved settings again changes nothing.
+        """
+        if ensemble is not None:
+            size = len(ensemble.ensemble.draws)
+            if self.members is not None and self.members != size:
+                raise SettingError("members", f"the reused ensemble has {size} members, not {self.members}; "
+                                              "leave `members` out")
+            self = replace(self, members=size)
         members = self.members if self.members is not None else case.members
         seed = self.seed if self.seed is not None else case.seed
         if members < 1:
@@ -172,6 +182,28 @@ def package_versions() -> dict[str, str]:
     return out
 
 
+def case_record(case: Case) -> CaseRecord:
+    """What every manifest records of the case file: where it is, its SHA-256, its title."""
+    return CaseRecord(path=str(Path(case.path).resolve()), sha256=case.sha256, title=case.title,
+                      analyst=case.analyst, description=case.description, invented=case.invented)
+
+
+def run_header(case: Case, command, stages: tuple[str, ...], **entries) -> dict:
+    """The manifest of a run that is not a whole assessment (calibration, prior screen, scan).
+
+    The same header every manifest starts with (tool, version, command, stages, case, packages),
+    then the run's own ``entries``. An assessment's manifest is the typed :class:`Manifest` of
+    :func:`manifest_for`, which records the case the same way (:func:`case_record`).
+    """
+    import sys
+
+    record = case_record(case)
+    return {"tool": "impact", "version": __version__, "command": [str(a) for a in (command or sys.argv)],
+            "stages": list(stages),
+            "case": {"path": record.path, "sha256": record.sha256, "title": record.title, "invented": record.invented},
+            "packages": package_versions(), **entries}
+
+
 def priors_table(case: Case) -> pd.DataFrame:
     rows = []
     for p in case.parameters:
@@ -188,8 +220,7 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
     """The manifest of an assessment: what was run, on what, and everything the report needs of the case."""
     return Manifest(
         tool="impact", version=__version__,
-        case=CaseRecord(path=str(Path(case.path).resolve()), sha256=case.sha256, title=case.title,
-                        analyst=case.analyst, description=case.description, invented=case.invented),
+        case=case_record(case),
         command=tuple(str(a) for a in command), started_utc=started.isoformat(timespec="seconds"),
         seconds=round(seconds, 2), seed=seed, counts=Counts(**ens.counts, failed_by_option=failures),
         time_unit=case.time_unit, horizon=case.horizon, horizons=tuple(case.risk.horizons),
@@ -295,13 +326,9 @@ def calibrate(case: Case | str | Path, members: int | None = None, seed: int | N
     ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
     tables = {"parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
               "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
-    manifest = {"tool": "impact", "version": __version__, "stages": ["calibrate"],
-                "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                         "invented": case.invented},
-                "command": list(command or ["python", "impact.api.calibrate"]),
-                "started_utc": started.isoformat(timespec="seconds"), "seconds": round(time.monotonic() - t0, 2),
-                "seed": seed, "members": len(ens.draws), "counts": ens.counts, "calibration": cal.record(),
-                "packages": package_versions()}
+    manifest = run_header(case, command or ["python", "impact.api.calibrate"], ("calibrate",),
+                          started_utc=started.isoformat(timespec="seconds"), seconds=round(time.monotonic() - t0, 2),
+                          seed=seed, members=len(ens.draws), counts=ens.counts, calibration=cal.record())
     return PosteriorEnsemble(case, ens, cal, manifest, tables)
 
 
@@ -404,12 +431,7 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
     overrides = dict(members=members, seed=seed, sensitivity=sensitivity, base_samples=base_samples, dynamics=dynamics)
     settings = replace(settings or AssessSettings(), **{k: v for k, v in overrides.items() if v is not None})
     executor = executor or InProcess()
-    if ensemble is not None:
-        if settings.members is not None and settings.members != len(ensemble.ensemble.draws):
-            raise SettingError("members", f"the reused ensemble has {len(ensemble.ensemble.draws)} members, not "
-                                          f"{settings.members}; leave `members` out")
-        settings = replace(settings, members=len(ensemble.ensemble.draws))
-    settings = settings.resolved(case)
+    settings = settings.resolved(case, ensemble)
     if settings.dynamics:
         _compile_flow_aside(case)
     try:

@@ -9,17 +9,15 @@ parameters to its flags.
 
 from __future__ import annotations
 
-import sys
 import time
 from dataclasses import dataclass, field
-from dataclasses import replace as replace_settings
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from . import __version__
-from .api import AssessSettings, Assessment, Progress, assess, package_versions, prior_screen, write_results
+from .api import AssessSettings, Assessment, Progress, assess, prior_screen, run_header, write_results
 from .case import Case, unused_parameters
 from .errors import CaseError, SettingError
 from .preload import DYNAMICS_LIBRARIES, REPORT_LIBRARIES, SENSITIVITY_LIBRARIES, preload
@@ -119,13 +117,7 @@ def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool 
     from .outfolder import OutputFolder
 
     given = settings.members is not None
-    if ensemble is not None:  # a reused ensemble sets the members
-        size = len(ensemble.ensemble.draws)
-        if given and settings.members != size:
-            raise SettingError("members", f"the reused ensemble has {size} members, not {settings.members}; "
-                                          "leave `members` out")
-        settings = replace_settings(settings, members=size)
-    settings = settings.resolved(case)
+    settings = settings.resolved(case, ensemble)
     execution.check()
     folder = OutputFolder(out, replace=replace)
     workers = 1 if execution.cluster else (execution.workers or machine_cores())
@@ -161,38 +153,33 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
             + (REPORT_LIBRARIES if report else ()))
     if progress:
         progress(est.describe())
-    executor = execution.executor()
-    try:
-        with folder:  # the lock: one run per results folder
-            if folder.stale_lock and progress:
-                progress(f"took over the lock of a run that is gone (pid {folder.stale_lock.get('pid')})")
-            # a resumed run keeps the chunking of the run it continues (results never depend on it)
-            earlier = Checkpoints.previous(folder.path) if resume else None
-            chunk = ((earlier or {}).get("run_chunk") or execution.chunk_members
-                     or run_chunk_size(settings.members, executor.workers, runs=1 + len(case.options)))
-            block = (earlier or {}).get("draw_block") or draw_block_size(settings.members, executor.workers)
-            fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": settings.seed,
-                           "members": settings.members, "max_draws": case.max_draws, "draw_block": block,
-                           "run_chunk": chunk,
-                           "sensitivity": {"base_samples": settings.base_samples} if settings.sensitivity else None,
-                           "ensemble": None if ensemble is None else ensemble.source}
-            store = Checkpoints(folder.path, fingerprint, resume=resume)
-            saved = len(list(store.dir.glob("*.npz"))) if resume else 0
-            if saved and progress:
-                progress(f"resuming from {saved} saved chunks in {store.dir}")
-            try:
-                result = assess(case, settings, progress=progress, executor=executor, store=store, block=block,
-                                chunk=chunk, command=command, ensemble=ensemble)
-            except CaseError:
-                store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
-                raise
-            with folder.stage() as tmp:
-                text = write_results(result, tmp, report=report, paper=paper, progress=progress)
-            store.discard()
-    except BaseException:
-        executor.abort()  # interrupted or failed: end the workers now, keep the saved chunks
-        raise
-    executor.close()
+    # interrupted or failed: the workers end now and the saved chunks stay
+    with execution.executor() as executor, folder:  # the lock: one run per results folder
+        if folder.stale_lock and progress:
+            progress(f"took over the lock of a run that is gone (pid {folder.stale_lock.get('pid')})")
+        # a resumed run keeps the chunking of the run it continues (results never depend on it)
+        earlier = Checkpoints.previous(folder.path) if resume else None
+        chunk = ((earlier or {}).get("run_chunk") or execution.chunk_members
+                 or run_chunk_size(settings.members, executor.workers, runs=1 + len(case.options)))
+        block = (earlier or {}).get("draw_block") or draw_block_size(settings.members, executor.workers)
+        fingerprint = {"version": __version__, "case_sha256": case.sha256, "seed": settings.seed,
+                       "members": settings.members, "max_draws": case.max_draws, "draw_block": block,
+                       "run_chunk": chunk,
+                       "sensitivity": {"base_samples": settings.base_samples} if settings.sensitivity else None,
+                       "ensemble": None if ensemble is None else ensemble.source}
+        store = Checkpoints(folder.path, fingerprint, resume=resume)
+        saved = len(list(store.dir.glob("*.npz"))) if resume else 0
+        if saved and progress:
+            progress(f"resuming from {saved} saved chunks in {store.dir}")
+        try:
+            result = assess(case, settings, progress=progress, executor=executor, store=store, block=block,
+                            chunk=chunk, command=command, ensemble=ensemble)
+        except CaseError:
+            store.discard()  # the input itself is at fault (no plausible draw, say): nothing to resume
+            raise
+        with folder.stage() as tmp:
+            text = write_results(result, tmp, report=report, paper=paper, progress=progress)
+        store.discard()
     return Written(folder.path, folder.replaced, folder.kept, folder.stale_lock, text, result)
 
 
@@ -206,15 +193,10 @@ def calibrate_to_folder(case: Case, out, *, members: int | None = None, seed: in
     settings = AssessSettings(members=members, seed=seed, sensitivity=False).resolved(case)
     execution.check()
     OutputFolder(out, replace=replace)  # refuse a bad folder before any simulation
-    executor = execution.executor()
-    try:
+    with execution.executor() as executor:
         post = calibrate(case, settings.members, settings.seed, progress=progress, executor=executor,
                          command=command)
         path = save_ensemble(post, out, replace=replace)
-    except BaseException:
-        executor.abort()
-        raise
-    executor.close()
     c = post.manifest["calibration"]
     summary = (f"{len(post.ensemble.draws)} members built by {c['sampler']}: {c['simulations']} simulations, "
                f"acceptance {c['acceptance']:.1%}, {c['seconds']:.1f} s")
@@ -237,26 +219,16 @@ def screen_to_folder(case: Case, settings, out, *, replace: bool = False, execut
     check_settings(settings)
     execution.check()
     folder = OutputFolder(out, replace=replace)
-    executor = execution.executor()
-    try:
-        with folder, folder.stage() as tmp:
-            tables, records, entry = prior_screen(case, settings, progress, executor)
-            for rel, frame in tables.items():
-                write_csv(frame, tmp / rel)
-            for rel, rec in records.items():
-                write_json(rec, tmp / rel)
-            summary = (f"prior screen: {entry['runs']} runs, N = {entry['N']}; {entry['not_converged']} outputs not "
-                       f"converged; indices conditional on: {entry['conditional_on']}")
-            write_json({"tool": "impact", "version": __version__, "command": list(command or sys.argv),
-                        "stages": ["sensitivity"], "seed": settings.seed, "sensitivity": entry,
-                        "packages": package_versions(), "execution": executor.describe(),
-                        "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
-                                 "invented": case.invented}},
-                       tmp / "manifest.json")
-    except BaseException:
-        executor.abort()
-        raise
-    executor.close()
+    with execution.executor() as executor, folder, folder.stage() as tmp:
+        tables, records, entry = prior_screen(case, settings, progress, executor)
+        for rel, frame in tables.items():
+            write_csv(frame, tmp / rel)
+        for rel, rec in records.items():
+            write_json(rec, tmp / rel)
+        summary = (f"prior screen: {entry['runs']} runs, N = {entry['N']}; {entry['not_converged']} outputs not "
+                   f"converged; indices conditional on: {entry['conditional_on']}")
+        write_json(run_header(case, command, ("sensitivity",), seed=settings.seed, sensitivity=entry,
+                              execution=executor.describe()), tmp / "manifest.json")
     return Written(folder.path, folder.replaced, folder.kept, folder.stale_lock, summary, tables=tables)
 
 
@@ -332,16 +304,11 @@ def scan_to_folder(case: Case, scan: ScanSettings, out, *, replace: bool = False
     grid = np.linspace(scan.start, scan.stop, scan.steps)
     folder = OutputFolder(out, replace=replace)
     t0 = time.monotonic()
-    executor = execution.executor()
     with folder, folder.stage() as tmp:
-        try:
+        with execution.executor() as executor:
             table, points, trans = scan_web(case, scan.parameter, grid, settings, option=scan.option,
                                             executor=executor, section=section, continuation=scan.continuation,
                                             progress=progress)
-        except BaseException:
-            executor.abort()
-            raise
-        executor.close()
         tables = {"dynamics/scan.csv": table, "dynamics/scan_points.csv": points, "dynamics/transitions.csv": trans}
         for rel, frame in tables.items():
             write_csv(frame, tmp / rel)
@@ -351,8 +318,7 @@ def scan_to_folder(case: Case, scan: ScanSettings, out, *, replace: bool = False
                                    continuation=scan.continuation, others="every other parameter at its prior median",
                                    declared=declared, seconds=round(seconds, 2), failed=int(points.failed.sum())),
                    tmp / "dynamics" / "dynamics.json")
-        write_json({"tool": "impact", "version": __version__, "command": list(command or sys.argv), "stages": ["scan"],
-                    "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title}},
+        write_json(run_header(case, command, ("scan",), seconds=round(seconds, 2), execution=executor.describe()),
                    tmp / "manifest.json")
     summary = f"{len(grid) / max(seconds, 1e-9):.2f} values per second"
     return Written(folder.path, folder.replaced, folder.kept, folder.stale_lock, summary, tables=tables)

@@ -367,3 +367,27 @@ def test_progress_is_silent_when_asked_or_not_a_terminal(quiet, stream):
 
 def test_in_process_executor_yields_in_task_order():
     assert list(InProcess().map(lambda x: x + 1, [1, 2, 3])) == [(0, 2), (1, 3), (2, 4)]
+
+
+def test_an_executor_block_closes_on_success_and_aborts_on_error():
+    from impact.execute import LocalThreads
+
+    calls = []
+
+    class Recorded(LocalThreads):
+        def close(self):
+            calls.append("close")
+            super().close()
+
+        def abort(self):
+            calls.append("abort")
+            super().abort()
+
+    with Recorded(2) as ex:
+        assert [r for _, r in ex.map(abs, [-1, -2])] == [1, 2]
+    assert calls == ["close"]
+    with pytest.raises(ZeroDivisionError):
+        with Recorded(2) as ex:
+            list(ex.map(lambda x: 1 / x, [1, 0]))
+    assert calls == ["close", "abort"]
+    assert ex._pool is None  # the workers ended with the block
