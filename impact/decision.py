@@ -24,7 +24,7 @@ import pandas as pd
 
 from .case import Case
 from .effects import BASELINE, objective_outcome
-from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, ridge_solve,
+from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values_many, member_slices, ridge_solve,
                   weighted_normal_equations, weighted_sums)
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
@@ -159,17 +159,24 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
     X = np.column_stack([values[n] for n in names])
     choices = [BASELINE, *(o.name for o in case.options)]
     group_names = {g.name for g in case.groups}
+    groups = {g.name: list(g.parameters) for g in case.groups}
+    nbs = [np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices]) for obj in case.objectives]
+    oks = [np.isfinite(nb).all(axis=1) for nb in nbs]
+    # objectives on the same members share the regressions' normal equations (the same numbers as one at a time)
+    vals: dict[int, dict] = {}
+    for mask in {ok.tobytes(): ok for ok in oks}.values():
+        same = [i for i, ok in enumerate(oks) if np.array_equal(ok, mask)]
+        many = information_values_many([nbs[i][mask] for i in same], X[mask], names, groups=groups,
+                                       resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
+        vals.update(zip(same, many))
     rows = []
-    for obj in case.objectives:
-        nb = np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices])
-        ok = np.isfinite(nb).all(axis=1)
-        means = nb[ok].mean(axis=0)
+    for i, obj in enumerate(case.objectives):
+        ok = oks[i]
+        means = nbs[i][ok].mean(axis=0)
         best = int(np.argmax(means))
         # every choice as good as the best (the same members count for all, so ties are exact)
         tied = "; ".join(c for c, m in zip(choices, means) if m == means[best])
-        vals = information_values(nb[ok], X[ok], names, groups={g.name: list(g.parameters) for g in case.groups},
-                                  resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
-        for key, e in vals.items():
+        for key, e in vals[i].items():
             kind = "evpi" if key == "all parameters" else ("group evppi" if key in group_names else "evppi")
             rows.append(dict(objective=obj.name, parameter=key, kind=kind,
                              value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",
