@@ -14,7 +14,10 @@ Two tables, from the members already run (no new simulation):
   every option, and the EVPPI of each parameter (:mod:`impact.voi`). The net benefit of a choice in a
   member is 1 when the member's outcome goes the objective's way (its event happens when wanted, or
   does not when unwanted), else 0, so values are in probability units: how much the chance of a good
-  outcome would rise, on average, if the choice could wait until the number is known exactly.
+  outcome would rise, on average, if the choice could wait until the number is known exactly. The
+  member's chance events (a failed eradication, a bad year) are averaged out, not counted as ignorance:
+  the values are cross-fitted values of regression choice rules (:mod:`impact.voi`). Objectives that
+  share their members share the regressions' normal equations.
 """
 
 from __future__ import annotations

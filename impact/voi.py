@@ -22,8 +22,9 @@ unpenalised (fitted noise of sd ~0.17), and the penalty chosen from the data kee
 members support.
 
 Over-fitting guard: plugging fitted values into ``E[max_d ĝ_d]`` is biased upwards, because the
-maximum picks up the fitted noise (for a 0/1 outcome and a parameter without influence the bias is
-about one point at 1,000 members, as large as real values). So the value is estimated by
+maximum picks up the fitted noise (for a 0/1 outcome with two options at a chance of 0.5 and one
+parameter without influence, the former unpenalised plug-in gave 1.8 ± 0.8 points at 1,000 members,
+measured over 40 seeds, with intervals that excluded 0). So the value is estimated by
 cross-fitting instead: the members are split into FOLDS folds (member i in fold i mod FOLDS, fixed
 before any outcome is seen); for each fold, the choice rule ``d̂(θ) = argmax_d ĝ_d(θ)`` and the
 choice made now ``d₀`` (best mean) are learned from the other folds, and the fold's own realised net
