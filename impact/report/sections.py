@@ -43,31 +43,39 @@ def _detected(r) -> bool:
 
 
 def _information_sentence(obj: str, evpi, params: pd.DataFrame) -> str:
-    names = ["doing nothing (the baseline)" if c == "baseline" else f"“{c}”" for c in str(evpi.best_choice).split("; ")]
+    """The choice made now, its EVPI, and the number most worth measuring only when distinguishable from none."""
+    names = ["doing nothing (the baseline)" if c == "baseline" else f"“{c}”"
+             for c in str(evpi.best_choice).split("; ")]
     best = names[0] if len(names) == 1 else f"{', '.join(names[:-1])} and {names[-1]}, tied"
-    sentence = f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in {fmt_prob(evpi.best_chance)} of members). "
+    sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in {fmt_prob(evpi.best_chance)} "
+                "of members). Knowing every uncertain number exactly would ")
     if _clean(evpi.high) == 0:
-        sentence += f"Knowing every uncertain number exactly would not raise that chance (EVPI {_interval_points(evpi)})"
+        sentence += f"not raise that chance on these members (EVPI {_interval_points(evpi)})"
     elif _detected(evpi):
-        sentence += (f"Knowing every uncertain number exactly would raise that chance by {_interval_points(evpi)} on "
-                     "average (EVPI; chance events that no measurement removes are left out)")
+        sentence += (f"raise that chance by {_interval_points(evpi)} on average (EVPI; chance events that no "
+                     "measurement removes are left out)")
     else:
-        sentence += (f"Knowing every uncertain number exactly would not detectably raise that chance: EVPI "
-                     f"{_interval_points(evpi)}, an interval that reaches 0 (what is left uncertain is chance, or "
-                     "an influence too small to show on these members)")
-    top = params.iloc[0] if len(params) else None
+        sentence += (f"not detectably raise that chance: EVPI {_interval_points(evpi)}, an interval that reaches 0 "
+                     "(what is left uncertain is chance, or an influence too small to show on these members)")
+    return sentence + _worth_measuring(params)
+
+
+def _worth_measuring(params: pd.DataFrame) -> str:
+    if not len(params):
+        return "."
+    top = params.iloc[0]
     found = params[[_detected(r) for _, r in params.iterrows()]]
-    if top is not None and _detected(top):
-        return sentence + f"; the single number most worth measuring is {top.parameter} ({_interval_points(top)}, EVPPI)."
+    if _detected(top):
+        return f"; the single number most worth measuring is {top.parameter} ({_interval_points(top)}, EVPPI)."
     if len(found):
         r = found.iloc[0]
-        return sentence + (f"; {r.parameter} is the number with the largest value of information distinguishable "
-                           f"from none ({_interval_points(r)}, EVPPI); {top.parameter}'s is larger but not distinguishable "
-                           f"from none ({_interval_points(top)}).")
-    if top is not None and _clean(top.value) > 0:
-        return sentence + (f"; no single number's value of information is distinguishable from none on these members "
-                           f"(the largest EVPPI, {top.parameter}, is {_interval_points(top)}).")
-    return sentence + "; no single number is worth measuring for this choice (every EVPPI is zero)."
+        return (f"; {r.parameter} is the number with the largest value of information distinguishable from none "
+                f"({_interval_points(r)}, EVPPI); {top.parameter}'s is larger but not distinguishable from none "
+                f"({_interval_points(top)}).")
+    if _clean(top.value) > 0:
+        return (f"; no single number's value of information is distinguishable from none on these members "
+                f"(the largest EVPPI, {top.parameter}, is {_interval_points(top)}).")
+    return "; no single number is worth measuring for this choice (every EVPPI is zero)."
 
 
 def _information_context(info: pd.DataFrame) -> list[dict]:
