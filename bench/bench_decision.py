@@ -20,6 +20,13 @@ members: main effects 0.094 CPU s against 0.579 s for the former loops (6.2x); v
 draws, no calibration): the 10 % target is not met because the core stage itself got faster.
 In a profile of what is left, the resamples' normal equations (100 x 1,000 members x K² products
 per parameter) take about 40 %, then the spline bases and the fitted values per member (EVPPI).
+
+Since 2026-12-04 the value of information is cross-fitted (impact/voi.py: chance left out, a regression on
+every parameter at once for EVPI) and its reference loop runs each resample's cross-fitted fits alone.
+Measured that day, same machine under load, one run: 0.85 CPU s against 45.3 s (53x), identical tables;
+information_table alone 0.67 CPU s against 0.17 s for the former member-by-member estimator (minimum of 3).
+The batched solves of the every-parameter design (101 resamples x 91 x 91, per fold) and its one
+eigendecomposition per design now lead the profile.
 """
 
 from __future__ import annotations
