@@ -14,7 +14,10 @@ Two tables, from the members already run (no new simulation):
   every option, and the EVPPI of each parameter (:mod:`impact.voi`). The net benefit of a choice in a
   member is 1 when the member's outcome goes the objective's way (its event happens when wanted, or
   does not when unwanted), else 0, so values are in probability units: how much the chance of a good
-  outcome would rise, on average, if the choice could wait until the number is known exactly.
+  outcome would rise, on average, if the choice could wait until the number is known exactly. The
+  member's chance events (a failed eradication, a bad year) are averaged out, not counted as ignorance:
+  the values are cross-fitted values of regression choice rules (:mod:`impact.voi`). Objectives that
+  share their members share the regressions' normal equations.
 """
 
 from __future__ import annotations
@@ -24,7 +27,7 @@ import pandas as pd
 
 from .case import Case
 from .effects import BASELINE, objective_outcome
-from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values, member_slices, ridge_solve,
+from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values_many, member_slices, ridge_solve,
                   weighted_normal_equations, weighted_sums)
 
 DRIVER_COLUMNS = ("option", "output", "species", "parameter", "value", "low", "high", "interval", "level", "n",
@@ -159,17 +162,24 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
     X = np.column_stack([values[n] for n in names])
     choices = [BASELINE, *(o.name for o in case.options)]
     group_names = {g.name for g in case.groups}
+    groups = {g.name: list(g.parameters) for g in case.groups}
+    nbs = [np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices]) for obj in case.objectives]
+    oks = [np.isfinite(nb).all(axis=1) for nb in nbs]
+    # objectives on the same members share the regressions' normal equations (the same numbers as one at a time)
+    vals: dict[int, dict] = {}
+    for mask in {ok.tobytes(): ok for ok in oks}.values():
+        same = [i for i, ok in enumerate(oks) if np.array_equal(ok, mask)]
+        many = information_values_many([nbs[i][mask] for i in same], X[mask], names, groups=groups,
+                                       resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
+        vals.update(zip(same, many))
     rows = []
-    for obj in case.objectives:
-        nb = np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices])
-        ok = np.isfinite(nb).all(axis=1)
-        means = nb[ok].mean(axis=0)
+    for i, obj in enumerate(case.objectives):
+        ok = oks[i]
+        means = nbs[i][ok].mean(axis=0)
         best = int(np.argmax(means))
         # every choice as good as the best (the same members count for all, so ties are exact)
         tied = "; ".join(c for c, m in zip(choices, means) if m == means[best])
-        vals = information_values(nb[ok], X[ok], names, groups={g.name: list(g.parameters) for g in case.groups},
-                                  resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
-        for key, e in vals.items():
+        for key, e in vals[i].items():
             kind = "evpi" if key == "all parameters" else ("group evppi" if key in group_names else "evppi")
             rows.append(dict(objective=obj.name, parameter=key, kind=kind,
                              value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",

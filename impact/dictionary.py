@@ -60,7 +60,9 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "conditional_on": "what the index is conditional on"}),
     "sensitivity/information.csv": ("Value of information per objective: EVPI and EVPPI.", {
         "objective": "objective", "parameter": "parameter, declared group, or all parameters", "kind":
-        "evpi, evppi or group evppi", "value": "rise in the chance of a good outcome (probability units)",
+        "evpi, evppi or group evppi", "value": "rise in the chance of a good outcome (probability units) from knowing the "
+        "number(s) exactly, chance events left out; cross-fitted, clipped at 0 (a lower limit of 0: not "
+        "distinguishable from no value)",
         "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
         "best_choice": "the choice made now (doing nothing = baseline); choices tied for best are joined by \"; \"", "best_chance":
         "its chance of a good outcome", "unit": "unit of value"}),

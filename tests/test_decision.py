@@ -104,13 +104,81 @@ def test_a_failure_probability_shows_its_influence_on_the_target(goats):
     assert row.conditional_on.startswith("plausible ensemble")
 
 
-def test_information_values_of_the_eradication_choice(goats):
-    # choosing between doing nothing (goats never go) and eradicating (they go with chance 1 − f): eradicating is
-    # better in every member whatever f, so knowing f cannot change the choice: EVPI = EVPPI = 0
-    _, info = goats
-    assert set(info.parameter) == {"all parameters", "fail", "goat_r"}
-    assert (info.value.abs() < 1e-9).all()
-    assert (info.best_choice == "eradicate").all() and abs(info.best_chance.iloc[0] - 0.6) < 0.06
+def _two_method_case(members: int = 1000) -> dict:
+    """Goats and pigs, each removed by shooting or by trapping. Shooting goats fails with an uncertain chance
+    f ~ U(0, 1); trapping goats fails with a fixed 0.5; both methods fail with a fixed 0.5 on pigs. goat_r and
+    pig_r do not decide whether a species is gone (a failed removal leaves half the animals, which persist)."""
+    d = _goat_case(members)
+    d["parameters"]["fail"]["high"] = 1.0
+    d["parameters"]["pig_r"] = {"distribution": "uniform", "low": 0.5, "high": 1.0, "unit": "1/year", "source": "test"}
+    d["species"].append({"name": "pig", "growth": "logistic", "growth_rate": "pig_r", "carrying_capacity": 100.0,
+                         "initial": 100.0, "quasi_extinction": 1.0, "role": "target"})
+    d["interventions"] = [
+        {"name": "shoot goats", "kind": "eradication", "species": "goat", "time": 1.0, "failure_probability": "fail",
+         "residual_fraction": 0.5},
+        {"name": "trap goats", "kind": "eradication", "species": "goat", "time": 1.0, "failure_probability": 0.5,
+         "residual_fraction": 0.5},
+        {"name": "shoot pigs", "kind": "eradication", "species": "pig", "time": 1.0, "failure_probability": 0.5,
+         "residual_fraction": 0.5},
+        {"name": "trap pigs", "kind": "eradication", "species": "pig", "time": 1.0, "failure_probability": 0.5,
+         "residual_fraction": 0.5}]
+    d["options"] = [{"name": "shooting", "interventions": ["shoot goats", "shoot pigs"]},
+                    {"name": "trapping", "interventions": ["trap goats", "trap pigs"]}]
+    d["objectives"].append({"name": "pigs gone", "species": "pig", "measure": "quasi_extinction", "horizon": 10.0,
+                            "chance_at_least": 0.5})
+    return d
+
+
+@pytest.fixture(scope="module")
+def two_methods(tmp_path_factory):
+    case = load_case(write_case(tmp_path_factory.mktemp("two"), _two_method_case()))
+    ens = draw_ensemble(case, case.members, case.seed)
+    runs = assess_members(case, ens, case.seed)
+    return information_table(case, ens.values, runs, case.seed)
+
+
+def test_information_values_of_the_eradication_choice(two_methods):
+    """Goats go with chance 1 − f by shooting (f ~ U(0, 1)) and 0.5 by trapping; doing nothing never removes them.
+    Now both methods give 0.5 on average (E[1 − f] = 0.5); knowing f, one shoots when f < 0.5:
+    E[max(1 − f, 0.5)] = ∫₀^0.5 (1 − f) df + 0.5 · 0.5 = 0.375 + 0.25 = 0.625, so EVPI = EVPPI(fail) = 0.125
+    (closed form of the definition, Strong, Oakley & Brennan 2014, eq. 1; the methods' failures are chance).
+    goat_r and pig_r cannot change the choice: EVPPI 0.
+
+    One ensemble of 1,000 members (the case's seed). Margins: the estimator's sd here is about 2.2 points (0/1
+    outcomes of the half of the members where the rule switches: √(0.5 · 0.5 / 1000) ≈ 0.016, plus the bootstrap's
+    own spread, read off the interval's width when the test was written). The interval must cover 0.125 within
+    2 points (about 3 sd with the interval's own 2 sd: false failure ~0.5 %) and the lower limit be above 0
+    (0.125 is 5.7 sd from 0: false failure ~1e-4). The pig objective (chance only) and the irrelevant parameters
+    have lower limit 0 (one-sided level 2.5 % each, ~7 % for the four together, an upper bound: these estimates
+    are below 0 on average under their null) and value below 3 points (4 sd of a null estimate of sd ~0.7 points)."""
+    info = two_methods.set_index(["objective", "parameter"])
+    assert set(two_methods.parameter) == {"all parameters", "fail", "goat_r", "pig_r"}
+    for key in ("all parameters", "fail"):
+        r = info.loc[("goats gone", key)]
+        assert r.low - 0.02 <= 0.125 <= r.high + 0.02 and r.low > 0, (key, r.value, r.low, r.high)
+    for key in ("goat_r", "pig_r"):
+        r = info.loc[("goats gone", key)]
+        assert r.low == 0.0 and r.value < 0.03, (key, r.value)
+    # chance only: each method removes the pigs with a fixed 0.5, whatever the parameters: EVPI 0 within its interval
+    # (the member-by-member maximum of outcomes would give about 0.25)
+    r = info.loc[("pigs gone", "all parameters")]
+    assert r.low == 0.0 and r.value < 0.03, (r.value, r.low, r.high)
+    goats = two_methods[two_methods.objective == "goats gone"]
+    assert set(goats.best_choice.iloc[0].split("; ")) <= {"shooting", "trapping"}
+    assert abs(goats.best_chance.iloc[0] - 0.5) < 0.06
+
+
+def test_the_summary_names_only_a_number_distinguishable_from_no_value(two_methods):
+    """The sentence names "the single number most worth measuring" only when its EVPPI's lower limit is above 0:
+    fail for the goats (EVPPI 0.125, above), never pig_r or goat_r; for the pigs it says the value is not detectable."""
+    from types import SimpleNamespace
+
+    from impact.report import hinges_text
+    text = hinges_text(SimpleNamespace(sensitivity={"information": two_methods}))
+    goats, pigs = (line for line in text.splitlines() if line.startswith("Choosing now"))
+    assert "the single number most worth measuring is fail" in goats
+    assert "most worth measuring" not in pigs and "would not" in pigs
+    assert "pig_r" not in text.replace("the largest EVPPI, pig_r", "") or "distinguishable from none" in pigs
 
 
 def test_the_sensitivity_section_keeps_its_page_budget(tmp_path):

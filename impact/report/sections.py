@@ -32,24 +32,58 @@ def _explains(r) -> bool:
     return float(r.value) >= VISIBLE_SHARE and np.isfinite(float(r.low)) and np.isfinite(float(r.high))
 
 
+def _interval_points(r) -> str:
+    return f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, {fmt_bare_points(_clean(r.high))}]"
+
+
+def _detected(r) -> bool:
+    """A value of information distinguishable from none: its lower limit is above 0 (the estimator's
+    value for a number without influence is at most 0 on average; see impact.voi)."""
+    return _clean(r.low) > 0
+
+
+def _information_sentence(obj: str, evpi, params: pd.DataFrame) -> str:
+    """The choice made now, its EVPI, and the number most worth measuring only when distinguishable from none."""
+    names = ["doing nothing (the baseline)" if c == "baseline" else f"“{c}”"
+             for c in str(evpi.best_choice).split("; ")]
+    best = names[0] if len(names) == 1 else f"{', '.join(names[:-1])} and {names[-1]}, tied"
+    sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in {fmt_prob(evpi.best_chance)} "
+                "of members). Knowing every uncertain number exactly would ")
+    if _clean(evpi.high) == 0:
+        sentence += f"not raise that chance on these members (EVPI {_interval_points(evpi)})"
+    elif _detected(evpi):
+        sentence += (f"raise that chance by {_interval_points(evpi)} on average (EVPI; chance events that no "
+                     "measurement removes are left out)")
+    else:
+        sentence += (f"not detectably raise that chance: EVPI {_interval_points(evpi)}, an interval that reaches 0 "
+                     "(what is left uncertain is chance, or an influence too small to show on these members)")
+    return sentence + _worth_measuring(params)
+
+
+def _worth_measuring(params: pd.DataFrame) -> str:
+    if not len(params):
+        return "."
+    top = params.iloc[0]
+    found = params[[_detected(r) for _, r in params.iterrows()]]
+    if _detected(top):
+        return f"; the single number most worth measuring is {top.parameter} ({_interval_points(top)}, EVPPI)."
+    if len(found):
+        r = found.iloc[0]
+        return (f"; {r.parameter} is the number with the largest value of information distinguishable from none "
+                f"({_interval_points(r)}, EVPPI); {top.parameter}'s is larger but not distinguishable from none "
+                f"({_interval_points(top)}).")
+    if _clean(top.value) > 0:
+        return (f"; no single number's value of information is distinguishable from none on these members "
+                f"(the largest EVPPI, {top.parameter}, is {_interval_points(top)}).")
+    return "; no single number is worth measuring for this choice (every EVPPI is zero)."
+
+
 def _information_context(info: pd.DataFrame) -> list[dict]:
     out = []
     for obj, g in info.groupby("objective", sort=False):
         evpi = g[g.kind == "evpi"].iloc[0]
-        params = g[g.kind == "evppi"].sort_values("value", ascending=False)
-        top = params.iloc[0] if len(params) else None
-        names = ["doing nothing (the baseline)" if c == "baseline" else f"“{c}”" for c in str(evpi.best_choice).split("; ")]
-        best = names[0] if len(names) == 1 else f"{', '.join(names[:-1])} and {names[-1]}, tied"
-        sentence = (f"Choosing now, the best choice for “{obj}” is {best} (a good outcome in "
-                    f"{fmt_prob(evpi.best_chance)} of members). Knowing every uncertain number exactly would raise that "
-                    f"chance by {fmt_points(_clean(evpi.value))} [{fmt_bare_points(_clean(evpi.low))}, "
-                    f"{fmt_bare_points(_clean(evpi.high))}] on average (EVPI)")
-        if top is not None and _clean(top.value) > 0:
-            sentence += (f"; the single number most worth measuring is {top.parameter} "
-                         f"({fmt_points(_clean(top.value))} [{fmt_bare_points(_clean(top.low))}, "
-                         f"{fmt_bare_points(_clean(top.high))}], EVPPI).")
-        else:
-            sentence += "; no single number is worth measuring for this choice (every EVPPI is zero)."
+        params = g[g.kind == "evppi"].sort_values("value", ascending=False, kind="stable")
+        sentence = _information_sentence(obj, evpi, params)
         shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"]])
         rows = [dict(parameter=r.parameter + (" (group)" if r.kind == "group evppi" else ""),
                      value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
