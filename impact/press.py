@@ -45,7 +45,6 @@ from .timescales import equilibrium
 # Dambacher et al. (2002; 2003) read a weighted prediction of 0.5 or more as a sign that holds
 # for most interaction strengths (their simulations; the threshold is recalled from memory).
 LIKELY_WEIGHT = 0.5
-CONFIDENCE = 0.95
 # A member's response counts as zero below this fraction of the largest response to the same press:
 # its equilibrium is found to a relative residual of about 1e-6 (impact.timescales), and the
 # per-capita growth left over leaves responses up to ~1e-5 of the largest where the exact one is 0
@@ -221,19 +220,25 @@ def baseline_responses(case: Case, params: WebParams, values: dict, baseline, co
 
     web = build_web(case)
     sel = np.flatnonzero(~np.asarray(baseline.failed, bool))
-    sub = WebParams(*(getattr(params, f)[sel] for f in WebParams.__dataclass_fields__))
+    sub = _rows(params, sel)
     vals = {k: np.asarray(v)[sel] for k, v in values.items()}
     S = web.n_species
     t_last = case.horizon - 1e-9 * max(case.horizon, 1.0)
     c = controls_at(case, None, vals, t_last, season_mean_phi(case, sel.size), sel.size, S, season_averaged=True)
     start = np.asarray(baseline.final, float)[sel]
     resp, counted = member_press_responses(web, sub, c, start, community.columns)
-    if not counted.all():
+    rest = np.flatnonzero(~counted)
+    if rest.size:
         start[:, :S] = np.asarray(baseline.mean, float)[sel, baseline.slot(case.horizon), :S]
-        again, second = member_press_responses(web, sub, c, start, community.columns)
-        resp[~counted & second] = again[~counted & second]
-        counted |= second
+        again, second = member_press_responses(web, _rows(sub, rest), _rows(c, rest), start[rest], community.columns)
+        resp[rest[second]] = again[second]
+        counted[rest[second]] = True
     return response_signs(resp[counted]), int(sel.size)
+
+
+def _rows(arrays, rows: np.ndarray):
+    """A dataclass of per-member arrays (parameters, controls) restricted to ``rows``."""
+    return type(arrays)(*(getattr(arrays, f)[rows] for f in arrays.__dataclass_fields__))
 
 
 def _predicted(net: int, terms: int, push: int) -> tuple[str, int | None]:
@@ -248,7 +253,8 @@ def _basis(weight: float) -> str:
     return BASIS[0] if weight >= 1.0 else BASIS[1] if weight >= LIKELY_WEIGHT else BASIS[2]
 
 
-def press_rows(community: Community, prediction: PressPrediction, pushes, signs: np.ndarray) -> pd.DataFrame:
+def press_rows(community: Community, prediction: PressPrediction, pushes, signs: np.ndarray,
+               confidence: float = 0.95) -> pd.DataFrame:
     """press_signs.csv from the structure's prediction and the members' response signs.
 
     Parameters
@@ -256,6 +262,8 @@ def press_rows(community: Community, prediction: PressPrediction, pushes, signs:
     pushes : list of (option, intervention, species, push)
     signs : ndarray (c, k, k) int
         Members' response signs to a positive press (c may be 0).
+    confidence : float
+        Level of the exact binomial interval on the share of members that agree.
     """
     index = {name: i for i, name in enumerate(community.names)}
     weight = prediction.weight
@@ -268,13 +276,13 @@ def press_rows(community: Community, prediction: PressPrediction, pushes, signs:
             member = push * signs[:, i, j]
             n = int(member.size)
             agree = int((member == sign).sum()) if sign is not None else None
-            lo, hi = clopper_pearson(agree, n, CONFIDENCE) if agree is not None else (np.nan, np.nan)
+            lo, hi = clopper_pearson(agree, n, confidence) if agree is not None else (np.nan, np.nan)
             rows.append(dict(option=option, intervention=iv, pressed=pressed, press="increase" if push > 0 else "decrease",
                              species=species, net=net, terms=terms, weight=float(weight[i, j]), predicted=predicted,
                              basis=_basis(float(weight[i, j])), n=n,
                              agree=float(agree) if agree is not None else np.nan,
                              value=agree / n if agree is not None and n else np.nan, low=float(lo), high=float(hi),
-                             interval="clopper_pearson", level=CONFIDENCE, increase=int((member > 0).sum()),
+                             interval="clopper_pearson", level=confidence, increase=int((member > 0).sum()),
                              decrease=int((member < 0).sum())))
     return pd.DataFrame(rows, columns=list(COLUMNS))
 
@@ -299,4 +307,4 @@ def press_table(case: Case, params: WebParams, values: dict, baseline) -> tuple[
     record = {"nodes": list(community.names), "signs": community.signs.tolist(),
               "determinant": int(prediction.determinant), "unresolved": [list(p) for p in community.unresolved],
               "members_tried": tried, "members_compared": int(signs.shape[0])}
-    return press_rows(community, prediction, pushes, signs), record
+    return press_rows(community, prediction, pushes, signs, case.risk.confidence), record

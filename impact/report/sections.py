@@ -185,10 +185,20 @@ CONTRADICTED = 0.5
 
 
 def _agreement(r) -> str:
+    if not int(r.n):
+        return "no member"
     if not np.isfinite(float(r.value)):
-        return (f"rises in {int(r.increase)}, falls in {int(r.decrease)} of {int(r.n)}" if int(r.n) else "no member")
-    return (f"{fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}] of {int(r.n)}"
-            if int(r.n) else "no member")
+        return "— (no structural sign)"
+    return f"{fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
+
+
+def _members_move(r) -> str:
+    """The members' own direction: the shares that rise and fall (the rest do not move)."""
+    n = int(r.n)
+    if not n:
+        return "no member"
+    parts = [f"{word} in {fmt_prob(k / n)}" for word, k in (("rises", int(r.increase)), ("falls", int(r.decrease))) if k]
+    return ", ".join(parts) if parts else "does not move"
 
 
 def _press_sentences(g: pd.DataFrame) -> list[str]:
@@ -209,9 +219,11 @@ def _press_sentences(g: pd.DataFrame) -> list[str]:
                    + ", ".join(loose.species) + ".")
     against = g[(g.n > 0) & np.isfinite(g.value.astype(float)) & (g.value.astype(float) < CONTRADICTED)]
     if len(against):
-        out.append("The members' own equilibria contradict the structural sign for " + ", ".join(against.species)
-                   + ": in most members the effects the signed web leaves out (saturating feeding, shared handling "
-                     "time) or the strengths outweigh it; read the members' direction, not the structure's.")
+        out.append("Most members contradict the structural sign: "
+                   + "; ".join(f"{r.species} {_members_move(r)} of them (structure: {_MOVES[r.predicted]})"
+                               for _, r in against.iterrows())
+                   + ". There the interaction strengths, or effects the signed web leaves out (saturating feeding, "
+                     "shared handling time), outweigh the structure: read the members' direction.")
     return out
 
 
@@ -226,14 +238,15 @@ def press_context(res: Results) -> dict | None:
         g = g.drop_duplicates("species")
         opts = ", ".join(f"“{o}”" for o in dict.fromkeys(t[(t.intervention == iv)].option))
         rows = [dict(species=r.species, predicted=_MOVES[r.predicted], weight=fmt_index(r.weight),
-                     basis=r.basis, agree=_agreement(r)) for _, r in g.iterrows()]
+                     basis=r.basis, members=_members_move(r), agree=_agreement(r)) for _, r in g.iterrows()]
         groups.append(dict(title=f"A sustained push {'down' if push == 'decrease' else 'up'} on {pressed} "
                                  f"({iv}; {'option' if ',' not in opts else 'options'} {opts})",
                            sentences=_press_sentences(g), rows=rows))
     tried, compared = rec.get("members_tried"), rec.get("members_compared")
     members = (f"{compared} of {tried} plausible members reach a stable baseline equilibrium that keeps every species; "
-               "their own responses are compared." if tried else "")
+               "each member's own response there (−J⁻¹ of its Jacobian) is compared." if tried else "")
     det = rec.get("determinant")
-    return dict(groups=groups, members=members, unstable=det is not None and det <= 0,
+    level = fmt_num(100 * float(t.level.iloc[0])) if len(t) else ""
+    return dict(groups=groups, members=members, level=level, unstable=det is not None and det <= 0,
                 unresolved=[f"{a} from {b}" for a, b in rec.get("unresolved", [])],
                 nodes=", ".join(rec.get("nodes", [])))
