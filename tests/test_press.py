@@ -280,3 +280,29 @@ def test_members_agree_wherever_the_structure_decides(tmp_path):
     apex = table[(table.option == "apex only")].set_index("species")
     assert list(apex.predicted[["bird", "meso", "apex"]]) == ["decrease", "increase", "decrease"]
     assert list(apex.net[["bird", "meso", "apex"]]) == [1, -2, 1] and (apex.weight == 1.0).all()
+
+
+def test_report_section_reads_the_saved_table(tmp_path):
+    # the assessment's decision stage writes press_signs.csv and .json; the report's section is
+    # drawn from them alone: its sentences and cells quote the saved rows
+    pypdf = pytest.importorskip("pypdf")
+    from casefiles import mesopredator_case
+
+    import impact.api as api
+    from impact.results import load_results
+
+    case = _load(tmp_path, mesopredator_case(members=40))
+    result = api.assess(case, api.AssessSettings(members=40, sensitivity=True, dynamics=False))
+    assert "press" in result.manifest.stages
+    folder = api.save(result, tmp_path / "out")
+    saved = load_results(folder)
+    record = saved.press_record
+    # three presses (the apex in both options, the meso in one) x three species
+    assert saved.press is not None and len(saved.press) == 9
+    text = " ".join(p.extract_text() for p in pypdf.PdfReader(str(folder / "report.pdf")).pages)
+    text = " ".join(text.split())
+    assert "What the structure alone decides" in text
+    assert "A sustained push down on apex (apex removal" in text
+    assert ("Decided by the structure alone (no interaction strengths can reverse it): bird falls, meso rises, "
+            "apex falls") in text
+    assert f"{record['members_compared']} of {record['members_tried']} plausible members" in text
