@@ -233,13 +233,16 @@ def press_context(res: Results) -> dict | None:
     if t is None:
         return None
     rec = res.press_record or {}
+    acts_on = {iv.name: iv.species for iv in res.manifest.interventions}
     groups = []
     for (iv, pressed, push), g in t.groupby(["intervention", "pressed", "press"], sort=False):
         g = g.drop_duplicates("species")
         opts = ", ".join(f"“{o}”" for o in dict.fromkeys(t[(t.intervention == iv)].option))
         rows = [dict(species=r.species, predicted=_MOVES[r.predicted], weight=fmt_index(r.weight),
                      basis=r.basis, members=_members_move(r), agree=_agreement(r)) for _, r in g.iterrows()]
-        groups.append(dict(title=f"A sustained push {'down' if push == 'decrease' else 'up'} on {pressed} "
+        via = acts_on.get(iv, pressed)
+        through = f", through the births of {via}," if via != pressed else ""
+        groups.append(dict(title=f"A sustained push {'down' if push == 'decrease' else 'up'} on {pressed}{through} "
                                  f"({iv}; {'option' if ',' not in opts else 'options'} {opts})",
                            sentences=_press_sentences(g), rows=rows))
     tried, compared = rec.get("members_tried"), rec.get("members_compared")
