@@ -193,12 +193,14 @@ def _agreement(r) -> str:
 
 
 def _members_move(r) -> str:
-    """The members' own direction: the shares that rise and fall (the rest do not move)."""
+    """The members' own direction: the shares that rise, fall and do not move."""
     n = int(r.n)
     if not n:
         return "no member"
-    parts = [f"{word} in {fmt_prob(k / n)}" for word, k in (("rises", int(r.increase)), ("falls", int(r.decrease))) if k]
-    return ", ".join(parts) if parts else "does not move"
+    up, down = int(r.increase), int(r.decrease)
+    parts = [f"{word} in {fmt_prob(k / n)}" for word, k in (("rises", up), ("falls", down),
+                                                             ("does not move", n - up - down)) if k]
+    return ", ".join(parts)
 
 
 def _press_sentences(g: pd.DataFrame) -> list[str]:
@@ -241,7 +243,7 @@ def press_context(res: Results) -> dict | None:
         rows = [dict(species=r.species, predicted=_MOVES[r.predicted], weight=fmt_index(r.weight),
                      basis=r.basis, members=_members_move(r), agree=_agreement(r)) for _, r in g.iterrows()]
         via = acts_on.get(iv, pressed)
-        through = f", through the births of {via}," if via != pressed else ""
+        through = f", through the births of {via}" if via != pressed else ""
         groups.append(dict(title=f"A sustained push {'down' if push == 'decrease' else 'up'} on {pressed}{through} "
                                  f"({iv}; {'option' if ',' not in opts else 'options'} {opts})",
                            sentences=_press_sentences(g), rows=rows))
