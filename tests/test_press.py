@@ -110,6 +110,8 @@ def test_exact_zero_responses_that_floating_point_misses():
     cancel = (p.net == 0) & (p.terms > 0)
     assert cancel.any()
     floating = np.sign(-np.linalg.inv(a.astype(float)))
+    # precondition on this example (a regression pin on LAPACK's rounding, not on the method):
+    # should a future LAPACK round this web's cancellations to exact zeros, pick another seed
     assert (floating[cancel] != 0).any(), "this web no longer tells exact from floating arithmetic"
     assert (p.sign[cancel] == 0).all()
     # an independent exact reference: adj(-A) = det(-A) (-A)^-1 by Gauss-Jordan on fractions
