@@ -274,13 +274,18 @@ def prior_screen(case: Case, settings, progress: Progress | None = None, executo
 
 def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, tables: dict,
                     records: dict, progress, executor, store) -> tuple[list[str], dict | None]:
-    """What the decision hinges on (kept members) and the Sobol screen of the prior box.
+    """What the decision hinges on (kept members), the structure's press responses and the Sobol screen of the prior box.
 
     Adds the stage's tables and records; returns the stages run and the manifest's entry.
     """
     from .sensitivity import Settings as ScreenSettings
 
-    stages = []
+    from .press import press_table
+
+    if progress:
+        progress("press responses: the web's structure and the members")
+    tables["press_signs.csv"], records["press_signs.json"] = press_table(case, ens.params, ens.values, runs["baseline"])
+    stages = ["press"]
     if case.uncertain:
         if progress:
             progress("sensitivity and value of information on the plausible members")

@@ -100,6 +100,20 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "basis": "what was measured"}),
     "dynamics/risk_by_regime.csv": ("Risk metrics within each regime, per option.", {
         "option": "run", "regime": "regime", "species": "species", "metric": "metric", "value": "value"}),
+    "press_signs.csv": ("What the web's structure alone decides: the sign of each species' response to a sustained "
+                        "press on a species an option acts on (loop analysis), and how often the members agree.", {
+        "option": "option", "intervention": "the option's intervention read as the press", "pressed":
+        "species whose growth it pushes (for fertility control or sterile releases on an adult stage, its juveniles, "
+        "into which its births are born)", "press": "decrease or increase: the direction it pushes that species' growth",
+        "species": "responding species (or carrion)", "net": "net number of complementary feedback terms, adj(−A), "
+        "for a positive press (an exact integer)", "terms": "total number of those terms (absolute feedback matrix)",
+        "weight": "weighted prediction |net| / terms (1 where no term links the two: no response)",
+        "predicted": "increase, decrease, no change or unresolved (terms cancel), under this option's press",
+        "basis": "structure alone (weight 1), structure, mostly (weight at least 0.5) or interaction strengths",
+        "n": "members at a stable baseline equilibrium with every species present, compared", "agree":
+        "members whose own press response (−J⁻¹ of their Jacobian) has the predicted sign (blank when unresolved)",
+        "value": "agree / n", "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL,
+        "increase": "members whose species rises under this press", "decrease": "members whose species falls"}),
     "calibration/posterior.csv": ("Prior against posterior for each uncertain parameter: what the monitoring data "
                                   "and the constraints taught.", {
         "parameter": "uncertain parameter", "unit": "its unit", "prior_q05": "5 % prior quantile",

@@ -177,6 +177,9 @@ TABLES = {
                           ("value", "section_value", "period", "lyapunov")),
     "dynamics/transitions.csv": (("parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"),
                                  ("from_value", "to_value")),
+    "press_signs.csv": (("option", "intervention", "pressed", "press", "species", "net", "terms", "weight", "predicted",
+                         "basis", "n", "agree", "value", "low", "high", "interval", "level", "increase", "decrease"),
+                        ("net", "terms", "weight", "n", "agree", "value", "low", "high", "level", "increase", "decrease")),
 }
 
 
@@ -333,7 +336,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
-    "informed",
+    "informed", "intervention", "pressed", "press", "predicted",
 }
 
 @dataclass
@@ -354,6 +357,8 @@ class Results:
     sensitivity: dict | None = None
     dynamics: dict | None = None
     calibration: dict | None = None
+    press: pd.DataFrame | None = None  # press_signs.csv (None in folders written before it existed)
+    press_record: dict | None = None  # press_signs.json
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -387,13 +392,20 @@ def read_stage(folder: Path) -> dict | None:
         if p.suffix == ".csv":
             out[p.stem] = read_table(p)
         elif p.suffix == ".json":
-            try:
-                out[p.stem] = json.loads(p.read_bytes().decode("utf-8"))
-            except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-                raise ReadError(str(p), "", f"is not valid UTF-8 JSON ({exc}); the results folder is damaged") from None
-            except OSError as exc:
-                raise ReadError(str(p), "", f"cannot be read ({exc.strerror or exc})") from None
+            out[p.stem] = read_record(p)
     return out or None
+
+
+def read_record(p: Path) -> dict:
+    """A JSON record of a results folder, refused with the file named when damaged."""
+    try:
+        return json.loads(p.read_bytes().decode("utf-8"))
+    except FileNotFoundError:
+        raise ReadError(str(p.parent), p.name, "not found; the results folder is incomplete") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise ReadError(str(p), "", f"is not valid UTF-8 JSON ({exc}); the results folder is damaged") from None
+    except OSError as exc:
+        raise ReadError(str(p), "", f"cannot be read ({exc.strerror or exc})") from None
 
 
 def load_results(path) -> Results:
@@ -402,10 +414,13 @@ def load_results(path) -> Results:
     if not path.is_dir():
         raise ReadError(str(path), "", "is not a results directory (run `impact assess` first)")
     manifest = read_manifest(path)
+    press = read_table(path / "press_signs.csv") if (path / "press_signs.csv").is_file() else None
+    record = read_record(path / "press_signs.json") if press is not None else None
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
-                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"))
+                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"),
+                   press, record)
 
 
 def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):

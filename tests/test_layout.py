@@ -29,7 +29,7 @@ STAGES = [
      "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},
-    {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
+    {"decision", "loops", "press", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"chart", "cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},

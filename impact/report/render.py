@@ -13,7 +13,7 @@ from ..results import Results, load_results, write_file_atomic
 from ..verdict import reading, thin_run
 from ..webfigure import food_web_svg
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
-from .sections import dynamics_context, sensitivity_context
+from .sections import dynamics_context, press_context, sensitivity_context
 from .tables import comparisons_context, effects_table_context, iucn_rows, objectives_context, risk_table_context
 
 PAPERS = {"a4": "A4", "letter": "letter"}
@@ -47,7 +47,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         species=m.species, interactions=m.interactions, equations=m.equations,
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
         interventions=m.interventions, options=options, iucn=iucn_rows(res),
-        sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets),
+        sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets), press=press_context(res),
         calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
         horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},

@@ -1,4 +1,4 @@
-"""The report's sensitivity and dynamics sections, and the terminal's sentences on what the decision hinges on."""
+"""The report's sensitivity, press-sign and dynamics sections, and the terminal's sentences on what the decision hinges on."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from ..cautions import share_text
-from ..formatting import fmt_bare_points, fmt_index, fmt_num, fmt_points, fmt_prob
+from ..formatting import fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
 from ..results import Results
 from .figures import Assets, distribution_figure, regime_figure, scan_figure
 
@@ -210,3 +210,82 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
     return ctx
 
 
+
+
+# ----------------------------------------------------------------------------- what the structure alone decides
+_MOVES = {"increase": "rises", "decrease": "falls", "no change": "does not move", "unresolved": "unresolved"}
+# below this share of agreeing members a structural sign is contradicted by the members themselves
+CONTRADICTED = 0.5
+
+
+def _agreement(r) -> str:
+    if not int(r.n):
+        return "no member"
+    if not np.isfinite(float(r.value)):
+        return "— (no structural sign)"
+    return f"{fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
+
+
+def _members_move(r) -> str:
+    """The members' own direction: the shares that rise, fall and do not move."""
+    n = int(r.n)
+    if not n:
+        return "no member"
+    up, down = int(r.increase), int(r.decrease)
+    parts = [f"{word} in {fmt_prob(k / n)}" for word, k in (("rises", up), ("falls", down),
+                                                             ("does not move", n - up - down)) if k]
+    return ", ".join(parts)
+
+
+def _press_sentences(g: pd.DataFrame) -> list[str]:
+    """Plain sentences on one press: what the structure settles, what the strengths settle, what members contradict."""
+    def names(rows):
+        return ", ".join(f"{r.species} {_MOVES[r.predicted]}" for _, r in rows.iterrows())
+
+    out = []
+    sure = g[g.basis == "structure alone"]
+    mostly = g[g.basis == "structure, mostly"]
+    loose = g[g.basis == "interaction strengths"]
+    out.append(f"Decided by the structure alone (no interaction strengths can reverse it): {names(sure)}."
+               if len(sure) else "No response is decided by the structure alone.")
+    if len(mostly):
+        out.append(f"Likely from the structure (weighted prediction 0.5 or more): {names(mostly)}.")
+    if len(loose):
+        out.append("Left to the interaction strengths (the chains of effects point both ways): "
+                   + ", ".join(loose.species) + ".")
+    against = g[(g.n > 0) & np.isfinite(g.value.astype(float)) & (g.value.astype(float) < CONTRADICTED)]
+    if len(against):
+        out.append("Most members contradict the structural sign: "
+                   + "; ".join(f"{r.species} {_members_move(r)} of them (structure: {_MOVES[r.predicted]})"
+                               for _, r in against.iterrows())
+                   + ". There the interaction strengths, or effects the signed web leaves out (saturating feeding, "
+                     "shared handling time), outweigh the structure: read the members' direction.")
+    return out
+
+
+def press_context(res: Results) -> dict | None:
+    """The section "What the structure alone decides", from press_signs.csv and press_signs.json."""
+    t = res.press
+    if t is None:
+        return None
+    rec = res.press_record or {}
+    acts_on = {iv.name: iv.species for iv in res.manifest.interventions}
+    groups = []
+    for (iv, pressed, push), g in t.groupby(["intervention", "pressed", "press"], sort=False):
+        g = g.drop_duplicates("species")
+        opts = ", ".join(f"“{o}”" for o in dict.fromkeys(t[(t.intervention == iv)].option))
+        rows = [dict(species=r.species, predicted=_MOVES[r.predicted], weight=fmt_index(r.weight),
+                     basis=r.basis, members=_members_move(r), agree=_agreement(r)) for _, r in g.iterrows()]
+        via = acts_on.get(iv, pressed)
+        through = f", through the births of {via}" if via != pressed else ""
+        groups.append(dict(title=f"A sustained push {'down' if push == 'decrease' else 'up'} on {pressed}{through} "
+                                 f"({iv}; {'option' if ',' not in opts else 'options'} {opts})",
+                           sentences=_press_sentences(g), rows=rows))
+    tried, compared = rec.get("members_tried"), rec.get("members_compared")
+    members = (f"{compared} of {tried} plausible members reach a stable baseline equilibrium that keeps every species; "
+               "each member's own response there (−J⁻¹ of its Jacobian) is compared." if tried else "")
+    det = rec.get("determinant")
+    level = fmt_num(100 * float(t.level.iloc[0])) if len(t) else ""
+    return dict(groups=groups, members=members, level=level, unstable=det is not None and det <= 0,
+                unresolved=[f"{a} from {b}" for a, b in rec.get("unresolved", [])],
+                nodes=", ".join(rec.get("nodes", [])))
