@@ -201,8 +201,8 @@ class LogNormal:
         x = self.median * np.exp(self.log_sd * special.ndtri(np.asarray(u, float)))
         # u = 0 exactly (a stream's draw can be 0), or exp underflowing for a very wide log-sd, would give
         # 0, which the support excludes and a field that must be > 0 was promised it never sees: the
-        # smallest positive float stands in (values that are already positive are left untouched)
-        return np.where(x > 0, x, _TINY)[()]
+        # smallest positive float stands in (every other value, NaN included, is left untouched)
+        return np.where(x == 0, _TINY, x)[()]
 
     def describe(self) -> str:
         return f"lognormal(median {self.median:g}, log-sd {self.log_sd:g})"
