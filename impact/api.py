@@ -205,13 +205,16 @@ def run_header(case: Case, command, stages: tuple[str, ...], **entries) -> dict:
 
 
 def priors_table(case: Case) -> pd.DataFrame:
+    from .results import TABLES
+
     rows = []
     for p in case.parameters:
         args = {k: getattr(p.prior, k) for k in p.prior.__dataclass_fields__}
         rows.append(dict(name=p.name, distribution=p.prior.kind, arguments=p.prior.describe(),
                          unit=p.unit, source=p.source, description=p.description,
                          uncertain=p.uncertain, **{f"arg_{k}": v for k, v in args.items()}))
-    return pd.DataFrame(rows)
+    # a case without parameters still writes the table's columns (read back as an empty table)
+    return pd.DataFrame(rows) if rows else pd.DataFrame(columns=[*TABLES["priors.csv"][0], "uncertain"])
 
 
 def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,

@@ -482,8 +482,11 @@ def check_references(r: Reader, parameters: tuple[Parameter, ...]):
         if ref not in pnames:
             r.fail(f, f"refers to parameter {ref!r}, which is not declared in [parameters]; declared: "
                       f"{', '.join(sorted(pnames)) or 'none'}")
-        lo_s, hi_s = pnames[ref].prior.support()
-        if low is not None and (lo_s <= low if low_open else lo_s < low):
+        prior = pnames[ref].prior
+        lo_s, hi_s = prior.support()
+        # an end the distribution never reaches (a lognormal's 0) meets an open bound (> 0)
+        reaches_low = not prior.open_ends[0]
+        if low is not None and (lo_s < low or (lo_s == low and low_open and reaches_low)):
             r.fail(f, f"parameter {ref!r} can take values down to {lo_s:g}, but this field must be "
                       f"{'>' if low_open else '>='} {low:g}")
         if high is not None and hi_s > high:

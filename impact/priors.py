@@ -3,6 +3,11 @@
 Every prior maps a unit-uniform number to a parameter value through its inverse CDF (``ppf``).
 That single path serves the ensemble draws (uniforms from each member's own stream) and the
 Sobol design (SALib's quasi-random unit hypercube), so both see the same distributions.
+
+Each prior also states its support, ``support()`` → (low, high), and which ends of it the
+distribution never reaches, ``open_ends`` → (bool, bool): a lognormal's support is (0, ∞) and it
+never takes the value 0, so a field that must be > 0 accepts it, while a uniform on [0, 1] can
+draw 0 and such a field refuses it.
 """
 
 from __future__ import annotations
@@ -13,12 +18,16 @@ import numpy as np
 from scipy import special
 
 
+_TINY = np.finfo(float).tiny
+
+
 @dataclass(frozen=True)
 class Fixed:
     """A known value (no uncertainty)."""
 
     value: float
     kind = "fixed"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def ppf(self, u):
         return np.full(np.shape(u), float(self.value))
@@ -37,6 +46,7 @@ class Uniform:
     low: float
     high: float
     kind = "uniform"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def ppf(self, u):
         return self.low + (self.high - self.low) * np.asarray(u, float)
@@ -55,6 +65,7 @@ class LogUniform:
     low: float
     high: float
     kind = "log-uniform"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def ppf(self, u):
         a, b = np.log(self.low), np.log(self.high)
@@ -75,6 +86,7 @@ class Triangular:
     mode: float
     high: float
     kind = "triangular"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def ppf(self, u):
         u = np.asarray(u, float)
@@ -100,6 +112,7 @@ class PERT:
     high: float
     lam: float = 4.0
     kind = "pert"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def _shape(self):
         span = self.high - self.low
@@ -153,6 +166,7 @@ class TruncatedNormal:
     low: float
     high: float
     kind = "truncated-normal"
+    open_ends = (False, False)  # ppf(0) and ppf(1) are the ends of the support
 
     def ppf(self, u):
         a = (self.low - self.mean) / self.sd
@@ -181,9 +195,14 @@ class LogNormal:
     median: float
     log_sd: float
     kind = "lognormal"
+    open_ends = (True, True)  # a lognormal never reaches 0 nor infinity
 
     def ppf(self, u):
-        return self.median * np.exp(self.log_sd * special.ndtri(np.asarray(u, float)))
+        x = self.median * np.exp(self.log_sd * special.ndtri(np.asarray(u, float)))
+        # u = 0 exactly (a stream's draw can be 0), or exp underflowing for a very wide log-sd, would give
+        # 0, which the support excludes and a field that must be > 0 was promised it never sees: the
+        # smallest positive float stands in (every other value, NaN included, is left untouched)
+        return np.where(x == 0, _TINY, x)[()]
 
     def describe(self) -> str:
         return f"lognormal(median {self.median:g}, log-sd {self.log_sd:g})"

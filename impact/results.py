@@ -33,6 +33,10 @@ def write_csv(frame: pd.DataFrame, path: Path):
     members); any other column type goes through pandas.
     """
     path.parent.mkdir(parents=True, exist_ok=True)
+    if len(frame.columns) == 0 and table_key(path) in TABLES:
+        # a table with nothing to list (no uncertain parameter, no stage rows) keeps its header, so that
+        # it reads back as an empty table rather than as a damaged file
+        frame = pd.DataFrame(columns=list(TABLES[table_key(path)][0]))
     text = csv_text(frame)
     if text is None:
         frame.to_csv(path, index=False, float_format=FLOAT_FORMAT)
@@ -181,6 +185,15 @@ TABLES = {
                          "basis", "n", "agree", "value", "low", "high", "interval", "level", "increase", "decrease"),
                         ("net", "terms", "weight", "n", "agree", "value", "low", "high", "level", "increase", "decrease")),
 }
+
+
+STAGE_FOLDERS = ("sensitivity", "dynamics", "calibration")
+
+
+def table_key(path: Path) -> str:
+    """The key of :data:`TABLES` a results file answers to: its name, with its stage folder when it has one."""
+    path = Path(path)
+    return f"{path.parent.name}/{path.name}" if path.parent.name in STAGE_FOLDERS else path.name
 
 
 def check_table(frame: pd.DataFrame, path: Path, relative: str):
@@ -368,7 +381,7 @@ def read_table(path: Path) -> pd.DataFrame:
     missing column or text in a number column is refused naming the file and the column.
     """
     path = Path(path)
-    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics", "calibration") else path.name
+    relative = table_key(path)
     try:
         df = pd.read_csv(path, dtype=str, keep_default_na=False)
     except FileNotFoundError:

@@ -5,11 +5,13 @@ from __future__ import annotations
 import subprocess
 import sys
 
+import numpy as np
 import pytest
 
 from casefiles import decline_case, web_case, write_case
 from impact.case import load_case
 from impact.errors import CaseError
+from impact.priors import LogNormal
 
 CASEWORK = __import__("pathlib").Path(__file__).parent.parent / "casework"
 
@@ -301,3 +303,48 @@ def test_units_that_name_another_time_unit_are_warned_about(tmp_path, capsys):
     data["species"][0]["carrying_capacity"] = "k"
     (warning,) = unit_warnings(load_case(write_case(tmp_path, data)))
     assert "parameters.k" in warning and "not grass's unit 'g/m2'" in warning
+
+
+def _lognormal_capacity(prior: dict) -> dict:
+    data = web_case()
+    data["parameters"]["K"] = {**prior, "unit": "g/m2"}
+    data["species"][0]["carrying_capacity"] = "K"
+    return data
+
+
+def test_a_lognormal_carrying_capacity_is_accepted_and_never_draws_zero(tmp_path):
+    # a lognormal's support is (0, ∞) and never reaches 0, so a field that must be > 0 accepts it
+    # (Johnson, Kotz & Balakrishnan 1994, Continuous Univariate Distributions 1, ch. 14,
+    # from memory)
+    from impact.sample import member_uniforms, parameter_values
+
+    case = load_case(write_case(tmp_path, _lognormal_capacity({"distribution": "lognormal", "median": 1000.0,
+                                                               "log_sd": 0.5})))
+    assert "K" in [p.name for p in case.uncertain]
+    K = parameter_values(case, member_uniforms(case.seed, np.arange(20_000), len(case.uncertain)))["K"]
+    assert (K > 0).all() and np.isfinite(K).all()
+    # the ends of the unit interval a stream can give (u = 0 exactly) and a log-sd wide enough to underflow
+    prior = case.parameter("K").prior
+    assert prior.ppf(np.array([0.0]))[0] > 0
+    assert (LogNormal(1.0, 200.0).ppf(np.array([0.0, 1e-12, 0.5])) > 0).all()
+
+
+@pytest.mark.parametrize("prior,words", [
+    # a uniform and a truncated normal on [0, ...] can draw 0 itself: still refused for a field that must be > 0
+    ({"distribution": "uniform", "low": 0.0, "high": 2000.0}, "can take values down to 0, but this field must be > 0"),
+    ({"distribution": "truncated-normal", "mean": 1000.0, "sd": 300.0, "low": 0.0, "high": 3000.0},
+     "can take values down to 0, but this field must be > 0"),
+])
+def test_a_prior_that_reaches_zero_is_still_refused_where_the_field_must_be_positive(tmp_path, prior, words):
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, _lognormal_capacity(prior)))
+    assert err.value.field == "species.grass.carrying_capacity" and words in err.value.message
+
+
+def test_a_lognormal_observation_scale_is_accepted(tmp_path):
+    data = _lognormal_capacity({"distribution": "lognormal", "median": 1000.0, "log_sd": 0.5})
+    data["parameters"]["trap_scale"] = {"distribution": "lognormal", "median": 0.8, "log_sd": 0.2, "unit": "1"}
+    data["monitoring"] = [{"species": "hare", "kind": "index", "error": "lognormal", "times": [-2, -1, 0],
+                           "values": [30.0, 32.0, 31.0], "scale": "trap_scale", "log_sd": 0.3}]
+    case = load_case(write_case(tmp_path, data))
+    assert "trap_scale" in [p.name for p in case.uncertain]

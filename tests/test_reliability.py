@@ -182,24 +182,38 @@ def test_a_stale_lock_is_taken_over_and_released(small, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
 
 
-def test_two_real_runs_on_one_out(tmp_path, capsys):
-    """A second run (this process) on the same --out refuses while the first runs; the first completes."""
-    case = write_case(tmp_path, decline_case(members=1000))
+HOLD_LOCK = """
+import sys
+from impact.outfolder import OutputFolder
+
+folder = OutputFolder(sys.argv[1]).acquire()  # the lock a run takes before it computes anything
+print("held", flush=True)
+sys.stdin.readline()  # until the test says so
+folder.release()
+"""
+
+
+def test_a_run_refuses_an_out_whose_lock_another_live_process_holds(tmp_path, capsys):
+    """Another process holds the output folder's lock (as a running assessment does): a run on the same
+    --out refuses at once naming that process, writes nothing, and runs once the lock is released."""
+    case = write_case(tmp_path, decline_case(members=100))
     out = tmp_path / "out"
-    cmd = [sys.executable, "-m", "impact.cli", "assess", str(case), "--out", str(out), "--chunk-members", "20", *CORE]
-    first = subprocess.Popen(cmd, env=ENV, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    holder = subprocess.Popen([sys.executable, "-c", HOLD_LOCK, str(out)], env=ENV, stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
-        _wait_for(lambda: (tmp_path / ".out.lock").exists() or first.poll() is not None, 120)
-        if first.poll() is not None:
-            pytest.skip("the first run finished before the second could start (machine too fast for this check)")
-        assert main(cmd[3:]) == 2
+        assert holder.stdout.readline().strip() == "held", holder.stderr.read()
+        assert main(["assess", str(case), "--out", str(out), *CORE]) == 2
         err = capsys.readouterr().err
-        assert "in use by another impact run" in err and f"pid {first.pid}" in err
-        assert first.wait(timeout=300) == 0, first.stderr.read()
+        assert "in use by another impact run" in err and f"pid {holder.pid}" in err
+        assert not out.exists() and sorted(p.name for p in tmp_path.iterdir()) == [".out.lock", "case.toml"]
+        holder.stdin.write("release\n")
+        holder.stdin.flush()
+        assert holder.wait(timeout=60) == 0, holder.stderr.read()
     finally:
-        if first.poll() is None:
-            first.kill()
-    assert (out / "risk.csv").exists() and not (tmp_path / ".out.checkpoints").exists()
+        if holder.poll() is None:
+            holder.kill()
+    assert main(["assess", str(case), "--out", str(out), *CORE]) == 0
+    assert (out / "risk.csv").exists() and not (tmp_path / ".out.lock").exists()
 
 
 # ------------------------------------------------------------------ 3. NaN and inf are refused

@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from impact.case import load_case
-from impact.cli import build_parser, main
+from impact.cli import main
 from impact.formatting import fmt_cell
 from impact.report import ASSET_SCHEME, Assets, make_fetcher, render_pdf, report_html, load_results, write_report
 
@@ -33,17 +33,12 @@ def _text(pdf: Path) -> str:
     return "\n".join(p.extract_text() for p in pypdf.PdfReader(str(pdf)).pages)
 
 
-def _assess_flags():
-    """--no-report off (the report is wanted); switch off slow later stages when they have a flag."""
-    sub = next(a for a in build_parser()._actions if a.dest == "command").choices["assess"]
-    known = {s for a in sub._actions for s in a.option_strings}
-    return [f for f in ("--no-sensitivity", "--no-dynamics") if f in known]
-
-
 @pytest.fixture(scope="session")
 def results(tmp_path_factory):
+    """The report wanted, the later stages switched off (they are drawn from ``staged`` below)."""
     out = tmp_path_factory.mktemp("report") / "pp"
-    rc = main(["assess", str(CASE_PATH), "--out", str(out), "--members", "100", "--quiet", *_assess_flags()])
+    rc = main(["assess", str(CASE_PATH), "--out", str(out), "--members", "100", "--quiet", "--no-sensitivity",
+               "--no-dynamics"])
     assert rc == 0
     return out
 
@@ -79,8 +74,7 @@ def test_case_hash_is_printed(text):
 @pytest.mark.parametrize("stage, section", [("sensitivity", "Sensitivityandvalueofinformation:notrun"),
                                             ("dynamics", "Dynamicsdiagnostics:notrun")])
 def test_absent_stages_say_not_run(text, results, stage, section):
-    if (results / stage).exists():
-        pytest.skip(f"the {stage} stage ran in this build")
+    assert not (results / stage).exists() and stage not in json.loads((results / "manifest.json").read_text())["stages"]
     assert section in text
 
 
@@ -223,56 +217,49 @@ def test_fetcher_serves_named_asset():
     assert (r.read(), r.content_type) == (b"body{}", "text/css")
 
 
-def _write_stages(d: Path):
-    """Small stage outputs in the contract columns of DEVELOPERS.md ("Stage outputs")."""
-    opt, sp = OPTIONS[1], SPECIES[0]
-    params = [p.name for p in CASE.uncertain]
-    s = d / "sensitivity"
-    s.mkdir()
-    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, parameter=p, S1=0.1 * (k + 1), S1_conf=0.02,
-                       ST=0.15 * (k + 1), ST_conf=0.03, conditional_on="", N=256) for k, p in enumerate(params)]
-                 ).to_csv(s / "indices.csv", index=False)
-    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, rank=k + 1, parameter=p, ST=0.6 - 0.15 * k,
-                       ST_conf=0.03, S1=0.5 - 0.1 * k, interaction=0.1 - 0.05 * k) for k, p in enumerate(params)]
-                 ).to_csv(s / "ranking.csv", index=False)
-    pd.DataFrame([dict(option=opt, metric="quasi_extinction", species=sp, max_shift=0.08, max_ci_width=0.31,
-                       tolerance=0.1, converged=False)]).to_csv(s / "convergence.csv", index=False)
-    (s / "sensitivity.json").write_text(json.dumps(dict(N=256, D=len(params), second_order=False, runs=3072, failures=0,
-                                                        failure_limit=0.05, policy="drop", method="sobol", screening=None)))
-    y = d / "dynamics"
-    y.mkdir()
-    pd.DataFrame([dict(option=o, member=m, regime="chaotic" if m % 3 == 0 else "equilibrium", period=np.nan,
-                       lyapunov=0.2 if m % 3 == 0 else -0.5, horizon_time=11.5 if m % 3 == 0 else np.inf, extinct=False)
-                  for o in OPTIONS for m in range(30)]).to_csv(y / "regimes.csv", index=False)
-    pd.DataFrame([dict(option=o, regime=r, share=sh, count=c, lyapunov_median=l, horizon_median=h)
-                  for o in OPTIONS for r, sh, c, l, h in (("equilibrium", 0.667, 20, -0.5, np.inf), ("chaotic", 0.333, 10, 0.2, 11.5))]
-                 ).to_csv(y / "regime_shares.csv", index=False)
-    pd.DataFrame([dict(parameter=params[0], value=v, section_value=v * k, regime="cycle", period=2, lyapunov=-0.01)
-                  for v in np.linspace(1, 2, 20) for k in (1, 2)]).to_csv(y / "scan.csv", index=False)
+@pytest.fixture(scope="module")
+def staged(tmp_path_factory):
+    """A results folder with both later stages, written by ``impact assess`` itself (small sizes)."""
+    out = tmp_path_factory.mktemp("staged") / "r"
+    rc = main(["assess", str(CASE_PATH), "--out", str(out), "--members", "100", "--quiet", "--base-samples", "16",
+               "--workers", "1"])
+    assert rc == 0
+    return out
 
 
 @pytest.fixture(scope="module")
-def staged_text(results, tmp_path_factory):
-    d = tmp_path_factory.mktemp("staged") / "r"
-    shutil.copytree(results, d)
-    for stage in ("sensitivity", "dynamics"):
-        shutil.rmtree(d / stage, ignore_errors=True)
-    _write_stages(d)
-    return _squash(_text(write_report(d)))
+def staged_text(staged):
+    return _squash(_text(staged / "report.pdf"))
 
 
-@pytest.mark.parametrize("needle", [
-    "0of1outputsconverged",    # the screen's convergence in one sentence
-    "didnotconverge",          # and the warning up front,
-    "outputsperrun:",          # aggregated to one line naming every run it concerns
-    "1of1",
-    "33.3%ofmemberschaotic",  # regime share read from regime_shares.csv
-    "predictabilityhorizonisshorterthanthe30",  # compared with the assessment horizon
-    "Bifurcationdiagram",
-    *[_squash(p.name) for p in CASE.uncertain],
-])
-def test_stage_sections_are_drawn_when_present(staged_text, needle):
-    assert needle in staged_text
+def _staged_needles(d: Path) -> list[str]:
+    """What the report must print of the stage tables in ``d``, formatted here from the CSV files."""
+    conv = pd.read_csv(d / "sensitivity" / "convergence.csv", keep_default_na=False)
+    bad = conv[conv.converged.astype(str) == "False"]
+    needles = [f"{len(conv) - len(bad)}of{len(conv)}outputsconverged"]
+    if len(bad):  # the warning up front, aggregated to one line naming every run it concerns
+        needles += ["didnotconverge", "outputsperrun:"]
+        needles += [f"{o}{len(g)}of{int((conv.option == o).sum())}" for o, g in bad.groupby("option")]
+    shares = pd.read_csv(d / "dynamics" / "regime_shares.csv", keep_default_na=False)
+    for r in shares[(shares.share.astype(float) > 0) & (shares.regime != "equilibrium")].itertuples():
+        # an oscillating or irregular share is named with its Wilson interval and its count of members
+        needles.append(_squash(f"{r.option} {100 * float(r.share):.1f} % [{100 * float(r.share_low):.1f} %–"
+                               f"{100 * float(r.share_high):.1f} %] ({r.count} members)"))
+    return needles + [_squash(p.name) for p in CASE.uncertain]
+
+
+def test_the_staged_folder_is_the_producers_own(staged):
+    stages = json.loads((staged / "manifest.json").read_text())["stages"]
+    assert {"sensitivity", "dynamics"} <= set(stages) and not (staged / "dynamics" / "scan.csv").exists()
+    # at N = 16 some outputs do not converge, and this web cycles in some members (Rosenzweig–MacArthur
+    # beyond its Hopf point): the needles below then test the warning and the oscillation caution
+    needles = _staged_needles(staged)
+    assert "didnotconverge" in needles and any("members)" in n for n in needles)
+
+
+def test_stage_sections_are_drawn_when_present(staged, staged_text):
+    missing = [n for n in _staged_needles(staged) if n not in staged_text]
+    assert not missing
 
 
 @pytest.mark.parametrize("absent", ["Sensitivityandvalueofinformation:notrun", "Dynamicsdiagnostics:notrun"])
