@@ -10,7 +10,8 @@ from ..cautions import cautions
 from ..errors import InstallationError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
 from ..results import Results, load_results, write_file_atomic
-from ..verdict import reading, thin_run
+from ..bottomline import STATUS_WORDS, run_label
+from ..verdict import horizon_rule_text, reading, thin_run
 from ..webfigure import food_web_svg
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from .sections import dynamics_context, sensitivity_context
@@ -40,7 +41,8 @@ def report_context(res: Results, assets: Assets) -> dict:
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
     return dict(
         m=m, case=m.case, title=m.case.title, date=m.started_utc[:10],
-        verdict=verdict, caution=m.caution, warnings=[w.text for w in warnings],
+        verdict=verdict, caution=m.caution, run_label=run_label, status_words=STATUS_WORDS,
+        horizon_rule=horizon_rule_text(m), warnings=[w.text for w in warnings],
         # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
         top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
