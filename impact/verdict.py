@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .bottomline import BottomLine, best_by_objective, bottom_line, bottom_line_text, names_text, run_label
+from .bottomline import BottomLine, best_by_objective, bottom_line, names_text, run_label
 from .formatting import (by_time, fmt_bare_points, fmt_bare_prob, fmt_change, fmt_num, fmt_points, fmt_prob,
                          over_period)
 from .likelihood import LOWER_TERMS, likelihood_term
@@ -345,7 +345,8 @@ def reading(manifest: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objec
 
 
 def reading_text(r: Reading) -> str:
-    """The verdict as plain text for the terminal (the same sentences as page 1), ending with the bottom line."""
+    """The verdict as plain text for the terminal (the same sentences as page 1; the bottom line is
+    :func:`impact.bottomline.bottom_line_text`, which ends the terminal summary)."""
     if r.thin:
         return r.thin_reason
     lines = []
@@ -359,5 +360,4 @@ def reading_text(r: Reading) -> str:
     if r.best:
         lines.append("choices compared by their chance of a good outcome, member by member:")
         lines += [f"  {x}" for x in r.best]
-    lines.append(bottom_line_text(r.bottom))
     return "\n".join(lines)
