@@ -180,7 +180,9 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                                    touches=tuple(sorted(case.touched(o)))) for o in case.options),
         objectives=tuple(ObjectiveRecord(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
                                          requirement=o.requirement, bound=o.bound, event=event_text(case, o),
-                                         description=o.description) for o in case.objectives),
+                                         description=o.description,
+                                         level=o.level if o.measure == "abundance" else None)
+                         for o in case.objectives),
         judgement=Judgement(material_change=case.risk.material_change, material_risk=case.risk.material_risk,
                             min_members=case.risk.min_members,
                             likelihood_scale="IPCC likelihood scale (Mastrandrea et al. 2010)"),
