@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from importlib import resources
 from pathlib import Path
 
@@ -15,7 +16,7 @@ from ..verdict import horizon_rule_text, reading, thin_run
 from ..webfigure import food_web_svg, web_legend
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from .sections import dynamics_context, sensitivity_context
-from .tables import comparisons_context, effects_table_context, iucn_rows, objectives_context, risk_table_context
+from .tables import comparisons_context, effects_table_context, iucn_context, objectives_context, risk_table_context
 
 PAPERS = {"a4": "A4", "letter": "letter"}
 ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
@@ -48,7 +49,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m.species, interactions=m.interactions, equations=m.equations,
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m), priors=priors, thin=thin,
-        interventions=m.interventions, options=options, iucn=iucn_rows(res),
+        interventions=m.interventions, options=options, iucn=iucn_context(res),
         sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets),
         calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
@@ -125,6 +126,29 @@ def render_pdf(html: str, assets: Assets):
     return pdf, fetcher
 
 
+_TEXT = re.compile(r">([^<]+)<")
+_BRACKET = re.compile(r"\[[^\[\]<>]{1,60}\]")
+_SLASH = re.compile(r"(?<=\w)/(?=\w)")
+_HYPHEN = re.compile(r"(?<=[a-z])-(?=[a-z])")
+WORD_JOINER, NO_BREAK_SPACE, NO_BREAK_HYPHEN = "\u2060", "\u00a0", "\u2011"
+
+
+def _keep_text(text: str) -> str:
+    text = _BRACKET.sub(lambda b: b.group(0).replace(" ", NO_BREAK_SPACE)
+                        .replace("–", WORD_JOINER + "–" + WORD_JOINER), text)
+    text = _SLASH.sub("/" + WORD_JOINER, text)  # units: plants/ha
+    return _HYPHEN.sub(NO_BREAK_HYPHEN, text)  # press-harvest, quasi-extinction
+
+
+def keep_together(html: str) -> str:
+    """The body's text with no line break inside an interval ``[a, b]``, a unit ``a/b`` or a hyphenated word:
+    a narrow table column then wraps between them, never inside one."""
+    head, sep, body = html.partition("<body>")
+    if not sep:
+        return html
+    return head + sep + _TEXT.sub(lambda t: ">" + _keep_text(t.group(1)) + "<", body)
+
+
 def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
     """The filled template and the assets it links to."""
     import jinja2
@@ -137,7 +161,7 @@ def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
                              autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
     ctx = report_context(res, assets)
     html = env.get_template("report.html").render(**ctx, paper=PAPERS[paper], asset=ASSET_SCHEME)
-    return html, assets
+    return keep_together(html), assets
 
 
 def write_report(results_dir, out=None, paper: str = "a4") -> Path:

@@ -175,9 +175,13 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
     rg = d.get("regimes")
     if rg is not None and not rg.empty:
-        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit), "image/png"),
+        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit, res.manifest.horizon),
+                                              "image/png"),
                                    caption="Distribution over members of the largest Lyapunov exponent and of the "
-                                           "predictability horizon, per option."))
+                                           "predictability horizon, per option. The horizon axis stops at the "
+                                           f"assessment horizon ({fmt_num(res.manifest.horizon)} {unit}, dashed); the "
+                                           "hatched bar counts the members predictable beyond it, an infinite "
+                                           "horizon (no growth of small errors) included."))
     sc = d.get("scan")
     if sc is not None and not sc.empty:
         ctx["scan_run"] = True
