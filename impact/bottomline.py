@@ -148,7 +148,7 @@ def trade_off(comparisons: pd.DataFrame) -> str:
         return (f"{names_text(run_label(n) for n in names)} {'has' if len(names) == 1 else 'have'} the highest "
                 "chance of a good outcome on every objective (comparisons.csv), so there is no trade-off between "
                 "objectives.")
-    parts = [f"for “{obj}” {names_text(run_label(n) for n in b)}{', tied' if len(b) > 1 else ''} ({fmt_prob(p)})"
+    parts = [f"“{obj}”: {names_text(run_label(n) for n in b)}{', tied' if len(b) > 1 else ''} ({fmt_prob(p)})"
              for obj, (b, p) in best.items()]
     return ("Trade-off: no choice is best on every objective. Highest chance of a good outcome "
             "(comparisons.csv): " + "; ".join(parts) + ".")

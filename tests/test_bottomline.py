@@ -63,8 +63,8 @@ def test_no_option_meeting_every_objective_is_said_in_so_many_words():
     assert b.sentences[0].startswith("No option meets every objective")
     assert "“A” misses “o1”" in b.sentences[0] and "“B” misses “o2”" in b.sentences[0]
     # neither is best on both objectives: the trade-off names who is best for which
-    assert b.sentences[1].startswith("Trade-off") and "for “o1” “B”" in b.sentences[1]
-    assert "for “o2” “A”" in b.sentences[1]
+    assert b.sentences[1].startswith("Trade-off") and "“o1”: “B”" in b.sentences[1]
+    assert "“o2”: “A”" in b.sentences[1]
 
 
 def test_two_options_tied_on_every_objective_are_both_named():

@@ -127,26 +127,20 @@ def render_pdf(html: str, assets: Assets):
 
 
 _TEXT = re.compile(r">([^<]+)<")
-_BRACKET = re.compile(r"\[[^\[\]<>]{1,60}\]")
-_SLASH = re.compile(r"(?<=\w)/(?=\w)")
-_HYPHEN = re.compile(r"(?<=[a-z])-(?=[a-z])")
-WORD_JOINER, NO_BREAK_SPACE, NO_BREAK_HYPHEN = "\u2060", "\u00a0", "\u2011"
-
-
-def _keep_text(text: str) -> str:
-    text = _BRACKET.sub(lambda b: b.group(0).replace(" ", NO_BREAK_SPACE)
-                        .replace("–", WORD_JOINER + "–" + WORD_JOINER), text)
-    text = _SLASH.sub("/" + WORD_JOINER, text)  # units: plants/ha
-    return _HYPHEN.sub(NO_BREAK_HYPHEN, text)  # press-harvest, quasi-extinction
+# what must not break across lines: an interval [a, b], a unit a/b, a hyphenated word (press-harvest)
+# (short tokens only: a path or a long compound may still break where it must)
+_KEEP = re.compile(r"\[[^\[\]<>]{1,60}\]|(?<![\w/.-])\w{1,12}(?:[/-]\w{1,12}){1,2}(?![\w/.-])")
 
 
 def keep_together(html: str) -> str:
-    """The body's text with no line break inside an interval ``[a, b]``, a unit ``a/b`` or a hyphenated word:
-    a narrow table column then wraps between them, never inside one."""
+    """The body's text with every interval, unit and hyphenated word wrapped in a span that does not break
+    (``nowrap``): a narrow table column then wraps between them, never inside one. Only markup is added,
+    so the words and their characters stay as written (copying and searching the PDF find them)."""
     head, sep, body = html.partition("<body>")
     if not sep:
         return html
-    return head + sep + _TEXT.sub(lambda t: ">" + _keep_text(t.group(1)) + "<", body)
+    keep = lambda t: ">" + _KEEP.sub(lambda k: f'<span class="nb">{k.group(0)}</span>', t.group(1)) + "<"
+    return head + sep + _TEXT.sub(keep, body)
 
 
 def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:

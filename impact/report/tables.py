@@ -7,7 +7,8 @@ import numpy as np
 import pandas as pd
 
 from ..bottomline import run_label
-from ..formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
+from ..formatting import (PROBABILITY_METRICS, by_time, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num,
+                          fmt_points, fmt_prob)
 from ..iucn import CATEGORY_NAMES, criterion_e_in_units, years_per_unit
 from ..metrics import describe_interval
 from ..manifest import Manifest
@@ -250,7 +251,7 @@ def iucn_rows(res: Results) -> list[dict]:
                 else:
                     # print the saved probability at the horizon used, in the case's time unit
                     h_case = min(probs, key=lambda h: abs(h - t.horizon / years_per_case_unit(m)))
-                    tests.append(f"{fmt_prob(probs[h_case])} by {fmt_num(h_case)} {'≥' if t.met else '<'} "
+                    tests.append(f"{fmt_prob(probs[h_case])} {by_time(h_case, m.time_unit)} {'≥' if t.met else '<'} "
                                  f"{t.threshold:.0%}")
             cat = reading.category
             rows.append(dict(option=opt, species=s.name, generation_time=fmt_num(s.generation_time),
