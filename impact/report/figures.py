@@ -155,9 +155,10 @@ def distribution_figure(regimes: pd.DataFrame, unit: str, horizon: float) -> byt
     axes = fig.subplots(1, 2)
     H = float(horizon)
     edges = np.linspace(0.0, H, HORIZON_BINS + 1)
-    beyond_x, width = H * 1.08, H / HORIZON_BINS
+    opts = list(dict.fromkeys(regimes.option))
+    beyond_x, width = H * 1.2, 1.5 * H / HORIZON_BINS  # one bar per option, side by side, past the horizon
     drawn = [False, False]
-    for k, opt in enumerate(dict.fromkeys(regimes.option)):
+    for k, opt in enumerate(opts):
         r = regimes[regimes.option == opt]
         col = BASELINE_COLOUR if opt == "baseline" else OPTION_COLOURS[(k - 1) % len(OPTION_COLOURS)]
         lam = r.lyapunov.to_numpy(float)
@@ -171,20 +172,23 @@ def distribution_figure(regimes: pd.DataFrame, unit: str, horizon: float) -> byt
             within = h[h <= H]
             if within.size:
                 axes[1].hist(within, bins=edges, histtype="step", color=col, linewidth=1.2)
-            axes[1].bar(beyond_x, int((h > H).sum()), width=width, fill=False, edgecolor=col, linewidth=1.2,
-                        hatch="//")
+            axes[1].bar(beyond_x + (k - (len(opts) - 1) / 2) * width / len(opts), int((h > H).sum()),
+                        width=width / len(opts), fill=False, edgecolor=col, linewidth=1.2, hatch="//")
             drawn[1] = True
     axes[0].set_xlabel(f"largest Lyapunov exponent (1/{mpl_text(unit)})", fontsize=8)
     axes[1].set_xlabel(f"predictability horizon ({mpl_text(unit)})", fontsize=8)
     if drawn[1]:
         axes[1].axvline(H, color="#1c2833", linestyle="--", linewidth=0.8)
         axes[1].set_xlim(0, beyond_x + width)
-        ticks = [t for t in axes[1].get_xticks() if 0 <= t < H * 0.85] + [H, beyond_x]
-        axes[1].set_xticks(ticks, [f"{t:g}" for t in ticks[:-2]] + [f"{H:g}", f"> {H:g}"])
+        ticks = [t for t in axes[1].get_xticks() if 0 <= t < H * 0.8] + [H, beyond_x]
+        axes[1].set_xticks(ticks, [f"{t:g}" for t in ticks[:-2]] + [f"{H:g}", "beyond"])
     else:
         _empty_panel(axes[1], "No member has a predictability horizon\n(none was diagnosed).")
     if not drawn[0]:
         _empty_panel(axes[0], "No member has a finite Lyapunov exponent\n(none was diagnosed).")
+    from matplotlib.ticker import MaxNLocator
+
+    axes[0].xaxis.set_major_locator(MaxNLocator(nbins=4))  # tick labels that never run together
     for ax, d in zip(axes, drawn):
         if d:
             ax.set_ylabel("members", fontsize=8)

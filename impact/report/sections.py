@@ -179,9 +179,9 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
                                               "image/png"),
                                    caption="Distribution over members of the largest Lyapunov exponent and of the "
                                            "predictability horizon, per option. The horizon axis stops at the "
-                                           f"assessment horizon ({fmt_num(res.manifest.horizon)} {unit}, dashed); the "
-                                           "hatched bar counts the members predictable beyond it, an infinite "
-                                           "horizon (no growth of small errors) included."))
+                                           f"assessment horizon ({unit} {fmt_num(res.manifest.horizon)}, dashed); the "
+                                           "hatched bars (one per option) count the members predictable beyond it, "
+                                           "an infinite horizon (no growth of small errors) included."))
     sc = d.get("scan")
     if sc is not None and not sc.empty:
         ctx["scan_run"] = True
