@@ -443,7 +443,7 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 
 
 def summary_text(case: Case, folder: Path) -> str:
-    """The terminal summary of a written results folder, ending with the page-1 verdict."""
+    """The terminal summary of a written results folder: the page-1 verdict, ending with its bottom line."""
     from .report import hinges_text, load_results
     from .bottomline import bottom_line, bottom_line_text
     from .formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
@@ -494,9 +494,9 @@ def summary_text(case: Case, folder: Path) -> str:
     hinges = hinges_text(res)
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]
-    if not thin_run(res.manifest)[0]:
-        L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))
     L.append("CAUTION: " + CAUTION)
+    if not thin_run(res.manifest)[0]:  # the summary ends with the bottom line that opens page 1
+        L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))
     return "\n".join(L)
 
 
