@@ -102,7 +102,8 @@ def _meeting_sentence(options: list[str], rows) -> tuple[tuple[str, ...], str]:
     meets = tuple(o for o in options if all(s == MET for s in status[o]))
     if meets:
         if len(meets) == len(options):
-            head = "Every option meets every objective" if len(options) > 1 else f"{run_label(meets[0])} meets every objective"
+            head = ("Every option meets every objective" if len(options) > 1
+                    else f"{run_label(meets[0])} meets every objective")
         elif len(meets) == 1:
             head = f"Only {run_label(meets[0])} meets every objective"
         else:

@@ -108,9 +108,11 @@ def constraint_labels(case: Case) -> list[tuple[str, str]]:
     out += [(f"observed[{i}]", f"{ob.species} {ob.low:g}–{ob.high:g} today") for i, ob in enumerate(case.observed)]
     for i, lim in enumerate(case.change_limits):
         if lim.up is not None:
-            out.append((f"change_limits[{i}].up_at_most", f"{lim.species} grows at most ×{lim.up:g} per {lim.step:g}"))
+            out.append((f"change_limits[{i}].up_at_most",
+                        f"{lim.species} grows at most ×{lim.up:g} per {lim.step:g}"))
         if lim.down is not None:
-            out.append((f"change_limits[{i}].down_at_most", f"{lim.species} falls at most ÷{lim.down:g} per {lim.step:g}"))
+            out.append((f"change_limits[{i}].down_at_most",
+                        f"{lim.species} falls at most ÷{lim.down:g} per {lim.step:g}"))
     return out
 
 

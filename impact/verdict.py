@@ -320,7 +320,8 @@ def best_lines(comparisons: pd.DataFrame) -> tuple[str, ...]:
         winners = best[obj][0]
         parts = [f"{run_label(r.option)} {fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
                  for _, r in g.iterrows()]
-        text = (f"“{obj}”: chance of a good outcome: " + "; ".join(parts) + f". Best: {names_text(run_label(n) for n in winners)}"
+        text = (f"“{obj}”: chance of a good outcome: " + "; ".join(parts)
+                + f". Best: {names_text(run_label(n) for n in winners)}"
                 + (", tied" if len(winners) > 1 else "") + ".")
         if len(g) > 1:
             a, b = g.option.iloc[0], g.option.iloc[1]
