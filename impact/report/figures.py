@@ -146,10 +146,16 @@ def _empty_panel(ax, sentence: str) -> None:
 
 
 def distribution_figure(regimes: pd.DataFrame, unit: str, horizon: float) -> bytes:
-    """Histograms of the largest Lyapunov exponent and of the predictability horizon, per option.
+    """Histograms of the largest Lyapunov exponent and of the predictability horizon, per option (PNG)."""
+    return png_bytes(distribution_drawing(regimes, unit, horizon))
+
+
+def distribution_drawing(regimes: pd.DataFrame, unit: str, horizon: float):
+    """The matplotlib figure of :func:`distribution_figure`.
 
     The horizon axis stops at the assessment horizon: members predictable beyond it (an infinite
-    horizon included) are one bar past a dashed line, labelled with the horizon.
+    horizon included) are one bar per option past a dashed line, labelled "beyond". A panel with
+    nothing to draw holds a sentence saying so.
     """
     fig = new_figure(6.6, 2.6)
     axes = fig.subplots(1, 2)
@@ -195,7 +201,7 @@ def distribution_figure(regimes: pd.DataFrame, unit: str, horizon: float) -> byt
             ax.tick_params(labelsize=7)
     if drawn[0]:
         axes[0].legend(fontsize=7)
-    return png_bytes(fig)
+    return fig
 
 
 def scan_figure(scan: pd.DataFrame, parameter: str) -> bytes:
