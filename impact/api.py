@@ -235,7 +235,9 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
                                    touches=tuple(sorted(case.touched(o)))) for o in case.options),
         objectives=tuple(ObjectiveRecord(name=o.name, species=o.species, measure=o.measure, horizon=o.horizon,
                                          requirement=o.requirement, bound=o.bound, event=event_text(case, o),
-                                         description=o.description) for o in case.objectives),
+                                         description=o.description,
+                                         level=o.level if o.measure == "abundance" else None)
+                         for o in case.objectives),
         judgement=Judgement(material_change=case.risk.material_change, material_risk=case.risk.material_risk,
                             min_members=case.risk.min_members,
                             likelihood_scale="IPCC likelihood scale (Mastrandrea et al. 2010)"),
@@ -515,19 +517,22 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 
 
 def summary_text(case: Case, folder: Path) -> str:
-    """The terminal summary of a written results folder, ending with the page-1 verdict."""
+    """The terminal summary of a written results folder: the page-1 verdict, ending with its bottom line."""
     from .report import hinges_text, load_results
-    from .verdict import reading, reading_text
+    from .bottomline import bottom_line, bottom_line_text
+    from .formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
+    from .verdict import reading, reading_text, thin_run
 
     res = load_results(folder)
     counts, risk = res.manifest.counts, res.risk
     L = [case.title]
     cal = res.manifest.calibration or {}
     if cal.get("sampler") == "smc":
+        # the same rounding as the PDF's calibration section (impact.formatting)
         L.append(f"ensemble: {counts.kept} members calibrated by sequential Monte Carlo ({cal['simulations']} "
-                 f"simulations in {cal['generations']} generations, move acceptance {cal['acceptance']:.0%}, "
-                 f"{cal['distinct']:.0%} distinct members; {cal['prior_acceptance']:.1%} of prior draws met every "
-                 "constraint)")
+                 f"simulations in {cal['generations']} generations, move acceptance {fmt_prob(cal['acceptance'])}, "
+                 f"{fmt_prob(cal['distinct'])} distinct members; {fmt_prob(cal['prior_acceptance'])} of prior draws "
+                 "met every constraint)")
     else:
         L.append(f"draws: {counts.tried} tried, {counts.kept} plausible kept ({counts.failed} failed "
                  f"numerically, {counts.extinct} lost a species, {counts.out_of_range} outside observed ranges)")
@@ -541,18 +546,19 @@ def summary_text(case: Case, folder: Path) -> str:
             L.append(f"WARNING: {f['failed']} members failed numerically under {opt}: "
                      + ", ".join(f"{k} {v}" for k, v in f.items() if k != "failed"))
     H = case.horizon
-    L.append(f"quasi-extinction probability by {H:g} {case.time_unit} [{case.risk.confidence:.0%} CI], and median "
-             "change in mean abundance vs baseline:")
+    L.append(f"quasi-extinction probability {by_time(H, case.time_unit)} [{fmt_num(100 * case.risk.confidence)} % CI], "
+             "and median change in mean abundance vs baseline:")
     width = max(len(s) for s in case.species_names)
     for sp in case.species_names:
         cells = []
         for opt in ["baseline", *[o.name for o in case.options]]:
             r = risk[(risk.option == opt) & (risk.species == sp) & np.isclose(risk.horizon, H)]
             q, d = r[r.metric == "quasi_extinction"], r[r.metric == "mean_change"]
-            cell = (f"{q.value.iloc[0]:5.1%} [{q.low.iloc[0]:.1%}, {q.high.iloc[0]:.1%}]" if len(q) else "   n/a")
+            cell = (f"{fmt_prob(q.value.iloc[0])} [{fmt_bare_prob(q.low.iloc[0])}, {fmt_bare_prob(q.high.iloc[0])}]"
+                    if len(q) else "n/a")
             change = float(d.value.iloc[0]) if len(d) else float("nan")
             # no paired change exists for a species absent without the option (an introduction)
-            cells.append(f"{opt}: {cell}" + (f" {change:+.0%}" if np.isfinite(change) else ""))
+            cells.append(f"{opt}: {cell}" + (f" {fmt_change(change)}" if np.isfinite(change) else ""))
         L.append(f"  {sp:<{width}}  " + " | ".join(cells))
     absent = [s.name for s in case.species if not s.present]
     if absent:
@@ -563,6 +569,8 @@ def summary_text(case: Case, folder: Path) -> str:
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]
     L.append("CAUTION: " + CAUTION)
+    if not thin_run(res.manifest)[0]:  # the summary ends with the bottom line that opens page 1
+        L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))
     return "\n".join(L)
 
 

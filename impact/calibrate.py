@@ -37,7 +37,7 @@ from .assess import Ensemble, LowAcceptance, draw_ensemble
 from .case import DEFAULT_MIN_ACCEPTANCE, Case
 from .errors import CaseError
 from .model import WebParams, build_web, web_params
-from .observe import distance, draw_observations, has_data, log_likelihood, record_times
+from .observe import distance, draw_observations, has_data, log_likelihood, record_times, unmet_constraints
 from .sample import calibration_generator, member_uniforms, parameter_values
 from .engine.web import no_jumps, pack_coefficients, web_run
 from .model import Controls, segment_coefficients
@@ -293,9 +293,12 @@ def _rescale(scale: float, acceptance: float) -> float:
     return float(np.clip(scale * factor, 1e-4, 1.0))
 
 
-def _refuse(case: Case, why: str, history) -> CalibrationError:
+def _refuse(case: Case, why: str, history, ev: dict | None = None) -> CalibrationError:
     last = history[-1] if history else {}
     where = ("monitoring" if case.monitoring else "change_limits" if case.change_limits else "observed")
+    unmet = unmet_constraints(case, ev["breaches"], ev["failed"]) if ev is not None and "breaches" in ev else ""
+    if unmet:  # name what cannot be met first: the field to look at before the sampler's state
+        why += f". Furthest from being met: {unmet}"
     return CalibrationError(case.path, where, f"the calibration did not converge: {why} (after "
                             f"{last.get('simulations', 0)} simulations in {len(history)} generations; tolerance "
                             f"{last.get('tolerance', float('nan')):.3g}, temperature {last.get('temperature', 0):.3g}). "
@@ -360,13 +363,13 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
         history.append(dict(generation=g, tolerance=new_eps, temperature=new_beta, ess=ess, acceptance=acc,
                             steps=steps, simulations=sims))
         if steps < wanted:
-            raise _refuse(case, f"the budget of {budget} simulations ran out", history)
+            raise _refuse(case, f"the budget of {budget} simulations ran out", history, pop.ev)
         if progress:
             moved = f"move acceptance {acc:.0%} over {steps} steps" if steps else "no move needed"
             progress(f"calibrating (SMC) generation {g}: tolerance {new_eps:.3g}, temperature {new_beta:.3g}, "
                      f"ESS {ess:.0f} of {N}, {moved}, {sims} simulations")
     else:
-        raise _refuse(case, f"{MAX_GENERATIONS} generations were not enough", history)
+        raise _refuse(case, f"{MAX_GENERATIONS} generations were not enough", history, pop.ev)
     distinct = len(np.unique(pop.z, axis=0)) / N
     cal = Calibration("smc", sims, state["accepted"] / max(state["proposed"], 1), prior_ok, history, distinct,
                       distinct >= MIN_DISTINCT, time.monotonic() - t_start, pop.ev["recorded"], record_times(case))
@@ -390,7 +393,7 @@ def _next_target(case: Case, pop: _Population, state: dict, history: list):
             raise _refuse(case, "more than half of the prior draws failed numerically", history)
         state["stalled"] = state["stalled"] + 1 if new_eps > 0.99 * eps else 0
         if state["stalled"] >= STALL:
-            raise _refuse(case, "the distance from the constraints stopped falling", history)
+            raise _refuse(case, "the distance from the constraints stopped falling", history, pop.ev)
         return new_eps, beta, (d <= new_eps).astype(float)
     if beta < 1.0:
         finite = np.isfinite(ll)

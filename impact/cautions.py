@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .formatting import fmt_num, fmt_prob
+from .formatting import fmt_bare_prob, fmt_num, fmt_prob
 from .manifest import Manifest
 
 RANK_THIN, RANK_SHORTFALL, RANK_FAILURES, RANK_UNDECIDED = 0, 1, 2, 3
@@ -94,7 +94,7 @@ def _objective_cautions(objectives: pd.DataFrame) -> list[Caution]:
 def share_text(r) -> str:
     """A regime share with its interval, where the table gives one."""
     if "share_low" in r and pd.notna(r.share_low):
-        return f"{fmt_prob(r.share)} [{fmt_prob(r.share_low).replace(' %', '')}–{fmt_prob(r.share_high)}]"
+        return f"{fmt_prob(r.share)} [{fmt_bare_prob(r.share_low)}, {fmt_bare_prob(r.share_high)}]"
     return fmt_prob(r.share)
 
 

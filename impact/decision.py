@@ -26,7 +26,7 @@ import numpy as np
 import pandas as pd
 
 from .case import Case
-from .effects import BASELINE, objective_outcome
+from .effects import BASELINE, best_choices, good_outcome
 from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values_many, member_slices, ridge_solve,
                   weighted_normal_equations, weighted_sums)
 
@@ -114,13 +114,6 @@ def _adjusted_r2(Y: np.ndarray, D: np.ndarray) -> np.ndarray:
     return np.where(var > 0, adj, np.nan)
 
 
-def good_outcome(case: Case, objective, summary) -> np.ndarray:
-    """Per member, 1 when the outcome goes the objective's way under this run, else 0 (NaN if failed)."""
-    o = objective_outcome(case, objective, summary)
-    good = o.event if objective.event_is_good else ~o.event
-    return np.where(np.isfinite(o.score), good.astype(float), np.nan)
-
-
 def _outputs(case: Case, summaries: dict, option: str) -> tuple[list[tuple[str, str]], np.ndarray]:
     """Labels (output, species) and values (M, K) of what the verdict rests on, under one option."""
     labels, cols = [], []
@@ -177,8 +170,8 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
         ok = oks[i]
         means = nbs[i][ok].mean(axis=0)
         best = int(np.argmax(means))
-        # every choice as good as the best (the same members count for all, so ties are exact)
-        tied = "; ".join(c for c, m in zip(choices, means) if m == means[best])
+        # the one rule for "best" (effects.best_choices), on the same members as page 1 and comparisons.csv
+        tied = "; ".join(best_choices(choices, means))
         for key, e in vals[i].items():
             kind = "evpi" if key == "all parameters" else ("group evppi" if key in group_names else "evppi")
             rows.append(dict(objective=obj.name, parameter=key, kind=kind,

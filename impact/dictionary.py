@@ -35,10 +35,13 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "decrease_at_least", "bound": "the requirement's number (probability units)", "statistic":
         "chance, increase or decrease", "value": "the estimate", "low": "lower limit", "high": "upper limit",
         "interval": _CI, "level": _LEVEL, "n": _N, "status": "met, not met or undecided (interval straddles)"}),
-    "comparisons.csv": ("Options (and doing nothing) compared member by member, objective by objective.", {
-        "objective": "objective name", "option": "the run", "versus": "the other run, or all (share_best)",
-        "statistic": "p_better, p_tie or share_best", "value": "the estimate", "low": "lower limit",
-        "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N}),
+    "comparisons.csv": ("Doing nothing and every option compared by each objective's good outcome, on the members "
+                        "where every run succeeded.", {
+        "objective": "objective name", "option": "the run", "versus": "none (p_good), the other run (p_only), or "
+        "all (best)", "statistic": "p_good (chance of a good outcome), p_only (paired chance of a good outcome "
+        "where the other run has none) or best (1 for the runs with the highest chance of a good outcome, ties "
+        "all named; 0 otherwise)", "value": "the estimate", "low": "lower limit (empty for best)",
+        "high": "upper limit (empty for best)", "interval": _CI, "level": _LEVEL + " (empty for best)", "n": _N}),
     "bands.csv": ("Quantiles over members of every trajectory at every output time.", {
         "option": "baseline or option", "species": "species (or carrion)", "time": "output time",
         "q05": "5 % quantile", "q25": "25 % quantile", "q50": "median", "q75": "75 % quantile", "q95": "95 % quantile"}),

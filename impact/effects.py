@@ -9,8 +9,8 @@ turns the per-member summaries into three tidy tables (column names defined once
   it materially;
 * ``objectives.csv``: each declared objective judged for every option (and for the baseline
   where the requirement is a chance), with its interval and a status;
-* ``comparisons.csv``: for each objective, the chance that one option beats another in a member,
-  and the share of members in which each option (or doing nothing) is best.
+* ``comparisons.csv``: for each objective, each run's chance of a good outcome, the paired chance
+  that one run has it where another does not, and which runs are best by :func:`best_choices`.
 
 All functions are pure: summaries in, DataFrames out.
 """
@@ -39,8 +39,6 @@ CHANGE_STATISTICS = ("median_change", "p_worse", "p_material", "p_material_incre
 EVENT_STATISTICS = ("difference", "p_worse")
 # status words of objectives.csv
 MET, NOT_MET, UNDECIDED = "met", "not met", "undecided"
-# relative tolerance under which two members' outcomes count as a tie (float noise, not ecology)
-TIE_RTOL = 1e-9
 
 
 def _rows_to_frame(rows: list[dict], columns: tuple[str, ...]) -> pd.DataFrame:
@@ -165,11 +163,11 @@ def objective_outcome(case: Case, obj: Objective, summary) -> Outcome:
 
 
 def event_text(case: Case, obj: Objective) -> str:
-    """Plain words for the objective's event, e.g. ``"rat abundance below 30 rats/ha at 10 year"``."""
+    """Plain words for the objective's event, e.g. ``"rat abundance below 30 rats/ha in year 10"``."""
     sp = case.species_by_name(obj.species)
-    h = f"{obj.horizon:g} {case.time_unit}"
+    h = f"{case.time_unit} {obj.horizon:g}"
     if obj.measure == "abundance":
-        return f"{sp.name} abundance {'below' if obj.below else 'above'} {obj.level:g} {sp.unit} at {h}"
+        return f"{sp.name} abundance {'below' if obj.below else 'above'} {obj.level:g} {sp.unit} in {h}"
     if obj.measure == "quasi_extinction":
         return f"{sp.name} falls below its quasi-extinction level ({sp.quasi_extinction:g} {sp.unit}) by {h}"
     return f"{sp.name} exceeds its outbreak level ({sp.outbreak:g} {sp.unit}) by {h}"
@@ -216,43 +214,74 @@ def objectives_table(case: Case, summaries: dict) -> pd.DataFrame:
 
 # ------------------------------------------------------------------------- comparisons
 
-def _better(a: np.ndarray, b: np.ndarray, lower_is_better: bool) -> tuple[np.ndarray, np.ndarray]:
-    """Per member: a strictly better than b, and a tie (within TIE_RTOL)."""
-    tie = np.abs(a - b) <= TIE_RTOL * np.maximum(np.abs(a), np.abs(b))
-    better = (a < b) if lower_is_better else (a > b)
-    return better & ~tie, tie
+def good_outcome(case: Case, obj: Objective, summary) -> np.ndarray:
+    """Per member, 1 when the outcome goes the objective's way under this run, else 0 (NaN if failed).
+
+    The good outcome is the objective's event when the requirement asks for a high chance of it
+    (``chance_at_least``), and its absence otherwise (a cap on a chance, on a rise, or a required fall).
+    """
+    o = objective_outcome(case, obj, summary)
+    good = o.event if obj.event_is_good else ~o.event
+    return np.where(np.isfinite(o.score), good.astype(float), np.nan)
+
+
+def best_choices(choices, chances) -> tuple[str, ...]:
+    """The one rule for "best" under a yes/no objective: the choices with the highest chance of a good outcome.
+
+    Every page and table that names a best choice (page 1, ``comparisons.csv``, the value-of-information
+    page) applies this rule to chances computed on the same members, so they cannot disagree.
+
+    Parameters
+    ----------
+    choices : sequence of str, length D
+        Doing nothing (``"baseline"``) and the options.
+    chances : array_like (D,)
+        Each choice's chance of a good outcome, on the same members (members where every choice ran).
+
+    Returns
+    -------
+    tuple of str
+        Every choice whose chance equals the highest (ties are exact: the chances are counts over the
+        same members divided by the same number), in the order given.
+    """
+    p = np.asarray(chances, float)
+    if p.size == 0 or not np.isfinite(p).any():
+        return ()
+    top = np.nanmax(p)
+    return tuple(c for c, v in zip(choices, p) if v == top)
 
 
 def comparisons_table(case: Case, summaries: dict) -> pd.DataFrame:
-    """For each objective: P(A beats B) for every ordered pair of runs, and each run's share of members where it is best.
+    """For each objective, doing nothing and every option compared by their chance of a good outcome.
 
-    The baseline (doing nothing) takes part as a run like the options. A member counts for a
-    pair only when neither run failed; ties count as neither better nor worse (``p_tie`` rows).
+    Every objective the case language declares is a yes/no event (a level and a requirement on the
+    chance of crossing it), so runs are compared on that event alone, never on the continuous score
+    behind it (an option that leaves one more cat alive in every member is no worse for "cats
+    removed" when both stay below the level). Rows, on the members where every run succeeded:
+
+    * ``p_good`` (``versus`` = ``none``): the run's chance of a good outcome, exact binomial interval;
+    * ``p_only`` (``versus`` = the other run): the paired chance that the run has a good outcome in a
+      member where the other does not;
+    * ``best`` (``versus`` = ``all``): 1 for the runs :func:`best_choices` names, 0 for the others
+      (no interval).
     """
     conf = case.risk.confidence
     names = [BASELINE, *(o.name for o in case.options)]
     rows = []
     for obj in case.objectives:
-        out = {n: objective_outcome(case, obj, summaries[n]) for n in names}
-        lower = out[BASELINE].lower_is_better
-        scores = np.stack([out[n].score for n in names], axis=1)
-        ok_all = np.isfinite(scores).all(axis=1)
-        for a in names:
-            for b in names:
-                if a == b:
-                    continue
-                ok = np.isfinite(out[a].score) & np.isfinite(out[b].score)
-                better, tie = _better(out[a].score[ok], out[b].score[ok], lower)
-                for stat, flags in (("p_better", better), ("p_tie", tie)):
-                    v, lo, hi, n = mx.proportion(flags, conf)
-                    rows.append(dict(objective=obj.name, option=a, versus=b, statistic=stat, value=v, low=lo,
-                                     high=hi, interval="clopper_pearson", level=conf, n=n))
-        s = scores[ok_all]
-        best_value = s.min(axis=1) if lower else s.max(axis=1)
+        good = np.column_stack([good_outcome(case, obj, summaries[n]) for n in names])
+        g = good[np.isfinite(good).all(axis=1)] > 0.5
+        key = dict(objective=obj.name, interval="clopper_pearson", level=conf)
         for i, a in enumerate(names):
-            _, tie = _better(s[:, i], best_value, lower)
-            v, lo, hi, n = mx.proportion(tie, conf)
-            rows.append(dict(objective=obj.name, option=a, versus="all", statistic="share_best", value=v, low=lo,
-                             high=hi, interval="clopper_pearson", level=conf, n=n))
+            v, lo, hi, n = mx.proportion(g[:, i], conf)
+            rows.append(dict(key, option=a, versus="none", statistic="p_good", value=v, low=lo, high=hi, n=n))
+        for i, a in enumerate(names):
+            for j, b in enumerate(names):
+                if i != j:
+                    v, lo, hi, n = mx.proportion(g[:, i] & ~g[:, j], conf)
+                    rows.append(dict(key, option=a, versus=b, statistic="p_only", value=v, low=lo, high=hi, n=n))
+        best = best_choices(names, g.mean(axis=0) if len(g) else np.full(len(names), np.nan))
+        for a in names:
+            rows.append(dict(key, option=a, versus="all", statistic="best", value=float(a in best), low=np.nan,
+                             high=np.nan, interval="none", level=np.nan, n=len(g)))
     return _rows_to_frame(rows, COMPARISON_COLUMNS)
-

@@ -68,3 +68,19 @@ def fmt_cell(metric: str, value, low, high) -> str:
     if metric == "mean_change":
         return f"{fmt_change(value)} [{fmt_change(low)}, {fmt_change(high)}]"
     return f"{fmt_num(value)} [{fmt_num(low)}, {fmt_num(high)}]"
+
+
+def plural(unit: str) -> str:
+    """A time unit in the plural (``year`` → ``years``)."""
+    unit = str(unit)
+    return unit if unit.endswith("s") else unit + "s"
+
+
+def by_time(h, unit: str) -> str:
+    """A horizon as read on the page: ``by year 10``, ``by week 15.5``."""
+    return f"by {unit}\u00a0{fmt_num(h)}"
+
+
+def over_period(h, unit: str) -> str:
+    """The period from today to a horizon: ``over years 0–40``."""
+    return f"over {plural(unit)} 0–{fmt_num(h)}"

@@ -78,6 +78,7 @@ class ObjectiveRecord:
     bound: float
     event: str = ""
     description: str = ""
+    level: float | None = None  # the abundance level of an abundance objective (drawn on its species' plot)
 
 
 @dataclass(frozen=True)

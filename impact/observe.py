@@ -101,6 +101,48 @@ def _log(x: np.ndarray) -> np.ndarray:
         return np.maximum(np.log(x), LOG_FLOOR)
 
 
+def constraint_labels(case: Case) -> list[tuple[str, str]]:
+    """Every hard constraint as ``(field, words)``, in the order of :func:`constraint_terms`."""
+    out = [(f"species[{j}].quasi_extinction", f"{s.name} stays above {s.quasi_extinction:g} {s.unit} through the "
+            "second half of spin-up") for j, s in enumerate(case.species) if s.present and s.quasi_extinction > 0]
+    out += [(f"observed[{i}]", f"{ob.species} {ob.low:g}–{ob.high:g} today") for i, ob in enumerate(case.observed)]
+    for i, lim in enumerate(case.change_limits):
+        if lim.up is not None:
+            out.append((f"change_limits[{i}].up_at_most",
+                        f"{lim.species} grows at most ×{lim.up:g} per {lim.step:g}"))
+        if lim.down is not None:
+            out.append((f"change_limits[{i}].down_at_most",
+                        f"{lim.species} falls at most ÷{lim.down:g} per {lim.step:g}"))
+    return out
+
+
+def constraint_terms(case: Case, recorded: np.ndarray, times: np.ndarray, late_min: np.ndarray):
+    """Each hard constraint's breach per member, in the order :func:`distance` adds them.
+
+    Yields ``(part, breach)``: the part of the distance (``extinct``, ``range``, ``change``) and the
+    breach, ndarray (M,), a log-ratio (0 where met); :func:`constraint_labels` names them in the same
+    order. A limit on change yields its growth and its fall bound as two terms.
+    """
+    col = {n: i for i, n in enumerate(case.species_names)}
+    today = recorded[:, -1]
+    for j, s in enumerate(case.species):
+        if s.present and s.quasi_extinction > 0:
+            yield "extinct", np.maximum(0.0, np.log(s.quasi_extinction) - _log(late_min[:, j]))
+    for ob in case.observed:
+        x = _log(today[:, col[ob.species]])
+        low = np.log(ob.low) if ob.low > 0 else -np.inf
+        yield "range", np.maximum(0.0, low - x) + np.maximum(0.0, x - np.log(ob.high))
+    for lim in case.change_limits:
+        idx = _columns(times, lim.check_times())
+        x = _log(recorded[:, idx, col[lim.species]])
+        dt = np.diff(times[idx]) / lim.step
+        step = np.diff(x, axis=1)
+        if lim.up is not None:
+            yield "change", np.maximum(0.0, step - dt * np.log(lim.up)).sum(axis=1)
+        if lim.down is not None:
+            yield "change", np.maximum(0.0, -step - dt * np.log(lim.down)).sum(axis=1)
+
+
 def distance(case: Case, recorded: np.ndarray, times: np.ndarray, late_min: np.ndarray,
              failed: np.ndarray) -> dict[str, np.ndarray]:
     """How far each member is from meeting the case's hard constraints (0: all met).
@@ -116,34 +158,57 @@ def distance(case: Case, recorded: np.ndarray, times: np.ndarray, late_min: np.n
 
     Returns
     -------
-    dict of ndarray (M,)
-        ``distance`` (the sum), and its parts ``extinct``, ``range``, ``change`` (each a sum of
-        log-ratios by which a bound is breached) for the counts of rejections.
+    dict of ndarray
+        ``distance`` (M,) (the sum), and its parts ``extinct``, ``range``, ``change`` (M,) (each a
+        sum of log-ratios by which a bound is breached) for the counts of rejections; ``breaches``
+        (M, K), every term of :func:`constraint_terms` (0 for a failed member), for a refusal's message.
     """
-    col = {n: i for i, n in enumerate(case.species_names)}
     M = recorded.shape[0]
-    today = recorded[:, -1]
     parts = {k: np.zeros(M) for k in ("extinct", "range", "change")}
-    for j, s in enumerate(case.species):
-        if s.present and s.quasi_extinction > 0:
-            parts["extinct"] += np.maximum(0.0, np.log(s.quasi_extinction) - _log(late_min[:, j]))
-    for ob in case.observed:
-        x = _log(today[:, col[ob.species]])
-        low = np.log(ob.low) if ob.low > 0 else -np.inf
-        parts["range"] += np.maximum(0.0, low - x) + np.maximum(0.0, x - np.log(ob.high))
-    for lim in case.change_limits:
-        idx = _columns(times, lim.check_times())
-        x = _log(recorded[:, idx, col[lim.species]])
-        dt = np.diff(times[idx]) / lim.step
-        step = np.diff(x, axis=1)
-        if lim.up is not None:
-            parts["change"] += np.maximum(0.0, step - dt * np.log(lim.up)).sum(axis=1)
-        if lim.down is not None:
-            parts["change"] += np.maximum(0.0, -step - dt * np.log(lim.down)).sum(axis=1)
+    terms = []
+    for part, breach in constraint_terms(case, recorded, times, late_min):
+        parts[part] += breach
+        terms.append(breach)
     total = parts["extinct"] + parts["range"] + parts["change"]
     bad = failed | np.isnan(total)
     total = np.where(bad, np.inf, total)
-    return {"distance": total, "failed": bad, **{k: np.where(bad, 0.0, v) for k, v in parts.items()}}
+    breaches = np.where(bad[:, None], 0.0, np.column_stack(terms)) if terms else np.zeros((M, 0))
+    return {"distance": total, "failed": bad, "breaches": breaches,
+            **{k: np.where(bad, 0.0, v) for k, v in parts.items()}}
+
+
+# a refusal names at most this many constraints, those furthest from being met
+UNMET_SHOWN = 3
+
+
+def unmet_constraints(case: Case, breaches: np.ndarray, failed: np.ndarray | None = None) -> str:
+    """The constraints furthest from being met by a population, and how close its closest members come.
+
+    Parameters
+    ----------
+    breaches : ndarray (M, K)
+        :func:`distance`'s ``breaches`` of the population.
+    failed : ndarray (M,) bool, optional
+        Members that failed numerically (left out).
+
+    Returns
+    -------
+    str
+        ``"observed[2] (cat 500–600 today): 0 of 1000 members meet it; the closest is a factor 1.8
+        outside"``, for the constraints with the largest smallest breach; empty when there is none.
+    """
+    ok = np.ones(breaches.shape[0], bool) if failed is None else ~np.asarray(failed, bool)
+    b = breaches[ok]
+    if b.size == 0:
+        return ""
+    labels = constraint_labels(case)
+    closest, met = b.min(axis=0), (b <= 0).sum(axis=0)
+    order = [k for k in np.argsort(-closest, kind="stable") if closest[k] > 0][:UNMET_SHOWN]
+    if not order:  # each is met by some member, never all at once: name those met by the fewest
+        order = list(np.argsort(met, kind="stable")[:UNMET_SHOWN])
+    return "; ".join(f"{labels[k][0]} ({labels[k][1]}): {int(met[k])} of {len(b)} members meet it"
+                     + (f", the closest is a factor {np.exp(closest[k]):.3g} outside" if closest[k] > 0 else "")
+                     for k in order)
 
 
 def draw_observations(case: Case, values: dict, recorded: np.ndarray, times: np.ndarray,

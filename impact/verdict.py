@@ -1,18 +1,23 @@
 """The verdict a review board reads first, written from the saved tables alone.
 
-For each option: whether each declared objective is met (with its probability, interval and
-calibrated likelihood term), what happens to the targets (as an outcome, not a harm), then every
+Page 1 opens with the bottom line (:mod:`impact.bottomline`: every option against every objective,
+then which options meet them all and the main trade-off). Then, for each option: protected
+species first, then the targets (their loss is the aim, an outcome, not a harm), then every
 other species whose change is material, largest first, marked direct or indirect, and the
 species for which a material change is unlikely. Every number printed here is a value of
-``risk.csv``, ``effects.csv`` or ``objectives.csv`` passed through :mod:`impact.formatting`,
-so page 1 cannot say something the tables do not.
+``risk.csv``, ``effects.csv``, ``objectives.csv`` or ``comparisons.csv`` passed through
+:mod:`impact.formatting`, so page 1 cannot say something the tables do not.
 
 Listing rule (documented in README): a non-target species is a *material side effect* of an
-option when, at some risk horizon, a material change of its mean abundance is at least "about as
-likely as not" (probability above 33 %, the lower edge of that term of the likelihood scale), or
-its quasi-extinction or outbreak chance changes by at least the case's ``material_risk``. The
-horizon shown is the one where the effect is largest. A run with fewer plausible members than
-``min_members`` gets no verdict at all.
+option when, at some risk horizon, a material change of its mean abundance is more likely than
+"unlikely" (probability above 33 %, the upper edge of that term of the likelihood scale), or its
+quasi-extinction or outbreak chance changes by at least the case's ``material_risk``.
+
+Horizon rule (stated once in the page's reading box): a species is read at the horizon of the
+objective that concerns it (the longest, if several), any other species at the case's last
+horizon (:func:`species_horizon`). A sentence quotes another horizon only when the change is
+material there and not at the species' horizon, and then says so. A run with fewer plausible
+members than ``min_members`` gets no verdict at all.
 """
 
 from __future__ import annotations
@@ -23,7 +28,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .formatting import fmt_bare_points, fmt_bare_prob, fmt_change, fmt_num, fmt_points, fmt_prob
+from .bottomline import BottomLine, best_by_objective, bottom_line, names_text, run_label
+from .formatting import (by_time, fmt_bare_points, fmt_bare_prob, fmt_change, fmt_num, fmt_points, fmt_prob,
+                         over_period)
 from .likelihood import LOWER_TERMS, likelihood_term
 from .manifest import Manifest
 
@@ -60,6 +67,7 @@ class OptionReading:
 
     option: str
     objectives: tuple[Item, ...]
+    protected: tuple[Item, ...]
     targets: tuple[Item, ...]
     side_effects: tuple[Item, ...]
     unchanged: str
@@ -73,6 +81,7 @@ class Reading:
     thin_reason: str
     options: tuple[OptionReading, ...]
     best: tuple[str, ...]
+    bottom: BottomLine | None
 
 
 def with_term(p: float, low: float, high: float) -> str:
@@ -131,32 +140,58 @@ def _risk_pair(risk: pd.DataFrame, option: str, species: str, metric: str, h: fl
     return f"{fmt_prob(b.value)} → {fmt_prob(o.value)}"
 
 
+def species_horizon(m: Manifest, species: str) -> tuple[float, str]:
+    """The horizon page 1 reads a species at (the one horizon rule), and its name in words.
+
+    The rule: a species an objective concerns is read at that objective's horizon (the longest, if
+    several objectives concern it); every other species at the case's last risk horizon. Where the
+    objective's horizon is not a risk horizon, the first risk horizon after it (else the last).
+    """
+    hs = sorted(float(h) for h in m.horizons)
+    own = [float(o.horizon) for o in m.objectives if o.species == species]
+    if not own:
+        return hs[-1], "the case's last horizon"
+    h = max(own)
+    return next((x for x in hs if x >= h - 1e-9), hs[-1]), "the horizon of its objective"
+
+
+def horizon_rule_text(m: Manifest) -> str:
+    """The horizon rule in one sentence, with the horizon each species an objective concerns is read at."""
+    named = list(dict.fromkeys(o.species for o in m.objectives))
+    own = ", ".join(f"{sp} {by_time(species_horizon(m, sp)[0], m.time_unit)}" for sp in named)
+    last = by_time(max(m.horizons), m.time_unit)
+    if not named:
+        return f"Horizon: every species is read at the case's last horizon ({last}) unless a sentence says why not."
+    return (f"Horizons: a species an objective concerns is read at that objective's horizon ({own}), every other "
+            f"species at the case's last horizon ({last}); a sentence that quotes another horizon says why.")
+
+
 def target_line(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, option: str, species: str) -> Item:
     """The outcome for a target species: its quasi-extinction chance and its change in abundance."""
-    H = max(m.horizons)
+    H, _ = species_horizon(m, species)
     unit = m.time_unit
     parts = []
     q = _one(risk, option=option, species=species, metric="quasi_extinction", horizon=H)
     b = _one(risk, option="baseline", species=species, metric="quasi_extinction", horizon=H)
     if q is not None:
-        parts.append(f"chance of falling below its quasi-extinction level by {fmt_num(H)} {unit}: "
+        parts.append(f"chance of falling below its quasi-extinction level {by_time(H, unit)}: "
                      f"{with_term(q.value, q.low, q.high)}"
                      + (f" (without the option {fmt_prob(b.value)})" if b is not None else ""))
     c = _one(effects, option=option, species=species, metric="mean_abundance", horizon=H, statistic="median_change")
     if c is not None:
-        parts.append(f"mean abundance over 0–{fmt_num(H)} {unit} {fmt_change(c.value)} against doing nothing "
+        parts.append(f"mean abundance {over_period(H, unit)} {fmt_change(c.value)} against doing nothing "
                      f"(median; 5–95 % of members {fmt_change(c.low)} to {fmt_change(c.high)})")
     return Item(f"{species} (target)", "; ".join(parts) + "." if parts else "no outcome saved.")
 
 
 def introduced_item(m: Manifest, risk: pd.DataFrame, option: str, species: str) -> Item:
-    """A species absent today that the option brings in: where it stands by the last horizon."""
-    H = max(m.horizons)
+    """A species absent today that the option brings in: where it stands at its horizon."""
+    H, _ = species_horizon(m, species)
     r = _one(risk, option=option, species=species, metric="mean_abundance", horizon=H)
     body = "absent without the option, so no paired change exists"
     if r is not None:
         unit = next(s.unit for s in m.species if s.name == species)
-        body += (f"; mean abundance over 0–{fmt_num(H)} {m.time_unit} under the option {fmt_num(r.value)} {unit} "
+        body += (f"; mean abundance {over_period(H, m.time_unit)} under the option {fmt_num(r.value)} {unit} "
                  f"(median; 5–95 % of members {fmt_num(r.low)} to {fmt_num(r.high)})")
     return Item(f"{species} (introduced by this option)", body + ".")
 
@@ -167,28 +202,44 @@ class _Effect:
     item: Item
 
 
-def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: Manifest) -> tuple[str, float, float]:
-    """The abundance side of an effect at the horizon where a material change is likeliest."""
+def _material_chance(effects: pd.DataFrame, option: str, species: str) -> pd.DataFrame:
     e = _pick(effects, option=option, species=species, metric="mean_abundance")
-    pm = e[(e.statistic == "p_material") & (e.n.astype(float) > 0)]
+    return e[(e.statistic == "p_material") & (e.n.astype(float) > 0)]
+
+
+def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: Manifest,
+                    listing: float) -> tuple[str, float, float]:
+    """The abundance side of an effect at the species' horizon; another horizon only where the change is
+    material there and not at the species' horizon (and the sentence says so)."""
+    pm = _material_chance(effects, option, species)
     if pm.empty:  # absent without the option: no paired relative change exists
         return "", 0.0, 0.0
-    # the latest horizon among those with the highest chance of a material change
-    best = pm[pm.value == pm.value.max()].iloc[-1]
-    h = float(best.horizon)
-    med = _one(e, horizon=h, statistic="median_change")
-    size = abs(math.log1p(max(float(med.value), -0.999999))) if med is not None and np.isfinite(med.value) else 0.0
-    down = _one(e, horizon=h, statistic="p_material_decrease")
-    up = _one(e, horizon=h, statistic="p_material_increase")
-    text = (f"mean abundance over 0–{fmt_num(h)} {m.time_unit} {fmt_change(med.value)} (median paired change; "
+    H, _ = species_horizon(m, species)
+    e = _pick(effects, option=option, species=species, metric="mean_abundance")
+    at = _one(pm, horizon=H)
+    med = _one(e, horizon=H, statistic="median_change")
+    if at is None or med is None:
+        return "", 0.0, 0.0
+    size = abs(math.log1p(max(float(med.value), -0.999999))) if np.isfinite(med.value) else 0.0
+    down = _one(e, horizon=H, statistic="p_material_decrease")
+    up = _one(e, horizon=H, statistic="p_material_increase")
+    text = (f"mean abundance {over_period(H, m.time_unit)} {fmt_change(med.value)} (median paired change; "
             f"5–95 % of members {fmt_change(med.low)} to {fmt_change(med.high)}); chance of a material change "
-            f"(±{fmt_change(best.threshold).lstrip('+')}): {with_term(best.value, best.low, best.high)}"
+            f"(±{fmt_change(at.threshold).lstrip('+')}): {with_term(at.value, at.low, at.high)}"
             f" (a fall {fmt_prob(down.value)}, a rise {fmt_prob(up.value)})")
-    return text, float(best.value), size
+    top = pm.loc[pm.value.astype(float).idxmax()]
+    if float(at.value) <= listing < float(top.value):
+        other = _one(e, horizon=float(top.horizon), statistic="median_change")
+        text += (f"; {over_period(top.horizon, m.time_unit)} instead, quoted because the change is material there "
+                 f"and fades by {m.time_unit} {fmt_num(H)}: {fmt_change(other.value)}, chance of a material change "
+                 f"{with_term(top.value, top.low, top.high)}")
+    return text, float(pm.value.max()), size
 
 
 def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species: str, m: Manifest) -> list[str]:
-    """Quasi-extinction and outbreak chances that move by at least the material risk."""
+    """Quasi-extinction and outbreak chances that move by at least the material risk, at the species' horizon
+    (another horizon only where the move is material there and not at the species' horizon, saying so)."""
+    H, _ = species_horizon(m, species)
     out = []
     for metric, name in EVENT_NAMES.items():
         d = _pick(effects, option=option, species=species, metric=metric, statistic="difference")
@@ -198,17 +249,29 @@ def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species
         r = d.loc[d.value.abs().idxmax()]
         if abs(float(r.value)) + 1e-12 < float(r.threshold):
             continue
-        out.append(f"{name} by {fmt_num(r.horizon)} {m.time_unit} "
+        at = _one(d, horizon=H)
+        if at is not None and abs(float(at.value)) + 1e-12 >= float(at.threshold):
+            r, why = at, ""
+        else:
+            why = (f" (quoted {by_time(r.horizon, m.time_unit)}, where the change is largest: it is below the "
+                   f"material level {by_time(H, m.time_unit)})")
+        out.append(f"{name} chance {by_time(r.horizon, m.time_unit)} "
                    f"{_risk_pair(risk, option, species, metric, float(r.horizon))} "
-                   f"({fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}])")
+                   f"({fmt_points(r.value)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}]){why}")
     return out
+
+
+def _quiet_text(m: Manifest, effects: pd.DataFrame, option: str, species: str) -> str:
+    H, _ = species_horizon(m, species)
+    pm = _one(effects, option=option, species=species, metric="mean_abundance", horizon=H, statistic="p_material")
+    return "" if pm is None or pm.n <= 0 else f"{with_term(pm.value, pm.low, pm.high)} {by_time(H, m.time_unit)}"
 
 
 def option_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objectives: pd.DataFrame,
                    option: str) -> OptionReading:
-    """Objectives, targets, material side effects (largest first) and the quiet species of one option."""
+    """Protected species, targets, other material side effects (largest first) and the quiet species of one option."""
     objs = tuple(objective_line(r) for _, r in objectives[objectives.option == option].iterrows())
-    targets, sides, quiet = [], [], []
+    protected, targets, sides, quiet = [], [], [], []
     touched = set(next(o for o in m.options if o.name == option).touches)
     for s in m.species:
         sp = s.name
@@ -219,38 +282,56 @@ def option_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objec
             if sp in touched:
                 sides.append(_Effect(math.inf, introduced_item(m, risk, option, sp)))
             continue
-        abundance, p_mat, size = _abundance_part(effects, option, sp, m)
+        listing = PROTECTED_LISTING_PROBABILITY if s.role == "protected" else LISTING_PROBABILITY
+        abundance, p_mat, size = _abundance_part(effects, option, sp, m, listing)
         events = _event_parts(effects, risk, option, sp, m)
         tag = ("protected, " if s.role == "protected" else "") + (
             "direct: the option acts on it" if sp in touched else "indirect: through the food web")
-        listing = PROTECTED_LISTING_PROBABILITY if s.role == "protected" else LISTING_PROBABILITY
         if p_mat > listing or events:
-            body = "; ".join(x for x in [abundance, *events] if x) + "."
-            sides.append(_Effect(size, Item(f"{sp} ({tag})", body)))
+            item = Item(f"{sp} ({tag})", "; ".join(x for x in [abundance, *events] if x) + ".")
+            if s.role == "protected":
+                protected.append(item)
+            else:
+                sides.append(_Effect(size, item))
+        elif s.role == "protected":  # a protected species is always read first, even when little changes
+            protected.append(Item(f"{sp} ({tag})", f"no material change likely: chance of a material change of its "
+                                                   f"mean abundance {_quiet_text(m, effects, option, sp)}; its "
+                                                   "quasi-extinction and outbreak chances move by less than the "
+                                                   "material level."))
         else:
-            pm = _one(effects, option=option, species=sp, metric="mean_abundance", horizon=max(m.horizons),
-                      statistic="p_material")
-            flags = [f for f in ("protected" if s.role == "protected" else "", "direct" if sp in touched else "") if f]
-            quiet.append(f"{sp}{' (' + ', '.join(flags) + ')' if flags else ''}"
-                         + (f" {with_term(pm.value, pm.low, pm.high)}" if pm is not None and pm.n > 0 else ""))
+            flags = "direct" if sp in touched else ""
+            quiet.append(f"{sp}{' (' + flags + ')' if flags else ''} {_quiet_text(m, effects, option, sp)}".rstrip())
     sides.sort(key=lambda e: -e.size)
     unchanged = ("Material change unlikely for: " + "; ".join(quiet) + " (chance of a material change of mean "
-                 "abundance over the whole period; their quasi-extinction and outbreak chances move by less than the "
-                 "material level)."
+                 "abundance; their quasi-extinction and outbreak chances move by less than the material level)."
                  if quiet else "")
-    return OptionReading(option, objs, tuple(targets), tuple(e.item for e in sides), unchanged)
+    return OptionReading(option, objs, tuple(protected), tuple(targets), tuple(e.item for e in sides), unchanged)
 
 
 def best_lines(comparisons: pd.DataFrame) -> tuple[str, ...]:
-    """Per objective, the run that is best in the most members (doing nothing included)."""
+    """Per objective: each run's chance of a good outcome, the best by the one rule, and the paired chance that
+    the best has it where the runner-up does not (and the reverse)."""
     out = []
-    best = comparisons[comparisons.statistic == "share_best"]
-    for obj, g in best.groupby("objective", sort=False):
-        g = g.sort_values("value", ascending=False)
-        parts = [f"{r.option} {fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
+    best = best_by_objective(comparisons)
+    good = comparisons[comparisons.statistic == "p_good"]
+    only = comparisons[comparisons.statistic == "p_only"]
+    for obj, g in good.groupby("objective", sort=False):
+        g = g.sort_values("value", ascending=False, kind="stable")
+        winners = best[obj][0]
+        parts = [f"{run_label(r.option)} {fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
                  for _, r in g.iterrows()]
-        out.append(f"“{obj}”: share of members in which each choice does best (ties count for each): "
-                   + "; ".join(parts) + ".")
+        text = (f"“{obj}”: chance of a good outcome: " + "; ".join(parts)
+                + f". Best: {names_text(run_label(n) for n in winners)}"
+                + (", tied" if len(winners) > 1 else "") + ".")
+        if len(g) > 1:
+            a, b = g.option.iloc[0], g.option.iloc[1]
+            ab = _one(only, objective=obj, option=a, versus=b)
+            ba = _one(only, objective=obj, option=b, versus=a)
+            if ab is not None and ba is not None:
+                text += (f" Member by member, {run_label(a)} has a good outcome where {run_label(b)} has none in "
+                         f"{fmt_prob(ab.value)} [{fmt_bare_prob(ab.low)}, {fmt_bare_prob(ab.high)}] of members, the "
+                         f"reverse in {fmt_prob(ba.value)} [{fmt_bare_prob(ba.low)}, {fmt_bare_prob(ba.high)}].")
+        out.append(text)
     return tuple(out)
 
 
@@ -259,24 +340,25 @@ def reading(manifest: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objec
     """The whole page-1 verdict from the saved manifest and tables."""
     thin, why = thin_run(manifest)
     if thin:
-        return Reading(True, why, (), ())
+        return Reading(True, why, (), (), None)
     opts = tuple(option_reading(manifest, risk, effects, objectives, o.name) for o in manifest.options)
-    return Reading(False, "", opts, best_lines(comparisons))
+    return Reading(False, "", opts, best_lines(comparisons), bottom_line(manifest, objectives, comparisons))
 
 
 def reading_text(r: Reading) -> str:
-    """The verdict as plain text for the terminal (the same sentences as page 1)."""
+    """The verdict as plain text for the terminal (the same sentences as page 1; the bottom line is
+    :func:`impact.bottomline.bottom_line_text`, which ends the terminal summary)."""
     if r.thin:
         return r.thin_reason
     lines = []
     for o in r.options:
         lines.append(f"option “{o.option}”:")
-        lines += [f"  objective {x.text()}" for x in o.objectives]
+        lines += [f"  protected: {x.text()}" for x in o.protected]
         lines += [f"  {x.text()}" for x in o.targets]
-        lines += [f"  side effect: {x.text()}" for x in o.side_effects] or ["  no material side effects found."]
+        lines += [f"  side effect: {x.text()}" for x in o.side_effects] or ["  no other material side effects found."]
         if o.unchanged:
             lines.append(f"  {o.unchanged}")
     if r.best:
-        lines.append("options compared, member by member:")
+        lines.append("choices compared by their chance of a good outcome, member by member:")
         lines += [f"  {x}" for x in r.best]
     return "\n".join(lines)

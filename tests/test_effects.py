@@ -200,5 +200,20 @@ def test_removing_both_predators_does_not_lower_the_bird(meso):
     # the objective (bird above 60 at year 40 in at least 80 % of members) is met only when both go
     status = dict(zip(o.option, o.status))
     assert status["apex and meso"] == "met" and status["apex only"] == "not met"
-    best = c[(c.statistic == "share_best")].set_index("option").value
+    # one notion of best: the highest chance of a good outcome (here the objective's event), ties all named
+    good = c[c.statistic == "p_good"].set_index("option").value
+    best = c[c.statistic == "best"].set_index("option").value
+    assert good["apex and meso"] > good["apex only"]
     assert best["apex and meso"] == 1.0 and best["apex only"] == 0.0
+    assert set(best[best == 1.0].index) == {k for k, v in good.items() if v == good.max()}
+
+
+def test_paired_only_chances_count_members_one_run_wins_and_the_other_loses(meso):
+    """p_only(A, B) − p_only(B, A) = p_good(A) − p_good(B) on the same members (the discordant pairs of a
+    paired 2×2 table; McNemar 1947), and p_only(A, B) ≤ p_good(A)."""
+    _, _, _, c = meso
+    good = c[c.statistic == "p_good"].set_index(["objective", "option"]).value
+    only = c[c.statistic == "p_only"].set_index(["objective", "option", "versus"]).value
+    for (obj, a, b), v in only.items():
+        assert v <= good[(obj, a)] + 1e-12
+        assert abs((v - only[(obj, b, a)]) - (good[(obj, a)] - good[(obj, b)])) < 1e-12

@@ -30,7 +30,7 @@ STAGES = [
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},
     {"decision", "loops", "press", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
-    {"chart", "cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
+    {"chart", "cautions", "bottomline", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},
 ]

@@ -181,6 +181,26 @@ def test_an_impossible_constraint_is_refused_with_a_clear_message(tmp_path):
     with pytest.raises(CalibrationError) as err:
         build_ensemble(case, 100, case.seed)
     assert "did not converge" in err.value.message and "No posterior ensemble is presented" in err.value.message
+    # the message names the constraint that cannot be met (file and field) and how close the members come:
+    # today is 100 for every member, a factor 5000 / 100 = 50 below the range's lower end
+    msg = err.value.message
+    assert "observed[0] (newt 5000–6000 today): 0 of 100 members meet it, the closest is a factor 50 outside" in msg
+    assert str(err.value.file) == str(case.path)
+
+
+def test_a_constraint_met_alone_but_not_together_is_named_by_how_few_members_meet_it():
+    """Each constraint met by some member but never all at once: those met by the fewest are named."""
+    from types import SimpleNamespace
+
+    from impact.observe import unmet_constraints
+
+    case = SimpleNamespace(species=(), observed=(SimpleNamespace(species="a", low=1.0, high=2.0),
+                                                 SimpleNamespace(species="b", low=3.0, high=4.0)),
+                           change_limits=())
+    b = np.array([[0.0, 0.5], [0.5, 0.0], [0.2, 0.0]])
+    text = unmet_constraints(case, b)
+    assert text.startswith("observed[0] (a 1–2 today): 1 of 3 members meet it")
+    assert "observed[1] (b 3–4 today): 2 of 3 members meet it" in text and "factor" not in text
 
 
 def test_monitoring_data_move_the_posterior_towards_the_truth(tmp_path):

@@ -365,3 +365,18 @@ def test_band_panels_keep_their_labels_inside_the_figure(results, top):
     ink = fig.get_tightbbox(FigureCanvasAgg(fig).get_renderer())  # inches, everything drawn
     w, h = fig.get_size_inches()
     assert ink.x0 >= 0 and ink.y0 >= 0 and ink.x1 <= w and ink.y1 <= h, (ink, w, h)
+
+
+@pytest.mark.slow
+def test_the_demo_report_opens_with_the_bottom_line_and_fits_in_twenty_pages(tmp_path):
+    """The invented demo at its own size, every stage on: page 1 holds the decision table, its sentences and the
+    caution box; the document is at most 20 pages (a review board's reading budget; common practice, no source)."""
+    demo = Path(__file__).resolve().parent.parent / "casework" / "island_mesopredator.toml"
+    out = tmp_path / "demo"
+    assert main(["assess", str(demo), "--out", str(out), "--quiet"]) == 0
+    pages = pypdf.PdfReader(str(out / "report.pdf")).pages
+    assert len(pages) <= 20, len(pages)
+    first = _squash(pages[0].extract_text())
+    for phrase in ("Bottom line", "meets every objective", "Caution.", "How to read this page"):
+        assert _squash(phrase) in first, phrase
+    assert first.index(_squash("Bottom line")) < first.index(_squash("What each option does"))

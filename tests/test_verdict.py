@@ -63,9 +63,9 @@ def test_verdict_names_the_released_mesopredator_as_an_indirect_side_effect(meso
     apex_only = next(o for o in r.options if o.option == "apex only")
     heads = [x.head for x in apex_only.side_effects]
     assert heads[0].startswith("meso (indirect")  # the largest change comes first
-    assert any(h.startswith("bird (protected, indirect") for h in heads)
-    bird = next(x for x in apex_only.side_effects if x.head.startswith("bird"))
-    meso = next(x for x in apex_only.side_effects if x.head.startswith("meso"))
+    # the protected bird is read first, in its own list, before the targets and the other species
+    assert [x.head for x in apex_only.protected] == ["bird (protected, indirect: through the food web)"]
+    bird, meso = apex_only.protected[0], next(x for x in apex_only.side_effects if x.head.startswith("meso"))
     assert meso.body.startswith("mean abundance") and " +" in meso.body.split("(")[0]
     assert " -" in bird.body.split("(")[0]
     # the target is an outcome, never a side effect, and gets no IUCN reading
@@ -77,9 +77,26 @@ def test_verdict_names_the_released_mesopredator_as_an_indirect_side_effect(meso
 def test_removing_both_predators_is_read_as_raising_the_bird(meso_results):
     r = _reading(meso_results)
     both = next(o for o in r.options if o.option == "apex and meso")
-    bird = next(x for x in both.side_effects if x.head.startswith("bird"))
-    assert " +" in bird.body.split("(")[0]
-    assert any(x.head.startswith("“bird spared” MET") for x in both.objectives)
+    assert " +" in both.protected[0].body.split("(")[0]
+    assert "apex and meso" in r.bottom.meets_all and "apex only" not in r.bottom.meets_all
+
+
+def test_every_bullet_reads_a_species_at_the_one_horizon_rule(meso_results):
+    """The horizon rule: a species an objective concerns at that objective's horizon, the others at the
+    case's last horizon; a bullet quoting any other horizon says why (common practice, no source)."""
+    from impact.formatting import fmt_num
+    from impact.verdict import species_horizon
+
+    m = meso_results.manifest
+    r = _reading(meso_results)
+    for o in r.options:
+        for x in (*o.protected, *o.targets, *o.side_effects):
+            sp = x.head.split(" (")[0]
+            h = fmt_num(species_horizon(m, sp)[0])
+            quoted = set(re.findall(r"(?:by year|over years 0–)\u00a0?(\d[\d.]*)", x.body))
+            assert h in quoted, (sp, x.body)
+            if quoted - {h}:
+                assert "quoted" in x.body, (sp, x.body)
 
 
 def test_a_thin_run_gives_no_verdict_but_keeps_the_tables(tmp_path, capsys):
@@ -119,9 +136,13 @@ def test_every_probability_on_page_one_is_in_the_tables(tmp_path):
     from pypdf import PdfReader
 
     pages = [p.extract_text() for p in PdfReader(str(out / "report.pdf")).pages]
+    # the running footer falls inside a sentence that continues on the next page
+    pages = [re.sub(r"Screening aid — not a decision|page \d+ of \d+|•", " ", t) for t in pages]
     end = next(i for i, t in enumerate(pages) if "Contents" in t)
     text = " ".join(pages[:end + 1]).split("Contents")[0].replace("\u00a0", " ")
-    text = text.split("How to read this page")[0]  # the reading guide quotes the scale's fixed edges
+    # the reading guide quotes the scale's fixed edges; the facts and the case's own words close the page
+    before, guide = text.split("How to read this page")
+    text = before + " What each option does " + guide.split("What each option does", 1)[1].split("Analyst")[0]
     text = re.sub(r"\s+", " ", text)  # line breaks of the PDF layout
     assert "What each option does" in text and "rat (indirect" in text
     forms = _printed_forms(out)
@@ -150,7 +171,7 @@ def test_a_protected_species_is_listed_above_a_one_in_ten_chance_of_a_material_c
     for o in r.options:
         e = res.effects[(res.effects.option == o.option) & (res.effects.metric == "mean_abundance")
                         & (res.effects.statistic == "p_material")]
-        listed = {x.head.split(" (")[0] for x in o.side_effects}
+        listed = {x.head.split(" (")[0] for x in (*o.side_effects, *o.protected)}
         for sp, g in e.groupby("species"):
             if roles[sp] == "target":
                 continue

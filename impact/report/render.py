@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from importlib import resources
 from pathlib import Path
 
@@ -10,11 +11,12 @@ from ..cautions import cautions
 from ..errors import InstallationError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
 from ..results import Results, load_results, write_file_atomic
-from ..verdict import reading, thin_run
-from ..webfigure import food_web_svg
+from ..bottomline import STATUS_WORDS, run_label
+from ..verdict import horizon_rule_text, reading, thin_run
+from ..webfigure import food_web_svg, web_legend
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from .sections import dynamics_context, press_context, sensitivity_context
-from .tables import comparisons_context, effects_table_context, iucn_rows, objectives_context, risk_table_context
+from .tables import comparisons_context, effects_table_context, iucn_context, objectives_context, risk_table_context
 
 PAPERS = {"a4": "A4", "letter": "letter"}
 ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
@@ -40,13 +42,14 @@ def report_context(res: Results, assets: Assets) -> dict:
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
     return dict(
         m=m, case=m.case, title=m.case.title, date=m.started_utc[:10],
-        verdict=verdict, caution=m.caution, warnings=[w.text for w in warnings],
+        verdict=verdict, caution=m.caution, run_label=run_label, status_words=STATUS_WORDS,
+        horizon_rule=horizon_rule_text(m), warnings=[w.text for w in warnings],
         # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
         top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m.species, interactions=m.interactions, equations=m.equations,
-        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), priors=priors, thin=thin,
-        interventions=m.interventions, options=options, iucn=iucn_rows(res),
+        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m), priors=priors, thin=thin,
+        interventions=m.interventions, options=options, iucn=iucn_context(res),
         sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets), press=press_context(res),
         calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
@@ -123,6 +126,23 @@ def render_pdf(html: str, assets: Assets):
     return pdf, fetcher
 
 
+_TEXT = re.compile(r">([^<]+)<")
+# what must not break across lines: an interval [a, b], a unit a/b, a hyphenated word (press-harvest)
+# (short tokens only: a path or a long compound may still break where it must)
+_KEEP = re.compile(r"\[[^\[\]<>]{1,60}\]|(?<![\w/.-])\w{1,12}(?:[/-]\w{1,12}){1,2}(?![\w/.-])")
+
+
+def keep_together(html: str) -> str:
+    """The body's text with every interval, unit and hyphenated word wrapped in a span that does not break
+    (``nowrap``): a narrow table column then wraps between them, never inside one. Only markup is added,
+    so the words and their characters stay as written (copying and searching the PDF find them)."""
+    head, sep, body = html.partition("<body>")
+    if not sep:
+        return html
+    keep = lambda t: ">" + _KEEP.sub(lambda k: f'<span class="nb">{k.group(0)}</span>', t.group(1)) + "<"
+    return head + sep + _TEXT.sub(keep, body)
+
+
 def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
     """The filled template and the assets it links to."""
     import jinja2
@@ -135,7 +155,7 @@ def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
                              autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
     ctx = report_context(res, assets)
     html = env.get_template("report.html").render(**ctx, paper=PAPERS[paper], asset=ASSET_SCHEME)
-    return html, assets
+    return keep_together(html), assets
 
 
 def write_report(results_dir, out=None, paper: str = "a4") -> Path:

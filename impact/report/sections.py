@@ -18,6 +18,10 @@ TOP_INFORMATION = 5
 NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
 # a share of variance below this (printed as 0.00 or 0.01) explains nothing a reader can act on
 VISIBLE_SHARE = 0.01
+# "depends mostly on" a parameter only when it explains at least half the outcome's variance at the lower
+# end of its interval: "mostly" read literally, as more than any rest (common practice, no source); below,
+# the sentence says that no single parameter dominates and gives the largest shares with their intervals
+DOMINANT_SHARE = 0.5
 
 
 def _index_text(r) -> str:
@@ -78,6 +82,11 @@ def _worth_measuring(params: pd.DataFrame) -> str:
     return "; no single number is worth measuring for this choice (every EVPPI is zero)."
 
 
+def _dominates(r) -> bool:
+    """An index that earns "depends mostly on": its whole interval at or above DOMINANT_SHARE."""
+    return _explains(r) and float(r.low) >= DOMINANT_SHARE
+
+
 def _information_context(info: pd.DataFrame) -> list[dict]:
     out = []
     for obj, g in info.groupby("objective", sort=False):
@@ -110,9 +119,11 @@ def _drivers_context(drv: pd.DataFrame, roles: dict | None = None) -> list[dict]
             h = h[np.isfinite(h.value.astype(float))].sort_values("value", ascending=False).head(TOP_DRIVERS)
             if h.empty:
                 continue
+            lead = h.iloc[0]
             rows.append(dict(output=output, species=sp, order=0 if output.startswith("objective") else
                              2 - rank.get(roles.get(sp), 0), top=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows()],
-                             explained=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows() if _explains(r)]))
+                             explained=[f"{r.parameter} {_index_text(r)}" for _, r in h.iterrows() if _explains(r)],
+                             dominant=f"{lead.parameter} {_index_text(lead)}" if _dominates(lead) else ""))
         rows.sort(key=lambda r: r["order"])  # stable: declaration order within each rank
         out.append(dict(option=opt, rows=rows[:MAX_DRIVER_ROWS], omitted=max(len(rows) - MAX_DRIVER_ROWS, 0),
                         n=fmt_num(g.n.iloc[0]), conditional_on=g.conditional_on.iloc[0]))
@@ -155,9 +166,14 @@ def hinges_text(res: Results) -> str:
                 if not r["output"].startswith("objective"):
                     continue
                 name = r["output"].removeprefix("objective ").removesuffix(": good outcome")
-                if r["explained"]:
+                if r["dominant"]:
                     lines.append(f"Under “{t['option']}”, whether {name} goes well depends mostly on "
-                                 + " and ".join(r["explained"][:2]) + " (share of its variance explained, with interval).")
+                                 f"{r['dominant']} (share of its variance explained, with interval; at least "
+                                 f"{fmt_index(DOMINANT_SHARE)} even at the interval's lower end).")
+                elif r["explained"]:
+                    lines.append(f"Under “{t['option']}”, no single parameter dominates whether {name} goes well "
+                                 f"(none explains {fmt_index(DOMINANT_SHARE)} of its variance at its interval's lower end; "
+                                 "largest shares: " + "; ".join(r["explained"][:2]) + ").")
                 else:
                     lines.append(f"Under “{t['option']}”, no single uncertain number explains a visible share of whether "
                                  f"{name} goes well (the outcome barely varies across the plausible members, or no "
@@ -193,9 +209,13 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
     rg = d.get("regimes")
     if rg is not None and not rg.empty:
-        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit), "image/png"),
+        ctx["figures"].append(dict(src=assets.add("lyapunov.png", distribution_figure(rg, unit, res.manifest.horizon),
+                                              "image/png"),
                                    caption="Distribution over members of the largest Lyapunov exponent and of the "
-                                           "predictability horizon, per option."))
+                                           "predictability horizon, per option. The horizon axis stops at the "
+                                           f"assessment horizon ({unit} {fmt_num(res.manifest.horizon)}, dashed); the "
+                                           "hatched bars (one per option) count the members predictable beyond it, "
+                                           "an infinite horizon (no growth of small errors) included."))
     sc = d.get("scan")
     if sc is not None and not sc.empty:
         ctx["scan_run"] = True

@@ -6,7 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..formatting import PROBABILITY_METRICS, fmt_bare_points, fmt_cell, fmt_change, fmt_num, fmt_points, fmt_prob
+from ..bottomline import run_label
+from ..formatting import (PROBABILITY_METRICS, by_time, fmt_bare_points, fmt_bare_prob, fmt_cell, fmt_change, fmt_num,
+                          fmt_points, fmt_prob)
 from ..iucn import CATEGORY_NAMES, criterion_e_in_units, years_per_unit
 from ..metrics import describe_interval
 from ..manifest import Manifest
@@ -129,14 +131,16 @@ def risk_table_context(res: Results, option: str, max_rows: int | None = None) -
                 caption=interval_caption(shown, dict(RISK_METRICS)))
 
 
-EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)", "p_material": "material change",
+EFFECT_LABELS = {"median_change": "paired change in mean abundance (median)",
+                 "p_material": "material change; of which a fall, a rise",
                  "p_material_decrease": "material fall", "p_material_increase": "material rise",
                  "p_worse": "worse than doing nothing", "difference": "change in chance"}
 # The statistics of effects.csv the PDF prints: the ones page 1 quotes (a material change and its split
 # into falls and rises among them). The chance that a member does worse than under doing nothing
-# (p_worse) stays in effects.csv; the table says how many rows.
-PDF_EFFECTS = (("mean_abundance", ("median_change", "p_material", "p_material_decrease", "p_material_increase"),
-                "abundance"),
+# (p_worse) stays in effects.csv; the table says how many rows. The fall and the rise share the
+# material change's cell (one row, not three, per species).
+SPLIT_STATISTICS = (("p_material_decrease", "fall"), ("p_material_increase", "rise"))
+PDF_EFFECTS = (("mean_abundance", ("median_change", "p_material"), "abundance"),
                ("quasi_extinction", ("difference",), "quasi-extinction"),
                ("outbreak", ("difference",), "outbreak"))
 CSV_ONLY_LABELS = {"p_worse": "chance of doing worse than doing nothing (p_worse)"}
@@ -162,17 +166,25 @@ def effects_table_context(res: Results, option: str, max_rows: int | None = None
                 cells = []
                 for h in hs:
                     r = index.get((sp, metric, stat), h)
-                    cells.append(None if r is None else dict(text=_effect_cell(r), n=_n_note(r.n, kept)))
+                    text = None if r is None else _effect_cell(r)
+                    if text and stat == "p_material":
+                        parts = [(index.get((sp, metric, x), h), word) for x, word in SPLIT_STATISTICS]
+                        text += "; " + ", ".join(f"{word} {_interval(x)}" for x, word in parts if x is not None)
+                    cells.append(None if r is None else dict(text=text, n=_n_note(r.n, kept)))
                 if any(cells):
                     rows.append(dict(species=sp, tag=tag, measure=f"{label}: {EFFECT_LABELS[stat]}", cells=cells))
     rows, cut = cut_rows(rows, species_order(res, option), res.effects, option, "effects.csv",
                          max_rows or MAX_TABLE_ROWS)
-    printed = {x for _, stats, _ in PDF_EFFECTS for x in stats}
+    printed = {x for _, stats, _ in PDF_EFFECTS for x in stats} | {x for x, _ in SPLIT_STATISTICS}
     elsewhere = e[e.species.isin({r["species"] for r in rows}) & ~e.statistic.isin(printed)]
     others = None if elsewhere.empty else dict(
         rows=len(elsewhere), statistics=[CSV_ONLY_LABELS.get(x, x) for x in dict.fromkeys(elsewhere.statistic)])
     return dict(horizons=[fmt_num(h) for h in hs], rows=rows, cut=cut, others=others,
                 caption=interval_caption(e[e.statistic.isin(printed)], EFFECT_LABELS))
+
+
+def _interval(r) -> str:
+    return f"{fmt_prob(r.value)} [{fmt_bare_prob(r.low)}, {fmt_bare_prob(r.high)}]"
 
 
 def _effect_cell(r) -> str:
@@ -197,10 +209,21 @@ def objectives_context(res: Results) -> list[dict]:
 
 
 def comparisons_context(res: Results) -> list[dict]:
-    c = res.comparisons[res.comparisons.statistic == "p_better"]
-    return [dict(objective=r.objective, option=r.option, versus=r.versus, text=with_term(r.value, r.low, r.high),
-                 n=fmt_num(r.n)) for _, r in c.iterrows()]
-
+    """One row per objective and run: its chance of a good outcome, whether it is best (comparisons.csv's ``best``
+    rows), and the paired chances that it has a good outcome where each other run has none."""
+    c = res.comparisons
+    out = []
+    for (obj, run), g in c.groupby(["objective", "option"], sort=False):
+        good = g[g.statistic == "p_good"]
+        if good.empty:
+            continue
+        r = good.iloc[0]
+        best = g[g.statistic == "best"]
+        only = [f"{run_label(x.versus)}: {fmt_prob(x.value)} [{fmt_bare_prob(x.low)}, {fmt_bare_prob(x.high)}]"
+                for x in g[g.statistic == "p_only"].itertuples()]
+        out.append(dict(objective=obj, run=run_label(run), good=with_term(r.value, r.low, r.high), only=only,
+                        best=bool(len(best)) and float(best.value.iloc[0]) == 1.0, n=fmt_num(r.n)))
+    return out
 
 
 def iucn_rows(res: Results) -> list[dict]:
@@ -228,12 +251,27 @@ def iucn_rows(res: Results) -> list[dict]:
                 else:
                     # print the saved probability at the horizon used, in the case's time unit
                     h_case = min(probs, key=lambda h: abs(h - t.horizon / years_per_case_unit(m)))
-                    tests.append(f"{fmt_prob(probs[h_case])} by {fmt_num(h_case)} {'≥' if t.met else '<'} "
+                    tests.append(f"{fmt_prob(probs[h_case])} {by_time(h_case, m.time_unit)} {'≥' if t.met else '<'} "
                                  f"{t.threshold:.0%}")
             cat = reading.category
             rows.append(dict(option=opt, species=s.name, generation_time=fmt_num(s.generation_time),
                              tests=tests, category=cat, category_name=CATEGORY_NAMES.get(cat, cat), note=reading.note))
     return rows
+
+
+def iucn_context(res: Results) -> dict:
+    """The IUCN rows worth a line: those meeting a category, and doing nothing's row for the same species; the
+    other rows (no threshold met: below VU, or the horizons too short to judge one) as one sentence."""
+    rows = iucn_rows(res)
+    flagged = {r["species"] for r in rows if r["category"] in CATEGORY_NAMES}
+    shown = [r for r in rows if r["species"] in flagged and (r["category"] in CATEGORY_NAMES or r["option"] == "baseline")]
+    rest: dict[str, list[str]] = {}
+    for r in rows:
+        if r not in shown:
+            rest.setdefault(r["species"], []).append(run_label(r["option"]))
+    runs = len({r["option"] for r in rows})
+    quiet = "; ".join(f"{sp} ({'every run' if len(o) == runs else ', '.join(o)})" for sp, o in rest.items())
+    return dict(rows=shown, quiet=quiet, any=bool(rows))
 
 
 def years_per_case_unit(m: Manifest) -> float:
