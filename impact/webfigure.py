@@ -146,9 +146,37 @@ def run_dot(source: str, fmt: str) -> bytes:
     return done.stdout
 
 
+def dot_available() -> bool:
+    """Graphviz's dot is on this machine (without it the figure lists the web instead of drawing it)."""
+    return shutil.which("dot") is not None
+
+
 def food_web_svg(m: Manifest) -> bytes:
-    """The diagram as SVG, laid out and drawn by dot."""
-    return run_dot(food_web_dot(m), "svg")
+    """The diagram as SVG, laid out and drawn by dot; a listing of the web where dot is not installed."""
+    return run_dot(food_web_dot(m), "svg") if dot_available() else listed_web_svg(m)
+
+
+def listed_web_svg(m: Manifest) -> bytes:
+    """The web without a layout engine: species by trophic level (highest first) and every link, as text.
+
+    A report must still be written on a machine without Graphviz (the figure says so and how to draw it);
+    nothing is placed by hand, so nothing can overlap.
+    """
+    from xml.sax.saxutils import escape
+
+    names = list(dict.fromkeys([s.name for s in m.species]
+                               + [end for it in m.interactions for end in (it.actor, it.target)]))
+    levels = trophic_levels(names, m.interactions)
+    rows = ["Graphviz's dot was not found on this machine: the web is listed, not drawn",
+            "(install Graphviz, e.g. apt-get install graphviz, and rebuild the report to draw it).", ""]
+    for lv in sorted({round(v) for v in levels.values()}, reverse=True):
+        rows.append(f"trophic level {lv}: " + ", ".join(n for n in names if round(levels[n]) == lv))
+    rows.append("")
+    rows += [f"{it.actor} → {it.target}: {link_label(it)}" for it in m.interactions]
+    line, width = 16, 9 + 6.2 * max(len(r) for r in rows)
+    text = "".join(f'<text x="8" y="{line * (i + 1)}">{escape(r)}</text>' for i, r in enumerate(rows) if r)
+    return (f'<svg xmlns="http://www.w3.org/2000/svg" width="{width:.0f}" height="{line * (len(rows) + 1)}" '
+            f'font-family="{FONT}" font-size="11">{text}</svg>').encode("utf-8")
 
 
 @dataclass(frozen=True)

@@ -70,3 +70,17 @@ def test_no_label_overlaps_a_box_or_another_label_or_leaves_the_figure(path):
         assert a.inside(bb), (a, bb)
         for b in boxes[i + 1:]:
             assert not a.overlaps(b), (a, b)
+
+
+def test_without_graphviz_the_web_is_listed_not_drawn(monkeypatch):
+    # the report must still be written where dot is not installed; the figure says what it is
+    import impact.webfigure as wf
+
+    monkeypatch.setattr(wf.shutil, "which", lambda name: None)
+    assert not wf.dot_available()
+    m = _chain_manifest()
+    svg = wf.food_web_svg(m).decode()
+    assert "not found on this machine" in svg and "apt-get install graphviz" in svg
+    for s in m.species:
+        assert s.name in svg
+    assert sum("→" in line for line in svg.split("<text")) == len(m.interactions)

@@ -13,7 +13,7 @@ from ..formatting import fmt_num, fmt_prob
 from ..results import Results, load_results, write_file_atomic
 from ..bottomline import STATUS_WORDS, run_label
 from ..verdict import horizon_rule_text, reading, thin_run
-from ..webfigure import food_web_svg, web_legend
+from ..webfigure import dot_available, food_web_svg, web_legend
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from .sections import dynamics_context, press_context, sensitivity_context
 from .tables import comparisons_context, effects_table_context, iucn_context, objectives_context, risk_table_context
@@ -48,7 +48,8 @@ def report_context(res: Results, assets: Assets) -> dict:
         top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),
         species=m.species, interactions=m.interactions, equations=m.equations,
-        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m), priors=priors, thin=thin,
+        foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m),
+        web_drawn=dot_available(), priors=priors, thin=thin,
         interventions=m.interventions, options=options, iucn=iucn_context(res),
         sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets), press=press_context(res),
         calibration=calibration_context(m, res.calibration, assets.add),
