@@ -15,9 +15,11 @@ longest step ``hmax``. Evaluations are at max(y, 0) with the tangent confined to
 present species; accepted states are projected onto y ≥ 0.
 
 The step loop here calls ``web_jvp``, the table-reading :func:`impact.engine.tangent.member_jvp`
-(compiled once for every web: the "table" engine); :func:`impact.engine.generate.specialised_flow`
-recompiles the same source around a straight-line J·v written for one web structure, with that
-J·v written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster).
+(compiled once for every web: the "table" engine, for the terms it knows);
+:func:`impact.engine.generate.specialised_flow` recompiles the same source around the straight-line
+J·v generated from the declared terms (:mod:`impact.terms`) for one web structure, with that J·v
+written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster, every
+term). ``t`` reaches the J·v at the stage times of the numpy stepper (a sinusoidal breeding season).
 """
 
 from __future__ import annotations

@@ -1,13 +1,13 @@
 """Kernels specialised to one web structure: generated source, compiled by numba, cached on disk.
 
-The interpreted kernel (:mod:`impact.engine.kernel`) reads the structure table at every
-evaluation; here the right-hand side is written out as straight-line code for one structure (the
-same operations in the same order, so results are identical to the bit), and the step loop is the
-interpreted kernel's own source, recompiled around it (:func:`specialised`, files ``web_*.py``).
-The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: its
-J·v (:func:`impact.engine.tangent.member_jvp`) written out (:func:`jvp_lines`), once as
-``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`, files
-``flow_*.py``). Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
+The right-hand side is printed as straight-line code for one structure from the terms declared
+in :mod:`impact.terms` (the statements the numpy reference runs, in the same order, so results are
+identical to the bit), and the step loop is the interpreted kernel's own source
+(:mod:`impact.engine.kernel`), recompiled around it (:func:`specialised`, files ``web_*.py``).
+The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: the
+J·v of the declared terms (:func:`impact.terms.tangent_program`) written out (:func:`jvp_lines`),
+once as ``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`,
+files ``flow_*.py``); every term has one. Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
 ``~/.cache/impact/kernels``) under a name keyed by its source (which holds the structure) and the
 numba version, and numba caches its machine code beside it, so a structure pays compilation once
 per machine.
@@ -192,7 +192,7 @@ def specialised(st: np.ndarray):
 
 
 def specialised_flow(st: np.ndarray):
-    """The generated tangent-flow kernel for structure ``st`` (a web :func:`impact.engine.tangent.supports`)."""
+    """The generated tangent-flow kernel for structure ``st`` (any web), with ``batch_jvp``."""
     return _load(st, "flow", flow_module_source)
 
 
@@ -235,7 +235,7 @@ def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
     Parameters
     ----------
     st : int64 ndarray
-        Structure table (:func:`impact.engine.web.pack_structure`) of a web the flow supports.
+        Structure table (:func:`impact.terms.pack_structure`).
     n_coef : int
         Coefficient columns of the web (the width of its packed coefficient rows).
     """
