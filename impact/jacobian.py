@@ -32,12 +32,12 @@ def jacobian(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None
     y = np.asarray(y, float)
     m, n = y.shape
     fn = numpy_jvp(pack_structure(web))
-    rows = pack_coefficients(segment_coefficients(web, p, c))[idx]
+    cols = np.ascontiguousarray(pack_coefficients(segment_coefficients(web, p, c))[idx].T)
     J = np.empty((m, n, n))
     f, unit, jv = np.empty_like(y), np.zeros_like(y), np.empty_like(y)
     for j in range(n):
         unit[:, j] = 1.0
-        fn(t, y, unit, rows, f, jv)
+        fn(t, y, unit, cols, f, jv)
         J[:, :, j] = jv
         unit[:, j] = 0.0
     return J
@@ -88,7 +88,7 @@ class WebTangent:
             return self.evaluate(t, y, v, idx)  # the season mean leaves the breeding wave out
         from .engine.generate import specialised_flow
 
-        rows = np.ascontiguousarray(self._rhs.rows(idx))
+        rows = np.ascontiguousarray(self._coef[np.asarray(idx)])
         times = np.zeros(len(y)) if t is None else np.ascontiguousarray(np.broadcast_to(np.asarray(t, float), (len(y),)))
         out, jv = np.empty_like(y), np.empty_like(y)
         specialised_flow(self._st).batch_jvp(self._st, rows, times, np.ascontiguousarray(y, dtype=float),
@@ -111,5 +111,5 @@ class WebTangent:
         f, jv : ndarray (m, n_state)
         """
         out, jv = np.empty_like(y), np.empty_like(y)
-        numpy_jvp(self._st)(t, y, v, self._rhs.rows(idx), out, jv)
+        numpy_jvp(self._st)(t, y, v, self._rhs.columns(idx), out, jv)
         return out, jv

@@ -372,10 +372,10 @@ class WebRHS:
         self._key = None
         self._rows = None
 
-    def rows(self, idx) -> np.ndarray:
-        """Coefficient rows of members ``idx``: (m, P)."""
+    def columns(self, idx) -> np.ndarray:
+        """Coefficient rows of members ``idx``, transposed: (P, m), contiguous."""
         if self._key is not idx:
-            self._rows = self.coefficients[idx]
+            self._rows = np.ascontiguousarray(self.coefficients[idx].T)
             self._key = idx
         return self._rows
 
@@ -395,7 +395,7 @@ class WebRHS:
         ndarray (m, n_state)
         """
         out = np.empty_like(y)
-        self._fn(t, y, self.rows(idx), out)
+        self._fn(t, y, self.columns(idx), out)
         return out
 
 

@@ -422,6 +422,11 @@ TERMS = (births, feeding, controls, sinusoidal_breeding, sterile_release, life_s
          linear, eaten, carrion)
 
 
+def terms_used(s: Structure) -> tuple[str, ...]:
+    """Names of the declared terms that act in structure ``s`` (those with statements)."""
+    return tuple(term.__name__ for term in TERMS if term(s))
+
+
 def program(s: Structure) -> list[Let]:
     """The right-hand side of structure ``s`` as statements; ``o{i}`` holds dy_i/dt at the end."""
     return [stmt for term in TERMS for stmt in term(s)]
@@ -598,9 +603,11 @@ def used_columns(stmts: list[Let], s: Structure) -> list[int]:
 def _numpy_lines(s: Structure, stmts: list[Let], tangent: bool) -> list[str]:
     """Column-by-column numpy statements: coefficient columns ``k{col}``, state ``y{i}``, tangent ``v{i}``."""
     pr = Printer(s, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=True)
-    body = [f"k{k} = cf[:, {k}]" for k in used_columns(stmts, s)] + [f"y{i} = y[:, {i}]" for i in range(s.n)]
+    # whole columns are read from transposed copies: contiguous, so each operation runs at full speed
+    body = [f"k{k} = cf[{k}]" for k in used_columns(stmts, s)] + ["yt = y.T.copy()"]
+    body += [f"y{i} = yt[{i}]" for i in range(s.n)]
     if tangent:
-        body += [f"v{i} = v[:, {i}]" for i in range(s.n)]
+        body += ["vt = v.T.copy()"] + [f"v{i} = vt[{i}]" for i in range(s.n)]
     for stmt in stmts:
         line = f"{stmt.target} = {pr(stmt.expr)}"
         body += ["if t is not None:", f"    {line}"] if stmt.timed else [line]
@@ -625,8 +632,9 @@ _numpy_cache: dict = {}
 
 
 def numpy_rhs(st: np.ndarray):
-    """``rhs(t, y, cf, out)``: the right-hand side for whole columns (y (m, n), cf (m, P) coefficient rows,
-    t (m,) or None for the season mean), the same operations in the same order as the compiled kernel."""
+    """``rhs(t, y, cf, out)``: the right-hand side for whole columns (y (m, n), cf (P, m) the members'
+    coefficient rows transposed, t (m,) or None for the season mean), the same operations in the same
+    order as the compiled kernel."""
     key = ("rhs", st.tobytes())
     if key not in _numpy_cache:
         s = Structure.decode(st)
@@ -636,7 +644,7 @@ def numpy_rhs(st: np.ndarray):
 
 
 def numpy_jvp(st: np.ndarray):
-    """``jvp(t, y, v, cf, out, jv)``: f and J·v for whole columns, as :func:`numpy_rhs`."""
+    """``jvp(t, y, v, cf, out, jv)``: f and J·v for whole columns (cf (P, m)), as :func:`numpy_rhs`."""
     key = ("jvp", st.tobytes())
     if key not in _numpy_cache:
         s = Structure.decode(st)

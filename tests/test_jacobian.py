@@ -245,3 +245,30 @@ def test_coefficient_rows_follow_the_declared_layout():
 
     assert tuple(SegmentCoefficients.__dataclass_fields__) == (
         SPECIES_COEFFICIENTS + LINK_COEFFICIENTS + ("alpha", "beta", "H", "obH", "decay"))
+
+
+def test_a_new_term_is_one_declaration(tmp_path, monkeypatch):
+    """A term appended to the declarations reaches the numpy reference, the Jacobian, the generated
+    kernel source and J·v at once, and the table engines (which do not know it) refuse the web.
+    The invented term: constant immigration ι into the first species, dN₀/dt += ι (ι = 0.75): the
+    right-hand side grows by exactly ι in that row and the Jacobian does not change."""
+    from impact import terms
+    from impact.engine import generate, kernel, tangent as table_tangent
+
+    web, p, c, y, rng = _random_point(tmp_path, "holling2", False, 3)
+    idx = np.arange(y.shape[0])
+    f0, J0 = rhs(web, p, c, y, idx), jacobian(web, p, c, y, idx)
+
+    def immigration(s):
+        return [terms.update("o0", "+", 0.75)]
+
+    monkeypatch.setattr(terms, "TERMS", terms.TERMS + (immigration,))
+    monkeypatch.setattr(terms, "_numpy_cache", {})
+    f1, J1 = rhs(web, p, c, y, idx), jacobian(web, p, c, y, idx)
+    np.testing.assert_array_equal(f1[:, 1:], f0[:, 1:])
+    np.testing.assert_array_equal(f1[:, 0], f0[:, 0] + 0.75)
+    np.testing.assert_array_equal(J1, J0)
+    st = terms.pack_structure(web)
+    assert "o0 = (o0 + 0.75)" in generate.rhs_source(st)
+    assert any("o0 = (o0 + 0.75)" in line for line in generate.jvp_lines(st, str, str, str, str)[0])
+    assert not kernel.knows(st) and not table_tangent.supports(web)

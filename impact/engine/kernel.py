@@ -25,7 +25,7 @@ from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAF
                       DormandPrince54, Failure)
 
 from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_CROWDING, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S,
-                     HEAD_U, HEADER, SPECIES_COEFFICIENTS)
+                     HEAD_U, HEADER, SPECIES_COEFFICIENTS, Structure, terms_used)
 
 # first column of each per-species coefficient block, in units of S (layout in impact.terms)
 K_SCALE, K_RPOS, K_LIN, K_DENS, K_INFLOW, K_QUAD, K_GAMMA, K_STERILE, K_MAT, K_AMP, K_OMEGA, K_PHASE = range(
@@ -49,6 +49,17 @@ NONFINITE = int(Failure.NONFINITE)
 BLOWUP = int(Failure.BLOWUP)
 UNDERFLOW = int(Failure.UNDERFLOW)
 TOO_MANY = int(Failure.TOO_MANY_STEPS)
+
+# The declared terms (impact.terms.TERMS) web_rhs interprets: the "table" engine refuses a web
+# with any other (a term declared later runs in the generated kernel without touching this file).
+TABLE_TERMS = frozenset({"births", "feeding", "controls", "sinusoidal_breeding", "sterile_release", "life_stages",
+                         "logistic", "crowding", "linear", "eaten", "carrion"})
+
+
+def knows(st) -> bool:
+    """Whether :func:`web_rhs` interprets every term acting in structure ``st``."""
+    return set(terms_used(Structure.decode(st))) <= TABLE_TERMS
+
 
 kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 # Pieces of the step loop are inlined into it at numba's level: as separate functions they cost

@@ -12,20 +12,26 @@ from __future__ import annotations
 import numpy as np
 
 from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S, HEAD_U, HEADER,
-                     Structure)
+                     Structure, pack_structure, terms_used)
 from .kernel import K_DENS, K_INFLOW, K_LIN, K_LINKS, K_RPOS, K_SCALE, kernel_jit
 
 
 def supports(web) -> bool:
     """Whether the table kernel :func:`member_jvp` knows every term of ``web``: the feeding (Holling
     I–III), competition, facultative mutualism and carrion terms (the generated J·v knows them all)."""
-    return not (web.obligate or web.interference or web.crowding or web.sterile or web.stages or web.wave
-                or any(link.resource < 0 for link in web.links))
+    return supports_structure(pack_structure(web))
+
+
+# The declared terms (impact.terms.TERMS) member_jvp differentiates (a term declared later is
+# refused here and runs in the generated J·v).
+TABLE_TERMS = frozenset({"births", "feeding", "controls", "logistic", "linear", "eaten", "carrion"})
 
 
 def supports_structure(st) -> bool:
-    """:func:`supports` for a structure table."""
+    """:func:`supports` for a structure table (and no term declared after the table kernel)."""
     s = Structure.decode(st)
+    if not set(terms_used(s)) <= TABLE_TERMS:
+        return False
     return not (s.O or any(s.interfere) or s.crowding or any(s.sterile) or any(a >= 0 for a in s.adult)
                 or any(s.wave) or any(r < 0 for r in s.resource))
 

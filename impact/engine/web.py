@@ -48,6 +48,8 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     if engine == "table":
         from . import kernel
 
+        if not kernel.knows(st):
+            raise ValueError("the table engine does not know every term of this web: use engine='compiled'")
         return kernel
     from .generate import specialised
 
