@@ -1,7 +1,7 @@
 """The food web's right-hand side, declared once, term by term (equations in :mod:`impact.model`).
 
 Each growth and interaction term is one function of the web's structure that returns its
-contribution to the right-hand side as statements of a small expression tree (:class:`Expr`).
+contribution to the right-hand side as statements of a small expression tree (:mod:`impact.expr`).
 :data:`TERMS` lists them in the order they act; :func:`program` strings them together. From
 that one program come
 
@@ -16,13 +16,10 @@ Why a small tree and not sympy: the right-hand side must keep the floating-point
 the declaration in the declared order, so that the numpy and compiled engines (and every saved
 table) agree to the bit; sympy canonicalises sums and products (reorders, merges, simplifies), so
 its printed code would not. The tree prints what was declared, parenthesised as built
-(``a * b * c`` is ``(a * b) * c``), and its derivative rules are fixed and few:
-
-* ``d(a ± b) = da ± db``; ``d(k₁⋯k_p · x₁⋯x_q) = k₁⋯k_p · d(x₁⋯x_q)`` with the constant factors
-  (coefficients, numbers) pulled out first and ``d(x y) = dx·y + x·dy``;
-* ``d(a / b) = (da − (a/b)·db) / b``, with ``a/b`` read from the statement's own result;
-* a term may declare its derivative outright (:class:`Declared`) where a tidier form is wanted;
-* terms known to be zero are dropped (no ``0 · x`` is ever formed).
+(``a * b * c`` is ``(a * b) * c``), and its derivative rules are few and fixed
+(:func:`impact.expr.derivative`); a term may give its derivative outright
+(:class:`impact.expr.Declared`, e.g. :func:`saturating`). The derivative forms reproduce the
+J·v the engines computed before the terms were declared, so every saved table is unchanged.
 
 Tests check every term's J·v against complex-step derivatives of the generated right-hand side
 (tests/test_jacobian.py). A new term is one function appended to :data:`TERMS` (and its
@@ -43,6 +40,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+
+from .expr import (ZERO, Coef, Cos, Declared, Expr, Let, Neg, Op, Positive, Printer, Prod, Square, State, Tangent,
+                   Time, Var, derivative, used_columns, variables, wrap)
 
 # positions in the structure table's header
 HEAD_S, HEAD_N, HEAD_CARRION, HEAD_L, HEAD_CC, HEAD_U, HEAD_LOGISTIC, HEAD_CROWDING, HEAD_O = range(9)
@@ -148,127 +148,6 @@ class Structure:
     def col(self, block: str, k: int = 0) -> int:
         """Column of entry ``k`` of coefficient block ``block`` in a member's row."""
         return self.offset[block] + k
-
-
-# --------------------------------------------------------------------------------------------
-# the expression tree
-
-
-class Expr:
-    """A node of the expression tree; operators build new nodes (nothing is simplified)."""
-
-    def __add__(self, other):
-        return Op("+", self, wrap(other))
-
-    def __radd__(self, other):
-        return Op("+", wrap(other), self)
-
-    def __sub__(self, other):
-        return Op("-", self, wrap(other))
-
-    def __mul__(self, other):
-        return Prod(self, wrap(other))
-
-    def __rmul__(self, other):
-        return Prod(wrap(other), self)
-
-    def __truediv__(self, other):
-        return Op("/", self, wrap(other))
-
-
-def wrap(x) -> Expr:
-    return x if isinstance(x, Expr) else Num(float(x))
-
-
-@dataclass(frozen=True, eq=False)
-class Num(Expr):
-    value: float
-
-
-@dataclass(frozen=True, eq=False)
-class Coef(Expr):
-    """Entry ``k`` of coefficient block ``block`` of the member's row."""
-    block: str
-    k: int = 0
-
-
-@dataclass(frozen=True, eq=False)
-class State(Expr):
-    i: int
-
-
-@dataclass(frozen=True, eq=False)
-class Tangent(Expr):
-    """Entry ``i`` of the tangent vector v (appears in derivatives only)."""
-    i: int
-
-
-@dataclass(frozen=True, eq=False)
-class Var(Expr):
-    name: str
-
-
-@dataclass(frozen=True, eq=False)
-class Time(Expr):
-    pass
-
-
-@dataclass(frozen=True, eq=False)
-class Op(Expr):
-    op: str  # "+", "-", "/"
-    a: Expr
-    b: Expr
-
-
-@dataclass(frozen=True, eq=False, init=False)
-class Prod(Expr):
-    """Left-to-right product ``((f₁ · f₂) · f₃) ⋯``."""
-    factors: tuple
-
-    def __init__(self, *factors):
-        flat = []
-        for f in factors:
-            flat += list(f.factors) if isinstance(f, Prod) and len(flat) == 0 else [f]
-        object.__setattr__(self, "factors", tuple(flat))
-
-
-@dataclass(frozen=True, eq=False)
-class Neg(Expr):
-    a: Expr
-
-
-@dataclass(frozen=True, eq=False)
-class Square(Expr):
-    """``x · x``, with derivative ``2 x dx``."""
-    a: Expr
-
-
-@dataclass(frozen=True, eq=False)
-class Cos(Expr):
-    a: Expr
-
-
-@dataclass(frozen=True, eq=False)
-class Positive(Expr):
-    """``a if k > 0 else b`` for a coefficient k (branches on parameters, never on the state)."""
-    k: Coef
-    a: Expr
-    b: Expr
-
-
-@dataclass(frozen=True, eq=False)
-class Declared(Expr):
-    """``value`` with its derivative along v given by the term (``deriv``) instead of the rules."""
-    value: Expr
-    deriv: Expr
-
-
-@dataclass(frozen=True)
-class Let:
-    """Statement ``target = expr``; ``timed`` marks statements a season-mean evaluation (no time) skips."""
-    target: str
-    expr: Expr
-    timed: bool = False
 
 
 def y(i):
@@ -433,79 +312,7 @@ def program(s: Structure) -> list[Let]:
 
 
 # --------------------------------------------------------------------------------------------
-# forward differentiation
-
-
-ZERO = None  # a derivative known to vanish
-
-
-def derivative(e: Expr, dvar: dict, self_name: str | None = None):
-    """Derivative of ``e`` along v, or ZERO. ``dvar`` maps a variable to its derivative's variable
-    (absent: its derivative vanishes); ``self_name`` is the variable a quotient's value is kept in."""
-    D = lambda x: derivative(x, dvar)  # noqa: E731
-    if isinstance(e, (Num, Coef, Time)):
-        return ZERO
-    if isinstance(e, State):
-        return Tangent(e.i)
-    if isinstance(e, Var):
-        return Var(dvar[e.name]) if e.name in dvar else ZERO
-    if isinstance(e, Declared):
-        return e.deriv
-    if isinstance(e, Square):
-        da = D(e.a)
-        return ZERO if da is ZERO else Prod(Num(2.0), e.a, da)
-    if isinstance(e, Neg):
-        da = D(e.a)
-        return ZERO if da is ZERO else Neg(da)
-    if isinstance(e, Cos):
-        if D(e.a) is not ZERO:
-            raise ValueError("the cosine of a state-dependent argument has no derivative rule")
-        return ZERO
-    if isinstance(e, Positive):
-        da, db = D(e.a), D(e.b)
-        if da is ZERO and db is ZERO:
-            return ZERO
-        return Positive(e.k, Num(0.0) if da is ZERO else da, Num(0.0) if db is ZERO else db)
-    if isinstance(e, Op):
-        da, db = D(e.a), D(e.b)
-        if e.op in "+-":
-            if db is ZERO:
-                return da
-            if da is ZERO:
-                return db if e.op == "+" else Neg(db)
-            return Op(e.op, da, db)
-        # quotient: (da − (a/b) db)/b, a/b read from the statement's result when it is one
-        if db is ZERO:
-            return ZERO if da is ZERO else Op("/", da, e.b)
-        q = Var(self_name) if self_name is not None else e
-        part = Prod(q, db)
-        return Op("/", Neg(part) if da is ZERO else Op("-", da, part), e.b)
-    if isinstance(e, Prod):
-        const = [f for f in e.factors if D(f) is ZERO]
-        varying = [f for f in e.factors if D(f) is not ZERO]
-        if not varying:
-            return ZERO
-        acc, dacc = varying[0], D(varying[0])
-        for f in varying[1:]:
-            acc, dacc = Prod(acc, f), Op("+", Prod(dacc, f), Prod(acc, D(f)))
-        if not const:
-            return dacc
-        return Prod(*const, dacc) if len(const) > 1 else Prod(const[0], dacc)
-    raise TypeError(f"no derivative rule for {type(e).__name__}")
-
-
-def _variables(e: Expr) -> set:
-    """Names of the variables an expression reads."""
-    if isinstance(e, Var):
-        return {e.name}
-    out = set()
-    for name in ("a", "b", "k", "value", "deriv"):
-        child = getattr(e, name, None)
-        if isinstance(child, Expr):
-            out |= _variables(child)
-    for f in getattr(e, "factors", ()):
-        out |= _variables(f)
-    return out
+# the derivative along v
 
 
 def tangent_program(s: Structure) -> list[Let]:
@@ -516,7 +323,7 @@ def tangent_program(s: Structure) -> list[Let]:
     ``m = m · x``), except for a quotient whose value it reuses (``dI`` from ``I = a/D``)."""
     dvar, body = {}, []
     for stmt in program(s):
-        reuse = isinstance(stmt.expr, Op) and stmt.expr.op == "/" and stmt.target not in _variables(stmt.expr)
+        reuse = isinstance(stmt.expr, Op) and stmt.expr.op == "/" and stmt.target not in variables(stmt.expr)
         d = derivative(stmt.expr, dvar, stmt.target if reuse else None)
         name = "d" + stmt.target
         if d is ZERO:
@@ -532,79 +339,14 @@ def tangent_program(s: Structure) -> list[Let]:
 
 
 # --------------------------------------------------------------------------------------------
-# printing
-
-
-class Printer:
-    """Python source of expressions: ``coef(col)``, ``state(i)``, ``tangent(i)`` give the names of a
-    coefficient column, a state entry and a tangent entry; ``numpy`` prints branches and cosines for
-    whole columns."""
-
-    def __init__(self, s: Structure, coef, state, tangent, numpy: bool, time: str = "t"):
-        self.s, self.coef, self.state, self.tangent, self.numpy, self.time = s, coef, state, tangent, numpy, time
-
-    def __call__(self, e: Expr) -> str:
-        p = self
-        if isinstance(e, Num):
-            return repr(e.value)
-        if isinstance(e, Coef):
-            return self.coef(self.s.col(e.block, e.k))
-        if isinstance(e, State):
-            return self.state(e.i)
-        if isinstance(e, Tangent):
-            return self.tangent(e.i)
-        if isinstance(e, Var):
-            return e.name
-        if isinstance(e, Time):
-            return self.time
-        if isinstance(e, Op):
-            return f"({p(e.a)} {e.op} {p(e.b)})"
-        if isinstance(e, Prod):
-            text = p(e.factors[0])
-            for f in e.factors[1:]:
-                text = f"({text} * {p(f)})"
-            return text
-        if isinstance(e, Neg):
-            return f"(-{p(e.a)})"
-        if isinstance(e, Square):
-            x = p(e.a)
-            return f"({x} * {x})"
-        if isinstance(e, Cos):
-            arg = p(e.a)
-            return f"cos_array(np.ascontiguousarray({arg}))" if self.numpy else f"math.cos({arg})"
-        if isinstance(e, Positive):
-            if self.numpy:
-                return f"np.where({p(e.k)} > 0, {p(e.a)}, {p(e.b)})"
-            return f"({p(e.a)} if {p(e.k)} > 0 else {p(e.b)})"
-        if isinstance(e, Declared):
-            return p(e.value)
-        raise TypeError(f"cannot print {type(e).__name__}")
-
-
-def used_columns(stmts: list[Let], s: Structure) -> list[int]:
-    """Coefficient columns the statements read."""
-    cols = set()
-
-    def walk(e):
-        if isinstance(e, Coef):
-            cols.add(s.col(e.block, e.k))
-        for name in ("a", "b", "k", "value", "deriv"):
-            child = getattr(e, name, None)
-            if isinstance(child, Expr):
-                walk(child)
-        for f in getattr(e, "factors", ()):
-            walk(f)
-
-    for stmt in stmts:
-        walk(stmt.expr)
-    return sorted(cols)
+# the numpy reference
 
 
 def _numpy_lines(s: Structure, stmts: list[Let], tangent: bool) -> list[str]:
     """Column-by-column numpy statements: coefficient columns ``k{col}``, state ``y{i}``, tangent ``v{i}``."""
-    pr = Printer(s, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=True)
+    pr = Printer(s.col, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=True)
     # whole columns are read from transposed copies: contiguous, so each operation runs at full speed
-    body = [f"k{k} = cf[{k}]" for k in used_columns(stmts, s)] + ["yt = y.T.copy()"]
+    body = [f"k{k} = cf[{k}]" for k in used_columns(stmts, s.col)] + ["yt = y.T.copy()"]
     body += [f"y{i} = yt[{i}]" for i in range(s.n)]
     if tangent:
         body += ["vt = v.T.copy()"] + [f"v{i} = vt[{i}]" for i in range(s.n)]

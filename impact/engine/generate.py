@@ -29,7 +29,8 @@ import numba
 import numpy as np
 
 from . import flow, kernel
-from ..terms import Printer, Structure, program, tangent_program, used_columns
+from ..expr import Printer, used_columns
+from ..terms import Structure, program, tangent_program
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
 STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member",
@@ -63,7 +64,7 @@ def rhs_source(st: np.ndarray) -> str:
     """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``: the statements
     of :func:`impact.terms.program`, printed in their order."""
     s = Structure.decode(st)
-    pr = Printer(s, lambda k: f"cf[{k}]", lambda i: f"y{i}", None, numpy=False)
+    pr = Printer(s.col, lambda k: f"cf[{k}]", lambda i: f"y{i}", None, numpy=False)
     body = [f"y{i} = y[{i}]" for i in range(s.n)]
     body += [f"{stmt.target} = {pr(stmt.expr)}" for stmt in program(s)]
     body += [f"out[{i}] = o{i}" for i in range(s.n)]
@@ -108,12 +109,12 @@ def jvp_lines(st: np.ndarray, y, v, f, g, time: str = "t") -> tuple[list[str], l
     """
     s = Structure.decode(st)
     stmts = tangent_program(s)
-    pr = Printer(s, lambda k: f"c{k}", y, v, numpy=False, time=time)
+    pr = Printer(s.col, lambda k: f"c{k}", y, v, numpy=False, time=time)
     body = [f"{stmt.target} = {pr(stmt.expr)}" for stmt in stmts]
     done = {stmt.target for stmt in stmts}
     body += [f"{f(i)} = o{i}" for i in range(s.n)]
     body += [f"{g(i)} = do{i}" if f"do{i}" in done else f"{g(i)} = 0.0" for i in range(s.n)]
-    return body, used_columns(stmts, s)
+    return body, used_columns(stmts, s.col)
 
 
 def _function(head: str, body: list[str]) -> str:
