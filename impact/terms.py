@@ -330,10 +330,9 @@ def tangent_program(s: Structure) -> list[Let]:
             body.append(stmt)
             dvar.pop(stmt.target, None)
             continue
-        dstmt = Let(name, d, stmt.timed)
-        if isinstance(d, Var) and d.name == name:
-            dstmt = None  # the derivative is unchanged
-        body += [stmt] + ([dstmt] if dstmt else []) if reuse else ([dstmt] if dstmt else []) + [stmt]
+        # an unchanged derivative (d = d) needs no statement
+        dstmts = [] if isinstance(d, Var) and d.name == name else [Let(name, d, stmt.timed)]
+        body += ([stmt] + dstmts) if reuse else (dstmts + [stmt])
         dvar[stmt.target] = name
     return body
 
