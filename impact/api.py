@@ -457,16 +457,14 @@ def _compile_flow_aside(case: Case):
     """Have the regime screen's compiled tangent flow compiled in a helper process from the start
     of the run, when it is not cached (:func:`impact.engine.generate.compile_flow_aside`)."""
     from .engine.generate import compile_flow_aside
-    from .engine.tangent import supports
     from .engine.web import pack_coefficients, pack_structure
     from .model import Controls, build_web, segment_coefficients, web_params
     from .scan import nominal_values
 
-    web = build_web(case)
-    if supports(web):
-        p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
-        n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
-        compile_flow_aside(pack_structure(web), n_coef)
+    web = build_web(case)  # every web has a compiled J·v (impact.terms)
+    p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
+    n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
+    compile_flow_aside(pack_structure(web), n_coef)
 
 
 def _assessment(case: Case, settings: AssessSettings, progress, executor, store, block, chunk, command,

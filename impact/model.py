@@ -38,8 +38,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .case import CARRION, Case
-
-RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deangelis": 1}
+from .terms import RESPONSE_POWER, numpy_rhs, pack_structure
 
 
 @dataclass(frozen=True)
@@ -252,50 +251,6 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
     )
 
 
-def resource_density(link: Link, l: int, y: np.ndarray, food: np.ndarray) -> np.ndarray:
-    """Density of a link's resource: its state column, or the constant alternative food: (m,)."""
-    return y[:, link.resource] if link.resource >= 0 else food[:, l]
-
-
-def feeding_intakes(web: FoodWeb, a: np.ndarray, ah: np.ndarray, y: np.ndarray,
-                    gamma: np.ndarray | None = None, food: np.ndarray | None = None) -> list[np.ndarray]:
-    """Per-capita intake I_l of each feeding link from gathered coefficients.
-
-    Parameters
-    ----------
-    a, ah : ndarray (m, L)
-        Attack rate and attack rate × handling time of each link, per member.
-    y : ndarray (m, n_state)
-    gamma : ndarray (m, S), optional
-        Interference of each consumer (used for ``web.interference`` only).
-    food : ndarray (m, L), optional
-        Alternative food densities (used for links with ``resource == -1`` only).
-
-    Returns
-    -------
-    list of ndarray (m,)
-    """
-    denom: dict[int, np.ndarray] = {}
-    powered = []
-    for l, link in enumerate(web.links):
-        R = resource_density(link, l, y, food)
-        Rq = R * R if RESPONSE_POWER[link.response] == 2 else R
-        powered.append(Rq)
-        if link.response != "holling1":
-            term = ah[:, l] * Rq
-            denom[link.consumer] = term + denom[link.consumer] if link.consumer in denom else term + 1.0
-    for j in web.interference:
-        denom[j] = denom[j] + gamma[:, j] * y[:, j]
-    return [a[:, l] * powered[l] if link.response == "holling1" else a[:, l] * powered[l] / denom[link.consumer]
-            for l, link in enumerate(web.links)]
-
-
-def intakes(web: FoodWeb, p: WebParams, y: np.ndarray, idx) -> list[np.ndarray]:
-    """Per-capita intake I_l of each feeding link for members ``idx``: list of ndarray (m,)."""
-    a = p.a[idx]
-    return feeding_intakes(web, a, a * p.h[idx], y, p.gamma[idx], p.food[idx])
-
-
 @dataclass(frozen=True)
 class SegmentCoefficients:
     """Per-member coefficients of the right-hand side during one segment (controls folded in).
@@ -378,71 +333,51 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
         alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay)
 
 
-def season_wave(g: dict, species: tuple[int, ...], t) -> np.ndarray:
-    """Births multiplier 1 + A·cos(ω t − ω t_peak) of sinusoidally breeding species: (m, len(species)).
+def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, out: np.ndarray | None = None
+                      ) -> np.ndarray:
+    """Coefficient rows of members ``rows`` (default all), blocks in the order of
+    :class:`SegmentCoefficients` (the layout of :mod:`impact.terms`): (m, P) float64.
 
-    ``g`` holds gathered coefficients ``amp``, ``omega``, ``phase``; ``t`` (m,) per-member times
-    (None: the season-averaged web, multiplier 1). The cosine goes through the C library, as in
-    the compiled kernel, so that both agree to the bit.
+    ``out`` (m, P), optional, receives them (a caller packing many segments fills one array).
     """
-    from .engine.kernel import cos_array  # numba is loaded on first use only
-
-    cols = list(species)
-    amp = g["amp"][:, cols]
-    if t is None:
-        return np.ones_like(amp)
-    arg = g["omega"][:, cols] * np.asarray(t, float)[:, None] - g["phase"][:, cols]
-    return 1.0 + amp * cos_array(np.ascontiguousarray(arg).ravel()).reshape(arg.shape)
-
-
-def pollinated_share(web: FoodWeb, obH: np.ndarray, N: np.ndarray) -> np.ndarray:
-    """Share of births that obligate partners allow, 1 − Π_o H_o/(H_o + P_o): (m, S), 1 elsewhere.
-
-    Each partner o independently pollinates with chance P_o/(H_o + P_o); the sum
-    Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) gives the same share without cancellation (one
-    partner: exactly P/(H + P)), in the order of the compiled kernels.
-    """
-    share, miss = {}, {}
-    for u, (ben, par) in enumerate(web.obligate):
-        P, H = N[:, par], obH[:, u]
-        share[ben] = share.get(ben, 0.0) + miss.get(ben, 1.0) * (P / (H + P))
-        miss[ben] = miss.get(ben, 1.0) * (H / (H + P))
-    out = np.ones_like(N)
-    for ben, s in share.items():
-        out[:, ben] = s
+    fields = [getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__]
+    fields[-1] = fields[-1][:, None]  # decay is one number per member
+    if rows is not None:
+        fields = [np.take(f, rows, axis=0) for f in fields]
+    if out is None:
+        return np.ascontiguousarray(np.concatenate(fields, axis=1), dtype=float)
+    at = 0
+    for f in fields:
+        out[:, at:at + f.shape[1]] = f
+        at += f.shape[1]
+    if at != out.shape[1]:
+        raise ValueError(f"out has {out.shape[1]} columns for {at} coefficients")
     return out
 
 
-def fertile_share(N: np.ndarray, s: np.ndarray) -> np.ndarray:
-    """Share of fertile matings N/(N + s) with s sterile individuals present; exactly 1 where s = 0.
-
-    Knipling (1955): with random mating and equally competitive sterile males, a wild
-    female's mate is fertile with probability N/(N + s).
-    """
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(s > 0, N / (N + s), 1.0)
-
-
 class WebRHS:
-    """Right-hand side bound to one segment's parameters and controls.
+    """Right-hand side bound to one segment's parameters and controls: the numpy reference, the
+    statements declared in :mod:`impact.terms` run on whole columns of members.
 
-    Gathering each member's coefficients is most of the cost of an evaluation, so the gathered
-    arrays are kept while the integrator passes the same member-index array (it only makes a
+    Gathering each member's coefficient rows is a large part of the cost of an evaluation, so the
+    gathered rows are kept while the integrator passes the same member-index array (it only makes a
     new one when its active set shrinks).  Results never depend on the cache.
     """
 
     def __init__(self, web: FoodWeb, p: WebParams, c: Controls):
         self.web, self.p, self.c = web, p, c
-        co = segment_coefficients(web, p, c)
-        self._full = {f: getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__}
+        self.structure = pack_structure(web)
+        self.coefficients = pack_coefficients(segment_coefficients(web, p, c))
+        self._fn = numpy_rhs(self.structure)
         self._key = None
-        self._g = None
+        self._rows = None
 
-    def _gather(self, idx):
+    def columns(self, idx) -> np.ndarray:
+        """Coefficient rows of members ``idx``, transposed: (P, m), contiguous."""
         if self._key is not idx:
-            self._g = {k: v[idx] for k, v in self._full.items()}
+            self._rows = np.ascontiguousarray(self.coefficients[idx].T)
             self._key = idx
-        return self._g
+        return self._rows
 
     def __call__(self, t, y, idx):
         """Time derivative for members ``idx``.
@@ -459,73 +394,14 @@ class WebRHS:
         -------
         ndarray (m, n_state)
         """
-        web = self.web
-        g = self._gather(idx)
-        S = web.n_species
-        N = y[:, :S]
-        births = g["rpos"] * N
-        if web.mutualism:
-            boost = np.ones_like(N)
-            beta, H = g["beta"], g["H"]
-            for u, (ben, par) in enumerate(web.mutualism):
-                P = N[:, par]
-                boost[:, ben] += beta[:, u] * P / (H[:, u] + P)
-            births *= boost
-        if web.obligate:
-            births = births * pollinated_share(web, g["obH"], N)
         out = np.empty_like(y)
-        if web.links:
-            loss = np.zeros_like(y)
-            e = g["e"]
-            I = feeding_intakes(web, g["a"], g["ah"], y, g["gamma"], g["food"])
-            for l, link in enumerate(web.links):
-                j = link.consumer
-                eaten = I[l] * N[:, j]
-                births[:, j] += e[:, l] * eaten
-                if link.resource >= 0:  # an alternative food is not depleted
-                    loss[:, link.resource] += eaten
-        dN = g["scale"] * births
-        if web.wave:
-            dN[:, list(web.wave)] *= season_wave(g, web.wave, t)
-        if web.sterile:
-            ster = g["sterile"]
-            for i in web.sterile:
-                dN[:, i] *= fertile_share(N[:, i], ster[:, i])
-        if web.stages:
-            mat = g["mat"]
-            for j, a in web.stages:
-                dN[:, j] += dN[:, a]  # the adult's births are born as juveniles
-                dN[:, a] = 0.0
-                flow = mat[:, j] * N[:, j]
-                dN[:, j] -= flow
-                dN[:, a] += flow
-        if web.logistic.any():
-            crowd = N.copy()
-            alpha = g["alpha"]
-            for k, (i, j) in enumerate(web.competition):
-                crowd[:, i] += alpha[:, k] * N[:, j]
-            dN -= g["dens"] * N * crowd
-        if web.crowding:
-            dN -= g["quad"] * N * N
-        dN += g["lin"] * N
-        if web.links:
-            dN -= loss[:, :S]
-        out[:, :S] = dN
-        if web.has_carrion:
-            # summed species by species so the order never depends on the batch
-            inflow_c = g["inflow"]
-            inflow = inflow_c[:, 0] * N[:, 0]
-            for i in range(1, S):
-                inflow = inflow + inflow_c[:, i] * N[:, i]
-            dC = inflow - g["decay"] * y[:, S]
-            if web.links:
-                dC -= loss[:, S]
-            out[:, S] = dC
+        self._fn(t, y, self.columns(idx), out)
         return out
 
 
 def rhs(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray, idx, t=None) -> np.ndarray:
-    """Right-hand side for members ``idx`` (see the module docstring for the equations).
+    """Right-hand side for members ``idx`` (see the module docstring for the equations; the terms
+    are declared in :mod:`impact.terms`).
 
     Parameters
     ----------

@@ -25,7 +25,7 @@ def test_no_module_imports_a_private_name_of_another():
 STAGES = [
     {"errors", "formatting", "likelihood", "priors", "metrics", "iucn", "voi", "dictionary", "interrupts", "streams", "preload", "__init__"},
     {"case", "units", "casetypes", "casereader", "casetables"},
-    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow", "precompile",
+    {"model", "terms", "expr", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow", "precompile",
      "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget"},

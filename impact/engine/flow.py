@@ -15,22 +15,26 @@ longest step ``hmax``. Evaluations are at max(y, 0) with the tangent confined to
 present species; accepted states are projected onto y ≥ 0.
 
 The step loop here calls ``web_jvp``, the table-reading :func:`impact.engine.tangent.member_jvp`
-(compiled once for every web: the "table" engine); :func:`impact.engine.generate.specialised_flow`
-recompiles the same source around a straight-line J·v written for one web structure, with that
-J·v written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster).
+(compiled once for every web: the "table" engine, for the terms it knows);
+:func:`impact.engine.generate.specialised_flow` recompiles the same source around the straight-line
+J·v generated from the declared terms (:mod:`impact.terms`) for one web structure, with that J·v
+written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster, every
+term). ``t`` reaches the J·v at the stage times of the numpy stepper (a sinusoidal breeding season).
 """
 
 from __future__ import annotations
 
 import math
+import sys
 
 import numpy as np
 
 from .control import MIN_STEP_ULPS
-from .kernel import (A, B, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
+from .kernel import (A, B, C, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
                      chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq,
                      trial_first_step)
 from .tangent import member_jvp as web_jvp
+from .tangent import supports_structure
 
 # Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
 # around its own straight-line J·v; everything else in __all__ it imports from here.
@@ -49,7 +53,7 @@ Y_NEW, V_NEW, TMP, XC, VC, F, G = range(7)
 SCRATCH = 7
 
 
-__all__ = ["STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY", "MIN_STEP_ULPS",
+__all__ = ["STAGES", "C", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY", "MIN_STEP_ULPS",
            "kernel_jit", "kernel_inline", "nmin", "nmax", "rms", "all_finite", "next_step", "sumsq", "unit_on_face",
            "trial_first_step", "chosen_first_step",
            "hermite_max", "observe", "rows_finite", "keep_stage", "take_step", "WEIGHT_ROWS", "Y_NEW", "V_NEW", "TMP",
@@ -122,14 +126,14 @@ def observe(y, y_new, K, hs, norm, sec, m, lg, low, high, acc, sec_vals, sec_cou
 
 
 @kernel_jit
-def face_jvp(st, cf, x, v, f, g, work, xc, vc):
+def face_jvp(st, cf, t, x, v, f, g, work, xc, vc):
     """``f`` and ``g = J·v`` at max(x, 0), with ``v`` and ``J·v`` zero on absent species (the web is
     closed: an absent species stays absent, so perturbations live on the face of the present ones)."""
     n = x.shape[0]
     for j in range(n):
         xc[j] = nmax(x[j], 0.0)
         vc[j] = v[j] if xc[j] > 0 else 0.0
-    web_jvp(st, cf, xc, vc, f, g, work)
+    web_jvp(st, cf, t, xc, vc, f, g, work)
     for j in range(n):
         if not xc[j] > 0:
             g[j] = 0.0
@@ -170,14 +174,14 @@ def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc
     for j in range(n):
         y1[j] = y0[j] + (h0 * 1.0) * K[0, j]
         g1[j] = 0.0
-    face_jvp(st, cf, y1, g1, fo, go, work, xc, vc)
+    face_jvp(st, cf, t0 + h0 * 1.0, y1, g1, fo, go, work, xc, vc)
     for j in range(n):
         y1[j] = (fo[j] - K[0, j]) / sc[j]
     return chosen_first_step(h0, d1, rms(y1, n) / h0, interval)
 
 
 @kernel_jit
-def flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol):
+def flow_trial(st, cf, t, t_new, y, v, K, L, Z, work, hs, rtol, atol):
     """One Dormand–Prince step of state and tangent; returns the state's RMS error norm.
 
     Stage sums as :func:`impact.stepper.combine` (first weight, then each next non-zero one added).
@@ -196,7 +200,8 @@ def flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol):
                     b += L[i, j] * w
             Z[Y_NEW, j] = a * hs + y[j]
             Z[V_NEW, j] = b * hs + v[j]
-        face_jvp(st, cf, Z[Y_NEW], Z[V_NEW], Z[F], Z[G], work, Z[XC], Z[VC])
+        ts = t + C[s] * hs if s < STAGES else t_new
+        face_jvp(st, cf, ts, Z[Y_NEW], Z[V_NEW], Z[F], Z[G], work, Z[XC], Z[VC])
         keep_stage(K, L, s, Z[F], Z[G], n)
     for j in range(n):
         scale = nmax(abs(y[j]), abs(Z[Y_NEW, j])) * rtol[j] + atol[j]
@@ -213,7 +218,7 @@ def flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol):
 
 
 @kernel_inline
-def project(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
+def project(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
     """Project an accepted state onto y ≥ 0 and zero the tangent of absent species; a projected
     state's f and J·v are evaluated again (FSAL). Returns (not finite, evaluations)."""
     n = y_new.shape[0]
@@ -229,7 +234,7 @@ def project(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
             v_new[j] = 0.0
     if not negative:
         return False, 0
-    face_jvp(st, cf, y_new, v_new, fo, go, work, xc, vc)
+    face_jvp(st, cf, t_new, y_new, v_new, fo, go, work, xc, vc)
     keep_stage(K, L, STAGES, fo, go, n)
     return not rows_finite(K, L, STAGES, n), 1
 
@@ -256,7 +261,7 @@ def take_step(y, v, K, L, y_new, v_new, bad, blowup):
 
 
 @kernel_inline
-def renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
+def renormalise(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
     """Divide the tangent ``v_new`` and its J·v (``L[STAGES]``) by the tangent's norm; returns (norm,
     evaluations). A vector with nothing left to perturb restarts on the present face, no growth
     counted; an overflowing norm makes the tangent NaN (the member fails, it is not restarted)."""
@@ -265,7 +270,7 @@ def renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go):
     nfev = 0
     if norm == 0:
         unit_on_face(y_new, v_new, n)
-        face_jvp(st, cf, y_new, v_new, fo, go, work, xc, vc)  # its f is not wanted
+        face_jvp(st, cf, t_new, y_new, v_new, fo, go, work, xc, vc)  # its f is not wanted
         for j in range(n):
             L[STAGES, j] = go[j]
         nfev = 1
@@ -293,7 +298,7 @@ def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_ste
     y_new, v_new, tmp, xc, vc, fo, go = Z[Y_NEW], Z[V_NEW], Z[TMP], Z[XC], Z[VC], Z[F], Z[G]
     if not (all_finite(y) and all_finite(v)):
         return NONFINITE, h, 0, 0
-    face_jvp(st, cf, y, v, fo, go, work, xc, vc)
+    face_jvp(st, cf, t0, y, v, fo, go, work, xc, vc)
     keep_stage(K, L, 0, fo, go, n)
     nfev = 1
     if not rows_finite(K, L, 0, n):
@@ -320,15 +325,15 @@ def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_ste
         if clipped:
             t_new = t1
         hs = t_new - t
-        err = flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol)
+        err = flow_trial(st, cf, t, t_new, y, v, K, L, Z, work, hs, rtol, atol)
         nfev += STAGES
         h = nmin(next_step(err, hs, rejected), hmax)
         rejected = not err < 1
         last_nonfinite = not math.isfinite(err)
         if rejected:
             continue
-        bad, extra = project(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go)
-        norm, more = renormalise(st, cf, y_new, v_new, K, L, work, xc, vc, fo, go)
+        bad, extra = project(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go)
+        norm, more = renormalise(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go)
         nfev += extra + more
         if in_window:
             observe(y, y_new, K, hs, norm, sec, m, lg, low, high, acc, sec_vals, sec_count)
@@ -414,6 +419,9 @@ def tangent_flow(module, st, coef, y0, *, t0, transient, window, hmax, section, 
         members), ``sections`` list of M arrays, ``reason`` (M,) int8, ``nsteps`` (M,) accepted
         steps, ``nfev`` member evaluations of (f, J·v).
     """
+    if module is sys.modules[__name__] and not supports_structure(st):
+        raise ValueError("the table J·v does not know every term of this web: use the generated flow "
+                         "(impact.engine.generate.specialised_flow)")
     y0 = np.ascontiguousarray(np.maximum(np.asarray(y0, float), 0.0))
     M, n = y0.shape
     section = np.ascontiguousarray(section, dtype=np.int64)

@@ -1,13 +1,13 @@
 """Kernels specialised to one web structure: generated source, compiled by numba, cached on disk.
 
-The interpreted kernel (:mod:`impact.engine.kernel`) reads the structure table at every
-evaluation; here the right-hand side is written out as straight-line code for one structure (the
-same operations in the same order, so results are identical to the bit), and the step loop is the
-interpreted kernel's own source, recompiled around it (:func:`specialised`, files ``web_*.py``).
-The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: its
-J·v (:func:`impact.engine.tangent.member_jvp`) written out (:func:`jvp_lines`), once as
-``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`, files
-``flow_*.py``). Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
+The right-hand side is printed as straight-line code for one structure from the terms declared
+in :mod:`impact.terms` (the statements the numpy reference runs, in the same order, so results are
+identical to the bit), and the step loop is the interpreted kernel's own source
+(:mod:`impact.engine.kernel`), recompiled around it (:func:`specialised`, files ``web_*.py``).
+The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: the
+J·v of the declared terms (:func:`impact.terms.tangent_program`) written out (:func:`jvp_lines`),
+once as ``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`,
+files ``flow_*.py``); every term has one. Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
 ``~/.cache/impact/kernels``) under a name keyed by its source (which holds the structure) and the
 numba version, and numba caches its machine code beside it, so a structure pays compilation once
 per machine.
@@ -29,11 +29,19 @@ import numba
 import numpy as np
 
 from . import flow, kernel
-from .tangent import PER_SPECIES_COEFFICIENTS
+from ..expr import Printer, used_columns
+from ..terms import Structure, program, tangent_program
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
 STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member",
                      "run_members")
+# (f, J·v) of many members with the generated J·v (for :class:`impact.jacobian.WebTangent`)
+BATCH_JVP = """@kernel_jit
+def batch_jvp(st, coef, t, y, v, out, jv):
+    work = np.empty((10, y.shape[1]))
+    for k in range(y.shape[0]):
+        web_jvp(st, coef[k], t[k], y[k], v[k], out[k], jv[k], work)
+"""
 _loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
 _loading = threading.Lock()
 # Seconds a run waits for a compile helper before ending it and compiling itself (a compilation
@@ -53,86 +61,13 @@ def cache_dir() -> Path:
 
 
 def rhs_source(st: np.ndarray) -> str:
-    """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``."""
-    S, n, carrion, L, Cc, U, logistic, crowding, O = (int(x) for x in st[: kernel.HEADER])
-    H = kernel.HEADER
-    cons, res = st[H:H + L], st[H + L:H + 2 * L]
-    power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
-    comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
-    op = H + 4 * L + 2 * Cc + 2 * U
-    mut = st[H + 4 * L + 2 * Cc:op].reshape(-1, 2)
-    obl = st[op:op + 2 * O].reshape(-1, 2)
-    fp = op + 2 * O  # per-species flags
-    interfere, sterile = st[fp:fp + S], st[fp + S:fp + 2 * S]
-    adult, wave = st[fp + 2 * S:fp + 3 * S], st[fp + 3 * S:fp + 4 * S]
-    o_quad, o_gam, o_ster, o_mat = 5 * S, 6 * S, 7 * S, 8 * S
-    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
-    o_a = 12 * S
-    o_ah, o_e, o_food, o_al = o_a + L, o_a + 2 * L, o_a + 3 * L, o_a + 4 * L
-    o_be = o_al + Cc
-    o_H = o_be + U
-    o_obH = o_H + U
-    o_dec = o_obH + O
-    body = [f"y{i} = y[{i}]" for i in range(n)]
-    body += [f"b{i} = cf[{S + i}] * y{i}" for i in range(S)]
-    if U:
-        bens = sorted({int(b) for b, _ in mut})
-        body += [f"q{b} = 1.0" for b in bens]
-        body += [f"q{b} += cf[{o_be + u}] * y{p} / (cf[{o_H + u}] + y{p})" for u, (b, p) in enumerate(mut)]
-        body += [f"b{b} *= q{b}" for b in bens]
-    if O:  # pollinated share Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k), as the table kernel
-        bens = sorted({int(b) for b, _ in obl})
-        body += [f"g{b} = 0.0" for b in bens] + [f"m{b} = 1.0" for b in bens]
-        for u, (b, p) in enumerate(obl):
-            body += [f"g{b} = g{b} + m{b} * (y{p} / (cf[{o_obH + u}] + y{p}))",
-                     f"m{b} = m{b} * (cf[{o_obH + u}] / (cf[{o_obH + u}] + y{p}))"]
-        body += [f"b{b} *= g{b}" for b in bens]
-    # a link's resource: its state variable, or (resource −1) the constant alternative food
-    dens = [f"y{res[l]}" if res[l] >= 0 else f"cf[{o_food + l}]" for l in range(L)]
-    if L:
-        body += [f"loss{r} = 0.0" for r in sorted({int(r) for r in res if r >= 0})]
-        seen = set()
-        for l in range(L):
-            if type1[l]:
-                continue
-            Rq = f"{dens[l]} * {dens[l]}" if power[l] == 2 else dens[l]
-            j = int(cons[l])
-            body.append(f"d{j} = cf[{o_ah + l}] * ({Rq}) + " + ("1.0" if j not in seen else f"d{j}"))
-            seen.add(j)
-        body += [f"d{j} = d{j} + cf[{o_gam + j}] * y{j}" for j in range(S) if interfere[j]]
-        for l in range(L):
-            Rq = f"({dens[l]} * {dens[l]})" if power[l] == 2 else dens[l]
-            j = int(cons[l])
-            intake = f"cf[{o_a + l}] * {Rq}" + ("" if type1[l] else f" / d{j}")
-            body += [f"eaten = ({intake}) * y{j}", f"b{j} += cf[{o_e + l}] * eaten"]
-            if res[l] >= 0:
-                body.append(f"loss{res[l]} += eaten")
-    body += [f"o{i} = cf[{i}] * b{i}" for i in range(S)]
-    body += [f"o{i} *= 1.0 + cf[{o_amp + i}] * math.cos(cf[{o_om + i}] * t - cf[{o_ph + i}])"
-             for i in range(S) if wave[i]]
-    for i in range(S):
-        if sterile[i]:
-            body += [f"if cf[{o_ster + i}] > 0:", f"    o{i} *= y{i} / (y{i} + cf[{o_ster + i}])"]
-    for i in range(S):
-        if adult[i] >= 0:
-            a = int(adult[i])
-            body += [f"o{i} += o{a}", f"o{a} = 0.0", f"flow = cf[{o_mat + i}] * y{i}", f"o{i} -= flow", f"o{a} += flow"]
-    if logistic:
-        body += [f"c{i} = y{i}" for i in range(S)]
-        body += [f"c{i} += cf[{o_al + k}] * y{j}" for k, (i, j) in enumerate(comp)]
-        body += [f"o{i} -= cf[{3 * S + i}] * y{i} * c{i}" for i in range(S)]
-    if crowding:
-        body += [f"o{i} -= cf[{o_quad + i}] * y{i} * y{i}" for i in range(S)]
-    body += [f"o{i} += cf[{2 * S + i}] * y{i}" for i in range(S)]
-    eaten_species = sorted({int(r) for r in res if 0 <= r < S})
-    body += [f"o{i} -= loss{i}" for i in eaten_species]
-    if carrion:
-        body.append(f"g = cf[{4 * S}] * y0")
-        body += [f"g = g + cf[{4 * S + i}] * y{i}" for i in range(1, S)]
-        body.append(f"o{S} = g - cf[{o_dec}] * y{S}")
-        if S in {int(r) for r in res}:
-            body.append(f"o{S} -= loss{S}")
-    body += [f"out[{i}] = o{i}" for i in range(n)]
+    """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``: the statements
+    of :func:`impact.terms.program`, printed in their order."""
+    s = Structure.decode(st)
+    pr = Printer(s.col, lambda k: f"cf[{k}]", lambda i: f"y{i}", None, numpy=False)
+    body = [f"y{i} = y[{i}]" for i in range(s.n)]
+    body += [f"{stmt.target} = {pr(stmt.expr)}" for stmt in program(s)]
+    body += [f"out[{i}] = o{i}" for i in range(s.n)]
     return "@kernel_jit\ndef web_rhs(st, cf, t, y, out, work):\n" + "".join(f"    {b}\n" for b in body)
 
 
@@ -163,104 +98,23 @@ def _fix_state_size(source: str, n: int) -> str:
     return "\n".join(lines) + "\n"
 
 
-def jvp_lines(st: np.ndarray, y, v, f, g) -> tuple[list[str], list[int]]:
-    """Straight-line statements computing ``f(y)`` and ``J(y) v`` for structure ``st``: the operations
-    of :func:`impact.engine.tangent.member_jvp` in the same order (so the results are identical to
-    the bit), for the webs :func:`impact.engine.tangent.supports` accepts.
+def jvp_lines(st: np.ndarray, y, v, f, g, time: str = "t") -> tuple[list[str], list[int]]:
+    """Straight-line statements computing ``f(t, y)`` and ``J(t, y) v`` for structure ``st``: the
+    statements of :func:`impact.terms.tangent_program` (the right-hand side's, each followed by its
+    derivative), the numpy reference's operations in its order.
 
     ``y``, ``v``, ``f``, ``g`` map a state column to the name of its input or output; coefficient
-    ``k`` of the member's row is read from ``c{k}``. Returns the statements and the coefficient
-    columns they read.
+    ``k`` of the member's row is read from ``c{k}``, the time from ``time``. Returns the statements and
+    the coefficient columns they read.
     """
-    S, n, carrion, L, Cc, U, logistic, crowding, O = (int(x) for x in st[: kernel.HEADER])
-    H = kernel.HEADER
-    cons, res = st[H:H + L], st[H + L:H + 2 * L]
-    power, type1 = st[H + 2 * L:H + 3 * L], st[H + 3 * L:H + 4 * L]
-    comp = st[H + 4 * L:H + 4 * L + 2 * Cc].reshape(-1, 2)
-    mut = st[H + 4 * L + 2 * Cc:H + 4 * L + 2 * Cc + 2 * U].reshape(-1, 2)
-    flags = st[H + 4 * L + 2 * Cc + 2 * U + 2 * O:]
-    if O or crowding or (res < 0).any() or flags[:2 * S].any() or (flags[2 * S:3 * S] >= 0).any() or flags[3 * S:].any():
-        raise ValueError("structure has terms the compiled J·v does not know (see impact.engine.tangent.supports)")
-    o_a = PER_SPECIES_COEFFICIENTS * S
-    o_al = o_a + 4 * L
-    o_be = o_al + Cc
-    o_H = o_be + U
-    o_dec = o_H + U + O
-    used = set()
-
-    def c(k):
-        used.add(int(k))
-        return f"c{int(k)}"
-
-    body = []
-    if U:
-        body += [f"q{i} = 1.0" for i in range(S)] + [f"dq{i} = 0.0" for i in range(S)]
-        for u, (b, p) in enumerate(mut):
-            Hu, P = c(o_H + u), y(p)
-            body += [f"q{b} += {c(o_be + u)} * {P} / ({Hu} + {P})",
-                     f"dq{b} += {c(o_be + u)} * {Hu} / (({Hu} + {P}) * ({Hu} + {P})) * {v(p)}"]
-        body += [f"b{i} = {c(S + i)} * {y(i)} * q{i}" for i in range(S)]
-        body += [f"db{i} = {c(S + i)} * ({v(i)} * q{i} + {y(i)} * dq{i})" for i in range(S)]
-    else:
-        body += [f"b{i} = {c(S + i)} * {y(i)}" for i in range(S)] + [f"db{i} = {c(S + i)} * {v(i)}" for i in range(S)]
-
-    eaten_cols = sorted({int(r) for r in res})
-    if L:
-        body += _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v)
-    body += [f"o{i} = {c(i)} * b{i}" for i in range(S)] + [f"w{i} = {c(i)} * db{i}" for i in range(S)]
-    if logistic:
-        body += [f"cr{i} = {y(i)}" for i in range(S)] + [f"dcr{i} = {v(i)}" for i in range(S)]
-        for k, (i, j) in enumerate(comp):
-            body += [f"cr{i} += {c(o_al + k)} * {y(j)}", f"dcr{i} += {c(o_al + k)} * {v(j)}"]
-        body += [f"o{i} -= {c(3 * S + i)} * {y(i)} * cr{i}" for i in range(S)]
-        body += [f"w{i} -= {c(3 * S + i)} * ({v(i)} * cr{i} + {y(i)} * dcr{i})" for i in range(S)]
-    body += [f"o{i} += {c(2 * S + i)} * {y(i)}" for i in range(S)] + [f"w{i} += {c(2 * S + i)} * {v(i)}" for i in range(S)]
-    # a species nobody eats loses 0.0, and x − 0.0 is x to the bit: its subtraction is left out
-    body += [f"o{i} -= loss{i}" for i in eaten_cols if i < S] + [f"w{i} -= dloss{i}" for i in eaten_cols if i < S]
-    if carrion:
-        body += [f"gain = {c(4 * S)} * {y(0)}", f"dgain = {c(4 * S)} * {v(0)}"]
-        body += [f"gain = gain + {c(4 * S + i)} * {y(i)}" for i in range(1, S)]
-        body += [f"dgain = dgain + {c(4 * S + i)} * {v(i)}" for i in range(1, S)]
-        body += [f"o{S} = gain - {c(o_dec)} * {y(S)}", f"w{S} = dgain - {c(o_dec)} * {v(S)}"]
-        if S in eaten_cols:
-            body += [f"o{S} -= loss{S}", f"w{S} -= dloss{S}"]
-    body += [f"{f(i)} = o{i}" for i in range(n)] + [f"{g(i)} = w{i}" for i in range(n)]
-    return body, sorted(used)
-
-
-def _feeding_lines(cons, res, power, type1, eaten_cols, o_a, c, y, v) -> list[str]:
-    """The feeding terms of :func:`jvp_lines`: handling denominators and their derivatives along v,
-    then per link the intake, e·I·N added to the consumer's births and I·N to the resource's loss."""
-    L = len(cons)
-    o_ah, o_e = o_a + L, o_a + 2 * L
-
-    def powered(l):
-        r = int(res[l])
-        return (f"({y(r)} * {y(r)})", f"(2.0 * {y(r)} * {v(r)})") if power[l] == 2 else (y(r), v(r))
-
-    body = [f"loss{r} = 0.0" for r in eaten_cols] + [f"dloss{r} = 0.0" for r in eaten_cols]
-    seen = set()
-    for l in range(L):
-        if type1[l]:
-            continue
-        Rq, dRq = powered(l)
-        j = int(cons[l])
-        if j in seen:
-            body += [f"den{j} = {c(o_ah + l)} * {Rq} + den{j}", f"dden{j} = {c(o_ah + l)} * {dRq} + dden{j}"]
-        else:
-            body += [f"den{j} = {c(o_ah + l)} * {Rq} + 1.0", f"dden{j} = {c(o_ah + l)} * {dRq}"]
-            seen.add(j)
-    for l in range(L):
-        Rq, dRq = powered(l)
-        j, r = int(cons[l]), int(res[l])
-        if type1[l]:
-            body += [f"I = {c(o_a + l)} * {Rq}", f"dI = {c(o_a + l)} * {dRq}"]
-        else:
-            body += [f"I = {c(o_a + l)} * {Rq} / den{j}", f"dI = ({c(o_a + l)} * {dRq} - I * dden{j}) / den{j}"]
-        body += [f"eaten = I * {y(j)}", f"deaten = dI * {y(j)} + I * {v(j)}",
-                 f"b{j} += {c(o_e + l)} * eaten", f"db{j} += {c(o_e + l)} * deaten",
-                 f"loss{r} += eaten", f"dloss{r} += deaten"]
-    return body
+    s = Structure.decode(st)
+    stmts = tangent_program(s)
+    pr = Printer(s.col, lambda k: f"c{k}", y, v, numpy=False, time=time)
+    body = [f"{stmt.target} = {pr(stmt.expr)}" for stmt in stmts]
+    done = {stmt.target for stmt in stmts}
+    body += [f"{f(i)} = o{i}" for i in range(s.n)]
+    body += [f"{g(i)} = do{i}" if f"do{i}" in done else f"{g(i)} = 0.0" for i in range(s.n)]
+    return body, used_columns(stmts, s.col)
 
 
 def _function(head: str, body: list[str]) -> str:
@@ -268,11 +122,11 @@ def _function(head: str, body: list[str]) -> str:
 
 
 def jvp_source(st: np.ndarray) -> str:
-    """Straight-line ``web_jvp(st, cf, y, v, out, jv, work)``, as :func:`impact.engine.tangent.member_jvp`."""
+    """Straight-line ``web_jvp(st, cf, t, y, v, out, jv, work)``, as :func:`impact.terms.numpy_jvp`."""
     n = int(st[1])
     lines, used = jvp_lines(st, lambda i: f"y{i}", lambda i: f"v{i}", lambda i: f"out[{i}]", lambda i: f"jv[{i}]")
     body = [f"c{k} = cf[{k}]" for k in used] + [f"y{i} = y[{i}]" for i in range(n)] + [f"v{i} = v[{i}]" for i in range(n)]
-    return _function("web_jvp(st, cf, y, v, out, jv, work)", body + lines)
+    return _function("web_jvp(st, cf, t, y, v, out, jv, work)", body + lines)
 
 
 def trial_source(st: np.ndarray) -> str:
@@ -280,9 +134,11 @@ def trial_source(st: np.ndarray) -> str:
     written into its stage loop (one copy: numba's compile time grows faster than a function's
     length) and the member's coefficients read once. Same operations in the same order."""
     n = int(st[1])
-    lines, used = jvp_lines(st, lambda i: f"xp{i}", lambda i: f"vp{i}", lambda i: f"K[s, {i}]", lambda i: f"g{i}")
+    lines, used = jvp_lines(st, lambda i: f"xp{i}", lambda i: f"vp{i}", lambda i: f"K[s, {i}]", lambda i: f"g{i}",
+                            time="ts")
     body = [f"c{k} = cf[{k}]" for k in used]
     body += ["for s in range(1, STAGES + 1):",
+             "    ts = t + C[s] * hs if s < STAGES else t_new",
              "    for j in range(n):",
              "        a = K[0, j] * WEIGHT_ROWS[s, 0]",
              "        b = L[0, j] * WEIGHT_ROWS[s, 0]",
@@ -312,7 +168,7 @@ def trial_source(st: np.ndarray) -> str:
              "for j in range(1, n):",
              "    acc += Z[TMP, j] * Z[TMP, j]",
              "return math.sqrt(acc / n)"]
-    return _function("flow_trial(st, cf, y, v, K, L, Z, work, hs, rtol, atol)",
+    return _function("flow_trial(st, cf, t, t_new, y, v, K, L, Z, work, hs, rtol, atol)",
                      [f"n = {n}"] + body)
 
 
@@ -328,7 +184,7 @@ def flow_module_source(st: np.ndarray) -> str:
             parts.append(trial_source(st))
         else:
             parts.append(_fix_state_size(inspect.getsource(getattr(flow, name).py_func), n))
-    return "\n".join(parts) + "\n"
+    return "\n".join(parts + [BATCH_JVP]) + "\n"
 
 
 def specialised(st: np.ndarray):
@@ -337,7 +193,7 @@ def specialised(st: np.ndarray):
 
 
 def specialised_flow(st: np.ndarray):
-    """The generated tangent-flow kernel for structure ``st`` (a web :func:`impact.engine.tangent.supports`)."""
+    """The generated tangent-flow kernel for structure ``st`` (any web), with ``batch_jvp``."""
     return _load(st, "flow", flow_module_source)
 
 
@@ -380,7 +236,7 @@ def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
     Parameters
     ----------
     st : int64 ndarray
-        Structure table (:func:`impact.engine.web.pack_structure`) of a web the flow supports.
+        Structure table (:func:`impact.terms.pack_structure`).
     n_coef : int
         Coefficient columns of the web (the width of its packed coefficient rows).
     """

@@ -8,14 +8,10 @@ numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.
 so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
 Members are independent by construction: nothing is shared between rows.
 
-Structure table (int64): ``S, n, has_carrion, L, Cc, U, logistic_any, crowding_any, O``, then per
-feeding link consumer (L), resource (L), power (L), type-I flag (L), competition pairs (2·Cc),
-facultative mutualism pairs (2·U), obligate mutualism pairs (2·O), and per species an
-interference flag (S), a sterile-release flag (S), the adult stage a juvenile matures into (S; −1
-for none) and a sinusoidal-breeding flag (S). Coefficient rows (float64, one per member): scale,
-rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase (S each), a, ah, e, food
-(L each), alpha (Cc), beta, H (U each), obH (O), decay (1). A link whose resource is −1 eats a constant alternative food of density
-``food``.
+The structure table and coefficient rows are laid out in :mod:`impact.terms` (header entries
+``HEAD_*``; coefficient blocks ``K_*`` below). This kernel interprets the table (the "table"
+engine); the "compiled" engine's right-hand side is generated from the terms declared in
+:mod:`impact.terms` (:mod:`impact.engine.generate`), and the tests hold the two equal to the bit.
 """
 
 from __future__ import annotations
@@ -28,11 +24,17 @@ import numpy as np
 from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
                       DormandPrince54, Failure)
 
-HEADER = 9  # entries of the structure table before the per-link columns
+from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_CROWDING, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S,
+                     HEAD_U, HEADER, SPECIES_COEFFICIENTS, Structure, terms_used)
+
+# first column of each per-species coefficient block, in units of S (layout in impact.terms)
+K_SCALE, K_RPOS, K_LIN, K_DENS, K_INFLOW, K_QUAD, K_GAMMA, K_STERILE, K_MAT, K_AMP, K_OMEGA, K_PHASE = range(
+    len(SPECIES_COEFFICIENTS))
+K_LINKS = len(SPECIES_COEFFICIENTS)  # the per-link blocks start at K_LINKS · S
 
 # Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
-__all__ = ["HEADER", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
+__all__ = ["HEADER", "HEAD_S", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "sumsq", "rms", "all_finite",
            "trial_first_step", "chosen_first_step", "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
@@ -47,6 +49,17 @@ NONFINITE = int(Failure.NONFINITE)
 BLOWUP = int(Failure.BLOWUP)
 UNDERFLOW = int(Failure.UNDERFLOW)
 TOO_MANY = int(Failure.TOO_MANY_STEPS)
+
+# The declared terms (impact.terms.TERMS) web_rhs interprets: the "table" engine refuses a web
+# with any other (a term declared later runs in the generated kernel without touching this file).
+TABLE_TERMS = frozenset({"births", "feeding", "controls", "sinusoidal_breeding", "sterile_release", "life_stages",
+                         "logistic", "crowding", "linear", "eaten", "carrion"})
+
+
+def knows(st) -> bool:
+    """Whether :func:`web_rhs` interprets every term acting in structure ``st``."""
+    return set(terms_used(Structure.decode(st))) <= TABLE_TERMS
+
 
 kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 # Pieces of the step loop are inlined into it at numba's level: as separate functions they cost
@@ -75,9 +88,9 @@ def feeding(st, cf, y, births, loss, den, seen, o_a):
     """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
     resources' losses (handling denominators shared by each consumer's saturating links, plus
     the consumer's interference γ·N for a Beddington–DeAngelis consumer)."""
-    S, n, L = st[0], st[1], st[3]
-    gp = HEADER + 4 * L + 2 * st[4] + 2 * st[5] + 2 * st[8]
-    o_gam = 6 * S
+    S, n, L = st[HEAD_S], st[HEAD_N], st[HEAD_L]
+    gp = HEADER + 4 * L + 2 * st[HEAD_CC] + 2 * st[HEAD_U] + 2 * st[HEAD_O]
+    o_gam = K_GAMMA * S
     o_ah, o_e, o_food = o_a + L, o_a + 2 * L, o_a + 3 * L
     lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
     for i in range(n):
@@ -121,12 +134,12 @@ def web_rhs(st, cf, t, y, out, work):
     births), ``y`` (n,), ``out`` (n,), ``work`` (5, n) scratch (births, loss, denominators,
     crowding or boost, seen flags).
     """
-    S, n, carrion, L, Cc, U, logistic = st[0], st[1], st[2], st[3], st[4], st[5], st[6]
-    o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    O = st[8]
-    o_quad, o_ster, o_mat = 5 * S, 7 * S, 8 * S
-    o_amp, o_om, o_ph = 9 * S, 10 * S, 11 * S
-    o_a = 12 * S
+    S, n, carrion, L = st[HEAD_S], st[HEAD_N], st[HEAD_CARRION], st[HEAD_L]
+    Cc, U, logistic, O = st[HEAD_CC], st[HEAD_U], st[HEAD_LOGISTIC], st[HEAD_O]
+    o_rpos, o_lin, o_dens, o_inf = K_RPOS * S, K_LIN * S, K_DENS * S, K_INFLOW * S
+    o_quad, o_ster, o_mat = K_QUAD * S, K_STERILE * S, K_MAT * S
+    o_amp, o_om, o_ph = K_AMP * S, K_OMEGA * S, K_PHASE * S
+    o_a = K_LINKS * S
     o_al = o_a + 4 * L
     o_be = o_al + Cc
     o_H = o_be + U
@@ -168,7 +181,7 @@ def web_rhs(st, cf, t, y, out, work):
     if L > 0:
         feeding(st, cf, y, births, loss, den, seen, o_a)
     for i in range(S):
-        out[i] = cf[i] * births[i]
+        out[i] = cf[K_SCALE * S + i] * births[i]
     wp = sp + 2 * S  # sinusoidal breeding flags
     for i in range(S):
         if st[wp + i] == 1:
@@ -195,7 +208,7 @@ def web_rhs(st, cf, t, y, out, work):
             crowd[i] += cf[o_al + k] * y[j]
         for i in range(S):
             out[i] -= cf[o_dens + i] * y[i] * crowd[i]
-    if st[7]:
+    if st[HEAD_CROWDING]:
         for i in range(S):
             out[i] -= cf[o_quad + i] * y[i] * y[i]
     for i in range(S):
@@ -497,7 +510,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
     """
     K = times.shape[0] - 1
     M, n = y0.shape
-    S = st[0]
+    S = st[HEAD_S]
     KS = np.empty((STAGES + 1, n))
     work = np.empty((5, n))
     y, y_new, tmp, sc = np.empty(n), np.empty(n), np.empty(n), np.empty(n)

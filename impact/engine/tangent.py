@@ -1,35 +1,44 @@
-"""Compiled right-hand side and its directional derivative J·v, member by member (numba).
+"""The table-reading right-hand side and J·v, member by member (numba): the "table" engine of the
+tangent flow (:mod:`impact.engine.flow`), compiled once for every web.
 
-The Lyapunov and regime diagnostics integrate the tangent equations dv/dt = J(y) v beside the
-state. :class:`impact.jacobian.WebTangent` evaluates ``(f, J v)`` with whole-column numpy
-operations, whose fixed cost per operation dominates on the small batches the diagnostics run;
-this kernel does the same arithmetic in the same order for one member at a time, so the two
-agree to rounding and a member's numbers never depend on its batch. It reads the structure table
-and coefficient rows of :mod:`impact.engine.kernel` (same layout, same packing) and covers the
-terms :func:`supports` lists; other webs keep the numpy reference.
+The "compiled" engine's J·v is generated from the terms declared in :mod:`impact.terms` for each
+structure (:func:`impact.engine.generate.jvp_source`) and knows every term; this interpreter of the
+structure table knows the terms :func:`supports` lists, and the tests hold it equal to the
+generated J·v to the bit on the webs it supports.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from .kernel import HEADER, kernel_jit
-
-# coefficient columns per species before the per-link ones (layout in :mod:`impact.engine.kernel`)
-PER_SPECIES_COEFFICIENTS = 12
+from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S, HEAD_U, HEADER,
+                     Structure, pack_structure, terms_used)
+from .kernel import K_DENS, K_INFLOW, K_LIN, K_LINKS, K_RPOS, K_SCALE, kernel_jit
 
 
 def supports(web) -> bool:
-    """Whether :func:`member_jvp` knows every term of ``web``: the feeding (Holling I–III), competition,
-    facultative mutualism and carrion terms. Webs with obligate mutualism, interference, crowding,
-    sterile releases, life stages, sinusoidal breeding or alternative food use the numpy reference."""
-    return not (web.obligate or web.interference or web.crowding or web.sterile or web.stages or web.wave
-                or any(link.resource < 0 for link in web.links))
+    """Whether the table kernel :func:`member_jvp` knows every term of ``web``: the feeding (Holling
+    I–III), competition, facultative mutualism and carrion terms (the generated J·v knows them all)."""
+    return supports_structure(pack_structure(web))
+
+
+# The declared terms (impact.terms.TERMS) member_jvp differentiates (a term declared later is
+# refused here and runs in the generated J·v).
+TABLE_TERMS = frozenset({"births", "feeding", "controls", "logistic", "linear", "eaten", "carrion"})
+
+
+def supports_structure(st) -> bool:
+    """:func:`supports` for a structure table (and no term declared after the table kernel)."""
+    s = Structure.decode(st)
+    if not set(terms_used(s)) <= TABLE_TERMS:
+        return False
+    return not (s.O or any(s.interfere) or s.crowding or any(s.sterile) or any(a >= 0 for a in s.adult)
+                or any(s.wave) or any(r < 0 for r in s.resource))
 
 
 @kernel_jit
-def member_jvp(st, cf, y, v, out, jv, work):
-    """``out = f(y)`` and ``jv = J(y) v`` for one member.
+def member_jvp(st, cf, t, y, v, out, jv, work):
+    """``out = f(y)`` and ``jv = J(y) v`` for one member (``t`` unused: no supported term depends on time).
 
     Parameters
     ----------
@@ -44,9 +53,10 @@ def member_jvp(st, cf, y, v, out, jv, work):
     work : float64 ndarray (10, n)
         Scratch.
     """
-    S, n, carrion, L, Cc, U, logistic, O = st[0], st[1], st[2], st[3], st[4], st[5], st[6], st[8]
-    o_rpos, o_lin, o_dens, o_inf = S, 2 * S, 3 * S, 4 * S
-    o_a = PER_SPECIES_COEFFICIENTS * S
+    S, n, carrion, L = st[HEAD_S], st[HEAD_N], st[HEAD_CARRION], st[HEAD_L]
+    Cc, U, logistic, O = st[HEAD_CC], st[HEAD_U], st[HEAD_LOGISTIC], st[HEAD_O]
+    o_rpos, o_lin, o_dens, o_inf = K_RPOS * S, K_LIN * S, K_DENS * S, K_INFLOW * S
+    o_a = K_LINKS * S
     o_ah, o_e = o_a + L, o_a + 2 * L
     o_al = o_a + 4 * L  # after a, ah, e and the alternative food of each link
     o_be = o_al + Cc
@@ -116,8 +126,8 @@ def member_jvp(st, cf, y, v, out, jv, work):
             loss[st[lr + l]] += eaten
             dloss[st[lr + l]] += deaten
     for i in range(S):
-        out[i] = cf[i] * births[i]
-        jv[i] = cf[i] * dbirths[i]
+        out[i] = cf[K_SCALE * S + i] * births[i]
+        jv[i] = cf[K_SCALE * S + i] * dbirths[i]
     if logistic:
         crowd, dcrowd = boost, dboost  # the boost is spent: reuse its scratch for crowding
         for i in range(S):
@@ -152,11 +162,11 @@ def member_jvp(st, cf, y, v, out, jv, work):
 
 
 @kernel_jit
-def batch_jvp(st, coef, y, v, out, jv):
-    """:func:`member_jvp` for every row: coef (m, P), y, v, out, jv (m, n)."""
+def batch_jvp(st, coef, t, y, v, out, jv):
+    """:func:`member_jvp` for every row: coef (m, P), t (m,), y, v, out, jv (m, n)."""
     work = np.empty((10, y.shape[1]))
     for k in range(y.shape[0]):
-        member_jvp(st, coef[k], y[k], v[k], out[k], jv[k], work)
+        member_jvp(st, coef[k], t[k], y[k], v[k], out[k], jv[k], work)
 
 
 __all__ = ["batch_jvp", "member_jvp"]

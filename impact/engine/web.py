@@ -17,50 +17,16 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..integrate import SegmentResult, integrate_segment
-from ..model import (RESPONSE_POWER, Controls, FoodWeb, SegmentCoefficients, WebParams, WebRHS,
+from ..model import (Controls, FoodWeb, SegmentCoefficients, WebParams, WebRHS, pack_coefficients,
                      segment_coefficients)
+from ..terms import pack_structure
 from .control import MIN_RTOL, Failure
+
+__all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
+           "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
 
 ENGINES = ("compiled", "table", "numpy")
 DEFAULT_ENGINE = "compiled"
-
-
-def pack_structure(web: FoodWeb) -> np.ndarray:
-    """The web's structure as the kernel's int64 table (layout in :mod:`impact.engine.kernel`)."""
-    links = web.links
-    S = web.n_species
-    head = [S, web.n_state, int(web.has_carrion), len(links), len(web.competition),
-            len(web.mutualism), int(web.logistic.any()), int(web.crowding), len(web.obligate)]
-    cols = ([l.consumer for l in links] + [l.resource for l in links]
-            + [RESPONSE_POWER[l.response] for l in links]
-            + [int(l.response == "holling1") for l in links])
-    pairs = ([x for pair in web.competition for x in pair] + [x for pair in web.mutualism for x in pair]
-             + [x for pair in web.obligate for x in pair])
-    per_species = [int(i in web.interference) for i in range(S)] + [int(i in web.sterile) for i in range(S)]
-    adult = dict(web.stages)
-    per_species += [adult.get(i, -1) for i in range(S)] + [int(i in web.wave) for i in range(S)]
-    return np.array(head + cols + pairs + per_species, dtype=np.int64)
-
-
-def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, out: np.ndarray | None = None
-                      ) -> np.ndarray:
-    """Coefficient rows of members ``rows`` (default all) in the kernel's column order: (m, P) float64.
-
-    ``out`` (m, P), optional, receives them (a caller packing many segments fills one array).
-    """
-    fields = [getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__]
-    fields[-1] = fields[-1][:, None]  # decay is one number per member
-    if rows is not None:
-        fields = [np.take(f, rows, axis=0) for f in fields]
-    if out is None:
-        return np.ascontiguousarray(np.concatenate(fields, axis=1), dtype=float)
-    at = 0
-    for f in fields:
-        out[:, at:at + f.shape[1]] = f
-        at += f.shape[1]
-    if at != out.shape[1]:
-        raise ValueError(f"out has {out.shape[1]} columns for {at} coefficients")
-    return out
 
 
 def coefficient_columns(co: SegmentCoefficients) -> dict[str, slice]:
@@ -82,6 +48,8 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     if engine == "table":
         from . import kernel
 
+        if not kernel.knows(st):
+            raise ValueError("the table engine does not know every term of this web: use engine='compiled'")
         return kernel
     from .generate import specialised
 
