@@ -32,8 +32,8 @@ Rules (in this order):
   :func:`impact.diagnose.diagnose_web`);
 * ``equilibrium``   at rest (every relative amplitude below ``eq_tol`` in the last sub-window) or
   the envelope decaying, *and* the equilibrium stable: Re μ₁ < 0 where an equilibrium was
-  found, else λ negative. An unstable equilibrium is never called one (at rest near it is
-  ``undetermined``);
+  found, else λ negative; and λ not positive. An unstable equilibrium is never called one (at
+  rest near it is ``undetermined``);
 * ``chaotic``       λ positive (beyond the flow allowance, see :class:`Rules`) and the section
   does not repeat;
 * ``cycle``         λ not distinguishable from zero, a steady envelope and a repeating section;
@@ -70,6 +70,7 @@ class Reason(enum.Enum):
     FEW_SECTION_POINTS = "too-few-section-points"
     WINDOW_DOUBLING = "window-doubling"
     UNSTABLE_REST = "at-rest-near-unstable-equilibrium"
+    SETTLING_POSITIVE = "lambda-positive-while-settling"
     WINDOW_CAP = "window-cap"
 
     @property
@@ -87,6 +88,8 @@ REASON_TEXT = {
     Reason.WINDOW_DOUBLING: "the verdict changed when the window was doubled",
     Reason.UNSTABLE_REST: "at rest near an equilibrium whose Jacobian has an eigenvalue with positive real part: "
                           "a longer window would show the departure",
+    Reason.SETTLING_POSITIVE: "the trajectory settles toward a stable equilibrium but λ is positive: still in a "
+                              "transient; a longer window would decide",
     Reason.WINDOW_CAP: "the member's own time scales ask for a longer window than allowed (max_window or "
                        "max_window_rates), and the verdict found needs the whole window",
 }
@@ -318,7 +321,7 @@ def judge(ev: Evidence, rules: Rules) -> Verdict:
             regime[i] = "failed"
             continue
         if (at_rest[i] or decaying[i]) and stable[i]:
-            regime[i] = "equilibrium"
+            regime[i], reason[i] = ("equilibrium", "") if not positive[i] else ("undetermined", Reason.SETTLING_POSITIVE.value)
             continue
         if at_rest[i]:
             reason[i] = Reason.UNSTABLE_REST.value if lead[i] > 0 else Reason.SLOW_DECAY.value
