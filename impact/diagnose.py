@@ -257,7 +257,12 @@ def _diagnose_all(job: _Job, start: np.ndarray, members, section) -> tuple[dict,
     plans, capped = job.plans(members, y, SHORT_RETURNS)
     out, nfev = _diagnose_plans(job, start, members, section, plans)
     out["capped"] = capped
-    done = np.isin(out["regime"], ("equilibrium", "extinction", "failed")) | out["gone"].any(axis=1)
+    # an equilibrium whose own relaxation time (at the equilibrium found from the window's end)
+    # asked for longer sub-windows than the plan chosen at the start had is diagnosed again
+    with np.errstate(divide="ignore"):
+        need = s.sub_relaxations / np.abs(out["leading"])
+    short = (out["regime"] == "equilibrium") & ~out["capped"] & (out["window"] / s.n_sub < need)
+    done = np.isin(out["regime"], ("equilibrium", "extinction", "failed")) & ~short | out["gone"].any(axis=1)
     rest = np.flatnonzero(~done)
     if rest.size:
         first = out["window"][rest] / s.n_sub
@@ -359,7 +364,8 @@ def _verdict_columns(v: rg.Verdict, ev: rg.Evidence, gone: np.ndarray, run: Wind
                      web: FoodWeb) -> dict:
     names = np.array(web.species)
     failed = ev.failed & ~ev.extinct
-    return dict(regime=np.asarray(v.regime, object), period=np.asarray(v.period), lyapunov=np.where(failed, np.nan, v.lyapunov),
+    lead = np.full(len(v.regime), np.nan) if ev.leading is None else np.asarray(ev.leading, float)
+    return dict(regime=np.asarray(v.regime, object), period=np.asarray(v.period), leading=lead, lyapunov=np.where(failed, np.nan, v.lyapunov),
                 lyapunov_se=np.where(failed, np.nan, v.lyapunov_se), envelope_rate=v.envelope_rate,
                 reason=np.asarray(v.reason, object), extinct=ev.extinct,
                 extinct_species=np.array([";".join(names[g]) for g in gone], dtype=object), window=window, gone=gone,

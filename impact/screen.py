@@ -218,6 +218,8 @@ def verdict_text(regime: str, extinct_species: str) -> str:
     lost = names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
     if regime == "extinction":
         return f"no species remains; {lost} extinct"
+    if regime == "undetermined":
+        return f"remaining web undetermined; {lost} extinct"
     return f"{regime} of the remaining web; {lost} extinct"
 
 
