@@ -33,6 +33,7 @@ TRANSIENT_RELAXATIONS = 5.0
 SUB_WINDOW_RELAXATIONS = 4.0
 STEPS_PER_TIME_SCALE = 10.0
 ALIGN_FRACTION = 0.25  # tangent alignment run before each sub-window, as a fraction of it
+STIFF_STEP = 1.0  # longest step times the fastest rate |μ|max (inside explicit Runge–Kutta stability; common practice, no source)
 
 
 @dataclass(frozen=True)
@@ -215,9 +216,13 @@ def plan_windows(ts: TimeScales, *, slow_rate: np.ndarray, returns: int, n_sub: 
     tr = np.minimum(tr_need, _pow2_up(max_window))
     if transient is not None:
         tr = np.full(len(tr), float(transient))
-    # the step limit only has to resolve the oscillation (section maxima, extremes, renormalisation);
-    # accuracy at faster rates is the error control's business
+    # the step limit resolves the oscillation (section maxima, extremes, renormalisation); and,
+    # since the step size follows the state's error alone, it also keeps |h μ| ≤ 1 for the fastest
+    # rate at the equilibrium: near rest the state's error allows long steps on which the explicit
+    # tangent integration of a stiff direction would grow without bound (a false positive λ)
     scale = np.where(np.isfinite(period), period, relax)
+    scale = np.where(np.isfinite(ts.fast) & (ts.fast > 0), np.minimum(scale, STEPS_PER_TIME_SCALE * STIFF_STEP / ts.fast),
+                     scale)
     dt = 2.0 ** np.floor(np.log2(scale / STEPS_PER_TIME_SCALE))
     if sample_dt is not None:
         dt = np.full(len(dt), float(sample_dt))
