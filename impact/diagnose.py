@@ -249,8 +249,9 @@ def _diagnose_all(job: _Job, start: np.ndarray, members, section) -> tuple[dict,
 
     A first pass with short sub-windows settles what needs no period (equilibrium, extinction);
     only the rest is continued over sub-windows long enough to look for periods, and a member
-    whose section still holds too few points has its sub-windows doubled until it holds enough
-    or its window reaches the cap.
+    whose section still holds too few points, or whose sub-windows are shorter than the
+    relaxation time at the equilibrium found from its window's end, is continued with doubled
+    sub-windows until neither holds or its window reaches the cap.
     """
     s = job.s
     y = np.where(np.isfinite(start), start, 0.0)
@@ -264,11 +265,11 @@ def _diagnose_all(job: _Job, start: np.ndarray, members, section) -> tuple[dict,
     short = (out["regime"] == "equilibrium") & ~out["capped"] & (out["window"] / s.n_sub < need)
     done = np.isin(out["regime"], ("equilibrium", "extinction", "failed")) & ~short | out["gone"].any(axis=1)
     rest = np.flatnonzero(~done)
+    returns = int(np.ceil(s.max_period * (1 + 2 / s.n_sub))) + 2  # every shift testable over half the sub-windows
     if rest.size:
         first = out["window"][rest] / s.n_sub
         n_pts = np.array([out["sections"][i].size for i in rest])
         measured = np.where(n_pts >= 2, first / np.maximum(n_pts, 1), np.nan)
-        returns = int(np.ceil(s.max_period * (1 + 2 / s.n_sub))) + 2  # every shift testable over half the sub-windows
         spent = out["transient"][rest] + out["window"][rest] * (1 + 1.5 * ALIGN_FRACTION)
         part, n2 = _continue(job, out, rest, members, section, returns, measured_period=measured, min_sub=2 * first)
         part["transient"] = spent
@@ -276,12 +277,17 @@ def _diagnose_all(job: _Job, start: np.ndarray, members, section) -> tuple[dict,
         nfev += n2
     few = rg.Reason.FEW_SECTION_POINTS.value
     for _ in range(GROWTH_STEPS):
-        grow = np.flatnonzero((out["reason"] == few) & ~out["capped"])
+        # too few section points, or sub-windows shorter than the relaxation time at the
+        # equilibrium found from the window's end (the plan came from an earlier state)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            short = out["window"] / s.n_sub < s.sub_relaxations / np.abs(out["leading"])
+        short &= ~np.isin(out["regime"], ("extinction", "failed"))
+        grow = np.flatnonzero(((out["reason"] == few) | short) & ~out["capped"] & ~out["gone"].any(axis=1))
         if not grow.size:
             break
         sub = out["window"][grow] / s.n_sub
         spent = out["transient"][grow] + out["window"][grow] * (1 + 1.5 * ALIGN_FRACTION)
-        part, n2 = _continue(job, out, grow, members, section, SHORT_RETURNS, min_sub=2 * sub)
+        part, n2 = _continue(job, out, grow, members, section, returns, min_sub=2 * sub)
         part["transient"] = spent
         _put(out, part, grow)
         nfev += n2
