@@ -422,3 +422,25 @@ def test_an_obligate_mutualist_losing_its_only_partner_is_extinct_with_it(tmp_pa
     shares = pd.read_csv(out / "dynamics" / "regime_shares.csv", keep_default_na=False)
     row = shares[shares.option == "spray"]
     assert list(row.verdict) == ["equilibrium of the remaining web; plant and moth extinct"] and row.share.iloc[0] == 1.0
+
+
+@pytest.mark.slow
+def test_regime_table_does_not_depend_on_chunks_or_workers(tmp_path):
+    # The same rule end to end: an ensemble of BD members with interference on both sides of the
+    # Hopf point (uniform prior over 0.5–2 g_H) gives the same regimes.csv, to the byte, whether
+    # the option runs go in chunks of 1 or of 8 members, on one worker or two.
+    path = bd_case(tmp_path)
+    gH = bd_hopf()
+    text = path.read_text()
+    path.write_text(text.replace('[parameters.g]\ndistribution = "fixed"\nvalue = 1.0',
+                                 f'[parameters.g]\ndistribution = "uniform"\nlow = {0.5 * gH}\nhigh = {2 * gH}'))
+    assert "uniform" in path.read_text()
+    tables = []
+    for k, extra in enumerate((["--chunk-members", "1", "--workers", "1"], ["--chunk-members", "8", "--workers", "2"])):
+        out = tmp_path / f"res{k}"
+        assert main(["assess", str(path), "--out", str(out), "--members", "8", "--quiet", "--no-report",
+                     "--no-sensitivity", *extra]) in (0, 3)
+        tables.append((out / "dynamics" / "regimes.csv").read_bytes())
+    assert tables[0] == tables[1]
+    reg = pd.read_csv(tmp_path / "res0" / "dynamics" / "regimes.csv")
+    assert len(reg) == 16 and set(reg.regime) <= {"cycle", "equilibrium", "undetermined"}
