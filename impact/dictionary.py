@@ -84,17 +84,21 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "option": "run", "metric": "output metric", "species": "species", "max_shift": "largest N/2-to-N shift",
         "max_ci_width": "widest full interval", "tolerance": "tolerance", "converged": "True when both within"}),
     "dynamics/regimes.csv": ("Dynamical regime of each screened member, per option (long-run attractor, noise off).", {
-        "option": "run", "member": "draw index of the member", "regime": "equilibrium, cycle, aperiodic, chaotic, "
-        "extinction or undetermined", "period": "period in maxima (cycles)", "lyapunov":
-        "largest Lyapunov exponent (1/time unit), mean over sub-windows", "lyapunov_se": "its standard error",
+        "option": "run", "member": "draw index of the member", "regime": "equilibrium, cycle, aperiodic, chaotic "
+        "or undetermined: the regime of the species that remain (extinction only when none remains)", "period":
+        "period in maxima (cycles)", "lyapunov": "largest Lyapunov exponent (1/time unit), mean over sub-windows",
+        "lyapunov_se": "its standard error (batch means, corrected for correlation between sub-windows)",
         "horizon_time": "predictability horizon (time unit; inf when errors do not grow)", "extinct":
-        "True when a species was lost", "extinct_species": "which species were lost", "reason":
+        "True when a species was lost: below its quasi-extinction level at the horizon, or over a whole window",
+        "extinct_species": "which species were lost (;-separated)", "verdict": "the regime as read, e.g. "
+        "\"equilibrium of the remaining web; moth and primrose extinct\"", "reason":
         "why the verdict is undetermined (codes explained in dynamics.json)", "envelope_rate":
         "decay rate of the oscillation envelope (1/time unit)", "window": "time diagnosed", "shortfall":
         "how much shorter than the assessment the predictability horizon is (0 when not)",
         "amplitude_*": "oscillation size (max − min) of each species over the window"}),
-    "dynamics/regime_shares.csv": ("Share of screened members in each regime, per option.", {
-        "option": "run", "regime": "regime", "share": "share of members", "share_low": "lower limit (95 % Wilson)",
+    "dynamics/regime_shares.csv": ("Share of screened members in each regime, per option (one row per verdict).", {
+        "option": "run", "regime": "regime", "verdict": "regime with the species lost (as in regimes.csv)",
+        "extinct_species": "species lost (;-separated; empty when none)", "share": "share of members", "share_low": "lower limit (95 % Wilson)",
         "share_high": "upper limit", "count": "members", "diagnosed": "members screened", "lyapunov_median":
         "median Lyapunov exponent", "horizon_median": "median predictability horizon", "shortfall_max":
         "largest shortfall of the predictability horizon against the assessment", "basis": "what was diagnosed"}),

@@ -66,10 +66,6 @@ class DynamicsSettings:
         Members per option diagnosed in an assessment (a random subset when there are more).
     sub_relaxations : float
         Relaxation times a sub-window spans at least (precision of λ at an equilibrium).
-    shared_plan : float or None
-        None: each member's window from its own time scales (members with the same rounded plan
-        run together). A quantile q: one plan for all members, the q-quantile of their needs
-        (cheaper; a member that needed more shows it as ``undetermined``).
     """
 
     transient: float | None = None
@@ -90,7 +86,6 @@ class DynamicsSettings:
     atol: float = 1e-9
     screen_members: int = 300
     sub_relaxations: float = 4.0
-    shared_plan: float | None = None
 
     @property
     def rules(self) -> Rules:

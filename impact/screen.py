@@ -28,11 +28,10 @@ from .model import Controls, WebParams, build_web
 from .sample import first_uniforms
 
 SHARE_CONFIDENCE = 0.95
-# The screen's defaults trade each member's own window for one ensemble run per option (the
-# median member's needs), short sub-windows (one relaxation time), periods up to 4 and windows
-# of at most 100 slowest per-capita time scales, to bound its cost (see README, measured figures).
-SCREEN = dict(screen_members=300, shared_plan=0.5, sub_relaxations=1.0, max_period=4, rtol=1e-6,
-              max_window_rates=100.0)
+# The screen's defaults bound its cost with short sub-windows (one relaxation time), periods up
+# to 4 and windows of at most 100 slowest per-capita time scales (a member that needs more is not
+# called aperiodic on it); every member keeps its own window (see README, measured figures).
+SCREEN = dict(screen_members=300, sub_relaxations=1.0, max_period=4, rtol=1e-6, max_window_rates=100.0)
 ATTRACTOR = "long-run attractor, noise off"
 HORIZON = "assessment horizon, noise as in the risk"
 
@@ -60,24 +59,26 @@ class DiagnoseTask:
     settings: DynamicsSettings
     level: np.ndarray
     section: int
+    lost: np.ndarray
 
 
 def diagnose_task(task: DiagnoseTask, engine: str = "compiled") -> dict:
     """:func:`diagnose_web` on one task (a worker's function); drops what the tables do not need."""
     out = diagnose_web(build_web(task.case), task.params, task.controls, task.y0, task.settings, task.level,
-                       section=task.section, engine=engine)
+                       section=task.section, engine=engine, lost=task.lost)
     for key in ("sections", "final"):
         out.pop(key)
     return out
 
 
 def share_table(frame: pd.DataFrame, basis: str) -> list[dict]:
-    """Rows of regime_shares for one option's regimes table (Wilson intervals on each share)."""
+    """Rows of regime_shares for one option's regimes table, one per verdict (Wilson intervals on each share)."""
     rows = []
     n = len(frame)
-    for regime, g in frame.groupby("regime", sort=False):
+    for verdict, g in frame.groupby("verdict", sort=False):
         lo, hi = rg.share_interval(len(g), n, SHARE_CONFIDENCE)
-        rows.append(dict(option=frame.option.iloc[0], regime=regime, share=len(g) / n, share_low=float(lo),
+        rows.append(dict(option=frame.option.iloc[0], regime=g.regime.iloc[0], verdict=verdict,
+                         extinct_species=g.extinct_species.iloc[0], share=len(g) / n, share_low=float(lo),
                          share_high=float(hi), count=len(g), diagnosed=n,
                          lyapunov_median=float(g.lyapunov.median()), horizon_median=float(g.horizon_time.median()),
                          shortfall_max=float(g.shortfall.max()), basis=basis))
@@ -112,8 +113,23 @@ def screen_tasks(case: Case, params: WebParams, values: dict, runs: dict, s: Dyn
     # seasons are averaged: the diagnostics look for the autonomous web's own regime
     tasks = [DiagnoseTask(case, sub, controls_at(case, opt, vals, t_last, season_mean_phi(case, sel.size), sel.size, S,
                                                  season_averaged=True),
-                          runs[name].final[sel], s, level, sec_col) for opt, name in opts.items()]
+                          runs[name].final[sel], s, level, sec_col, lost_at_horizon(case, runs[name].final[sel]))
+             for opt, name in opts.items()]
     return sel, tasks
+
+
+def lost_at_horizon(case: Case, final: np.ndarray) -> np.ndarray:
+    """(M, S) bool: species present in the case that are below their quasi-extinction level at the horizon.
+
+    Quasi-extinction is absorbing in the risk (a species that fell below its level counts as
+    lost), so the regime screen counts these species as extinct and diagnoses the remaining web.
+    A failed run (NaN state) loses nothing here; it is reported as failed.
+    """
+    S = len(case.species)
+    level = np.array([sp.quasi_extinction for sp in case.species], float)
+    present = np.array([sp.present for sp in case.species], bool)
+    with np.errstate(invalid="ignore"):
+        return present & (level > 0) & (np.asarray(final, float)[:, :S] < level)
 
 
 def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settings: DynamicsSettings | None = None,
@@ -168,8 +184,14 @@ def assess_stage(case: Case, params: WebParams, values: dict, runs: dict, settin
         share_interval=f"Wilson score interval, {SHARE_CONFIDENCE:.0%}", assessment_horizon=H,
         horizon_amplitude=HORIZON, counts=counts, declared=declared,
         shortfall="assessment horizon minus the predictability horizon where shorter (0: predictable over the whole assessment)",
-        extinct="extinct is true when a species present at the start stays below its quasi-extinction level over the whole "
-                "window; extinct_species names them")
+        extinct="extinct is true when a species present in the case is below its quasi-extinction level at the assessment "
+                "horizon, or stays below it over a whole diagnosed window; extinct_species names them. Such species are set "
+                "to zero and the regime is that of the remaining web (verdict, e.g. \"equilibrium of the remaining web; "
+                "moth extinct\"); extinction only when no species remains",
+        lyapunov_se="batch means over the sub-windows with the AR(1) correction for correlation between them "
+                    "(see regime_rules)",
+        stability="equilibrium requires Re μ₁ < 0 of the Jacobian at the equilibrium found from the window, or "
+                  "λ's interval below zero where none was found")
     return tables, record
 
 
@@ -178,12 +200,27 @@ def regime_frame(case: Case, name: str, sel: np.ndarray, failed_run: np.ndarray,
     regime = np.where(failed_run, "failed", out["regime"])
     frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],
                           "lyapunov": out["lyapunov"], "lyapunov_se": out["lyapunov_se"], "horizon_time": out["horizon"],
-                          "extinct": out["extinct"], "extinct_species": out["extinct_species"], "reason": out["reason"],
+                          "extinct": out["extinct"], "extinct_species": out["extinct_species"],
+                          "verdict": [verdict_text(r, e) for r, e in zip(regime, out["extinct_species"])],
+                          "reason": out["reason"],
                           "envelope_rate": out["envelope_rate"], "window": out["window"],
                           "shortfall": rg.predictability_shortfall(out["horizon"], H)})
     for j, sp in enumerate(case.species):
         frame[f"amplitude_{sp.name}"] = out["amplitude"][:, j]
     return frame
+
+
+def verdict_text(regime: str, extinct_species: str) -> str:
+    """The regime as the tables read it: e.g. "equilibrium of the remaining web; moth and primrose extinct"."""
+    names = [x for x in str(extinct_species or "").split(";") if x]
+    if not names:
+        return regime
+    lost = names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
+    if regime == "extinction":
+        return f"no species remains; {lost} extinct"
+    if regime == "undetermined":
+        return f"remaining web undetermined; {lost} extinct"
+    return f"{regime} of the remaining web; {lost} extinct"
 
 
 def risk_by_regime(case: Case, name: str, run, sel: np.ndarray, frame: pd.DataFrame) -> list[dict]:

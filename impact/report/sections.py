@@ -205,7 +205,7 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
                                    caption="Share of screened members in each dynamical regime, per option "
                                            "(long-run attractor, noise off; intervals in regime_shares.csv)."))
         for _, r in sh.iterrows():
-            ctx["shares"].append(dict(option=r.option, regime=r.regime, share=share_text(r), count=fmt_num(r["count"]),
+            ctx["shares"].append(dict(option=r.option, regime=r.get("verdict", r.regime), share=share_text(r), count=fmt_num(r["count"]),
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))
     rg = d.get("regimes")
     if rg is not None and not rg.empty:
