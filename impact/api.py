@@ -39,6 +39,7 @@ from .errors import ReadError, SettingError
 from .manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest,
                        MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
 from .model import equations
+from .sample import unit_columns
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
            "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
@@ -316,7 +317,7 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
         raise SettingError("ensemble", f"{folder} was calibrated for another version of the case file "
                                        f"({manifest['case'].get('path')}); calibrate {case.path} again")
     arrays = read_ensemble(folder)
-    if arrays["unit"].shape[1] != len(case.uncertain):
+    if arrays["unit"].shape[1] != unit_columns(case):
         raise ReadError(str(folder / "ensemble.npz"), "unit", "columns do not match the case's uncertain parameters")
     tables = {f"calibration/{p.name}": read_table(p) for p in sorted((folder / "calibration").glob("*.csv"))}
     gens = tables.get("calibration/generations.csv")
