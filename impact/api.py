@@ -29,6 +29,7 @@ import pandas as pd
 
 from . import __version__
 from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
+from .bystructure import member_structures, structure_tables
 from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
                         ensemble_from_arrays)
 from .case import Case, schedule_text
@@ -162,6 +163,14 @@ def priors_table(case: Case) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
+def parameters_table(case: Case, ens: Ensemble) -> pd.DataFrame:
+    """``parameters.csv``: each kept member's parameter values (and its structure, when the case has doubts)."""
+    frame = pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}})
+    if case.structures is not None:
+        frame["structure"] = np.array(case.structures.names, dtype=object)[member_structures(case, ens.unit)]
+    return frame
+
+
 def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,
                  seconds: float, stages: tuple[str, ...] = ("assess",), sensitivity: dict | None = None,
                  execution: dict | None = None, calibration: dict | None = None) -> Manifest:
@@ -269,7 +278,7 @@ def calibrate(case: Case, members: int | None = None, seed: int | None = None, *
     seed = seed if seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
     ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
-    tables = {"parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+    tables = {"parameters.csv": parameters_table(case, ens),
               "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
     manifest = {"tool": "impact", "version": __version__, "stages": ["calibrate"],
                 "case": {"path": str(Path(case.path).resolve()), "sha256": case.sha256, "title": case.title,
@@ -413,10 +422,11 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         "risk.csv": risk_table(case, runs), "effects.csv": effects_table(case, runs),
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
-        "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+        "parameters.csv": parameters_table(case, ens),
         "priors.csv": priors_table(case),
         **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
-           else calibration_tables(case, ens, cal, seed))}
+           else calibration_tables(case, ens, cal, seed)),
+        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None)}
     clock.lap("tables")
     records: dict[str, dict] = {}
     stages, sensitivity = ["assess"], None
@@ -444,6 +454,7 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 def summary_text(case: Case, folder: Path) -> str:
     """The terminal summary of a written results folder, ending with the page-1 verdict."""
     from .report import hinges_text, load_results
+    from .structures_verdict import structure_reading, structure_text
     from .verdict import reading, reading_text
 
     res = load_results(folder)
@@ -486,6 +497,10 @@ def summary_text(case: Case, folder: Path) -> str:
         L.append(f"  (n/a: no quasi-extinction chance or paired change for a species absent today: {', '.join(absent)})")
     L.append("verdict (the same as page 1 of report.pdf):")
     L.append(reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)))
+    # across the structural doubts (impact.structures_verdict): empty for a case without doubts
+    across = structure_text(structure_reading(res.manifest, res.risk, res.effects, res.objectives, res.structures))
+    if across:
+        L.append(across)
     hinges = hinges_text(res)
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]

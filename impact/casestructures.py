@@ -35,6 +35,7 @@ from .errors import CaseError
 MAX_STRUCTURES = 64  # every structure is a share of the members; more would leave each too few (common practice)
 FEEDING_KINDS = ("predation", "scavenging", "alternative-food")
 SWITCH_MARK = " [by structure]"  # switch names: no declared parameter can end with it (checked)
+STRUCTURE_KEY = "structure" + SWITCH_MARK  # each member's structure index among the parameter values
 # fields that a structure lacking the interaction sets to 0 (the term vanishes); other fields keep a
 # harmless value there (a half-saturation of 0 would divide 0 by 0)
 ZEROED = {"attack_rate", "coefficient", "max_benefit"}
@@ -172,6 +173,8 @@ def _read_doubt(r: Reader, i: int, raw: Any, item: dict) -> tuple[Doubt, list[di
         out.append(Choice(absent.strip(), 1.0 - exists, absent=True))
         tables.append(None)
     labels = [c.label for c in out]
+    if any(";" in lab for lab in labels):
+        r.fail(base, f"labels are plain words without ';' (it separates a web's choices), got {labels}")
     if len(set(labels)) < len(labels):
         r.fail(base, f"choices must have different labels, got {labels}")
     return Doubt(name, i, tuple(out)), tables

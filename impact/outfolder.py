@@ -45,6 +45,8 @@ TOOL_FILES = frozenset({
     "dynamics/regimes.csv", "dynamics/regime_shares.csv", "dynamics/risk_by_regime.csv", "dynamics/scan.csv",
     "dynamics/scan_points.csv", "dynamics/transitions.csv", "dynamics/dynamics.json",
     "calibration/posterior.csv", "calibration/generations.csv", "calibration/predictive.csv", "ensemble.npz",
+    "structures/weights.csv", "structures/choices.csv", "structures/risk.csv", "structures/effects.csv",
+    "structures/objectives.csv", "structures/comparisons.csv",
 })
 
 

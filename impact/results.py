@@ -177,7 +177,17 @@ TABLES = {
                           ("value", "section_value", "period", "lyapunov")),
     "dynamics/transitions.csv": (("parameter", "from_value", "to_value", "from_regime", "to_regime", "kind"),
                                  ("from_value", "to_value")),
+    "structures/weights.csv": (("structure", "choices", "prior_weight", "weight", "low", "high", "interval", "level", "members",
+                                "n_effective", "evidence"),
+                               ("prior_weight", "weight", "low", "high", "level", "members", "n_effective")),
+    "structures/choices.csv": (("doubt", "choice", "absent", "prior_weight", "weight", "low", "high", "interval",
+                                "level", "members", "n_effective", "evidence"),
+                               ("prior_weight", "weight", "low", "high", "level", "members", "n_effective")),
 }
+# the per-structure tables: the columns of the whole-ensemble table, after a structure column
+for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv"):
+    TABLES[f"structures/{_rel}"] = (("structure", *TABLES[_rel][0]), TABLES[_rel][1])
+del _rel
 
 
 def check_table(frame: pd.DataFrame, path: Path, relative: str):
@@ -333,7 +343,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
-    "informed",
+    "informed", "structure", "choices", "doubt", "choice", "absent", "evidence",
 }
 
 @dataclass
@@ -354,6 +364,7 @@ class Results:
     sensitivity: dict | None = None
     dynamics: dict | None = None
     calibration: dict | None = None
+    structures: dict | None = None  # by file stem: weights, choices, risk, effects, ... (cases with structural doubts)
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -363,7 +374,7 @@ def read_table(path: Path) -> pd.DataFrame:
     missing column or text in a number column is refused naming the file and the column.
     """
     path = Path(path)
-    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics", "calibration") else path.name
+    relative = f"{path.parent.name}/{path.name}" if path.parent.name in ("sensitivity", "dynamics", "calibration", "structures") else path.name
     try:
         df = pd.read_csv(path, dtype=str, keep_default_na=False)
     except FileNotFoundError:
@@ -405,7 +416,8 @@ def load_results(path) -> Results:
     return Results(path, manifest, read_table(path / "risk.csv"), read_table(path / "bands.csv"),
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
-                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"))
+                   read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"),
+                   read_stage(path / "structures"))
 
 
 def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):

@@ -12,7 +12,7 @@ import zlib
 import numpy as np
 
 from .case import Case
-from .casestructures import switch_values
+from .casestructures import STRUCTURE_KEY, switch_values
 from .streams import MASK32, PCG64Block, seed_words
 
 PURPOSE_PARAMETERS = 0
@@ -118,7 +118,9 @@ def parameter_values(case: Case, unit: np.ndarray) -> dict[str, np.ndarray]:
         if not p.uncertain:
             values[p.name] = np.full(M, float(p.prior.value))
     if case.structures is not None:
-        values.update(switch_values(case.structures, structure_index(case, unit), values))
+        index = structure_index(case, unit)
+        values.update(switch_values(case.structures, index, values))
+        values[STRUCTURE_KEY] = index.astype(float)
     return values
 
 
