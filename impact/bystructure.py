@@ -39,11 +39,12 @@ def member_structures(case: Case, unit: np.ndarray) -> np.ndarray:
 
 
 def effective_members(members: int, generations: list | None) -> float:
-    """Members counted as independent for a share's interval: all of them for independent draws, the
-    effective sample size of the last SMC generation (at most the members) otherwise."""
-    if not generations:
-        return float(members)
-    return float(min(members, generations[-1].get("ess", members)))
+    """Members counted as independent for a share's interval: all of them for independent draws; for an
+    SMC population the smallest effective sample size of its generations (each generation's members
+    descend from that many; the moves decorrelate them only in part), at most the members."""
+    ess = [g.get("ess", np.nan) for g in (generations or [])[1:]]
+    ess = [e for e in ess if np.isfinite(e)]
+    return float(min(members, min(ess))) if ess else float(members)
 
 
 def evidence_word(prior: float, low: float, high: float) -> str:
