@@ -164,6 +164,7 @@ def _read_doubt(r: Reader, i: int, raw: Any, item: dict) -> tuple[Doubt, list[di
             r.fail(f"{ab}.label", "must be plain words, not empty")
         merged = dict(item)
         merged.update(overrides)
+        merged["_overrides"] = tuple(overrides)  # dropped before the table is read (see _consumer_interference)
         choices.append((a_label, a_weight))
         tables.append(merged)
         fields |= set(overrides)
@@ -305,6 +306,28 @@ def _union(r: Reader, parsed: list[tuple], origins: list[dict], structures, doub
     return out["feeding"], out["competition"], out["mutualism"], tuple(switches)
 
 
+CONSUMER_KEYS = ("predator", "scavenger", "consumer")
+
+
+def _consumer_interference(items: list, chosen: list) -> list:
+    """Interference belongs to the consumer: an alternative form that sets it sets it on every
+    Beddington–DeAngelis link of that consumer in its web (so "with or without interference" is one doubt)."""
+    fixed = {}
+    for tab in chosen:
+        if tab is not None and "interference" in tab.get("_overrides", ()):
+            who = next((tab[k] for k in CONSUMER_KEYS if k in tab), None)
+            fixed[who] = tab["interference"]
+    out = []
+    for item in items:
+        if isinstance(item, dict):
+            item = {k: v for k, v in item.items() if k != "_overrides"}
+            who = next((item[k] for k in CONSUMER_KEYS if k in item), None)
+            if who in fixed and item.get("response") == "beddington-deangelis":
+                item["interference"] = fixed[who]
+        out.append(item)
+    return out
+
+
 def read_web(r: Reader, raw: list, raw_webs: list, species: tuple[Species, ...], declared: set[str]):
     """Every ``[[interactions]]`` entry with its doubts, and ``[[webs]]``.
 
@@ -350,6 +373,7 @@ def read_web(r: Reader, raw: list, raw_webs: list, species: tuple[Species, ...],
                 if item is None:
                     continue
             items.append(item)
+        items = _consumer_interference(items, [t[s.choices[k]] for k, t in enumerate(tables) if s.choices[k] > 0])
         try:
             parsed.append(read_interactions(r, items, species))
         except CaseError as exc:

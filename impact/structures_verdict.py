@@ -73,14 +73,14 @@ def _sentence(head: str, overall: str, per: dict[str, str], material: list[str],
     if not differ:
         why = _explain(open_, material, cmap, choices)
         where = (f"the webs where {why[0]} ({why[1]})" if why is not None
-                 else "; ".join(f"{w} ({weight(w)})" for w in sorted(open_)))
+                 else "; ".join(f"“{w}” ({weight(w)})" for w in sorted(open_)))
         return (f"{head} {overall}: no web with material weight contradicts it, but it is UNDECIDED within {where} "
                 "alone (fewer members there; more members would settle it).")
     why = _explain(differ, material, cmap, choices)
     other = "; ".join(sorted({per.get(w, 'no members') for w in differ}))
     if why is not None:
         return f"{head} {overall}: holds unless {why[0]} ({why[1]}); then {other}."
-    listed = "; ".join(f"{w} ({weight(w)}): {per.get(w, 'no members')}" for w in sorted(differ | open_))
+    listed = "; ".join(f"“{w}” ({weight(w)}): {per.get(w, 'no members')}" for w in sorted(differ | open_))
     return f"{head} {overall} overall, but it depends on the web: {listed}."
 
 

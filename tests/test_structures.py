@@ -148,3 +148,50 @@ def test_structure_evppi_is_the_value_of_knowing_the_web():
     same = (rng.random((M, 2)) < np.array([[0.8, 0.3], [0.7, 0.4], [0.6, 0.2]])[index]).astype(float)
     e0 = structure_evppi(same, index, seed=1)
     assert e0.low <= 1e-12 and e0.value < 0.01
+
+
+def test_a_doubt_that_changes_no_number_changes_no_table(tmp_path, data):
+    """No doubts, no change: the same case with an inert doubt (an alternative form with the written
+    numbers) draws the same members, runs the same numbers and writes the same tables, plus its own."""
+    from impact.api import AssessSettings, assess
+
+    raw = toy_case(data, prior_sd=PRIOR_SD, attack=ATTACK, log_sd=LOG_SD)
+    raw.pop("monitoring")  # drawn by rejection, as a case without data is
+    for item in raw["interactions"]:
+        item.pop("doubt")
+    (tmp_path / "plain.toml").write_text(to_toml(raw))
+    raw["interactions"][0]["doubt"] = {"label": "b eats a", "weight": 1, "alternatives": [
+        {"label": "b eats a alike", "weight": 1, "attack_rate": ATTACK}]}
+    (tmp_path / "inert.toml").write_text(to_toml(raw))
+    settings = AssessSettings(members=60, dynamics=False, sensitivity=False)
+    plain, inert = (assess(load_case(tmp_path / f"{n}.toml"), settings) for n in ("plain", "inert"))
+    assert plain.ensemble.counts == inert.ensemble.counts
+    for rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "bands.csv", "members.csv"):
+        assert plain.tables[rel].equals(inert.tables[rel]), rel
+    assert "structures/weights.csv" not in plain.tables and "structure" not in plain.tables["parameters.csv"]
+    w = inert.tables["structures/weights.csv"]
+    assert w.members.sum() == 60 and set(w.evidence) == {"keeps its prior weight"}
+
+
+def test_page_one_names_the_doubt_a_statement_hinges_on():
+    import pandas as pd
+
+    from impact.structures_verdict import _sentence
+
+    weights = pd.DataFrame({"structure": ["A1", "A2", "B1", "B2"], "weight": [0.4, 0.3, 0.2, 0.1]})
+    cmap = {"A1": {"d": "rats eat skinks", "e": "x"}, "A2": {"d": "rats eat skinks", "e": "y"},
+            "B1": {"d": "rats do not eat skinks", "e": "x"}, "B2": {"d": "rats do not eat skinks", "e": "y"}}
+    choices = pd.DataFrame({"doubt": ["d", "d", "e", "e"], "choice": ["rats eat skinks", "rats do not eat skinks", "x", "y"],
+                            "weight": [0.7, 0.3, 0.6, 0.4], "low": [0.6, 0.2, 0.5, 0.3], "high": [0.8, 0.4, 0.7, 0.5]})
+    webs = list(weights.structure)
+    same = _sentence("objective “o”", "MET", dict.fromkeys(webs, "MET"), webs, weights, cmap, choices)
+    assert "holds under every web with material weight (4 of 4)" in same
+    hinge = _sentence("objective “o”", "MET", {"A1": "MET", "A2": "MET", "B1": "NOT MET", "B2": "NOT MET"}, webs,
+                      weights, cmap, choices)
+    assert "holds unless rats do not eat skinks (weight 30.0\u00a0%" in hinge and "then NOT MET" in hinge
+    mixed = _sentence("objective “o”", "MET", {"A1": "MET", "A2": "NOT MET", "B1": "NOT MET", "B2": "MET"}, webs,
+                      weights, cmap, choices)
+    assert "depends on the web" in mixed and "“A2” (30.0\u00a0%): NOT MET" in mixed
+    thin = _sentence("objective “o”", "MET", {"A1": "MET", "A2": "UNDECIDED", "B1": "MET", "B2": "UNDECIDED"}, webs,
+                     weights, cmap, choices)
+    assert "no web with material weight contradicts it" in thin and "the webs where y" in thin

@@ -10,6 +10,7 @@ from ..cautions import cautions
 from ..errors import InstallationError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
 from ..results import Results, load_results, write_file_atomic
+from ..structures_verdict import structure_reading
 from ..verdict import reading, thin_run
 from ..webfigure import food_web_svg
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
@@ -34,13 +35,14 @@ def report_context(res: Results, assets: Assets) -> dict:
                             risk=risk_table_context(res, o.name), effects=effects_table_context(res, o.name)))
     thin, why = thin_run(m)
     verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
+    across = structure_reading(m, res.risk, res.effects, res.objectives, res.structures)  # None without doubts
     warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity, res.calibration)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
     return dict(
         m=m, case=m.case, title=m.case.title, date=m.started_utc[:10],
-        verdict=verdict, caution=m.caution, warnings=[w.text for w in warnings],
+        verdict=verdict, across=across, caution=m.caution, warnings=[w.text for w in warnings],
         # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
         top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,
         objectives=objectives_context(res), comparisons=comparisons_context(res), failed_baseline=failed.get("baseline", 0),

@@ -50,8 +50,14 @@ def _information_context(info: pd.DataFrame) -> list[dict]:
                          f"{fmt_bare_points(_clean(top.high))}], EVPPI).")
         else:
             sentence += "; no single number is worth measuring for this choice (every EVPPI is zero)."
-        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"]])
-        rows = [dict(parameter=r.parameter + (" (group)" if r.kind == "group evppi" else ""),
+        web = g[g.kind == "structure evppi"]  # cases with structural doubts (impact.structurevoi)
+        if len(web):
+            w = web.iloc[0]
+            sentence += (f" Knowing which web is true would raise it by {fmt_points(_clean(w.value))} "
+                         f"[{fmt_bare_points(_clean(w.low))}, {fmt_bare_points(_clean(w.high))}] (EVPPI of the structure).")
+        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"], web])
+        rows = [dict(parameter=r.parameter + {"group evppi": " (group)", "structure evppi": " (which web is true)"}.get(
+                         r.kind, ""),
                      value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
                            f"{fmt_bare_points(_clean(r.high))}]",
                      share=fmt_prob(_clean(r.value) / evpi.value) if evpi.value > NEGLIGIBLE else "—")
