@@ -74,8 +74,8 @@ def _sentence(head: str, overall: str, per: dict[str, str], material: list[str],
         why = _explain(open_, material, cmap, choices)
         where = (f"the webs where {why[0]} ({why[1]})" if why is not None
                  else "; ".join(f"“{w}” ({weight(w)})" for w in sorted(open_)))
-        return (f"{head} {overall}: no web with material weight contradicts it, but it is UNDECIDED within {where} "
-                "alone (fewer members there; more members would settle it).")
+        return (f"{head} {overall}: no web with material weight contradicts it, but within {where} alone it is "
+                "UNDECIDED (the interval there straddles the requirement).")
     why = _explain(differ, material, cmap, choices)
     other = "; ".join(sorted({per.get(w, 'no members') for w in differ}))
     if why is not None:
@@ -110,7 +110,7 @@ def structure_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, ob
     weights, choices = _webs(tables)
     cmap = _choice_map(weights, choices)
     material = [w for w, v in zip(weights.structure, weights.weight) if v >= MATERIAL_WEIGHT]
-    lines = tuple(f"{c.doubt}: {c.choice}: prior {fmt_prob(c.prior_weight)}, after the data and constraints "
+    lines = tuple(f"{c.doubt}: {c.choice}: prior weight {fmt_prob(c.prior_weight)}, among the plausible members "
                   f"{fmt_prob(c.weight)} [{fmt_bare_prob(c.low)}, {fmt_bare_prob(c.high)}] ({c.evidence})."
                   for _, c in choices.iterrows())
     per_web = {w: (_part(tables, "risk", w), _part(tables, "effects", w), _part(tables, "objectives", w))
@@ -134,8 +134,9 @@ def structure_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, ob
         options.append((opt, tuple(out)))
     note = (f"The case declares {len(choices.doubt.unique())} structural doubt(s), making {len(weights)} webs; "
             f"{len(material)} carry at least {fmt_prob(MATERIAL_WEIGHT)} of the members. A web's weight is its share "
-            "of the members (prior weight, then the data and constraints); the statements above are over all webs "
-            "with these weights, and below, whether each holds in every web that counts.")
+            "of the plausible members (its prior weight, weighed by the plausibility rules, limits and monitoring data); "
+            "the verdict above is over all webs with these weights; below, whether each statement holds in every web "
+            "that counts.")
     return StructureReading(lines, tuple(options), note)
 
 

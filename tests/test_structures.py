@@ -194,4 +194,4 @@ def test_page_one_names_the_doubt_a_statement_hinges_on():
     assert "depends on the web" in mixed and "“A2” (30.0\u00a0%): NOT MET" in mixed
     thin = _sentence("objective “o”", "MET", {"A1": "MET", "A2": "UNDECIDED", "B1": "MET", "B2": "UNDECIDED"}, webs,
                      weights, cmap, choices)
-    assert "no web with material weight contradicts it" in thin and "the webs where y" in thin
+    assert "no web with material weight contradicts it" in thin and "within the webs where y" in thin
