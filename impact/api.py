@@ -441,6 +441,11 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 
         dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
         tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
+        if case.structures is not None and len(dyn["regimes"]):  # the regimes of each web's members
+            from .structureregimes import regime_shares_by_structure
+
+            tables["structures/regime_shares.csv"] = regime_shares_by_structure(
+                case.structures.names, dyn["regimes"], member_structures(case, ens.unit))
         records["dynamics/dynamics.json"] = record
         stages.append("dynamics")
         clock.lap("dynamics")

@@ -136,8 +136,8 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "low": "lower limit (Monte Carlo error)", "high": "upper limit", "interval": _CI, "level": _LEVEL,
         "members": "members making this choice", "n_effective": "as in weights.csv", "evidence": "as in weights.csv"}),
 }
-for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv"):
-    DICTIONARY[f"structures/{_rel}"] = (f"Cases with structural doubts: {_rel} computed on each web's members alone.",
+for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "dynamics/regime_shares.csv"):
+    DICTIONARY[f"structures/{_rel.split('/')[-1]}"] = (f"Cases with structural doubts: {_rel} computed on each web's members alone.",
                                         {"structure": "the web", **DICTIONARY[_rel][1]})
 del _rel
 

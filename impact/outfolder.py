@@ -46,7 +46,7 @@ TOOL_FILES = frozenset({
     "dynamics/scan_points.csv", "dynamics/transitions.csv", "dynamics/dynamics.json",
     "calibration/posterior.csv", "calibration/generations.csv", "calibration/predictive.csv", "ensemble.npz",
     "structures/weights.csv", "structures/choices.csv", "structures/risk.csv", "structures/effects.csv",
-    "structures/objectives.csv", "structures/comparisons.csv",
+    "structures/objectives.csv", "structures/comparisons.csv", "structures/regime_shares.csv",
 })
 
 

@@ -185,8 +185,8 @@ TABLES = {
                                ("prior_weight", "weight", "low", "high", "level", "members", "n_effective")),
 }
 # the per-structure tables: the columns of the whole-ensemble table, after a structure column
-for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv"):
-    TABLES[f"structures/{_rel}"] = (("structure", *TABLES[_rel][0]), TABLES[_rel][1])
+for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "dynamics/regime_shares.csv"):
+    TABLES[f"structures/{_rel.split('/')[-1]}"] = (("structure", *TABLES[_rel][0]), TABLES[_rel][1])
 del _rel
 
 

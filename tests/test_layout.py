@@ -29,7 +29,7 @@ STAGES = [
      "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget", "bystructure"},
-    {"decision", "structurevoi", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
+    {"decision", "structurevoi", "structureregimes", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"chart", "cautions", "verdict", "structures_verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},
