@@ -23,6 +23,7 @@ by zero, and a case without doubts is read exactly as before.
 from __future__ import annotations
 
 import itertools
+import re
 from dataclasses import dataclass
 from typing import Any
 
@@ -374,13 +375,15 @@ def read_web(r: Reader, raw: list, raw_webs: list, species: tuple[Species, ...],
                     continue
             items.append(item)
         items = _consumer_interference(items, [t[s.choices[k]] for k, t in enumerate(tables) if s.choices[k] > 0])
+        positions = [i for i, item in enumerate(clean)
+                     if not (i in by_interaction and by_interaction[i][1][s.choices[by_interaction[i][0]]] is None)]
         try:
             parsed.append(read_interactions(r, items, species))
         except CaseError as exc:
-            raise CaseError(exc.file, exc.field, f"{exc.message} (in the web where {s.name}; an entry's index counts "
-                                                 "only the interactions that web has)") from None
-        positions = [i for i, item in enumerate(clean)
-                     if not (i in by_interaction and by_interaction[i][1][s.choices[by_interaction[i][0]]] is None)]
+            # the web's k-th interaction is the file's positions[k]-th
+            field = re.sub(r"^interactions\[(\d+)\]", lambda m: f"interactions[{positions[int(m.group(1))]}]",
+                           exc.field)
+            raise CaseError(exc.file, field, f"{exc.message} (in the web where {s.name})") from None
         origins.append({g: [positions[k] for k in ks] for g, ks in _origins(items).items()})
     feeding, competition, mutualism, switches = _union(r, parsed, origins, structures, doubts, set(declared))
     return feeding, competition, mutualism, Structures(doubts, structures, switches, bool(raw_webs))
