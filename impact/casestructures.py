@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from .casereader import Reader, Table, read_interactions
-from .casetypes import Competition, Feeding, Mutualism, Quantity, Species
+from .casetypes import Competition, Feeding, Quantity, Species
 from .errors import CaseError
 
 MAX_STRUCTURES = 64  # every structure is a share of the members; more would leave each too few (common practice)
@@ -104,10 +104,6 @@ class Structures:
         """Structure of each member from its structure uniform, in proportion to the prior weights: (M,) int."""
         edges = np.cumsum(self.weights)[:-1]
         return np.searchsorted(edges, np.asarray(u, float), side="right").astype(np.int64)
-
-    def choice_share(self, shares: np.ndarray, doubt: int, choice: int) -> float:
-        """Total weight of the structures that make ``choice`` for ``doubt``, given per-structure ``shares``."""
-        return float(sum(w for w, s in zip(shares, self.structures) if s.choices[doubt] == choice))
 
     def parameters_used(self) -> set[str]:
         """Declared parameters that some structure's switched fields name."""

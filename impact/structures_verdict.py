@@ -18,7 +18,7 @@ import pandas as pd
 
 from .formatting import fmt_bare_prob, fmt_prob
 from .manifest import Manifest
-from .verdict import STATUS_TEXT, option_reading
+from .verdict import option_reading
 
 MATERIAL_WEIGHT = 0.05  # a web with less than 5 % of the members does not decide a sentence (common practice, no source)
 SHORT_STATUS = {"met": "MET", "not met": "NOT MET", "undecided": "UNDECIDED"}
@@ -152,4 +152,4 @@ def structure_text(r: StructureReading | None) -> str:
     return "\n".join(lines)
 
 
-__all__ = ["MATERIAL_WEIGHT", "STATUS_TEXT", "StructureReading", "structure_reading", "structure_text"]
+__all__ = ["MATERIAL_WEIGHT", "StructureReading", "structure_reading", "structure_text"]
