@@ -35,6 +35,7 @@ import pandas as pd
 
 from . import __version__
 from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
+from .bystructure import member_structures, structure_tables
 from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
                         ensemble_from_arrays)
 from .case import Case, schedule_text
@@ -45,6 +46,7 @@ from .errors import ReadError, SettingError
 from .manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest,
                        MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
 from .model import equations
+from .sample import unit_columns
 
 __all__ = ["AssessSettings", "Assessment", "PosteriorEnsemble", "assess", "build_report", "calibrate", "load",
            "load_case", "load_ensemble", "report", "save", "save_ensemble", "summary_text"]
@@ -217,6 +219,14 @@ def priors_table(case: Case) -> pd.DataFrame:
     return pd.DataFrame(rows) if rows else pd.DataFrame(columns=[*TABLES["priors.csv"][0], "uncertain"])
 
 
+def parameters_table(case: Case, ens: Ensemble) -> pd.DataFrame:
+    """``parameters.csv``: each kept member's parameter values (and its structure, when the case has doubts)."""
+    frame = pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}})
+    if case.structures is not None:
+        frame["structure"] = np.array(case.structures.names, dtype=object)[member_structures(case, ens.unit)]
+    return frame
+
+
 def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: list[str], started: datetime,
                  seconds: float, stages: tuple[str, ...] = ("assess",), sensitivity: dict | None = None,
                  execution: dict | None = None, calibration: dict | None = None) -> Manifest:
@@ -334,7 +344,7 @@ def calibrate(case: Case | str | Path, members: int | None = None, seed: int | N
     seed = seed if seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
     ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
-    tables = {"parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+    tables = {"parameters.csv": parameters_table(case, ens),
               "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
     manifest = run_header(case, command or ["python", "impact.api.calibrate"], ("calibrate",),
                           started_utc=started.isoformat(timespec="seconds"), seconds=round(time.monotonic() - t0, 2),
@@ -378,7 +388,7 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
         raise SettingError("ensemble", f"{folder} was calibrated for another version of the case file "
                                        f"({manifest['case'].get('path')}); calibrate {case.path} again")
     arrays = read_ensemble(folder)
-    if arrays["unit"].shape[1] != len(case.uncertain):
+    if arrays["unit"].shape[1] != unit_columns(case):
         raise ReadError(str(folder / "ensemble.npz"), "unit", "columns do not match the case's uncertain parameters")
     tables = {f"calibration/{p.name}": read_table(p) for p in sorted((folder / "calibration").glob("*.csv"))}
     gens = tables.get("calibration/generations.csv")
@@ -486,10 +496,11 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         "risk.csv": risk_table(case, runs), "effects.csv": effects_table(case, runs),
         "objectives.csv": objectives_table(case, runs), "comparisons.csv": comparisons_table(case, runs),
         "bands.csv": bands_table(case, runs), "members.csv": members_table(case, ens, runs),
-        "parameters.csv": pd.DataFrame({"member": ens.draws, **{p.name: ens.values[p.name] for p in case.uncertain}}),
+        "parameters.csv": parameters_table(case, ens),
         "priors.csv": priors_table(case),
         **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
-           else calibration_tables(case, ens, cal, seed))}
+           else calibration_tables(case, ens, cal, seed)),
+        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None)}
     clock.lap("tables")
     records: dict[str, dict] = {}
     stages, sensitivity = ["assess"], None
@@ -504,6 +515,11 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 
         dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
         tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
+        if case.structures is not None and len(dyn["regimes"]):  # the regimes of each web's members
+            from .structureregimes import regime_shares_by_structure
+
+            tables["structures/regime_shares.csv"] = regime_shares_by_structure(
+                case.structures.names, dyn["regimes"], member_structures(case, ens.unit))
         records["dynamics/dynamics.json"] = record
         stages.append("dynamics")
         clock.lap("dynamics")
@@ -520,6 +536,7 @@ def summary_text(case: Case, folder: Path) -> str:
     from .bottomline import bottom_line, bottom_line_text
     from .formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
     from .verdict import reading, reading_text, thin_run
+    from .structures_verdict import structure_reading, structure_text
 
     res = load_results(folder)
     counts, risk = res.manifest.counts, res.risk
@@ -563,6 +580,10 @@ def summary_text(case: Case, folder: Path) -> str:
         L.append(f"  (n/a: no quasi-extinction chance or paired change for a species absent today: {', '.join(absent)})")
     L.append("verdict (the same as page 1 of report.pdf):")
     L.append(reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)))
+    # across the structural doubts (impact.structures_verdict): empty for a case without doubts
+    across = structure_text(structure_reading(res.manifest, res.risk, res.effects, res.objectives, res.structures))
+    if across:
+        L.append(across)
     hinges = hinges_text(res)
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]

@@ -16,7 +16,7 @@ from .case import Case, Option
 from .errors import CaseError
 from .integrate import FAILURE_REASONS
 from .model import FoodWeb, WebParams, build_web, web_params
-from .sample import event_uniforms, member_uniforms, noise_multipliers, parameter_values
+from .sample import draw_uniforms, event_uniforms, noise_multipliers, parameter_values
 from .simulate import Run, plausibility, run_option, spin_up
 
 Progress = Callable[[str], None]
@@ -109,7 +109,7 @@ def screen_block(task: ScreenTask) -> dict[str, np.ndarray]:
     """
     case = task.case
     draws = np.arange(task.start, task.stop)
-    unit = member_uniforms(task.seed, draws, len(case.uncertain))
+    unit = draw_uniforms(case, task.seed, draws)
     _, _, today, v = screen_draws(case, build_web(case), unit)
     k = v["kept"]
     return {"draws": draws, **{f: v[f] for f in ("kept", "failed", "extinct", "range")},

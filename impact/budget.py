@@ -126,7 +126,7 @@ def estimate(case: Case, members: int, workers: int = 1, out: Path | None = None
     runs = 1 + len(case.options)
     T = int(math.floor(case.horizon / case.output_step + 1e-9)) + 1
     H = len(summary_horizons(case))
-    D = len(case.uncertain)
+    D = len(case.uncertain) + (case.structures is not None)  # and the uniform that picks the structure
     # Summary per run: trajectory (T, n) float32, min and max (H, n), mean (H, S), recovery (S,),
     # final (n,), failed and reason; per member: unit draws, parameter values and today's state.
     kept = runs * (4 * T * n + 8 * (2 * H * n + H * S + S + n) + 2) + 8 * (2 * D + n)

@@ -38,7 +38,7 @@ from .case import DEFAULT_MIN_ACCEPTANCE, Case
 from .errors import CaseError
 from .model import WebParams, build_web, web_params
 from .observe import distance, draw_observations, has_data, log_likelihood, record_times, unmet_constraints
-from .sample import calibration_generator, member_uniforms, parameter_values
+from .sample import calibration_generator, draw_uniforms, parameter_values, unit_columns
 from .engine.web import no_jumps, pack_coefficients, web_run
 from .model import Controls, segment_coefficients
 
@@ -332,9 +332,9 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
         When the tolerance cannot reach 0, the temperature 1, or the final ensemble is degenerate.
     """
     t_start = time.monotonic()
-    N, D = members, len(case.uncertain)
+    N, D = members, unit_columns(case)
     budget = budget or SIMULATIONS_PER_MEMBER * members
-    z = _probit(member_uniforms(seed, np.arange(N), D))
+    z = _probit(draw_uniforms(case, seed, np.arange(N)))
     pop = _Population(z, evaluate(case, _unit(z), executor))
     sims = spent + N
     prior_ok = float((pop.ev["distance"] == 0).mean())
@@ -438,7 +438,6 @@ def rejection(case: Case, members: int, seed: int, executor=None, progress=None,
     Calibration
     """
     t_start = time.monotonic()
-    D = len(case.uncertain)
     max_draws = max(case.max_draws, members)
     blocks, start, kept = [], 0, 0
     if first is not None:
@@ -448,7 +447,7 @@ def rejection(case: Case, members: int, seed: int, executor=None, progress=None,
         rate = max(kept / start, 0.01) if start else 1.0
         stop = min(max_draws, start + int(np.ceil(1.1 * (members - kept) / rate)))
         draws = np.arange(start, stop)
-        ev = evaluate(case, member_uniforms(seed, draws, D), executor)
+        ev = evaluate(case, draw_uniforms(case, seed, draws), executor)
         blocks.append((draws, ev))
         start, kept = stop, kept + int((ev["distance"] == 0).sum())
         if progress:
@@ -464,7 +463,7 @@ def rejection(case: Case, members: int, seed: int, executor=None, progress=None,
     cal = Calibration("rejection", tried, len(ok) / tried, len(ok) / tried, [], 1.0, True,
                       time.monotonic() - t_start, ev["recorded"][ok], record_times(case))
     sel = {k: v[:tried] for k, v in ev.items()}
-    return draws[ok], member_uniforms(seed, draws[ok], D), sel, cal
+    return draws[ok], draw_uniforms(case, seed, draws[ok]), sel, cal
 
 
 def _counts(members: int, tried: int, kept: int, ev: dict) -> dict:
@@ -514,7 +513,7 @@ def build_ensemble(case: Case, members: int, seed: int, progress=None, executor=
     if not case.uncertain:
         raise CaseError(case.path, "calibration.sampler", "there is no uncertain parameter to calibrate")
     if spent == 0 and not case.monitoring and sampler != "smc":
-        first = evaluate(case, member_uniforms(seed, np.arange(members), len(case.uncertain)), executor)
+        first = evaluate(case, draw_uniforms(case, seed, np.arange(members)), executor)
         if sampler == "rejection" or (first["distance"] == 0).mean() >= min_acc:
             draws, unit, ev, cal = rejection(case, members, seed, executor, progress, first)
             return _make(case, draws, unit, cal.recorded[:, -1], _counts(members, cal.simulations, len(draws), ev)), cal

@@ -12,8 +12,9 @@ import hashlib
 import tomllib
 from pathlib import Path
 
-from .casereader import (Reader, Table, check_references, read_carrion, read_intervention, read_interactions, read_meta,
+from .casereader import (Reader, Table, check_references, read_carrion, read_intervention, read_meta,
                          read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
+from .casestructures import read_web
 from .casetables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
                          read_objective)
 from .casetypes import (ARRIVAL_KINDS, CARRION, CalibrationTable, Carrion, Case, ChangeLimit, Competition,
@@ -73,6 +74,8 @@ def unused_parameters(case: Case) -> tuple[str, ...]:
             v = getattr(item, f.name)
             if "Quantity" in str(f.type) and isinstance(v, str):
                 used.add(v)
+    if case.structures is not None:
+        used |= case.structures.parameters_used()
     return tuple(p.name for p in case.parameters if p.name not in used)
 
 
@@ -86,7 +89,9 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     seasons = read_seasons(r, top.get("seasons", None, "any"))
     species = read_species(r, top.get("species", kind="list"), seasons)
     names = {s.name for s in species}
-    feeding, competition, mutualism = read_interactions(r, top.get("interactions", [], "list"), species)
+    feeding, competition, mutualism, structures = read_web(r, top.get("interactions", [], "list"),
+                                                           top.get("webs", [], "list"), species,
+                                                           {p.name for p in parameters})
     carrion = read_carrion(r, top, feeding)
     observed = read_observed(r, top.get("observed", [], "list"), names)
     interventions = tuple(read_intervention(r, i, raw, species, horizon, meta["time_unit"], seasons)
@@ -112,4 +117,5 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion, observed=observed,
         interventions=interventions, options=options, risk=risk, objectives=objectives, groups=groups,
         dynamics=dynamics, seasons=seasons, monitoring=monitoring, change_limits=limits, calibration=calibration,
+        structures=structures,
     )

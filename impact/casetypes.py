@@ -317,6 +317,8 @@ class Case:
     change_limits: "tuple[ChangeLimit, ...]" = ()
     calibration: "CalibrationTable | None" = None
     seasons: Seasons | None = None
+    # structural doubts (impact.casestructures.Structures); None: one web, the interactions as written
+    structures: "Structures | None" = None
 
     @property
     def species_names(self) -> tuple[str, ...]:

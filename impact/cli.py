@@ -123,6 +123,15 @@ def describe_case(case: Case) -> str:
         else:
             L.append(f"  mutualism: {u.partner} benefits {u.beneficiary} (max={u.max_benefit}, "
                      f"half-saturation={u.half_saturation}; carrying capacity up to K·(1 + max))")
+    if case.structures is not None:  # structural doubts: the union web above, the webs it stands for here
+        st = case.structures
+        L.append(f"structural doubts ({len(st.doubts)}; a field '... [by structure]' takes each web's value):")
+        for d in st.doubts:
+            L.append(f"  {d.name} (interactions[{d.interaction}]): "
+                     + "; ".join(f"{c.label} {c.weight:.0%}" for c in d.choices))
+        L.append(f"webs weighed ({len(st.structures)}{', named in [[webs]]' if st.declared else ''}):")
+        for w in st.structures:
+            L.append(f"  {w.weight:.1%}  {w.name}")
     if case.seasons is not None:
         sea = case.seasons
         L.append(f"seasons: {sea.length:g} {case.time_unit} in {sea.parts} {sea.part_name}s; today starts a season")

@@ -26,7 +26,9 @@ import numpy as np
 import pandas as pd
 
 from .case import Case
+from .casestructures import STRUCTURE_KEY
 from .effects import BASELINE, best_choices, good_outcome
+from .structurevoi import KIND, STRUCTURE_ROW, structure_evppi
 from .voi import (bootstrap_counts, design_matrix, fitted_means, information_values_many, member_slices, ridge_solve,
                   weighted_normal_equations, weighted_sums)
 
@@ -178,4 +180,10 @@ def information_table(case: Case, values: dict, summaries: dict, seed: int) -> p
                              value=e.value, low=e.low, high=e.high, interval="bootstrap_percentile",
                              level=case.risk.confidence, n=int(ok.sum()), best_choice=tied,
                              best_chance=float(means[best]), unit="probability of a good outcome"))
+        if STRUCTURE_KEY in values:  # the value of knowing the web's structure (impact.structurevoi)
+            e = structure_evppi(nbs[i][ok], values[STRUCTURE_KEY][ok].astype(np.int64), resamples=RESAMPLES,
+                                confidence=case.risk.confidence, seed=seed)
+            rows.append(dict(objective=obj.name, parameter=STRUCTURE_ROW, kind=KIND, value=e.value, low=e.low,
+                             high=e.high, interval="bootstrap_percentile", level=case.risk.confidence, n=int(ok.sum()),
+                             best_choice=tied, best_chance=float(means[best]), unit="probability of a good outcome"))
     return pd.DataFrame(rows, columns=list(INFORMATION_COLUMNS))

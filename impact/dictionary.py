@@ -51,7 +51,8 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "mean": "time-mean abundance over the period", "failed": "True when the member's run failed numerically",
         "failure": "why it failed (ok when it did not)"}),
     "parameters.csv": ("The kept members' parameter values.", {
-        "member": "draw index of the member", "*": "one column per uncertain parameter, in its own unit"}),
+        "member": "draw index of the member", "*": "one column per uncertain parameter, in its own unit; with "
+        "structural doubts also structure (the web the member belongs to)"}),
     "priors.csv": ("Every declared parameter with its prior, unit and source.", {
         "name": "parameter", "distribution": "prior family", "arguments": "the prior in words", "unit": "unit",
         "source": "source given in the case", "description": "description", "uncertain":
@@ -62,8 +63,9 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
         "conditional_on": "what the index is conditional on"}),
     "sensitivity/information.csv": ("Value of information per objective: EVPI and EVPPI.", {
-        "objective": "objective", "parameter": "parameter, declared group, or all parameters", "kind":
-        "evpi, evppi or group evppi", "value": "rise in the chance of a good outcome (probability units) from knowing the "
+        "objective": "objective", "parameter": "parameter, declared group, all parameters, or web structure "
+        "(cases with structural doubts)", "kind": "evpi, evppi, group evppi or structure evppi (the value of "
+        "knowing which web is true)", "value": "rise in the chance of a good outcome (probability units) from knowing the "
         "number(s) exactly, chance events left out; cross-fitted, clipped at 0 (a lower limit of 0: not "
         "distinguishable from no value)",
         "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
@@ -141,7 +143,26 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "species": "monitored species", "time": "time of the observation (0 = today, negative = before)",
         "observed": "the count or index observed", "kind": "count or index", "q05": "5 % quantile of replicates",
         "q25": "25 % quantile", "q50": "median", "q75": "75 % quantile", "q95": "95 % quantile"}),
+    "structures/weights.csv": ("Cases with structural doubts: every web they make, with its prior weight and its "
+                               "weight among the members (after the data and constraints).", {
+        "structure": "the web (its choices, or its name in [[webs]])", "choices": "the choice made for each doubt, "
+        "joined by \"; \"", "prior_weight": "prior weight", "weight": "share of the members in this web",
+        "low": "lower limit (Monte Carlo error)", "high": "upper limit", "interval": _CI, "level": _LEVEL,
+        "members": "members in this web", "n_effective": "members counted as independent for the interval "
+        "(the smallest effective sample size of the SMC generations; all members for independent draws)",
+        "evidence": "keeps its prior weight, or more / less likely than its prior (only when the interval "
+        "excludes the prior weight)"}),
+    "structures/choices.csv": ("Cases with structural doubts: every choice of every doubt, with its prior weight and "
+                               "its weight among the members.", {
+        "doubt": "the doubt's name", "choice": "the choice in plain words", "absent": "True for the web without "
+        "the interaction", "prior_weight": "prior weight", "weight": "share of the members making this choice",
+        "low": "lower limit (Monte Carlo error)", "high": "upper limit", "interval": _CI, "level": _LEVEL,
+        "members": "members making this choice", "n_effective": "as in weights.csv", "evidence": "as in weights.csv"}),
 }
+for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "dynamics/regime_shares.csv"):
+    DICTIONARY[f"structures/{_rel.split('/')[-1]}"] = (f"Cases with structural doubts: {_rel} computed on each web's members alone.",
+                                        {"structure": "the web", **DICTIONARY[_rel][1]})
+del _rel
 
 
 def documented_columns(rel: str, written: list[str]) -> tuple[set[str], set[str]]:

@@ -46,6 +46,8 @@ TOOL_FILES = frozenset({
     "dynamics/scan_points.csv", "dynamics/transitions.csv", "dynamics/dynamics.json",
     "calibration/posterior.csv", "calibration/generations.csv", "calibration/predictive.csv", "ensemble.npz",
     "press_signs.csv", "press_signs.json",
+    "structures/weights.csv", "structures/choices.csv", "structures/risk.csv", "structures/effects.csv",
+    "structures/objectives.csv", "structures/comparisons.csv", "structures/regime_shares.csv",
 })
 
 

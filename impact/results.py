@@ -184,10 +184,20 @@ TABLES = {
     "press_signs.csv": (("option", "intervention", "pressed", "press", "species", "net", "terms", "weight", "predicted",
                          "basis", "n", "agree", "value", "low", "high", "interval", "level", "increase", "decrease"),
                         ("net", "terms", "weight", "n", "agree", "value", "low", "high", "level", "increase", "decrease")),
+    "structures/weights.csv": (("structure", "choices", "prior_weight", "weight", "low", "high", "interval", "level", "members",
+                                "n_effective", "evidence"),
+                               ("prior_weight", "weight", "low", "high", "level", "members", "n_effective")),
+    "structures/choices.csv": (("doubt", "choice", "absent", "prior_weight", "weight", "low", "high", "interval",
+                                "level", "members", "n_effective", "evidence"),
+                               ("prior_weight", "weight", "low", "high", "level", "members", "n_effective")),
 }
+# the per-structure tables: the columns of the whole-ensemble table, after a structure column
+for _rel in ("risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "dynamics/regime_shares.csv"):
+    TABLES[f"structures/{_rel.split('/')[-1]}"] = (("structure", *TABLES[_rel][0]), TABLES[_rel][1])
+del _rel
 
 
-STAGE_FOLDERS = ("sensitivity", "dynamics", "calibration")
+STAGE_FOLDERS = ("sensitivity", "dynamics", "calibration", "structures")
 
 
 def table_key(path: Path) -> str:
@@ -349,7 +359,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
-    "informed", "intervention", "pressed", "press", "predicted",
+    "informed", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
 }
 
 @dataclass
@@ -372,6 +382,7 @@ class Results:
     calibration: dict | None = None
     press: pd.DataFrame | None = None  # press_signs.csv (None in folders written before it existed)
     press_record: dict | None = None  # press_signs.json
+    structures: dict | None = None  # by file stem: weights, choices, risk, effects, ... (cases with structural doubts)
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -433,7 +444,7 @@ def load_results(path) -> Results:
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
                    read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"),
-                   press, record)
+                   press, record, read_stage(path / "structures"))
 
 
 def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):

@@ -12,11 +12,13 @@ import zlib
 import numpy as np
 
 from .case import Case
+from .casestructures import STRUCTURE_KEY, switch_values
 from .streams import MASK32, PCG64Block, seed_words
 
 PURPOSE_PARAMETERS = 0
 PURPOSE_NOISE = 1
 PURPOSE_EVENTS = 2
+PURPOSE_STRUCTURE = 3
 
 
 def _bits(seed: int, *key: int) -> np.random.PCG64:
@@ -62,18 +64,50 @@ def member_uniforms(seed: int, draws: np.ndarray, n: int) -> np.ndarray:
     return out
 
 
+def unit_columns(case: Case) -> int:
+    """Columns of a member's unit-hypercube row: the uncertain parameters, then (when the case has
+    structural doubts) the uniform that picks its structure."""
+    return len(case.uncertain) + (case.structures is not None)
+
+
+def draw_uniforms(case: Case, seed: int, draws: np.ndarray) -> np.ndarray:
+    """Each member's unit-hypercube row (len(draws), :func:`unit_columns`): the parameters' uniforms
+    from its parameter stream and, with structural doubts, its structure's uniform from a stream of its
+    own (so the parameters of a member are the same whether or not the case declares doubts)."""
+    unit = member_uniforms(seed, draws, len(case.uncertain))
+    if case.structures is None:
+        return unit
+    return np.concatenate([unit, first_uniforms(seed, draws, PURPOSE_STRUCTURE)[:, None]], axis=1)
+
+
+def structure_index(case: Case, unit: np.ndarray) -> np.ndarray:
+    """Each row's structure (an index into ``case.structures.structures``): (M,) int.
+
+    Rows without the structure column (a design over the parameters alone) take the structure of
+    highest prior weight; a case without doubts has the one structure 0.
+    """
+    M = unit.shape[0]
+    st = case.structures
+    if st is None:
+        return np.zeros(M, np.int64)
+    if unit.shape[1] == len(case.uncertain) + 1:
+        return st.index(unit[:, -1])
+    return np.full(M, st.mode(), np.int64)
+
+
 def parameter_values(case: Case, unit: np.ndarray) -> dict[str, np.ndarray]:
     """Map unit-hypercube rows to parameter values through each prior's inverse CDF.
 
     Parameters
     ----------
-    unit : ndarray (M, D)
-        Columns follow ``case.uncertain``.
+    unit : ndarray (M, D) or (M, D + 1)
+        Columns follow ``case.uncertain``, then the structure's uniform (see :func:`unit_columns`).
 
     Returns
     -------
     dict of str -> ndarray (M,)
-        Every declared parameter, fixed ones broadcast.
+        Every declared parameter, fixed ones broadcast, and with structural doubts every
+        structure switch (:mod:`impact.casestructures`) at the value of each member's structure.
     """
     M = unit.shape[0]
     values = {}
@@ -83,6 +117,10 @@ def parameter_values(case: Case, unit: np.ndarray) -> dict[str, np.ndarray]:
     for p in case.parameters:
         if not p.uncertain:
             values[p.name] = np.full(M, float(p.prior.value))
+    if case.structures is not None:
+        index = structure_index(case, unit)
+        values.update(switch_values(case.structures, index, values))
+        values[STRUCTURE_KEY] = index.astype(float)
     return values
 
 

@@ -7,6 +7,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from .casestructures import switch_values
 from .case import Case
 from .diagnose import diagnose_web
 from .dynamics import DynamicsSettings, section_species
@@ -73,6 +74,10 @@ def nominal_values(case: Case) -> dict[str, float]:
     out = {}
     for p in case.parameters:
         out[p.name] = float(p.prior.value) if not p.uncertain else float(p.prior.ppf(np.array([0.5]))[0])
+    if case.structures is not None:  # structural doubts: the web of highest prior weight
+        mode = np.array([case.structures.mode()])
+        out.update({k: float(v[0]) for k, v in
+                    switch_values(case.structures, mode, {k: np.array([v]) for k, v in out.items()}).items()})
     return out
 
 

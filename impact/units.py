@@ -67,7 +67,7 @@ def unit_warnings(case: Case) -> tuple[str, ...]:
     for label, item in items:
         for f in item.__dataclass_fields__.values():
             ref = getattr(item, f.name)
-            if "Quantity" not in str(f.type) or not isinstance(ref, str):
+            if "Quantity" not in str(f.type) or not isinstance(ref, str) or ref not in params:  # a structure switch
                 continue
             words = _time_words(params[ref].unit)
             timed = f.name in PER_TIME_FIELDS or f.name in TIME_FIELDS

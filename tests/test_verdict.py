@@ -125,6 +125,12 @@ def _printed_forms(folder: Path) -> set[str]:
                 forms.update({fmt_prob(v), fmt_bare_prob(v), fmt_points(v), fmt_bare_points(v), fmt_change(v)})
                 if col == "bound":  # a requirement's bound is a size, printed unsigned
                     forms.add(fmt_points(v).lstrip("+"))
+    for name in ("weights", "choices"):  # a case with structural doubts quotes the webs' weights too
+        path = folder / "structures" / f"{name}.csv"
+        if path.exists():
+            df = pd.read_csv(path)
+            for v in df[["prior_weight", "weight", "low", "high"]].to_numpy(float).ravel():
+                forms.update({fmt_prob(v), fmt_bare_prob(v)})
     return {f.replace("\u00a0", " ") for f in forms}
 
 

@@ -14,6 +14,7 @@ from ..results import Results, load_results, write_file_atomic
 from ..bottomline import STATUS_WORDS, run_label
 from ..verdict import horizon_rule_text, reading, thin_run
 from ..webfigure import dot_available, food_web_svg, web_legend
+from ..structures_verdict import structure_reading
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from .sections import dynamics_context, press_context, sensitivity_context
 from .tables import comparisons_context, effects_table_context, iucn_context, objectives_context, risk_table_context
@@ -36,13 +37,14 @@ def report_context(res: Results, assets: Assets) -> dict:
                             risk=risk_table_context(res, o.name), effects=effects_table_context(res, o.name)))
     thin, why = thin_run(m)
     verdict = reading(m, res.risk, res.effects, res.objectives, res.comparisons)
+    across = structure_reading(m, res.risk, res.effects, res.objectives, res.structures)  # None without doubts
     warnings = cautions(m, res.objectives, why, res.dynamics, res.sensitivity, res.calibration)
     priors = [dict(name=r["name"], distribution=r.get("arguments", r.get("distribution", "")), unit=r.get("unit", ""),
                    source=r.get("source", ""), description=r.get("description", "")) for _, r in res.priors.iterrows()]
     failed_by_option = [dict(option=k, failed=v.get("failed", 0)) for k, v in counts.failed_by_option.items()]
     return dict(
         m=m, case=m.case, title=m.case.title, date=m.started_utc[:10],
-        verdict=verdict, caution=m.caution, run_label=run_label, status_words=STATUS_WORDS,
+        verdict=verdict, across=across, caution=m.caution, run_label=run_label, status_words=STATUS_WORDS,
         horizon_rule=horizon_rule_text(m), warnings=[w.text for w in warnings],
         # the thin-run statement has its own box on page 1; the others that matter most go above the verdict
         top_warnings=[w.text for w in warnings if 0 < w.rank <= 3], judgement=m.judgement,

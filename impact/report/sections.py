@@ -93,8 +93,14 @@ def _information_context(info: pd.DataFrame) -> list[dict]:
         evpi = g[g.kind == "evpi"].iloc[0]
         params = g[g.kind == "evppi"].sort_values("value", ascending=False, kind="stable")
         sentence = _information_sentence(obj, evpi, params)
-        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"]])
-        rows = [dict(parameter=r.parameter + (" (group)" if r.kind == "group evppi" else ""),
+        web = g[g.kind == "structure evppi"]  # cases with structural doubts (impact.structurevoi)
+        if len(web):
+            w = web.iloc[0]
+            sentence += (f" Knowing which web is true would raise it by {_interval_points(w)} (EVPPI of the structure"
+                         + ("" if _detected(w) else "; not distinguishable from none") + ").")
+        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"], web])
+        rows = [dict(parameter=r.parameter + {"group evppi": " (group)", "structure evppi": " (which web is true)"}.get(
+                         r.kind, ""),
                      value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
                            f"{fmt_bare_points(_clean(r.high))}]",
                      share=fmt_prob(_clean(r.value) / evpi.value) if evpi.value > NEGLIGIBLE else "—")
