@@ -20,6 +20,7 @@ from .formatting import fmt_bare_prob, fmt_prob
 from .manifest import Manifest
 from .verdict import option_reading
 
+HOLDS = "holds under every web with material weight"
 MATERIAL_WEIGHT = 0.05  # a web with less than 5 % of the members does not decide a sentence (common practice, no source)
 SHORT_STATUS = {"met": "MET", "not met": "NOT MET", "undecided": "UNDECIDED"}
 
@@ -31,6 +32,8 @@ class StructureReading:
     weights: tuple[str, ...]
     options: tuple[tuple[str, tuple[str, ...]], ...]
     note: str
+    summary: str = ""  # one sentence: how many statements hold in every web that counts
+    hinges: tuple[tuple[str, tuple[str, ...]], ...] = ()  # per option, only the statements a web decides
 
 
 def _webs(tables: dict) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -69,7 +72,7 @@ def _sentence(head: str, overall: str, per: dict[str, str], material: list[str],
     differ = {w for w in material if per.get(w) != overall and per.get(w) != "UNDECIDED"}
     open_ = {w for w in material if per.get(w) == "UNDECIDED" and overall != "UNDECIDED"}
     if not differ and not open_:
-        return f"{head} {overall}: holds under every web with material weight ({len(material)} of {len(weights)})."
+        return f"{head} {overall}: {HOLDS} ({len(material)} of {len(weights)})."
     if not differ:
         why = _explain(open_, material, cmap, choices)
         where = (f"the webs where {why[0]} ({why[1]})" if why is not None
@@ -135,9 +138,16 @@ def structure_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, ob
     note = (f"The case declares {len(choices.doubt.unique())} structural doubt(s), making {len(weights)} webs; "
             f"{len(material)} carry at least {fmt_prob(MATERIAL_WEIGHT)} of the members. A web's weight is its share "
             "of the plausible members (its prior weight, weighed by the plausibility rules, limits and monitoring data); "
-            "the verdict above is over all webs with these weights; below, whether each statement holds in every web "
-            "that counts.")
-    return StructureReading(lines, tuple(options), note)
+            "the verdicts on this page are over all webs, with these weights.")
+    hinges = tuple((opt, tuple(x for x in sentences if HOLDS not in x)) for opt, sentences in options)
+    hinges = tuple((opt, sentences) for opt, sentences in hinges if sentences)
+    total = sum(len(sentences) for _, sentences in options)
+    held = total - sum(len(sentences) for _, sentences in hinges)
+    summary = (f"{'All' if held == total else held} {'' if held == total else f'of the {total} '}objective verdicts "
+               f"and material side effects on this page hold under every web with material weight "
+               f"({len(material)} of {len(weights)} webs)" + ("." if held == total else "; the others depend on "
+                                                                "the web, as follows."))
+    return StructureReading(lines, tuple(options), note, summary, hinges)
 
 
 def structure_text(r: StructureReading | None) -> str:
