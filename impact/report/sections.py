@@ -15,6 +15,7 @@ from .figures import Assets, distribution_figure, regime_figure, scan_figure
 MAX_DRIVER_ROWS = 8
 TOP_DRIVERS = 3
 TOP_INFORMATION = 5
+QUIET_INFORMATION = 3  # rows shown when no value of information is distinguishable from none
 NEGLIGIBLE = 1e-9  # estimates below this are float noise of an exact zero
 # a share of variance below this (printed as 0.00 or 0.01) explains nothing a reader can act on
 VISIBLE_SHARE = 0.01
@@ -98,7 +99,11 @@ def _information_context(info: pd.DataFrame) -> list[dict]:
             w = web.iloc[0]
             sentence += (f" Knowing which web is true would raise it by {_interval_points(w)} (EVPPI of the structure"
                          + ("" if _detected(w) else "; not distinguishable from none") + ").")
-        shown = pd.concat([params.head(TOP_INFORMATION), g[g.kind == "group evppi"], web])
+        # a table of zeros reads as a finding: with nothing detected the sentence says so and the table
+        # shrinks to the few largest (every row is in information.csv); with EVPI exactly 0 it goes
+        detected = any(_detected(r) for _, r in g.iterrows())
+        top = TOP_INFORMATION if detected else (0 if _clean(evpi.high) == 0 else QUIET_INFORMATION)
+        shown = pd.concat([params.head(top), g[g.kind == "group evppi"].head(top), web.head(top)])
         rows = [dict(parameter=r.parameter + {"group evppi": " (group)", "structure evppi": " (which web is true)"}.get(
                          r.kind, ""),
                      value=f"{fmt_points(_clean(r.value))} [{fmt_bare_points(_clean(r.low))}, "
