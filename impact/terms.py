@@ -359,7 +359,7 @@ def _numpy_lines(s: Structure, stmts: list[Let], tangent: bool) -> list[str]:
 
 
 def _compile(name: str, head: str, body: list[str]):
-    from .engine.kernel import cos_array  # numba is loaded on first use only
+    from .libm import cos_array  # numba is loaded on first use only
 
     source = f"def {head}:\n" + "".join(f"    {line}\n" for line in body)
     scope = {"np": np, "cos_array": cos_array}

@@ -36,7 +36,7 @@ K_LINKS = len(SPECIES_COEFFICIENTS)  # the per-link blocks start at K_LINKS · S
 # right-hand side and the step loop, which it recompiles around its own right-hand side.
 __all__ = ["HEADER", "HEAD_S", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
            "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "sumsq", "rms", "all_finite",
-           "trial_first_step", "chosen_first_step", "combine_stages", "power_array", "cos_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
+           "trial_first_step", "chosen_first_step", "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
            "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
 
 A = DormandPrince54.A.copy()
@@ -233,15 +233,6 @@ def power_array(x, p):
     for i in range(x.shape[0]):
         v = x[i]
         out[i] = v ** p if v != 0 or p >= 0 else math.inf
-    return out
-
-
-@kernel_jit
-def cos_array(x):
-    """``cos(x)`` elementwise through the C library (as the kernel computes it)."""
-    out = np.empty_like(x)
-    for i in range(x.shape[0]):
-        out[i] = math.cos(x[i])
     return out
 
 
