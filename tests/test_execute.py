@@ -335,7 +335,8 @@ def test_killed_run_resumes_to_the_uninterrupted_result(web, reference, tmp_path
     assert 2 <= done_before < 6
     r = subprocess.run(cmd + ["--resume"], env=env, capture_output=True, text=True)
     assert r.returncode == 0, r.stderr
-    core = [k for k in _tables(reference) if "/" not in k]
+    # the core tables (press_signs.csv belongs to the decision stage, off here)
+    core = [k for k in _tables(reference) if "/" not in k and k != "press_signs.csv"]
     assert core and all(_tables(out)[k] == _tables(reference)[k] for k in core)
     import json
 

@@ -43,7 +43,9 @@ def test_a_fully_fixed_case_runs_every_stage_that_applies(assessed):
     code, out = assessed
     assert code == 0
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
-    assert manifest["stages"] == ["assess", "dynamics"]
+    # the press signs need no uncertain number (the structure alone, and the one member's own response)
+    assert manifest["stages"] == ["assess", "press", "dynamics"]
+    assert (out / "press_signs.csv").exists()
     # the screen and the value of information need uncertain numbers: skipped, with the reason recorded
     assert "0 uncertain parameter" in manifest["sensitivity"]["skipped"]
     assert (out / "report.pdf").stat().st_size > 0 and (out / "dynamics" / "regimes.csv").exists()

@@ -241,10 +241,16 @@ def _staged_needles(d: Path) -> list[str]:
         needles += ["didnotconverge", "outputsperrun:"]
         needles += [f"{o}{len(g)}of{int((conv.option == o).sum())}" for o, g in bad.groupby("option")]
     shares = pd.read_csv(d / "dynamics" / "regime_shares.csv", keep_default_na=False)
+    from impact.cautions import OSCILLATING
+
     for r in shares[(shares.share.astype(float) > 0) & (shares.regime != "equilibrium")].itertuples():
-        # an oscillating or irregular share is named with its Wilson interval and its count of members
-        needles.append(_squash(f"{r.option} {100 * float(r.share):.1f} % [{100 * float(r.share_low):.1f} %–"
-                               f"{100 * float(r.share_high):.1f} %] ({r.count} members)"))
+        # an oscillating or irregular share is named with its Wilson interval and its count of members; an
+        # undetermined one with its interval (and the reasons)
+        share = f"{r.option} {100 * float(r.share):.1f} % [{100 * float(r.share_low):.1f}, {100 * float(r.share_high):.1f}]"
+        if r.regime in OSCILLATING:
+            needles.append(_squash(f"{share} ({r.count} members)"))
+        elif r.regime == "undetermined":
+            needles.append(_squash(share))
     return needles + [_squash(p.name) for p in CASE.uncertain]
 
 
