@@ -244,13 +244,15 @@ class WebTangent:
         """``(f, Jv)`` for members ``idx`` (see :meth:`evaluate`)."""
         if self.engine != "compiled":
             return self.evaluate(t, y, v, idx)
+        from .engine.boundary import check_kernel_arrays
         from .engine.tangent import batch_jvp
 
         if self._key is not idx:
             self._rows, self._key = np.ascontiguousarray(self._coef[idx]), idx
+        y, v = np.ascontiguousarray(y, dtype=float), np.ascontiguousarray(v, dtype=float)
         out, jv = np.empty_like(y), np.empty_like(y)
-        batch_jvp(self._st, self._rows, np.ascontiguousarray(y, dtype=float), np.ascontiguousarray(v, dtype=float),
-                  out, jv)
+        check_kernel_arrays("batch_jvp", self._st, coef=self._rows, y=y, v=v, out=out, jv=jv)  # boundary into compiled code
+        batch_jvp(self._st, self._rows, y, v, out, jv)
         return out, jv
 
     def evaluate(self, t, y, v, idx):

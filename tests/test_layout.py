@@ -25,10 +25,10 @@ def test_no_module_imports_a_private_name_of_another():
 STAGES = [
     {"errors", "formatting", "likelihood", "priors", "metrics", "iucn", "voi", "dictionary", "interrupts", "streams", "preload", "__init__"},
     {"case", "units", "casetypes", "casereader", "casetables"},
-    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow", "precompile",
+    {"model", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow", "precompile", "boundary",
      "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
-    {"effects", "results", "manifest", "outfolder", "budget"},
+    {"effects", "results", "manifest", "outfolder", "dossier", "budget"},
     {"decision", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"chart", "cautions", "verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
