@@ -20,6 +20,7 @@ Policy (also in the README):
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import shutil
@@ -48,9 +49,12 @@ TOOL_FILES = frozenset({
 })
 
 
-def _files(folder: Path) -> list[str]:
+def list_files(folder: Path) -> list[str]:
     """Relative paths (with ``/``) of every file under ``folder``, sorted."""
     return sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file() or p.is_symlink())
+
+
+_files = list_files
 
 
 def tool_files(folder: Path) -> set[str]:
@@ -303,6 +307,37 @@ def _move(src: Path, dst: Path):
     os.rename(src, dst)
 
 
-def _write_inventory(folder: Path, files: list[str]):
+# The report states the inventory's hash on its first page, so it cannot itself be hashed in the
+# inventory (the two are tied the other way: impact.dossier checks a PDF against its folder).
+UNHASHED = frozenset({INVENTORY, "report.pdf"})
+
+
+def file_sha256(path: Path) -> str:
+    """SHA-256 of a file's bytes, as 64 hexadecimal digits (read in 1 MiB blocks)."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def inventory_record(folder: Path, files) -> dict:
+    """``inventory.json`` of ``folder``: ``tool``, ``files`` (every file, relative, sorted) and ``sha256``
+    (file -> SHA-256 of its bytes, for every file but those in :data:`UNHASHED`)."""
     listed = sorted(set(files) | {INVENTORY})
-    (folder / INVENTORY).write_text(json.dumps({"tool": "impact", "files": listed}, indent=2) + "\n", encoding="utf-8")
+    hashes = {rel: file_sha256(Path(folder) / rel) for rel in listed
+              if rel not in UNHASHED and (Path(folder) / rel).is_file()}
+    return {"tool": "impact", "files": listed, "sha256": hashes}
+
+
+def write_inventory(folder: Path, extra=()) -> None:
+    """Write ``inventory.json`` of the files now in ``folder`` and of ``extra`` files still to come
+    (``report.pdf``, which reads the inventory's hash). Writing it again once they are there gives
+    the same bytes."""
+    folder = Path(folder)
+    (folder / INVENTORY).write_text(json.dumps(inventory_record(folder, set(_files(folder)) | set(extra)), indent=2)
+                                    + "\n", encoding="utf-8")
+
+
+def _write_inventory(folder: Path, files: list[str]):
+    write_inventory(folder, files)
