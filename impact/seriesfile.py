@@ -150,10 +150,12 @@ def read_series_file(case_path, where: str, name: str) -> SeriesFile:
         if header is None:
             header = [h.strip() for h in row]
             if header != list(SERIES_COLUMNS):
-                missing = [c for c in SERIES_COLUMNS if c not in header]
-                raise CaseError(str(path), f"line {k}, column {missing[0] if missing else len(SERIES_COLUMNS) + 1}",
+                pos = next(j for j in range(len(header) + 1)
+                           if j >= len(header) or j >= len(SERIES_COLUMNS) or header[j] != SERIES_COLUMNS[j])
+                got = _quote(header[pos]) if pos < len(header) else "missing"
+                raise CaseError(str(path), f"line {k}, column {pos + 1}",
                                 f"the first line (after # comments) must be the columns {','.join(SERIES_COLUMNS)}; "
-                                f"got {len(row)} columns")
+                                f"column {pos + 1} is {got}")
             continue
         if len(row) != len(SERIES_COLUMNS):
             raise CaseError(str(path), f"line {k}", f"must hold {len(SERIES_COLUMNS)} cells (time, value), got {len(row)}")

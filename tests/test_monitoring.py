@@ -83,7 +83,7 @@ def test_a_detection_prior_reaching_above_one_is_refused(tmp_path):
 
 
 @pytest.mark.parametrize("content,field,words", [
-    ("when,count\n-8,90\n", "line 1, column time", "time,value"),
+    ("when,count\n-8,90\n", "line 1, column 1", "time,value"),
     ("time,value\n-8,90\n-6,lots\n", "line 3, column value", "must be a number"),
     ("time,value\n-8,90,1\n", "line 2", "2 cells"),
 ])
