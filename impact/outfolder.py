@@ -290,6 +290,11 @@ class _Staging:
     def __exit__(self, kind, exc, tb):
         if kind is not None:
             shutil.rmtree(self.tmp, ignore_errors=True)
+            if issubclass(kind, OSError):  # a full disk, a quota, a folder gone read-only while writing
+                raise WriteError(self.folder.path, f"could not write the results ({exc.strerror or exc}); nothing "
+                                                   "was left half-written. Free space and run the same command "
+                                                   "again (an assessment continues from its saved chunks with "
+                                                   "`resume`)") from None
             return False
         # from the final move on the run has succeeded: Ctrl-C and SIGTERM no longer undo it
         ignore_from_now_on()
