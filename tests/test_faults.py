@@ -60,3 +60,47 @@ def test_a_full_disk_leaves_nothing_half_written_and_resume_completes(tmp_path, 
     for name in TABLES:
         assert (out / name).read_bytes() == (fresh / name).read_bytes(), name
     assert not (tmp_path / ".out.checkpoints").exists()
+
+
+def test_a_worker_killed_mid_run_loses_nothing(tmp_path, capsys):
+    """On a Dask LocalCluster of two worker processes, one worker is killed (SIGKILL) once chunks are
+    saved: the run either completes with the tables of a one-worker run (the scheduler re-runs the
+    lost chunks) or exits 1 with its finished chunks kept, and --resume then gives those tables."""
+    import os
+    import signal
+    import threading
+    import time
+
+    distributed = pytest.importorskip("distributed")
+    case = write_case(tmp_path, decline_case(600))
+    flags = ["--quiet", "--no-sensitivity", "--no-dynamics", "--no-report", "--chunk-members", "20"]
+    fresh = tmp_path / "fresh"
+    assert main(["assess", str(case), "--out", str(fresh), "--workers", "1", *flags]) == 0
+    out = tmp_path / "out"
+    saved = tmp_path / ".out.checkpoints"
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                  dashboard_address=None, silence_logs=50) as cluster, \
+            distributed.Client(cluster) as client:
+        pids = list(client.run(os.getpid).values())
+        killed = {}
+
+        def kill_one_mid_run():
+            deadline = time.monotonic() + 120
+            while time.monotonic() < deadline and not list(saved.glob("runs-*.npz")):
+                time.sleep(0.01)
+            killed["mid_run"] = not out.exists()  # the results were not complete yet
+            os.kill(pids[0], signal.SIGKILL)
+
+        killer = threading.Thread(target=kill_one_mid_run)
+        killer.start()
+        capsys.readouterr()
+        code = main(["assess", str(case), "--out", str(out), "--cluster", cluster.scheduler_address, *flags])
+        killer.join()
+    assert killed.get("mid_run"), "the run ended before a worker could be killed: make it longer"
+    err = capsys.readouterr().err
+    assert code in (0, 1), err
+    if code == 1:
+        assert "--resume" in err and "Traceback" not in err and not out.exists()
+        assert main(["assess", str(case), "--out", str(out), "--workers", "1", *flags, "--resume"]) == 0
+    for name in TABLES:
+        assert (out / name).read_bytes() == (fresh / name).read_bytes(), name
