@@ -152,6 +152,7 @@ def write_report(results_dir, out=None, paper: str = "a4", accept_edits: bool = 
     since the run is refused (:class:`ReadError` naming it) unless ``accept_edits``, and then page 1
     says which files differ. Page 1 states the SHA-256 of the inventory either way.
     """
+    res = load_results(results_dir)  # a damaged folder is named for what is damaged (file, column) first
     check = check_folder(results_dir)
     edited = check.differences()
     if edited and not accept_edits:
@@ -159,7 +160,6 @@ def write_report(results_dir, out=None, paper: str = "a4", accept_edits: bool = 
         raise ReadError(str(Path(results_dir) / first), "",
                         f"differs from what impact wrote ({len(edited)} file(s): {'; '.join(edited)}); no report was "
                         "built. Rerun the assessment, or set `accept_edits` to build a report that says so on page 1")
-    res = load_results(results_dir)
     out = Path(out) if out is not None else Path(results_dir) / "report.pdf"
     html, assets = report_html(res, paper, dict(inventory_sha256=check.inventory_sha256,
                                                 edited=[rel for rel in check.changed + check.missing + check.added]))
