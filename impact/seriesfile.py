@@ -13,6 +13,7 @@ spin-up) is checked by :func:`impact.casetables.read_monitoring`, which names th
 from __future__ import annotations
 
 import csv
+import errno
 import math
 import os
 import stat
@@ -74,7 +75,7 @@ def locate(case_path, where: str, name: str) -> Path:
     except FileNotFoundError:
         raise ReadError(str(raw), "", f"no such file (named by {field}; the path is relative to the case file)") from None
     except (RuntimeError, OSError) as exc:  # a symbolic-link loop (RuntimeError before Python 3.13), ELOOP, EACCES
-        why = "a symbolic-link loop" if isinstance(exc, RuntimeError) or getattr(exc, "errno", None) == 40 else \
+        why = "a symbolic-link loop" if isinstance(exc, RuntimeError) or getattr(exc, "errno", None) == errno.ELOOP else \
             (getattr(exc, "strerror", None) or str(exc))
         raise ReadError(str(case_path), field, f"{name!r} cannot be resolved ({why})") from None
     roots = allowed_roots(case_path.parent)

@@ -50,6 +50,11 @@ CONTRACTS: dict[str, dict[str, tuple[np.dtype, tuple]]] = {
 }
 
 
+# arrays the compiled code writes into
+WRITTEN = {"y_out", "ymin", "ymax", "h_out", "reason", "nsteps", "states", "cummin", "cummax", "lg", "low", "high",
+            "acc", "sec_vals", "sec_count", "out", "jv"}
+
+
 class KernelArgumentError(ValueError):
     """An array that does not meet a compiled entry point's contract (a defect of the caller, caught
     before the compiled code could read or write out of bounds).
@@ -140,8 +145,8 @@ def check_kernel_arrays(entry: str, st, **arrays) -> None:
             raise KernelArgumentError(entry, name, f"must have dtype {dtype}, not {a.dtype}")
         if a.ndim != len(dims):
             raise KernelArgumentError(entry, name, f"must have shape ({', '.join(dims)}), got {a.shape}")
-        if not a.flags.c_contiguous or (name in _WRITTEN and not a.flags.writeable):
-            raise KernelArgumentError(entry, name, "must be a C-contiguous" + (" writeable" if name in _WRITTEN
+        if not a.flags.c_contiguous or (name in WRITTEN and not a.flags.writeable):
+            raise KernelArgumentError(entry, name, "must be a C-contiguous" + (" writeable" if name in WRITTEN
                                                                                  else "") + " array")
         for axis, dim in enumerate(dims):
             symbol, _, plus = dim.partition("+")
@@ -152,11 +157,6 @@ def check_kernel_arrays(entry: str, st, **arrays) -> None:
                 raise KernelArgumentError(entry, name, f"must have shape ({', '.join(dims)}) with "
                                                        f"{symbol} = {sizes[symbol]}, got {a.shape}")
     _check_values(entry, sizes, arrays)
-
-
-# arrays the compiled code writes into
-_WRITTEN = {"y_out", "ymin", "ymax", "h_out", "reason", "nsteps", "states", "cummin", "cummax", "lg", "low", "high",
-            "acc", "sec_vals", "sec_count", "out", "jv"}
 
 
 def _check_values(entry: str, sizes: dict, arrays: dict) -> None:

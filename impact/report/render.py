@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from importlib import resources
 from pathlib import Path
 
@@ -162,7 +163,9 @@ def write_report(results_dir, out=None, paper: str = "a4", accept_edits: bool = 
                         "built. Rerun the assessment, or set `accept_edits` to build a report that says so on page 1")
     out = Path(out) if out is not None else Path(results_dir) / "report.pdf"
     html, assets = report_html(res, paper, dict(inventory_sha256=check.inventory_sha256,
-                                                edited=[rel for rel in check.changed + check.missing + check.added]))
+                                                # (names as CSS text on page 1: nothing that could end the string)
+                                                edited=[re.sub(r"[^\w./-]", "?", rel)
+                                                        for rel in check.changed + check.missing + check.added]))
     pdf, _ = render_pdf(html, assets)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
