@@ -580,7 +580,7 @@ def write_results(result: Assessment, folder: Path, *, report: bool = True, pape
     text = summary_text(result.case, folder)
     (folder / "summary.txt").write_text(text + "\n", encoding="utf-8")
     # the inventory (every file's SHA-256) before the report, whose first page states its hash
-    write_inventory(folder, ("report.pdf",) if report else ())
+    write_inventory(folder, ("report.pdf", "report.pdf.sha256") if report else ())
     if report:
         if progress:
             progress("writing report.pdf")

@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .errors import ReadError
-from .outfolder import INVENTORY, UNHASHED, file_sha256, list_files
+from .outfolder import INVENTORY, REPORT_HASH, UNHASHED, file_sha256, list_files
 
 PDF_MARK = "impact-inventory-sha256:"
 # beside it in a report built with accept_edits: the files that differed from the inventory
@@ -98,7 +98,7 @@ def check_folder(folder) -> FolderCheck:
         elif file_sha256(target) != hashes[rel]:
             changed.append(rel)
     missing += [rel for rel in sorted(set(listed) - present - set(hashes)) if rel not in UNHASHED]
-    others = sorted(present - set(listed))
+    others = sorted(present - set(listed) - UNHASHED)
     added = tuple(rel for rel in others if rel.endswith(DATA_SUFFIXES))
     return FolderCheck(folder, hashlib.sha256(raw).hexdigest(), bool(hashes), tuple(changed), tuple(sorted(missing)),
                        added, tuple(rel for rel in others if rel not in added))
@@ -178,4 +178,20 @@ def verify(folder, pdf=None) -> Verification:
                      f"{check.inventory_sha256}: the PDF was not made from this folder")
     elif not edited:
         lines.append(f"{target}: made from this folder (states inventory SHA-256 {stated})")
+    recorded = _recorded_report_hash(check.folder)
+    if recorded is not None and stated == check.inventory_sha256:
+        if file_sha256(target) == recorded:
+            lines.append(f"{target}: byte for byte the report.pdf impact wrote here ({REPORT_HASH})")
+        else:
+            ok = False
+            lines.append(f"{target}: differs from the report.pdf impact wrote here (SHA-256 in {REPORT_HASH}): "
+                         "altered, or rebuilt elsewhere with `impact report --out`")
     return Verification(ok, lines)
+
+
+def _recorded_report_hash(folder: Path) -> str | None:
+    try:
+        token = (folder / REPORT_HASH).read_text(encoding="utf-8").split()[0]
+    except (OSError, UnicodeDecodeError, IndexError):
+        return None
+    return token if re.fullmatch(r"[0-9a-f]{64}", token) else None

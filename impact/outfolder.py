@@ -39,7 +39,7 @@ INVENTORY = "inventory.json"
 # one of these names is treated as impact's own when replace_results replaces a folder.
 TOOL_FILES = frozenset({
     INVENTORY, "manifest.json", "risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "bands.csv",
-    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "README.md",
+    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "report.pdf.sha256", "README.md",
     "sensitivity/drivers.csv", "sensitivity/information.csv",
     "sensitivity/indices.csv", "sensitivity/second_order.csv", "sensitivity/ranking.csv",
     "sensitivity/convergence.csv", "sensitivity/sensitivity.json",
@@ -314,7 +314,9 @@ def _move(src: Path, dst: Path):
 
 # The report states the inventory's hash on its first page, so it cannot itself be hashed in the
 # inventory (the two are tied the other way: impact.dossier checks a PDF against its folder).
-UNHASHED = frozenset({INVENTORY, "report.pdf"})
+UNHASHED = frozenset({INVENTORY, "report.pdf", "report.pdf.sha256"})
+# the SHA-256 of report.pdf, written beside it (``sha256sum -c`` reads it)
+REPORT_HASH = "report.pdf.sha256"
 
 
 def file_sha256(path: Path) -> str:

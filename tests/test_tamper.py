@@ -64,7 +64,7 @@ def test_the_inventory_records_every_file_hash_and_the_pdf_states_the_inventory_
     inventory = json.loads((folder / "inventory.json").read_text())
     on_disk = sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file())
     assert inventory["files"] == on_disk
-    assert set(inventory["sha256"]) == set(on_disk) - {"inventory.json", "report.pdf"}
+    assert set(inventory["sha256"]) == set(on_disk) - {"inventory.json", "report.pdf", "report.pdf.sha256"}
     for rel, digest in inventory["sha256"].items():
         assert hashlib.sha256((folder / rel).read_bytes()).hexdigest() == digest, rel
     stated, edited = pdf_statement(folder / "report.pdf")
@@ -186,3 +186,14 @@ def test_a_damaged_or_foreign_ensemble_is_refused_naming_the_reason(calibrated, 
     # the untouched ensemble is still accepted
     code, _ = assess_with(case, post, tmp_path / "out-ok", capsys)
     assert code == 0
+
+
+def test_an_altered_pdf_is_detected_by_its_recorded_hash(assessed, tmp_path, capsys):
+    _, original = assessed
+    line = (original / "report.pdf.sha256").read_text()
+    assert line == f"{hashlib.sha256((original / 'report.pdf').read_bytes()).hexdigest()}  report.pdf\n"
+    altered = tmp_path / "attached.pdf"
+    altered.write_bytes((original / "report.pdf").read_bytes() + b"%% a note added\n")  # still states the hash
+    capsys.readouterr()
+    assert main(["verify", str(original), "--pdf", str(altered)]) == 1
+    assert "differs from the report.pdf impact wrote here" in capsys.readouterr().out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import re
 from importlib import resources
 from pathlib import Path
@@ -11,6 +12,7 @@ from ..cautions import cautions
 from ..dossier import EDITED_MARK, PDF_MARK, check_folder
 from ..errors import InstallationError, ReadError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
+from ..outfolder import INVENTORY, REPORT_HASH
 from ..results import Results, load_results, write_file_atomic
 from ..verdict import reading, thin_run
 from ..webfigure import food_web_svg
@@ -170,6 +172,9 @@ def write_report(results_dir, out=None, paper: str = "a4", accept_edits: bool = 
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
         write_file_atomic(out, pdf)  # mode from the umask, like the tables beside it
+        if out.name == "report.pdf" and (out.parent / INVENTORY).is_file():
+            # the report's own hash beside it: the inventory cannot hold it (the report states the inventory's)
+            write_file_atomic(out.parent / REPORT_HASH, f"{hashlib.sha256(pdf).hexdigest()}  report.pdf\n".encode())
     except OSError as exc:
         raise WriteError(exc.filename or out, f"cannot write the report ({exc.strerror or exc})") from None
     return out
