@@ -49,7 +49,7 @@ from .model import equations
 from .sample import unit_columns
 
 __all__ = ["AssessSettings", "Assessment", "PosteriorEnsemble", "assess", "build_report", "calibrate", "load",
-           "load_case", "load_ensemble", "report", "save", "save_ensemble", "summary_text"]
+           "load_case", "load_ensemble", "report", "save", "save_ensemble", "summary_text", "verify"]
 
 CAUTION = ("Model-based screening aid: results depend on the model structure and priors shown. "
            "Decisions rest with licensed ecological review and the applicable local regulations and permits.")
@@ -373,6 +373,8 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
     """Read a folder written by :func:`save_ensemble` for ``case``; refused when calibrated for another case file."""
     import json
 
+    from .dossier import check_folder
+    from .model import build_web
     from .results import read_ensemble, read_table
 
     folder = Path(folder)
@@ -387,9 +389,12 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
     if sha != case.sha256:
         raise SettingError("ensemble", f"{folder} was calibrated for another version of the case file "
                                        f"({manifest['case'].get('path')}); calibrate {case.path} again")
-    arrays = read_ensemble(folder)
-    if arrays["unit"].shape[1] != unit_columns(case):
-        raise ReadError(str(folder / "ensemble.npz"), "unit", "columns do not match the case's uncertain parameters")
+    check = check_folder(folder)
+    if check.changed or check.missing:
+        rel = (check.changed + check.missing)[0]
+        raise ReadError(str(folder / rel), "", f"differs from what `impact calibrate` wrote (SHA-256 in inventory.json): "
+                                               f"altered or damaged; calibrate {case.path} again")
+    arrays = read_ensemble(folder, parameters=unit_columns(case), state=build_web(case).n_state)
     tables = {f"calibration/{p.name}": read_table(p) for p in sorted((folder / "calibration").glob("*.csv"))}
     gens = tables.get("calibration/generations.csv")
     cal = calibration_from_record(record, gens.to_dict("records") if gens is not None else None)
@@ -602,16 +607,19 @@ def write_results(result: Assessment, folder: Path, *, report: bool = True, pape
     from .report import write_report
 
     from .dictionary import write_dictionary
+    from .outfolder import write_inventory
 
     folder = Path(folder)
     result.write(folder)
     write_dictionary(folder)
+    text = summary_text(result.case, folder)
+    (folder / "summary.txt").write_text(text + "\n", encoding="utf-8")
+    # the inventory (every file's SHA-256) before the report, whose first page states its hash
+    write_inventory(folder, ("report.pdf", "report.pdf.sha256") if report else ())
     if report:
         if progress:
             progress("writing report.pdf")
         write_report(folder, folder / "report.pdf", paper=paper)
-    text = summary_text(result.case, folder)
-    (folder / "summary.txt").write_text(text + "\n", encoding="utf-8")
     return text
 
 
@@ -661,16 +669,18 @@ def load(folder) -> Assessment:
     return Assessment(case, None, res.manifest, tables, records, folder=res.path)
 
 
-def report(folder, out=None, paper: str = "a4") -> Path:
+def report(folder, out=None, paper: str = "a4", accept_edits: bool = False) -> Path:
     """Build ``report.pdf`` (or ``out``) of a saved results folder: :func:`build_report`."""
-    return build_report(folder, out, paper=paper)
+    return build_report(folder, out, paper=paper, accept_edits=accept_edits)
 
 
-def build_report(folder, out=None, paper: str = "a4") -> Path:
+def build_report(folder, out=None, paper: str = "a4", accept_edits: bool = False) -> Path:
     """Build ``report.pdf`` (or ``out``) from a saved results folder alone.
 
     Writing into the results folder takes its lock, so a report is never written while another
-    run replaces that folder (that run is named in the refusal).
+    run replaces that folder (that run is named in the refusal). A table that no longer matches
+    the SHA-256 ``inventory.json`` records is refused (:class:`ReadError`) unless
+    ``accept_edits``; page 1 then names the edited files.
     """
     from .outfolder import OutputFolder
     from .report import write_report
@@ -678,6 +688,14 @@ def build_report(folder, out=None, paper: str = "a4") -> Path:
     folder = Path(folder)
     target = Path(out) if out is not None else folder / "report.pdf"
     if not folder.is_dir() or target.resolve().parent != folder.resolve():
-        return write_report(folder, target, paper=paper)
+        return write_report(folder, target, paper=paper, accept_edits=accept_edits)
     with OutputFolder(folder, replace=True):
-        return write_report(folder, target, paper=paper)
+        return write_report(folder, target, paper=paper, accept_edits=accept_edits)
+
+
+def verify(folder, pdf=None):
+    """Check a results folder against the SHA-256 of its ``inventory.json``, and a PDF against the
+    folder (default: its ``report.pdf``): an :class:`impact.dossier.Verification` (``ok``, ``lines``)."""
+    from .dossier import verify as check
+
+    return check(folder, pdf)

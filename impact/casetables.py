@@ -12,6 +12,7 @@ from .casetypes import (DEFAULT_MIN_ACCEPTANCE, MEASURES, REQUIREMENTS, SAMPLERS
                         CalibrationTable, ChangeLimit, DynamicsTable, MonitoringSeries, Objective, ParameterGroup,
                         Species)
 from .errors import CaseError, ReadError
+from .seriesfile import SeriesFile, read_series_file
 
 
 def read_group(r: Reader, i: int, raw: Any, uncertain: set[str]) -> ParameterGroup:
@@ -91,53 +92,46 @@ def read_dynamics(r: Reader, raw: Any, species: list[str]) -> DynamicsTable | No
     return out
 
 
-def series_from_csv(r: Reader, where: str, name: str) -> tuple[list, list]:
-    """Times and values from a CSV file named in the case (relative to the case file)."""
-    import csv
-
-    path = (Path(r.path).parent / name)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except UnicodeDecodeError:
-        raise CaseError(str(path), "", f"is not UTF-8 text (named by {where}.file)") from None
-    except OSError as exc:
-        raise ReadError(str(path), "", f"cannot read the monitoring file named by {where}.file "
-                                       f"({exc.strerror or exc}); the path is relative to the case file") from None
-    # lines starting with "#" are comments (a source, or a note that the data are invented)
-    rows = [(k, row) for k, row in enumerate(csv.reader(text.splitlines()), start=1)
-            if row and not row[0].lstrip().startswith("#") and any(c.strip() for c in row)]
-    if not rows or [h.strip() for h in rows[0][1]] != list(SERIES_COLUMNS):
-        raise CaseError(str(path), "header", f"the first line (after # comments) must be the columns "
-                                             f"{','.join(SERIES_COLUMNS)}, one row per observation; got "
-                                             f"{','.join(rows[0][1]) if rows else 'nothing'}")
-    times, values = [], []
-    for k, row in rows[1:]:
-        if len(row) != 2:
-            raise CaseError(str(path), f"line {k}", f"must hold 2 cells (time, value), got {len(row)}")
-        for col, cell, out in zip(SERIES_COLUMNS, row, (times, values)):
-            try:
-                x = float(cell)
-            except ValueError:
-                raise CaseError(str(path), f"line {k}.{col}", f"must be a number, got {cell.strip()!r}") from None
-            if not math.isfinite(x):
-                raise CaseError(str(path), f"line {k}.{col}", f"must be finite, got {cell.strip()!r}")
-            out.append(x)
-    return times, values
-
-
-def series_values(r: Reader, t: Table, base: str) -> tuple[list, list, str | None]:
+def series_values(r: Reader, t: Table, base: str) -> tuple[list, list, SeriesFile | None]:
     """Times and values inline (``times``, ``values``) or from ``file``: exactly one of the two."""
     inline = [k for k in ("times", "values") if k in t.data]
     if "file" in t.data:
         if inline:
             r.fail(f"{base}.{inline[0]}", "give the series either inline (times, values) or in a file, not both")
-        name = t.get("file", kind="str")
-        return (*series_from_csv(r, base, name), name)
+        series = read_series_file(r.path, base, t.get("file", kind="str"))
+        return list(series.times), list(series.values), series
     times, values = t.get("times", kind="list"), t.get("values", kind="list")
     for key, lst in (("times", times), ("values", values)):
         if any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x) for x in lst):
             r.fail(f"{base}.{key}", "must be a list of finite numbers")
     return [float(x) for x in times], [float(x) for x in values], None
+
+
+def _check_series(r: Reader, base: str, kind: str, spinup: float, times: list, values: list,
+                  series: SeriesFile | None):
+    """A series' meaning: one value per time, at least two, times increasing within the spin-up,
+    counts whole and >= 0, index values > 0. A series from a file is refused naming the line and column."""
+    def fail(index, column, message):
+        if series is not None and index is not None:
+            series.fail(index, column, message)
+        r.fail(f"{base}.{'file' if series else column + 's'}", message)
+
+    if len(times) != len(values):
+        fail(None, "value", f"{len(times)} times but {len(values)} values; give one value per time")
+    if len(times) < 2:
+        fail(None, "value", "needs at least two observations")
+    for k in range(1, len(times)):
+        if times[k] <= times[k - 1]:
+            fail(k, "time", f"{times[k]:g} does not come after {times[k - 1]:g}; times must be strictly increasing "
+                            "(no repeated or unordered times)")
+    outside = [k for k, x in enumerate(times) if not -spinup <= x <= 0]
+    if outside:
+        fail(outside[0], "time", f"times are counted from today (0, the end of spin-up) and must lie in "
+                                 f"[{-spinup:g}, 0] (case.spinup = {spinup:g}); got {times[0]:g} to {times[-1]:g}")
+    bad = [k for k, v in enumerate(values) if (v < 0 or v != math.floor(v) if kind == "count" else v <= 0)]
+    if bad:
+        fail(bad[0], "value", "counts must be whole numbers >= 0" if kind == "count" else
+             "index values must be > 0 (a lognormal error needs positive values)")
 
 
 def read_monitoring(r: Reader, i: int, raw: Any, names: set[str], spinup: float) -> MonitoringSeries:
@@ -149,22 +143,9 @@ def read_monitoring(r: Reader, i: int, raw: Any, names: set[str], spinup: float)
     t.path = base = f"monitoring.{sp}"
     kind = r.choice(f"{base}.kind", t.get("kind", "count", "str"), tuple(SERIES_KINDS))
     error = r.choice(f"{base}.error", t.get("error", SERIES_KINDS[kind][0], "str"), SERIES_KINDS[kind])
-    times, values, file = series_values(r, t, base)
-    where = f"{base}.{'file' if file else 'values'}"
-    if len(times) != len(values):
-        r.fail(where, f"{len(times)} times but {len(values)} values; give one value per time")
-    if len(times) < 2:
-        r.fail(where, "needs at least two observations")
-    if any(b <= a for a, b in zip(times, times[1:])):
-        r.fail(f"{base}.{'file' if file else 'times'}", "times must be strictly increasing")
-    if times[0] < -spinup or times[-1] > 0:
-        r.fail(f"{base}.{'file' if file else 'times'}",
-               f"times are counted from today (0, the end of spin-up) and must lie in [{-spinup:g}, 0] "
-               f"(case.spinup = {spinup:g}); got {times[0]:g} to {times[-1]:g}")
-    if kind == "count" and any(v < 0 or v != math.floor(v) for v in values):
-        r.fail(where, "counts must be whole numbers >= 0")
-    if kind == "index" and any(v <= 0 for v in values):
-        r.fail(where, "index values must be > 0 (a lognormal error needs positive values)")
+    times, values, series = series_values(r, t, base)
+    _check_series(r, base, kind, spinup, times, values, series)
+    file = series.name if series is not None else None
     detection = t.quantity("detection", 1.0, low=0, low_open=True, high=1) if kind == "count" else 1.0
     scale = t.quantity("scale", 1.0, low=0, low_open=True)
     dispersion = t.quantity("dispersion", low=0, low_open=True) if error == "negative-binomial" else None

@@ -21,7 +21,7 @@ from .pipeline import Execution
 FLAGS = {name: "--" + name.replace("_", "-") for name in (
     "members", "seed", "workers", "processes", "cluster", "chunk_members", "out", "replace_results", "resume", "paper",
     "base_samples", "parameter", "option", "section", "steps", "transient", "window", "sample_dt", "max_period",
-    "period_tol", "tolerance", "failure_limit", "ensemble")}
+    "period_tol", "tolerance", "failure_limit", "ensemble", "accept_edits")}
 FLAGS.update(start="--from", stop="--to")
 
 # exit status of `impact assess` when the results are written but too thin for a verdict
@@ -233,9 +233,23 @@ def _say_replaced(written) -> None:
 def cmd_report(args) -> int:
     from .api import build_report
 
-    out = build_report(args.results, args.out, paper=args.paper)
+    if args.accept_edits:
+        print("WARNING: --accept-edits: the report is built even from tables that differ from what impact wrote; "
+              "page 1 names them", file=sys.stderr)
+    out = build_report(args.results, args.out, paper=args.paper, accept_edits=args.accept_edits)
     print(f"report written to {out}")
     return 0
+
+
+def cmd_verify(args) -> int:
+    from .api import verify
+
+    result = verify(args.results, args.pdf)
+    for line in result.lines:
+        print(line)
+    print("verified: the folder and the PDF are what impact wrote" if result.ok
+          else "NOT VERIFIED: see the differences above")
+    return 0 if result.ok else 1
 
 
 def cmd_scan(args) -> int:
@@ -391,7 +405,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("results", help="results directory written by `impact assess`")
     p.add_argument("--out", default=None, metavar="FILE", help="PDF file (default: RESULTS/report.pdf)")
     p.add_argument("--paper", choices=("a4", "letter"), default="a4", help="paper size (default a4)")
+    p.add_argument(FLAGS["accept_edits"], action="store_true",
+                   help="build the report even when a table differs from the SHA-256 inventory.json records "
+                        "(refused otherwise); page 1 then names the edited files")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("verify", help="check a results folder against the file hashes in its inventory.json, and a "
+                                      "PDF against the folder")
+    p.add_argument("results", help="results folder written by impact")
+    p.add_argument("--pdf", default=None, metavar="FILE",
+                   help="the PDF to check against the folder (default: RESULTS/report.pdf if there); exit status 1 "
+                        "when anything differs")
+    p.set_defaults(func=cmd_verify)
     return ap
 
 

@@ -272,13 +272,18 @@ class DaskCluster(Lifetime):
         self.workers = max(1, sum(int(w.get("nthreads", 1)) for w in info.get("workers", {}).values()))
 
     def map(self, fn: Callable, tasks: Sequence) -> Iterator[tuple[int, object]]:
-        from distributed import as_completed
+        from distributed import KilledWorker, as_completed
 
         futures = [self._client.submit(fn, t, pure=False) for t in tasks]
         index = {f.key: i for i, f in enumerate(futures)}
         try:
             for fut in as_completed(futures, loop=self._client.loop):
-                yield index[fut.key], fut.result()
+                try:
+                    result = fut.result()
+                except KilledWorker:
+                    # the scheduler gave up on a chunk whose workers kept dying (its allowed-failures)
+                    raise WorkerLost(f"the cluster's workers died while computing chunk {index[fut.key]}") from None
+                yield index[fut.key], result
         finally:
             for f in futures:
                 f.release()

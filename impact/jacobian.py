@@ -90,9 +90,12 @@ class WebTangent:
 
         rows = np.ascontiguousarray(self._coef[np.asarray(idx)])
         times = np.zeros(len(y)) if t is None else np.ascontiguousarray(np.broadcast_to(np.asarray(t, float), (len(y),)))
+        y, v = np.ascontiguousarray(y, dtype=float), np.ascontiguousarray(v, dtype=float)
         out, jv = np.empty_like(y), np.empty_like(y)
-        specialised_flow(self._st).batch_jvp(self._st, rows, times, np.ascontiguousarray(y, dtype=float),
-                                             np.ascontiguousarray(v, dtype=float), out, jv)
+        from .engine.boundary import check_kernel_arrays
+
+        check_kernel_arrays("batch_jvp", self._st, coef=rows, y=y, v=v, out=out, jv=jv)  # boundary into compiled code
+        specialised_flow(self._st).batch_jvp(self._st, rows, times, y, v, out, jv)
         return out, jv
 
     def evaluate(self, t, y, v, idx):

@@ -20,6 +20,7 @@ Policy (also in the README):
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import shutil
@@ -38,7 +39,7 @@ INVENTORY = "inventory.json"
 # one of these names is treated as impact's own when replace_results replaces a folder.
 TOOL_FILES = frozenset({
     INVENTORY, "manifest.json", "risk.csv", "effects.csv", "objectives.csv", "comparisons.csv", "bands.csv",
-    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "README.md",
+    "members.csv", "parameters.csv", "priors.csv", "summary.txt", "report.pdf", "report.pdf.sha256", "README.md",
     "sensitivity/drivers.csv", "sensitivity/information.csv",
     "sensitivity/indices.csv", "sensitivity/second_order.csv", "sensitivity/ranking.csv",
     "sensitivity/convergence.csv", "sensitivity/sensitivity.json",
@@ -51,9 +52,12 @@ TOOL_FILES = frozenset({
 })
 
 
-def _files(folder: Path) -> list[str]:
+def list_files(folder: Path) -> list[str]:
     """Relative paths (with ``/``) of every file under ``folder``, sorted."""
     return sorted(p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file() or p.is_symlink())
+
+
+_files = list_files
 
 
 def tool_files(folder: Path) -> set[str]:
@@ -289,6 +293,11 @@ class _Staging:
     def __exit__(self, kind, exc, tb):
         if kind is not None:
             shutil.rmtree(self.tmp, ignore_errors=True)
+            if issubclass(kind, OSError):  # a full disk, a quota, a folder gone read-only while writing
+                raise WriteError(self.folder.path, f"could not write the results ({exc.strerror or exc}); nothing "
+                                                   "was left half-written. Free space and run the same command "
+                                                   "again (an assessment continues from its saved chunks with "
+                                                   "`resume`)") from None
             return False
         # from the final move on the run has succeeded: Ctrl-C and SIGTERM no longer undo it
         ignore_from_now_on()
@@ -306,6 +315,39 @@ def _move(src: Path, dst: Path):
     os.rename(src, dst)
 
 
-def _write_inventory(folder: Path, files: list[str]):
+# The report states the inventory's hash on its first page, so it cannot itself be hashed in the
+# inventory (the two are tied the other way: impact.dossier checks a PDF against its folder).
+UNHASHED = frozenset({INVENTORY, "report.pdf", "report.pdf.sha256"})
+# the SHA-256 of report.pdf, written beside it (``sha256sum -c`` reads it)
+REPORT_HASH = "report.pdf.sha256"
+
+
+def file_sha256(path: Path) -> str:
+    """SHA-256 of a file's bytes, as 64 hexadecimal digits (read in 1 MiB blocks)."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def inventory_record(folder: Path, files) -> dict:
+    """``inventory.json`` of ``folder``: ``tool``, ``files`` (every file, relative, sorted) and ``sha256``
+    (file -> SHA-256 of its bytes, for every file but those in :data:`UNHASHED`)."""
     listed = sorted(set(files) | {INVENTORY})
-    (folder / INVENTORY).write_text(json.dumps({"tool": "impact", "files": listed}, indent=2) + "\n", encoding="utf-8")
+    hashes = {rel: file_sha256(Path(folder) / rel) for rel in listed
+              if rel not in UNHASHED and (Path(folder) / rel).is_file()}
+    return {"tool": "impact", "files": listed, "sha256": hashes}
+
+
+def write_inventory(folder: Path, extra=()) -> None:
+    """Write ``inventory.json`` of the files now in ``folder`` and of ``extra`` files still to come
+    (``report.pdf``, which reads the inventory's hash). Writing it again once they are there gives
+    the same bytes."""
+    folder = Path(folder)
+    (folder / INVENTORY).write_text(json.dumps(inventory_record(folder, set(_files(folder)) | set(extra)), indent=2)
+                                    + "\n", encoding="utf-8")
+
+
+def _write_inventory(folder: Path, files: list[str]):
+    write_inventory(folder, files)

@@ -455,31 +455,69 @@ def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon
 
 ENSEMBLE_FILE = "ensemble.npz"
 ENSEMBLE_ARRAYS = ("draws", "unit", "today")
+# Layout of ensemble.npz: 1 = draws (M,) int, unit (M, D) float in (0, 1), today (M, n_state) float ≥ 0, format ().
+# A file without ``format`` was written before formats were numbered and has layout 1.
+ENSEMBLE_FORMAT = 1
 
 
 def write_ensemble(folder: Path, draws: np.ndarray, unit: np.ndarray, today: np.ndarray) -> None:
     """A posterior ensemble as plain arrays (no pickles): draw numbers (M,), unit rows (M, D), states today (M, n)."""
     buf = __import__("io").BytesIO()
-    np.savez(buf, draws=draws, unit=unit, today=today)
+    np.savez(buf, draws=draws, unit=unit, today=today, format=np.int64(ENSEMBLE_FORMAT))
     Path(folder).mkdir(parents=True, exist_ok=True)
     write_file_atomic(Path(folder) / ENSEMBLE_FILE, buf.getvalue())
 
 
-def read_ensemble(folder: Path) -> dict[str, np.ndarray]:
-    """Read ``ensemble.npz`` of a folder written by ``impact calibrate``, refusing a damaged one."""
+def read_ensemble(folder: Path, parameters: int | None = None, state: int | None = None) -> dict[str, np.ndarray]:
+    """Read ``ensemble.npz`` of a folder written by ``impact calibrate``, refusing a damaged one.
+
+    Parameters
+    ----------
+    parameters, state : int, optional
+        The case's uncertain parameters D and state columns n: ``unit`` must be (M, D) and
+        ``today`` (M, n) (the compiled engine trusts the state's width).
+
+    Raises
+    ------
+    ReadError
+        Naming the file, the array and the reason: not a zip archive of arrays (truncated or
+        overwritten), another format, an array missing, of another dtype or shape, or values
+        outside their range.
+    """
+    import zipfile
+    import zlib
+
     path = Path(folder) / ENSEMBLE_FILE
     try:
         with np.load(path, allow_pickle=False) as z:
+            fmt = int(z["format"]) if "format" in z.files else 1
+            if fmt != ENSEMBLE_FORMAT:
+                raise ReadError(str(path), "format", f"is ensemble format {fmt}; this impact reads format "
+                                                     f"{ENSEMBLE_FORMAT}: calibrate the case again with this version")
             arrays = {k: z[k] for k in ENSEMBLE_ARRAYS}
     except FileNotFoundError:
         raise ReadError(str(folder), ENSEMBLE_FILE, "not found; point at a folder written by `impact calibrate`") from None
+    except IsADirectoryError:
+        raise ReadError(str(path), "", "is a folder, not an ensemble file") from None
     except KeyError as exc:
-        raise ReadError(str(path), str(exc), "array missing; the ensemble folder is damaged") from None
-    except (ValueError, OSError, EOFError) as exc:
-        raise ReadError(str(path), "", f"cannot be read as an ensemble ({exc})") from None
-    M = arrays["draws"].shape[0]
-    if arrays["unit"].ndim != 2 or arrays["today"].ndim != 2 or any(a.shape[0] != M for a in arrays.values()):
-        raise ReadError(str(path), "", "arrays of inconsistent shapes; the ensemble folder is damaged")
-    if not np.isfinite(arrays["unit"]).all() or ((arrays["unit"] <= 0) | (arrays["unit"] >= 1)).any():
+        raise ReadError(str(path), str(exc).strip("'\""), "array missing; the ensemble folder is damaged") from None
+    except (ValueError, OSError, EOFError, TypeError, zipfile.BadZipFile, zlib.error) as exc:
+        raise ReadError(str(path), "", f"is not a readable ensemble (truncated or damaged: {exc})") from None
+    draws, unit, today = arrays["draws"], arrays["unit"], arrays["today"]
+    if draws.ndim != 1 or draws.dtype.kind not in "iu" or (draws < 0).any():
+        raise ReadError(str(path), "draws", "must be draw numbers (whole numbers ≥ 0, one per member); the ensemble "
+                                            "folder is damaged")
+    M = draws.shape[0]
+    for name, a, width in (("unit", unit, parameters), ("today", today, state)):
+        if a.dtype != np.float64 or a.ndim != 2 or a.shape[0] != M:
+            raise ReadError(str(path), name, f"must be float64 of shape ({M}, {width or 'columns'}) for {M} members, "
+                                             f"got {a.dtype} {a.shape}; the ensemble folder is damaged")
+        if width is not None and a.shape[1] != width:
+            what = "uncertain parameters" if name == "unit" else "state columns (species and carrion)"
+            raise ReadError(str(path), name, f"has {a.shape[1]} columns, but the case has {width} {what}: the "
+                                             "ensemble was written for another case")
+    if not np.isfinite(unit).all() or ((unit <= 0) | (unit >= 1)).any():
         raise ReadError(str(path), "unit", "values outside (0, 1); the ensemble folder is damaged")
-    return arrays
+    if not np.isfinite(today).all() or (today < 0).any():
+        raise ReadError(str(path), "today", "holds negative or non-finite states; the ensemble folder is damaged")
+    return {k: np.ascontiguousarray(v) for k, v in arrays.items()}

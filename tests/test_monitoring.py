@@ -83,8 +83,8 @@ def test_a_detection_prior_reaching_above_one_is_refused(tmp_path):
 
 
 @pytest.mark.parametrize("content,field,words", [
-    ("when,count\n-8,90\n", "header", "time,value"),
-    ("time,value\n-8,90\n-6,lots\n", "line 3.value", "must be a number"),
+    ("when,count\n-8,90\n", "line 1, column 1", "time,value"),
+    ("time,value\n-8,90\n-6,lots\n", "line 3, column value", "must be a number"),
     ("time,value\n-8,90,1\n", "line 2", "2 cells"),
 ])
 def test_a_bad_csv_names_the_csv_file_and_line(tmp_path, content, field, words):

@@ -29,6 +29,7 @@ import sys
 
 import numpy as np
 
+from .boundary import check_kernel_arrays
 from .control import MIN_STEP_ULPS
 from .kernel import (A, B, C, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
                      chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq,
@@ -436,6 +437,7 @@ def tangent_flow(module, st, coef, y0, *, t0, transient, window, hmax, section, 
                "high": np.full((k, n), -np.inf), "acc": np.zeros((k, n)), "reason": np.zeros(k, np.int8),
                "nsteps": np.zeros(k, np.int64)}
         vals, count = np.empty((k, capacity)), np.zeros(k, np.int64)
+        check_kernel_arrays("flow_batch", st, coef=coef[rows], y0=y0[rows], section=section[rows], rtol=tol[0], atol=tol[1], y_out=res["final"], lg=res["lg"], low=res["low"], high=res["high"], acc=res["acc"], sec_vals=vals, sec_count=count, reason=res["reason"], nsteps=res["nsteps"])  # noqa: E501  (boundary into compiled code)
         res["nfev"] = module.flow_batch(st, coef[rows], y0[rows], *times, section[rows], *tol, res["final"],
                                         res["lg"], res["low"], res["high"], res["acc"], vals, count, res["reason"],
                                         res["nsteps"])

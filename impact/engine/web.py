@@ -20,6 +20,7 @@ from ..integrate import SegmentResult, integrate_segment
 from ..model import (Controls, FoodWeb, SegmentCoefficients, WebParams, WebRHS, pack_coefficients,
                      segment_coefficients)
 from ..terms import pack_structure
+from .boundary import check_kernel_arrays
 from .control import MIN_RTOL, Failure
 
 __all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
@@ -127,6 +128,7 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         coef = pack_coefficients(segment_coefficients(web, p, c), members)
     elif coef.shape[0] != m:
         raise ValueError(f"coef has {coef.shape[0]} rows for {m} members")
+    check_kernel_arrays("segment", st, coef=coef, y0=y0, h0=h, rtol=rtol, atol=atol, y_out=y_out, ymin=ymin, ymax=ymax, h_out=h_out, reason=reason, nsteps=nsteps)  # noqa: E501  (boundary into compiled code)
     nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
@@ -212,10 +214,13 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     h = np.full(M, np.nan) if h0 is None else np.array(np.broadcast_to(np.asarray(h0, float), (M,)))
     h_out = np.full(M, np.nan)
     st = pack_structure(web)
+    coef, times, slot_of = (np.ascontiguousarray(coef, dtype=float), np.ascontiguousarray(times, dtype=float),
+                            np.ascontiguousarray(slot_of, dtype=np.int64))
+    check_kernel_arrays("run_members", st, times=times, coef=coef, y0=y0, h0=h, jump_start=jumps.start, jump_kind=jumps.kind, jump_species=jumps.species, jump_yield=jumps.carrion_yield, jump_value=jumps.value, jump_aux=jumps.fails, rtol=rtol, atol=atol, slot_of=slot_of, states=states, cummin=cummin, cummax=cummax, reason=reason, h_out=h_out)  # noqa: E501  (boundary into compiled code)
     nfev = compiled_kernel(st, engine).run_members(
-        st, np.ascontiguousarray(coef, dtype=float), np.asarray(times, float), y0, h, jumps.start, jumps.kind,
+        st, coef, times, y0, h, jumps.start, jumps.kind,
         jumps.species, jumps.carrion_yield, jumps.value, jumps.fails, rtol, atol, int(max_steps), float(blowup),
-        np.asarray(slot_of, np.int64), states, cummin, cummax, reason, h_out)
+        slot_of, states, cummin, cummax, reason, h_out)
     return RunResult(states, cummin, cummax, reason, h_out, int(nfev))
 
 

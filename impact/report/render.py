@@ -2,14 +2,17 @@
 
 from __future__ import annotations
 
+import hashlib
 import re
 from importlib import resources
 from pathlib import Path
 
 from ..calibfigure import calibration_context
 from ..cautions import cautions
-from ..errors import InstallationError, SettingError, WriteError
+from ..dossier import EDITED_MARK, PDF_MARK, check_folder
+from ..errors import InstallationError, ReadError, SettingError, WriteError
 from ..formatting import fmt_num, fmt_prob
+from ..outfolder import INVENTORY, REPORT_HASH
 from ..results import Results, load_results, write_file_atomic
 from ..bottomline import STATUS_WORDS, run_label
 from ..verdict import horizon_rule_text, reading, thin_run
@@ -146,8 +149,12 @@ def keep_together(html: str) -> str:
     return head + sep + _TEXT.sub(keep, body)
 
 
-def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
-    """The filled template and the assets it links to."""
+def report_html(res: Results, paper: str = "a4", dossier: dict | None = None) -> tuple[str, Assets]:
+    """The filled template and the assets it links to.
+
+    ``dossier``: ``inventory_sha256`` (the hash page 1 states; None for a folder without an
+    inventory) and ``edited`` (files that differ from their recorded hashes, see :func:`write_report`).
+    """
     import jinja2
 
     if paper not in PAPERS:
@@ -157,19 +164,39 @@ def report_html(res: Results, paper: str = "a4") -> tuple[str, Assets]:
     env = jinja2.Environment(loader=jinja2.FunctionLoader(lambda n: root.joinpath(n).read_text(encoding="utf-8")),
                              autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
     ctx = report_context(res, assets)
+    ctx["dossier"] = {"inventory_sha256": None, "edited": [], **(dossier or {}), "mark": PDF_MARK,
+                      "edited_mark": EDITED_MARK}
     html = env.get_template("report.html").render(**ctx, paper=PAPERS[paper], asset=ASSET_SCHEME)
     return keep_together(html), assets
 
 
-def write_report(results_dir, out=None, paper: str = "a4") -> Path:
-    """Build the PDF from a saved results directory; written to a temporary name, then renamed."""
-    res = load_results(results_dir)
+def write_report(results_dir, out=None, paper: str = "a4", accept_edits: bool = False) -> Path:
+    """Build the PDF from a saved results directory; written to a temporary name, then renamed.
+
+    The folder is first checked against its ``inventory.json``: a file changed, missing or added
+    since the run is refused (:class:`ReadError` naming it) unless ``accept_edits``, and then page 1
+    says which files differ. Page 1 states the SHA-256 of the inventory either way.
+    """
+    res = load_results(results_dir)  # a damaged folder is named for what is damaged (file, column) first
+    check = check_folder(results_dir)
+    edited = check.differences()
+    if edited and not accept_edits:
+        first = (check.changed + check.missing + check.added)[0]
+        raise ReadError(str(Path(results_dir) / first), "",
+                        f"differs from what impact wrote ({len(edited)} file(s): {'; '.join(edited)}); no report was "
+                        "built. Rerun the assessment, or set `accept_edits` to build a report that says so on page 1")
     out = Path(out) if out is not None else Path(results_dir) / "report.pdf"
-    html, assets = report_html(res, paper)
+    html, assets = report_html(res, paper, dict(inventory_sha256=check.inventory_sha256,
+                                                # (names as CSS text on page 1: nothing that could end the string)
+                                                edited=[re.sub(r"[^\w./-]", "?", rel)
+                                                        for rel in check.changed + check.missing + check.added]))
     pdf, _ = render_pdf(html, assets)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
         write_file_atomic(out, pdf)  # mode from the umask, like the tables beside it
+        if out.name == "report.pdf" and (out.parent / INVENTORY).is_file():
+            # the report's own hash beside it: the inventory cannot hold it (the report states the inventory's)
+            write_file_atomic(out.parent / REPORT_HASH, f"{hashlib.sha256(pdf).hexdigest()}  report.pdf\n".encode())
     except OSError as exc:
         raise WriteError(exc.filename or out, f"cannot write the report ({exc.strerror or exc})") from None
     return out
