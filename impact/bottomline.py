@@ -174,7 +174,8 @@ def bottom_line_text(b: BottomLine | None) -> str:
         return "bottom line: the case declares no objectives, so no option is judged against one."
     lines = ["bottom line (the same as the top of page 1):"]
     for run, cells in b.rows:
-        lines.append(f"  {run_label(run)}:")
-        lines += [f"    “{c.objective}”: {x.text}" for c, x in zip(b.columns, cells) if x.status]
+        judged = [f"    “{c.objective}”: {x.text}" for c, x in zip(b.columns, cells) if x.status]
+        if judged:  # doing nothing is not judged against a limit on its own change
+            lines += [f"  {run_label(run)}:", *judged]
     lines += [f"  {s}" for s in b.sentences]
     return "\n".join(lines)
