@@ -297,6 +297,10 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
         tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
         if case.objectives:
             tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+            if case.studies:
+                from .studies import studies_table
+
+                tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
         stages.append("sensitivity")
     if len(case.uncertain) < 2:
         return stages, {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}

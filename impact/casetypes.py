@@ -317,6 +317,8 @@ class Case:
     change_limits: "tuple[ChangeLimit, ...]" = ()
     calibration: "CalibrationTable | None" = None
     seasons: Seasons | None = None
+    studies: tuple = ()  # candidate studies (impact.casestudies.Study)
+    outcome_values: object = None  # impact.casestudies.OutcomeValues or None
 
     @property
     def species_names(self) -> tuple[str, ...]:
