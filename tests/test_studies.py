@@ -94,3 +94,99 @@ def test_worth_cost_words():
     assert worth_cost(-1.0, -0.5) == "no"
     assert worth_cost(-1.0, 2.0) == "undetermined"
     assert worth_cost(np.nan, np.nan) == "no value scale"
+
+
+# --- the case file's [[studies]] and [outcome_values] -----------------------------------------------
+
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+
+from casefiles import mesopredator_case, write_case  # noqa: E402
+from impact.case import load_case  # noqa: E402
+from impact.errors import CaseError  # noqa: E402
+
+GOOD_STUDY = {"name": "diet", "measures": "parameter", "parameter": "meso_attack", "error": "lognormal", "samples": 20,
+              "log_sd": 0.3, "cost": 500, "cost_unit": "dollars"}
+
+
+def _with(**changes) -> dict:
+    d = mesopredator_case()
+    d["studies"] = [{**GOOD_STUDY, **changes}]
+    return {k: v for k, v in d.items()}
+
+
+def test_a_declared_study_is_read(tmp_path):
+    d = _with()
+    d["studies"].append({"name": "birds", "measures": "species", "species": "bird", "error": "negative-binomial",
+                         "samples": 5, "dispersion": 10, "detection": 0.5, "cost": 100, "cost_unit": "dollars"})
+    d["outcome_values"] = {"unit": "dollars", "objectives": {"bird spared": 1e5}}
+    case = load_case(write_case(tmp_path, d))
+    s, b = case.studies
+    assert (s.measures, s.parameters, s.error, s.samples, s.log_sd, s.cost) == ("parameter", ("meso_attack",),
+                                                                              "lognormal", 20, 0.3, 500.0)
+    assert (b.target, b.parameters, b.dispersion, b.detection) == ("bird", (), 10.0, 0.5)
+    assert case.outcome_values.of("bird spared") == 1e5
+
+
+@pytest.mark.parametrize("changes, field, words", [
+    (dict(measures="survey"), "studies.diet.measures", "choose one of: species, parameter, group"),
+    (dict(parameter="nope"), "studies.diet.parameter", "not an uncertain parameter"),
+    (dict(error="normal"), "studies.diet.error", "poisson, negative-binomial, lognormal"),
+    (dict(samples=0), "studies.diet.samples", ">= 1"),
+    (dict(cost=-1), "studies.diet.cost", ">= 0"),
+    (dict(log_sd=None), "studies.diet.log_sd", "required"),
+    (dict(dispersion=3), "studies.diet.dispersion", "unknown key"),
+    (dict(measures="group", group="nope"), "studies.diet.group", "not a declared parameter group"),
+])
+def test_bad_study_names_file_and_field(tmp_path, changes, field, words):
+    d = _with(**{k: v for k, v in changes.items() if v is not None})
+    if "log_sd" in changes and changes["log_sd"] is None:
+        del d["studies"][0]["log_sd"]
+    f = write_case(tmp_path, d)
+    with pytest.raises(CaseError) as err:
+        load_case(f)
+    assert err.value.file == str(f) and err.value.field == field and words in err.value.message
+
+
+def test_bad_outcome_values_name_the_field(tmp_path):
+    d = _with()
+    d["outcome_values"] = {"unit": "dollars", "objectives": {"no such objective": 1.0}}
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, d))
+    assert err.value.field == "outcome_values.objectives.no such objective"
+    d["outcome_values"] = {"unit": "euros", "objectives": {"bird spared": 1.0}}
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, d))
+    assert err.value.field == "studies.diet.cost_unit" and "no conversion" in err.value.message
+
+
+def test_bad_study_exits_2_and_writes_nothing(tmp_path):
+    f = write_case(tmp_path, _with(samples=2.5))
+    out = tmp_path / "results"
+    proc = subprocess.run([sys.executable, "-m", "impact.cli", "assess", str(f), "--out", str(out)],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr
+    assert str(f) in proc.stderr and "studies.diet.samples" in proc.stderr
+    assert list(tmp_path.iterdir()) == [f]
+
+
+def test_assessment_writes_the_studies_table(tmp_path):
+    from impact.api import assess
+    from impact.studies import STUDY_COLUMNS, VALUED_TOGETHER
+
+    d = _with()
+    d["studies"].append({"name": "birds", "measures": "species", "species": "bird", "error": "poisson",
+                         "samples": 5, "cost": 100, "cost_unit": "dollars"})
+    d["outcome_values"] = {"unit": "dollars", "objectives": {"bird spared": 1e4}}
+    res = assess(load_case(write_case(tmp_path, d)), members=150, dynamics=False, base_samples=16)
+    t = res.tables["sensitivity/studies.csv"]
+    assert tuple(t.columns) == STUDY_COLUMNS
+    assert set(t.objective) == {"bird spared", VALUED_TOGETHER} and set(t.study) == {"diet", "birds"}
+    assert (t.evsi <= t.ceiling + 1e-12).all() and (t.low >= 0).all()
+    info = res.tables["sensitivity/information.csv"]
+    # the ceiling of a one-parameter study is the EVPPI printed in information.csv (the same resamples)
+    row = t[(t.study == "diet") & (t.objective == "bird spared")].iloc[0]
+    evppi = info[(info.objective == "bird spared") & (info.parameter == "meso_attack")].iloc[0]
+    assert row.ceiling == pytest.approx(evppi.value) and row.ceiling_low == pytest.approx(evppi.low)
+    valued = t[t.objective == VALUED_TOGETHER]
+    assert np.allclose(valued.enbs, valued.evsi - valued.cost)
