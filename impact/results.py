@@ -356,6 +356,7 @@ TEXT_COLUMNS = {
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
     "informed", "intervention", "pressed", "press", "predicted",
+    "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost",
 }
 
 @dataclass

@@ -309,3 +309,75 @@ def press_context(res: Results) -> dict | None:
     return dict(groups=groups, members=members, level=level, unstable=det is not None and det <= 0,
                 unresolved=[f"{a} from {b}" for a, b in rec.get("unresolved", [])],
                 nodes=", ".join(rec.get("nodes", [])))
+
+
+# the value of the valued objectives together (impact.studies.VALUED_TOGETHER; a report reads tables only)
+VALUED_TOGETHER = "valued objectives together"
+WORTH_WORDS = {"yes": "worth its cost", "no": "not worth its cost",
+               "undetermined": "undetermined: the interval of its net benefit reaches both sides of 0",
+               "no value scale": "not valued (no value of outcomes declared)"}
+
+
+def _money(v, unit: str) -> str:
+    return f"{fmt_num(_clean(v))} {unit}"
+
+
+def _evsi_points(r) -> str:
+    return f"{fmt_points(_clean(r.evsi))} [{fmt_bare_points(_clean(r.low))}, {fmt_bare_points(_clean(r.high))}]"
+
+
+def _study_verdict(r) -> str:
+    if not _detected(r):
+        return "its value is not distinguishable from none: " + WORTH_WORDS["no" if r.worth_cost == "no" else r.worth_cost]
+    return WORTH_WORDS[r.worth_cost]
+
+
+def studies_context(res: Results) -> dict | None:
+    """The "Which study to fund" section: each candidate study's EVSI, cost and whether it is worth it.
+
+    Reads ``sensitivity/studies.csv`` only; None when the case declared no study (or the stage did not run).
+    """
+    t = (res.sensitivity or {}).get("studies")
+    if t is None or t.empty:
+        return None
+    valued = t[t.objective == VALUED_TOGETHER].sort_values("enbs", ascending=False, kind="stable")
+    per = t[t.objective != VALUED_TOGETHER]
+    objectives = list(dict.fromkeys(per.objective))
+    ranked = list(valued.study) if len(valued) else list(dict.fromkeys(t.study))
+    rows = []
+    for name in ranked:
+        s = per[per.study == name]
+        first = s.iloc[0]
+        cells = [(_evsi_points(r) if _detected(r) else f"not distinguishable from none ({_evsi_points(r)})")
+                 for r in (s[s.objective == o].iloc[0] for o in objectives)]
+        row = dict(study=name, measures=f"{first.measures} {first.target}, {int(first.samples)} samples ({first.error})",
+                   cost=_money(first.cost, first.cost_unit), cells=cells)
+        if len(valued):
+            v = valued[valued.study == name].iloc[0]
+            row.update(evsi=f"{_money(v.evsi, v.unit)} [{fmt_num(_clean(v.low))}, {fmt_num(_clean(v.high))}]",
+                       ceiling=_money(v.ceiling, v.unit),
+                       enbs=f"{_money(v.enbs, v.unit)} [{fmt_num(v.enbs_low)}, {fmt_num(v.enbs_high)}]",
+                       verdict=_study_verdict(v))
+        rows.append(row)
+    sentence = _studies_sentence(valued, per)
+    return dict(rows=rows, objectives=objectives, valued=bool(len(valued)), sentence=sentence,
+                n=int(t.n.min()), unit=str(valued.unit.iloc[0]) if len(valued) else "")
+
+
+def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
+    """Which study is worth its cost, which is not, and which has no value distinguishable from none."""
+    if len(valued):
+        worth = [f"“{r.study}”" for r in valued.itertuples() if r.worth_cost == "yes"]
+        flat = [f"“{r.study}”" for r in valued.itertuples() if not _detected(r)]
+        out = ("Worth its cost, at the lower limit of its expected net benefit: " + ", ".join(worth) + "."
+               if worth else "No candidate study is shown to be worth its cost on these members.")
+        if flat:
+            out += (" No value distinguishable from none for the valued objectives together: " + ", ".join(flat)
+                    + "; on these members their data are not shown to change the choice.")
+        return out
+    flat = [f"“{s}”" for s, g in per.groupby("study", sort=False) if not any(_detected(r) for r in g.itertuples())]
+    out = ("The case declares no value of its outcomes in money or a common unit, so each study's value (in points of "
+           "the chance of a good outcome) and its cost stand side by side; no study is called worth its cost.")
+    if flat:
+        out += " No value distinguishable from none under any objective: " + ", ".join(flat) + "."
+    return out
