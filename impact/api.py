@@ -301,6 +301,10 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
                 from .studies import studies_table
 
                 tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
+            if case.weighing is not None:
+                from .weighing import weighing_table
+
+                tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
         stages.append("sensitivity")
     if len(case.uncertain) < 2:
         return stages, {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}

@@ -14,7 +14,7 @@ from pathlib import Path
 
 from .casereader import (Reader, Table, check_references, read_carrion, read_intervention, read_interactions, read_meta,
                          read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
-from .casestudies import read_outcome_values, read_study
+from .casestudies import read_outcome_values, read_study, read_weighing
 from .casetables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
                          read_objective)
 from .casetypes import (ARRIVAL_KINDS, CARRION, CalibrationTable, Carrion, Case, ChangeLimit, Competition,
@@ -109,6 +109,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     studies = tuple(read_study(r, i, raw, species, uncertain, groups) for i, raw in enumerate(top.get("studies", [], "list")))
     unique(r, studies, "name", "studies")
     outcome_values = read_outcome_values(r, top.get("outcome_values", None, "any"), {o.name for o in objectives}, studies)
+    weighing = read_weighing(r, top.get("weighing", None, "any"), {o.name for o in options}, {o.name for o in objectives})
     top.done()
     check_references(r, parameters)
     return Case(
@@ -116,5 +117,5 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         competition=tuple(competition), mutualism=tuple(mutualism), carrion=carrion, observed=observed,
         interventions=interventions, options=options, risk=risk, objectives=objectives, groups=groups,
         dynamics=dynamics, seasons=seasons, monitoring=monitoring, change_limits=limits, calibration=calibration,
-        studies=studies, outcome_values=outcome_values,
+        studies=studies, outcome_values=outcome_values, weighing=weighing,
     )

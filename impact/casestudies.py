@@ -144,3 +144,83 @@ def read_outcome_values(r: Reader, raw: Any, objectives: set[str], studies: tupl
             r.fail(f"studies.{s.name}.cost_unit", f"{s.cost_unit!r} differs from outcome_values.unit {unit!r}; "
                                                   "costs and values must be in one unit (no conversion is made)")
     return OutcomeValues(unit, tuple(values), source)
+
+
+@dataclass(frozen=True)
+class Weighing:
+    """Option costs and swing weights on the objectives (``[weighing]``).
+
+    Attributes
+    ----------
+    option_costs : tuple of (option, cost)
+        Every option's cost in ``cost_unit`` (doing nothing costs 0).
+    weights : tuple of (objective, low, high)
+        Each objective's weight as a share of the whole (weights sum to 1): ``low == high`` for a declared
+        weight, a range for an uncertain one, (0, 1) for ``"unknown"``. Objectives not named weigh 0.
+    """
+
+    cost_unit: str
+    option_costs: tuple[tuple[str, float], ...]
+    weights: tuple[tuple[str, float, float], ...]
+    source: str = ""
+
+    @property
+    def uncertain(self) -> bool:
+        return any(lo < hi for _, lo, hi in self.weights)
+
+
+def _weight(r: Reader, f: str, v: Any) -> tuple[float, float]:
+    if v == "unknown":
+        return 0.0, 1.0
+    if isinstance(v, list):
+        if len(v) != 2:
+            r.fail(f, "a range of weights is a list of two numbers [low, high]")
+        lo, hi = (r.check_type(f, x, "number") for x in v)
+        if not 0 <= lo <= hi <= 1:
+            r.fail(f, f"a range [low, high] needs 0 <= low <= high <= 1, got [{lo:g}, {hi:g}]")
+        return lo, hi
+    if isinstance(v, str):
+        r.fail(f, f"must be a number in [0, 1], a range [low, high] or \"unknown\", got {v!r}")
+    w = r.check_type(f, v, "number")
+    r.check_range(f, w, 0, 1, False)
+    return w, w
+
+
+def read_weighing(r: Reader, raw: Any, options: set[str], objectives: set[str]) -> Weighing | None:
+    """``[weighing]``: ``cost_unit``, ``option_costs = {option = cost}``, ``weights = {objective = w, [lo, hi]
+    or "unknown"}`` (shares of the whole; absent: None)."""
+    if raw is None:
+        return None
+    t = Table(r, raw, "weighing")
+    unit = t.get("cost_unit", DEFAULT_COST_UNIT, "str")
+    costs = t.get("option_costs", {}, "any")
+    if not isinstance(costs, dict):
+        r.fail("weighing.option_costs", "must be a table {option name = cost}")
+    for k in costs:
+        if k not in options:
+            r.fail(f"weighing.option_costs.{k}", f"unknown option {k!r}; declared options: {', '.join(sorted(options))}")
+    if costs and set(costs) != options:
+        missing = sorted(options - set(costs))
+        r.fail("weighing.option_costs", f"give every option a cost (missing: {', '.join(missing)})")
+    option_costs = []
+    for k, v in costs.items():
+        v = r.check_type(f"weighing.option_costs.{k}", v, "number")
+        r.check_range(f"weighing.option_costs.{k}", v, 0, None, False)
+        option_costs.append((k, float(v)))
+    raw_w = t.get("weights", {}, "any")
+    if not isinstance(raw_w, dict):
+        r.fail("weighing.weights", "must be a table {objective name = weight, [low, high] or \"unknown\"}")
+    weights = []
+    for k, v in raw_w.items():
+        if k not in objectives:
+            r.fail(f"weighing.weights.{k}", f"unknown objective {k!r}; declared objectives: "
+                                           f"{', '.join(sorted(objectives)) or 'none'}")
+        weights.append((k, *_weight(r, f"weighing.weights.{k}", v)))
+    if weights and not (sum(w[1] for w in weights) <= 1 + 1e-9 <= sum(w[2] for w in weights) + 2e-9):
+        r.fail("weighing.weights", f"weights are shares of the whole and must be able to sum to 1: the lows sum to "
+                                   f"{sum(w[1] for w in weights):g}, the highs to {sum(w[2] for w in weights):g}")
+    source = t.get("source", "", "str")
+    t.done()
+    if not option_costs and not weights:
+        r.fail("weighing", "declare option_costs, weights, or both")
+    return Weighing(unit, tuple(option_costs), tuple(weights), source)

@@ -88,6 +88,17 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "enbs_low": "its lower limit", "enbs_high": "its upper limit",
         "worth_cost": "yes (enbs_low > 0), no (enbs_high < 0), undetermined, or no value scale",
         "interval": _CI, "level": _LEVEL, "n": _N, "unit": "unit of evsi"}),
+    "sensitivity/weighing.csv": ("Options' costs and weighed objectives (case file [weighing]), one statistic a row.", {
+        "option": "doing nothing (baseline) or an option (blank for a weight)",
+        "objective": "objective, \"weighted objectives\", or blank for a cost",
+        "statistic": "cost; chance (of a good outcome); cost_per_point (cost per percentage point gained over doing "
+        "nothing); weight or central_weight (the declared share, or the centre of the feasible shares); weighted_value "
+        "(Σ weight × swing value, 0 worst .. 1 best choice per objective); expected_gain (weighted chance gained over "
+        "doing nothing: benefit × chance of success); efficiency (expected_gain ÷ cost, Joseph et al. 2009); "
+        "efficiency_rank (1 = most cost-effective); acceptability (SMAA share of feasible weights ranking the choice "
+        "first, Lahdelma et al. 1998); central_weight_if_first (mean weight among those)",
+        "value": "the statistic's value", "mc_se": "Monte Carlo standard error (acceptability only)",
+        "unit": "unit of value", "n": _N}),
     "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
         "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",
         "S1": "first-order index", "S1_conf": "its half-width", "ST": "total-order index", "ST_conf":

@@ -172,6 +172,8 @@ TABLES = {
                                  "level", "n", "unit"),
                                 ("samples", "evsi", "low", "high", "ceiling", "ceiling_low", "ceiling_high", "cost",
                                  "value_scale", "enbs", "enbs_low", "enbs_high", "level", "n")),
+    "sensitivity/weighing.csv": (("option", "objective", "statistic", "value", "mc_se", "unit", "n"),
+                                 ("value", "mc_se", "n")),
     "bands.csv": (("option", "species", "time", "q05", "q25", "q50", "q75", "q95"),
                   ("time", "q05", "q25", "q50", "q75", "q95")),
     "priors.csv": (("name", "distribution", "arguments", "unit", "source", "description"), ()),

@@ -178,6 +178,8 @@ def test_assessment_writes_the_studies_table(tmp_path):
     d["studies"].append({"name": "birds", "measures": "species", "species": "bird", "error": "poisson",
                          "samples": 5, "cost": 100, "cost_unit": "dollars"})
     d["outcome_values"] = {"unit": "dollars", "objectives": {"bird spared": 1e4}}
+    d["weighing"] = {"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": 30},
+                     "weights": {"bird spared": "unknown"}}
     res = assess(load_case(write_case(tmp_path, d)), members=150, dynamics=False, base_samples=16)
     t = res.tables["sensitivity/studies.csv"]
     assert tuple(t.columns) == STUDY_COLUMNS
@@ -190,3 +192,10 @@ def test_assessment_writes_the_studies_table(tmp_path):
     assert row.ceiling == pytest.approx(evppi.value) and row.ceiling_low == pytest.approx(evppi.low)
     valued = t[t.objective == VALUED_TOGETHER]
     assert np.allclose(valued.enbs, valued.evsi - valued.cost)
+    # the weighing table: with one objective weighing everything, efficiency is the gain in its chance per cost
+    w = res.tables["sensitivity/weighing.csv"].set_index(["option", "statistic"])
+    chance = {o: w.loc[(o, "chance"), "value"] for o in ("baseline", "apex only", "apex and meso")}
+    assert w.loc[("apex only", "efficiency"), "value"] == pytest.approx((chance["apex only"] - chance["baseline"]) / 10)
+    assert w.loc[("apex and meso", "cost"), "value"] == 30
+    acc = w.xs("acceptability", level="statistic")
+    assert acc.value.sum() == pytest.approx(1.0) and (acc.mc_se >= 0).all()

@@ -381,3 +381,49 @@ def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
     if flat:
         out += " No value distinguishable from none under any objective: " + ", ".join(flat) + "."
     return out
+
+
+def _label(c: str) -> str:
+    return "doing nothing" if c == "baseline" else f"“{c}”"
+
+
+def weighing_context(res: Results) -> dict | None:
+    """The weighed comparison: each choice's cost, weighted value, cost-effectiveness and SMAA acceptability.
+
+    Reads ``sensitivity/weighing.csv`` only; None when the case declared no ``[weighing]``.
+    """
+    t = (res.sensitivity or {}).get("weighing")
+    if t is None or t.empty:
+        return None
+    stat = {(r.option, r.statistic): r for r in t.itertuples() if r.objective in ("", "weighted objectives")
+            or r.statistic == "cost"}
+    choices = list(dict.fromkeys(t[t.statistic == "chance"].option))
+    weights = t[t.statistic.isin(["weight", "central_weight"])]
+    uncertain = bool((t.statistic == "acceptability").any())
+    rows = []
+    for c in choices:
+        g = lambda s: stat.get((c, s))  # noqa: E731
+        cost, val, gain, eff, rank, acc = (g(s) for s in ("cost", "weighted_value", "expected_gain", "efficiency",
+                                                          "efficiency_rank", "acceptability"))
+        rows.append(dict(choice=_label(c), cost=f"{fmt_num(cost.value)} {cost.unit}" if cost is not None else "—",
+                         value=fmt_index(val.value) if val is not None else "—",
+                         gain=fmt_points(gain.value) if gain is not None else "—",
+                         efficiency=(f"{int(rank.value)}" if rank is not None else "—"),
+                         acceptability=(f"{fmt_prob(acc.value)} ± {fmt_bare_prob(acc.mc_se)}" if acc is not None else "—")))
+    lines = []
+    if len(weights):
+        kind = "central weights of the feasible set" if uncertain else "declared weights"
+        lines.append(f"Weights ({kind}): " + "; ".join(f"“{r.objective}” {fmt_index(r.value)}" for r in weights.itertuples())
+                     + ".")
+        vals = [(stat[(c, "weighted_value")].value, c) for c in choices if (c, "weighted_value") in stat]
+        best = max(vals)[1]
+        lines.append(f"With these weights {_label(best)} has the highest weighted value.")
+    if uncertain:
+        acc = sorted(((stat[(c, "acceptability")].value, c) for c in choices), reverse=True)
+        lines.append("Over every weighting the case allows (SMAA), " + "; ".join(
+            f"{_label(c)} ranks first for {fmt_prob(a)} of them" for a, c in acc) + ".")
+    ranked = sorted((stat[(c, "efficiency_rank")].value, c) for c in choices if (c, "efficiency_rank") in stat)
+    if ranked:
+        lines.append(f"Most cost-effective option (weighted chance gained over doing nothing per unit of cost): "
+                     f"{_label(ranked[0][1])}.")
+    return dict(rows=rows, sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]))
