@@ -423,7 +423,9 @@ def weighing_context(res: Results) -> dict | None:
         lines.append("Over every weighting the case allows (SMAA), " + "; ".join(
             f"{_label(c)} ranks first for {fmt_prob(a)} of them" for a, c in acc) + ".")
     ranked = sorted((stat[(c, "efficiency_rank")].value, c) for c in choices if (c, "efficiency_rank") in stat)
-    if ranked:
+    if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
         lines.append(f"Most cost-effective option (weighted chance gained over doing nothing per unit of cost): "
                      f"{_label(ranked[0][1])}.")
+    elif ranked:
+        lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
     return dict(rows=rows, sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]))
