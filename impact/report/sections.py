@@ -313,8 +313,7 @@ def press_context(res: Results) -> dict | None:
 
 # the value of the valued objectives together (impact.studies.VALUED_TOGETHER; a report reads tables only)
 VALUED_TOGETHER = "valued objectives together"
-WORTH_WORDS = {"yes": "worth its cost", "no": "not worth its cost",
-               "undetermined": "undetermined: the interval of its net benefit reaches both sides of 0",
+WORTH_WORDS = {"yes": "worth its cost", "no": "not worth its cost", "undetermined": "undetermined (interval spans 0)",
                "no value scale": "not valued (no value of outcomes declared)"}
 
 
@@ -328,7 +327,7 @@ def _evsi_points(r) -> str:
 
 def _study_verdict(r) -> str:
     if not _detected(r):
-        return "its value is not distinguishable from none: " + WORTH_WORDS["no" if r.worth_cost == "no" else r.worth_cost]
+        return WORTH_WORDS[r.worth_cost] + "; no value detected"
     return WORTH_WORDS[r.worth_cost]
 
 
@@ -350,17 +349,22 @@ def studies_context(res: Results) -> dict | None:
         first = s.iloc[0]
         cells = [(_evsi_points(r) if _detected(r) else f"not distinguishable from none ({_evsi_points(r)})")
                  for r in (s[s.objective == o].iloc[0] for o in objectives)]
-        row = dict(study=name, measures=f"{first.measures} {first.target}, {int(first.samples)} samples ({first.error})",
-                   cost=_money(first.cost, first.cost_unit), cells=cells)
+        row = dict(study=name, measures=f"{first.measures} {first.target}, {int(first.samples)} × {first.error}",
+                   cost=_money(first.cost, first.cost_unit), cost_bare=fmt_num(first.cost), cells=cells)
         if len(valued):
             v = valued[valued.study == name].iloc[0]
-            row.update(evsi=f"{_money(v.evsi, v.unit)} [{fmt_num(_clean(v.low))}, {fmt_num(_clean(v.high))}]",
-                       ceiling=_money(v.ceiling, v.unit),
-                       enbs=f"{_money(v.enbs, v.unit)} [{fmt_num(v.enbs_low)}, {fmt_num(v.enbs_high)}]",
+            row.update(evsi=f"{fmt_num(_clean(v.evsi))} [{fmt_num(_clean(v.low))}, {fmt_num(_clean(v.high))}]",
+                       ceiling=fmt_num(_clean(v.ceiling)),
+                       enbs=f"{fmt_num(v.enbs)} [{fmt_num(v.enbs_low)}, {fmt_num(v.enbs_high)}]",
                        verdict=_study_verdict(v))
         rows.append(row)
     sentence = _studies_sentence(valued, per)
-    return dict(rows=rows, objectives=objectives, valued=bool(len(valued)), sentence=sentence,
+    seen = [f"“{r.study}” for “{r.objective}” ({_evsi_points(r)})" for r in per.itertuples() if _detected(r)]
+    per_objective = ("One objective at a time (studies.csv): " + ("; ".join(seen) if seen else
+                     "no study's value is distinguishable from none")
+                     + ". Judged one objective at a time, a study may change no choice even where it changes the choice "
+                     "that weighs the objectives together.")
+    return dict(rows=rows, objectives=objectives, valued=bool(len(valued)), sentence=sentence, per_objective=per_objective,
                 n=int(t.n.min()), unit=str(valued.unit.iloc[0]) if len(valued) else "")
 
 
@@ -405,27 +409,28 @@ def weighing_context(res: Results) -> dict | None:
         g = lambda s: stat.get((c, s))  # noqa: E731
         cost, val, gain, eff, rank, acc = (g(s) for s in ("cost", "weighted_value", "expected_gain", "efficiency",
                                                           "efficiency_rank", "acceptability"))
-        rows.append(dict(choice=_label(c), cost=f"{fmt_num(cost.value)} {cost.unit}" if cost is not None else "—",
+        rows.append(dict(choice=_label(c), cost=fmt_num(cost.value) if cost is not None else "—",
                          value=fmt_index(val.value) if val is not None else "—",
                          gain=fmt_points(gain.value) if gain is not None else "—",
                          efficiency=(f"{int(rank.value)}" if rank is not None else "—"),
                          acceptability=(f"{fmt_prob(acc.value)} ± {fmt_bare_prob(acc.mc_se)}" if acc is not None else "—")))
     lines = []
     if len(weights):
-        kind = "central weights of the feasible set" if uncertain else "declared weights"
-        lines.append(f"Weights ({kind}): " + "; ".join(f"“{r.objective}” {fmt_index(r.value)}" for r in weights.itertuples())
+        kind = "Central weights of those the case allows" if uncertain else "Declared weights"
+        lines.append(f"{kind}: " + "; ".join(f"“{r.objective}” {fmt_index(r.value)}" for r in weights.itertuples())
                      + ".")
         vals = [(stat[(c, "weighted_value")].value, c) for c in choices if (c, "weighted_value") in stat]
         best = max(vals)[1]
-        lines.append(f"With these weights {_label(best)} has the highest weighted value.")
+        lines.append(f"With these, {_label(best)} has the highest weighted value.")
     if uncertain:
         acc = sorted(((stat[(c, "acceptability")].value, c) for c in choices), reverse=True)
-        lines.append("Over every weighting the case allows (SMAA), " + "; ".join(
-            f"{_label(c)} ranks first for {fmt_prob(a)} of them" for a, c in acc) + ".")
+        lines.append(f"Over every weighting the case allows, {_label(acc[0][1])} ranks first for {fmt_prob(acc[0][0])} "
+                     "of them (SMAA; " + ", ".join(f"{_label(c)} {fmt_prob(a)}" for a, c in acc[1:]) + ").")
     ranked = sorted((stat[(c, "efficiency_rank")].value, c) for c in choices if (c, "efficiency_rank") in stat)
     if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
-        lines.append(f"Most cost-effective option (weighted chance gained over doing nothing per unit of cost): "
-                     f"{_label(ranked[0][1])}.")
+        lines.append(f"Most cost-effective option: {_label(ranked[0][1])}.")
     elif ranked:
         lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
-    return dict(rows=rows, sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]))
+    unit = t[t.statistic == "cost"].unit
+    return dict(rows=rows, sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]),
+                unit=str(unit.iloc[0]) if len(unit) else "none declared")
