@@ -199,3 +199,18 @@ def test_assessment_writes_the_studies_table(tmp_path):
     assert w.loc[("apex and meso", "cost"), "value"] == 30
     acc = w.xs("acceptability", level="statistic")
     assert acc.value.sum() == pytest.approx(1.0) and (acc.mc_se >= 0).all()
+
+    # the saved tables read back and the report's section reads them: every study named, the sentence says
+    # which study is worth its cost only when one is
+    from impact.api import save
+    from impact.report import load_results
+    from impact.report.sections import studies_context, weighing_context
+
+    folder = save(res, tmp_path / "out", report=False)
+    back = load_results(folder)
+    ctx = studies_context(back)
+    assert [r["study"] for r in ctx["rows"]] == list(valued.sort_values("enbs", ascending=False, kind="stable").study)
+    worth = set(valued[valued.worth_cost == "yes"].study)
+    assert ("Worth its cost" in ctx["sentence"]) == bool(worth)
+    assert all(f"“{s}”" in ctx["sentence"] for s in worth)
+    assert weighing_context(back)["uncertain"] and "ranks first" in weighing_context(back)["sentence"]
