@@ -298,9 +298,11 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
         if case.objectives:
             tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
             if case.studies:
-                from .studies import studies_table
+                from .studies import studies_table, study_sizes_table
 
                 tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
+                tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs,
+                                                                          seed)
             if case.weighing is not None:
                 from .weighing import weighing_table
 

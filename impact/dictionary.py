@@ -88,6 +88,12 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "enbs_low": "its lower limit", "enbs_high": "its upper limit",
         "worth_cost": "yes (enbs_low > 0), no (enbs_high < 0), undetermined, or no value scale",
         "interval": _CI, "level": _LEVEL, "n": _N, "unit": "unit of evsi"}),
+    "sensitivity/study_sizes.csv": ("EVSI of each candidate study at ¼, ½, 1, 2 and 4 times its declared sample size "
+                                    "(how large should it be?).", {
+        "study": "candidate study", "objective": "objective, or \"valued objectives together\"",
+        "samples": "sample size tried", "declared": "True at the declared size", "evsi": "EVSI at that size (as in "
+        "studies.csv)", "low": "lower limit", "high": "upper limit",
+        "ceiling": "EVPPI of what the study measures: the limit as the sample grows", "unit": "unit of evsi", "n": _N}),
     "sensitivity/weighing.csv": ("Options' costs and weighed objectives (case file [weighing]), one statistic a row.", {
         "option": "doing nothing (baseline) or an option (blank for a weight)",
         "objective": "objective, \"weighted objectives\", or blank for a cost",

@@ -172,6 +172,8 @@ TABLES = {
                                  "level", "n", "unit"),
                                 ("samples", "evsi", "low", "high", "ceiling", "ceiling_low", "ceiling_high", "cost",
                                  "value_scale", "enbs", "enbs_low", "enbs_high", "level", "n")),
+    "sensitivity/study_sizes.csv": (("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling",
+                                     "unit", "n"), ("samples", "evsi", "low", "high", "ceiling", "n")),
     "sensitivity/weighing.csv": (("option", "objective", "statistic", "value", "mc_se", "unit", "n"),
                                  ("value", "mc_se", "n")),
     "bands.csv": (("option", "species", "time", "q05", "q25", "q50", "q75", "q95"),
@@ -358,7 +360,7 @@ TEXT_COLUMNS = {
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
     "informed", "intervention", "pressed", "press", "predicted",
-    "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost",
+    "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
 }
 
 @dataclass

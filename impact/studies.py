@@ -229,3 +229,38 @@ def studies_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summ
                              enbs=enbs[0], enbs_low=enbs[1], enbs_high=enbs[2], worth_cost=worth_cost(enbs[1], enbs[2]),
                              interval="bootstrap_percentile", level=case.risk.confidence, n=int(ok.sum()), unit=unit))
     return pd.DataFrame(rows, columns=list(STUDY_COLUMNS))
+
+
+SIZE_FACTORS = (0.25, 0.5, 1.0, 2.0, 4.0)  # sample sizes tried around the declared one, for "how large?"
+SIZE_COLUMNS = ("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling", "unit", "n")
+
+
+def study_sizes_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict,
+                      seed: int) -> pd.DataFrame:
+    """EVSI of every study at a quarter, half, once, twice and four times its declared sample size.
+
+    The same members, resamples and ceilings as :func:`studies_table`; a member's data at every size come from
+    its one stream for the study (the smaller samples are the first draws of the larger ones for a single
+    measured quantity), so the curve's steps are not blurred by fresh noise at each size.
+    """
+    from dataclasses import replace
+
+    choices = [BASELINE, *(o.name for o in case.options)]
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    data, informs, sizes = {}, {}, []
+    for s in case.studies:
+        for n in sorted({max(1, int(round(s.samples * f))) for f in SIZE_FACTORS}):
+            data[(s.name, n)] = study_summary(case, replace(s, samples=n), values, today, draws, seed)
+            informs[(s.name, n)] = list(s.parameters) if s.parameters else None
+            sizes.append((s, n))
+    rows = []
+    for objective, nb, _, unit in _choice_sets(case, summaries, choices):
+        ok = np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
+        est = sample_values_many([nb[ok]], X[ok], names, {k: (z[ok], informs[k]) for k, z in data.items()},
+                                 resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)[0]
+        for s, n in sizes:
+            e, cap = est[(s.name, n)]
+            rows.append(dict(study=s.name, objective=objective, samples=n, declared=bool(n == s.samples), evsi=e.value,
+                             low=e.low, high=e.high, ceiling=cap.value, unit=unit, n=int(ok.sum())))
+    return pd.DataFrame(rows, columns=list(SIZE_COLUMNS))

@@ -200,6 +200,12 @@ def test_assessment_writes_the_studies_table(tmp_path):
     acc = w.xs("acceptability", level="statistic")
     assert acc.value.sum() == pytest.approx(1.0) and (acc.mc_se >= 0).all()
 
+    sizes = res.tables["sensitivity/study_sizes.csv"]
+    at = sizes[sizes.declared].merge(t, on=["study", "objective"], suffixes=("", "_t"))
+    # the declared size's row is the studies.csv estimate (same data stream, members and resamples)
+    assert np.allclose(at.evsi, at.evsi_t) and (at.samples == at.samples_t).all()
+    assert (sizes.evsi <= sizes.ceiling + 1e-12).all() and set(sizes[sizes.study == "diet"].samples) == {5, 10, 20, 40, 80}
+
     # the saved tables read back and the report's section reads them: every study named, the sentence says
     # which study is worth its cost only when one is
     from impact.api import save
