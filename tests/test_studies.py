@@ -1,9 +1,15 @@
 """Expected value of sample information (impact.studies) against closed forms."""
 
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 from scipy.stats import norm
 
+from casefiles import mesopredator_case, write_case
+from impact.case import load_case
+from impact.errors import CaseError
 from impact.studies import sample_values_many, simulate_summary, worth_cost
 
 
@@ -98,12 +104,6 @@ def test_worth_cost_words():
 
 # --- the case file's [[studies]] and [outcome_values] -----------------------------------------------
 
-import subprocess  # noqa: E402
-import sys  # noqa: E402
-
-from casefiles import mesopredator_case, write_case  # noqa: E402
-from impact.case import load_case  # noqa: E402
-from impact.errors import CaseError  # noqa: E402
 
 GOOD_STUDY = {"name": "diet", "measures": "parameter", "parameter": "meso_attack", "error": "lognormal", "samples": 20,
               "log_sd": 0.3, "cost": 500, "cost_unit": "dollars"}
