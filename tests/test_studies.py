@@ -215,8 +215,8 @@ def test_assessment_writes_the_studies_table(tmp_path):
     folder = save(res, tmp_path / "out", report=False)
     back = load_results(folder)
     ctx = studies_context(back)
-    assert [r["study"] for r in ctx["rows"]] == list(valued.sort_values("enbs", ascending=False, kind="stable").study)
     worth = set(valued[valued.worth_cost == "yes"].study)
     assert ("Worth its cost" in ctx["sentence"]) == bool(worth)
-    assert all(f"“{s}”" in ctx["sentence"] for s in worth)
+    # every study is named: worth its cost, of value but not enough, or without value distinguishable from none
+    assert all(f"“{s}”" in ctx["sentence"] for s in valued.study)
     assert weighing_context(back)["uncertain"] and "ranks first" in weighing_context(back)["sentence"]

@@ -313,26 +313,15 @@ def press_context(res: Results) -> dict | None:
 
 # the value of the valued objectives together (impact.studies.VALUED_TOGETHER; a report reads tables only)
 VALUED_TOGETHER = "valued objectives together"
-WORTH_WORDS = {"yes": "worth its cost", "no": "not worth its cost", "undetermined": "undetermined (interval spans 0)",
-               "no value scale": "not valued (no value of outcomes declared)"}
-
-
-def _money(v, unit: str) -> str:
-    return f"{fmt_num(_clean(v))} {unit}"
 
 
 def _evsi_points(r) -> str:
     return f"{fmt_points(_clean(r.evsi))} [{fmt_bare_points(_clean(r.low))}, {fmt_bare_points(_clean(r.high))}]"
 
 
-def _study_verdict(r) -> str:
-    if not _detected(r):
-        return WORTH_WORDS[r.worth_cost] + "; no value detected"
-    return WORTH_WORDS[r.worth_cost]
-
-
 def studies_context(res: Results) -> dict | None:
-    """The "Which study to fund" section: each candidate study's EVSI, cost and whether it is worth it.
+    """The "Which study to fund" sentences: which study is worth its cost, which has value but not enough, and
+    which has no value distinguishable from none (each with its EVSI interval and cost).
 
     Reads ``sensitivity/studies.csv`` only; None when the case declared no study (or the stage did not run).
     """
@@ -341,47 +330,34 @@ def studies_context(res: Results) -> dict | None:
         return None
     valued = t[t.objective == VALUED_TOGETHER].sort_values("enbs", ascending=False, kind="stable")
     per = t[t.objective != VALUED_TOGETHER]
-    objectives = list(dict.fromkeys(per.objective))
-    ranked = list(valued.study) if len(valued) else list(dict.fromkeys(t.study))
-    rows = []
-    for name in ranked:
-        s = per[per.study == name]
-        first = s.iloc[0]
-        cells = [(_evsi_points(r) if _detected(r) else f"not distinguishable from none ({_evsi_points(r)})")
-                 for r in (s[s.objective == o].iloc[0] for o in objectives)]
-        row = dict(study=name, measures=f"{first.measures} {first.target}, {int(first.samples)} × {first.error}",
-                   cost=_money(first.cost, first.cost_unit), cost_bare=fmt_num(first.cost), cells=cells)
-        if len(valued):
-            v = valued[valued.study == name].iloc[0]
-            row.update(evsi=f"{fmt_num(_clean(v.evsi))} [{fmt_num(_clean(v.low))}, {fmt_num(_clean(v.high))}]",
-                       ceiling=fmt_num(_clean(v.ceiling)),
-                       enbs=f"{fmt_num(v.enbs)} [{fmt_num(v.enbs_low)}, {fmt_num(v.enbs_high)}]",
-                       verdict=_study_verdict(v))
-        rows.append(row)
-    sentence = _studies_sentence(valued, per)
-    seen = [f"“{r.study}” for “{r.objective}” ({_evsi_points(r)})" for r in per.itertuples() if _detected(r)]
-    per_objective = ("One objective at a time (studies.csv): " + ("; ".join(seen) if seen else
-                     "no study's value is distinguishable from none")
-                     + ". Judged one objective at a time, a study may change no choice even where it changes the choice "
-                     "that weighs the objectives together.")
-    return dict(rows=rows, objectives=objectives, valued=bool(len(valued)), sentence=sentence, per_objective=per_objective,
-                n=int(t.n.min()), unit=str(valued.unit.iloc[0]) if len(valued) else "")
+    return dict(valued=bool(len(valued)), sentence=_studies_sentence(valued, per), n=int(t.n.min()))
 
 
 def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
     """Which study is worth its cost, which is not, and which has no value distinguishable from none."""
     if len(valued):
-        worth = [f"“{r.study}”" for r in valued.itertuples() if r.worth_cost == "yes"]
+        unit = str(valued.unit.iloc[0])
+        worth = [f"“{r.study}” (its information worth {fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] {unit} "
+                 f"against a cost of {fmt_num(r.cost)})" for r in valued.itertuples() if r.worth_cost == "yes"]
+        short = [f"“{r.study}” ({fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] against {fmt_num(r.cost)})"
+                 for r in valued.itertuples() if r.worth_cost != "yes" and _detected(r)]
         flat = [f"“{r.study}”" for r in valued.itertuples() if not _detected(r)]
-        out = ("Worth its cost, at the lower limit of its expected net benefit: " + ", ".join(worth) + "."
-               if worth else "No candidate study is shown to be worth its cost on these members.")
+        out = ("Worth its cost even at the lower limit of its value, counting each good outcome at the value the case "
+               "declares: " + "; ".join(worth) + "." if worth else
+               "No candidate study is shown to be worth its cost on these members.")
+        if short:
+            out += " Of value, but not shown to be worth its cost: " + "; ".join(short) + "."
         if flat:
             out += (" No value distinguishable from none for the valued objectives together: " + ", ".join(flat)
                     + "; on these members their data are not shown to change the choice.")
         return out
     flat = [f"“{s}”" for s, g in per.groupby("study", sort=False) if not any(_detected(r) for r in g.itertuples())]
-    out = ("The case declares no value of its outcomes in money or a common unit, so each study's value (in points of "
+    seen = [f"“{r.study}” (cost {fmt_num(r.cost)} {r.cost_unit}) for “{r.objective}”: {_evsi_points(r)}"
+            for r in per.itertuples() if _detected(r)]
+    out = ("The case declares no value of its outcomes in money or a common unit, so a study's value (in points of "
            "the chance of a good outcome) and its cost stand side by side; no study is called worth its cost.")
+    if seen:
+        out += " Value distinguishable from none: " + "; ".join(seen) + "."
     if flat:
         out += " No value distinguishable from none under any objective: " + ", ".join(flat) + "."
     return out
@@ -392,7 +368,8 @@ def _label(c: str) -> str:
 
 
 def weighing_context(res: Results) -> dict | None:
-    """The weighed comparison: each choice's cost, weighted value, cost-effectiveness and SMAA acceptability.
+    """The weighed comparison in words: the weights, the best weighted choice, SMAA acceptabilities, the most
+    cost-effective option.
 
     Reads ``sensitivity/weighing.csv`` only; None when the case declared no ``[weighing]``.
     """
@@ -404,16 +381,6 @@ def weighing_context(res: Results) -> dict | None:
     choices = list(dict.fromkeys(t[t.statistic == "chance"].option))
     weights = t[t.statistic.isin(["weight", "central_weight"])]
     uncertain = bool((t.statistic == "acceptability").any())
-    rows = []
-    for c in choices:
-        g = lambda s: stat.get((c, s))  # noqa: E731
-        cost, val, gain, eff, rank, acc = (g(s) for s in ("cost", "weighted_value", "expected_gain", "efficiency",
-                                                          "efficiency_rank", "acceptability"))
-        rows.append(dict(choice=_label(c), cost=fmt_num(cost.value) if cost is not None else "—",
-                         value=fmt_index(val.value) if val is not None else "—",
-                         gain=fmt_points(gain.value) if gain is not None else "—",
-                         efficiency=(f"{int(rank.value)}" if rank is not None else "—"),
-                         acceptability=(f"{fmt_prob(acc.value)} ± {fmt_bare_prob(acc.mc_se)}" if acc is not None else "—")))
     lines = []
     if len(weights):
         kind = "Central weights of those the case allows" if uncertain else "Declared weights"
@@ -424,13 +391,17 @@ def weighing_context(res: Results) -> dict | None:
         lines.append(f"With these, {_label(best)} has the highest weighted value.")
     if uncertain:
         acc = sorted(((stat[(c, "acceptability")].value, c) for c in choices), reverse=True)
+        se = stat[(acc[0][1], "acceptability")].mc_se
         lines.append(f"Over every weighting the case allows, {_label(acc[0][1])} ranks first for {fmt_prob(acc[0][0])} "
-                     "of them (SMAA; " + ", ".join(f"{_label(c)} {fmt_prob(a)}" for a, c in acc[1:]) + ").")
+                     f"(± {fmt_bare_prob(se)}) of them (SMAA; " + ", ".join(f"{_label(c)} {fmt_prob(a)}" for a, c in acc[1:])
+                     + ").")
     ranked = sorted((stat[(c, "efficiency_rank")].value, c) for c in choices if (c, "efficiency_rank") in stat)
     if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
-        lines.append(f"Most cost-effective option: {_label(ranked[0][1])}.")
+        best = ranked[0][1]
+        lines.append(f"Most cost-effective (weighted gain over doing nothing per unit of cost): {_label(best)}, at "
+                     f"{fmt_num(stat[(best, 'cost')].value)} {stat[(best, 'cost')].unit}.")
     elif ranked:
         lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
     unit = t[t.statistic == "cost"].unit
-    return dict(rows=rows, sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]),
+    return dict(sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]),
                 unit=str(unit.iloc[0]) if len(unit) else "none declared")
