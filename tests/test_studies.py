@@ -220,3 +220,21 @@ def test_assessment_writes_the_studies_table(tmp_path):
     # every study is named: worth its cost, of value but not enough, or without value distinguishable from none
     assert all(f"“{s}”" in ctx["sentence"] for s in valued.study)
     assert weighing_context(back)["uncertain"] and "ranks first" in weighing_context(back)["sentence"]
+
+
+def test_two_state_decision_evpi_and_a_perfect_study():
+    # Two options, two equally likely states: A gives 55 or 135, B gives 100 either way. Choosing now, B (100 >
+    # 0.5·55 + 0.5·135 = 95); knowing the state, A in the good one: EVPI = 0.5·100 + 0.5·135 − 100 = 17.5 (a figure
+    # from memory of a published amphibian translocation example; the arithmetic checks itself). A study whose
+    # data reveal the state is worth exactly that (EVSI = EVPPI = EVPI); one whose data are independent of the
+    # state is worth nothing. Exact up to float rounding: the states alternate, so every fold is balanced.
+    M = 1000
+    state = np.arange(M) % 2
+    nb = np.column_stack([np.where(state == 1, 135.0, 55.0), np.full(M, 100.0)])
+    noise = np.random.default_rng(0).normal(size=M)
+    out = sample_values_many([nb], state[:, None].astype(float), ["state"],
+                             {"perfect": (state[:, None] + 0.0, ["state"]), "useless": (noise[:, None], ["state"])},
+                             resamples=20, seed=1)[0]
+    evsi, ceiling = out["perfect"]
+    assert evsi.value == pytest.approx(17.5, abs=1e-9) and ceiling.value == pytest.approx(17.5, abs=1e-9)
+    assert out["useless"][0].value < 1.0 and out["useless"][0].low == 0.0
