@@ -8,6 +8,8 @@ import pandas as pd
 from ..cautions import share_text
 from ..formatting import fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
 from ..results import Results
+from ..studies import VALUED_TOGETHER
+from ..weighing import WEIGHTED
 from .figures import Assets, distribution_figure, regime_figure, scan_figure
 
 # the sensitivity section stays within two pages: per option at most this many outputs, each with
@@ -311,8 +313,6 @@ def press_context(res: Results) -> dict | None:
                 nodes=", ".join(rec.get("nodes", [])))
 
 
-# the value of the valued objectives together (impact.studies.VALUED_TOGETHER; a report reads tables only)
-VALUED_TOGETHER = "valued objectives together"
 
 
 def _evsi_points(r) -> str:
@@ -376,7 +376,7 @@ def weighing_context(res: Results) -> dict | None:
     t = (res.sensitivity or {}).get("weighing")
     if t is None or t.empty:
         return None
-    stat = {(r.option, r.statistic): r for r in t.itertuples() if r.objective in ("", "weighted objectives")
+    stat = {(r.option, r.statistic): r for r in t.itertuples() if r.objective in ("", WEIGHTED)
             or r.statistic == "cost"}
     choices = list(dict.fromkeys(t[t.statistic == "chance"].option))
     weights = t[t.statistic.isin(["weight", "central_weight"])]
