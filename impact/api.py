@@ -307,6 +307,16 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
         tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
         if case.objectives:
             tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+            if case.studies:
+                from .studies import studies_table, study_sizes_table
+
+                tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
+                tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs,
+                                                                          seed)
+            if case.weighing is not None:
+                from .weighing import weighing_table
+
+                tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
         stages.append("sensitivity")
     if len(case.uncertain) < 2:
         return stages, {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}

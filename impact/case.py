@@ -15,6 +15,7 @@ from pathlib import Path
 from .casereader import (Reader, Table, check_references, read_carrion, read_intervention, read_meta,
                          read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
 from .casestructures import read_web
+from .casestudies import read_outcome_values, read_study, read_weighing
 from .casetables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
                          read_objective)
 from .casetypes import (ARRIVAL_KINDS, CARRION, CalibrationTable, Carrion, Case, ChangeLimit, Competition,
@@ -110,6 +111,10 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     unique(r, monitoring, "species", "monitoring")
     limits = tuple(read_change_limit(r, i, raw, names, spinup) for i, raw in enumerate(top.get("change_limits", [], "list")))
     calibration = read_calibration(r, top.get("calibration", None, "any"))
+    studies = tuple(read_study(r, i, raw, species, uncertain, groups) for i, raw in enumerate(top.get("studies", [], "list")))
+    unique(r, studies, "name", "studies")
+    outcome_values = read_outcome_values(r, top.get("outcome_values", None, "any"), {o.name for o in objectives}, studies)
+    weighing = read_weighing(r, top.get("weighing", None, "any"), {o.name for o in options}, {o.name for o in objectives})
     top.done()
     check_references(r, parameters)
     return Case(
@@ -118,4 +123,5 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         interventions=interventions, options=options, risk=risk, objectives=objectives, groups=groups,
         dynamics=dynamics, seasons=seasons, monitoring=monitoring, change_limits=limits, calibration=calibration,
         structures=structures,
+        studies=studies, outcome_values=outcome_values, weighing=weighing,
     )

@@ -319,6 +319,9 @@ class Case:
     seasons: Seasons | None = None
     # structural doubts (impact.casestructures.Structures); None: one web, the interactions as written
     structures: "Structures | None" = None
+    studies: tuple = ()  # candidate studies (impact.casestudies.Study)
+    outcome_values: object = None  # impact.casestudies.OutcomeValues or None
+    weighing: object = None  # impact.casestudies.Weighing or None
 
     @property
     def species_names(self) -> tuple[str, ...]:

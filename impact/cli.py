@@ -151,6 +151,13 @@ def describe_case(case: Case) -> str:
         bounds = " and ".join(b for b in (f"grows at most ×{c.up:g}" if c.up else "",
                                           f"falls at most ÷{c.down:g}" if c.down else "") if b)
         L.append(f"  limit on change of {c.species}: {bounds} per {c.step:g} {case.time_unit} from {c.start:g} to {c.end:g}")
+    for st in case.studies:
+        L.append(f"  candidate study “{st.name}”: {st.samples} × {st.error} of {st.measures} {st.target}, "
+                 f"cost {st.cost:g} {st.cost_unit}")
+    if case.weighing is not None:
+        L.append("  weighing: " + "; ".join([f"{o} costs {c:g} {case.weighing.cost_unit}" for o, c in case.weighing.option_costs]
+                                            + [f"weight of “{o}” " + (f"{lo:g}" if lo == hi else f"{lo:g}–{hi:g}")
+                                               for o, lo, hi in case.weighing.weights]))
     if case.calibration is not None:
         c = case.calibration
         L.append(f"calibration: sampler {c.sampler}, rejection while at least {c.min_acceptance:.0%} of draws are kept"

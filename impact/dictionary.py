@@ -71,6 +71,42 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "low": "lower limit", "high": "upper limit", "interval": _CI, "level": _LEVEL, "n": _N,
         "best_choice": "the choice made now (doing nothing = baseline); choices tied for best are joined by \"; \"", "best_chance":
         "its chance of a good outcome", "unit": "unit of value"}),
+    "sensitivity/studies.csv": ("Which study to fund: expected value of sample information (EVSI) of each candidate "
+                                "study, per objective and for the valued objectives together.", {
+        "study": "candidate study (case file [[studies]])", "measures": "species, parameter or group",
+        "target": "the species, parameter or group it measures", "error": "observation model",
+        "samples": "counts or measurements taken (of each parameter, for a group)",
+        "objective": "objective, or \"valued objectives together\" (their sum in the declared value unit)",
+        "evsi": "EVSI: rise in the chance of a good outcome (probability units; the value unit for the valued sum) "
+        "expected from deciding after the study; cross-fitted regression estimate, clipped at 0, capped at the ceiling",
+        "low": "lower limit", "high": "upper limit",
+        "distinguishable": "True when the lower limit is above 0 (else not distinguishable from no value)",
+        "ceiling": "EVPPI of what the study measures (EVPI for a species survey): the most any such study could be worth",
+        "ceiling_low": "its lower limit", "ceiling_high": "its upper limit",
+        "ceiling_of": "the parameter or group of the ceiling, or all parameters",
+        "cost": "the study's declared cost", "cost_unit": "its unit",
+        "value_scale": "declared value of a certain good outcome (blank: none declared, no conversion made)",
+        "enbs": "expected net benefit of sampling: evsi × value_scale − cost (blank without a value scale)",
+        "enbs_low": "its lower limit", "enbs_high": "its upper limit",
+        "worth_cost": "yes (enbs_low > 0), no (enbs_high < 0), undetermined, or no value scale",
+        "interval": _CI, "level": _LEVEL, "n": _N, "unit": "unit of evsi"}),
+    "sensitivity/study_sizes.csv": ("EVSI of each candidate study at ¼, ½, 1, 2 and 4 times its declared sample size "
+                                    "(how large should it be?).", {
+        "study": "candidate study", "objective": "objective, or \"valued objectives together\"",
+        "samples": "sample size tried", "declared": "True at the declared size", "evsi": "EVSI at that size (as in "
+        "studies.csv)", "low": "lower limit", "high": "upper limit",
+        "ceiling": "EVPPI of what the study measures: the limit as the sample grows", "unit": "unit of evsi", "n": _N}),
+    "sensitivity/weighing.csv": ("Options' costs and weighed objectives (case file [weighing]), one statistic a row.", {
+        "option": "doing nothing (baseline) or an option (blank for a weight)",
+        "objective": "objective, \"weighted objectives\", or blank for a cost",
+        "statistic": "cost; chance (of a good outcome); cost_per_point (cost per percentage point gained over doing "
+        "nothing); weight or central_weight (the declared share, or the centre of the feasible shares); weighted_value "
+        "(Σ weight × swing value, 0 worst .. 1 best choice per objective); expected_gain (weighted chance gained over "
+        "doing nothing: benefit × chance of success); efficiency (expected_gain ÷ cost, Joseph et al. 2009); "
+        "efficiency_rank (1 = most cost-effective); acceptability (SMAA share of feasible weights ranking the choice "
+        "first, Lahdelma et al. 1998); central_weight_if_first (mean weight among those)",
+        "value": "the statistic's value", "mc_se": "Monte Carlo standard error (acceptability only)",
+        "unit": "unit of value", "n": _N}),
     "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
         "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",
         "S1": "first-order index", "S1_conf": "its half-width", "ST": "total-order index", "ST_conf":

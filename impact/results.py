@@ -166,6 +166,16 @@ TABLES = {
     "sensitivity/information.csv": (("objective", "parameter", "kind", "value", "low", "high", "interval", "level",
                                      "n", "best_choice", "best_chance", "unit"),
                                     ("value", "low", "high", "level", "n", "best_chance")),
+    "sensitivity/studies.csv": (("study", "measures", "target", "error", "samples", "objective", "evsi", "low", "high",
+                                 "distinguishable", "ceiling", "ceiling_low", "ceiling_high", "ceiling_of", "cost",
+                                 "cost_unit", "value_scale", "enbs", "enbs_low", "enbs_high", "worth_cost", "interval",
+                                 "level", "n", "unit"),
+                                ("samples", "evsi", "low", "high", "ceiling", "ceiling_low", "ceiling_high", "cost",
+                                 "value_scale", "enbs", "enbs_low", "enbs_high", "level", "n")),
+    "sensitivity/study_sizes.csv": (("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling",
+                                     "unit", "n"), ("samples", "evsi", "low", "high", "ceiling", "n")),
+    "sensitivity/weighing.csv": (("option", "objective", "statistic", "value", "mc_se", "unit", "n"),
+                                 ("value", "mc_se", "n")),
     "bands.csv": (("option", "species", "time", "q05", "q25", "q50", "q75", "q95"),
                   ("time", "q05", "q25", "q50", "q75", "q95")),
     "priors.csv": (("name", "distribution", "arguments", "unit", "source", "description"), ()),
@@ -360,6 +370,7 @@ TEXT_COLUMNS = {
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
     "informed", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
+    "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
 }
 
 @dataclass

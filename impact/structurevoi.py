@@ -20,7 +20,7 @@ from .voi import Estimate, bootstrap_counts, rule_gains
 
 STRUCTURE_ROW = "web structure"  # the parameter column of its row in sensitivity/information.csv
 KIND = "structure evppi"
-PURPOSE_STRUCTURE_VOI = 13  # spawn-key purpose of its bootstrap stream
+PURPOSE_STRUCTURE_VOI = 15  # spawn-key purpose of its bootstrap stream
 
 
 def indicator_design(index: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

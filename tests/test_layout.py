@@ -24,12 +24,12 @@ def test_no_module_imports_a_private_name_of_another():
 # Stages flow one way (DEVELOPERS.md): a module may import only from its own stage or earlier ones.
 STAGES = [
     {"errors", "formatting", "likelihood", "priors", "metrics", "iucn", "voi", "dictionary", "interrupts", "streams", "preload", "__init__"},
-    {"case", "units", "casetypes", "casereader", "casetables", "casestructures", "seriesfile"},
+    {"case", "units", "casetypes", "casereader", "casetables", "casestructures", "seriesfile", "casestudies"},
     {"model", "terms", "expr", "sample", "jacobian", "integrate", "engine", "control", "generate", "kernel", "web", "tangent", "flow", "precompile", "boundary",
      "stepper", "simulate", "execute"},
     {"assess", "observe", "calibrate"},
     {"effects", "results", "manifest", "outfolder", "budget", "bystructure", "dossier"},
-    {"decision", "structurevoi", "structureregimes", "loops", "press", "sensitivity", "designs", "estimators", "outputs", "study", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
+    {"decision", "structurevoi", "structureregimes", "loops", "press", "sensitivity", "designs", "estimators", "outputs", "study", "studies", "weighing", "dynamics", "timescales", "regimes", "diagnose", "scan", "screen"},
     {"chart", "cautions", "bottomline", "verdict", "structures_verdict", "webfigure", "calibfigure", "report", "tables", "figures", "sections", "render"},
     {"api", "pipeline"},
     {"cli"},

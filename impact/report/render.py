@@ -19,7 +19,7 @@ from ..verdict import horizon_rule_text, reading, thin_run
 from ..webfigure import dot_available, food_web_svg, web_legend
 from ..structures_verdict import structure_reading
 from .figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
-from .sections import dynamics_context, press_context, sensitivity_context
+from .sections import dynamics_context, press_context, sensitivity_context, studies_context, weighing_context
 from .tables import comparisons_context, effects_table_context, iucn_context, objectives_context, risk_table_context
 
 PAPERS = {"a4": "A4", "letter": "letter"}
@@ -56,7 +56,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m),
         web_drawn=dot_available(), priors=priors, thin=thin,
         interventions=m.interventions, options=options, iucn=iucn_context(res),
-        sensitivity=sensitivity_context(res, assets), dynamics=dynamics_context(res, assets), press=press_context(res),
+        sensitivity=sensitivity_context(res, assets), studies=studies_context(res), weighing=weighing_context(res), dynamics=dynamics_context(res, assets), press=press_context(res),
         calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
         horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},

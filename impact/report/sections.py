@@ -8,6 +8,8 @@ import pandas as pd
 from ..cautions import share_text
 from ..formatting import fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
 from ..results import Results
+from ..studies import VALUED_TOGETHER
+from ..weighing import WEIGHTED
 from .figures import Assets, distribution_figure, regime_figure, scan_figure
 
 # the sensitivity section stays within two pages: per option at most this many outputs, each with
@@ -320,3 +322,97 @@ def press_context(res: Results) -> dict | None:
     return dict(groups=groups, members=members, level=level, unstable=det is not None and det <= 0,
                 unresolved=[f"{a} from {b}" for a, b in rec.get("unresolved", [])],
                 nodes=", ".join(rec.get("nodes", [])))
+
+
+
+
+def _evsi_points(r) -> str:
+    return f"{fmt_points(_clean(r.evsi))} [{fmt_bare_points(_clean(r.low))}, {fmt_bare_points(_clean(r.high))}]"
+
+
+def studies_context(res: Results) -> dict | None:
+    """The "Which study to fund" sentences: which study is worth its cost, which has value but not enough, and
+    which has no value distinguishable from none (each with its EVSI interval and cost).
+
+    Reads ``sensitivity/studies.csv`` only; None when the case declared no study (or the stage did not run).
+    """
+    t = (res.sensitivity or {}).get("studies")
+    if t is None or t.empty:
+        return None
+    valued = t[t.objective == VALUED_TOGETHER].sort_values("enbs", ascending=False, kind="stable")
+    per = t[t.objective != VALUED_TOGETHER]
+    return dict(valued=bool(len(valued)), sentence=_studies_sentence(valued, per), n=int(t.n.min()))
+
+
+def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
+    """Which study is worth its cost, which is not, and which has no value distinguishable from none."""
+    if len(valued):
+        unit = str(valued.unit.iloc[0])
+        worth = [f"“{r.study}” (its information worth {fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] {unit} "
+                 f"against a cost of {fmt_num(r.cost)})" for r in valued.itertuples() if r.worth_cost == "yes"]
+        short = [f"“{r.study}” ({fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] against {fmt_num(r.cost)})"
+                 for r in valued.itertuples() if r.worth_cost != "yes" and _detected(r)]
+        flat = [f"“{r.study}”" for r in valued.itertuples() if not _detected(r)]
+        out = ("Worth its cost even at the lower limit of its value, counting each good outcome at the value the case "
+               "declares: " + "; ".join(worth) + "." if worth else
+               "No candidate study is shown to be worth its cost on these members.")
+        if short:
+            out += " Of value, but not shown to be worth its cost: " + "; ".join(short) + "."
+        if flat:
+            out += (" No value distinguishable from none for the valued objectives together: " + ", ".join(flat)
+                    + "; on these members their data are not shown to change the choice.")
+        return out
+    flat = [f"“{s}”" for s, g in per.groupby("study", sort=False) if not any(_detected(r) for r in g.itertuples())]
+    seen = [f"“{r.study}” (cost {fmt_num(r.cost)} {r.cost_unit}) for “{r.objective}”: {_evsi_points(r)}"
+            for r in per.itertuples() if _detected(r)]
+    out = ("The case declares no value of its outcomes in money or a common unit, so a study's value (in points of "
+           "the chance of a good outcome) and its cost stand side by side; no study is called worth its cost.")
+    if seen:
+        out += " Value distinguishable from none: " + "; ".join(seen) + "."
+    if flat:
+        out += " No value distinguishable from none under any objective: " + ", ".join(flat) + "."
+    return out
+
+
+def _label(c: str) -> str:
+    return "doing nothing" if c == "baseline" else f"“{c}”"
+
+
+def weighing_context(res: Results) -> dict | None:
+    """The weighed comparison in words: the weights, the best weighted choice, SMAA acceptabilities, the most
+    cost-effective option.
+
+    Reads ``sensitivity/weighing.csv`` only; None when the case declared no ``[weighing]``.
+    """
+    t = (res.sensitivity or {}).get("weighing")
+    if t is None or t.empty:
+        return None
+    stat = {(r.option, r.statistic): r for r in t.itertuples() if r.objective in ("", WEIGHTED)
+            or r.statistic == "cost"}
+    choices = list(dict.fromkeys(t[t.statistic == "chance"].option))
+    weights = t[t.statistic.isin(["weight", "central_weight"])]
+    uncertain = bool((t.statistic == "acceptability").any())
+    lines = []
+    if len(weights):
+        kind = "Central weights of those the case allows" if uncertain else "Declared weights"
+        lines.append(f"{kind}: " + "; ".join(f"“{r.objective}” {fmt_index(r.value)}" for r in weights.itertuples())
+                     + ".")
+        vals = [(stat[(c, "weighted_value")].value, c) for c in choices if (c, "weighted_value") in stat]
+        best = max(vals)[1]
+        lines.append(f"With these, {_label(best)} has the highest weighted value.")
+    if uncertain:
+        acc = sorted(((stat[(c, "acceptability")].value, c) for c in choices), reverse=True)
+        se = stat[(acc[0][1], "acceptability")].mc_se
+        lines.append(f"Over every weighting the case allows, {_label(acc[0][1])} ranks first for {fmt_prob(acc[0][0])} "
+                     f"(± {fmt_bare_prob(se)}) of them (SMAA; " + ", ".join(f"{_label(c)} {fmt_prob(a)}" for a, c in acc[1:])
+                     + ").")
+    ranked = sorted((stat[(c, "efficiency_rank")].value, c) for c in choices if (c, "efficiency_rank") in stat)
+    if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
+        best = ranked[0][1]
+        lines.append(f"Most cost-effective (weighted gain over doing nothing per unit of cost): {_label(best)}, at "
+                     f"{fmt_num(stat[(best, 'cost')].value)} {stat[(best, 'cost')].unit}.")
+    elif ranked:
+        lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
+    unit = t[t.statistic == "cost"].unit
+    return dict(sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]),
+                unit=str(unit.iloc[0]) if len(unit) else "none declared")
