@@ -29,9 +29,9 @@ from scipy import stats
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from impact.calibrate import build_ensemble  # noqa: E402
+from impact.ensemble.calibrate import build_ensemble  # noqa: E402
 from impact.case import load_case, parse_case  # noqa: E402
-from impact.execute import make_executor  # noqa: E402
+from impact.run.execute import make_executor  # noqa: E402
 
 TARGET_RATIO = 10.0
 DEMO_TARGET_SECONDS = 60.0

@@ -43,11 +43,12 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
 from timing import cpu_min  # noqa: E402
-import impact.decision as decision  # noqa: E402
-from impact.assess import assess_members, draw_ensemble  # noqa: E402
+import impact.decision.hinges as decision  # noqa: E402
+from impact.risk.runs import assess_members
+from impact.ensemble.draws import draw_ensemble  # noqa: E402
 from impact.case import load_case  # noqa: E402
-from impact.voi import (PURPOSE_VOI, Estimate, bootstrap_counts, design_matrix, fitted_means,  # noqa: E402
-                        penalised_design, rule_gains)
+from impact.decision.voi import (PURPOSE_VOI, Estimate, bootstrap_counts, design_matrix, fitted_means,
+    penalised_design, rule_gains)
 
 TARGET_RATIO = 0.10
 

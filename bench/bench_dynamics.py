@@ -24,10 +24,10 @@ from pathlib import Path
 import numpy as np
 
 from impact.case import load_case  # noqa: E402
-from impact.dynamics import DynamicsSettings, lyapunov_flow, web_functions  # noqa: E402
-from impact.scan import nominal_values, scan_web  # noqa: E402
-from impact.integrate import integrate_segment  # noqa: E402
-from impact.jacobian import WebTangent  # noqa: E402
+from impact.dynamics.lyapunov import DynamicsSettings, lyapunov_flow, web_functions  # noqa: E402
+from impact.dynamics.scan import nominal_values, scan_web  # noqa: E402
+from impact.engine.integrate import integrate_segment  # noqa: E402
+from impact.engine.jacobian import WebTangent  # noqa: E402
 from impact.model import Controls, build_web, web_params  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
@@ -41,10 +41,10 @@ DEMO = ROOT / "casework" / "island_mesopredator.toml"
 def demo_screen_tasks():
     """The demo's regime-screen tasks (one per option) as ``impact assess`` builds them."""
     from impact.api import load_case as read_case
-    from impact.assess import assess_members
-    from impact.calibrate import build_ensemble
-    from impact.dynamics import declared_settings
-    from impact.screen import SCREEN, screen_tasks
+    from impact.risk.runs import assess_members
+    from impact.ensemble.calibrate import build_ensemble
+    from impact.dynamics.lyapunov import declared_settings
+    from impact.dynamics.regime_screen import SCREEN, screen_tasks
 
     case = read_case(DEMO)
     ens, _ = build_ensemble(case, case.members, case.seed)
@@ -73,9 +73,9 @@ def first_compile_seconds() -> float:
     script = ("import time, numpy as np\n"
               "from impact.api import load_case\n"
               "from impact.model import build_web, web_params, Controls\n"
-              "from impact.jacobian import WebTangent\n"
-              "from impact.dynamics import lyapunov_flow\n"
-              "from impact.scan import nominal_values\n"
+              "from impact.engine.jacobian import WebTangent\n"
+              "from impact.dynamics.lyapunov import lyapunov_flow\n"
+              "from impact.dynamics.scan import nominal_values\n"
               f"case = load_case({str(DEMO)!r})\n"
               "web = build_web(case)\n"
               "p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)\n"
@@ -91,7 +91,7 @@ def first_compile_seconds() -> float:
 
 def demo_screen() -> None:
     """The demo's regime screen, compiled tangent flow against the numpy step loop (same run)."""
-    from impact.screen import diagnose_task
+    from impact.dynamics.regime_screen import diagnose_task
 
     tasks = demo_screen_tasks()
     members = sum(t.y0.shape[0] for t in tasks)
@@ -138,7 +138,7 @@ def main(members: int = 200, span: float = 2000.0, dt: float = 2.0):
           f"ratio {t_matrix / t_plain:.2f}")
     print(f"Lyapunov stage as diagnose_web runs it (compiled tangent flow): {t_lyap:.2f} s ({d.nfev} member evaluations)")
     print(f"ratio Lyapunov / plain: {t_lyap / t_plain:.2f} (target <= 3)")
-    from impact.execute import LocalPool
+    from impact.run.execute import LocalPool
 
     s = DynamicsSettings(transient=1000.0, window=1000.0, sample_dt=dt)
     pool = LocalPool(2)

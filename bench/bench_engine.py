@@ -38,7 +38,7 @@ from impact.engine import generate  # noqa: E402
 from impact.engine.control import DormandPrince54  # noqa: E402
 from impact.engine.web import pack_structure, web_segment  # noqa: E402
 from impact.model import Controls, build_web, web_params  # noqa: E402
-from impact.sample import parameter_values  # noqa: E402
+from impact.ensemble.sample import parameter_values  # noqa: E402
 
 DEMO = ROOT / "casework" / "island_mesopredator.toml"
 ENGINES = ("compiled", "table", "numpy")

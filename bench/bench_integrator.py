@@ -22,7 +22,7 @@ from scipy.integrate import solve_ivp
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from impact.integrate import integrate_segment  # noqa: E402
+from impact.engine.integrate import integrate_segment  # noqa: E402
 
 TARGET = 100.0  # required speed-up over the per-member loop
 RTOL, ATOL = 1e-6, 1e-9

@@ -14,7 +14,7 @@ stability and −J⁻¹). Target (issue 21): the sign table in at most 1 s for a
 Measured 2026-12-04 on a shared 2-core machine under load (load average 10), 1,000 members, all
 at a stable equilibrium: loop analysis 0.009 CPU s (0.009 s for a dense 12 x 12 signed web, every
 pair linked); whole table 0.43-0.47 CPU s, within the 1 s target. Most of it is Newton's method
-for the members' equilibria (impact.timescales.equilibrium, which iterates every member until the
+for the members' equilibria (impact.dynamics.timescales.equilibrium, which iterates every member until the
 last converges) and its Jacobians.
 """
 
@@ -76,11 +76,11 @@ def main(argv=None):
     ap.add_argument("--repeats", type=int, default=3)
     args = ap.parse_args(argv)
 
-    from impact.assess import assess_members
-    from impact.calibrate import build_ensemble
+    from impact.risk.runs import assess_members
+    from impact.ensemble.calibrate import build_ensemble
     from impact.case import load_case
-    from impact.loops import press_prediction
-    from impact.press import community_signs, press_table
+    from impact.dynamics.loops import press_prediction
+    from impact.dynamics.press import community_signs, press_table
 
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "twelve.toml"

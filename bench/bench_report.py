@@ -30,8 +30,8 @@ DEMO = ROOT / "casework" / "island_mesopredator.toml"
 
 FLOOR = """
 import impact.cli, impact.api  # what `impact report` imports before it reads anything
-from impact.report.render import render_pdf, report_html
-from impact.report.figures import Assets
+from impact.dossier.render import render_pdf, report_html
+from impact.dossier.figures import Assets
 import matplotlib.figure
 render_pdf("<html><body><h1>floor</h1><table><tr><td>1</td></tr></table></body></html>", Assets())
 """
@@ -49,8 +49,8 @@ def stages(results: Path) -> dict:
     """Wall and CPU seconds of each in-process stage of one report."""
     from weasyprint import HTML
 
-    from impact.report.figures import ASSET_SCHEME
-    from impact.report.render import load_results, make_fetcher, report_html
+    from impact.dossier.figures import ASSET_SCHEME
+    from impact.dossier.render import load_results, make_fetcher, report_html
 
     out = {}
 

@@ -41,12 +41,12 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
 from timing import cpu_min  # noqa: E402
-import impact.sensitivity.estimators as estimators  # noqa: E402
-import impact.sensitivity.study as study  # noqa: E402
+import impact.decision.sensitivity.estimators as estimators  # noqa: E402
+import impact.decision.sensitivity.study as study  # noqa: E402
 from impact.case import load_case  # noqa: E402
-from impact.sensitivity import Settings, sensitivity_stage  # noqa: E402
-from impact.sensitivity.designs import salib_seed, unit_problem  # noqa: E402
-from impact.sensitivity.estimators import given_data_first_order, saltelli_estimates  # noqa: E402
+from impact.decision.sensitivity import Settings, sensitivity_stage  # noqa: E402
+from impact.decision.sensitivity.designs import salib_seed, unit_problem  # noqa: E402
+from impact.decision.sensitivity.estimators import given_data_first_order, saltelli_estimates  # noqa: E402
 
 TARGET_SECONDS = 60.0
 
@@ -150,7 +150,7 @@ def main() -> int:
 
     # the given-data estimator alone, on the headline outputs the stage gives it
     (Y, _), = [v for v in store.values() if v[0].shape[0] == points]
-    from impact.sensitivity.designs import sobol_design
+    from impact.decision.sensitivity.designs import sobol_design
     design = sobol_design(info["parameters"], args.base_samples, args.second_order, case.seed)
     rows = design.base_rows()
     kept = Y[rows, 0] == 1.0

@@ -25,7 +25,8 @@ sys.path.insert(0, str(HERE.parent))
 from run import prior_only  # noqa: E402
 from timing import ROOT  # noqa: E402
 
-from impact.assess import assess_members, draw_ensemble  # noqa: E402
+from impact.risk.runs import assess_members
+from impact.ensemble.draws import draw_ensemble  # noqa: E402
 from impact.case import load_case  # noqa: E402
 
 DEMO = ROOT / "casework" / "island_mesopredator.toml"

@@ -9,7 +9,7 @@ The verbs of the Python interface live in :mod:`impact.api` and are reachable fr
 They are imported on first use, so ``import impact`` stays cheap for the command line.
 """
 
-__version__ = "0.2.0"
+from impact.version import __version__
 
 __all__ = ["AssessSettings", "Assessment", "ImpactError", "__version__", "assess", "calibrate", "load", "load_case",
            "report", "save"]

@@ -8,8 +8,8 @@ runs this example.)
 >>> import impact
 >>> result = impact.assess("casework/island_mesopredator.toml", members=200, seed=3,
 ...                        sensitivity=False, dynamics=False)
->>> result.effects.columns[:3].tolist()      # paired effects: the columns of effects.csv
-['option', 'species', 'metric']
+>>> result.effects.columns[:2].tolist()      # paired effects: the columns of effects.csv
+['option', 'species']
 >>> print(result.verdict_text().splitlines()[0])      # the page-1 verdict as text
 option “cats only”:
 >>> folder = impact.save(result, "results/example", report=False)  # tables, manifest, summary.txt
@@ -33,20 +33,21 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .assess import Ensemble, assess_members, bands_table, failure_counts, members_table, risk_table
-from .bystructure import member_structures, structure_tables
-from .calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
-                        ensemble_from_arrays)
-from .case import Case, schedule_text
-from .case import load_case as _read_case
-from .decision import drivers_table, information_table
-from .effects import comparisons_table, effects_table, event_text, objectives_table
-from .errors import ReadError, SettingError
-from .manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord, Judgement, Manifest,
-                       MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
-from .model import equations
-from .sample import unit_columns
+from impact.version import __version__
+from impact.ensemble.draws import Ensemble
+from impact.risk.runs import assess_members, bands_table, failure_counts, members_table, risk_table
+from impact.risk.bystructure import member_structures, structure_tables
+from impact.ensemble.calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
+    ensemble_from_arrays)
+from impact.case import Case, schedule_text
+from impact.case import load_case as _read_case
+from impact.decision.hinges import drivers_table, information_table
+from impact.risk.effects import comparisons_table, effects_table, event_text, objectives_table
+from impact.errors import ReadError, SettingError
+from impact.store.manifest import (CaseRecord, ChangeLimitRecord, Counts, InteractionRecord, InterventionRecord,
+    Judgement, Manifest, MonitoringRecord, ObjectiveRecord, OptionRecord, SpeciesRecord)
+from impact.model import equations
+from impact.ensemble.sample import unit_columns
 
 __all__ = ["AssessSettings", "Assessment", "PosteriorEnsemble", "assess", "build_report", "calibrate", "load",
            "load_case", "load_ensemble", "report", "save", "save_ensemble", "summary_text", "verify"]
@@ -107,8 +108,8 @@ class AssessSettings:
         if seed < 0:
             raise SettingError("seed", f"must be a non-negative whole number, got {seed}")
         if self.sensitivity:
-            from .sensitivity import Settings as ScreenSettings
-            from .sensitivity import check_settings
+            from impact.decision.sensitivity import Settings as ScreenSettings
+            from impact.decision.sensitivity import check_settings
 
             check_settings(ScreenSettings(base_samples=self.base_samples, seed=seed))  # before any simulation
         return replace(self, members=members, seed=seed)
@@ -156,7 +157,7 @@ class Assessment:
 
     def verdict_text(self) -> str:
         """The page-1 verdict as text (the same words as ``report.pdf`` and ``summary.txt``)."""
-        from .verdict import reading, reading_text
+        from impact.dossier.verdict import reading, reading_text
 
         t = self.tables
         return reading_text(reading(self.manifest, t["risk.csv"], t["effects.csv"], t["objectives.csv"],
@@ -164,7 +165,7 @@ class Assessment:
 
     def write(self, folder: Path) -> None:
         """Write every table and record and the manifest into ``folder`` (no report, no summary)."""
-        from .results import write_csv, write_json
+        from impact.store.results import write_csv, write_json
 
         folder = Path(folder)
         for rel, frame in self.tables.items():
@@ -207,7 +208,7 @@ def run_header(case: Case, command, stages: tuple[str, ...], **entries) -> dict:
 
 
 def priors_table(case: Case) -> pd.DataFrame:
-    from .results import TABLES
+    from impact.store.results import TABLES
 
     rows = []
     for p in case.parameters:
@@ -275,7 +276,7 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
 def prior_screen(case: Case, settings, progress: Progress | None = None, executor=None, store=None
                  ) -> tuple[dict[str, pd.DataFrame], dict, dict]:
     """The Sobol screen of the prior box: its tables (by relative path), its record, and the manifest entry."""
-    from .sensitivity import sensitivity_stage
+    from impact.decision.sensitivity import sensitivity_stage
 
     t0 = time.monotonic()
     res = sensitivity_stage(case, settings, progress=progress, executor=executor, store=store)
@@ -293,9 +294,9 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
 
     Adds the stage's tables and records; returns the stages run and the manifest's entry.
     """
-    from .sensitivity import Settings as ScreenSettings
+    from impact.decision.sensitivity import Settings as ScreenSettings
 
-    from .press import press_table
+    from impact.dynamics.press import press_table
 
     if progress:
         progress("press responses: the web's structure and the members")
@@ -308,13 +309,13 @@ def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemb
         if case.objectives:
             tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
             if case.studies:
-                from .studies import studies_table, study_sizes_table
+                from impact.decision.studies import studies_table, study_sizes_table
 
                 tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
                 tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs,
                                                                           seed)
             if case.weighing is not None:
-                from .weighing import weighing_table
+                from impact.decision.weighing import weighing_table
 
                 tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
         stages.append("sensitivity")
@@ -364,9 +365,9 @@ def calibrate(case: Case | str | Path, members: int | None = None, seed: int | N
 
 def save_ensemble(post: PosteriorEnsemble, out, *, replace: bool = False) -> Path:
     """Write a posterior ensemble folder: ensemble.npz, parameters.csv, calibration/, manifest.json, README.md."""
-    from .dictionary import write_dictionary
-    from .outfolder import OutputFolder
-    from .results import write_csv, write_ensemble, write_json
+    from impact.store.dictionary import write_dictionary
+    from impact.store.outfolder import OutputFolder
+    from impact.store.results import write_csv, write_ensemble, write_json
 
     folder = OutputFolder(out, replace=replace)
     with folder:
@@ -383,9 +384,9 @@ def load_ensemble(folder, case: Case) -> PosteriorEnsemble:
     """Read a folder written by :func:`save_ensemble` for ``case``; refused when calibrated for another case file."""
     import json
 
-    from .dossier import check_folder
-    from .model import build_web
-    from .results import read_ensemble, read_table
+    from impact.store.verify import check_folder
+    from impact.model import build_web
+    from impact.store.results import read_ensemble, read_table
 
     folder = Path(folder)
     path = folder / "manifest.json"
@@ -449,8 +450,8 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
         What to run; the keywords ``members``, ``seed``, ``sensitivity``, ``base_samples`` and
         ``dynamics`` override its fields one by one (see :class:`AssessSettings`).
     executor : object with ``map(fn, tasks)``, optional
-        Where chunks are computed (default: this process); see :mod:`impact.execute`.
-    store : impact.results.Checkpoints, optional
+        Where chunks are computed (default: this process); see :mod:`impact.run.execute`.
+    store : impact.store.results.Checkpoints, optional
         Finished chunks are saved there and reused by a resumed run.
     block, chunk : int, optional
         Draw indices per screening block and members per run chunk; results never depend on them.
@@ -460,7 +461,7 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
         A calibrated ensemble to reuse (from :func:`calibrate` or :func:`load_ensemble`) instead of
         drawing one; ``settings.members``, if given, must equal its size.
     """
-    from .execute import InProcess
+    from impact.run.execute import InProcess
 
     case = as_case(case)
     overrides = dict(members=members, seed=seed, sensitivity=sensitivity, base_samples=base_samples, dynamics=dynamics)
@@ -473,7 +474,7 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
         return _assessment(case, settings, progress, executor, store, block, chunk, command, ensemble)
     finally:
         if settings.dynamics:  # a run that ended before its regime screen leaves no helper behind
-            from .engine.generate import stop_compiling
+            from impact.engine.generate import stop_compiling
 
             stop_compiling()
 
@@ -481,12 +482,12 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
 def _compile_flow_aside(case: Case):
     """Have the regime screen's compiled tangent flow compiled in a helper process from the start
     of the run, when it is not cached (:func:`impact.engine.generate.compile_flow_aside`)."""
-    from .engine.generate import compile_flow_aside
-    from .engine.web import pack_coefficients, pack_structure
-    from .model import Controls, build_web, segment_coefficients, web_params
-    from .scan import nominal_values
+    from impact.engine.generate import compile_flow_aside
+    from impact.engine.web import pack_coefficients, pack_structure
+    from impact.model import Controls, build_web, segment_coefficients, web_params
+    from impact.dynamics.scan import nominal_values
 
-    web = build_web(case)  # every web has a compiled J·v (impact.terms)
+    web = build_web(case)  # every web has a compiled J·v (impact.model.terms)
     p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
     n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
     compile_flow_aside(pack_structure(web), n_coef)
@@ -526,12 +527,12 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         stages += more
         clock.lap("sensitivity")
     if settings.dynamics:
-        from .screen import assess_stage
+        from impact.dynamics.regime_screen import assess_stage
 
         dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
         tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
         if case.structures is not None and len(dyn["regimes"]):  # the regimes of each web's members
-            from .structureregimes import regime_shares_by_structure
+            from impact.dynamics.structureregimes import regime_shares_by_structure
 
             tables["structures/regime_shares.csv"] = regime_shares_by_structure(
                 case.structures.names, dyn["regimes"], member_structures(case, ens.unit))
@@ -547,18 +548,18 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
 
 def summary_text(case: Case, folder: Path) -> str:
     """The terminal summary of a written results folder: the page-1 verdict, ending with its bottom line."""
-    from .report import hinges_text, load_results
-    from .bottomline import bottom_line, bottom_line_text
-    from .formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
-    from .verdict import reading, reading_text, thin_run
-    from .structures_verdict import structure_reading, structure_text
+    from impact.dossier import hinges_text, load_results
+    from impact.dossier.bottomline import bottom_line, bottom_line_text
+    from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
+    from impact.dossier.verdict import reading, reading_text, thin_run
+    from impact.dossier.structures_verdict import structure_reading, structure_text
 
     res = load_results(folder)
     counts, risk = res.manifest.counts, res.risk
     L = [case.title]
     cal = res.manifest.calibration or {}
     if cal.get("sampler") == "smc":
-        # the same rounding as the PDF's calibration section (impact.formatting)
+        # the same rounding as the PDF's calibration section (impact.dossier.formatting)
         L.append(f"ensemble: {counts.kept} members calibrated by sequential Monte Carlo ({cal['simulations']} "
                  f"simulations in {cal['generations']} generations, move acceptance {fmt_prob(cal['acceptance'])}, "
                  f"{fmt_prob(cal['distinct'])} distinct members; {fmt_prob(cal['prior_acceptance'])} of prior draws "
@@ -595,7 +596,7 @@ def summary_text(case: Case, folder: Path) -> str:
         L.append(f"  (n/a: no quasi-extinction chance or paired change for a species absent today: {', '.join(absent)})")
     L.append("verdict (the same as page 1 of report.pdf):")
     L.append(reading_text(reading(res.manifest, res.risk, res.effects, res.objectives, res.comparisons)))
-    # across the structural doubts (impact.structures_verdict): empty for a case without doubts
+    # across the structural doubts (impact.dossier.structures_verdict): empty for a case without doubts
     across = structure_text(structure_reading(res.manifest, res.risk, res.effects, res.objectives, res.structures))
     if across:
         L.append(across)
@@ -614,10 +615,10 @@ def write_results(result: Assessment, folder: Path, *, report: bool = True, pape
 
     Returns the summary text. Use :func:`save` to write into a results folder with its lock and policy.
     """
-    from .report import write_report
+    from impact.dossier import write_report
 
-    from .dictionary import write_dictionary
-    from .outfolder import write_inventory
+    from impact.store.dictionary import write_dictionary
+    from impact.store.outfolder import write_inventory
 
     folder = Path(folder)
     result.write(folder)
@@ -635,7 +636,7 @@ def write_results(result: Assessment, folder: Path, *, report: bool = True, pape
 
 def save(result: Assessment, out, *, replace: bool = False, report: bool = True, paper: str = "a4") -> Path:
     """Save an assessment as a results folder (locked while written; an existing one only with ``replace``)."""
-    from .outfolder import OutputFolder
+    from impact.store.outfolder import OutputFolder
 
     if result.case is None:
         raise SettingError("result", "was read from a folder without its case file; load that case and assess it again")
@@ -655,9 +656,9 @@ def load(folder) -> Assessment:
     """
     import json
 
-    from .case import load_case as read_case
-    from .errors import CaseError
-    from .results import load_results, read_table
+    from impact.case import load_case as read_case
+    from impact.errors import CaseError
+    from impact.store.results import load_results, read_table
 
     res = load_results(folder)  # the manifest and the core tables, checked
     tables = {str(p.relative_to(res.path)): read_table(p)
@@ -692,8 +693,8 @@ def build_report(folder, out=None, paper: str = "a4", accept_edits: bool = False
     the SHA-256 ``inventory.json`` records is refused (:class:`ReadError`) unless
     ``accept_edits``; page 1 then names the edited files.
     """
-    from .outfolder import OutputFolder
-    from .report import write_report
+    from impact.store.outfolder import OutputFolder
+    from impact.dossier import write_report
 
     folder = Path(folder)
     target = Path(out) if out is not None else folder / "report.pdf"
@@ -705,7 +706,7 @@ def build_report(folder, out=None, paper: str = "a4", accept_edits: bool = False
 
 def verify(folder, pdf=None):
     """Check a results folder against the SHA-256 of its ``inventory.json``, and a PDF against the
-    folder (default: its ``report.pdf``): an :class:`impact.dossier.Verification` (``ok``, ``lines``)."""
-    from .dossier import verify as check
+    folder (default: its ``report.pdf``): an :class:`impact.store.verify.Verification` (``ok``, ``lines``)."""
+    from impact.store.verify import verify as check
 
     return check(folder, pdf)

@@ -8,14 +8,14 @@ import sys
 import time
 
 
-from . import __version__
-from .api import AssessSettings
-from .case import Case, load_case, schedule_text
-from .effects import event_text
-from .errors import CaseError, InstallationError, SettingError, WriteError, spell
-from .execute import WorkerLost
-from .interrupts import ignore_from_now_on
-from .pipeline import Execution
+from impact.version import __version__
+from impact.api import AssessSettings
+from impact.case import Case, load_case, schedule_text
+from impact.risk.effects import event_text
+from impact.errors import CaseError, InstallationError, SettingError, WriteError, spell
+from impact.run.execute import WorkerLost
+from impact.run.interrupts import ignore_from_now_on
+from impact.pipeline import Execution
 
 # API parameter -> flag: errors name the library's parameter, the command line shows its flag
 FLAGS = {name: "--" + name.replace("_", "-") for name in (
@@ -186,9 +186,9 @@ def describe_case(case: Case) -> str:
 
 
 def cmd_check(args) -> int:
-    from .budget import check_fits, estimate
-    from .execute import machine_cores
-    from .pipeline import case_warnings
+    from impact.store.budget import check_fits, estimate
+    from impact.run.execute import machine_cores
+    from impact.pipeline import case_warnings
 
     case = load_case(args.case)
     print(describe_case(case))
@@ -207,12 +207,12 @@ def _execution(args) -> Execution:
 
 
 def cmd_assess(args) -> int:
-    from .pipeline import assess_to_folder, case_warnings
+    from impact.pipeline import assess_to_folder, case_warnings
 
     case = load_case(args.case)
     reused = None
     if args.ensemble is not None:
-        from .api import load_ensemble
+        from impact.api import load_ensemble
 
         reused = load_ensemble(args.ensemble, case)
     settings = AssessSettings(members=args.members, seed=args.seed, sensitivity=not args.no_sensitivity,
@@ -238,7 +238,7 @@ def _say_replaced(written) -> None:
 
 
 def cmd_report(args) -> int:
-    from .api import build_report
+    from impact.api import build_report
 
     if args.accept_edits:
         print("WARNING: --accept-edits: the report is built even from tables that differ from what impact wrote; "
@@ -249,7 +249,7 @@ def cmd_report(args) -> int:
 
 
 def cmd_verify(args) -> int:
-    from .api import verify
+    from impact.api import verify
 
     result = verify(args.results, args.pdf)
     for line in result.lines:
@@ -260,7 +260,7 @@ def cmd_verify(args) -> int:
 
 
 def cmd_scan(args) -> int:
-    from .pipeline import ScanSettings, scan_to_folder
+    from impact.pipeline import ScanSettings, scan_to_folder
 
     case = load_case(args.case)
     scan = ScanSettings(parameter=args.parameter, start=args.start, stop=args.stop, steps=args.steps,
@@ -283,8 +283,8 @@ def cmd_scan(args) -> int:
 
 
 def cmd_sensitivity(args) -> int:
-    from .pipeline import screen_to_folder
-    from .sensitivity import Settings
+    from impact.pipeline import screen_to_folder
+    from impact.decision.sensitivity import Settings
 
     case = load_case(args.case)
     seed = args.seed if args.seed is not None else case.seed
@@ -301,7 +301,7 @@ def cmd_sensitivity(args) -> int:
 
 
 def cmd_calibrate(args) -> int:
-    from .pipeline import calibrate_to_folder
+    from impact.pipeline import calibrate_to_folder
 
     case = load_case(args.case)
     written = calibrate_to_folder(case, args.out, members=args.members, seed=args.seed, replace=args.replace_results,
@@ -500,7 +500,7 @@ def main(argv: list[str] | None = None, *, as_program: bool = False) -> int:
     finally:
         if previous is not None and as_program:
             ignore_from_now_on()
-        elif previous is not None:  # (the final move of results ignores both: see impact.outfolder)
+        elif previous is not None:  # (the final move of results ignores both: see impact.store.outfolder)
             signal.signal(signal.SIGTERM, previous[0])
             signal.signal(signal.SIGINT, previous[1])
 

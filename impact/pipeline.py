@@ -2,7 +2,7 @@
 
 Each function checks every setting before anything is computed or written, takes the folder's
 lock, keeps the executor's workers from outliving an error, and moves finished results into
-place only when complete (see :mod:`impact.outfolder`). The command line is a thin shell over
+place only when complete (see :mod:`impact.store.outfolder`). The command line is a thin shell over
 these: it parses flags into the settings below, prints, and maps :class:`SettingError`
 parameters to its flags.
 """
@@ -16,11 +16,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import __version__
-from .api import AssessSettings, Assessment, Progress, assess, prior_screen, run_header, write_results
-from .case import Case, unused_parameters
-from .errors import CaseError, SettingError
-from .preload import DYNAMICS_LIBRARIES, REPORT_LIBRARIES, SENSITIVITY_LIBRARIES, preload
+from impact.version import __version__
+from impact.api import AssessSettings, Assessment, Progress, assess, prior_screen, run_header, write_results
+from impact.case import Case, unused_parameters
+from impact.errors import CaseError, SettingError
+from impact.run.preload import DYNAMICS_LIBRARIES, REPORT_LIBRARIES, SENSITIVITY_LIBRARIES, preload
 
 
 @dataclass(frozen=True)
@@ -55,7 +55,7 @@ class Execution:
             raise SettingError("processes", "applies to workers on this machine; a cluster's workers are its own")
 
     def executor(self):
-        from .execute import make_executor
+        from impact.run.execute import make_executor
 
         return make_executor(self.workers, self.cluster, self.processes)
 
@@ -92,7 +92,7 @@ class Written:
 def case_warnings(case: Case) -> list[str]:
     """What a valid case may still get wrong: parameters no field uses (sampled and reported, but
     they change nothing), and units that name another time unit or abundance unit than the field."""
-    from .units import unit_warnings
+    from impact.case.units import unit_warnings
 
     return ([f"{case.path}: parameters.{n}: declared but no field uses it; it is sampled and appears in the "
              f"sensitivity tables as a parameter without influence (remove it, or keep it as a dummy)"
@@ -108,13 +108,13 @@ def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool 
     -------
     settings : AssessSettings
         With the case's members and seed filled in.
-    folder : impact.outfolder.OutputFolder
+    folder : impact.store.outfolder.OutputFolder
         Checked against the folder policy, not yet locked.
-    estimate : impact.budget.Estimate
+    estimate : impact.store.budget.Estimate
     """
-    from .budget import check_fits, estimate
-    from .execute import machine_cores
-    from .outfolder import OutputFolder
+    from impact.store.budget import check_fits, estimate
+    from impact.run.execute import machine_cores
+    from impact.store.outfolder import OutputFolder
 
     given = settings.members is not None
     settings = settings.resolved(case, ensemble)
@@ -143,8 +143,8 @@ def assess_to_folder(case: Case, settings: AssessSettings, out, *, replace: bool
     ensemble : impact.api.PosteriorEnsemble, optional
         A calibrated ensemble to assess (from :func:`calibrate_to_folder`) instead of drawing one.
     """
-    from .assess import draw_block_size, run_chunk_size
-    from .results import Checkpoints
+    from impact.ensemble.draws import draw_block_size, run_chunk_size
+    from impact.store.results import Checkpoints
 
     settings, folder, est = plan_assessment(case, settings, out, replace=replace, execution=execution,
                                             ensemble=ensemble)
@@ -187,8 +187,8 @@ def calibrate_to_folder(case: Case, out, *, members: int | None = None, seed: in
                         replace: bool = False, execution: Execution = Execution(),
                         progress: Progress | None = None, command: list[str] | None = None) -> Written:
     """Build the (posterior) ensemble of ``case`` alone and write it for later assessments to reuse."""
-    from .api import calibrate, save_ensemble
-    from .outfolder import OutputFolder
+    from impact.api import calibrate, save_ensemble
+    from impact.store.outfolder import OutputFolder
 
     settings = AssessSettings(members=members, seed=seed, sensitivity=False).resolved(case)
     execution.check()
@@ -209,12 +209,12 @@ def screen_to_folder(case: Case, settings, out, *, replace: bool = False, execut
 
     Parameters
     ----------
-    settings : impact.sensitivity.Settings
+    settings : impact.decision.sensitivity.Settings
         The screen's design and thresholds (checked before anything runs).
     """
-    from .outfolder import OutputFolder
-    from .results import write_csv, write_json
-    from .sensitivity import check_settings
+    from impact.store.outfolder import OutputFolder
+    from impact.store.results import write_csv, write_json
+    from impact.decision.sensitivity import check_settings
 
     check_settings(settings)
     execution.check()
@@ -290,10 +290,10 @@ class ScanSettings:
 def scan_to_folder(case: Case, scan: ScanSettings, out, *, replace: bool = False, execution: Execution = Execution(),
                    progress: Progress | None = None, command: list[str] | None = None) -> Written:
     """Run a bifurcation scan and write ``dynamics/scan.csv``, ``scan_points.csv``, ``transitions.csv``."""
-    from .dynamics import declared_settings, section_species, settings_record
-    from .outfolder import OutputFolder
-    from .results import write_csv, write_json
-    from .scan import scan_web
+    from impact.dynamics.lyapunov import declared_settings, section_species, settings_record
+    from impact.store.outfolder import OutputFolder
+    from impact.store.results import write_csv, write_json
+    from impact.dynamics.scan import scan_web
 
     scan.check()
     execution.check()

@@ -82,7 +82,7 @@ def structure_sizes(st) -> dict[str, int]:
     KernelArgumentError
         A table of another dtype or layout, inconsistent sizes, or an index outside the web.
     """
-    from .kernel import HEADER  # numba is loaded on first use only
+    from impact.engine.kernel import HEADER  # numba is loaded on first use only
 
     def bad(message):
         return KernelArgumentError("structure", "st", message)

@@ -1,6 +1,6 @@
 """Butcher tableau, step-control constants and failure reasons shared by every stepper.
 
-Both the numpy reference stepper (:mod:`impact.integrate`) and the compiled kernel
+Both the numpy reference stepper (:mod:`impact.engine.integrate`) and the compiled kernel
 (:mod:`impact.engine.kernel`) read their coefficients from here, so a change to step control is
 made once.
 """

@@ -1,9 +1,9 @@
 """Compiled tangent flow: state and tangent vector on the same Dormand–Prince steps, member by member.
 
-The Lyapunov and regime diagnostics (:func:`impact.dynamics.lyapunov_flow`) follow each member
+The Lyapunov and regime diagnostics (:func:`impact.dynamics.lyapunov.lyapunov_flow`) follow each member
 through a transient and a window while the tangent equations dv/dt = J(y) v ride along, the
 tangent renormalised at every step end (Benettin et al. 1980). The reference does this with the
-numpy stepper (:func:`impact.integrate.integrate_segment`) and an observer; this kernel does the
+numpy stepper (:func:`impact.engine.integrate.integrate_segment`) and an observer; this kernel does the
 same arithmetic in the same order for one member at a time, inside one compiled loop over the
 whole transient and window, so a member's numbers never depend on its batch and the two agree to
 the bit when they evaluate ``(f, J·v)`` with the same function.
@@ -17,7 +17,7 @@ present species; accepted states are projected onto y ≥ 0.
 The step loop here calls ``web_jvp``, the table-reading :func:`impact.engine.tangent.member_jvp`
 (compiled once for every web: the "table" engine, for the terms it knows);
 :func:`impact.engine.generate.specialised_flow` recompiles the same source around the straight-line
-J·v generated from the declared terms (:mod:`impact.terms`) for one web structure, with that J·v
+J·v generated from the declared terms (:mod:`impact.model.terms`) for one web structure, with that J·v
 written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster, every
 term). ``t`` reaches the J·v at the stage times of the numpy stepper (a sinusoidal breeding season).
 """
@@ -29,13 +29,12 @@ import sys
 
 import numpy as np
 
-from .boundary import check_kernel_arrays
-from .control import MIN_STEP_ULPS
-from .kernel import (A, B, C, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW, all_finite,
-                     chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq,
-                     trial_first_step)
-from .tangent import member_jvp as web_jvp
-from .tangent import supports_structure
+from impact.engine.boundary import check_kernel_arrays
+from impact.engine.control import MIN_STEP_ULPS
+from impact.engine.kernel import (A, B, C, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW,
+    all_finite, chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq, trial_first_step)
+from impact.engine.tangent import member_jvp as web_jvp
+from impact.engine.tangent import supports_structure
 
 # Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
 # around its own straight-line J·v; everything else in __all__ it imports from here.
@@ -90,7 +89,7 @@ def unit_on_face(x, out, n):
 
 @kernel_jit
 def hermite_max(y0, y1, f0, f1, dt):
-    """Maximum of the cubic Hermite interpolant on the step (as :func:`impact.dynamics._hermite_max`)."""
+    """Maximum of the cubic Hermite interpolant on the step (as :func:`impact.dynamics.lyapunov._hermite_max`)."""
     c1 = dt * f0
     c2 = 3.0 * (y1 - y0) - dt * (2.0 * f0 + f1)
     c3 = 2.0 * (y0 - y1) + dt * (f0 + f1)
@@ -160,7 +159,7 @@ def rows_finite(K, L, s, n):
 @kernel_jit
 def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc, fo, go, sc):
     """First step after Hairer, Nørsett & Wanner (1993), Sec. II.4 (forward in time), from f0 = K[0]
-    and f at max(y1, 0); as :func:`impact.stepper.select_initial_step`."""
+    and f at max(y1, 0); as :func:`impact.engine.stepper.select_initial_step`."""
     n = y0.shape[0]
     interval = abs(t1 - t0)
     for j in range(n):
@@ -185,7 +184,7 @@ def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc
 def flow_trial(st, cf, t, t_new, y, v, K, L, Z, work, hs, rtol, atol):
     """One Dormand–Prince step of state and tangent; returns the state's RMS error norm.
 
-    Stage sums as :func:`impact.stepper.combine` (first weight, then each next non-zero one added).
+    Stage sums as :func:`impact.engine.stepper.combine` (first weight, then each next non-zero one added).
     ``Z`` (SCRATCH, n) scratch rows: the new state and tangent end in rows ``Y_NEW`` and ``V_NEW``,
     their f and J·v in ``K[STAGES]`` and ``L[STAGES]``.
     """
@@ -243,7 +242,7 @@ def project(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
 @kernel_inline
 def take_step(y, v, K, L, y_new, v_new, bad, blowup):
     """Make the accepted step the member's state; returns its failure code (non-finite state,
-    tangent or J·v, then blow-up), as :func:`impact.integrate.integrate_segment` checks them."""
+    tangent or J·v, then blow-up), as :func:`impact.engine.integrate.integrate_segment` checks them."""
     n = y.shape[0]
     for j in range(n):
         y[j] = y_new[j]
@@ -291,8 +290,8 @@ def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_ste
     """Integrate state ``y`` and tangent ``v`` of one member from ``t0`` to ``t1`` (> t0) in place.
 
     Returns (failure code, h for the next stage, evaluations, accepted steps): one member's path
-    through :func:`impact.integrate.integrate_segment` with the observer of
-    :func:`impact.dynamics.lyapunov_flow`. ``K``, ``L`` (STAGES + 1, n): stages of f and J·v;
+    through :func:`impact.engine.integrate.integrate_segment` with the observer of
+    :func:`impact.dynamics.lyapunov.lyapunov_flow`. ``K``, ``L`` (STAGES + 1, n): stages of f and J·v;
     ``Z`` (SCRATCH, n) scratch.
     """
     n = y.shape[0]

@@ -1,11 +1,11 @@
 """Kernels specialised to one web structure: generated source, compiled by numba, cached on disk.
 
 The right-hand side is printed as straight-line code for one structure from the terms declared
-in :mod:`impact.terms` (the statements the numpy reference runs, in the same order, so results are
+in :mod:`impact.model.terms` (the statements the numpy reference runs, in the same order, so results are
 identical to the bit), and the step loop is the interpreted kernel's own source
 (:mod:`impact.engine.kernel`), recompiled around it (:func:`specialised`, files ``web_*.py``).
 The tangent flow of the diagnostics (:mod:`impact.engine.flow`) is specialised the same way: the
-J·v of the declared terms (:func:`impact.terms.tangent_program`) written out (:func:`jvp_lines`),
+J·v of the declared terms (:func:`impact.model.terms.tangent_program`) written out (:func:`jvp_lines`),
 once as ``web_jvp`` and once inside the stage loop of ``flow_trial`` (:func:`specialised_flow`,
 files ``flow_*.py``); every term has one. Each module is written to the kernel cache (``IMPACT_KERNEL_CACHE``, default
 ``~/.cache/impact/kernels``) under a name keyed by its source (which holds the structure) and the
@@ -28,14 +28,14 @@ from pathlib import Path
 import numba
 import numpy as np
 
-from . import flow, kernel
-from ..expr import Printer, used_columns
-from ..terms import Structure, program, tangent_program
+from impact.engine import flow, kernel
+from impact.model.expr import Printer, used_columns
+from impact.model.terms import Structure, program, tangent_program
 
 # Functions of the interpreted kernel that call the right-hand side, copied into every module.
 STEPPER_FUNCTIONS = ("combine_stages", "initial_step", "trial_step", "accept_step", "segment", "member",
                      "run_members")
-# (f, J·v) of many members with the generated J·v (for :class:`impact.jacobian.WebTangent`)
+# (f, J·v) of many members with the generated J·v (for :class:`impact.engine.jacobian.WebTangent`)
 BATCH_JVP = """@kernel_jit
 def batch_jvp(st, coef, t, y, v, out, jv):
     work = np.empty((10, y.shape[1]))
@@ -62,7 +62,7 @@ def cache_dir() -> Path:
 
 def rhs_source(st: np.ndarray) -> str:
     """Straight-line ``web_rhs(st, cf, t, y, out, work)`` for the structure table ``st``: the statements
-    of :func:`impact.terms.program`, printed in their order."""
+    of :func:`impact.model.terms.program`, printed in their order."""
     s = Structure.decode(st)
     pr = Printer(s.col, lambda k: f"cf[{k}]", lambda i: f"y{i}", None, numpy=False)
     body = [f"y{i} = y[{i}]" for i in range(s.n)]
@@ -100,7 +100,7 @@ def _fix_state_size(source: str, n: int) -> str:
 
 def jvp_lines(st: np.ndarray, y, v, f, g, time: str = "t") -> tuple[list[str], list[int]]:
     """Straight-line statements computing ``f(t, y)`` and ``J(t, y) v`` for structure ``st``: the
-    statements of :func:`impact.terms.tangent_program` (the right-hand side's, each followed by its
+    statements of :func:`impact.model.terms.tangent_program` (the right-hand side's, each followed by its
     derivative), the numpy reference's operations in its order.
 
     ``y``, ``v``, ``f``, ``g`` map a state column to the name of its input or output; coefficient
@@ -122,7 +122,7 @@ def _function(head: str, body: list[str]) -> str:
 
 
 def jvp_source(st: np.ndarray) -> str:
-    """Straight-line ``web_jvp(st, cf, t, y, v, out, jv, work)``, as :func:`impact.terms.numpy_jvp`."""
+    """Straight-line ``web_jvp(st, cf, t, y, v, out, jv, work)``, as :func:`impact.model.terms.numpy_jvp`."""
     n = int(st[1])
     lines, used = jvp_lines(st, lambda i: f"y{i}", lambda i: f"v{i}", lambda i: f"out[{i}]", lambda i: f"jv[{i}]")
     body = [f"c{k} = cf[{k}]" for k in used] + [f"y{i} = y[{i}]" for i in range(n)] + [f"v{i} = v[{i}]" for i in range(n)]
@@ -236,7 +236,7 @@ def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
     Parameters
     ----------
     st : int64 ndarray
-        Structure table (:func:`impact.terms.pack_structure`).
+        Structure table (:func:`impact.model.terms.pack_structure`).
     n_coef : int
         Coefficient columns of the web (the width of its packed coefficient rows).
     """

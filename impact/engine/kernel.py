@@ -4,14 +4,14 @@ One member at a time is integrated through a whole segment with its state in sma
 arrays, interpreting a compact table of the web's structure (:func:`impact.engine.web.pack`): the
 kernel is compiled once for every web and cached on disk (``cache=True``), so a case never pays
 compilation for its own structure. Every floating-point operation mirrors, in the same order, the
-numpy reference (:func:`impact.integrate.integrate_segment` with :class:`impact.model.WebRHS`),
+numpy reference (:func:`impact.engine.integrate.integrate_segment` with :class:`impact.model.WebRHS`),
 so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
 Members are independent by construction: nothing is shared between rows.
 
-The structure table and coefficient rows are laid out in :mod:`impact.terms` (header entries
+The structure table and coefficient rows are laid out in :mod:`impact.model.terms` (header entries
 ``HEAD_*``; coefficient blocks ``K_*`` below). This kernel interprets the table (the "table"
 engine); the "compiled" engine's right-hand side is generated from the terms declared in
-:mod:`impact.terms` (:mod:`impact.engine.generate`), and the tests hold the two equal to the bit.
+:mod:`impact.model.terms` (:mod:`impact.engine.generate`), and the tests hold the two equal to the bit.
 """
 
 from __future__ import annotations
@@ -21,13 +21,13 @@ import math
 import numba
 import numpy as np
 
-from .control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY,
-                      DormandPrince54, Failure)
+from impact.engine.control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY, DormandPrince54,
+    Failure)
 
-from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_CROWDING, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S,
-                     HEAD_U, HEADER, SPECIES_COEFFICIENTS, Structure, terms_used)
+from impact.model.terms import (HEAD_CARRION, HEAD_CC, HEAD_CROWDING, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O,
+    HEAD_S, HEAD_U, HEADER, SPECIES_COEFFICIENTS, Structure, terms_used)
 
-# first column of each per-species coefficient block, in units of S (layout in impact.terms)
+# first column of each per-species coefficient block, in units of S (layout in impact.model.terms)
 K_SCALE, K_RPOS, K_LIN, K_DENS, K_INFLOW, K_QUAD, K_GAMMA, K_STERILE, K_MAT, K_AMP, K_OMEGA, K_PHASE = range(
     len(SPECIES_COEFFICIENTS))
 K_LINKS = len(SPECIES_COEFFICIENTS)  # the per-link blocks start at K_LINKS · S
@@ -50,7 +50,7 @@ BLOWUP = int(Failure.BLOWUP)
 UNDERFLOW = int(Failure.UNDERFLOW)
 TOO_MANY = int(Failure.TOO_MANY_STEPS)
 
-# The declared terms (impact.terms.TERMS) web_rhs interprets: the "table" engine refuses a web
+# The declared terms (impact.model.terms.TERMS) web_rhs interprets: the "table" engine refuses a web
 # with any other (a term declared later runs in the generated kernel without touching this file).
 TABLE_TERMS = frozenset({"births", "feeding", "controls", "sinusoidal_breeding", "sterile_release", "life_stages",
                          "logistic", "crowding", "linear", "eaten", "carrion"})
@@ -252,7 +252,7 @@ def rms(x, n):
 
 @kernel_jit
 def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
-    """Per-member copy of :func:`impact.stepper.select_initial_step` (HNW 1993, Sec. II.4)."""
+    """Per-member copy of :func:`impact.engine.stepper.select_initial_step` (HNW 1993, Sec. II.4)."""
     n = y0.shape[0]
     interval = abs(t1 - t0)
     for j in range(n):
@@ -305,7 +305,7 @@ def all_finite(x):
 @kernel_jit
 def combine_stages(K, coeffs, count, out):
     """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
-    order of :func:`impact.stepper.combine`."""
+    order of :func:`impact.engine.stepper.combine`."""
     n = out.shape[0]
     first = True
     for s in range(count):
@@ -328,7 +328,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
     of member right-hand-side evaluations.
 
     ``y0`` (M, n) finite non-negative states, ``h0`` (M,) first steps (NaN: choose), ``coef``
-    (M, P) coefficient rows; outputs as the fields of :class:`impact.integrate.SegmentResult`
+    (M, P) coefficient rows; outputs as the fields of :class:`impact.engine.integrate.SegmentResult`
     (``ymin``/``ymax`` must hold ``y0`` on entry).
     """
     M, n = y0.shape
@@ -362,7 +362,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
 @kernel_inline
 def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
     """One Dormand-Prince step of size ``hs`` from ``y`` (derivative in ``K[0]``) into ``y_new``
-    (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.integrate.error_norm`."""
+    (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.engine.integrate.error_norm`."""
     n = y.shape[0]
     for s in range(1, STAGES):
         combine_stages(K, A[s], s, tmp)
@@ -382,7 +382,7 @@ def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
 
 @kernel_inline
 def next_step(err, hs, rejected):
-    """The controller of :func:`impact.stepper.next_step` for one member: the next step size."""
+    """The controller of :func:`impact.engine.stepper.next_step` for one member: the next step size."""
     factor = SAFETY * err ** ERROR_EXPONENT if err != 0 else math.inf
     if err < 1:
         grow = MAX_FACTOR if err == 0 else nmin(MAX_FACTOR, factor)
@@ -489,7 +489,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
 
     The arithmetic is that of :func:`segment` called once per segment (each member continuing from
     its previous step size) with the jumps and running extremes of
-    :func:`impact.simulate.run_option` between calls, so both give the same numbers to the bit.
+    :func:`impact.engine.simulate.run_option` between calls, so both give the same numbers to the bit.
 
     ``coef`` (K, M, P) coefficient rows per segment, or (1, M, P) for every segment; ``times`` (K+1,); ``y0`` (M, n) the state after
     the jumps at ``times[0]`` (non-finite rows have failed); ``h0`` (M,) first step sizes (NaN:

@@ -1,7 +1,7 @@
 """The table-reading right-hand side and J·v, member by member (numba): the "table" engine of the
 tangent flow (:mod:`impact.engine.flow`), compiled once for every web.
 
-The "compiled" engine's J·v is generated from the terms declared in :mod:`impact.terms` for each
+The "compiled" engine's J·v is generated from the terms declared in :mod:`impact.model.terms` for each
 structure (:func:`impact.engine.generate.jvp_source`) and knows every term; this interpreter of the
 structure table knows the terms :func:`supports` lists, and the tests hold it equal to the
 generated J·v to the bit on the webs it supports.
@@ -11,9 +11,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..terms import (HEAD_CARRION, HEAD_CC, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S, HEAD_U, HEADER,
-                     Structure, pack_structure, terms_used)
-from .kernel import K_DENS, K_INFLOW, K_LIN, K_LINKS, K_RPOS, K_SCALE, kernel_jit
+from impact.model.terms import (HEAD_CARRION, HEAD_CC, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O, HEAD_S, HEAD_U,
+    HEADER, Structure, pack_structure, terms_used)
+from impact.engine.kernel import K_DENS, K_INFLOW, K_LIN, K_LINKS, K_RPOS, K_SCALE, kernel_jit
 
 
 def supports(web) -> bool:
@@ -22,7 +22,7 @@ def supports(web) -> bool:
     return supports_structure(pack_structure(web))
 
 
-# The declared terms (impact.terms.TERMS) member_jvp differentiates (a term declared later is
+# The declared terms (impact.model.terms.TERMS) member_jvp differentiates (a term declared later is
 # refused here and runs in the generated J·v).
 TABLE_TERMS = frozenset({"births", "feeding", "controls", "logistic", "linear", "eaten", "carrion"})
 

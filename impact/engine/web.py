@@ -4,8 +4,8 @@
 structure (:mod:`impact.engine.generate`, compiled once per structure and cached on disk);
 ``"table"`` the same step loop reading a structure table (:mod:`impact.engine.kernel`, compiled
 once for every web); ``"numpy"`` the ensemble reference stepper
-(:func:`impact.integrate.integrate_segment` with :class:`impact.model.WebRHS`). All return
-:class:`impact.integrate.SegmentResult` with the same numbers to the bit (checked by the tests);
+(:func:`impact.engine.integrate.integrate_segment` with :class:`impact.model.WebRHS`). All return
+:class:`impact.engine.integrate.SegmentResult` with the same numbers to the bit (checked by the tests);
 the compiled ones have no per-step fixed cost, and the generated one is the fastest (see bench/).
 """
 
@@ -16,12 +16,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..integrate import SegmentResult, integrate_segment
-from ..model import (Controls, FoodWeb, SegmentCoefficients, WebParams, WebRHS, pack_coefficients,
-                     segment_coefficients)
-from ..terms import pack_structure
-from .boundary import check_kernel_arrays
-from .control import MIN_RTOL, Failure
+from impact.engine.integrate import SegmentResult, integrate_segment
+from impact.model import (Controls, FoodWeb, SegmentCoefficients, WebParams, WebRHS, pack_coefficients,
+    segment_coefficients)
+from impact.model.terms import pack_structure
+from impact.engine.boundary import check_kernel_arrays
+from impact.engine.control import MIN_RTOL, Failure
 
 __all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
            "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
@@ -47,18 +47,18 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
     if engine == "table":
-        from . import kernel
+        from impact.engine import kernel
 
         if not kernel.knows(st):
             raise ValueError("the table engine does not know every term of this web: use engine='compiled'")
         return kernel
-    from .generate import specialised
+    from impact.engine.generate import specialised
 
     return specialised(st)
 
 
 def tolerance(value, n: int, name: str) -> np.ndarray:
-    """A tolerance as an (n,) array; the same rules as :func:`impact.integrate.integrate_segment`."""
+    """A tolerance as an (n,) array; the same rules as :func:`impact.engine.integrate.integrate_segment`."""
     arr = np.asarray(value, dtype=float)
     if arr.ndim > 1 or (arr.ndim == 1 and arr.shape != (n,)):
         raise ValueError(f"{name} must be a scalar or have shape ({n},), got shape {arr.shape}")

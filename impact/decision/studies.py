@@ -1,0 +1,266 @@
+"""Which study to fund: the expected value of sample information (EVSI) of each candidate study.
+
+A candidate study (:class:`impact.case.studies.Study`) yields data whose distribution depends on a
+member's parameters or on its state today. Its value to the choice among doing nothing and every
+option is, with ``D`` the study's data and ``NB[i, d]`` a member's realised net benefit,
+
+    ``EVSI = E_D[max_d E(NB_d | D)] − max_d E(NB_d)``
+
+(Raiffa & Schlaifer 1961; Ades, Lu & Claxton 2004, Medical Decision Making 24:207–227). It is
+estimated on the existing ensemble by regression (Strong, Brennan & Oakley 2015, Medical Decision
+Making 35:570–583): every member's study data are simulated from its own parameters and state through
+the declared observation model, summarised in a low-dimensional statistic ``T(D)`` (per measured
+quantity, the log of the mean count, or the mean log index: sufficient for the Poisson and the
+lognormal, nearly so for the negative binomial), and each decision's net benefit is regressed on
+``T``. The regression, the cross-fitting that keeps the maximum from picking up fitted noise, the
+clipping at 0 and the bootstrap are those of the EVPPI (:mod:`impact.decision.voi`, whose public functions are
+used as they are); the resamples are the very ones of ``sensitivity/information.csv`` (the same seed
+and purpose), so each study's ceiling is the EVPPI printed there.
+
+Bounds: data on φ can at most tell φ exactly, so ``EVSI ≤ EVPPI(φ) ≤ EVPI``; the estimate is capped at
+the EVPPI of what the study measures (the parameter or group; every parameter, i.e. the EVPI, for a
+survey of a species, whose abundance today depends on all of them) resample by resample, as the
+EVPPI is capped at the EVPI. A value whose bootstrap lower limit is 0 is not distinguishable from no
+value at all.
+
+Study data are drawn from each member's own stream ``SeedSequence(seed, spawn_key=(draw,
+PURPOSE_STUDIES, key))``, ``key`` the CRC-32 of the study's name: a member's data do not depend on
+which other members are kept, on their order, or on the other studies declared.
+
+Valued in money or a common unit only where the case declares it (``[outcome_values]``): the expected
+net benefit of sampling is then ``EVSI × value of a certain good outcome − cost``. Otherwise the EVSI
+(in probability units) and the cost stand side by side, unconverted.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+import pandas as pd
+
+from impact.risk.effects import BASELINE, good_outcome
+from impact.model import resolve
+from impact.decision.voi import PURPOSE_VOI, Estimate, bootstrap_counts, penalised_design, rule_gains
+
+PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
+
+
+def _stream(seed: int, draw: int, key: int) -> np.random.Generator:
+    return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(int(draw), PURPOSE_STUDIES, key))))
+
+
+def study_key(name: str) -> int:
+    """The study's word in its members' spawn keys: the CRC-32 of its name (independent of declaration order)."""
+    return zlib.crc32(name.encode("utf-8"))
+
+
+def simulate_summary(truth: np.ndarray, error: str, samples: int, detection: np.ndarray, scale: np.ndarray,
+                     dispersion: np.ndarray | None, log_sd: np.ndarray | None, draws: np.ndarray, seed: int,
+                     key: int) -> np.ndarray:
+    """Each member's summary of ``samples`` simulated observations of each measured quantity.
+
+    Parameters
+    ----------
+    truth : ndarray (M, k)
+        The measured quantities (abundance today, or parameter values), >= 0 (> 0 for the lognormal).
+    error : str
+        ``poisson`` (mean ``detection × scale × truth``), ``negative-binomial`` (same mean, size
+        ``dispersion``) or ``lognormal`` (median ``scale × truth``, log-SD ``log_sd``).
+    detection, scale, dispersion, log_sd : ndarray (M,)
+        Per member (``dispersion``/``log_sd`` None when the model has none).
+    draws : ndarray (M,) int
+        Members' draw indices (their identity in the random path).
+
+    Returns
+    -------
+    ndarray (M, k)
+        ``log(mean count + 0.5/samples)`` for counts, the mean log value for the lognormal; NaN where
+        the truth is not finite (a failed member).
+    """
+    truth = np.asarray(truth, float)
+    M, k = truth.shape
+    out = np.full((M, k), np.nan)
+    for i in range(M):
+        if not np.isfinite(truth[i]).all():
+            continue
+        rng = _stream(seed, draws[i], key)
+        if error == "lognormal":
+            z = rng.standard_normal((k, samples)).mean(axis=1)
+            out[i] = np.log(scale[i] * truth[i]) + log_sd[i] * z
+            continue
+        mu = np.broadcast_to(detection[i] * scale[i] * np.maximum(truth[i], 0.0)[:, None], (k, samples))
+        if error == "negative-binomial":
+            mu = rng.gamma(dispersion[i], mu / dispersion[i])
+        out[i] = np.log(rng.poisson(mu).mean(axis=1) + 0.5 / samples)
+    return out
+
+
+def study_summary(case, study, values: dict, today: np.ndarray, draws: np.ndarray, seed: int) -> np.ndarray:
+    """Summary (M, k) of ``study``'s simulated data for every member (:func:`simulate_summary`).
+
+    ``values`` are the members' parameter values (M,) by name, ``today`` their state today (M, n_state).
+    """
+    M = len(draws)
+    if study.measures == "species":
+        truth = today[:, [case.species_names.index(study.target)]]
+    else:
+        truth = np.column_stack([values[p] for p in study.parameters])
+    opt = {n: (None if getattr(study, n) is None else resolve(getattr(study, n), values, M))
+           for n in ("detection", "scale", "dispersion", "log_sd")}
+    return simulate_summary(truth, study.error, study.samples, draws=draws, seed=seed, key=study_key(study.name), **opt)
+
+
+def _estimate(reps: np.ndarray, confidence: float) -> Estimate:
+    a = (1 - confidence) / 2
+    return Estimate(float(reps[0]), float(np.quantile(reps[1:], a)), float(np.quantile(reps[1:], 1 - a)))
+
+
+def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
+                       studies: dict[str, tuple[np.ndarray, list[str] | None]], *, resamples: int = 200,
+                       confidence: float = 0.95, seed: int = 0) -> list[dict[str, tuple[Estimate, Estimate]]]:
+    """EVSI of each study, and its ceiling, for several choice sets on the same members.
+
+    Parameters
+    ----------
+    nbs : list of ndarray (M, D_j)
+        Realised net benefits of each choice set (an objective's good outcome, or a valued sum).
+    X : ndarray (M, P)
+        The members' parameter values, columns in the order of ``names``.
+    studies : dict of str -> (ndarray (M, k), list of str or None)
+        Each study's data summary and the parameters it measures (None: all, the ceiling is the EVPI).
+
+    Returns
+    -------
+    list (one per choice set) of dict str -> (EVSI, ceiling)
+        Values and limits clipped at 0; the EVSI capped at its ceiling (the EVPPI of what the study
+        measures, itself capped at the EVPI) resample by resample.
+    """
+    nb = np.hstack([np.asarray(n, float) for n in nbs])
+    edges = np.cumsum([0] + [np.asarray(n).shape[1] for n in nbs])
+    splits = [slice(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    X = np.asarray(X, float).reshape(nb.shape[0], -1)
+    M = nb.shape[0]
+    # the resamples of impact.decision.voi.information_values_many: the same seed and purpose, hence the same rows
+    ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
+    rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
+    W = np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
+    col = {n: j for j, n in enumerate(names)}
+    ceilings: dict[tuple, np.ndarray] = {}
+    out: list[dict] = [{} for _ in splits]
+    for key, (Z, informs) in studies.items():
+        if informs is None:
+            ceiling = top
+        else:
+            k = tuple(informs)
+            if k not in ceilings:
+                gains = rule_gains(nb, *penalised_design(X[:, [col[m] for m in k]]), W, splits)
+                ceilings[k] = np.minimum(np.maximum(gains, 0.0), top)
+            ceiling = ceilings[k]
+        Z = np.asarray(Z, float).reshape(M, -1)
+        v = np.minimum(np.maximum(rule_gains(nb, *penalised_design(Z), W, splits), 0.0), ceiling)
+        for o, row, cap in zip(out, v, ceiling):
+            o[key] = (_estimate(row, confidence), _estimate(cap, confidence))
+    return out
+
+
+STUDY_COLUMNS = ("study", "measures", "target", "error", "samples", "objective", "evsi", "low", "high",
+                 "distinguishable", "ceiling", "ceiling_low", "ceiling_high", "ceiling_of", "cost", "cost_unit",
+                 "value_scale", "enbs", "enbs_low", "enbs_high", "worth_cost", "interval", "level", "n", "unit")
+VALUED_TOGETHER = "valued objectives together"
+PROBABILITY_UNIT = "probability of a good outcome"
+RESAMPLES = 100  # as the EVPPI of sensitivity/information.csv (impact.decision.hinges.RESAMPLES)
+
+
+def worth_cost(enbs_low: float, enbs_high: float) -> str:
+    """``yes`` when the expected net benefit of sampling is above 0 at its lower limit, ``no`` when below 0
+    at its upper limit, else ``undetermined`` (NaN limits: ``no value scale``)."""
+    if not (np.isfinite(enbs_low) and np.isfinite(enbs_high)):
+        return "no value scale"
+    return "yes" if enbs_low > 0 else ("no" if enbs_high < 0 else "undetermined")
+
+
+def _choice_sets(case, summaries: dict, choices: list[str]) -> list[tuple[str, np.ndarray, float | None, str]]:
+    """(objective, net benefits (M, D), value scale, unit) of each objective, and the valued sum where declared."""
+    sets = []
+    ov = case.outcome_values
+    for obj in case.objectives:
+        nb = np.column_stack([good_outcome(case, obj, summaries[c]) for c in choices])
+        sets.append((obj.name, nb, None if ov is None else ov.of(obj.name), PROBABILITY_UNIT))
+    if ov is not None and ov.values:
+        valued = [(o, ov.of(o.name)) for o in case.objectives if ov.of(o.name) is not None]
+        total = sum(v * np.column_stack([good_outcome(case, o, summaries[c]) for c in choices]) for o, v in valued)
+        sets.append((VALUED_TOGETHER, total, 1.0, ov.unit))
+    return sets
+
+
+def studies_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict, seed: int) -> pd.DataFrame:
+    """EVSI of every candidate study under every objective (and the valued objectives together), with costs.
+
+    Parameters
+    ----------
+    values : dict of str -> ndarray (M,)
+        Kept members' parameter values.
+    today, draws : ndarray (M, n_state), (M,)
+        Their state today and draw indices.
+    summaries : dict of str -> run summary
+        Doing nothing (``baseline``) and every option, on the same members; an objective's net benefit
+        in a member is its good outcome (:func:`impact.risk.effects.good_outcome`), as in the EVPPI.
+    """
+    choices = [BASELINE, *(o.name for o in case.options)]
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    data = {s.name: study_summary(case, s, values, today, draws, seed) for s in case.studies}
+    informs = {s.name: (list(s.parameters) if s.parameters else None) for s in case.studies}
+    rows = []
+    for objective, nb, scale, unit in _choice_sets(case, summaries, choices):
+        ok = np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
+        est = sample_values_many([nb[ok]], X[ok], names, {k: (z[ok], informs[k]) for k, z in data.items()},
+                                 resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)[0]
+        for s in case.studies:
+            e, cap = est[s.name]
+            enbs = [np.nan] * 3 if scale is None else [scale * x - s.cost for x in (e.value, e.low, e.high)]
+            rows.append(dict(study=s.name, measures=s.measures, target=s.target, error=s.error, samples=s.samples,
+                             objective=objective, evsi=e.value, low=e.low, high=e.high, distinguishable=bool(e.low > 0),
+                             ceiling=cap.value, ceiling_low=cap.low, ceiling_high=cap.high,
+                             ceiling_of="all parameters" if informs[s.name] is None else s.target,
+                             cost=s.cost, cost_unit=s.cost_unit, value_scale=np.nan if scale is None else scale,
+                             enbs=enbs[0], enbs_low=enbs[1], enbs_high=enbs[2], worth_cost=worth_cost(enbs[1], enbs[2]),
+                             interval="bootstrap_percentile", level=case.risk.confidence, n=int(ok.sum()), unit=unit))
+    return pd.DataFrame(rows, columns=list(STUDY_COLUMNS))
+
+
+SIZE_FACTORS = (0.25, 0.5, 1.0, 2.0, 4.0)  # sample sizes tried around the declared one, for "how large?"
+SIZE_COLUMNS = ("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling", "unit", "n")
+
+
+def study_sizes_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict,
+                      seed: int) -> pd.DataFrame:
+    """EVSI of every study at a quarter, half, once, twice and four times its declared sample size.
+
+    The same members, resamples and ceilings as :func:`studies_table`; a member's data at every size come from
+    its one stream for the study (the smaller samples are the first draws of the larger ones for a single
+    measured quantity), so the curve's steps are not blurred by fresh noise at each size.
+    """
+    from dataclasses import replace
+
+    choices = [BASELINE, *(o.name for o in case.options)]
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    data, informs, sizes = {}, {}, []
+    for s in case.studies:
+        for n in sorted({max(1, int(round(s.samples * f))) for f in SIZE_FACTORS}):
+            data[(s.name, n)] = study_summary(case, replace(s, samples=n), values, today, draws, seed)
+            informs[(s.name, n)] = list(s.parameters) if s.parameters else None
+            sizes.append((s, n))
+    rows = []
+    for objective, nb, _, unit in _choice_sets(case, summaries, choices):
+        ok = np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
+        est = sample_values_many([nb[ok]], X[ok], names, {k: (z[ok], informs[k]) for k, z in data.items()},
+                                 resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)[0]
+        for s, n in sizes:
+            e, cap = est[(s.name, n)]
+            rows.append(dict(study=s.name, objective=objective, samples=n, declared=bool(n == s.samples), evsi=e.value,
+                             low=e.low, high=e.high, ceiling=cap.value, unit=unit, n=int(ok.sum())))
+    return pd.DataFrame(rows, columns=list(SIZE_COLUMNS))

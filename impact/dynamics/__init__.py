@@ -1,0 +1,1 @@
+"""The dynamics stage: regimes, Lyapunov exponents, predictability, scans."""

@@ -1,0 +1,1 @@
+"""The ensemble stage: random streams, parameter draws, observation models, calibration, plausible draws."""

@@ -1,0 +1,204 @@
+"""The plausible ensemble: draws of the prior kept where the web of today persists and fits what is observed.
+
+No file I/O here; :mod:`impact.store.results` writes what this returns.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from impact.case import Case
+from impact.errors import CaseError
+from impact.model import FoodWeb, WebParams, build_web, web_params
+from impact.ensemble.sample import draw_uniforms, parameter_values
+from impact.engine.simulate import plausibility, spin_up
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True)
+class Ensemble:
+    """The kept (plausible) draws of today's ecosystem.
+
+    Attributes
+    ----------
+    draws : ndarray (M,) int
+        Draw index of each kept member (its identity in the random path).
+    unit : ndarray (M, D)
+        Unit-hypercube coordinates of the uncertain parameters.
+    values : dict of str -> ndarray (M,)
+    params : WebParams
+    today : ndarray (M, n_state)
+    counts : dict
+        tried, kept, failed, extinct, out_of_range, wanted.
+    """
+
+    draws: np.ndarray
+    unit: np.ndarray
+    values: dict
+    params: WebParams
+    today: np.ndarray
+    counts: dict
+
+
+def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
+    """Spin up candidate draws and judge their plausibility (pure; no random numbers).
+
+    Returns
+    -------
+    values, params, today, verdict
+    """
+    values = parameter_values(case, unit)
+    p = web_params(case, values, unit.shape[0])
+    today, late_min, failed, _ = spin_up(case, web, p)
+    verdict = plausibility(case, web, today, late_min, failed)
+    return values, p, today, verdict
+
+
+# Draws are screened in blocks of consecutive draw indices; like the run chunks, blocks are as
+# large as an even share of the workers allows (every step has a fixed cost), within bounds.
+MIN_BLOCK = 256
+MAX_BLOCK = 4096
+
+
+def draw_block_size(members: int, workers: int) -> int:
+    """Draw indices per screening block: the expected need (10 % spare) cut into a multiple of the
+    workers' number of blocks, each at most ``MAX_BLOCK`` (so every worker gets the same share)."""
+    need, w = 1.1 * members, max(workers, 1)
+    rounds = int(np.ceil(need / (w * MAX_BLOCK)))
+    return int(np.clip(np.ceil(need / (rounds * w)), MIN_BLOCK, MAX_BLOCK))
+# Members per chunk of the option runs: a chunk is one worker's unit of work (every option on its
+# members, so noise and chance events are drawn once) and one checkpoint. The compiled engine's cost
+# is proportional to the members, so several chunks per worker balance the load; a chunk holds the
+# trajectories of all its runs until summarised, which bounds it (common practice, no source).
+MIN_CHUNK = 100
+MAX_CHUNK = 2000  # member runs held at once: members × runs
+CHUNKS_PER_WORKER = 4
+
+
+def run_chunk_size(members: int, workers: int, runs: int = 1) -> int:
+    """Members per chunk for ``members`` on ``workers`` workers, each chunk running ``runs`` options."""
+    chunks = CHUNKS_PER_WORKER * max(workers, 1)
+    return int(np.clip(np.ceil(members / chunks), MIN_CHUNK, max(MIN_CHUNK, MAX_CHUNK // max(runs, 1))))
+
+
+@dataclass(frozen=True)
+class ScreenTask:
+    """Draw indices ``start`` .. ``stop - 1`` of the random path, to spin up and judge."""
+
+    case: Case
+    seed: int
+    start: int
+    stop: int
+
+
+def screen_block(task: ScreenTask) -> dict[str, np.ndarray]:
+    """Spin up one block of candidate draws (a worker's function).
+
+    Returns
+    -------
+    dict of ndarrays
+        ``draws`` (B,), the verdict flags ``kept``, ``failed``, ``extinct``, ``range`` (B,),
+        and for kept draws only ``unit`` (K, D) and ``today`` (K, n_state).
+    """
+    case = task.case
+    draws = np.arange(task.start, task.stop)
+    unit = draw_uniforms(case, task.seed, draws)
+    _, _, today, v = screen_draws(case, build_web(case), unit)
+    k = v["kept"]
+    return {"draws": draws, **{f: v[f] for f in ("kept", "failed", "extinct", "range")},
+            "unit": unit[k], "today": today[k]}
+
+
+def make_ensemble(case: Case, draws, unit, today, counts) -> Ensemble:
+    values = parameter_values(case, unit)
+    return Ensemble(draws, unit, values, web_params(case, values, len(draws)), today, counts)
+
+
+class LowAcceptance(Exception):
+    """The first round of draws kept fewer than the share asked for (``min_rate`` of :func:`draw_ensemble`)."""
+
+    def __init__(self, tried: int, kept: int):
+        self.tried, self.kept = tried, kept
+        super().__init__(f"{kept} of {tried} draws plausible")
+
+
+def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = None,
+                  progress: Progress | None = None, executor=None, store=None, block: int | None = None,
+                  min_rate: float | None = None) -> Ensemble:
+    """The first ``members`` plausible draws in index order (at most ``max_draws`` tried).
+
+    ``tried`` and the rejection counts cover the draws up to the last one kept, so they do not
+    depend on how the draws were blocked or where they were computed.
+
+    Parameters
+    ----------
+    executor : object with ``map(fn, tasks)``, optional
+        Where blocks are computed (default: in this process).
+    store : impact.store.results.Checkpoints, optional
+        Finished blocks are saved there and reused on a resumed run.
+    block : int, optional
+        Draw indices per block (default :func:`draw_block_size`); results do not depend on it.
+    min_rate : float, optional
+        Raise :class:`LowAcceptance` when the first round of blocks keeps fewer than this share
+        of its draws and not enough members (the caller then turns to another sampler).
+    """
+    from impact.run.execute import InProcess, count
+
+    executor = executor or InProcess()
+    B = block or draw_block_size(members, executor.workers)
+    max_draws = max_draws or max(case.max_draws, members)
+    blocks: dict[int, dict] = {}
+    n_kept = 0
+    next_start = 0
+    rate = 1.0
+    while n_kept < members and next_start < max_draws:
+        # enough blocks for the expected acceptance rate, at least one per worker
+        need = members - n_kept
+        n_blocks = max(executor.workers, int(np.ceil(1.1 * need / max(rate, 0.02) / B)))
+        starts = [s for s in range(next_start, max_draws, B)][:n_blocks]
+        next_start = starts[-1] + B
+        tasks, todo = [], []
+        for s in starts:
+            saved = store.get(f"draws-{s}") if store else None
+            if saved is not None:
+                blocks[s] = saved
+            else:
+                tasks.append(ScreenTask(case, seed, s, min(s + B, max_draws)))
+                todo.append(s)
+        for i, res in executor.map(screen_block, tasks):
+            blocks[todo[i]] = res
+            if store:
+                store.put(f"draws-{todo[i]}", res)
+        n_kept = sum(int(b["kept"].sum()) for b in blocks.values())
+        tried = sum(b["draws"].size for b in blocks.values())
+        if min_rate is not None and n_kept < members and n_kept < min_rate * tried:
+            raise LowAcceptance(tried, n_kept)
+        min_rate = None  # judged on the first round only
+        rate = max(n_kept / tried, 1e-3)
+        count(progress, "drawing today's ecosystem", min(n_kept, members), members, f"plausible, {tried} tried")
+    order = sorted(blocks)
+    kept_all = np.concatenate([blocks[s]["kept"] for s in order])
+    draws_all = np.concatenate([blocks[s]["draws"] for s in order])
+    if kept_all.sum() >= members:
+        tried = int(np.flatnonzero(kept_all)[members - 1]) + 1
+    else:
+        tried = int(draws_all.size)
+    flags = {f: np.concatenate([blocks[s][f] for s in order])[:tried] for f in ("failed", "extinct", "range")}
+    n_kept = min(int(kept_all[:tried].sum()), members)
+    if n_kept == 0:
+        raise CaseError(case.path, "observed",
+                        f"none of {tried} draws gave a plausible web today ({int(flags['failed'].sum())} numerical "
+                        f"failures, {int(flags['extinct'].sum())} with a species below its quasi-extinction level, "
+                        f"{int(flags['range'].sum())} outside an observed range); widen the priors or the observed "
+                        "ranges, or raise case.max_draws")
+    unit = np.concatenate([blocks[s]["unit"] for s in order])[:n_kept]
+    today = np.concatenate([blocks[s]["today"] for s in order])[:n_kept]
+    draws = draws_all[kept_all][:n_kept]
+    counts = dict(wanted=members, tried=tried, kept=n_kept, failed=int(flags["failed"].sum()),
+                  extinct=int(flags["extinct"].sum()), out_of_range=int(flags["range"].sum()))
+    return make_ensemble(case, draws, unit, today, counts)
+

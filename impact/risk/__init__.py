@@ -1,0 +1,1 @@
+"""The risk stage: options run on the ensemble, per-member summaries, the metrics, paired effects."""

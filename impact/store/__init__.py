@@ -1,0 +1,1 @@
+"""The results folder: schema, writing and reading, manifest, data dictionary, checkpoints, size estimate."""
