@@ -119,7 +119,7 @@ def objective_levels(m) -> dict[str, list[tuple[float, str]]]:
 def regime_figure(shares: pd.DataFrame) -> bytes:
     """Share of members in each dynamical regime, per option."""
     opts = list(dict.fromkeys(shares.option))
-    fig = new_figure(6.0, 0.45 * len(opts) + 1.2)
+    fig = new_figure(6.0, 0.3 * len(opts) + 0.9)
     ax = fig.add_subplot()
     left = np.zeros(len(opts))
     for reg in dict.fromkeys(shares.regime):
@@ -157,7 +157,7 @@ def distribution_drawing(regimes: pd.DataFrame, unit: str, horizon: float):
     horizon included) are one bar per option past a dashed line, labelled "beyond". A panel with
     nothing to draw holds a sentence saying so.
     """
-    fig = new_figure(6.6, 2.6)
+    fig = new_figure(6.6, 2.2)
     axes = fig.subplots(1, 2)
     H = float(horizon)
     edges = np.linspace(0.0, H, HORIZON_BINS + 1)

@@ -214,9 +214,10 @@ def dynamics_context(res: Results, assets: Assets) -> dict | None:
     ctx = dict(figures=[], shares=[], transitions=[], scan_run=False)
     sh = d.get("regime_shares")
     if sh is not None and not sh.empty:
-        ctx["figures"].append(dict(src=assets.add("regimes.png", regime_figure(sh), "image/png"),
-                                   caption="Share of screened members in each dynamical regime, per option "
-                                           "(long-run attractor, noise off; intervals in regime_shares.csv)."))
+        if sh.regime.nunique() > 1:  # one regime everywhere: the table says it all, a bar of one colour adds nothing
+            ctx["figures"].append(dict(src=assets.add("regimes.png", regime_figure(sh), "image/png"),
+                                       caption="Share of screened members in each dynamical regime, per option "
+                                               "(long-run attractor, noise off; intervals in regime_shares.csv)."))
         for _, r in sh.iterrows():
             ctx["shares"].append(dict(option=r.option, regime=r.get("verdict", r.regime), share=share_text(r), count=fmt_num(r["count"]),
                                       lyapunov=fmt_num(r.lyapunov_median), horizon=fmt_num(r.horizon_median)))

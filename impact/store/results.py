@@ -369,7 +369,7 @@ TEXT_COLUMNS = {
     "requirement", "status", "versus", "output", "best_choice", "parameter", "regime", "name", "distribution", "arguments",
     "source", "description", "conditional_on", "parameter_i", "parameter_j", "from_regime", "to_regime",
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
-    "informed", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
+    "informed", "verdict", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
     "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
 }
 

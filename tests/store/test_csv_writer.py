@@ -55,3 +55,18 @@ def test_other_column_kinds_go_through_pandas(tmp_path):
     assert csv_text(frame) is None
     write_csv(frame, tmp_path / "t.csv")
     assert (tmp_path / "t.csv").read_text() == frame.to_csv(index=False, float_format=FLOAT_FORMAT)
+
+
+def test_a_regime_verdict_reads_back_as_its_words(tmp_path):
+    # regime_shares.csv names the remaining web in words ("equilibrium of the remaining web; cat extinct");
+    # read back as a number it would print "nan" in the report's regime table
+    from impact.store.results import read_table, write_csv
+
+    row = dict(option="cats only", regime="equilibrium", verdict="equilibrium of the remaining web; cat extinct",
+               extinct_species="cat", share=0.5, count=3)
+    path = tmp_path / "dynamics" / "regime_shares.csv"
+    path.parent.mkdir()
+    write_csv(pd.DataFrame([row]), path)
+    back = read_table(path)
+    assert back.verdict.iloc[0] == "equilibrium of the remaining web; cat extinct"
+    assert back.extinct_species.iloc[0] == "cat" and back.share.iloc[0] == 0.5
