@@ -186,7 +186,7 @@ def describe_case(case: Case) -> str:
 
 
 def cmd_check(args) -> int:
-    from impact.store.budget import check_fits, estimate
+    from impact.risk.budget import check_fits, estimate
     from impact.run.execute import machine_cores
     from impact.pipeline import case_warnings
 

@@ -110,9 +110,9 @@ def plan_assessment(case: Case, settings: AssessSettings, out, *, replace: bool 
         With the case's members and seed filled in.
     folder : impact.store.outfolder.OutputFolder
         Checked against the folder policy, not yet locked.
-    estimate : impact.store.budget.Estimate
+    estimate : impact.risk.budget.Estimate
     """
-    from impact.store.budget import check_fits, estimate
+    from impact.risk.budget import check_fits, estimate
     from impact.run.execute import machine_cores
     from impact.store.outfolder import OutputFolder
 

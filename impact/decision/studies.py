@@ -42,6 +42,7 @@ import pandas as pd
 from impact.risk.effects import BASELINE, good_outcome
 from impact.model import resolve
 from impact.decision.voi import PURPOSE_VOI, Estimate, bootstrap_counts, penalised_design, rule_gains
+from impact.store.results import VALUED_TOGETHER
 
 PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
 
@@ -168,7 +169,6 @@ def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
 STUDY_COLUMNS = ("study", "measures", "target", "error", "samples", "objective", "evsi", "low", "high",
                  "distinguishable", "ceiling", "ceiling_low", "ceiling_high", "ceiling_of", "cost", "cost_unit",
                  "value_scale", "enbs", "enbs_low", "enbs_high", "worth_cost", "interval", "level", "n", "unit")
-VALUED_TOGETHER = "valued objectives together"
 PROBABILITY_UNIT = "probability of a good outcome"
 RESAMPLES = 100  # as the EVPPI of sensitivity/information.csv (impact.decision.hinges.RESAMPLES)
 

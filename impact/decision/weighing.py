@@ -29,12 +29,12 @@ import numpy as np
 import pandas as pd
 
 from impact.risk.effects import BASELINE, good_outcome
+from impact.store.results import WEIGHTED
 
 PURPOSE_WEIGHING = 14  # spawn-key purpose of the SMAA weight draws
 SMAA_DRAWS = 20_000  # accepted weight vectors: the acceptability's MC error is at most 0.0035 (0.5/√N)
 MAX_TRIES = 200  # rounds of draws before a nearly empty feasible set is reported as such
 WEIGHING_COLUMNS = ("option", "objective", "statistic", "value", "mc_se", "unit", "n")
-WEIGHTED = "weighted objectives"
 
 
 def swing_values(P: np.ndarray) -> np.ndarray:

@@ -8,8 +8,7 @@ import pandas as pd
 from impact.dossier.cautions import share_text
 from impact.dossier.formatting import fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
 from impact.store.results import Results
-from impact.decision.studies import VALUED_TOGETHER
-from impact.decision.weighing import WEIGHTED
+from impact.store.results import VALUED_TOGETHER, WEIGHTED
 from impact.dossier.figures import Assets, distribution_figure, regime_figure, scan_figure
 
 # the sensitivity section stays within two pages: per option at most this many outputs, each with

@@ -171,7 +171,8 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
     parts: dict[int, dict[str, Summary]] = {}
     tasks, todo = [], []
     for k, a in enumerate(starts):
-        saved = store.get_summaries(f"runs-{a}") if store else None
+        flat = store.get(f"runs-{a}") if store else None
+        saved = None if flat is None else summaries_from_arrays(flat)
         if saved is not None:
             parts[k] = saved
             continue
@@ -186,7 +187,7 @@ def assess_members(case: Case, ens: Ensemble, seed: int, progress: Progress | No
         k = todo[i]
         parts[k] = {n: got[n] for n in names}
         if store:
-            store.put_summaries(f"runs-{starts[k]}", parts[k])
+            store.put(f"runs-{starts[k]}", summaries_to_arrays(parts[k]))
         done += got["baseline"].members * len(names)
         count(progress, label, done, total, "member runs")
     return concat_summaries([parts[k] for k in range(len(starts))])
@@ -349,3 +350,19 @@ def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray |
     ens = Ensemble(draws, unit, values, p, start, {})
     runs = run_options(case, ens, seed, progress=progress)
     return DesignRuns(values, verdict, runs)
+
+
+def summaries_to_arrays(summaries: dict[str, Summary]) -> dict[str, np.ndarray]:
+    """A chunk's summaries as plain arrays for a checkpoint (no pickles): ``options`` and ``"{i}|{field}"``."""
+    flat = {"options": np.array(list(summaries), dtype=str)}
+    for i, s in enumerate(summaries.values()):
+        for f in ("times", "at", *PER_MEMBER, "nfev"):
+            flat[f"{i}|{f}"] = np.asarray(getattr(s, f))
+    return flat
+
+
+def summaries_from_arrays(flat: dict[str, np.ndarray]) -> dict[str, Summary]:
+    """The summaries :func:`summaries_to_arrays` wrote, by option."""
+    names = [str(n) for n in flat["options"]]
+    return {n: Summary(flat[f"{i}|times"], flat[f"{i}|at"], *(flat[f"{i}|{f}"] for f in PER_MEMBER),
+                       int(flat[f"{i}|nfev"])) for i, n in enumerate(names)}

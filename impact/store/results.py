@@ -142,6 +142,11 @@ def read_manifest(results: Path) -> Manifest:
 
 # Results tables: relative path -> (columns that must be there, those of them that hold numbers).
 # Stage tables are optional (the stage may not have run); when present they must match.
+# Row labels the decision stage writes into the objective column of sensitivity/studies.csv and
+# sensitivity/weighing.csv, and the report reads back (defined once, here, beside the schema)
+VALUED_TOGETHER = "valued objectives together"
+WEIGHTED = "weighted objectives"
+
 TABLES = {
     "calibration/posterior.csv": (("parameter", "prior_q05", "prior_q50", "prior_q95", "posterior_q05",
                                    "posterior_q50", "posterior_q95", "contraction", "informed"),
@@ -318,25 +323,6 @@ class Checkpoints:
                                               "the checkpoints already written are intact: free space and rerun "
                                               "with `resume`") from None
         self.saved += 1
-
-    def get_summaries(self, key: str):
-        from impact.risk.runs import PER_MEMBER, Summary
-
-        flat = self.get(key)
-        if flat is None:
-            return None
-        names = [str(n) for n in flat["options"]]
-        return {n: Summary(flat[f"{i}|times"], flat[f"{i}|at"], *(flat[f"{i}|{f}"] for f in PER_MEMBER),
-                           int(flat[f"{i}|nfev"])) for i, n in enumerate(names)}
-
-    def put_summaries(self, key: str, summaries: dict):
-        from impact.risk.runs import PER_MEMBER
-
-        flat = {"options": np.array(list(summaries), dtype=str)}
-        for i, s in enumerate(summaries.values()):
-            for f in ("times", "at", *PER_MEMBER, "nfev"):
-                flat[f"{i}|{f}"] = np.asarray(getattr(s, f))
-        self.put(key, flat)
 
     def discard(self):
         """Remove the checkpoints once the results directory is complete."""

@@ -376,7 +376,7 @@ def test_a_billion_members_is_refused_at_once_saying_what_fits(small, tmp_path, 
     assert "--members" in err and "at most about" in err
     assert list(tmp_path.iterdir()) == []
     fit = int(err.split("at most about ")[1].split(" ")[0].replace(",", ""))
-    from impact.store.budget import check_fits, estimate
+    from impact.risk.budget import check_fits, estimate
 
     c = load_case(case)
     assert fit > 0
@@ -392,7 +392,7 @@ def test_estimate_matches_the_measured_peak_memory_of_the_demo():
     """README "Speed and memory" (measured 2026-12-02, in-process core stage of the demo case):
     peak 167 / 279 / 1,179 MiB at 1k / 10k / 100k members. A project measurement, not a
     published figure; margin ±15 % (the README's run-to-run spread on this machine)."""
-    from impact.store.budget import estimate
+    from impact.risk.budget import estimate
 
     case = load_case(Path(__file__).parents[2] / "casework" / "island_mesopredator.toml")
     for members, measured in ((1_000, 167), (10_000, 279), (100_000, 1179)):
@@ -401,7 +401,7 @@ def test_estimate_matches_the_measured_peak_memory_of_the_demo():
 
 
 def test_a_run_too_big_for_the_disk_is_refused(small):
-    from impact.store.budget import check_fits, estimate
+    from impact.risk.budget import check_fits, estimate
 
     c = load_case(small[0])
     est = estimate(c, 10_000, 1, memory=None, disk_free=2**20)
