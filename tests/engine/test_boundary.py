@@ -134,7 +134,7 @@ def test_a_damaged_structure_table_is_refused():
 PROBE = textwrap.dedent("""
     import sys
     import numpy as np
-    sys.path.insert(0, {tests!r})
+    sys.path[:0] = [{tests!r}, {engine!r}]
     from test_engine import random_web
     from impact.engine.boundary import KernelArgumentError
     from impact.engine import flow
@@ -177,7 +177,7 @@ PROBE = textwrap.dedent("""
 def test_wrong_shapes_at_every_dispatch_are_refused_not_a_crash(tmp_path):
     # in a child process: a segmentation fault ends the child (negative status) and fails this test
     # instead of killing pytest
-    run = subprocess.run([sys.executable, "-c", PROBE.format(tests=str(ROOT / "tests"))], capture_output=True,
+    run = subprocess.run([sys.executable, "-c", PROBE.format(tests=str(ROOT / "tests"), engine=str(ROOT / "tests" / "engine"))], capture_output=True,
                          text=True, timeout=300, cwd=tmp_path)
     assert run.returncode == 0, (run.returncode, run.stderr[-2000:])
     lines = run.stdout.splitlines()

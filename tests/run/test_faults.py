@@ -33,7 +33,7 @@ def fill_disk_at(monkeypatch, fragment: str, after: int = 0):
                 raise OSError(errno.ENOSPC, "No space left on device", str(path))
         return real_open(path, mode, *args, **kwargs)
 
-    monkeypatch.setattr(impact.results, "open", full, raising=False)
+    monkeypatch.setattr(impact.store.results, "open", full, raising=False)
 
 
 @pytest.mark.parametrize("where, after", [(".checkpoints", 2), ("risk.csv", 0)])
