@@ -142,7 +142,7 @@ PROBE = textwrap.dedent("""
     from impact.engine.jacobian import WebTangent
     from impact.model import segment_coefficients
 
-    web, p, c = random_web(6, 3, new_terms=True)
+    web, p, c = random_web(6, 3)  # the table engines (probed here) know the original terms only
     plain = random_web(0, 3)  # (the compiled J·v covers this web's terms)
     assert WebTangent(*plain).engine == "compiled"
     n = web.n_state
@@ -177,7 +177,8 @@ PROBE = textwrap.dedent("""
 def test_wrong_shapes_at_every_dispatch_are_refused_not_a_crash(tmp_path):
     # in a child process: a segmentation fault ends the child (negative status) and fails this test
     # instead of killing pytest
-    run = subprocess.run([sys.executable, "-c", PROBE.format(tests=str(ROOT / "tests"), engine=str(ROOT / "tests" / "engine"))], capture_output=True,
+    run = subprocess.run([sys.executable, "-c", PROBE.format(tests=str(ROOT / "tests"),
+                                                            engine=str(ROOT / "tests" / "engine"))], capture_output=True,
                          text=True, timeout=300, cwd=tmp_path)
     assert run.returncode == 0, (run.returncode, run.stderr[-2000:])
     lines = run.stdout.splitlines()
