@@ -145,8 +145,11 @@ def structure_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, ob
     held = total - sum(len(sentences) for _, sentences in hinges)
     summary = (f"{'All' if held == total else held} {'' if held == total else f'of the {total} '}objective verdicts "
                f"and material side effects on this page hold under every web with material weight "
-               f"({len(material)} of {len(weights)} webs)" + ("." if held == total else "; the others depend on "
-                                                                "the web, as follows."))
+               f"({len(material)} of {len(weights)} webs"
+               + (f"; the other {len(weights) - len(material)} hold less than {fmt_prob(MATERIAL_WEIGHT)} of the "
+                  "plausible members, so the data and the plausibility rules all but rule them out" if
+                  len(material) < len(weights) else "") + ")"
+               + ("." if held == total else "; the others depend on the web, as follows."))
     return StructureReading(lines, tuple(options), note, summary, hinges)
 
 
