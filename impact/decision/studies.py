@@ -41,7 +41,7 @@ import pandas as pd
 
 from impact.risk.effects import BASELINE, good_outcome
 from impact.model import resolve
-from impact.decision.voi import PURPOSE_VOI, Estimate, bootstrap_counts, penalised_design, rule_gains
+from impact.decision.voi import Estimate, choice_sets, member_weights, penalised_design, rule_gains
 from impact.store.results import VALUED_TOGETHER
 
 PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
@@ -137,15 +137,11 @@ def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
         Values and limits clipped at 0; the EVSI capped at its ceiling (the EVPPI of what the study
         measures, itself capped at the EVPI) resample by resample.
     """
-    nb = np.hstack([np.asarray(n, float) for n in nbs])
-    edges = np.cumsum([0] + [np.asarray(n).shape[1] for n in nbs])
-    splits = [slice(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    nb, splits = choice_sets(nbs)
     X = np.asarray(X, float).reshape(nb.shape[0], -1)
     M = nb.shape[0]
-    # the resamples of impact.decision.voi.information_values_many: the same seed and purpose, hence the same rows
-    ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
-    rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
-    W = np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    # the resamples of impact.decision.voi.information_values_many: the same seed, hence the same rows
+    W = member_weights(M, resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
     col = {n: j for j, n in enumerate(names)}
     ceilings: dict[tuple, np.ndarray] = {}

@@ -290,6 +290,22 @@ def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
     return gain / W.sum(axis=1)
 
 
+def choice_sets(nbs: list[np.ndarray]) -> tuple[np.ndarray, list[slice]]:
+    """Several choice sets (each (M, D_j)) side by side (M, ΣD_j), and the columns of each."""
+    nb = np.hstack([np.asarray(n, float) for n in nbs])
+    edges = np.cumsum([0] + [np.asarray(n).shape[1] for n in nbs])
+    return nb, [slice(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+
+
+def member_weights(M: int, resamples: int, seed: int) -> np.ndarray:
+    """Row 0 all ones (the members as drawn: the estimate), then the bootstrap resamples as member counts
+    (resamples + 1, M), from the value-of-information stream: every caller with the same seed and M
+    resamples the same members, so values computed apart can be capped resample by resample."""
+    ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
+    rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
+    return np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+
+
 def information_values(nb: np.ndarray, X: np.ndarray, names: list[str], groups: dict[str, list[str]] | None = None,
                        *, resamples: int = 200, confidence: float = 0.95, seed: int = 0
                        ) -> dict[str, Estimate]:
@@ -317,15 +333,9 @@ def information_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[st
                             confidence: float = 0.95, seed: int = 0) -> list[dict[str, Estimate]]:
     """:func:`information_values` of several choice sets ``nbs`` (each (M, D_j)) on the same members ``X``
     (M, P): the same numbers as one call each, with the designs' normal equations shared."""
-    nb = np.hstack([np.asarray(n, float) for n in nbs])
-    edges = np.cumsum([0] + [np.asarray(n).shape[1] for n in nbs])
-    splits = [slice(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    nb, splits = choice_sets(nbs)
     X = np.asarray(X, float).reshape(nb.shape[0], -1)
-    M = nb.shape[0]
-    ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
-    rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
-    # row 0: the members as drawn (the estimate); then the resamples, the same for every key
-    W = np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    W = member_weights(nb.shape[0], resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
     out = [{"all parameters": _bootstrap(float(t[0]), t[1:], confidence)} for t in top]
     col = {n: j for j, n in enumerate(names)}
