@@ -273,9 +273,27 @@ def manifest_for(case: Case, ens: Ensemble, failures: dict, seed: int, command: 
     )
 
 
-def prior_screen(case: Case, settings, progress: Progress | None = None, executor=None, store=None
-                 ) -> tuple[dict[str, pd.DataFrame], dict, dict]:
-    """The Sobol screen of the prior box: its tables (by relative path), its record, and the manifest entry."""
+@dataclass
+class StageOutput:
+    """What a stage of the assessment hands on: its tables and JSON records (by relative path in the results
+    folder), the stages it ran (their names in ``manifest.stages``) and its entry in the manifest.
+
+    Every stage the assessment runs after the option runs returns one; :func:`assess` merges them in order.
+    """
+
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
+    records: dict[str, dict] = field(default_factory=dict)
+    stages: tuple[str, ...] = ()
+    entry: dict | None = None
+
+    def merged(self, other: "StageOutput") -> "StageOutput":
+        """This output followed by ``other`` (a later stage's tables win on the same path; the entry is the later one's)."""
+        return StageOutput({**self.tables, **other.tables}, {**self.records, **other.records},
+                           self.stages + other.stages, other.entry if other.entry is not None else self.entry)
+
+
+def prior_screen(case: Case, settings, progress: Progress | None = None, executor=None, store=None) -> StageOutput:
+    """The Sobol screen of the prior box: its tables, its record, and the manifest entry."""
     from impact.decision.sensitivity import sensitivity_stage
 
     t0 = time.monotonic()
@@ -285,47 +303,70 @@ def prior_screen(case: Case, settings, progress: Progress | None = None, executo
     info = {**res.info, "seconds_total": round(time.monotonic() - t0, 2)}
     entry = {"N": info["N"], "runs": info["runs"], "not_converged": info["not_converged"],
              "refused": len(info["refused"]), "conditional_on": info["conditional_on"]}
-    return tables, {"sensitivity/sensitivity.json": info}, entry
+    return StageOutput(tables, {"sensitivity/sensitivity.json": info}, ("sensitivity",), entry)
 
 
-def _decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, tables: dict,
-                    records: dict, progress, executor, store) -> tuple[list[str], dict | None]:
-    """What the decision hinges on (kept members), the structure's press responses and the Sobol screen of the prior box.
-
-    Adds the stage's tables and records; returns the stages run and the manifest's entry.
-    """
-    from impact.decision.sensitivity import Settings as ScreenSettings
-
+def press_stage(case: Case, ens: Ensemble, runs: dict, progress: Progress | None = None) -> StageOutput:
+    """What the web's structure alone decides, and how often the members agree (press_signs.csv)."""
     from impact.dynamics.press import press_table
 
     if progress:
         progress("press responses: the web's structure and the members")
-    tables["press_signs.csv"], records["press_signs.json"] = press_table(case, ens.params, ens.values, runs["baseline"])
-    stages = ["press"]
-    if case.uncertain:
-        if progress:
-            progress("sensitivity and value of information on the plausible members")
-        tables["sensitivity/drivers.csv"] = drivers_table(case, ens.values, runs, seed)
-        if case.objectives:
-            tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
-            if case.studies:
-                from impact.decision.studies import studies_table, study_sizes_table
+    table, record = press_table(case, ens.params, ens.values, runs["baseline"])
+    return StageOutput({"press_signs.csv": table}, {"press_signs.json": record}, ("press",))
 
-                tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
-                tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs,
-                                                                          seed)
-            if case.weighing is not None:
-                from impact.decision.weighing import weighing_table
 
-                tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
-        stages.append("sensitivity")
+def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Progress | None = None) -> StageOutput:
+    """What the decision hinges on, on the kept members: drivers, value of information, studies, weighing."""
+    if not case.uncertain:
+        return StageOutput()
+    if progress:
+        progress("sensitivity and value of information on the plausible members")
+    tables = {"sensitivity/drivers.csv": drivers_table(case, ens.values, runs, seed)}
+    if case.objectives:
+        tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+        if case.studies:
+            from impact.decision.studies import studies_table, study_sizes_table
+
+            tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
+            tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs, seed)
+        if case.weighing is not None:
+            from impact.decision.weighing import weighing_table
+
+            tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
+    return StageOutput(tables, stages=("sensitivity",))
+
+
+def decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensemble, runs: dict, progress=None,
+                   executor=None, store=None) -> StageOutput:
+    """The press signs, what the decision hinges on and the Sobol screen of the prior box, in that order.
+
+    The manifest entry is the prior screen's (or why it was skipped); the prior screen's own stage name
+    is not added (``sensitivity`` already names the stage).
+    """
+    from impact.decision.sensitivity import Settings as ScreenSettings
+
+    out = press_stage(case, ens, runs, progress).merged(hinges_stage(case, ens, runs, seed, progress))
     if len(case.uncertain) < 2:
-        return stages, {"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol screen needs at least two"}
+        return out.merged(StageOutput(entry={"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol "
+                                                        "screen needs at least two"}))
     screen = ScreenSettings(base_samples=settings.base_samples, seed=seed, confidence=case.risk.confidence)
-    screen_tables, screen_records, entry = prior_screen(case, screen, progress, executor, store)
-    tables.update(screen_tables)
-    records.update(screen_records)
-    return stages, entry
+    found = prior_screen(case, screen, progress, executor, store)
+    return out.merged(StageOutput(found.tables, found.records, (), found.entry))
+
+
+def dynamics_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress=None, executor=None) -> StageOutput:
+    """The regime screen of every option (and the regime shares of each web, for a case with structural doubts)."""
+    from impact.dynamics.regime_screen import assess_stage
+
+    dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
+    tables = {f"dynamics/{k}.csv": v for k, v in dyn.items()}
+    if case.structures is not None and len(dyn["regimes"]):  # the regimes of each web's members
+        from impact.dynamics.structureregimes import regime_shares_by_structure
+
+        tables["structures/regime_shares.csv"] = regime_shares_by_structure(
+            case.structures.names, dyn["regimes"], member_structures(case, ens.unit))
+    return StageOutput(tables, {"dynamics/dynamics.json": record}, ("dynamics",))
 
 
 @dataclass
@@ -518,27 +559,18 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
            else calibration_tables(case, ens, cal, seed)),
         **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None)}
     clock.lap("tables")
-    records: dict[str, dict] = {}
-    stages, sensitivity = ["assess"], None
     calibration = cal.record() if ensemble is None else {
         **ensemble.manifest["calibration"], "reused_from": ensemble.source or "this process"}
+    out = StageOutput(tables, stages=("assess",))
+    sensitivity = None
     if settings.sensitivity:
-        more, sensitivity = _decision_stage(case, settings, seed, ens, runs, tables, records, progress, executor, store)
-        stages += more
+        decided = decision_stage(case, settings, seed, ens, runs, progress, executor, store)
+        out, sensitivity = out.merged(decided), decided.entry
         clock.lap("sensitivity")
     if settings.dynamics:
-        from impact.dynamics.regime_screen import assess_stage
-
-        dyn, record = assess_stage(case, ens.params, ens.values, runs, progress=progress, executor=executor, seed=seed)
-        tables.update({f"dynamics/{k}.csv": v for k, v in dyn.items()})
-        if case.structures is not None and len(dyn["regimes"]):  # the regimes of each web's members
-            from impact.dynamics.structureregimes import regime_shares_by_structure
-
-            tables["structures/regime_shares.csv"] = regime_shares_by_structure(
-                case.structures.names, dyn["regimes"], member_structures(case, ens.unit))
-        records["dynamics/dynamics.json"] = record
-        stages.append("dynamics")
+        out = out.merged(dynamics_stage(case, ens, runs, seed, progress, executor))
         clock.lap("dynamics")
+    tables, records, stages = out.tables, out.records, list(out.stages)
     execution = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
                  "chunks_computed": getattr(store, "saved", 0), "stage_seconds": clock.seconds}
     manifest = manifest_for(case, ens, failure_counts(runs), seed, command or ["python", "impact.api.assess"], started,

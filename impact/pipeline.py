@@ -220,7 +220,8 @@ def screen_to_folder(case: Case, settings, out, *, replace: bool = False, execut
     execution.check()
     folder = OutputFolder(out, replace=replace)
     with execution.executor() as executor, folder, folder.stage() as tmp:
-        tables, records, entry = prior_screen(case, settings, progress, executor)
+        found = prior_screen(case, settings, progress, executor)
+        tables, records, entry = found.tables, found.records, found.entry
         for rel, frame in tables.items():
             write_csv(frame, tmp / rel)
         for rel, rec in records.items():
