@@ -44,7 +44,7 @@ class Ensemble:
     counts: dict
 
 
-def screen_draws(case: Case, web: FoodWeb, unit: np.ndarray):
+def plausibility_of_draws(case: Case, web: FoodWeb, unit: np.ndarray):
     """Spin up candidate draws and judge their plausibility (pure; no random numbers).
 
     Returns
@@ -86,7 +86,7 @@ def run_chunk_size(members: int, workers: int, runs: int = 1) -> int:
 
 
 @dataclass(frozen=True)
-class ScreenTask:
+class PlausibilityTask:
     """Draw indices ``start`` .. ``stop - 1`` of the random path, to spin up and judge."""
 
     case: Case
@@ -95,7 +95,7 @@ class ScreenTask:
     stop: int
 
 
-def screen_block(task: ScreenTask) -> dict[str, np.ndarray]:
+def plausibility_block(task: PlausibilityTask) -> dict[str, np.ndarray]:
     """Spin up one block of candidate draws (a worker's function).
 
     Returns
@@ -107,7 +107,7 @@ def screen_block(task: ScreenTask) -> dict[str, np.ndarray]:
     case = task.case
     draws = np.arange(task.start, task.stop)
     unit = draw_uniforms(case, task.seed, draws)
-    _, _, today, v = screen_draws(case, build_web(case), unit)
+    _, _, today, v = plausibility_of_draws(case, build_web(case), unit)
     k = v["kept"]
     return {"draws": draws, **{f: v[f] for f in ("kept", "failed", "extinct", "range")},
             "unit": unit[k], "today": today[k]}
@@ -167,9 +167,9 @@ def draw_ensemble(case: Case, members: int, seed: int, max_draws: int | None = N
             if saved is not None:
                 blocks[s] = saved
             else:
-                tasks.append(ScreenTask(case, seed, s, min(s + B, max_draws)))
+                tasks.append(PlausibilityTask(case, seed, s, min(s + B, max_draws)))
                 todo.append(s)
-        for i, res in executor.map(screen_block, tasks):
+        for i, res in executor.map(plausibility_block, tasks):
             blocks[todo[i]] = res
             if store:
                 store.put(f"draws-{todo[i]}", res)

@@ -17,7 +17,7 @@ from impact.engine.integrate import FAILURE_REASONS
 from impact.model import WebParams, build_web
 from impact.ensemble.sample import event_uniforms, noise_multipliers
 from impact.engine.simulate import Run, run_option
-from impact.ensemble.draws import Ensemble, make_ensemble, run_chunk_size, screen_draws
+from impact.ensemble.draws import Ensemble, make_ensemble, run_chunk_size, plausibility_of_draws
 
 Progress = Callable[[str], None]
 
@@ -342,7 +342,7 @@ def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray |
     web = build_web(case)
     N = unit.shape[0]
     draws = np.zeros(N, dtype=np.int64) if draws is None else np.asarray(draws)
-    values, p, today, verdict = screen_draws(case, web, unit)
+    values, p, today, verdict = plausibility_of_draws(case, web, unit)
     # implausible and failed points still run, from whatever state spin-up reached
     start = np.where(np.isfinite(today), today, p.initial)
     if not noise:
