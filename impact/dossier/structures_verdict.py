@@ -16,13 +16,13 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from impact.dossier.bottomline import STATUS_WORDS
 from impact.dossier.formatting import fmt_bare_prob, fmt_prob
 from impact.store.manifest import Manifest
 from impact.dossier.verdict import option_reading
 
 HOLDS = "holds under every web with material weight"
 MATERIAL_WEIGHT = 0.05  # a web with less than 5 % of the members does not decide a sentence (common practice, no source)
-SHORT_STATUS = {"met": "MET", "not met": "NOT MET", "undecided": "UNDECIDED"}
 
 
 @dataclass(frozen=True)
@@ -126,8 +126,8 @@ def structure_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, ob
             per = {}
             for w, (_, _, ob) in per_web.items():
                 hit = ob[(ob.option == opt) & (ob.objective == row.objective)]
-                per[w] = SHORT_STATUS.get(hit.status.iloc[0], hit.status.iloc[0]) if not hit.empty else "no members"
-            out.append(_sentence(f"objective “{row.objective}”", SHORT_STATUS[row.status], per, material,
+                per[w] = STATUS_WORDS.get(hit.status.iloc[0], hit.status.iloc[0]) if not hit.empty else "no members"
+            out.append(_sentence(f"objective “{row.objective}”", STATUS_WORDS[row.status], per, material,
                                  weights, cmap, choices))
         pooled = _side_effects(m, risk, effects, objectives, opt)
         webs = {w: _side_effects(m, rk, ef, ob, opt) for w, (rk, ef, ob) in per_web.items()}
