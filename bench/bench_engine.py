@@ -7,9 +7,9 @@ Usage::
 Prints, measured in this same run (CPU seconds of this process, best of three, so the figures
 are per core):
 
-1. member-steps per second of the generated compiled kernel, the table-reading compiled kernel
-   and the numpy reference stepper, on one 20-year segment of the demo ensemble under neutral
-   controls (the step sequence is the same for all three; they agree to the bit);
+1. member-steps per second of the compiled kernel generated for the web and the numpy reference
+   stepper, on one 20-year segment of the demo ensemble under neutral controls (the step
+   sequence is the same for both; they agree to the bit);
 2. the scalar-limit estimate: floating-point operations per member-step counted from the web's
    structure (the generated right-hand side and the Dormand-Prince tableau), over the measured
    rate of independent scalar multiply-adds on this core; and the fraction of it reached;
@@ -41,7 +41,7 @@ from impact.model import Controls, build_web, web_params  # noqa: E402
 from impact.ensemble.sample import parameter_values  # noqa: E402
 
 DEMO = ROOT / "casework" / "island_mesopredator.toml"
-ENGINES = ("compiled", "table", "numpy")
+ENGINES = ("compiled", "numpy")
 
 
 def demo_ensemble(case, members: int, seed: int = 1):
@@ -128,25 +128,23 @@ f = lambda v, k: np.full((M, k), v)
 p = WebParams(r=np.where(np.arange(S) == 0, 1.0, 0.0) * np.ones((M, S)), K=f(10.0, S), m=f(0.1, S),
               a=f(1.0, L), h=f(0.5, L), e=f(0.5, L), alpha=f(0.0, 0), beta=f(0.0, 0), H=f(0.0, 0),
               decay=np.zeros(M), initial=f(1.0, S), noise_sd=f(0.0, S))
-web_segment(web, p, Controls.neutral(M, S), 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9, engine="{engine}")
-if "{engine}" == "compiled":  # the whole-run kernel (option runs, calibration spin-ups) too
-    coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, S)))[None]
-    web_run(web, coef, np.array([0.0, 1.0]), p.initial, no_jumps(1, M), np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9)
+web_segment(web, p, Controls.neutral(M, S), 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9)
+coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, S)))[None]  # the whole-run kernel too
+web_run(web, coef, np.array([0.0, 1.0]), p.initial, no_jumps(1, M), np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9)
 print(t1 - t0, time.perf_counter() - t1)
 '''
 
 
 def compile_costs(S: int) -> list[tuple[str, float]]:
-    """Wall seconds of the first call of each compiled engine on a never-seen web (fresh caches),
+    """Wall seconds of the first call of the compiled engine on a never-seen web (fresh caches),
     then of the same call in a second process (loaded from the disk cache)."""
     out = []
     with tempfile.TemporaryDirectory(prefix="impact-kernels-") as tmp:
         env = dict(os.environ, IMPACT_KERNEL_CACHE=tmp, NUMBA_CACHE_DIR=tmp, PYTHONPATH=str(ROOT))
-        for engine in ("compiled", "table"):
-            for label in ("first run (compiles)", "second run (disk cache)"):
-                proc = subprocess.run([sys.executable, "-c", FIRST_RUN.format(S=S, engine=engine)],
-                                      env=env, capture_output=True, text=True, check=True)
-                out.append((f"{engine:8s} {label}", float(proc.stdout.split()[1])))
+        for label in ("first run (compiles)", "second run (disk cache)"):
+            proc = subprocess.run([sys.executable, "-c", FIRST_RUN.format(S=S)],
+                                  env=env, capture_output=True, text=True, check=True)
+            out.append((f"compiled {label}", float(proc.stdout.split()[1])))
     return out
 
 

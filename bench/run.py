@@ -7,8 +7,8 @@ Usage::
 
 Prints, each measured in this same run:
 
-0. the engines on the demo web: member-steps per CPU second of the generated compiled kernel, the
-   table-reading kernel and the numpy reference; the scalar-limit estimate and the fraction of it
+0. the engines on the demo web: member-steps per CPU second of the generated compiled kernel and
+   the numpy reference; the scalar-limit estimate and the fraction of it
    reached; first-run compilation of a never-seen structure and loading from the disk cache
    (bench_engine.py);
 1. the ensemble integrator against a per-member ``solve_ivp`` loop (bench_integrator.py);

@@ -189,7 +189,7 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
     section : int or ndarray (M,), optional
         State column whose successive maxima form the Poincaré section; default: the last
         species (see :func:`section_species` to resolve a name).
-    engine : {"compiled", "table", "numpy"}
+    engine : {"compiled", "numpy"}
         How the tangent flow is integrated (see :func:`impact.dynamics.lyapunov.lyapunov_flow`); every
         engine gives the same numbers.
     lost : bool ndarray (M, S), optional

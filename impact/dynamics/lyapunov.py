@@ -31,7 +31,7 @@ from impact.model import Controls, FoodWeb, WebParams, WebRHS
 from impact.dynamics.regimes import Rules
 
 PURPOSE_DYNAMICS = 8  # spawn-key purpose for choosing the screened members
-FLOW_ENGINES = ("compiled", "table", "numpy")  # see lyapunov_flow
+FLOW_ENGINES = ("compiled", "numpy")  # see lyapunov_flow
 
 
 @dataclass(frozen=True)
@@ -275,12 +275,11 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         :class:`impact.engine.jacobian.WebTangent`); default: ``fun`` and ``jac`` times ``v``.
     max_steps, blowup : as in :func:`impact.engine.integrate.integrate_segment` (steps per stage:
         transient, then window).
-    engine : {"compiled", "table", "numpy"}
+    engine : {"compiled", "numpy"}
         With ``jvp`` a :class:`impact.engine.jacobian.WebTangent` of a web the compiled J·v covers and
         ``nonnegative``: "compiled" runs the whole transient and window of each member in the
-        compiled tangent flow generated for the web's structure (:mod:`impact.engine.flow`),
-        "table" the same loop reading the structure table; both give the numbers of the numpy
-        step loop ("numpy", used for every other model) to the bit.
+        compiled tangent flow generated for the web's structure (:mod:`impact.engine.flow`), with
+        the numbers of the numpy step loop ("numpy", used for every other model) to the bit.
 
     Returns
     -------
@@ -296,7 +295,7 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
         raise ValueError(f"engine must be one of {FLOW_ENGINES}, got {engine!r}")
     if (engine != "numpy" and nonnegative and isinstance(jvp, WebTangent) and jvp.structure is not None
             and transient >= 0 and window > 0):
-        return _compiled_flow(jvp, y_all, members, section_all, engine, transient=transient, window=window,
+        return _compiled_flow(jvp, y_all, members, section_all, transient=transient, window=window,
                               sample_dt=sample_dt, rtol=rtol, atol=atol, t0=t0, max_steps=max_steps, blowup=blowup)
     if jvp is None:
         def jvp(t, x, v, mem):
@@ -338,20 +337,13 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
                      ~ok, reason, nfev + diag.nfev + watch.nfev)
 
 
-def _compiled_flow(jvp, y, members, section, engine, *, transient, window, sample_dt, rtol, atol, t0, max_steps,
+def _compiled_flow(jvp, y, members, section, *, transient, window, sample_dt, rtol, atol, t0, max_steps,
                    blowup) -> Diagnosis:
     """:func:`lyapunov_flow` by the compiled tangent flow, one kernel call for every member."""
     from impact.engine.flow import tangent_flow
 
     n = y.shape[1]
-    st = jvp.structure
-    if engine == "table":
-        from impact.engine import flow as module
-    else:
-        from impact.engine.generate import specialised_flow
-
-        module = specialised_flow(st)
-    r = tangent_flow(module, st, jvp.coefficient_rows(members), y, t0=t0, transient=transient, window=window,
+    r = tangent_flow(jvp.structure, jvp.coefficient_rows(members), y, t0=t0, transient=transient, window=window,
                      hmax=sample_dt, section=section, rtol=tolerance(rtol, n, "rtol"), atol=tolerance(atol, n, "atol"),
                      max_steps=max_steps, blowup=blowup)
     ok = r["reason"] == 0

@@ -14,30 +14,28 @@ those of :mod:`impact.engine.kernel` (constants from :mod:`impact.engine.control
 longest step ``hmax``. Evaluations are at max(y, 0) with the tangent confined to the face of
 present species; accepted states are projected onto y ≥ 0.
 
-The step loop here calls ``web_jvp``, the table-reading :func:`impact.engine.tangent.member_jvp`
-(compiled once for every web: the "table" engine, for the terms it knows);
-:func:`impact.engine.generate.specialised_flow` recompiles the same source around the straight-line
-J·v generated from the declared terms (:mod:`impact.model.terms`) for one web structure, with that J·v
-written into :func:`flow_trial`'s stage loop (the "compiled" engine, several times faster, every
-term). ``t`` reaches the J·v at the stage times of the numpy stepper (a sinusoidal breeding season).
+The step loop calls ``web_jvp``, the straight-line J·v that :mod:`impact.engine.generate` writes
+for one web structure from the terms declared in :mod:`impact.model.terms`: the functions marked
+:func:`~impact.engine.kernel.template` here are source for it, compiled inside each generated module
+(:func:`impact.engine.generate.specialised_flow`) around its own ``web_jvp``, with the step's stages
+(``flow_trial``) written out there with the J·v inside (:func:`impact.engine.generate.trial_source`).
+``t`` reaches the J·v at the stage times of the numpy stepper (a sinusoidal breeding season).
 """
 
 from __future__ import annotations
 
 import math
-import sys
 
 import numpy as np
 
 from impact.engine.boundary import check_kernel_arrays
 from impact.engine.control import MIN_STEP_ULPS
 from impact.engine.kernel import (A, B, C, E, INITIAL_EXPONENT, NONFINITE, BLOWUP, STAGES, TOO_MANY, UNDERFLOW,
-    all_finite, chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq, trial_first_step)
-from impact.engine.tangent import member_jvp as web_jvp
-from impact.engine.tangent import supports_structure
+    all_finite, chosen_first_step, kernel_inline, kernel_jit, next_step, nmax, nmin, rms, sumsq, template,
+    trial_first_step)
 
-# Functions that call ``web_jvp``: a generated module (:mod:`impact.engine.generate`) recompiles them
-# around its own straight-line J·v; everything else in __all__ it imports from here.
+# The step loop of a generated module (:mod:`impact.engine.generate`), in its order: the templates
+# here and ``flow_trial``, written there; everything in __all__ it imports from here.
 FLOW_FUNCTIONS = ("face_jvp", "flow_initial_step", "flow_trial", "project", "renormalise", "flow_stage",
                   "flow_batch")
 SECTION_CAPACITY = 64  # section values kept per member and call before a member is run again with room
@@ -57,7 +55,7 @@ __all__ = ["STAGES", "C", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW"
            "kernel_jit", "kernel_inline", "nmin", "nmax", "rms", "all_finite", "next_step", "sumsq", "unit_on_face",
            "trial_first_step", "chosen_first_step",
            "hermite_max", "observe", "rows_finite", "keep_stage", "take_step", "WEIGHT_ROWS", "Y_NEW", "V_NEW", "TMP",
-           "XC", "VC", "F", "G", "SCRATCH", *FLOW_FUNCTIONS]
+           "XC", "VC", "F", "G", "SCRATCH"]
 
 
 @kernel_jit
@@ -125,7 +123,7 @@ def observe(y, y_new, K, hs, norm, sec, m, lg, low, high, acc, sec_vals, sec_cou
         sec_count[m] = k + 1
 
 
-@kernel_jit
+@template("kernel_jit")
 def face_jvp(st, cf, t, x, v, f, g, work, xc, vc):
     """``f`` and ``g = J·v`` at max(x, 0), with ``v`` and ``J·v`` zero on absent species (the web is
     closed: an absent species stays absent, so perturbations live on the face of the present ones)."""
@@ -156,7 +154,7 @@ def rows_finite(K, L, s, n):
     return True
 
 
-@kernel_jit
+@template("kernel_jit")
 def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc, fo, go, sc):
     """First step after Hairer, Nørsett & Wanner (1993), Sec. II.4 (forward in time), from f0 = K[0]
     and f at max(y1, 0); as :func:`impact.engine.stepper.select_initial_step`."""
@@ -180,44 +178,7 @@ def flow_initial_step(st, cf, t0, t1, y0, K, L, rtol, atol, work, y1, g1, xc, vc
     return chosen_first_step(h0, d1, rms(y1, n) / h0, interval)
 
 
-@kernel_jit
-def flow_trial(st, cf, t, t_new, y, v, K, L, Z, work, hs, rtol, atol):
-    """One Dormand–Prince step of state and tangent; returns the state's RMS error norm.
-
-    Stage sums as :func:`impact.engine.stepper.combine` (first weight, then each next non-zero one added).
-    ``Z`` (SCRATCH, n) scratch rows: the new state and tangent end in rows ``Y_NEW`` and ``V_NEW``,
-    their f and J·v in ``K[STAGES]`` and ``L[STAGES]``.
-    """
-    n = y.shape[0]
-    for s in range(1, STAGES + 1):
-        for j in range(n):
-            a = K[0, j] * WEIGHT_ROWS[s, 0]
-            b = L[0, j] * WEIGHT_ROWS[s, 0]
-            for i in range(1, s):
-                w = WEIGHT_ROWS[s, i]
-                if w != 0:
-                    a += K[i, j] * w
-                    b += L[i, j] * w
-            Z[Y_NEW, j] = a * hs + y[j]
-            Z[V_NEW, j] = b * hs + v[j]
-        ts = t + C[s] * hs if s < STAGES else t_new
-        face_jvp(st, cf, ts, Z[Y_NEW], Z[V_NEW], Z[F], Z[G], work, Z[XC], Z[VC])
-        keep_stage(K, L, s, Z[F], Z[G], n)
-    for j in range(n):
-        scale = nmax(abs(y[j]), abs(Z[Y_NEW, j])) * rtol[j] + atol[j]
-        e = K[0, j] * WEIGHT_ROWS[STAGES + 1, 0]
-        for i in range(1, STAGES + 1):
-            w = WEIGHT_ROWS[STAGES + 1, i]
-            if w != 0:
-                e += K[i, j] * w
-        Z[TMP, j] = e * hs / scale
-    acc = Z[TMP, 0] * Z[TMP, 0]
-    for j in range(1, n):
-        acc += Z[TMP, j] * Z[TMP, j]
-    return math.sqrt(acc / n)
-
-
-@kernel_inline
+@template("kernel_inline")
 def project(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
     """Project an accepted state onto y ≥ 0 and zero the tangent of absent species; a projected
     state's f and J·v are evaluated again (FSAL). Returns (not finite, evaluations)."""
@@ -260,7 +221,7 @@ def take_step(y, v, K, L, y_new, v_new, bad, blowup):
     return 0
 
 
-@kernel_inline
+@template("kernel_inline")
 def renormalise(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
     """Divide the tangent ``v_new`` and its J·v (``L[STAGES]``) by the tangent's norm; returns (norm,
     evaluations). A vector with nothing left to perturb restarts on the present face, no growth
@@ -284,7 +245,7 @@ def renormalise(st, cf, t_new, y_new, v_new, K, L, work, xc, vc, fo, go):
     return norm, nfev
 
 
-@kernel_jit
+@template("kernel_jit")
 def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_steps, blowup, in_window, sec, m, lg,
                low, high, acc, sec_vals, sec_count):
     """Integrate state ``y`` and tangent ``v`` of one member from ``t0`` to ``t1`` (> t0) in place.
@@ -350,7 +311,7 @@ def flow_stage(st, cf, y, v, K, L, Z, work, h, t0, t1, hmax, rtol, atol, max_ste
     return code, (hgood if math.isfinite(hgood) else h), nfev, nacc
 
 
-@kernel_jit
+@template("kernel_jit")
 def flow_batch(st, coef, y0, t0, transient, window, hmax, section, rtol, atol, max_steps, blowup, y_out, lg, low,
                high, acc, sec_vals, sec_count, reason, nsteps):
     """Every member through the transient (tangent renormalised, nothing recorded), then the window
@@ -393,9 +354,10 @@ def flow_batch(st, coef, y0, t0, transient, window, hmax, section, rtol, atol, m
     return nfev
 
 
-def tangent_flow(module, st, coef, y0, *, t0, transient, window, hmax, section, rtol, atol, max_steps=1_000_000,
+def tangent_flow(st, coef, y0, *, t0, transient, window, hmax, section, rtol, atol, max_steps=1_000_000,
                  blowup=1e12) -> dict:
-    """Run ``module.flow_batch`` on every member (``module``: this one or a generated one).
+    """Run the tangent flow generated for structure ``st`` (:func:`impact.engine.generate.specialised_flow`,
+    loaded or compiled once the arrays have passed the boundary check) on every member.
 
     Parameters
     ----------
@@ -419,9 +381,8 @@ def tangent_flow(module, st, coef, y0, *, t0, transient, window, hmax, section, 
         members), ``sections`` list of M arrays, ``reason`` (M,) int8, ``nsteps`` (M,) accepted
         steps, ``nfev`` member evaluations of (f, J·v).
     """
-    if module is sys.modules[__name__] and not supports_structure(st):
-        raise ValueError("the table J·v does not know every term of this web: use the generated flow "
-                         "(impact.engine.generate.specialised_flow)")
+    from impact.engine.generate import specialised_flow  # (imported here: it compiles this module's templates)
+
     y0 = np.ascontiguousarray(np.maximum(np.asarray(y0, float), 0.0))
     M, n = y0.shape
     section = np.ascontiguousarray(section, dtype=np.int64)
@@ -437,9 +398,9 @@ def tangent_flow(module, st, coef, y0, *, t0, transient, window, hmax, section, 
                "nsteps": np.zeros(k, np.int64)}
         vals, count = np.empty((k, capacity)), np.zeros(k, np.int64)
         check_kernel_arrays("flow_batch", st, coef=coef[rows], y0=y0[rows], section=section[rows], rtol=tol[0], atol=tol[1], y_out=res["final"], lg=res["lg"], low=res["low"], high=res["high"], acc=res["acc"], sec_vals=vals, sec_count=count, reason=res["reason"], nsteps=res["nsteps"])  # noqa: E501  (boundary into compiled code)
-        res["nfev"] = module.flow_batch(st, coef[rows], y0[rows], *times, section[rows], *tol, res["final"],
-                                        res["lg"], res["low"], res["high"], res["acc"], vals, count, res["reason"],
-                                        res["nsteps"])
+        res["nfev"] = specialised_flow(st).flow_batch(
+            st, coef[rows], y0[rows], *times, section[rows], *tol, res["final"], res["lg"], res["low"], res["high"],
+            res["acc"], vals, count, res["reason"], res["nsteps"])
         res["sections"] = [vals[i, :min(c, capacity)].copy() for i, c in enumerate(count)]
         return res, count
 

@@ -1,17 +1,15 @@
-"""Compiled per-member Dormand-Prince kernel for the food web (numba).
+"""The per-member Dormand-Prince step loop of the food web's state kernel, and its compiled helpers.
 
-One member at a time is integrated through a whole segment with its state in small scratch
-arrays, interpreting a compact table of the web's structure (:func:`impact.engine.web.pack`): the
-kernel is compiled once for every web and cached on disk (``cache=True``), so a case never pays
-compilation for its own structure. Every floating-point operation mirrors, in the same order, the
-numpy reference (:func:`impact.engine.integrate.integrate_segment` with :class:`impact.model.WebRHS`),
-so the two agree to rounding; step control reads the constants of :mod:`impact.engine.control`.
-Members are independent by construction: nothing is shared between rows.
-
-The structure table and coefficient rows are laid out in :mod:`impact.model.terms` (header entries
-``HEAD_*``; coefficient blocks ``K_*`` below). This kernel interprets the table (the "table"
-engine); the "compiled" engine's right-hand side is generated from the terms declared in
-:mod:`impact.model.terms` (:mod:`impact.engine.generate`), and the tests hold the two equal to the bit.
+One member at a time is integrated through a whole segment with its state in small scratch arrays.
+The step loop calls ``web_rhs``, the right-hand side that :mod:`impact.engine.generate` writes for one
+web structure from the terms declared in :mod:`impact.model.terms`: the functions marked
+:func:`template` below are source for it, compiled inside each generated module around its own
+``web_rhs`` (never here, where there is none). The helpers without the mark are compiled here once
+(numba, cached on disk) and imported by every generated module. Every floating-point operation
+mirrors, in the same order, the numpy reference (:func:`impact.engine.integrate.integrate_segment`
+with :class:`impact.model.WebRHS`), so the two agree to rounding; step control reads the constants
+of :mod:`impact.engine.control`. Members are independent by construction: nothing is shared between
+rows.
 """
 
 from __future__ import annotations
@@ -24,20 +22,14 @@ import numpy as np
 from impact.engine.control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY, DormandPrince54,
     Failure)
 
-from impact.model.terms import (HEAD_CARRION, HEAD_CC, HEAD_CROWDING, HEAD_L, HEAD_LOGISTIC, HEAD_N, HEAD_O,
-    HEAD_S, HEAD_U, HEADER, SPECIES_COEFFICIENTS, Structure, terms_used)
+from impact.model.terms import HEAD_S, HEADER
 
-# first column of each per-species coefficient block, in units of S (layout in impact.model.terms)
-K_SCALE, K_RPOS, K_LIN, K_DENS, K_INFLOW, K_QUAD, K_GAMMA, K_STERILE, K_MAT, K_AMP, K_OMEGA, K_PHASE = range(
-    len(SPECIES_COEFFICIENTS))
-K_LINKS = len(SPECIES_COEFFICIENTS)  # the per-link blocks start at K_LINKS · S
-
-# Everything a generated module (:mod:`impact.engine.generate`) takes from here besides the
-# right-hand side and the step loop, which it recompiles around its own right-hand side.
+# Everything a generated module (:mod:`impact.engine.generate`) imports from here: the step loop's
+# compiled helpers and constants (the :func:`template` functions it compiles itself).
 __all__ = ["HEADER", "HEAD_S", "A", "B", "C", "E", "STAGES", "INITIAL_EXPONENT", "NONFINITE", "BLOWUP", "UNDERFLOW",
-           "TOO_MANY", "kernel_jit", "kernel_inline", "feeding", "nmin", "nmax", "sumsq", "rms", "all_finite",
-           "trial_first_step", "chosen_first_step", "combine_stages", "power_array", "web_rhs", "initial_step", "trial_step", "next_step", "accept_step",
-           "member", "segment", "run_members", "JUMP_CULL", "JUMP_ERADICATE", "JUMP_ADD"]
+           "TOO_MANY", "kernel_jit", "kernel_inline", "nmin", "nmax", "sumsq", "rms", "all_finite",
+           "trial_first_step", "chosen_first_step", "power_array", "next_step", "JUMP_CULL", "JUMP_ERADICATE",
+           "JUMP_ADD"]
 
 A = DormandPrince54.A.copy()
 B = DormandPrince54.B.copy()
@@ -50,21 +42,23 @@ BLOWUP = int(Failure.BLOWUP)
 UNDERFLOW = int(Failure.UNDERFLOW)
 TOO_MANY = int(Failure.TOO_MANY_STEPS)
 
-# The declared terms (impact.model.terms.TERMS) web_rhs interprets: the "table" engine refuses a web
-# with any other (a term declared later runs in the generated kernel without touching this file).
-TABLE_TERMS = frozenset({"births", "feeding", "controls", "sinusoidal_breeding", "sterile_release", "life_stages",
-                         "logistic", "crowding", "linear", "eaten", "carrion"})
-
-
-def knows(st) -> bool:
-    """Whether :func:`web_rhs` interprets every term acting in structure ``st``."""
-    return set(terms_used(Structure.decode(st))) <= TABLE_TERMS
-
-
 kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 # Pieces of the step loop are inlined into it at numba's level: as separate functions they cost
 # about a sixth of the kernel's speed (measured with bench/bench_engine.py).
 kernel_inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+
+
+def template(jit: str):
+    """Mark a function as source for the generated modules, compiled there with the decorator named
+    ``jit`` (``"kernel_jit"`` or ``"kernel_inline"``) around the module's own right-hand side.
+
+    The function is returned unchanged (plain Python: here it has no right-hand side to call);
+    :func:`impact.engine.generate.template_source` prints it with its decorator.
+    """
+    def mark(fn):
+        fn.jit = jit
+        return fn
+    return mark
 
 
 @kernel_jit
@@ -81,149 +75,6 @@ def nmax(a, b):
     if a != a or b != b:
         return a + b
     return a if a >= b else b
-
-
-@kernel_inline
-def feeding(st, cf, y, births, loss, den, seen, o_a):
-    """Feeding terms of :func:`web_rhs`: adds e·I·N to the consumers' births, I·N to the
-    resources' losses (handling denominators shared by each consumer's saturating links, plus
-    the consumer's interference γ·N for a Beddington–DeAngelis consumer)."""
-    S, n, L = st[HEAD_S], st[HEAD_N], st[HEAD_L]
-    gp = HEADER + 4 * L + 2 * st[HEAD_CC] + 2 * st[HEAD_U] + 2 * st[HEAD_O]
-    o_gam = K_GAMMA * S
-    o_ah, o_e, o_food = o_a + L, o_a + 2 * L, o_a + 3 * L
-    lc, lr, lp, l1 = HEADER, HEADER + L, HEADER + 2 * L, HEADER + 3 * L
-    for i in range(n):
-        loss[i] = 0.0
-        seen[i] = 0.0
-    for l in range(L):
-        if st[l1 + l] == 0:
-            res = st[lr + l]
-            R = y[res] if res >= 0 else cf[o_food + l]
-            Rq = R * R if st[lp + l] == 2 else R
-            term = cf[o_ah + l] * Rq
-            j = st[lc + l]
-            if seen[j] == 0.0:
-                den[j] = term + 1.0
-                seen[j] = 1.0
-            else:
-                den[j] = term + den[j]
-    for i in range(S):
-        if st[gp + i] == 1:
-            den[i] = den[i] + cf[o_gam + i] * y[i]
-    for l in range(L):
-        res = st[lr + l]
-        R = y[res] if res >= 0 else cf[o_food + l]
-        Rq = R * R if st[lp + l] == 2 else R
-        j = st[lc + l]
-        if st[l1 + l] == 1:
-            I = cf[o_a + l] * Rq
-        else:
-            I = cf[o_a + l] * Rq / den[j]
-        eaten = I * y[j]
-        births[j] += cf[o_e + l] * eaten
-        if res >= 0:  # an alternative food is not depleted
-            loss[res] += eaten
-
-
-@kernel_jit
-def web_rhs(st, cf, t, y, out, work):
-    """Right-hand side of one member; same operations, same order as :class:`impact.model.WebRHS`.
-
-    ``st`` structure table, ``cf`` the member's coefficient row, ``t`` the time (for seasonal
-    births), ``y`` (n,), ``out`` (n,), ``work`` (5, n) scratch (births, loss, denominators,
-    crowding or boost, seen flags).
-    """
-    S, n, carrion, L = st[HEAD_S], st[HEAD_N], st[HEAD_CARRION], st[HEAD_L]
-    Cc, U, logistic, O = st[HEAD_CC], st[HEAD_U], st[HEAD_LOGISTIC], st[HEAD_O]
-    o_rpos, o_lin, o_dens, o_inf = K_RPOS * S, K_LIN * S, K_DENS * S, K_INFLOW * S
-    o_quad, o_ster, o_mat = K_QUAD * S, K_STERILE * S, K_MAT * S
-    o_amp, o_om, o_ph = K_AMP * S, K_OMEGA * S, K_PHASE * S
-    o_a = K_LINKS * S
-    o_al = o_a + 4 * L
-    o_be = o_al + Cc
-    o_H = o_be + U
-    o_obH = o_H + U
-    o_dec = o_obH + O
-    cp = HEADER + 4 * L
-    up = cp + 2 * Cc
-    op = up + 2 * U  # obligate pairs, then the interference and sterile flags
-    sp = op + 2 * O + S
-    births, loss, den, crowd, seen = work[0], work[1], work[2], work[3], work[4]
-    for i in range(S):
-        births[i] = cf[o_rpos + i] * y[i]
-    if U > 0:
-        for i in range(S):
-            crowd[i] = 1.0  # used as the mutualism boost here, as crowding below
-        for u in range(U):
-            ben, par = st[up + 2 * u], st[up + 2 * u + 1]
-            P = y[par]
-            crowd[ben] += cf[o_be + u] * P / (cf[o_H + u] + P)
-        for i in range(S):
-            births[i] *= crowd[i]
-    if O > 0:
-        # share of births an obligate partner allows: 1 − Π H/(H + P), summed without cancellation
-        # as Σ_o P_o/(H_o + P_o) Π_{k<o} H_k/(H_k + P_k) (loss, den, seen are scratch until feeding)
-        for i in range(S):
-            loss[i] = 0.0
-            den[i] = 1.0
-            seen[i] = 0.0
-        for u in range(O):
-            ben, par = st[op + 2 * u], st[op + 2 * u + 1]
-            P = y[par]
-            Hh = cf[o_obH + u]
-            loss[ben] = loss[ben] + den[ben] * (P / (Hh + P))
-            den[ben] = den[ben] * (Hh / (Hh + P))
-            seen[ben] = 1.0
-        for i in range(S):
-            if seen[i] == 1.0:
-                births[i] *= loss[i]
-    if L > 0:
-        feeding(st, cf, y, births, loss, den, seen, o_a)
-    for i in range(S):
-        out[i] = cf[K_SCALE * S + i] * births[i]
-    wp = sp + 2 * S  # sinusoidal breeding flags
-    for i in range(S):
-        if st[wp + i] == 1:
-            out[i] *= 1.0 + cf[o_amp + i] * math.cos(cf[o_om + i] * t - cf[o_ph + i])
-    for i in range(S):
-        if st[sp + i] == 1:
-            sd = cf[o_ster + i]
-            if sd > 0:
-                out[i] *= y[i] / (y[i] + sd)
-    ap = sp + S  # adult stage of each juvenile
-    for i in range(S):
-        a = st[ap + i]
-        if a >= 0:
-            out[i] += out[a]
-            out[a] = 0.0
-            flow = cf[o_mat + i] * y[i]
-            out[i] -= flow
-            out[a] += flow
-    if logistic:
-        for i in range(S):
-            crowd[i] = y[i]
-        for k in range(Cc):
-            i, j = st[cp + 2 * k], st[cp + 2 * k + 1]
-            crowd[i] += cf[o_al + k] * y[j]
-        for i in range(S):
-            out[i] -= cf[o_dens + i] * y[i] * crowd[i]
-    if st[HEAD_CROWDING]:
-        for i in range(S):
-            out[i] -= cf[o_quad + i] * y[i] * y[i]
-    for i in range(S):
-        out[i] += cf[o_lin + i] * y[i]
-    if L > 0:
-        for i in range(S):
-            out[i] -= loss[i]
-    if carrion:
-        inflow = cf[o_inf] * y[0]
-        for i in range(1, S):
-            inflow = inflow + cf[o_inf + i] * y[i]
-        dC = inflow - cf[o_dec] * y[S]
-        if L > 0:
-            dC -= loss[S]
-        out[S] = dC
 
 
 @kernel_jit
@@ -250,7 +101,7 @@ def rms(x, n):
     return math.sqrt(sumsq(x, n) / n)
 
 
-@kernel_jit
+@template("kernel_jit")
 def initial_step(st, cf, t0, t1, y0, f0, rtol, atol, direction, work, y1, f1, sc):
     """Per-member copy of :func:`impact.engine.stepper.select_initial_step` (HNW 1993, Sec. II.4)."""
     n = y0.shape[0]
@@ -302,7 +153,7 @@ def all_finite(x):
     return True
 
 
-@kernel_jit
+@template("kernel_jit")
 def combine_stages(K, coeffs, count, out):
     """``out = Σ coeffs[i]·K[i]`` over the first ``count`` stages, skipping zero weights, in the
     order of :func:`impact.engine.stepper.combine`."""
@@ -321,7 +172,7 @@ def combine_stages(K, coeffs, count, out):
                 out[j] += K[s, j] * c
 
 
-@kernel_jit
+@template("kernel_jit")
 def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin, ymax, h_out,
             reason, nsteps):
     """Integrate every member from ``t0`` to ``t1``; fills the output arrays, returns the number
@@ -359,7 +210,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
     return nfev
 
 
-@kernel_inline
+@template("kernel_inline")
 def trial_step(st, cf, t, t_new, y, K, work, y_new, tmp, hs, rtol, atol):
     """One Dormand-Prince step of size ``hs`` from ``y`` (derivative in ``K[0]``) into ``y_new``
     (derivative in ``K[STAGES]``); returns the RMS error norm, as :func:`impact.engine.integrate.error_norm`."""
@@ -392,7 +243,7 @@ def next_step(err, hs, rejected):
     return abs(hs) * (nmax(MIN_FACTOR, factor) if math.isfinite(err) else MIN_FACTOR)
 
 
-@kernel_inline
+@template("kernel_inline")
 def accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax):
     """Take ``y_new`` (projected onto y ≥ 0) as the state; returns (failure code, evaluations)."""
     n = y.shape[0]
@@ -424,7 +275,7 @@ def accept_step(st, cf, t_new, y, K, work, y_new, blowup, m, ymin, ymax):
     return code, nfev
 
 
-@kernel_jit
+@template("kernel_jit")
 def member(st, cf, y, K, work, y_new, tmp, sc, h, t0, t1, direction, rtol, atol, max_steps,
            blowup, m, y_out, ymin, ymax, h_out, reason, nsteps):
     """Step loop of one member (state in ``y``, derivative in ``K[0]``); returns evaluations."""
@@ -480,7 +331,7 @@ JUMP_ERADICATE = 1    # y = y·value where the eradication fails (aux = 1), else
 JUMP_ADD = 2          # y += value
 
 
-@kernel_jit
+@template("kernel_jit")
 def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, jump_yield, jump_value, jump_aux,
                 rtol, atol, max_steps, blowup, slot_of, states, cummin, cummax, reason, h_out):
     """A whole option run of every member: the segments between ``times`` in turn, each under its

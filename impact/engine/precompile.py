@@ -17,10 +17,9 @@ import numpy as np
 def compile_flow(st: np.ndarray, n_coef: int):
     """Compile (or load) the generated tangent flow of ``st`` by one call on a dummy member."""
     from impact.engine.flow import tangent_flow
-    from impact.engine.generate import specialised_flow
 
     n = int(st[1])
-    tangent_flow(specialised_flow(st), st, np.zeros((1, n_coef)), np.ones((1, n)), t0=0.0, transient=0.5,
+    tangent_flow(st, np.zeros((1, n_coef)), np.ones((1, n)), t0=0.0, transient=0.5,
                  window=0.5, hmax=0.25, section=np.zeros(1, np.int64), rtol=np.full(n, 1e-6),
                  atol=np.full(n, 1e-9), max_steps=100)
 

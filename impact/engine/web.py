@@ -2,11 +2,10 @@
 
 ``"compiled"`` runs the per-member numba kernel with the right-hand side generated for the web's
 structure (:mod:`impact.engine.generate`, compiled once per structure and cached on disk);
-``"table"`` the same step loop reading a structure table (:mod:`impact.engine.kernel`, compiled
-once for every web); ``"numpy"`` the ensemble reference stepper
-(:func:`impact.engine.integrate.integrate_segment` with :class:`impact.model.WebRHS`). All return
+``"numpy"`` the ensemble reference stepper (:func:`impact.engine.integrate.integrate_segment` with
+:class:`impact.model.WebRHS`). Both run the terms declared in :mod:`impact.model.terms` and return
 :class:`impact.engine.integrate.SegmentResult` with the same numbers to the bit (checked by the tests);
-the compiled ones have no per-step fixed cost, and the generated one is the fastest (see bench/).
+the compiled one has no per-step fixed cost (see bench/).
 """
 
 from __future__ import annotations
@@ -26,7 +25,7 @@ from impact.engine.control import MIN_RTOL, Failure
 __all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
            "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
 
-ENGINES = ("compiled", "table", "numpy")
+ENGINES = ("compiled", "numpy")
 DEFAULT_ENGINE = "compiled"
 
 
@@ -41,17 +40,11 @@ def coefficient_columns(co: SegmentCoefficients) -> dict[str, slice]:
     return spans
 
 
-def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
-    """Module whose ``segment`` integrates structure ``st``: generated for it, or the table one.
+def compiled_kernel(st: np.ndarray):
+    """Module whose ``segment`` and ``run_members`` integrate structure ``st``, generated for it.
 
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
-    if engine == "table":
-        from impact.engine import kernel
-
-        if not kernel.knows(st):
-            raise ValueError("the table engine does not know every term of this web: use engine='compiled'")
-        return kernel
     from impact.engine.generate import specialised
 
     return specialised(st)
@@ -87,10 +80,10 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         First step sizes (NaN or None: chosen automatically).
     members : int ndarray (m,), optional
         Rows of ``p`` and ``c``; default ``arange(m)``.
-    engine : {"compiled", "table", "numpy"}
+    engine : {"compiled", "numpy"}
     coef : ndarray (m, P), optional
         The members' coefficient rows as :func:`pack_coefficients` gives them for ``p`` and ``c``
-        (compiled engines): a caller integrating many segments under the same parameters and
+        (compiled engine): a caller integrating many segments under the same parameters and
         controls packs them once.
 
     Returns
@@ -129,7 +122,7 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
     elif coef.shape[0] != m:
         raise ValueError(f"coef has {coef.shape[0]} rows for {m} members")
     check_kernel_arrays("segment", st, coef=coef, y0=y0, h0=h, rtol=rtol, atol=atol, y_out=y_out, ymin=ymin, ymax=ymax, h_out=h_out, reason=reason, nsteps=nsteps)  # noqa: E501  (boundary into compiled code)
-    nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
+    nfev = compiled_kernel(st).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
 
@@ -192,15 +185,17 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
         Output slot of each boundary, or −1; slot ``slot_of[0]`` holds ``y0``.
     h0 : ndarray (M,), optional
         First step sizes, e.g. those of a run this one continues (NaN or None: chosen).
-    engine : {"compiled", "table"}
+    engine : {"compiled"}
+        A whole run is compiled only (the numpy engine runs segment by segment:
+        :func:`impact.engine.simulate.run_option_by_segment`).
 
     Returns
     -------
     RunResult
         The same numbers as :func:`web_segment` called segment by segment with the jumps between.
     """
-    if engine not in ("compiled", "table"):
-        raise ValueError(f"engine must be 'compiled' or 'table' for a whole run, got {engine!r}")
+    if engine != "compiled":
+        raise ValueError(f"engine must be 'compiled' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
     if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:
@@ -217,7 +212,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     coef, times, slot_of = (np.ascontiguousarray(coef, dtype=float), np.ascontiguousarray(times, dtype=float),
                             np.ascontiguousarray(slot_of, dtype=np.int64))
     check_kernel_arrays("run_members", st, times=times, coef=coef, y0=y0, h0=h, jump_start=jumps.start, jump_kind=jumps.kind, jump_species=jumps.species, jump_yield=jumps.carrion_yield, jump_value=jumps.value, jump_aux=jumps.fails, rtol=rtol, atol=atol, slot_of=slot_of, states=states, cummin=cummin, cummax=cummax, reason=reason, h_out=h_out)  # noqa: E501  (boundary into compiled code)
-    nfev = compiled_kernel(st, engine).run_members(
+    nfev = compiled_kernel(st).run_members(
         st, coef, times, y0, h, jumps.start, jumps.kind,
         jumps.species, jumps.carrion_yield, jumps.value, jumps.fails, rtol, atol, int(max_steps), float(blowup),
         slot_of, states, cummin, cummax, reason, h_out)

@@ -142,24 +142,24 @@ PROBE = textwrap.dedent("""
     from impact.engine.jacobian import WebTangent
     from impact.model import segment_coefficients
 
-    web, p, c = random_web(6, 3)  # the table engines (probed here) know the original terms only
-    plain = random_web(0, 3)  # (the compiled J·v covers this web's terms)
+    web, p, c = random_web(6, 3, new_terms=True)  # (the arrays are refused before a kernel is compiled)
+    plain = random_web(0, 3)
     assert WebTangent(*plain).engine == "compiled"
     n = web.n_state
     narrow = np.ascontiguousarray(p.initial[:, :-1])   # one state column too few: read past the end
     coef = pack_coefficients(segment_coefficients(web, p, c))
     probes = {{
-        "web_segment": lambda: web_segment(web, p, c, 0.0, 1.0, narrow, rtol=1e-6, atol=1e-9, engine="table"),
+        "web_segment": lambda: web_segment(web, p, c, 0.0, 1.0, narrow, rtol=1e-6, atol=1e-9),
         "web_segment coef": lambda: web_segment(web, p, c, 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9,
-                                                engine="table", coef=coef[:, :-1]),
+                                                coef=coef[:, :-1]),
         "web_run": lambda: web_run(web, coef[None], np.array([0.0, 1.0]), narrow, no_jumps(1, 3), np.array([-1, 0]),
-                                   1, rtol=1e-6, atol=1e-9, engine="table"),
+                                   1, rtol=1e-6, atol=1e-9),
         "web_run coef": lambda: web_run(web, coef[None, :, ::2], np.array([0.0, 1.0]), p.initial, no_jumps(1, 3),
-                                        np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9, engine="table"),
-        "tangent_flow": lambda: flow.tangent_flow(flow, pack_structure(web), coef, p.initial, t0=0.0, transient=0.0,
+                                        np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9),
+        "tangent_flow": lambda: flow.tangent_flow(pack_structure(web), coef, p.initial, t0=0.0, transient=0.0,
                                                   window=1.0, hmax=0.1, section=np.full(3, n + 5), rtol=np.full(n, 1e-6),
                                                   atol=np.full(n, 1e-9)),
-        "tangent_flow y0": lambda: flow.tangent_flow(flow, pack_structure(web), coef, narrow, t0=0.0, transient=0.0,
+        "tangent_flow y0": lambda: flow.tangent_flow(pack_structure(web), coef, narrow, t0=0.0, transient=0.0,
                                                      window=1.0, hmax=0.1, section=np.zeros(3, np.int64),
                                                      rtol=np.full(n - 1, 1e-6), atol=np.full(n - 1, 1e-9)),
         "batch_jvp": lambda: WebTangent(*plain)(None, plain[1].initial[:, :-1], plain[1].initial[:, :-1], np.arange(3)),

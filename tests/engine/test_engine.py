@@ -1,8 +1,9 @@
 """The compiled engine against the numpy reference, scipy and the batch-independence rule.
 
-The numpy ensemble stepper (``impact.engine.integrate``) is the reference; the compiled kernels
-(generated per structure, and the table-reading one) must give the same numbers: the contract
+The numpy ensemble stepper (``impact.engine.integrate``) is the reference; the compiled kernel
+(generated per structure from the same declared terms) must give the same numbers: the contract
 checked here is relative 1e-10, and equal step counts (they agree to the bit on this machine).
+Closed forms and scipy anchor both: Verhulst's logistic curve and ``solve_ivp`` below.
 """
 
 from __future__ import annotations
@@ -166,15 +167,14 @@ def random_web(seed: int, members: int, new_terms: bool = False):
     return web, p, c
 
 
-@pytest.mark.parametrize("seed, engines, new_terms", [
-    (0, COMPILED, False), (1, COMPILED, False), (2, ["table"], False), (3, ["table"], False),
-    (4, ["table"], False), (5, ["table"], False), (6, COMPILED, True), (7, ["table"], True), (8, ["table"], True)])
-def test_random_webs_match_the_numpy_reference(seed, engines, new_terms):
+# each seed is a web structure of its own, compiled once per machine (about 3 s each)
+@pytest.mark.parametrize("seed, new_terms", [(seed, seed >= 6) for seed in range(9)])
+def test_random_webs_match_the_numpy_reference(seed, new_terms):
     web, p, c = random_web(seed, 16, new_terms)
     kw = dict(rtol=1e-8, atol=1e-10)
     ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="numpy", **kw)
     assert (~ref.failed).sum() >= 8  # most members run through, so the comparison means something
-    for e in engines:
+    for e in COMPILED:
         got = web_segment(web, p, c, 0.0, 15.0, p.initial, engine=e, **kw)
         assert np.array_equal(got.reason, ref.reason)
         assert np.array_equal(got.nsteps, ref.nsteps)

@@ -249,11 +249,11 @@ def test_coefficient_rows_follow_the_declared_layout():
 
 def test_a_new_term_is_one_declaration(tmp_path, monkeypatch):
     """A term appended to the declarations reaches the numpy reference, the Jacobian, the generated
-    kernel source and J·v at once, and the table engines (which do not know it) refuse the web.
+    kernel source and J·v at once.
     The invented term: constant immigration ι into the first species, dN₀/dt += ι (ι = 0.75): the
     right-hand side grows by exactly ι in that row and the Jacobian does not change."""
     from impact.model import terms
-    from impact.engine import generate, kernel, tangent as table_tangent
+    from impact.engine import generate
 
     web, p, c, y, rng = _random_point(tmp_path, "holling2", False, 3)
     idx = np.arange(y.shape[0])
@@ -271,4 +271,3 @@ def test_a_new_term_is_one_declaration(tmp_path, monkeypatch):
     st = terms.pack_structure(web)
     assert "o0 = (o0 + 0.75)" in generate.rhs_source(st)
     assert any("o0 = (o0 + 0.75)" in line for line in generate.jvp_lines(st, str, str, str, str)[0])
-    assert not kernel.knows(st) and not table_tangent.supports(web)
