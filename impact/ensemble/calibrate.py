@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import special
 
-from impact.ensemble.draws import Ensemble, LowAcceptance, draw_ensemble
+from impact.ensemble.draws import Ensemble, LowAcceptance, draw_ensemble, first_kept
 from impact.case import DEFAULT_MIN_ACCEPTANCE, Case
 from impact.errors import CaseError
 from impact.model import WebParams, build_web, web_params
@@ -439,24 +439,17 @@ def rejection(case: Case, members: int, seed: int, executor=None, progress=None,
     Calibration
     """
     t_start = time.monotonic()
-    max_draws = max(case.max_draws, members)
-    blocks, start, kept = [], 0, 0
-    if first is not None:
-        blocks.append((np.arange(len(first["distance"])), first))
-        start, kept = len(first["distance"]), int((first["distance"] == 0).sum())
-    while kept < members and start < max_draws:
-        rate = max(kept / start, 0.01) if start else 1.0
-        stop = min(max_draws, start + int(np.ceil(1.1 * (members - kept) / rate)))
-        draws = np.arange(start, stop)
-        ev = evaluate(case, draw_uniforms(case, seed, draws), executor)
-        blocks.append((draws, ev))
-        start, kept = stop, kept + int((ev["distance"] == 0).sum())
-        if progress:
-            progress(f"drawing today's ecosystem (rejection): {min(kept, members)}/{members} plausible, {start} tried")
-    draws = np.concatenate([b[0] for b in blocks])
-    ev = {k: np.concatenate([b[1][k] for b in blocks]) for k in blocks[0][1]}
-    ok = np.flatnonzero(ev["distance"] == 0)[:members]
-    tried = int(ok[-1]) + 1 if len(ok) >= members else len(draws)
+
+    def judge(start: int, stop: int):
+        ev = evaluate(case, draw_uniforms(case, seed, np.arange(start, stop)), executor)
+        return ev["distance"] == 0, ev
+
+    got = first_kept(judge, members, max(case.max_draws, members), progress=progress,
+                     done=None if first is None else (first["distance"] == 0, first),
+                     label="drawing today's ecosystem (rejection)")
+    ev = {k: np.concatenate([part[k] for part in got.parts]) for k in got.parts[0]}
+    ok = np.flatnonzero(got.kept)[:members]  # the kept draws' indices
+    tried = got.tried
     if not len(ok):
         raise CalibrationError(case.path, "change_limits" if case.change_limits else "observed",
                                f"none of {tried} draws met every constraint (persistence, observed ranges, limits "
@@ -464,7 +457,7 @@ def rejection(case: Case, members: int, seed: int, executor=None, progress=None,
     cal = Calibration("rejection", tried, len(ok) / tried, len(ok) / tried, [], 1.0, True,
                       time.monotonic() - t_start, ev["recorded"][ok], record_times(case))
     sel = {k: v[:tried] for k, v in ev.items()}
-    return draws[ok], draw_uniforms(case, seed, draws[ok]), sel, cal
+    return ok, draw_uniforms(case, seed, ok), sel, cal
 
 
 def _counts(members: int, tried: int, kept: int, ev: dict) -> dict:
