@@ -184,3 +184,5 @@ def test_wrong_shapes_at_every_dispatch_are_refused_not_a_crash(tmp_path):
     lines = run.stdout.splitlines()
     assert len(lines) == 7 and all("refused:" in line for line in lines), run.stdout
     assert "y0" in lines[0] and "coef" in lines[1] and "section" in lines[4] and "batch_jvp: y" in lines[6]
+    # every compiled entry point is reached through its dispatch, and refuses there
+    assert {line.split("refused: ")[1].split(":")[0] for line in lines} == set(CONTRACTS)
