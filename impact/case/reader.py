@@ -199,6 +199,9 @@ def read_one_species(r: Reader, i: int, raw: Any, seasons: Seasons | None) -> Sp
     mortality = t.quantity("mortality", 0.0, low=0)
     present = t.get("present", True, "bool")
     initial = t.quantity("initial", low=0) if present else t.quantity("initial", 0.0, low=0)
+    if not present and initial != 0.0:
+        r.fail(f"species.{name}.initial", "a species absent today (present = false) starts at 0; set initial = 0 or "
+                                          "leave it out (a release or first arrival brings it)")
     noise = t.quantity("noise_sd", 0.0, low=0)
     qe = t.number("quasi_extinction", low=0)
     outbreak = t.number("outbreak", None, low=0, low_open=True)
