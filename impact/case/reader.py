@@ -359,8 +359,8 @@ def read_observed(r: Reader, raw: list, names: set[str]) -> tuple[Observation, .
 def span_terms(r: Reader, t: Table, base: str, kind: str, target: Species, horizon: float,
                seasons: Seasons | None) -> tuple[float, float, dict]:
     """Start, end and intensities of an intervention acting over a span (optionally by season)."""
-    start = t.number("start", 0.0)
-    end = t.number("end", horizon)
+    start = t.number("start", 0.0, low=0, high=horizon)
+    end = t.number("end", horizon, low=0, high=horizon)
     if end <= start:
         r.fail(f"{base}.end", f"must be after start ({start:g}); an intervention over no time would never act")
     kw: dict[str, Any] = {}
@@ -401,7 +401,8 @@ def cull_terms(r: Reader, t: Table, base: str, horizon: float, seasons: Seasons 
     else:
         part = t.number("season_part", integer=True)
         first, _ = season_span(r, f"{base}.season_part", [part, part], seasons)
-        times = seasons.starts_of_part(first, t.number("start", 0.0), t.number("end", horizon))
+        times = seasons.starts_of_part(first, t.number("start", 0.0, low=0, high=horizon),
+                                       t.number("end", horizon, low=0, high=horizon))
         if not times:
             r.fail(f"{base}.season_part", "no season reaches that part between start and end")
     times = tuple(sorted(float(x) for x in times))

@@ -269,6 +269,12 @@ BAD_TERMS = [
     ("carcasses sent to a carrion pool the case lacks",
      lambda d: (d.pop("carrion"), d["interactions"].pop(3)),
      "interventions.fox cull.carcasses_to_carrion", "no [carrion] table"),
+    ("a seasonal schedule starting far before today",  # the windows were listed season by season from there
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][2].update(start=-1e300, season_parts=[3, 5])),
+     "interventions.no-op.start", ">= 0"),
+    ("a cull in a season part, ending far after the horizon",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][0].pop("times"), d["interventions"][0].update(season_part=3, end=1e300)),
+     "interventions.fox cull.end", "<= 20"),
     ("a species absent today with animals at the start",
      lambda d: d["species"][3].update(present=False, initial=5.0),
      "species.beetle.initial", "starts at 0"),
