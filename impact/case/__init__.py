@@ -13,7 +13,8 @@ import tomllib
 from pathlib import Path
 
 from impact.case.reader import (Reader, Table, check_references, read_carrion, read_intervention, read_meta,
-    read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique, check_effects)
+    read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
+from impact.case.effects import check_effects
 from impact.case.structures import read_web
 from impact.case.studies import read_outcome_values, read_study, read_weighing
 from impact.case.tables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
