@@ -14,6 +14,7 @@ from pathlib import Path
 
 from impact.case.reader import (Reader, Table, check_references, read_carrion, read_intervention, read_meta,
     read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
+from impact.case.effects import check_effects
 from impact.case.structures import read_web
 from impact.case.studies import read_outcome_values, read_study, read_weighing
 from impact.case.tables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
@@ -86,7 +87,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     meta = read_meta(r, top)
     horizon, spinup = meta["horizon"], meta["spinup"]
     parameters = read_parameters(r, top.get("parameters", {}, "any"))
-    seasons = read_seasons(r, top.get("seasons", None, "any"))
+    seasons = read_seasons(r, top.get("seasons", None, "any"), horizon + spinup)
     species = read_species(r, top.get("species", kind="list"), seasons)
     names = {s.name for s in species}
     feeding, competition, mutualism, structures = read_web(r, top.get("interactions", [], "list"),
@@ -97,6 +98,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     interventions = tuple(read_intervention(r, i, raw, species, horizon, meta["time_unit"], seasons)
                           for i, raw in enumerate(top.get("interventions", [], "list")))
     unique(r, interventions, "name", "interventions")
+    check_effects(r, species, feeding, carrion, interventions)
     options = read_options(r, top.get("options", [], "list"), {iv.name for iv in interventions})
     risk = read_risk(r, top.get("risk", {}), horizon)
     dynamics = read_dynamics(r, top.get("dynamics", None, "any"), [s.name for s in species])

@@ -16,6 +16,11 @@ from impact.errors import CaseError
 from impact.case.priors import DISTRIBUTIONS, prior_problems
 
 
+# parts of seasons over the spin-up and horizon: every edge of a breeding or scheduling window starts
+# a new integration segment, so this bounds the work a seasonal case can ask for (common practice)
+MAX_SEASON_PARTS = 100_000
+
+
 class Table:
     """A TOML table being consumed: every key must be read, leftovers are typos."""
 
@@ -194,6 +199,9 @@ def read_one_species(r: Reader, i: int, raw: Any, seasons: Seasons | None) -> Sp
     mortality = t.quantity("mortality", 0.0, low=0)
     present = t.get("present", True, "bool")
     initial = t.quantity("initial", low=0) if present else t.quantity("initial", 0.0, low=0)
+    if not present and initial != 0.0:
+        r.fail(f"species.{name}.initial", "a species absent today (present = false) starts at 0; set initial = 0 or "
+                                          "leave it out (a release or first arrival brings it)")
     noise = t.quantity("noise_sd", 0.0, low=0)
     qe = t.number("quasi_extinction", low=0)
     outbreak = t.number("outbreak", None, low=0, low_open=True)
@@ -274,9 +282,14 @@ def read_mutualism(r: Reader, t: Table, i: int, species: tuple[Species, ...], mu
     par = species_ref(r, names, f"interactions[{i}].partner", t.get("partner", kind="str"))
     if par == ben:
         r.fail(f"interactions[{i}].partner", "a species cannot be its own mutualist partner")
-    if next(s for s in species if s.name == ben).growth == "none":
+    target = next(s for s in species if s.name == ben)
+    if target.growth == "none":
         r.fail(f"interactions[{i}].beneficiary", f"a mutualism acts on births at growth_rate; {ben!r} has "
                                                  "growth = \"none\" (give it logistic or exponential growth)")
+    if target.growth == "exponential" and not isinstance(target.growth_rate, str) and target.growth_rate <= 0:
+        r.fail(f"interactions[{i}].beneficiary", f"a mutualism acts on births at growth_rate; {ben!r} declines "
+                                                 f"(growth_rate {target.growth_rate:g} <= 0), so it has no births "
+                                                 "to act on")
     dep = r.choice(f"interactions[{i}].dependence", t.get("dependence", "facultative", "str"), DEPENDENCES)
     if dep == "obligate":
         if "max_benefit" in t.data:
@@ -346,8 +359,10 @@ def read_observed(r: Reader, raw: list, names: set[str]) -> tuple[Observation, .
 def span_terms(r: Reader, t: Table, base: str, kind: str, target: Species, horizon: float,
                seasons: Seasons | None) -> tuple[float, float, dict]:
     """Start, end and intensities of an intervention acting over a span (optionally by season)."""
-    start = t.number("start", 0.0)
-    end = t.number("end", horizon)
+    start = t.number("start", 0.0, low=0, high=horizon)
+    end = t.number("end", horizon, low=0, high=horizon)
+    if end <= start:
+        r.fail(f"{base}.end", f"must be after start ({start:g}); an intervention over no time would never act")
     kw: dict[str, Any] = {}
     if kind == "press-harvest":
         kw["rate"] = t.quantity("rate", low=0)
@@ -366,6 +381,9 @@ def span_terms(r: Reader, t: Table, base: str, kind: str, target: Species, horiz
     if parts is not None:
         first, last = season_span(r, f"{base}.season_parts", parts, seasons)
         kw["windows"] = seasons.windows(first, last, start, end)
+        if not kw["windows"]:
+            r.fail(f"{base}.season_parts", f"no {seasons.part_name} {first}–{last} of a season falls between start "
+                                           f"({start:g}) and end ({end:g}), so the intervention would never act")
         kw["season_parts"] = (first, last)
     return start, end, kw
 
@@ -383,7 +401,8 @@ def cull_terms(r: Reader, t: Table, base: str, horizon: float, seasons: Seasons 
     else:
         part = t.number("season_part", integer=True)
         first, _ = season_span(r, f"{base}.season_part", [part, part], seasons)
-        times = seasons.starts_of_part(first, t.number("start", 0.0), t.number("end", horizon))
+        times = seasons.starts_of_part(first, t.number("start", 0.0, low=0, high=horizon),
+                                       t.number("end", horizon, low=0, high=horizon))
         if not times:
             r.fail(f"{base}.season_part", "no season reaches that part between start and end")
     times = tuple(sorted(float(x) for x in times))
@@ -493,14 +512,19 @@ def check_references(r: Reader, parameters: tuple[Parameter, ...]):
             r.fail(f, f"parameter {ref!r} can take values up to {hi_s:g}, but this field must be <= {high:g}")
 
 
-def read_seasons(r: Reader, raw: Any) -> Seasons | None:
-    """Read ``[seasons]`` (absent: None)."""
+def read_seasons(r: Reader, raw: Any, span: float) -> Seasons | None:
+    """Read ``[seasons]`` (absent: None); ``span`` is the spin-up plus the horizon."""
     if raw is None:
         return None
     t = Table(r, raw, "seasons")
     out = Seasons(t.number("length", low=0, low_open=True), t.number("parts", 1, low=1, high=10_000, integer=True),
                   t.get("part_name", "part", "str"))
     t.done()
+    if out.parts * span / out.length > MAX_SEASON_PARTS:
+        r.fail("seasons.length", f"{out.parts} parts per season of {out.length:g} make about "
+                                 f"{out.parts * span / out.length:.3g} parts over the spin-up and horizon "
+                                 f"({span:g}); at most {MAX_SEASON_PARTS:,} are allowed (each edge of a part where "
+                                 f"something changes is a step of the integration): use longer seasons or fewer parts")
     return out
 
 
@@ -525,6 +549,9 @@ def read_breeding(r: Reader, raw: Any, f: str, seasons: Seasons | None):
         r.fail(f, "a breeding season needs a [seasons] table (length, parts)")
     if "amplitude" in t.data or "peak" in t.data:
         amplitude = t.quantity("amplitude", low=0, high=1)
+        if amplitude == 0.0:
+            r.fail(f"{f}.amplitude", "0 makes births the same all season; give an amplitude in (0, 1] or a "
+                                     "parameter, or leave breeding_season out")
         peak = t.number("peak", low=0.5, high=seasons.parts + 0.5)
         t.done()
         return None, 0.0, amplitude, peak
@@ -532,6 +559,13 @@ def read_breeding(r: Reader, raw: Any, f: str, seasons: Seasons | None):
         r.fail(f, "give either first and last (a window, with outside) or amplitude and peak (a sinusoid)")
     span = season_span(r, f, [t.get("first", kind="int"), t.get("last", kind="int")], seasons)
     outside = t.number("outside", 0.0, low=0, high=1)
+    first, last = span
+    if (last - first) % seasons.parts == seasons.parts - 1:
+        r.fail(f"{f}.last", f"{seasons.part_name}s {first} to {last} cover the whole season, so the breeding season "
+                            "would change nothing; give the parts with births, or leave breeding_season out")
+    if outside == 1.0:
+        r.fail(f"{f}.outside", "1 makes births the same in and out of the breeding season; give a level in [0, 1) "
+                               "(the births multiplier outside it), or leave breeding_season out")
     t.done()
     return span, outside, None, None
 
@@ -566,3 +600,4 @@ def check_stages(r: Reader, species: tuple[Species, ...]):
         if s.matures_into in adults:
             r.fail(f, f"{s.matures_into!r} already has a juvenile stage; one per adult")
         adults.add(s.matures_into)
+

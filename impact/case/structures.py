@@ -312,13 +312,14 @@ def _consumer_interference(items: list, chosen: list) -> list:
     fixed = {}
     for tab in chosen:
         if tab is not None and "interference" in tab.get("_overrides", ()):
-            who = next((tab[k] for k in CONSUMER_KEYS if k in tab), None)
+            who = next((tab[k] for k in CONSUMER_KEYS if isinstance(tab.get(k), str)), None)
             fixed[who] = tab["interference"]
     out = []
     for item in items:
         if isinstance(item, dict):
             item = {k: v for k, v in item.items() if k != "_overrides"}
-            who = next((item[k] for k in CONSUMER_KEYS if k in item), None)
+            # a consumer that is not a name is refused by the interaction's own reader
+            who = next((item[k] for k in CONSUMER_KEYS if isinstance(item.get(k), str)), None)
             if who in fixed and item.get("response") == "beddington-deangelis":
                 item["interference"] = fixed[who]
         out.append(item)

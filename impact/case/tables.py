@@ -14,6 +14,9 @@ from impact.case.types import (DEFAULT_MIN_ACCEPTANCE, MEASURES, REQUIREMENTS, S
 from impact.errors import CaseError, ReadError
 from impact.case.seriesfile import SeriesFile, read_series_file
 
+# steps of one limit on change: the spin-up records every member's state at each (common practice)
+MAX_CHANGE_STEPS = 1_000
+
 
 def read_group(r: Reader, i: int, raw: Any, uncertain: set[str]) -> ParameterGroup:
     """One ``[[parameter_groups]]`` entry: a name and two or more uncertain parameters."""
@@ -173,6 +176,10 @@ def read_change_limit(r: Reader, i: int, raw: Any, names: set[str], spinup: floa
     end = t.number("end", 0.0, low=-spinup, high=0)
     if end - start < step - 1e-12:
         r.fail(f"{base}.end", f"the window [{start:g}, {end:g}] must hold at least one step of {step:g}")
+    if (end - start) / step > MAX_CHANGE_STEPS:
+        r.fail(f"{base}.step", f"{step:g} cuts the window [{start:g}, {end:g}] into {(end - start) / step:.3g} steps; "
+                               f"at most {MAX_CHANGE_STEPS:,} are allowed (the abundance is recorded at each step "
+                               "of every member's spin-up): use a longer step")
     source = t.get("source", "", "str")
     t.done()
     return ChangeLimit(sp, up, down, step, start, end, source)

@@ -235,11 +235,57 @@ BAD_TERMS = [
     ("pulse cull with both times and a season part",
      lambda d: (d.update(seasons=SEASONS), d["interventions"][0].update(season_part=10)),
      "interventions.fox cull.times", "exactly one of times"),
+    # declarations that would silently change nothing, and schedules that would ask for unbounded work
+    ("harvest scheduled in weeks that never fall between start and end",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][2].update(start=0.0, end=0.1, season_parts=[30, 40])),
+     "interventions.no-op.season_parts", "would never act"),
+    ("harvest over no time", lambda d: d["interventions"][2].update(start=5.0, end=5.0),
+     "interventions.no-op.end", "must be after start"),
+    ("seasons so short the horizon holds millions of parts",
+     lambda d: d.update(seasons={"length": 1e-6, "parts": 52}), "seasons.length", "at most 100,000"),
+    ("sterile release on a species without births",
+     lambda d: (d["interactions"][3].update(efficiency=0.0),
+                d["interventions"].append({"name": "sit", "kind": "sterile-release", "species": "beetle",
+                                           "sterile_density": 4.0})),
+     "interventions.sit.species", "has no births"),
+    ("fertility control on a juvenile stage",
+     lambda d: (d["species"][1].update(matures_into="fox", maturation_rate=1.0),
+                d["interventions"].append({"name": "pill", "kind": "fertility-control", "species": "hare",
+                                           "fraction": 0.5})),
+     "interventions.pill.species", "give it to the adult stage 'fox'"),
+    ("breeding season of a species without births",
+     lambda d: (d.update(seasons=SEASONS), d["interactions"][3].update(efficiency=0.0),
+                d["species"][3].update(breeding_season={"first": 10, "last": 20})),
+     "species.beetle.breeding_season", "has no births"),
+    ("breeding season with the same births outside it",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"first": 10, "last": 20, "outside": 1.0})),
+     "species.grass.breeding_season.outside", "the same in and out"),
+    ("breeding season covering the whole season",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"first": 5, "last": 4})),
+     "species.grass.breeding_season.last", "cover the whole season"),
+    ("sinusoidal breeding season of amplitude 0",
+     lambda d: (d.update(seasons=SEASONS), d["species"][0].update(breeding_season={"amplitude": 0.0, "peak": 20})),
+     "species.grass.breeding_season.amplitude", "the same all season"),
+    ("carcasses sent to a carrion pool the case lacks",
+     lambda d: (d.pop("carrion"), d["interactions"].pop(3)),
+     "interventions.fox cull.carcasses_to_carrion", "no [carrion] table"),
+    ("a seasonal schedule starting far before today",  # the windows were listed season by season from there
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][2].update(start=-1e300, season_parts=[3, 5])),
+     "interventions.no-op.start", ">= 0"),
+    ("a cull in a season part, ending far after the horizon",
+     lambda d: (d.update(seasons=SEASONS), d["interventions"][0].pop("times"), d["interventions"][0].update(season_part=3, end=1e300)),
+     "interventions.fox cull.end", "<= 20"),
+    ("a species absent today with animals at the start",
+     lambda d: d["species"][3].update(present=False, initial=5.0),
+     "species.beetle.initial", "starts at 0"),
+    ("mutualism on a species in exponential decline",
+     lambda d: d["species"][0].update(growth="exponential", growth_rate=-0.1, carrying_capacity=None),
+     "interactions[4].beneficiary", "no births to act on"),
 ]
 
 
 def _drop_none(data):
-    for iv in data["interventions"] + data["interactions"]:
+    for iv in data["interventions"] + data["interactions"] + data["species"]:
         for k in [k for k, v in iv.items() if v is None]:
             del iv[k]
     return data
@@ -348,3 +394,25 @@ def test_a_lognormal_observation_scale_is_accepted(tmp_path):
                            "values": [30.0, 32.0, 31.0], "scale": "trap_scale", "log_sd": 0.3}]
     case = load_case(write_case(tmp_path, data))
     assert "trap_scale" in [p.name for p in case.uncertain]
+
+
+def test_a_limit_on_change_with_too_many_steps_is_refused(tmp_path):
+    # 1e-6 steps over 20 time units would record twenty million states of every member's spin-up
+    d = web_case()
+    d["change_limits"] = [{"species": "fox", "up_at_most": 2.0, "step": 1e-6, "start": -20.0}]
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, d))
+    assert err.value.field == "change_limits.fox.step" and "at most 1,000" in err.value.message
+    d["change_limits"][0]["step"] = 0.5
+    assert len(load_case(write_case(tmp_path, d)).change_limits[0].check_times()) == 41
+
+
+def test_a_doubtful_interaction_whose_consumer_is_not_a_name_is_a_case_error(tmp_path):
+    # a list where the predator's name belongs once reached a dictionary lookup (TypeError)
+    d = web_case()
+    d["interactions"][1].update(response="beddington-deangelis", interference=0.2, predator=["fox"],
+                                doubt={"label": "foxes interfere", "weight": 0.5, "alternatives": [
+                                    {"label": "foxes do not interfere", "weight": 0.5, "interference": 0.0}]})
+    with pytest.raises(CaseError) as err:
+        load_case(write_case(tmp_path, d))
+    assert err.value.field == "interactions[1].predator" and "text" in err.value.message
