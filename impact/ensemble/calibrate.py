@@ -54,6 +54,7 @@ SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
 TARGET_ACCEPTANCE = 0.25
 EVAL_CHUNK = 2048      # rows per chunk of a batch at most (a chunk cannot be stopped halfway)
 EVAL_CHUNKS_PER_WORKER = 4
+MOVE_CHUNK_SIMULATIONS = 4 * EVAL_CHUNK  # spin-ups per chunk of move steps at most (a second or so)
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
@@ -241,11 +242,85 @@ class _Population:
         self.ev = {k: np.where(mask.reshape((-1,) + (1,) * (v.ndim - 1)), ev[k], v) for k, v in self.ev.items()}
 
 
+def _accept(z, ev_old, prop, ev, eps: float, beta: float, log_u: np.ndarray) -> np.ndarray:
+    """Metropolis acceptance of ``prop`` against ``z`` under ``N(z) · L(z)^β · 1[d(z) ≤ ε]``: (n,) bool.
+
+    Row by row, so a particle's decision never depends on which other rows share its call.
+    """
+    with np.errstate(invalid="ignore"):
+        log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (z ** 2).sum(1)
+                 + (beta * (ev["loglik"] - ev_old["loglik"]) if beta > 0 else 0.0))
+    return (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (log_u < np.nan_to_num(log_a, nan=-np.inf))
+
+
+@dataclass(frozen=True)
+class MoveTask:
+    """Rows of particles to carry through a generation's remaining Metropolis steps (one chunk).
+
+    ``increments`` (S, n, D) and ``log_u`` (S, n) are the proposal steps and log-uniforms of the
+    chunk's rows, drawn for the whole population beforehand, so the chunk's result is the same
+    however the population is cut.
+    """
+
+    case: Case
+    z: np.ndarray
+    ev: dict
+    increments: np.ndarray
+    log_u: np.ndarray
+    eps: float
+    beta: float
+
+
+def move_chunk(task: MoveTask) -> tuple[np.ndarray, dict, int]:
+    """Run a chunk's Metropolis steps one after another with no wait for the other chunks (a worker's function).
+
+    Returns the moved rows ``z`` (n, D), their evaluation and the number of proposals accepted.
+    """
+    sub = _Population(task.z.copy(), {k: v.copy() for k, v in task.ev.items()})
+    accepted = 0
+    for inc, log_u in zip(task.increments, task.log_u):
+        prop = sub.z + inc
+        ev = evaluate_chunk(EvalTask(task.case, _unit(prop)))
+        ok = _accept(sub.z, sub.ev, prop, ev, task.eps, task.beta, log_u)
+        sub.replace(ok, prop, ev)
+        accepted += int(ok.sum())
+    return sub.z, sub.ev, accepted
+
+
+def _move_rest(case, sub: _Population, increments, log_u, eps: float, beta: float, executor) -> int:
+    """Steps 2.. of a generation: each chunk of rows runs all of them as one task (no barrier per step).
+
+    A chunk holds a few per worker, so a slow one does not leave a worker idle, and at most
+    ``MOVE_CHUNK_SIMULATIONS`` spin-ups, so an interrupt waits for it briefly. Moves ``sub`` in
+    place; returns the proposals accepted.
+    """
+    from impact.run.execute import InProcess
+
+    executor = executor or InProcess()
+    S, n = log_u.shape
+    size = int(np.ceil(n / (EVAL_CHUNKS_PER_WORKER * max(executor.workers, 1))))
+    size = max(1, min(max(64, size), MOVE_CHUNK_SIMULATIONS // max(S, 1)))
+    starts = list(range(0, n, size))
+    tasks = [MoveTask(case, sub.z[a:a + size], {k: v[a:a + size] for k, v in sub.ev.items()},
+                      increments[:, a:a + size], log_u[:, a:a + size], eps, beta) for a in starts]
+    accepted = 0
+    for i, (z, ev, acc) in executor.map(move_chunk, tasks):
+        rows = slice(starts[i], starts[i] + size)
+        sub.z[rows] = z
+        for k, v in ev.items():
+            sub.ev[k][rows] = v
+        accepted += acc
+    return accepted
+
+
 def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget_left: int, scale: float = 1.0,
           rows: np.ndarray | None = None):
-    """Random-walk Metropolis steps on the particles ``rows`` (default all), simulated as one batch per step.
+    """Random-walk Metropolis steps on the particles ``rows`` (default all).
 
-    The proposal covariance is ``scale × 2.38²/D`` times the whole population's covariance.
+    The proposal covariance is ``scale × 2.38²/D`` times the whole population's covariance. The
+    first step runs as one batch: its acceptance sets the proposal scale and the number of steps
+    (Drovandi & Pettitt 2011). The other steps run chunk by chunk, each chunk through all of them
+    (:func:`move_chunk`), their random numbers drawn for the whole population in step order first.
     Returns the population (moved in place), the acceptance rate, the steps taken and wanted, and
     the simulations spent (fewer steps than wanted when the budget ran out).
     """
@@ -255,30 +330,30 @@ def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget
     chol = np.linalg.cholesky(cov)
     sub = pop.take(rows)
     n = len(rows)
-    steps, accepted, sims, wanted = 0, 0, 0, 1
-    while n and steps < wanted and sims + n <= budget_left:
-        prop = sub.z + rng.standard_normal((n, D)) @ chol.T
-        ev = evaluate(case, _unit(prop), executor)
-        sims += n
-        with np.errstate(invalid="ignore"):
-            log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (sub.z ** 2).sum(1)
-                     + (beta * (ev["loglik"] - sub.ev["loglik"]) if beta > 0 else 0.0))
-        ok = (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (np.log(rng.random(n)) < np.nan_to_num(log_a, nan=-np.inf))
-        sub.replace(ok, prop, ev)
-        accepted += int(ok.sum())
-        steps += 1
-        if steps == 1:
-            a = ok.mean()
-            if a < 0.5 * TARGET_ACCEPTANCE:
-                # the first step shows the steps are too long: shorten them for the rest (and count on the
-                # acceptance the shorter steps should reach when setting how many to take)
-                chol = chol * np.sqrt(_rescale(1.0, a))
-                a = max(a, 0.5 * TARGET_ACCEPTANCE)
-            wanted = MAX_STEPS if a == 0 else 1 if a == 1 else int(min(MAX_STEPS, np.ceil(np.log(STAY) / np.log1p(-a))))
+    if not n or n > budget_left:
+        return pop, 0.0, 0, 1 if n else 0, 0
+    prop = sub.z + rng.standard_normal((n, D)) @ chol.T
+    ev = evaluate(case, _unit(prop), executor)
+    ok = _accept(sub.z, sub.ev, prop, ev, eps, beta, np.log(rng.random(n)))
+    sub.replace(ok, prop, ev)
+    accepted, a = int(ok.sum()), ok.mean()
+    if a < 0.5 * TARGET_ACCEPTANCE:
+        # the first step shows the steps are too long: shorten them for the rest (and count on the
+        # acceptance the shorter steps should reach when setting how many to take)
+        chol = chol * np.sqrt(_rescale(1.0, a))
+        a = max(a, 0.5 * TARGET_ACCEPTANCE)
+    wanted = MAX_STEPS if a == 0 else 1 if a == 1 else int(min(MAX_STEPS, np.ceil(np.log(STAY) / np.log1p(-a))))
+    steps = 1 + min(wanted - 1, (budget_left - n) // n)
+    if steps > 1:
+        increments, log_u = np.empty((steps - 1, n, D)), np.empty((steps - 1, n))
+        for k in range(steps - 1):  # the order of the draws is the order of the steps
+            increments[k] = rng.standard_normal((n, D)) @ chol.T
+            log_u[k] = np.log(rng.random(n))
+        accepted += _move_rest(case, sub, increments, log_u, eps, beta, executor)
     pop.z[rows] = sub.z
     for k, v in sub.ev.items():
         pop.ev[k][rows] = v
-    return pop, accepted / max(steps * n, 1), steps, wanted, sims
+    return pop, accepted / (steps * n), steps, wanted, steps * n
 
 
 def _rescale(scale: float, acceptance: float) -> float:
