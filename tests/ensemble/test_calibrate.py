@@ -163,3 +163,22 @@ def test_simulation_based_calibration_catches_an_overconfident_sampler(monkeypat
     honest = calibrate.log_likelihood
     monkeypatch.setattr(calibrate, "log_likelihood", lambda *a: 3.0 * honest(*a))
     assert min(_sbc_pvalues(_sbc_ranks(REPLICATIONS, 20261))) < ALPHA
+
+
+def test_the_move_chunks_do_not_change_any_member(monkeypatch):
+    """Cutting a generation's Metropolis steps into chunks of a few rows, run on two threads, gives the
+    members of one whole-population chunk in process, bit for bit (each row's proposals and
+    acceptance draws come from the population's stream in step order, whatever the chunking)."""
+    import impact.ensemble.calibrate as calibrate
+    from impact.run.execute import LocalThreads
+
+    case, _, _ = _conjugate_case(3, members=120)
+    whole, cal_whole = build_ensemble(case, 120, 3)
+    monkeypatch.setattr(calibrate, "MOVE_CHUNK_SIMULATIONS", 40)  # chunks of 2-3 rows
+    threads = LocalThreads(2)
+    try:
+        cut, cal_cut = build_ensemble(case, 120, 3, executor=threads)
+    finally:
+        threads.close()
+    assert cal_whole.sampler == "smc" and cal_cut.simulations == cal_whole.simulations
+    assert np.array_equal(whole.unit, cut.unit) and np.array_equal(whole.today, cut.today)
