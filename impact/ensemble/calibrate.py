@@ -18,8 +18,16 @@ so that the effective sample size falls to half: Jasra et al. 2011). After each 
 particles are resampled (systematic) and moved by random-walk Metropolis steps whose proposal
 covariance is 2.38²/D times the particles' covariance (Roberts & Rosenthal 2001) and whose
 number is set from the first step's acceptance so that a particle stays put with probability
-below 1 % (Drovandi & Pettitt 2011). Every move step simulates the whole population as one batch
-through the engine. Generation 0 is the first ``members`` draws of the rejection sampler's path.
+below 1 % (Drovandi & Pettitt 2011: R = ⌈log c / log(1 − p_acc)⌉ with c = ``STAY``). The first move
+step of a generation simulates the particles to move as one batch (its acceptance sets R and the
+proposal scale); then each chunk of particles runs the other R − 1 steps as one task, with no wait
+for the other chunks between steps (:func:`move_chunk`). Generation 0 is the first ``members``
+draws of the rejection sampler's path.
+
+Stopping. The sequence ends at its exact target, ε = 0 and β = 1, and nowhere before: an earlier
+stop would present an approximation of the posterior as the posterior. The sampler gives up
+(an error, no ensemble) when the tolerance falls by less than 1 % over ``STALL`` generations,
+after ``MAX_GENERATIONS``, or when the simulation budget runs out.
 
 The population-level random numbers come from :func:`impact.ensemble.sample.calibration_generator` (seed,
 generation), so the result depends on the seed alone, never on the executor or chunking.
