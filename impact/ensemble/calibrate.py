@@ -62,7 +62,7 @@ SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
 TARGET_ACCEPTANCE = 0.25
 EVAL_CHUNK = 2048      # rows per chunk of a batch at most (a chunk cannot be stopped halfway)
 EVAL_CHUNKS_PER_WORKER = 4
-MOVE_CHUNK_SIMULATIONS = 4 * EVAL_CHUNK  # spin-ups per chunk of move steps at most (a second or so)
+MOVE_CHUNK_SIMULATIONS = 2 * EVAL_CHUNK  # spin-ups per task of move steps at most (an interrupt waits for one)
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
