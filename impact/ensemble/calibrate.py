@@ -18,8 +18,16 @@ so that the effective sample size falls to half: Jasra et al. 2011). After each 
 particles are resampled (systematic) and moved by random-walk Metropolis steps whose proposal
 covariance is 2.38²/D times the particles' covariance (Roberts & Rosenthal 2001) and whose
 number is set from the first step's acceptance so that a particle stays put with probability
-below 1 % (Drovandi & Pettitt 2011). Every move step simulates the whole population as one batch
-through the engine. Generation 0 is the first ``members`` draws of the rejection sampler's path.
+below 1 % (Drovandi & Pettitt 2011: R = ⌈log c / log(1 − p_acc)⌉ with c = ``STAY``). The first move
+step of a generation simulates the particles to move as one batch (its acceptance sets R and the
+proposal scale); then each chunk of particles runs the other R − 1 steps as one task, with no wait
+for the other chunks between steps (:func:`move_chunk`). Generation 0 is the first ``members``
+draws of the rejection sampler's path.
+
+Stopping. The sequence ends at its exact target, ε = 0 and β = 1, and nowhere before: an earlier
+stop would present an approximation of the posterior as the posterior. The sampler gives up
+(an error, no ensemble) when the tolerance falls by less than 1 % over ``STALL`` generations,
+after ``MAX_GENERATIONS``, or when the simulation budget runs out.
 
 The population-level random numbers come from :func:`impact.ensemble.sample.calibration_generator` (seed,
 generation), so the result depends on the seed alone, never on the executor or chunking.
@@ -37,11 +45,13 @@ from impact.ensemble.draws import Ensemble, LowAcceptance, draw_ensemble, first_
 from impact.case import DEFAULT_MIN_ACCEPTANCE, Case
 from impact.errors import CaseError
 from impact.model import WebParams, build_web, web_params
-from impact.ensemble.observe import (distance, draw_observations, has_data, log_likelihood, record_times,
+from impact.ensemble.observe import (distance, has_data, log_likelihood, record_times,
     unmet_constraints)
-from impact.ensemble.sample import calibration_generator, draw_uniforms, parameter_values, unit_columns
+from impact.ensemble.sample import calibration_generator, draw_uniforms, parameter_values
 from impact.engine.web import no_jumps, pack_coefficients, web_run
 from impact.model import Controls, segment_coefficients
+# the results tables live in impact.ensemble.posterior; these names stay importable from here
+from impact.ensemble.posterior import calibration_tables, posterior_table  # noqa: F401
 
 # SMC settings (the values of the papers cited in the module docstring; common practice)
 KEEP = 0.5            # share of particles kept per tolerance step, and ESS target per temperature step
@@ -54,6 +64,7 @@ SIMULATIONS_PER_MEMBER = 200  # default budget: spin-ups per member wanted
 TARGET_ACCEPTANCE = 0.25
 EVAL_CHUNK = 2048      # rows per chunk of a batch at most (a chunk cannot be stopped halfway)
 EVAL_CHUNKS_PER_WORKER = 4
+MOVE_CHUNK_SIMULATIONS = 2 * EVAL_CHUNK  # spin-ups per task of move steps at most (an interrupt waits for one)
 U_CLIP = 1e-12        # keep Φ(z) inside (0, 1): priors with unbounded support map 0 and 1 to ±inf
 
 
@@ -241,11 +252,85 @@ class _Population:
         self.ev = {k: np.where(mask.reshape((-1,) + (1,) * (v.ndim - 1)), ev[k], v) for k, v in self.ev.items()}
 
 
+def _accept(z, ev_old, prop, ev, eps: float, beta: float, log_u: np.ndarray) -> np.ndarray:
+    """Metropolis acceptance of ``prop`` against ``z`` under ``N(z) · L(z)^β · 1[d(z) ≤ ε]``: (n,) bool.
+
+    Row by row, so a particle's decision never depends on which other rows share its call.
+    """
+    with np.errstate(invalid="ignore"):
+        log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (z ** 2).sum(1)
+                 + (beta * (ev["loglik"] - ev_old["loglik"]) if beta > 0 else 0.0))
+    return (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (log_u < np.nan_to_num(log_a, nan=-np.inf))
+
+
+@dataclass(frozen=True)
+class MoveTask:
+    """Rows of particles to carry through a generation's remaining Metropolis steps (one chunk).
+
+    ``increments`` (S, n, D) and ``log_u`` (S, n) are the proposal steps and log-uniforms of the
+    chunk's rows, drawn for the whole population beforehand, so the chunk's result is the same
+    however the population is cut.
+    """
+
+    case: Case
+    z: np.ndarray
+    ev: dict
+    increments: np.ndarray
+    log_u: np.ndarray
+    eps: float
+    beta: float
+
+
+def move_chunk(task: MoveTask) -> tuple[np.ndarray, dict, int]:
+    """Run a chunk's Metropolis steps one after another with no wait for the other chunks (a worker's function).
+
+    Returns the moved rows ``z`` (n, D), their evaluation and the number of proposals accepted.
+    """
+    sub = _Population(task.z.copy(), {k: v.copy() for k, v in task.ev.items()})
+    accepted = 0
+    for inc, log_u in zip(task.increments, task.log_u):
+        prop = sub.z + inc
+        ev = evaluate_chunk(EvalTask(task.case, _unit(prop)))
+        ok = _accept(sub.z, sub.ev, prop, ev, task.eps, task.beta, log_u)
+        sub.replace(ok, prop, ev)
+        accepted += int(ok.sum())
+    return sub.z, sub.ev, accepted
+
+
+def _move_rest(case, sub: _Population, increments, log_u, eps: float, beta: float, executor) -> int:
+    """Steps 2.. of a generation: each chunk of rows runs all of them as one task (no barrier per step).
+
+    A chunk holds a few per worker, so a slow one does not leave a worker idle, and at most
+    ``MOVE_CHUNK_SIMULATIONS`` spin-ups, so an interrupt waits for it briefly. Moves ``sub`` in
+    place; returns the proposals accepted.
+    """
+    from impact.run.execute import InProcess
+
+    executor = executor or InProcess()
+    S, n = log_u.shape
+    size = int(np.ceil(n / (EVAL_CHUNKS_PER_WORKER * max(executor.workers, 1))))
+    size = max(1, min(max(64, size), MOVE_CHUNK_SIMULATIONS // max(S, 1)))
+    starts = list(range(0, n, size))
+    tasks = [MoveTask(case, sub.z[a:a + size], {k: v[a:a + size] for k, v in sub.ev.items()},
+                      increments[:, a:a + size], log_u[:, a:a + size], eps, beta) for a in starts]
+    accepted = 0
+    for i, (z, ev, acc) in executor.map(move_chunk, tasks):
+        rows = slice(starts[i], starts[i] + size)
+        sub.z[rows] = z
+        for k, v in ev.items():
+            sub.ev[k][rows] = v
+        accepted += acc
+    return accepted
+
+
 def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget_left: int, scale: float = 1.0,
           rows: np.ndarray | None = None):
-    """Random-walk Metropolis steps on the particles ``rows`` (default all), simulated as one batch per step.
+    """Random-walk Metropolis steps on the particles ``rows`` (default all).
 
-    The proposal covariance is ``scale × 2.38²/D`` times the whole population's covariance.
+    The proposal covariance is ``scale × 2.38²/D`` times the whole population's covariance. The
+    first step runs as one batch: its acceptance sets the proposal scale and the number of steps
+    (Drovandi & Pettitt 2011). The other steps run chunk by chunk, each chunk through all of them
+    (:func:`move_chunk`), their random numbers drawn for the whole population in step order first.
     Returns the population (moved in place), the acceptance rate, the steps taken and wanted, and
     the simulations spent (fewer steps than wanted when the budget ran out).
     """
@@ -255,30 +340,30 @@ def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget
     chol = np.linalg.cholesky(cov)
     sub = pop.take(rows)
     n = len(rows)
-    steps, accepted, sims, wanted = 0, 0, 0, 1
-    while n and steps < wanted and sims + n <= budget_left:
-        prop = sub.z + rng.standard_normal((n, D)) @ chol.T
-        ev = evaluate(case, _unit(prop), executor)
-        sims += n
-        with np.errstate(invalid="ignore"):
-            log_a = (-0.5 * (prop ** 2).sum(1) + 0.5 * (sub.z ** 2).sum(1)
-                     + (beta * (ev["loglik"] - sub.ev["loglik"]) if beta > 0 else 0.0))
-        ok = (ev["distance"] <= eps) & np.isfinite(ev["loglik"]) & (np.log(rng.random(n)) < np.nan_to_num(log_a, nan=-np.inf))
-        sub.replace(ok, prop, ev)
-        accepted += int(ok.sum())
-        steps += 1
-        if steps == 1:
-            a = ok.mean()
-            if a < 0.5 * TARGET_ACCEPTANCE:
-                # the first step shows the steps are too long: shorten them for the rest (and count on the
-                # acceptance the shorter steps should reach when setting how many to take)
-                chol = chol * np.sqrt(_rescale(1.0, a))
-                a = max(a, 0.5 * TARGET_ACCEPTANCE)
-            wanted = MAX_STEPS if a == 0 else 1 if a == 1 else int(min(MAX_STEPS, np.ceil(np.log(STAY) / np.log1p(-a))))
+    if not n or n > budget_left:
+        return pop, 0.0, 0, 1 if n else 0, 0
+    prop = sub.z + rng.standard_normal((n, D)) @ chol.T
+    ev = evaluate(case, _unit(prop), executor)
+    ok = _accept(sub.z, sub.ev, prop, ev, eps, beta, np.log(rng.random(n)))
+    sub.replace(ok, prop, ev)
+    accepted, a = int(ok.sum()), ok.mean()
+    if a < 0.5 * TARGET_ACCEPTANCE:
+        # the first step shows the steps are too long: shorten them for the rest (and count on the
+        # acceptance the shorter steps should reach when setting how many to take)
+        chol = chol * np.sqrt(_rescale(1.0, a))
+        a = max(a, 0.5 * TARGET_ACCEPTANCE)
+    wanted = MAX_STEPS if a == 0 else 1 if a == 1 else int(min(MAX_STEPS, np.ceil(np.log(STAY) / np.log1p(-a))))
+    steps = 1 + min(wanted - 1, (budget_left - n) // n)
+    if steps > 1:
+        increments, log_u = np.empty((steps - 1, n, D)), np.empty((steps - 1, n))
+        for k in range(steps - 1):  # the order of the draws is the order of the steps
+            increments[k] = rng.standard_normal((n, D)) @ chol.T
+            log_u[k] = np.log(rng.random(n))
+        accepted += _move_rest(case, sub, increments, log_u, eps, beta, executor)
     pop.z[rows] = sub.z
     for k, v in sub.ev.items():
         pop.ev[k][rows] = v
-    return pop, accepted / max(steps * n, 1), steps, wanted, sims
+    return pop, accepted / (steps * n), steps, wanted, steps * n
 
 
 def _rescale(scale: float, acceptance: float) -> float:
@@ -333,7 +418,7 @@ def smc(case: Case, members: int, seed: int, executor=None, progress=None, budge
         When the tolerance cannot reach 0, the temperature 1, or the final ensemble is degenerate.
     """
     t_start = time.monotonic()
-    N, D = members, unit_columns(case)
+    N = members
     budget = budget or SIMULATIONS_PER_MEMBER * members
     z = _probit(draw_uniforms(case, seed, np.arange(N)))
     pop = _Population(z, evaluate(case, _unit(z), executor))
@@ -515,79 +600,6 @@ def build_ensemble(case: Case, members: int, seed: int, progress=None, executor=
     unit, ev, cal = smc(case, members, seed, executor, progress, budget, spent)
     return _make(case, np.arange(members), unit, ev["recorded"][:, -1],
                  _counts(members, cal.simulations, members, ev)), cal
-
-
-def predictive_table(case: Case, ens: Ensemble, cal: Calibration, seed: int):
-    """Data against the posterior predictive bands: one row per series and time.
-
-    Columns: species, time, observed, kind, q05, q25, q50, q75, q95 (replicate data sets, one per member).
-    """
-    import pandas as pd
-
-    if not case.monitoring or cal.recorded is None:
-        return None
-    reps = draw_observations(case, ens.values, cal.recorded, cal.times, calibration_generator(seed, 0, purpose=1))
-    rows = []
-    for s in case.monitoring:
-        q = np.nanquantile(reps[s.species], [0.05, 0.25, 0.5, 0.75, 0.95], axis=0)
-        for k, t in enumerate(s.times):
-            rows.append(dict(species=s.species, time=t, observed=s.values[k], kind=s.kind,
-                             **{f"q{p:02d}": q[i, k] for i, p in enumerate((5, 25, 50, 75, 95))}))
-    return pd.DataFrame(rows)
-
-
-# a parameter counts as informed when the data and constraints remove at least this share of its
-# prior variance (posterior contraction, 1 − var_post / var_prior; common practice, no source)
-INFORMED = 0.2
-
-
-def _prior_moments(prior, grid: int = 20001) -> tuple[float, float]:
-    u = (np.arange(grid) + 0.5) / grid
-    x = np.asarray(prior.ppf(u), float)
-    return float(x.mean()), float(x.std())
-
-
-def posterior_table(case: Case, ens: Ensemble):
-    """Prior against posterior for each uncertain parameter (which ones the data informed).
-
-    Columns: parameter, unit, prior_q05, prior_q50, prior_q95, prior_mean, prior_sd, posterior_q05,
-    posterior_q50, posterior_q95, posterior_mean, posterior_sd, contraction, informed.
-    """
-    import pandas as pd
-
-    rows = []
-    for p in case.uncertain:
-        q = np.asarray(p.prior.ppf(np.array([0.05, 0.5, 0.95])), float)
-        m, sd = _prior_moments(p.prior)
-        x = ens.values[p.name]
-        pq = np.quantile(x, [0.05, 0.5, 0.95])
-        contraction = 1.0 - (x.std() / sd) ** 2 if sd > 0 else 0.0
-        rows.append(dict(parameter=p.name, unit=p.unit, prior_q05=q[0], prior_q50=q[1], prior_q95=q[2],
-                         prior_mean=m, prior_sd=sd, posterior_q05=pq[0], posterior_q50=pq[1], posterior_q95=pq[2],
-                         posterior_mean=float(x.mean()), posterior_sd=float(x.std()), contraction=contraction,
-                         informed=bool(contraction >= INFORMED)))
-    return pd.DataFrame(rows)
-
-
-def generations_table(cal: Calibration):
-    """The SMC's generations: generation, tolerance, temperature, ess, acceptance, steps, simulations."""
-    import pandas as pd
-
-    return pd.DataFrame(cal.generations, columns=["generation", "tolerance", "temperature", "ess", "acceptance",
-                                                  "steps", "simulations"])
-
-
-def calibration_tables(case: Case, ens: Ensemble, cal: Calibration, seed: int) -> dict:
-    """The results tables of the calibration (by relative path); none for a plain rejection draw."""
-    if not has_data(case) and cal.sampler == "rejection":
-        return {}
-    out = {"calibration/posterior.csv": posterior_table(case, ens)}
-    if cal.sampler == "smc":
-        out["calibration/generations.csv"] = generations_table(cal)
-    pred = predictive_table(case, ens, cal, seed)
-    if pred is not None:
-        out["calibration/predictive.csv"] = pred
-    return out
 
 
 def ensemble_from_arrays(case: Case, draws: np.ndarray, unit: np.ndarray, today: np.ndarray, counts: dict) -> Ensemble:

@@ -163,3 +163,80 @@ def test_simulation_based_calibration_catches_an_overconfident_sampler(monkeypat
     honest = calibrate.log_likelihood
     monkeypatch.setattr(calibrate, "log_likelihood", lambda *a: 3.0 * honest(*a))
     assert min(_sbc_pvalues(_sbc_ranks(REPLICATIONS, 20261))) < ALPHA
+
+
+def test_the_move_chunks_do_not_change_any_member(monkeypatch):
+    """Cutting a generation's Metropolis steps into chunks of a few rows, run on two threads, gives the
+    members of one whole-population chunk in process, bit for bit (each row's proposals and
+    acceptance draws come from the population's stream in step order, whatever the chunking)."""
+    import impact.ensemble.calibrate as calibrate
+    from impact.run.execute import LocalThreads
+
+    case, _, _ = _conjugate_case(3, members=120)
+    whole, cal_whole = build_ensemble(case, 120, 3)
+    monkeypatch.setattr(calibrate, "MOVE_CHUNK_SIMULATIONS", 40)  # chunks of 2-3 rows
+    threads = LocalThreads(2)
+    try:
+        cut, cal_cut = build_ensemble(case, 120, 3, executor=threads)
+    finally:
+        threads.close()
+    assert cal_whole.sampler == "smc" and cal_cut.simulations == cal_whole.simulations
+    assert np.array_equal(whole.unit, cut.unit) and np.array_equal(whole.today, cut.today)
+
+
+# ---- the constraint path (tolerance to 0) against a closed form ------------------------------------
+# Exponential decline N(t) = n0 exp(r s) over a 20-year spin-up (s = t + 20), r ~ U(−0.2, −0.05),
+# log n0 ~ U(log 50, log 200), and today's abundance observed in [10, 10.1]. The posterior is the prior
+# restricted to the strip log 10 ≤ log n0 + 20 r ≤ log 10.1, so the density of r is proportional to the
+# length of the strip's section at r within [log 50, log 200] (a uniform density on a region has
+# marginals proportional to its sections; derived here, elementary). Prior draws meet the range about
+# 0.3 % of the time, so the SMC gets there through a falling tolerance: about ten generations.
+NARROW_W, NARROW_M = 0.1, 500
+
+
+def _narrow_case(seed: int):
+    data = {"case": {"title": "narrow range", "time_unit": "year", "horizon": 5.0, "spinup": 20.0,
+                     "members": NARROW_M, "seed": seed},
+            "parameters": {"r": {"distribution": "uniform", "low": -0.2, "high": -0.05},
+                           "n0": {"distribution": "log-uniform", "low": 50.0, "high": 200.0}},
+            "species": [{"name": "newt", "growth": "exponential", "growth_rate": "r", "initial": "n0",
+                         "quasi_extinction": 1.0}],
+            "observed": [{"species": "newt", "low": 10.0, "high": 10.0 + NARROW_W}],
+            "interventions": [{"name": "none", "kind": "press-harvest", "species": "newt", "rate": 0.0}],
+            "options": [{"name": "none", "interventions": ["none"]}],
+            "calibration": {"sampler": "smc"}}
+    return parse_case(data, Path("narrow.toml"))
+
+
+def _narrow_posterior_of_r():
+    """Grid (G,), CDF (G,), mean and sd of r's exact posterior (the section length, by quadrature)."""
+    grid = np.linspace(-0.2, -0.05, 200_001)
+    low, high = np.log(10.0), np.log(10.0 + NARROW_W)
+    section = np.clip(np.minimum(np.log(200.0), high - 20 * grid) - np.maximum(np.log(50.0), low - 20 * grid), 0, None)
+    w = section / section.sum()
+    mean = float((grid * w).sum())
+    return grid, np.cumsum(w), mean, float(np.sqrt(((grid - mean) ** 2 * w).sum()))
+
+
+@pytest.mark.parametrize("seed", [11, 12])
+def test_smc_through_a_falling_tolerance_reaches_the_exact_restricted_prior(seed):
+    """Mean within 0.4 posterior sd, variance within ±35 %, and √M·KS below 3.2, with 500 members.
+
+    Measured over 20 seeds when this test was written: the mean's error had a standard deviation of
+    0.081 posterior sd (mean 0.001), the variance ratio a mean of 0.974 and a standard deviation of
+    0.078, so the margins sit 4.9 and 4.5 standard deviations out (a false failure about once in
+    100,000 runs per seed under a normal approximation). √M times the one-sample Kolmogorov–Smirnov
+    statistic against the exact CDF ranged 0.71–2.59 over 30 seeds (median 1.24, against 0.83 for
+    independent draws: resampled members are correlated); the margin 3.2 is set from that spread and
+    has no stated false-failure rate.
+    """
+    case = _narrow_case(seed)
+    ens, cal = build_ensemble(case, NARROW_M, seed)
+    assert cal.sampler == "smc" and cal.converged and len(cal.generations) > 3
+    grid, cdf, mean, sd = _narrow_posterior_of_r()
+    r = ens.values["r"]
+    assert abs(r.mean() - mean) < 0.4 * sd
+    assert 0.65 < r.var() / sd ** 2 < 1.35
+    assert np.sqrt(NARROW_M) * stats.kstest(r, lambda x: np.interp(x, grid, cdf)).statistic < 3.2
+    # the constraint is informative: r's prior sd is 2.2 times the posterior's
+    assert 0.15 / np.sqrt(12) / sd > 2
