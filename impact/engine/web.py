@@ -26,7 +26,7 @@ from impact.engine.control import MIN_RTOL, Failure
 __all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
            "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
 
-ENGINES = ("compiled", "table", "numpy")
+ENGINES = ("compiled", "table", "numpy", "lanes")
 DEFAULT_ENGINE = "compiled"
 
 
@@ -46,6 +46,10 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
 
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
+    if engine == "lanes":  # blocks of members stepped together (impact.engine.lanes), the same numbers
+        from impact.engine.lanes import specialised_lanes
+
+        return specialised_lanes(st)
     if engine == "table":
         from impact.engine import kernel
 
@@ -199,8 +203,8 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     RunResult
         The same numbers as :func:`web_segment` called segment by segment with the jumps between.
     """
-    if engine not in ("compiled", "table"):
-        raise ValueError(f"engine must be 'compiled' or 'table' for a whole run, got {engine!r}")
+    if engine not in ("compiled", "table", "lanes"):
+        raise ValueError(f"engine must be 'compiled', 'table' or 'lanes' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
     if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:
