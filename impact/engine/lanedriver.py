@@ -44,25 +44,29 @@ def lane_rhs(cf, t, y, out):  # pragma: no cover - every generated module define
 
 
 @kernel_inline
-def lane_combine(KS, coeffs, count, hs, y, out):
-    """``out[j] = (Σ coeffs[s]·KS[s, j])·hs + y[j]`` lane by lane over the first ``count`` stages,
-    skipping zero weights: :func:`impact.engine.kernel.combine_stages` and its step, per lane."""
+def lane_combine(K, coeffs, count, hs, y, out, lanes):
+    """``out[j] = (Σ coeffs[s]·K[s, j])·hs + y[j]`` lane by lane over the first ``count`` stages,
+    skipping zero weights: :func:`impact.engine.kernel.combine_stages` and its step, per lane.
+    Flat views (``K`` of (STAGES + 1, n, LANES), the others of (n, LANES)); ``lanes`` is LANES,
+    passed so the compiler keeps the lane loops and vectorises them (see :mod:`impact.engine.lanes`)."""
     n = NSTATE
     for j in range(n):
+        r = j * LANES
         first = True
         for s in range(count):
             c = coeffs[s]
             if c == 0:
                 continue
+            q = (s * n + j) * LANES
             if first:
-                for l in range(LANES):
-                    out[j, l] = KS[s, j, l] * c
+                for l in range(lanes):
+                    out[r + l] = K[q + l] * c
                 first = False
             else:
-                for l in range(LANES):
-                    out[j, l] += KS[s, j, l] * c
-        for l in range(LANES):
-            out[j, l] = out[j, l] * hs[l] + y[j, l]
+                for l in range(lanes):
+                    out[r + l] += K[q + l] * c
+        for l in range(lanes):
+            out[r + l] = out[r + l] * hs[l] + y[r + l]
 
 
 @kernel_inline
@@ -71,35 +75,39 @@ def lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol):
     derivative in ``KS[STAGES]`` and the RMS error norm in ``err``, as
     :func:`impact.engine.kernel.trial_step` per lane."""
     n = NSTATE
+    lanes = t.shape[0]
+    K, yf, ynf, tf = KS.reshape(-1), y.reshape(-1), y_new.reshape(-1), tmp.reshape(-1)
     for s in range(1, STAGES):
-        for l in range(LANES):
+        for l in range(lanes):
             ts[l] = t[l] + C[s] * hs[l]
-        lane_combine(KS, A[s], s, hs, y, tmp)
+        lane_combine(K, A[s], s, hs, yf, tf, lanes)
         lane_rhs(cf, ts, tmp, KS[s])
-    lane_combine(KS, B, STAGES, hs, y, y_new)
+    lane_combine(K, B, STAGES, hs, yf, ynf, lanes)
     lane_rhs(cf, t_new, y_new, KS[STAGES])
     for j in range(n):
+        r = j * LANES
         first = True
         for s in range(STAGES + 1):
             c = E[s]
             if c == 0:
                 continue
+            q = (s * n + j) * LANES
             if first:
-                for l in range(LANES):
-                    tmp[j, l] = KS[s, j, l] * c
+                for l in range(lanes):
+                    tf[r + l] = K[q + l] * c
                 first = False
             else:
-                for l in range(LANES):
-                    tmp[j, l] += KS[s, j, l] * c
-        for l in range(LANES):
-            scale = nmax(abs(y[j, l]), abs(y_new[j, l])) * rtol[j] + atol[j]
-            tmp[j, l] = tmp[j, l] * hs[l] / scale
-    for l in range(LANES):
-        err[l] = tmp[0, l] * tmp[0, l]
+                for l in range(lanes):
+                    tf[r + l] += K[q + l] * c
+        for l in range(lanes):
+            scale = nmax(abs(yf[r + l]), abs(ynf[r + l])) * rtol[j] + atol[j]
+            tf[r + l] = tf[r + l] * hs[l] / scale
+    for l in range(lanes):
+        err[l] = tf[l] * tf[l]
     for j in range(1, n):
-        for l in range(LANES):
-            err[l] = err[l] + tmp[j, l] * tmp[j, l]
-    for l in range(LANES):
+        for l in range(lanes):
+            err[l] = err[l] + tf[j * LANES + l] * tf[j * LANES + l]
+    for l in range(lanes):
         err[l] = math.sqrt(err[l] / n)
 
 

@@ -48,15 +48,19 @@ def lane_rhs_source(st: np.ndarray) -> str:
     s = Structure.decode(st)
     found: list = []
     stmts = [Let(stmt.target, _hoist_cosines(stmt.expr, found)) for stmt in program(s)]
-    pr = Printer(s.col, lambda k: f"cf[{k}, l]", lambda i: f"y{i}", None, numpy=False, time="t[l]")
-    body = []
+    W = lanedriver.LANES
+    pr = Printer(s.col, lambda k: f"cflat[{k * W} + l]", lambda i: f"y{i}", None, numpy=False, time="t[l]")
+    # Flat views, and a lane count the compiler does not know: with the count known it unrolls the
+    # loop before vectorising it and then cannot prove that ``out`` overlaps no input; a loop it
+    # keeps is vectorised behind one overlap check per array (measured in the generated assembly).
+    body = ["cflat = cf.reshape(-1)", "yflat = y.reshape(-1)", "oflat = out.reshape(-1)", "lanes = t.shape[0]"]
     if found:
-        body += [f"cosines = np.empty(({len(found)}, LANES))", "for l in range(LANES):"]
-        body += [f"    cosines[{k}, l] = math.cos({pr(arg)})" for k, arg in enumerate(found)]
-    body += ["for l in range(LANES):"] + [f"    cos{k} = cosines[{k}, l]" for k in range(len(found))]
-    body += [f"    y{i} = y[{i}, l]" for i in range(s.n)]
+        body += [f"cosines = np.empty({len(found) * W})", "for l in range(lanes):"]
+        body += [f"    cosines[{k * W} + l] = math.cos({pr(arg)})" for k, arg in enumerate(found)]
+    body += ["for l in range(lanes):"] + [f"    cos{k} = cosines[{k * W} + l]" for k in range(len(found))]
+    body += [f"    y{i} = yflat[{i * W} + l]" for i in range(s.n)]
     body += [f"    {stmt.target} = {pr(stmt.expr)}" for stmt in stmts]
-    body += [f"    out[{i}, l] = o{i}" for i in range(s.n)]
+    body += [f"    oflat[{i * W} + l] = o{i}" for i in range(s.n)]
     return "@kernel_jit\ndef lane_rhs(cf, t, y, out):\n" + "".join(f"    {b}\n" for b in body)
 
 
