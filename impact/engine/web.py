@@ -23,10 +23,12 @@ from impact.model.terms import pack_structure
 from impact.engine.boundary import check_kernel_arrays
 from impact.engine.control import MIN_RTOL, Failure
 
-__all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
+__all__ = ["ENGINES", "LANE_ENGINE", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
            "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
 
-ENGINES = ("compiled", "table", "numpy", "lanes")
+ENGINES = ("compiled", "table", "numpy")
+# Blocks of members stepped together (impact.engine.lanes): selectable, the same numbers as "compiled"
+LANE_ENGINE = "lanes"
 DEFAULT_ENGINE = "compiled"
 
 
@@ -46,7 +48,7 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
 
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
-    if engine == "lanes":  # blocks of members stepped together (impact.engine.lanes), the same numbers
+    if engine == LANE_ENGINE:
         from impact.engine.lanes import specialised_lanes
 
         return specialised_lanes(st)
@@ -110,8 +112,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         return integrate_segment(WebRHS(web, p, c), t0, t1, y0, rtol=rtol, atol=atol, h0=h0,
                                  members=members, nonnegative=True, max_steps=max_steps,
                                  blowup=blowup)
-    if engine not in ENGINES:
-        raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
+    if engine not in (*ENGINES, LANE_ENGINE):
+        raise ValueError(f"engine must be one of {(*ENGINES, LANE_ENGINE)}, got {engine!r}")
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
@@ -203,7 +205,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     RunResult
         The same numbers as :func:`web_segment` called segment by segment with the jumps between.
     """
-    if engine not in ("compiled", "table", "lanes"):
+    if engine not in ("compiled", "table", LANE_ENGINE):
         raise ValueError(f"engine must be 'compiled', 'table' or 'lanes' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
