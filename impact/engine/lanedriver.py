@@ -29,7 +29,7 @@ LANES = 8  # members per block: one AVX-512 register of doubles
 NSTATE = -1  # state columns: each generated module sets its own
 
 # copied into every generated lane module, in this order
-DRIVER_FUNCTIONS = ("lane_combine", "lane_trial", "lane_finite", "lane_initial_step", "lane_member",
+DRIVER_FUNCTIONS = ("lane_count", "lane_combine", "lane_trial", "lane_finite", "lane_initial_step", "lane_member",
                     "load_lane", "segment", "run_members")
 # names the copied functions take from the engine's modules
 HELPERS = {"impact.engine.kernel": ("A", "B", "C", "E", "STAGES", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY",
@@ -38,9 +38,20 @@ HELPERS = {"impact.engine.kernel": ("A", "B", "C", "E", "STAGES", "NONFINITE", "
            "impact.engine.control": ("MIN_STEP_ULPS",)}
 
 
-def lane_rhs(cf, t, y, out):  # pragma: no cover - every generated module defines its own
+def lane_rhs(cf, t, y, out, lanes):  # pragma: no cover - every generated module defines its own
     """Right-hand side of a block: ``cf`` (P, LANES), ``t`` (LANES,), ``y`` and ``out`` (n, LANES)."""
     raise NotImplementedError("lane_rhs is generated per web structure (impact.engine.lanes)")
+
+
+@kernel_inline
+def lane_count(a):
+    """LANES, in a form the compiler cannot fold (``a`` is any argument of the entry point).
+
+    With a loop count it knows (8) LLVM unrolls the lane loops fully before its loop vectoriser runs,
+    and its straight-line vectoriser then cannot prove that the arrays written do not overlap those
+    read: the arithmetic stays scalar (measured: no packed instructions). With a count it cannot
+    know, the loops stay loops and are vectorised behind a run-time overlap check."""
+    return LANES if a.shape[0] >= 0 else 0
 
 
 @kernel_inline
@@ -70,20 +81,19 @@ def lane_combine(K, coeffs, count, hs, y, out, lanes):
 
 
 @kernel_inline
-def lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol):
+def lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol, lanes):
     """One Dormand-Prince step of every lane (``hs`` (LANES,) signed steps): ``y_new``, the new
     derivative in ``KS[STAGES]`` and the RMS error norm in ``err``, as
     :func:`impact.engine.kernel.trial_step` per lane."""
     n = NSTATE
-    lanes = t.shape[0]
     K, yf, ynf, tf = KS.reshape(-1), y.reshape(-1), y_new.reshape(-1), tmp.reshape(-1)
     for s in range(1, STAGES):
         for l in range(lanes):
             ts[l] = t[l] + C[s] * hs[l]
         lane_combine(K, A[s], s, hs, yf, tf, lanes)
-        lane_rhs(cf, ts, tmp, KS[s])
+        lane_rhs(cf, ts, tmp, KS[s], lanes)
     lane_combine(K, B, STAGES, hs, yf, ynf, lanes)
-    lane_rhs(cf, t_new, y_new, KS[STAGES])
+    lane_rhs(cf, t_new, y_new, KS[STAGES], lanes)
     for j in range(n):
         r = j * LANES
         first = True
@@ -121,7 +131,7 @@ def lane_finite(x, l):
 
 
 @kernel_jit
-def lane_initial_step(cf, t0, t1, y0, f0, rtol, atol, direction, need, h, y1, f1, sc, ts):
+def lane_initial_step(cf, t0, t1, y0, f0, rtol, atol, direction, need, h, y1, f1, sc, ts, lanes):
     """First steps of the lanes in ``need`` into ``h``, as :func:`impact.engine.kernel.initial_step`
     per lane (HNW 1993, Sec. II.4); one block evaluation of the right-hand side."""
     n = NSTATE
@@ -150,7 +160,7 @@ def lane_initial_step(cf, t0, t1, y0, f0, rtol, atol, direction, need, h, y1, f1
             y1[j, l] = y0[j, l] + (h0 * direction) * f0[j, l]
         ts[l] = t0 + h0 * direction
         h0s[l], d1s[l] = h0, d1
-    lane_rhs(cf, ts, y1, f1)
+    lane_rhs(cf, ts, y1, f1, lanes)
     for l in range(LANES):
         if need[l]:
             acc = 0.0
@@ -162,7 +172,7 @@ def lane_initial_step(cf, t0, t1, y0, f0, rtol, atol, direction, need, h, y1, f1
 
 @kernel_jit
 def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, atol, max_steps, blowup,
-                ymin, ymax, code, nacc, h_out):
+                ymin, ymax, code, nacc, h_out, lanes):
     """The step loop of :func:`impact.engine.kernel.member` for the lanes in ``live`` at once, each
     from ``t0`` with its state in ``y`` (n, LANES), derivative in ``KS[0]`` and step in ``h``, to
     ``t1``. Writes per lane the failure ``code``, accepted steps ``nacc`` and next step ``h_out``,
@@ -203,7 +213,7 @@ def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, a
                 hs[l] = 0.0
         if count == 0:
             break
-        lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol)
+        lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol, lanes)
         project = False
         for l in range(LANES):
             accepted[l] = False
@@ -226,7 +236,7 @@ def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, a
                     y_new[j, l] = nmax(y_new[j, l], 0.0)
                 project = True
         if project:  # the derivative of the projected states, for the lanes projected
-            lane_rhs(cf, t_new, y_new, proj)
+            lane_rhs(cf, t_new, y_new, proj, lanes)
         for l in range(LANES):
             if not accepted[l]:
                 continue
@@ -277,6 +287,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
     lanes hold zeros and are never read."""
     M = y0.shape[0]
     n = NSTATE
+    lanes = lane_count(y0)
     direction = 1.0 if t1 > t0 else -1.0
     cf = np.zeros((coef.shape[1], LANES))
     y, y_new, tmp, proj, sc = np.zeros((n, LANES)), np.zeros((n, LANES)), np.zeros((n, LANES)), np.zeros((n, LANES)), \
@@ -302,7 +313,7 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
                     y[j, l] = 0.0
         for l in range(LANES):
             ts[l] = t0
-        lane_rhs(cf, ts, y, KS[0])
+        lane_rhs(cf, ts, y, KS[0], lanes)
         for l in range(LANES):
             if live[l]:
                 nfev += 1
@@ -317,11 +328,11 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
                     nfev += 1
                 load_lane(ymin[b0 + l], lo, l)
                 load_lane(ymax[b0 + l], hi, l)
-        lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, direction, need, h, tmp, KS[1], sc, ts)
+        lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, direction, need, h, tmp, KS[1], sc, ts, lanes)
         for l in range(LANES):
             h[l] = nmin(h[l], abs(t1 - t0))
         nfev += lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, atol, max_steps,
-                            blowup, lo, hi, code, nacc, hb)
+                            blowup, lo, hi, code, nacc, hb, lanes)
         for l in range(LANES):
             if live[l]:
                 m = b0 + l
@@ -344,6 +355,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
     K = times.shape[0] - 1
     M = y0.shape[0]
     n = NSTATE
+    lanes = lane_count(y0)
     S = st[HEAD_S]
     cf = np.zeros((coef.shape[2], LANES))
     y, y_new, tmp, proj, sc = np.zeros((n, LANES)), np.zeros((n, LANES)), np.zeros((n, LANES)), np.zeros((n, LANES)), \
@@ -381,7 +393,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
                     if not lane_finite(y, l):
                         code[l] = NONFINITE
                         live[l] = False
-            lane_rhs(cf, ts, y, KS[0])
+            lane_rhs(cf, ts, y, KS[0], lanes)
             for l in range(LANES):
                 need[l] = False
                 if live[l]:
@@ -393,7 +405,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
                     need[l] = not (math.isfinite(h[l]) and h[l] > 0)
                     if need[l]:
                         nfev += 1
-            lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, 1.0, need, h, tmp, KS[1], sc, ts)
+            lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, 1.0, need, h, tmp, KS[1], sc, ts, lanes)
             for l in range(LANES):
                 if live[l]:
                     h[l] = nmin(h[l], abs(t1 - t0))
@@ -401,7 +413,7 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
                     smin[j, l] = y[j, l]
                     smax[j, l] = y[j, l]
             nfev += lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, 1.0, rtol, atol, max_steps,
-                                blowup, smin, smax, code, nacc, hb)
+                                blowup, smin, smax, code, nacc, hb, lanes)
             for l in range(width):
                 if live[l]:
                     h[l] = hb[l]

@@ -43,17 +43,17 @@ def _hoist_cosines(e: Expr, found: list) -> Expr:
 
 
 def lane_rhs_source(st: np.ndarray) -> str:
-    """``lane_rhs(cf, t, y, out)`` for structure ``st``: ``cf`` (P, LANES), ``t`` (LANES,), ``y`` and
-    ``out`` (n, LANES); the scalar kernel's statements, per lane, in their order."""
+    """``lane_rhs(cf, t, y, out, lanes)`` for structure ``st``: ``cf`` (P, LANES), ``t`` (LANES,), ``y``
+    and ``out`` (n, LANES), ``lanes`` = LANES; the scalar kernel's statements, per lane, in their order."""
     s = Structure.decode(st)
     found: list = []
     stmts = [Let(stmt.target, _hoist_cosines(stmt.expr, found)) for stmt in program(s)]
     W = lanedriver.LANES
     pr = Printer(s.col, lambda k: f"cflat[{k * W} + l]", lambda i: f"y{i}", None, numpy=False, time="t[l]")
-    # Flat views, and a lane count the compiler does not know: with the count known it unrolls the
-    # loop before vectorising it and then cannot prove that ``out`` overlaps no input; a loop it
-    # keeps is vectorised behind one overlap check per array (measured in the generated assembly).
-    body = ["cflat = cf.reshape(-1)", "yflat = y.reshape(-1)", "oflat = out.reshape(-1)", "lanes = t.shape[0]"]
+    # Flat views, and a lane count the compiler does not know (see impact.engine.lanedriver.lane_count):
+    # with the count known it unrolls the loop before vectorising it and then cannot prove that ``out``
+    # overlaps no input; a loop it keeps is vectorised behind one overlap check per array.
+    body = ["cflat = cf.reshape(-1)", "yflat = y.reshape(-1)", "oflat = out.reshape(-1)"]
     if found:
         body += [f"cosines = np.empty({len(found) * W})", "for l in range(lanes):"]
         body += [f"    cosines[{k * W} + l] = math.cos({pr(arg)})" for k, arg in enumerate(found)]
@@ -61,7 +61,7 @@ def lane_rhs_source(st: np.ndarray) -> str:
     body += [f"    y{i} = yflat[{i * W} + l]" for i in range(s.n)]
     body += [f"    {stmt.target} = {pr(stmt.expr)}" for stmt in stmts]
     body += [f"    oflat[{i * W} + l] = o{i}" for i in range(s.n)]
-    return "@kernel_jit\ndef lane_rhs(cf, t, y, out):\n" + "".join(f"    {b}\n" for b in body)
+    return "@kernel_jit\ndef lane_rhs(cf, t, y, out, lanes):\n" + "".join(f"    {b}\n" for b in body)
 
 
 def module_source(st: np.ndarray) -> str:
