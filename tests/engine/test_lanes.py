@@ -19,7 +19,7 @@ from impact.engine.web import web_segment
 from impact.model import Controls, WebParams, build_web
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from test_engine import _paired_inputs, ensemble, load  # noqa: E402
+from test_engine import _paired_inputs, ensemble, load, random_web  # noqa: E402
 
 M = 2 * LANES + 3  # two full blocks and a padded one
 FIELDS = ("y", "ymin", "ymax", "h", "reason", "nsteps")
@@ -80,3 +80,17 @@ def test_whole_runs_equal_the_scalar_kernel_and_do_not_depend_on_the_block(tmp_p
                      engine="lanes")
     for f in ("states", "cummin", "cummax", "reason"):
         assert np.array_equal(getattr(sub, f), getattr(got, f)[order], equal_nan=True), f
+
+
+def test_every_newer_term_gives_the_scalar_kernels_numbers():
+    # an invented web with a sinusoidal breeding season (its cosine computed in a loop of its own),
+    # sterile releases, life stages, obligate mutualism and alternative food
+    web, p, c = random_web(6, M, new_terms=True)
+    kw = dict(rtol=1e-8, atol=1e-10)
+    ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="compiled", **kw)
+    got = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="lanes", **kw)
+    assert web.wave and (~ref.failed).sum() >= M // 2
+    for f in ("reason", "nsteps"):
+        assert np.array_equal(getattr(got, f), getattr(ref, f)), f
+    for f in ("y", "ymin", "ymax", "h"):
+        np.testing.assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-12, atol=0.0, equal_nan=True)
