@@ -33,8 +33,8 @@ DRIVER_FUNCTIONS = ("lane_count", "lane_combine", "lane_trial", "lane_finite", "
                     "load_lane", "segment", "run_members")
 # names the copied functions take from the engine's modules
 HELPERS = {"impact.engine.kernel": ("A", "B", "C", "E", "STAGES", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY",
-                                    "JUMP_CULL", "JUMP_ERADICATE", "HEAD_S", "kernel_jit", "kernel_inline", "nmin", "nmax",
-                                    "next_step", "trial_first_step", "chosen_first_step"),
+                                    "JUMP_CULL", "JUMP_ERADICATE", "HEAD_S", "kernel_jit", "kernel_inline", "nmin",
+                                    "nmax", "next_step", "trial_first_step", "chosen_first_step"),
            "impact.engine.control": ("MIN_STEP_ULPS",)}
 
 

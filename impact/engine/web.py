@@ -93,7 +93,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         First step sizes (NaN or None: chosen automatically).
     members : int ndarray (m,), optional
         Rows of ``p`` and ``c``; default ``arange(m)``.
-    engine : {"compiled", "table", "numpy"}
+    engine : {"compiled", "table", "numpy", "lanes"}
+        ``"lanes"``: the compiled kernel stepping blocks of eight members together (:mod:`impact.engine.lanes`).
     coef : ndarray (m, P), optional
         The members' coefficient rows as :func:`pack_coefficients` gives them for ``p`` and ``c``
         (compiled engines): a caller integrating many segments under the same parameters and
@@ -198,7 +199,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
         Output slot of each boundary, or −1; slot ``slot_of[0]`` holds ``y0``.
     h0 : ndarray (M,), optional
         First step sizes, e.g. those of a run this one continues (NaN or None: chosen).
-    engine : {"compiled", "table"}
+    engine : {"compiled", "table", "lanes"}
 
     Returns
     -------
