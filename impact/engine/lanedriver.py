@@ -29,8 +29,8 @@ LANES = 8  # members per block: one AVX-512 register of doubles
 NSTATE = -1  # state columns: each generated module sets its own
 
 # copied into every generated lane module, in this order
-DRIVER_FUNCTIONS = ("lane_count", "lane_combine", "lane_trial", "lane_finite", "lane_initial_step", "lane_member",
-                    "load_lane", "segment", "run_members")
+DRIVER_FUNCTIONS = ("lane_count", "lane_combine", "lane_trial", "lane_finite", "lane_initial_step", "lane_propose",
+                    "lane_judge", "lane_accept", "lane_member", "lane_jumps", "load_lane", "segment", "run_members")
 # names the copied functions take from the engine's modules
 HELPERS = {"impact.engine.kernel": ("A", "B", "C", "E", "STAGES", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY",
                                     "JUMP_CULL", "JUMP_ERADICATE", "HEAD_S", "kernel_jit", "kernel_inline", "nmin",
@@ -170,6 +170,86 @@ def lane_initial_step(cf, t0, t1, y0, f0, rtol, atol, direction, need, h, y1, f1
             h[l] = chosen_first_step(h0s[l], d1s[l], math.sqrt(acc / n) / h0s[l], interval)
 
 
+@kernel_inline
+def lane_propose(t, h, t_new, hs, t1, direction, going, rejected, last_nonfinite, clipped, code):
+    """The next step of every going lane (``t_new``, signed ``hs``), or its end by step underflow, as
+    the head of :func:`impact.engine.kernel.member`'s loop; lanes not going step by zero. Returns
+    the number of lanes stepping."""
+    count = 0
+    for l in range(LANES):
+        if going[l]:
+            tl = t[l]
+            min_step = MIN_STEP_ULPS * abs(np.nextafter(tl, direction * np.inf) - tl)
+            if not rejected[l]:
+                h[l] = nmax(h[l], min_step)
+            if h[l] < min_step:
+                code[l] = NONFINITE if last_nonfinite[l] else UNDERFLOW
+                going[l] = False
+            else:
+                tn = tl + direction * h[l]
+                clipped[l] = direction * (tn - t1) >= 0
+                if clipped[l]:
+                    tn = t1
+                t_new[l] = tn
+                hs[l] = tn - tl
+                count += 1
+        if not going[l]:  # steps by zero until the block ends
+            t_new[l] = t[l]
+            hs[l] = 0.0
+    return count
+
+
+@kernel_inline
+def lane_judge(err, hs, h, going, rejected, last_nonfinite, accepted, negative, y_new):
+    """Each going lane's next step size and accept decision from its error norm; accepted states
+    with a negative entry are projected onto y ≥ 0 (``negative``). Returns whether any was."""
+    project = False
+    for l in range(LANES):
+        accepted[l] = False
+        if not going[l]:
+            continue
+        e = err[l]
+        h[l] = next_step(e, hs[l], rejected[l])
+        rejected[l] = not e < 1
+        last_nonfinite[l] = not math.isfinite(e)
+        if rejected[l]:
+            continue
+        accepted[l] = True
+        negative[l] = False
+        for j in range(NSTATE):
+            if y_new[j, l] < 0:
+                negative[l] = True
+        if negative[l]:
+            for j in range(NSTATE):
+                y_new[j, l] = nmax(y_new[j, l], 0.0)
+            project = True
+    return project
+
+
+@kernel_inline
+def lane_accept(l, KS, proj, y, y_new, ymin, ymax, projected, blowup):
+    """Lane ``l`` takes its new state (with the derivative ``proj`` of its projected state when
+    ``projected``), as :func:`impact.engine.kernel.accept_step`; returns its failure code."""
+    c = 0
+    if projected:
+        for j in range(NSTATE):
+            KS[STAGES, j, l] = proj[j, l]
+        if not lane_finite(proj, l):
+            c = NONFINITE
+    for j in range(NSTATE):
+        y[j, l] = y_new[j, l]
+        KS[0, j, l] = KS[STAGES, j, l]
+        ymin[j, l] = nmin(ymin[j, l], y[j, l])
+        ymax[j, l] = nmax(ymax[j, l], y[j, l])
+    if c == 0 and not lane_finite(y, l):
+        c = NONFINITE
+    if c == 0:
+        for j in range(NSTATE):
+            if abs(y[j, l]) > blowup:
+                c = BLOWUP
+    return c
+
+
 @kernel_jit
 def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, atol, max_steps, blowup,
                 ymin, ymax, code, nacc, h_out, lanes):
@@ -177,7 +257,6 @@ def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, a
     from ``t0`` with its state in ``y`` (n, LANES), derivative in ``KS[0]`` and step in ``h``, to
     ``t1``. Writes per lane the failure ``code``, accepted steps ``nacc`` and next step ``h_out``,
     updates ``ymin``/``ymax``; leaves the end state in ``y``. Returns member evaluations."""
-    n = NSTATE
     t = np.full(LANES, t0)
     t_new, hs, ts, err = np.empty(LANES), np.zeros(LANES), np.empty(LANES), np.empty(LANES)
     hgood = np.full(LANES, math.nan)
@@ -190,74 +269,19 @@ def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, a
             code[l] = 0
             nacc[l] = 0
     while True:
-        count = 0
-        for l in range(LANES):
-            if going[l]:
-                tl = t[l]
-                min_step = MIN_STEP_ULPS * abs(np.nextafter(tl, direction * np.inf) - tl)
-                if not rejected[l]:
-                    h[l] = nmax(h[l], min_step)
-                if h[l] < min_step:
-                    code[l] = NONFINITE if last_nonfinite[l] else UNDERFLOW
-                    going[l] = False
-                else:
-                    tn = tl + direction * h[l]
-                    clipped[l] = direction * (tn - t1) >= 0
-                    if clipped[l]:
-                        tn = t1
-                    t_new[l] = tn
-                    hs[l] = tn - tl
-                    count += 1
-            if not going[l]:  # steps by zero until the block ends
-                t_new[l] = t[l]
-                hs[l] = 0.0
+        count = lane_propose(t, h, t_new, hs, t1, direction, going, rejected, last_nonfinite, clipped, code)
         if count == 0:
             break
         lane_trial(cf, t, t_new, hs, y, KS, y_new, tmp, ts, err, rtol, atol, lanes)
-        project = False
-        for l in range(LANES):
-            accepted[l] = False
-            if not going[l]:
-                continue
-            nfev += STAGES
-            e = err[l]
-            h[l] = next_step(e, hs[l], rejected[l])
-            rejected[l] = not e < 1
-            last_nonfinite[l] = not math.isfinite(e)
-            if rejected[l]:
-                continue
-            accepted[l] = True
-            negative[l] = False
-            for j in range(n):
-                if y_new[j, l] < 0:
-                    negative[l] = True
-            if negative[l]:
-                for j in range(n):
-                    y_new[j, l] = nmax(y_new[j, l], 0.0)
-                project = True
-        if project:  # the derivative of the projected states, for the lanes projected
-            lane_rhs(cf, t_new, y_new, proj, lanes)
+        nfev += STAGES * count
+        if lane_judge(err, hs, h, going, rejected, last_nonfinite, accepted, negative, y_new):
+            lane_rhs(cf, t_new, y_new, proj, lanes)  # the derivative of the projected states
         for l in range(LANES):
             if not accepted[l]:
                 continue
-            c = 0
             if negative[l]:
                 nfev += 1
-                for j in range(n):
-                    KS[STAGES, j, l] = proj[j, l]
-                if not lane_finite(proj, l):
-                    c = NONFINITE
-            for j in range(n):
-                y[j, l] = y_new[j, l]
-                KS[0, j, l] = KS[STAGES, j, l]
-                ymin[j, l] = nmin(ymin[j, l], y[j, l])
-                ymax[j, l] = nmax(ymax[j, l], y[j, l])
-            if c == 0 and not lane_finite(y, l):
-                c = NONFINITE
-            if c == 0:
-                for j in range(n):
-                    if abs(y[j, l]) > blowup:
-                        c = BLOWUP
+            c = lane_accept(l, KS, proj, y, y_new, ymin, ymax, negative[l], blowup)
             t[l] = t_new[l]
             nacc[l] += 1
             if not clipped[l]:
@@ -271,6 +295,24 @@ def lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, direction, rtol, a
         if live[l]:
             h_out[l] = hgood[l] if math.isfinite(hgood[l]) else h[l]
     return nfev
+
+
+@kernel_inline
+def lane_jumps(y, l, S, first, stop, jump_kind, jump_species, jump_yield, value, aux):
+    """Jumps ``first`` to ``stop − 1`` on lane ``l`` of ``y`` (``value``, ``aux`` its member's rows), as
+    :func:`impact.engine.kernel.run_members` applies them; ``S`` the carrion pool's column."""
+    for e in range(first, stop):
+        j = jump_species[e]
+        kind = jump_kind[e]
+        if kind == JUMP_CULL:
+            removed = y[j, l] * value[e]
+            y[j, l] = y[j, l] - removed
+            if jump_yield[e] >= 0:
+                y[S, l] = y[S, l] + jump_yield[e] * removed
+        elif kind == JUMP_ERADICATE:
+            y[j, l] = y[j, l] * value[e] if aux[e] != 0 else 0.0
+        else:
+            y[j, l] = y[j, l] + value[e]
 
 
 @kernel_inline
@@ -426,18 +468,8 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
                     failed[l] = True
                     reason[b0 + l] = code[l]
                 m = b0 + l
-                for e in range(jump_start[k + 1], jump_start[k + 2]):
-                    j = jump_species[e]
-                    kind = jump_kind[e]
-                    if kind == JUMP_CULL:
-                        removed = y[j, l] * jump_value[m, e]
-                        y[j, l] = y[j, l] - removed
-                        if jump_yield[e] >= 0:
-                            y[S, l] = y[S, l] + jump_yield[e] * removed
-                    elif kind == JUMP_ERADICATE:
-                        y[j, l] = y[j, l] * jump_value[m, e] if jump_aux[m, e] != 0 else 0.0
-                    else:
-                        y[j, l] = y[j, l] + jump_value[m, e]
+                lane_jumps(y, l, S, jump_start[k + 1], jump_start[k + 2], jump_kind, jump_species, jump_yield,
+                           jump_value[m], jump_aux[m])
                 for j in range(n):
                     lo[j, l] = nmin(lo[j, l], y[j, l])
                     hi[j, l] = nmax(hi[j, l], y[j, l])
