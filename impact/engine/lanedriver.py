@@ -30,7 +30,8 @@ NSTATE = -1  # state columns: each generated module sets its own
 
 # copied into every generated lane module, in this order
 DRIVER_FUNCTIONS = ("lane_count", "lane_combine", "lane_trial", "lane_finite", "lane_initial_step", "lane_propose",
-                    "lane_judge", "lane_accept", "lane_member", "lane_jumps", "load_lane", "segment", "run_members")
+                    "lane_judge", "lane_accept", "lane_member", "lane_jumps", "load_lane",
+                    "lane_enter", "segment", "run_members")
 # names the copied functions take from the engine's modules
 HELPERS = {"impact.engine.kernel": ("A", "B", "C", "E", "STAGES", "NONFINITE", "BLOWUP", "UNDERFLOW", "TOO_MANY",
                                     "JUMP_CULL", "JUMP_ERADICATE", "HEAD_S", "kernel_jit", "kernel_inline", "nmin",
@@ -389,6 +390,45 @@ def segment(st, coef, y0, h0, t0, t1, rtol, atol, max_steps, blowup, y_out, ymin
 
 
 @kernel_jit
+def lane_enter(coef, b0, cf, y, KS, failed, live, need, code, h, ts, t0, t1, rtol, atol, tmp, sc, smin, smax, lanes):
+    """A block entering the segment ``[t0, t1]`` in :func:`run_members`: the lanes not ``failed`` load
+    their coefficient rows (``coef`` (M, P), the block from row ``b0``), evaluate their derivative
+    into ``KS[0]`` (``code`` NONFINITE where it or the state is not finite) and choose a first
+    step where theirs is not usable; ``live`` the lanes that go on, ``smin``/``smax`` their state.
+    Returns member evaluations, as the scalar kernel counts them."""
+    nfev = 0
+    for l in range(LANES):
+        live[l] = not failed[l]
+        code[l] = 0
+        ts[l] = t0
+        if live[l]:
+            load_lane(coef[b0 + l], cf, l)
+            if not lane_finite(y, l):
+                code[l] = NONFINITE
+                live[l] = False
+    lane_rhs(cf, ts, y, KS[0], lanes)
+    for l in range(LANES):
+        need[l] = False
+        if live[l]:
+            nfev += 1
+            if not lane_finite(KS[0], l):
+                code[l] = NONFINITE
+                live[l] = False
+        if live[l]:
+            need[l] = not (math.isfinite(h[l]) and h[l] > 0)
+            if need[l]:
+                nfev += 1
+    lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, 1.0, need, h, tmp, KS[1], sc, ts, lanes)
+    for l in range(LANES):
+        if live[l]:
+            h[l] = nmin(h[l], abs(t1 - t0))
+        for j in range(NSTATE):
+            smin[j, l] = y[j, l]
+            smax[j, l] = y[j, l]
+    return nfev
+
+
+@kernel_jit
 def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, jump_yield, jump_value, jump_aux,
                 rtol, atol, max_steps, blowup, slot_of, states, cummin, cummax, reason, h_out):
     """:func:`impact.engine.kernel.run_members` (same arguments, same numbers) stepping blocks of
@@ -426,34 +466,8 @@ def run_members(st, coef, times, y0, h0, jump_start, jump_kind, jump_species, ju
         for k in range(K):
             t0, t1 = times[k], times[k + 1]
             g = k if coef.shape[0] > 1 else 0
-            for l in range(LANES):
-                live[l] = not failed[l]
-                code[l] = 0
-                ts[l] = t0
-                if live[l]:
-                    load_lane(coef[g, b0 + l], cf, l)
-                    if not lane_finite(y, l):
-                        code[l] = NONFINITE
-                        live[l] = False
-            lane_rhs(cf, ts, y, KS[0], lanes)
-            for l in range(LANES):
-                need[l] = False
-                if live[l]:
-                    nfev += 1
-                    if not lane_finite(KS[0], l):
-                        code[l] = NONFINITE
-                        live[l] = False
-                if live[l]:
-                    need[l] = not (math.isfinite(h[l]) and h[l] > 0)
-                    if need[l]:
-                        nfev += 1
-            lane_initial_step(cf, t0, t1, y, KS[0], rtol, atol, 1.0, need, h, tmp, KS[1], sc, ts, lanes)
-            for l in range(LANES):
-                if live[l]:
-                    h[l] = nmin(h[l], abs(t1 - t0))
-                for j in range(n):
-                    smin[j, l] = y[j, l]
-                    smax[j, l] = y[j, l]
+            nfev += lane_enter(coef[g], b0, cf, y, KS, failed, live, need, code, h, ts, t0, t1, rtol, atol, tmp, sc,
+                               smin, smax, lanes)
             nfev += lane_member(cf, y, KS, y_new, tmp, proj, h, live, t0, t1, 1.0, rtol, atol, max_steps,
                                 blowup, smin, smax, code, nacc, hb, lanes)
             for l in range(width):
