@@ -7,9 +7,11 @@ Usage::
 Prints, measured in this same run (CPU seconds of this process, best of three, so the figures
 are per core):
 
-1. member-steps per second of the compiled kernel generated for the web and the numpy reference
-   stepper, on one 20-year segment of the demo ensemble under neutral controls (the step
-   sequence is the same for both; they agree to the bit);
+1. member-steps per second of the compiled kernel generated for the web, the numpy reference
+   stepper and the block kernel ("lanes", eight members stepped together), on one 20-year segment
+   of the demo ensemble under neutral controls (the step sequence is the same for all; they agree
+   to the bit), and of the block kernel with the members sorted by their step count (the stiffest
+   together: an upper bound of what grouping by expected stiffness gains);
 2. the scalar-limit estimate: floating-point operations per member-step counted from the web's
    structure (the generated right-hand side and the Dormand-Prince tableau), over the measured
    rate of independent scalar multiply-adds on this core; and the fraction of it reached;
@@ -26,6 +28,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -37,11 +40,11 @@ from impact.case import load_case  # noqa: E402
 from impact.engine import generate  # noqa: E402
 from impact.engine.control import DormandPrince54  # noqa: E402
 from impact.engine.web import pack_structure, web_segment  # noqa: E402
-from impact.model import Controls, build_web, web_params  # noqa: E402
+from impact.model import Controls, WebParams, build_web, web_params  # noqa: E402
 from impact.ensemble.sample import parameter_values  # noqa: E402
 
 DEMO = ROOT / "casework" / "island_mesopredator.toml"
-ENGINES = ("compiled", "numpy")
+ENGINES = ("compiled", "numpy", "lanes")
 
 
 def demo_ensemble(case, members: int, seed: int = 1):
@@ -65,6 +68,14 @@ def member_step_rates(case, members: int) -> dict[str, float]:
             res = web_segment(web, p, c, 0.0, 20.0, p.initial, engine=e, **kw)
             rate = res.nsteps.sum() / (time.process_time() - t)
             best[e] = max(best.get(e, 0.0), rate)
+            if e == "compiled":
+                steps = res.nsteps
+    order = np.argsort(steps, kind="stable")  # blocks of members with similar step counts
+    sorted_p = replace(p, **{f: getattr(p, f)[order] for f in WebParams.__dataclass_fields__})
+    for _ in range(3):
+        t = time.process_time()
+        res = web_segment(web, sorted_p, c, 0.0, 20.0, sorted_p.initial, engine="lanes", **kw)
+        best["lanes, sorted"] = max(best.get("lanes, sorted", 0.0), res.nsteps.sum() / (time.process_time() - t))
     return best
 
 
@@ -128,9 +139,10 @@ f = lambda v, k: np.full((M, k), v)
 p = WebParams(r=np.where(np.arange(S) == 0, 1.0, 0.0) * np.ones((M, S)), K=f(10.0, S), m=f(0.1, S),
               a=f(1.0, L), h=f(0.5, L), e=f(0.5, L), alpha=f(0.0, 0), beta=f(0.0, 0), H=f(0.0, 0),
               decay=np.zeros(M), initial=f(1.0, S), noise_sd=f(0.0, S))
-web_segment(web, p, Controls.neutral(M, S), 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9)
+web_segment(web, p, Controls.neutral(M, S), 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9, engine="{engine}")
 coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, S)))[None]  # the whole-run kernel too
-web_run(web, coef, np.array([0.0, 1.0]), p.initial, no_jumps(1, M), np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9)
+web_run(web, coef, np.array([0.0, 1.0]), p.initial, no_jumps(1, M), np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9,
+        engine="{engine}")
 print(t1 - t0, time.perf_counter() - t1)
 '''
 
@@ -141,10 +153,11 @@ def compile_costs(S: int) -> list[tuple[str, float]]:
     out = []
     with tempfile.TemporaryDirectory(prefix="impact-kernels-") as tmp:
         env = dict(os.environ, IMPACT_KERNEL_CACHE=tmp, NUMBA_CACHE_DIR=tmp, PYTHONPATH=str(ROOT))
-        for label in ("first run (compiles)", "second run (disk cache)"):
-            proc = subprocess.run([sys.executable, "-c", FIRST_RUN.format(S=S)],
-                                  env=env, capture_output=True, text=True, check=True)
-            out.append((f"compiled {label}", float(proc.stdout.split()[1])))
+        for engine in ("compiled", "lanes"):
+            for label in ("first run (compiles)", "second run (disk cache)"):
+                proc = subprocess.run([sys.executable, "-c", FIRST_RUN.format(S=S, engine=engine)],
+                                      env=env, capture_output=True, text=True, check=True)
+                out.append((f"{engine:8s} {label}", float(proc.stdout.split()[1])))
     return out
 
 
@@ -156,15 +169,15 @@ def main(argv=None) -> int:
     case = load_case(args.case)
     st = pack_structure(build_web(case))
     rates = member_step_rates(case, args.members)
-    for e in ENGINES:
-        print(f"{e:8s} engine      {rates[e] / 1e6:6.2f} million member-steps per CPU second"
-              f"  ({rates[e] / rates['numpy']:5.1f}x numpy)")
+    for e in (*ENGINES, "lanes, sorted"):
+        print(f"{e:13s} engine {rates[e] / 1e6:6.2f} million member-steps per CPU second"
+              f"  ({rates[e] / rates['numpy']:5.1f}x numpy, {rates[e] / rates['compiled']:4.2f}x compiled)")
     flops = flops_per_member_step(st)
     peak = scalar_peak()
     limit = peak / flops
     print(f"scalar limit: {flops} flops per member-step / {peak / 1e9:.2f} Gflop/s scalar peak "
           f"= {limit / 1e6:.2f} million member-steps/s; compiled engine reaches "
-          f"{rates['compiled'] / limit:.0%} of it")
+          f"{rates['compiled'] / limit:.0%} of it, lanes engine {rates['lanes'] / limit:.0%}")
     for label, seconds in compile_costs(int(st[0])):
         print(f"{label:34s} {seconds:6.2f} s (wall, after imports)")
     return 0

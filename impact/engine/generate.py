@@ -205,6 +205,13 @@ def specialised_flow(st: np.ndarray):
     return _load(st, "flow", flow_module_source)
 
 
+def generated(st: np.ndarray, prefix: str, make_source):
+    """The module ``make_source(st)`` writes for structure ``st``, under the file prefix ``prefix``:
+    written to the kernel cache and compiled on first use, as :func:`specialised` (for kernels
+    generated elsewhere, e.g. :mod:`impact.engine.lanes`)."""
+    return _load(st, prefix, make_source)
+
+
 def _load(st: np.ndarray, prefix: str, make_source):
     folder = cache_dir()
     memo = (str(folder), prefix, st.tobytes())  # a kernel cache named for this run is this run's

@@ -22,10 +22,12 @@ from impact.model.terms import pack_structure
 from impact.engine.boundary import check_kernel_arrays
 from impact.engine.control import MIN_RTOL, Failure
 
-__all__ = ["ENGINES", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
+__all__ = ["ENGINES", "LANE_ENGINE", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
            "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
 
 ENGINES = ("compiled", "numpy")
+# Blocks of members stepped together (impact.engine.lanes): selectable, the same numbers as "compiled"
+LANE_ENGINE = "lanes"
 DEFAULT_ENGINE = "compiled"
 
 
@@ -40,11 +42,16 @@ def coefficient_columns(co: SegmentCoefficients) -> dict[str, slice]:
     return spans
 
 
-def compiled_kernel(st: np.ndarray):
+def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     """Module whose ``segment`` and ``run_members`` integrate structure ``st``, generated for it.
 
+    ``engine="lanes"`` gives the block kernel (:mod:`impact.engine.lanes`), the same numbers.
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
+    if engine == LANE_ENGINE:
+        from impact.engine.lanes import specialised_lanes
+
+        return specialised_lanes(st)
     from impact.engine.generate import specialised
 
     return specialised(st)
@@ -80,7 +87,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         First step sizes (NaN or None: chosen automatically).
     members : int ndarray (m,), optional
         Rows of ``p`` and ``c``; default ``arange(m)``.
-    engine : {"compiled", "numpy"}
+    engine : {"compiled", "numpy", "lanes"}
+        ``"lanes"``: the compiled kernel stepping blocks of eight members together (:mod:`impact.engine.lanes`).
     coef : ndarray (m, P), optional
         The members' coefficient rows as :func:`pack_coefficients` gives them for ``p`` and ``c``
         (compiled engine): a caller integrating many segments under the same parameters and
@@ -99,8 +107,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         return integrate_segment(WebRHS(web, p, c), t0, t1, y0, rtol=rtol, atol=atol, h0=h0,
                                  members=members, nonnegative=True, max_steps=max_steps,
                                  blowup=blowup)
-    if engine not in ENGINES:
-        raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
+    if engine not in (*ENGINES, LANE_ENGINE):
+        raise ValueError(f"engine must be one of {(*ENGINES, LANE_ENGINE)}, got {engine!r}")
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
@@ -122,7 +130,7 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
     elif coef.shape[0] != m:
         raise ValueError(f"coef has {coef.shape[0]} rows for {m} members")
     check_kernel_arrays("segment", st, coef=coef, y0=y0, h0=h, rtol=rtol, atol=atol, y_out=y_out, ymin=ymin, ymax=ymax, h_out=h_out, reason=reason, nsteps=nsteps)  # noqa: E501  (boundary into compiled code)
-    nfev = compiled_kernel(st).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
+    nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
 
@@ -185,7 +193,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
         Output slot of each boundary, or −1; slot ``slot_of[0]`` holds ``y0``.
     h0 : ndarray (M,), optional
         First step sizes, e.g. those of a run this one continues (NaN or None: chosen).
-    engine : {"compiled"}
+    engine : {"compiled", "lanes"}
         A whole run is compiled only (the numpy engine runs segment by segment:
         :func:`impact.engine.simulate.run_option_by_segment`).
 
@@ -194,8 +202,8 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     RunResult
         The same numbers as :func:`web_segment` called segment by segment with the jumps between.
     """
-    if engine != "compiled":
-        raise ValueError(f"engine must be 'compiled' for a whole run, got {engine!r}")
+    if engine not in ("compiled", LANE_ENGINE):
+        raise ValueError(f"engine must be 'compiled' or 'lanes' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
     if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:
@@ -212,7 +220,7 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     coef, times, slot_of = (np.ascontiguousarray(coef, dtype=float), np.ascontiguousarray(times, dtype=float),
                             np.ascontiguousarray(slot_of, dtype=np.int64))
     check_kernel_arrays("run_members", st, times=times, coef=coef, y0=y0, h0=h, jump_start=jumps.start, jump_kind=jumps.kind, jump_species=jumps.species, jump_yield=jumps.carrion_yield, jump_value=jumps.value, jump_aux=jumps.fails, rtol=rtol, atol=atol, slot_of=slot_of, states=states, cummin=cummin, cummax=cummax, reason=reason, h_out=h_out)  # noqa: E501  (boundary into compiled code)
-    nfev = compiled_kernel(st).run_members(
+    nfev = compiled_kernel(st, engine).run_members(
         st, coef, times, y0, h, jumps.start, jumps.kind,
         jumps.species, jumps.carrion_yield, jumps.value, jumps.fails, rtol, atol, int(max_steps), float(blowup),
         slot_of, states, cummin, cummax, reason, h_out)

@@ -162,6 +162,7 @@ PROBE = textwrap.dedent("""
         "tangent_flow y0": lambda: flow.tangent_flow(pack_structure(web), coef, narrow, t0=0.0, transient=0.0,
                                                      window=1.0, hmax=0.1, section=np.zeros(3, np.int64),
                                                      rtol=np.full(n - 1, 1e-6), atol=np.full(n - 1, 1e-9)),
+        "lanes": lambda: web_segment(*plain, 0.0, 1.0, plain[1].initial[:, :-1], rtol=1e-6, atol=1e-9, engine="lanes"),
         "batch_jvp": lambda: WebTangent(*plain)(None, plain[1].initial[:, :-1], plain[1].initial[:, :-1], np.arange(3)),
     }}
     for name, call in probes.items():
@@ -182,7 +183,8 @@ def test_wrong_shapes_at_every_dispatch_are_refused_not_a_crash(tmp_path):
                          text=True, timeout=300, cwd=tmp_path)
     assert run.returncode == 0, (run.returncode, run.stderr[-2000:])
     lines = run.stdout.splitlines()
-    assert len(lines) == 7 and all("refused:" in line for line in lines), run.stdout
-    assert "y0" in lines[0] and "coef" in lines[1] and "section" in lines[4] and "batch_jvp: y" in lines[6]
+    assert len(lines) == 8 and all("refused:" in line for line in lines), run.stdout
+    assert "y0" in lines[0] and "coef" in lines[1] and "section" in lines[4] and "segment: y0" in lines[6]
+    assert "batch_jvp: y" in lines[7]
     # every compiled entry point is reached through its dispatch, and refuses there
     assert {line.split("refused: ")[1].split(":")[0] for line in lines} == set(CONTRACTS)

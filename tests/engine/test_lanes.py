@@ -1,0 +1,96 @@
+"""The "lanes" engine (blocks of eight members stepped together) against the scalar compiled kernel.
+
+Contract (DEVELOPERS.md and issue 26, no published source): the block kernel gives the scalar
+kernel's numbers to relative 1e-12 with the same step counts and failure codes, and a member's
+numbers never depend on which members share its block (checked exactly: lanes never mix).
+"""
+
+from __future__ import annotations
+
+import sys
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+from impact.engine.lanedriver import LANES
+from impact.engine.simulate import run_option
+from impact.engine.web import web_segment
+from impact.model import Controls, WebParams, build_web
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from test_engine import _paired_inputs, ensemble, load, random_web  # noqa: E402
+
+M = 2 * LANES + 3  # two full blocks and a padded one
+FIELDS = ("y", "ymin", "ymax", "h", "reason", "nsteps")
+
+
+def stiff_ensemble(tmp_path):
+    """The invented test web with one member whose foxes grow at 40/year without a limit (it runs out
+    of steps or blows up) and one whose initial state is not finite."""
+    case = load("web_case", tmp_path)
+    web = build_web(case)
+    vals, p = ensemble(case, M)
+    p.r[3, 2] = 40.0
+    p.initial[11, 0] = np.nan
+    return case, web, vals, p
+
+
+def rows(p: WebParams, order) -> WebParams:
+    return replace(p, **{f: getattr(p, f)[order] for f in WebParams.__dataclass_fields__})
+
+
+def test_segments_equal_the_scalar_kernel_and_do_not_depend_on_the_block(tmp_path):
+    case, web, _, p = stiff_ensemble(tmp_path)
+    c = Controls.neutral(M, web.n_species)
+    h0 = np.where(np.arange(M) % 3 == 0, np.nan, 0.01)  # some members choose their first step
+    kw = dict(rtol=1e-6, atol=1e-9, max_steps=3000)
+    ref = web_segment(web, p, c, 0.0, 5.0, p.initial, h0=h0, engine="compiled", **kw)
+    got = web_segment(web, p, c, 0.0, 5.0, p.initial, h0=h0, engine="lanes", **kw)
+    assert ref.failed[3] and ref.failed[11] and (~ref.failed).sum() == M - 2
+    for f in ("reason", "nsteps"):
+        assert np.array_equal(getattr(got, f), getattr(ref, f)), f
+    for f in ("y", "ymin", "ymax", "h"):
+        np.testing.assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-12, atol=0.0, equal_nan=True)
+    assert got.nfev == ref.nfev
+    # the same members permuted, shifted by three lanes and one alone: the same numbers to the bit
+    rng = np.random.default_rng(0)
+    for order in (rng.permutation(M), np.r_[np.arange(M - 3, M), np.arange(M - 3)], np.array([5])):
+        sub = web_segment(web, rows(p, order), Controls.neutral(len(order), web.n_species), 0.0, 5.0,
+                          p.initial[order], h0=h0[order], engine="lanes", **kw)
+        for f in FIELDS:
+            assert np.array_equal(getattr(sub, f), getattr(got, f)[order], equal_nan=True), f
+
+
+def test_whole_runs_equal_the_scalar_kernel_and_do_not_depend_on_the_block(tmp_path):
+    # culls, eradication with chance failure and noise, as the scalar kernel's batch test
+    case, web, vals, p = stiff_ensemble(tmp_path)
+    today = p.initial.copy()
+    noise, event_u = _paired_inputs(case, p, M)
+    opt = case.options[-1]
+    ref = run_option(case, web, p, vals, today, opt, noise, event_u, engine="compiled")
+    got = run_option(case, web, p, vals, today, opt, noise, event_u, engine="lanes")
+    assert ref.failed[3] and ref.failed[11] and (~ref.failed).sum() == M - 2
+    assert np.array_equal(got.reason, ref.reason) and got.nfev == ref.nfev
+    for f in ("states", "cummin", "cummax"):
+        np.testing.assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-12, atol=0.0, equal_nan=True)
+    order = np.random.default_rng(1).permutation(M)[: M - 5]  # fewer members, other blocks
+    sub = run_option(case, web, rows(p, order), {n: np.asarray(v)[order] for n, v in vals.items()}, today[order],
+                     opt, None if noise is None else noise[order], {n: u[order] for n, u in event_u.items()},
+                     engine="lanes")
+    for f in ("states", "cummin", "cummax", "reason"):
+        assert np.array_equal(getattr(sub, f), getattr(got, f)[order], equal_nan=True), f
+
+
+def test_every_newer_term_gives_the_scalar_kernels_numbers():
+    # an invented web with a sinusoidal breeding season (its cosine computed in a loop of its own),
+    # sterile releases, life stages, obligate mutualism and alternative food
+    web, p, c = random_web(6, M, new_terms=True)
+    kw = dict(rtol=1e-8, atol=1e-10)
+    ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="compiled", **kw)
+    got = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="lanes", **kw)
+    assert web.wave and (~ref.failed).sum() >= M // 2
+    for f in ("reason", "nsteps"):
+        assert np.array_equal(getattr(got, f), getattr(ref, f)), f
+    for f in ("y", "ymin", "ymax", "h"):
+        np.testing.assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-12, atol=0.0, equal_nan=True)
