@@ -99,11 +99,13 @@ SERIAL_RATIO = 1.2  # a stage 2 threads speed up less than this is named serial 
 def pace(case: str, work: Path) -> None:
     """How much the second core carries in the full demo: each stage on 1 worker and on 2 threads."""
     res = {}
+    print(f"load average before: {', '.join(f'{x:.1f}' for x in os.getloadavg())} on {os.cpu_count()} cores "
+          "(above the core count, other processes share the cores and the ratios below understate threads)")
     for w in ("1", "2"):
         out = work / f"pace{w}"
         wall, cpu, _ = run_python(["-m", "impact.cli", "assess", case, "--out", str(out), "--quiet", "--workers", w])
         man = json.loads((out / "manifest.json").read_text())
-        res[w] = dict(wall=wall, cpu=cpu, run=float(man["seconds"]), stages=man["execution"].get("stage_seconds", {}))
+        res[w] = dict(wall=wall, cpu=cpu, stages=man["execution"].get("stage_seconds", {}))
     one, two = res["1"], res["2"]
     print(f"{'stage':<30}{'1 worker s':>11}{'2 threads s':>12}{'ratio':>7}{'share of 2-thread wall':>24}")
     rows = [(k, one["stages"].get(k, 0.0), v) for k, v in two["stages"].items()]
@@ -123,6 +125,7 @@ def pace(case: str, work: Path) -> None:
     print(f"share of the 2-thread run's CPU work carried by the second core (lower bound, (CPU - wall) / CPU): "
           f"{max(two['cpu'] - two['wall'], 0.0) / two['cpu']:.1%} (half would be 50 %)")
     print(f"serial (2 threads speed it up less than {SERIAL_RATIO}x): " + ("; ".join(serial) or "none"))
+    print(f"load average after: {', '.join(f'{x:.1f}' for x in os.getloadavg())}")
 
 
 def main(argv=None) -> int:
