@@ -4,6 +4,7 @@ Usage::
 
     python bench/run.py            # everything, including two 100,000-member runs (about 10 min on 2 cores)
     python bench/run.py --quick    # ensemble sizes 1k and 10k only
+    python bench/run.py --pace     # only: how much the second core carries in the full demo, stage by stage
 
 Prints, each measured in this same run:
 
@@ -25,6 +26,13 @@ Prints, each measured in this same run:
    should stay flat; and the 100,000-member core stage on 2 threads;
 4b. the report stage alone on the demo's saved results of 4. against a one-page document, and its
    in-process parts (bench_report.py).
+
+``--pace`` (also part of the full run, after 4) runs the full demo on 1 worker and on 2 threads and prints,
+per stage (the manifests' wall seconds), both times, their ratio and its share of the 2-thread run; the part
+of the run outside the stages (start-up, imports, writing the tables, the PDF); the process's CPU seconds
+against its wall seconds (the average number of busy cores); and the share of the CPU work the second core
+carried, ``(CPU − wall) / CPU`` (a lower bound: it assumes the first core was never idle). A stage whose
+ratio stays under 1.2 is named serial.
 
 Every timing is of a separate ``impact`` process (``os.wait4`` gives its own peak resident
 memory), so import costs are included the way a user meets them.
@@ -85,13 +93,53 @@ def section(title: str):
     print(f"\n== {title}")
 
 
+SERIAL_RATIO = 1.2  # a stage 2 threads speed up less than this is named serial (common practice, no source)
+
+
+def pace(case: str, work: Path) -> None:
+    """How much the second core carries in the full demo: each stage on 1 worker and on 2 threads."""
+    res = {}
+    print(f"load average before: {', '.join(f'{x:.1f}' for x in os.getloadavg())} on {os.cpu_count()} cores "
+          "(above the core count, other processes share the cores and the ratios below understate threads)")
+    for w in ("1", "2"):
+        out = work / f"pace{w}"
+        wall, cpu, _ = run_python(["-m", "impact.cli", "assess", case, "--out", str(out), "--quiet", "--workers", w])
+        man = json.loads((out / "manifest.json").read_text())
+        res[w] = dict(wall=wall, cpu=cpu, stages=man["execution"].get("stage_seconds", {}))
+    one, two = res["1"], res["2"]
+    print(f"{'stage':<30}{'1 worker s':>11}{'2 threads s':>12}{'ratio':>7}{'share of 2-thread wall':>24}")
+    rows = [(k, one["stages"].get(k, 0.0), v) for k, v in two["stages"].items()]
+    # what the run's clock does not hold: start-up and imports before it, writing tables and the PDF after it
+    rows.append(("outside the stages (start-up, imports, writing, PDF)", one["wall"] - sum(one["stages"].values()),
+                 two["wall"] - sum(two["stages"].values())))
+    serial = []
+    for name, a, b in rows:
+        ratio = a / b if b > 0 else float("nan")
+        if ratio < SERIAL_RATIO:
+            serial.append(f"{name} ({b:.1f} s)")
+        print(f"{name[:30]:<30}{a:11.2f}{b:12.2f}{ratio:7.2f}{b / two['wall']:24.1%}")
+    print(f"{'whole process':<30}{one['wall']:11.2f}{two['wall']:12.2f}{one['wall'] / two['wall']:7.2f}")
+    for w, r in res.items():
+        print(f"{w} worker(s): CPU {r['cpu']:.2f} s over {r['wall']:.2f} s wall = {r['cpu'] / r['wall']:.2f} busy cores "
+              f"on average")
+    print(f"share of the 2-thread run's CPU work carried by the second core (lower bound, (CPU - wall) / CPU): "
+          f"{max(two['cpu'] - two['wall'], 0.0) / two['cpu']:.1%} (half would be 50 %)")
+    print(f"serial (2 threads speed it up less than {SERIAL_RATIO}x): " + ("; ".join(serial) or "none"))
+    print(f"load average after: {', '.join(f'{x:.1f}' for x in os.getloadavg())}")
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="skip the 100,000-member run")
     ap.add_argument("--case", default=str(DEMO))
+    ap.add_argument("--pace", action="store_true", help="only the second core's share of the full demo, by stage")
     args = ap.parse_args(argv)
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, {platform.platform()}")
     work = Path(tempfile.mkdtemp(prefix="impact-bench-"))
+    if args.pace:
+        section("pace: what the second core carries in the full demo (1 worker against 2 threads)")
+        pace(args.case, work)
+        return 0
 
     sys.path.insert(0, str(ROOT / "bench"))
     section("0. engines on the demo web (per core), scalar limit, compilation")
@@ -154,6 +202,9 @@ def main(argv=None) -> int:
     tw, _ = run_impact(["assess", args.case, "--out", str(work / "warm"), "--quiet"], env=cold)
     print(f"empty kernel cache           {tc:7.2f} s  stages: {stage_seconds(work / 'cold')}")
     print(f"the same cache, second run   {tw:7.2f} s  (compilation added {tc - tw:.1f} s to the first run)")
+
+    section("4a. pace: what the second core carries in the full demo (1 worker against 2 threads)")
+    pace(args.case, work)
 
     section("4b. the report stage alone, on the results of 4 (bench_report.py)")
     import bench_report

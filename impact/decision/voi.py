@@ -40,13 +40,20 @@ above 0. The partial value is capped at the perfect one resample by resample (EV
 definition).
 
 Intervals come from a bootstrap over members; every resample is computed at once as a row of member
-weights (how often the resample drew each member), which gives each fold's fit on the resampled rows
-without gathering them. All keys (EVPI, each parameter, each group) share the same resamples, so the
-cap applies resample by resample. Pure functions, arrays in and out.
+weights (how often the resample drew each member). A resample's fit is not solved from its own normal
+equations (R x K x K sums and R solves): it is one Newton step from the fit on the members as drawn
+(the one-step, linearised bootstrap), whose only per-member objects are ``x_i e_i'`` (K x D, computed
+once), so the resamples cost one (R x m) by (m x K·D) product per fold. The estimate itself (the members
+as drawn) is unchanged; the replicates agree with exact refits to within the bootstrap's own Monte
+Carlo error (tests/decision/test_voi.py; ``rule_gains(..., refit=True)`` keeps the exact refits as the
+reference). All keys (EVPI, each parameter, each group) share the same resamples, so the cap applies
+resample by resample. Pure functions, arrays in and out.
 """
 
 from __future__ import annotations
 
+import contextlib
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -67,6 +74,28 @@ BATCH_VALUES = 1 << 21  # values held at once by the weighted sums (16 MB of flo
 # 2-core machine cost several times the CPU of one core doing them (measured: 100 x 1,000 x 190
 # products, 7 CPU ms whole against 1.1 ms in blocks of 8)
 BLAS_COLUMNS = 8
+
+
+@functools.lru_cache(maxsize=1)
+def _blas_controller():
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # declared in pyproject; without it the products run on BLAS's own threads
+        return None
+    return ThreadpoolController()
+
+
+def one_blas_thread():
+    """A context in which BLAS runs on one thread.
+
+    The products and solves here are small (K ~ 10-100, a few hundred rows per fold): a threaded BLAS
+    splits them across cores, which on a shared 2-core machine costs several times the CPU of one core
+    doing them (measured with this module's rule_gains on 1,000 members, 200 resamples, 9 columns:
+    0.30 / 0.66 / 0.99 CPU s per call on OpenBLAS's default threads against 0.036 / 0.056 / 0.17 s on
+    one, for a one-parameter, two-parameter and every-parameter design).
+    """
+    ctl = _blas_controller()
+    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
 
 
 def _spline_basis(x: np.ndarray) -> np.ndarray:
@@ -244,7 +273,7 @@ def folds_of(M: int) -> list[np.ndarray]:
 
 
 def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
-               splits: list[slice] | None = None) -> np.ndarray:
+               splits: list[slice] | None = None, *, refit: bool = False) -> np.ndarray:
     """Cross-fitted value of choosing by the regression on ``X`` rather than now, under each row of member
     weights ``W`` (R, M), for each choice set in ``splits``: (len(splits), R), unclipped (see the module doc).
 
@@ -258,36 +287,97 @@ def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
     W : ndarray (R, M)
         Member weights; row 0 must be all ones (the members as drawn: its fit sets each fold's smoothing
         weight, which the other rows reuse).
+    refit : bool
+        True: every row's fits solved exactly from its own weighted normal equations (R, K, K), the
+        reference. False (default): each row's coefficients from the fit on the members as drawn by
+        REFIT_STEPS Newton steps with that fit's matrix (:func:`newton_coefficients`): row 0 is the same
+        either way, the other rows agree to within the bootstrap's own Monte Carlo error (tested).
     """
+    with one_blas_thread():
+        return _rule_gains(nb, X, S, W, splits, refit)
+
+
+def _rule_gains(nb, X, S, W, splits, refit):
     M = nb.shape[0]
     splits = splits or [slice(0, nb.shape[1])]
     folds = folds_of(M)
-    # each fold's normal equations once; a fold's training sums are the total less its own
-    moments = [weighted_normal_equations(W[:, f], X[f], nb[f]) for f in folds]
+    # each fold's normal equations once (every row with refit, else only the members as drawn); a fold's
+    # training sums are the total less its own
+    moments = [weighted_normal_equations(W[:, f], X[f], nb[f]) if refit
+               else ((X[f].T @ X[f])[None], (X[f].T @ nb[f])[None]) for f in folds]
     gram = sum(g for g, _ in moments)
     rhs = sum(r for _, r in moments)
+    # every row's sums of the net benefits per fold: the choice made now (best weighted mean of the training folds)
+    fold_sums = [weighted_sums(W[:, f], nb[f]) for f in folds]
+    all_sums = sum(fold_sums)
     gain = np.zeros((len(splits), W.shape[0]))
     sq = (nb**2).sum(axis=0)
     # the smoothing weight's eigensystem from the design on all members (it holds no outcome, so the folds
     # stay apart), scaled to a fold's share of them: a training gram of c·X'X has s/c and U'L⁻¹/√c
     eig = penalty_eigensystem(gram[0], S)
-    for f, (g_k, r_k) in zip(folds, moments):
+    for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
             break  # one member: nothing to learn from
         G, b = gram - g_k, rhs - r_k
+        train = np.concatenate([folds[j] for j in range(len(folds)) if j != k])
         c = (M - f.size) / M
         fold_eig = None if eig is None else (eig[0] / np.sqrt(c), eig[1] / c)
         for j, cols in enumerate(splits):
             # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
             lam = smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nb[f][:, cols] ** 2).sum()),
                                    M - f.size)
-            coef, _ = ridge_solve(G + lam * S, b[:, :, cols])  # (R, K, D)
+            if refit:
+                coef, _ = ridge_solve(G + lam * S, b[:, :, cols])  # (R, K, D)
+            else:
+                coef = newton_coefficients(G[0] + lam * S, lam * S, X[train], nb[train][:, cols], W[:, train])
             chosen = weighted_fitted(coef, X[f]).argmax(axis=1)  # (R, m_k)
-            now = b[:, 0, cols].argmax(axis=1)  # X[:, 0] is the intercept: b[:, 0] holds the weighted sums of nb
+            now = (all_sums - fold_sums[k])[:, cols].argmax(axis=1)
             y = nb[f][:, cols]
             got = np.take_along_axis(y.T[None], chosen[:, None, :], axis=1)[:, 0]  # (R, m_k)
             gain[j] += (W[:, f] * (got - y[:, now].T)).sum(axis=1)
     return gain / W.sum(axis=1)
+
+
+# Newton steps of the resampled fits: each shrinks a resample's distance to its exact refit by about the
+# relative size of its change of design, ~sqrt(K/M) (measured on the demo and in tests/decision/test_voi.py)
+REFIT_STEPS = 1
+
+
+def newton_coefficients(A: np.ndarray, P: np.ndarray, Xt: np.ndarray, Yt: np.ndarray, Wt: np.ndarray,
+                        steps: int | None = None) -> np.ndarray:
+    """Coefficients (R, K, D) of the penalised fits of ``Yt`` (m, D) on ``Xt`` (m, K) under each row of member
+    weights ``Wt`` (R, m), by Newton steps from the fit under unit weights with that fit's matrix
+    ``A = Xt'Xt + P`` (K, K), penalty ``P`` (K, K).
+
+    A resample's fit solves ``(Xt' diag(w) Xt + P) β = Xt' diag(w) Yt``; one step from β is
+    ``β + A⁻¹ (Xt' diag(w) (Yt − Xt β) − P β)``, which needs each resample's residuals (m, D) but never its
+    (K, K) normal matrix: R·m·K·D products per step instead of R·m·K² and R solves of (K, K). Starting from
+    the unit-weight fit, the first step is the one-step (linearised) bootstrap; each further step shrinks
+    the distance to the exact refit by the factor ``‖A⁻¹ Xt' diag(w − 1) Xt‖``.
+    """
+    steps = REFIT_STEPS if steps is None else steps
+    K = A.shape[0]
+    ridge = 1e-10 * np.trace(A) / K  # the tiny ridge of ridge_solve, so row 0 equals its fit
+    Ar = A + ridge * np.eye(K)
+    Pr = P + ridge * np.eye(K)
+    coef0 = np.linalg.solve(Ar, Xt.T @ Yt)  # (K, D)
+    R, m, D = Wt.shape[0], Xt.shape[0], Yt.shape[1]
+    # first step: residuals shared by every resample, so the weighted sums are one matrix product
+    e = Yt - Xt @ coef0
+    grad = weighted_sums(Wt, (Xt[:, :, None] * e[:, None, :]).reshape(m, K * D)).reshape(R, K, D)
+    grad -= (Pr @ coef0)[None]
+    coef = coef0[None] + _solve_many(Ar, grad)
+    for _ in range(steps - 1):
+        resid = Yt[None] - Xt @ coef  # (R, m, D)
+        grad = np.einsum("mk,rmd->rkd", Xt, Wt[:, :, None] * resid, optimize=True) - Pr @ coef
+        coef = coef + _solve_many(Ar, grad)
+    return coef
+
+
+def _solve_many(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """``A⁻¹ B[r]`` for every r: A (K, K), B (R, K, D) -> (R, K, D), one factorisation."""
+    R, K, D = B.shape
+    return np.linalg.solve(A, np.moveaxis(B, 0, 1).reshape(K, R * D)).reshape(K, R, D).swapaxes(0, 1)
 
 
 def choice_sets(nbs: list[np.ndarray]) -> tuple[np.ndarray, list[slice]]:

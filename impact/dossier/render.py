@@ -21,8 +21,8 @@ from impact.dossier.structures_verdict import structure_reading
 from impact.dossier.figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from impact.dossier.sections import (dynamics_context, press_context, sensitivity_context, studies_context,
     weighing_context)
-from impact.dossier.tables import (comparisons_context, effects_table_context, iucn_context, objectives_context,
-    risk_table_context)
+from impact.dossier.tables import (comparisons_context, effects_table_context, first_rows, iucn_context,
+    objectives_context, risk_table_context, rows_note)
 
 PAPERS = {"a4": "A4", "letter": "letter"}
 ASSET_TYPES = {".css": "text/css", ".svg": "image/svg+xml", ".png": "image/png"}
@@ -165,6 +165,8 @@ def report_html(res: Results, paper: str = "a4", dossier: dict | None = None) ->
     assets = template_assets(root)
     env = jinja2.Environment(loader=jinja2.FunctionLoader(lambda n: root.joinpath(n).read_text(encoding="utf-8")),
                              autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+    # per-row tables print their first rows and name the file holding them all (impact.dossier.tables)
+    env.filters["first_rows"], env.globals["rows_note"] = first_rows, rows_note
     ctx = report_context(res, assets)
     ctx["dossier"] = {"inventory_sha256": None, "edited": [], **(dossier or {}), "mark": PDF_MARK,
                       "edited_mark": EDITED_MARK}

@@ -278,3 +278,15 @@ def years_per_case_unit(m: Manifest) -> float:
     return years_per_unit(m.time_unit) or 1.0
 
 
+
+
+def first_rows(rows, max_rows: int | None = None) -> list:
+    """The rows a per-row table prints: at most ``max_rows`` (default ``MAX_TABLE_ROWS``), in their order."""
+    return list(rows)[:MAX_TABLE_ROWS if max_rows is None else max_rows]
+
+
+def rows_note(rows, file: str, max_rows: int | None = None) -> str:
+    """What a per-row table cut by :func:`first_rows` leaves out, and where all its rows are: ``""`` when
+    nothing is cut, else e.g. "First 40 of 212 rows printed; all 212 in members.csv in the results directory."."""
+    n, cap = len(list(rows)), MAX_TABLE_ROWS if max_rows is None else max_rows
+    return "" if n <= cap else f"First {cap} of {n} rows printed; all {n} in {file} in the results directory."

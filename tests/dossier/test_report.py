@@ -347,6 +347,25 @@ def test_cut_table_names_the_csv_and_its_rows_in_the_pdf(results, tmp_path, monk
     assert _squash(f"{n} rows of effects.csv in the results directory (option “{OPTIONS[1]}”)") in text
 
 
+def test_no_per_row_table_prints_more_than_its_cap_and_each_cut_names_its_file(results, monkeypatch):
+    # every per-row table prints at most MAX_TABLE_ROWS rows (40 in the PDF: a board reads the first rows, the
+    # CSV holds them all; common practice, no source); with the cap at 1, each table of several rows is cut to
+    # one and says how many rows it has and which file holds them
+    from impact.dossier import tables
+
+    monkeypatch.setattr(tables, "MAX_TABLE_ROWS", 1)
+    res = load_results(results)
+    html, _ = report_html(res)
+    for t in re.findall(r'<table class="numbered(?: compact| priors)?">(.*?)</table>', html, re.S):
+        body = t.split("</thead>")[-1]
+        assert body.count("<tr") <= 1, t[:200]
+    n_species, n_priors = len(SPECIES), len(pd.read_csv(results / "priors.csv"))
+    assert n_species > 1 and n_priors > 1
+    assert f"First 1 of {n_species} rows printed; all {n_species} in manifest.json in the results directory." in html
+    assert f"First 1 of {n_priors} rows printed; all {n_priors} in priors.csv in the results directory." in html
+    assert tables.rows_note(range(40), "x.csv", 40) == "" and tables.first_rows(range(41), 40) == list(range(40))
+
+
 def test_figures_are_opaque_png(results):
     from PIL import Image
 
