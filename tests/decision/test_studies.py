@@ -38,13 +38,40 @@ def normal_study(M: int, seed: int, samples: int, log_sd: float, mu0: float = 0.
     return evsi, ceiling
 
 
-def test_normal_normal_evsi_matches_closed_form():
-    # Raiffa & Schlaifer 1961 / Ades et al. 2004 closed form (closed_form_evsi). Mean of 4 seeds at 10,000
-    # members; the spread of one estimate was measured at sd ≈ 0.008 (5 seeds), so the mean's SE is ≈ 0.004;
-    # tolerance 0.014 (≈ 3.5 SE, false-failure rate under 0.1 % by a normal approximation), i.e. ≈ 5 % of the value.
-    for samples in (1, 4):
-        est = [normal_study(10_000, seed, samples, 1.0)[0].value for seed in range(4)]
-        assert np.mean(est) == pytest.approx(closed_form_evsi(0.2, 1.0, 1.0, samples), abs=0.014)
+def test_normal_normal_evsi_matches_closed_form_within_2_percent():
+    # Raiffa & Schlaifer 1961 / Ades et al. 2004 closed form (closed_form_evsi), checked on the regression
+    # estimator itself: θ ~ N(0.2, 1) and the study's mean measurement T = θ + ε, ε ~ N(0, 1/n), with (θ, ε) from
+    # a scrambled Sobol' sequence of 2^14 points (≥ 10,000 members; quasi-random so the prior and the noise are
+    # spread evenly and what is left is the estimator's own error). Measured over 10 scrambles: spread of one
+    # estimate 0.33 % (n = 1), 0.11 % (n = 4), 0.05 % (n = 16) of the value, mean bias ≤ 0.2 %. Margin 2 % of the
+    # closed form, over 5 spreads from the value: false-failure rate under 1e-6 per check by a normal approximation.
+    from scipy.stats import qmc
+
+    M, mu0, s0 = 2**14, 0.2, 1.0
+    for samples in (1, 4, 16):
+        u = qmc.Sobol(2, scramble=True, seed=samples).random(M)
+        theta = mu0 + s0 * norm.ppf(u[:, 0])
+        T = theta + norm.ppf(u[:, 1]) / np.sqrt(samples)
+        nb = np.column_stack([np.zeros(M), theta])
+        e, _ = sample_values_many([nb], theta[:, None], ["theta"], {"s": (T[:, None], ["theta"])}, resamples=2,
+                                  seed=samples)[0]["s"]
+        exact = closed_form_evsi(mu0, s0, 1.0, samples)
+        assert e.value == pytest.approx(exact, rel=0.02)
+
+
+def test_lognormal_study_summary_is_normal_about_the_log_truth():
+    # The study data path: a lognormal study's summary is the mean of `samples` log measurements, each
+    # N(log(scale · truth), log_sd²) (the lognormal observation model's definition), so the summary minus
+    # log(scale · truth) is N(0, log_sd²/samples). Mean within 4 standard errors and variance within 4 standard
+    # errors of its estimate (sd of a sample variance ≈ σ²·√(2/M), normal data): false-failure rate ≈ 1e-4.
+    M, samples, log_sd = 4000, 4, 0.6
+    truth = np.random.default_rng(5).lognormal(0.0, 1.0, M)
+    one = np.ones(M)
+    Z = simulate_summary(truth[:, None], "lognormal", samples, one, 2 * one, None, log_sd * one, np.arange(M), 3, 7)
+    r = Z[:, 0] - np.log(2 * truth)
+    var = log_sd**2 / samples
+    assert abs(r.mean()) < 4 * np.sqrt(var / M)
+    assert abs(r.var(ddof=1) - var) < 4 * var * np.sqrt(2 / M)
 
 
 def test_evsi_rises_to_evppi_and_falls_to_zero():
