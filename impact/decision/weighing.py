@@ -12,9 +12,9 @@ Without ``[weighing]`` in the case nothing here runs: each objective is judged o
 * **Uncertain weights: SMAA** (Lahdelma, Hokkanen & Salminen 1998, European Journal of Operational Research
   106:137–143): weight vectors are drawn uniformly over the feasible weights (the simplex, declared weights
   fixed, ranges respected; by uniform draws on the free part of the simplex, those outside a range
-  rejected); a choice's acceptability index is the share of them under which it ranks first, with Monte
-  Carlo standard error ``sqrt(a(1 − a)/N)``; its central weight vector is the mean of the weights that make
-  it first. The scores are the ensemble's expected chances; their own sampling uncertainty is in the
+  rejected); a choice's rank acceptability index ``b^r`` is the share of them under which it ranks r-th
+  (r = 1 .. number of choices; ``b^1`` its acceptability), with Monte Carlo standard error
+  ``sqrt(b(1 − b)/N)``; its central weight vector is the mean of the weights that make it first. The scores are the ensemble's expected chances; their own sampling uncertainty is in the
   risk and comparison tables, not here.
 * **Cost-effectiveness** (Joseph, Maloney & Possingham 2009, Conservation Biology 23:328–338): projects are
   ranked by benefit × chance of success ÷ cost. Here an option's benefit × chance of success is its expected
@@ -25,6 +25,8 @@ Without ``[weighing]`` in the case nothing here runs: each objective is judged o
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
@@ -34,7 +36,7 @@ from impact.store.results import WEIGHTED
 PURPOSE_WEIGHING = 14  # spawn-key purpose of the SMAA weight draws
 SMAA_DRAWS = 20_000  # accepted weight vectors: the acceptability's MC error is at most 0.0035 (0.5/√N)
 MAX_TRIES = 200  # rounds of draws before a nearly empty feasible set is reported as such
-WEIGHING_COLUMNS = ("option", "objective", "statistic", "value", "mc_se", "unit", "n")
+WEIGHING_COLUMNS = ("option", "objective", "statistic", "value", "mc_se", "rank", "unit", "n")
 
 
 def swing_values(P: np.ndarray) -> np.ndarray:
@@ -76,9 +78,55 @@ def feasible_weights(low: np.ndarray, high: np.ndarray, rng: np.random.Generator
     return np.vstack(out)[:n]
 
 
+@dataclass(frozen=True)
+class Smaa:
+    """SMAA of D choices over n feasible weight vectors (Lahdelma, Hokkanen & Salminen 1998).
+
+    Attributes
+    ----------
+    ranks, ranks_se : ndarray (D, D)
+        ``ranks[d, r]``: share of the weight vectors under which choice d ranks ``r + 1`` (the rank
+        acceptability index ``b_d^(r+1)``), and its Monte Carlo standard error ``sqrt(b(1 − b)/n)``.
+        Tied choices share the ranks they span evenly. Rows and columns each sum to 1.
+    central : ndarray (D, J)
+        Mean of the weights that make each choice first (NaN where none does).
+    n : int
+        Weight vectors drawn.
+    """
+
+    ranks: np.ndarray
+    ranks_se: np.ndarray
+    central: np.ndarray
+    n: int
+
+    @property
+    def acceptability(self) -> np.ndarray:
+        """Rank-1 acceptability of each choice: (D,)."""
+        return self.ranks[:, 0]
+
+    @property
+    def mc_se(self) -> np.ndarray:
+        return self.ranks_se[:, 0]
+
+
+def rank_shares(score: np.ndarray, tol: float = 1e-12) -> np.ndarray:
+    """Each choice's share of each rank under each weight vector: (n, D, D), ``[k, d, r]``.
+
+    ``score`` (n, D) is the weighted value of every choice under every weight vector; a choice with ``b``
+    better and ``t`` equal (itself included) spans ranks ``b + 1 .. b + t`` and takes ``1/t`` of each.
+    """
+    n, D = score.shape
+    diff = score[:, None, :] - score[:, :, None]  # [k, d, e] = score_e − score_d
+    better = (diff > tol).sum(axis=2)
+    tied = (np.abs(diff) <= tol).sum(axis=2)
+    r = np.arange(D)
+    inside = (r[None, None, :] >= better[:, :, None]) & (r[None, None, :] < (better + tied)[:, :, None])
+    return inside / tied[:, :, None]
+
+
 def smaa(values: np.ndarray, low: np.ndarray, high: np.ndarray, rng: np.random.Generator,
-         draws: int = SMAA_DRAWS) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """Rank-1 acceptability of every choice under weights uniform on the feasible set (Lahdelma et al. 1998).
+         draws: int = SMAA_DRAWS) -> Smaa:
+    """Rank acceptabilities of every choice under weights uniform on the feasible set (Lahdelma et al. 1998).
 
     Parameters
     ----------
@@ -86,29 +134,19 @@ def smaa(values: np.ndarray, low: np.ndarray, high: np.ndarray, rng: np.random.G
         Value of each choice on each objective (linear value functions).
     low, high : ndarray (J,)
         Feasible range of each weight (shares summing to 1).
-
-    Returns
-    -------
-    acceptability, mc_se : ndarray (D,)
-        Share of the weight vectors under which the choice ranks first (ties split evenly), and its Monte
-        Carlo standard error.
-    central : ndarray (D, J)
-        Mean of the weights that make each choice first (NaN where none does).
-    n : int
-        Weight vectors drawn.
     """
     W = feasible_weights(low, high, rng, draws)
     n = W.shape[0]
     D = values.shape[0]
     if n == 0:
-        return np.full(D, np.nan), np.full(D, np.nan), np.full(values.shape, np.nan), 0
-    score = W @ np.asarray(values, float).T  # (n, D)
-    top = score >= score.max(axis=1, keepdims=True) - 1e-12
-    share = top / top.sum(axis=1, keepdims=True)  # a tie gives each tied choice an equal part
-    a = share.mean(axis=0)
+        nan = np.full((D, D), np.nan)
+        return Smaa(nan, nan, np.full(values.shape, np.nan), 0)
+    share = rank_shares(W @ np.asarray(values, float).T)  # (n, D, D)
+    b = share.mean(axis=0)
+    first = share[:, :, 0]
     with np.errstate(invalid="ignore", divide="ignore"):
-        central = (share.T @ W) / share.sum(axis=0)[:, None]
-    return a, np.sqrt(a * (1 - a) / n), central, n
+        central = (first.T @ W) / first.sum(axis=0)[:, None]
+    return Smaa(b, np.sqrt(b * (1 - b) / n), central, n)
 
 
 def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
@@ -127,9 +165,9 @@ def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
     high = np.array([given.get(o, (0.0, 0.0))[1] for o in objs])
     rows = []
 
-    def add(option, objective, statistic, value, se=np.nan, unit=""):
+    def add(option, objective, statistic, value, se=np.nan, unit="", rank=np.nan):
         rows.append(dict(option=option, objective=objective, statistic=statistic, value=float(value), mc_se=float(se),
-                         unit=unit, n=n))
+                         rank=float(rank), unit=unit, n=n))
 
     for d, c in enumerate(choices):
         if wg.option_costs:
@@ -144,7 +182,8 @@ def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
         return pd.DataFrame(rows, columns=list(WEIGHING_COLUMNS))
     V = swing_values(P)
     rng = np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(PURPOSE_WEIGHING,))))
-    a, se, central, drawn = smaa(V, low, high, rng)
+    sm = smaa(V, low, high, rng)
+    a, se, central, drawn = sm.acceptability, sm.mc_se, sm.central, sm.n
     # the declared weights, or the centre of the feasible ones when some are uncertain
     w = feasible_weights(low, high, rng, SMAA_DRAWS).mean(axis=0) if wg.uncertain else low
     for j, o in enumerate(objs):
@@ -158,6 +197,9 @@ def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
                 unit=f"weighted chance gained per {wg.cost_unit}")
         if wg.uncertain:
             add(c, WEIGHTED, "acceptability", a[d], se[d], unit=f"share of {drawn} feasible weight vectors ranking it first")
+            for r in range(len(choices)):
+                add(c, WEIGHTED, "rank_acceptability", sm.ranks[d, r], sm.ranks_se[d, r], rank=r + 1,
+                    unit=f"share of {drawn} feasible weight vectors ranking it at this rank")
             for j, o in enumerate(objs):
                 add(c, o, "central_weight_if_first", central[d, j], unit="share of the whole")
     if wg.option_costs:

@@ -104,8 +104,10 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "(Σ weight × swing value, 0 worst .. 1 best choice per objective); expected_gain (weighted chance gained over "
         "doing nothing: benefit × chance of success); efficiency (expected_gain ÷ cost, Joseph et al. 2009); "
         "efficiency_rank (1 = most cost-effective); acceptability (SMAA share of feasible weights ranking the choice "
-        "first, Lahdelma et al. 1998); central_weight_if_first (mean weight among those)",
-        "value": "the statistic's value", "mc_se": "Monte Carlo standard error (acceptability only)",
+        "first, Lahdelma et al. 1998); rank_acceptability (SMAA share ranking the choice at the row's rank, every rank 1 .. "
+        "number of choices); central_weight_if_first (mean weight among those ranking it first)",
+        "value": "the statistic's value", "mc_se": "Monte Carlo standard error (acceptabilities only)",
+        "rank": "the rank of a rank_acceptability row (1 = first; blank otherwise)",
         "unit": "unit of value", "n": _N}),
     "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
         "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",

@@ -20,10 +20,31 @@ def test_smaa_two_criteria_matches_the_share_of_the_weight_segment():
     # exact acceptability 7/15 for A, 8/15 for B (Lahdelma, Hokkanen & Salminen 1998: the share of the
     # weight space where the alternative ranks first). Tolerance 4 MC standard errors (false-failure rate
     # about 6e-5 per check by a normal approximation).
-    a, se, central, n = smaa(np.array([[1.0, 0.0], [0.3, 0.8]]), np.zeros(2), np.ones(2), _rng(1))
-    assert n > 0 and a == pytest.approx([7 / 15, 8 / 15], abs=4 * se.max())
+    sm = smaa(np.array([[1.0, 0.0], [0.3, 0.8]]), np.zeros(2), np.ones(2), _rng(1))
+    a, se = sm.acceptability, sm.mc_se
+    assert sm.n > 0 and a == pytest.approx([7 / 15, 8 / 15], abs=4 * se.max())
+    # with two choices, the second rank is the complement of the first
+    assert sm.ranks[:, 1] == pytest.approx(1 - a)
     # A's central weight: the mean of w on (8/15, 1) is 23/30
-    assert central[0, 0] == pytest.approx(23 / 30, abs=0.01)
+    assert sm.central[0, 0] == pytest.approx(23 / 30, abs=0.01)
+
+
+def test_smaa_rank_acceptabilities_of_three_choices_on_two_criteria():
+    # Two criteria, w uniform on [0, 1]; A = (1, 0) scores w, B = (0, 1) scores 1 − w, C = (0.6, 0.6) scores 0.6.
+    # Order by w (exact arithmetic on the segment): w < 0.4: B, C, A; 0.4–0.5: C, B, A; 0.5–0.6: C, A, B;
+    # w > 0.6: A, C, B. Rank acceptabilities (Lahdelma et al. 1998, b_i^r = share of weights giving rank r):
+    # A (0.4, 0.1, 0.5), B (0.4, 0.1, 0.5), C (0.2, 0.8, 0). Tolerance 4 MC standard errors (as above).
+    sm = smaa(np.array([[1.0, 0.0], [0.0, 1.0], [0.6, 0.6]]), np.zeros(2), np.ones(2), _rng(4))
+    exact = np.array([[0.4, 0.1, 0.5], [0.4, 0.1, 0.5], [0.2, 0.8, 0.0]])
+    assert np.abs(sm.ranks - exact).max() <= 4 * max(sm.ranks_se.max(), 1e-3)
+    assert np.allclose(sm.ranks.sum(axis=0), 1) and np.allclose(sm.ranks.sum(axis=1), 1)
+
+
+def test_tied_choices_share_their_ranks():
+    from impact.decision.weighing import rank_shares
+
+    s = rank_shares(np.array([[1.0, 1.0, 0.0]]))[0]
+    assert s == pytest.approx(np.array([[0.5, 0.5, 0], [0.5, 0.5, 0], [0, 0, 1.0]]))
 
 
 def test_smaa_three_criteria_matches_the_area_of_the_simplex():
@@ -31,7 +52,8 @@ def test_smaa_three_criteria_matches_the_area_of_the_simplex():
     # w2 > 2 w1: in the (w1, w2) triangle of area 1/2 that is the triangle (0,0), (0,1), (1/3, 2/3) of area 1/6,
     # a share of 1/3; A's acceptability is 2/3 (exact plane geometry).
     V = np.array([[2.0, 0.0, 0.5], [0.0, 1.0, 0.5]])
-    a, se, _, _ = smaa(V, np.zeros(3), np.ones(3), _rng(2))
+    sm = smaa(V, np.zeros(3), np.ones(3), _rng(2))
+    a, se = sm.acceptability, sm.mc_se
     assert a == pytest.approx([2 / 3, 1 / 3], abs=4 * se.max())
 
 
