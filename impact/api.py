@@ -331,9 +331,9 @@ def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Pro
             tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
             tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs, seed)
         if case.weighing is not None:
-            from impact.decision.weighing import weighing_table
+            from impact.decision.weighing import weighing_tables
 
-            tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
+            tables.update(weighing_tables(case, runs, seed, ens.draws))
     return StageOutput(tables, stages=("sensitivity",))
 
 

@@ -20,7 +20,9 @@ Without ``[weighing]`` in the case nothing here runs: each objective is judged o
   ranked by benefit × chance of success ÷ cost. Here an option's benefit × chance of success is its expected
   gain over doing nothing in weighted chance of good outcomes, ``Σ_j w_j (p_dj − p_0j)``, with the declared
   weights (the centre of the feasible weights when some are uncertain), and per objective its cost per
-  percentage point of gain in that objective's chance.
+  percentage point of gain in that objective's chance. An uncertain cost (a prior) is drawn per member;
+  the cost, cost per point and efficiency rows carry the interval of those draws (``low``, ``high``, at the
+  case's confidence level), the gain held at its expectation; their ``value`` is at the expected cost.
 """
 
 from __future__ import annotations
@@ -30,13 +32,15 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from impact.decision.budget import budget_table
+from impact.ensemble.sample import cost_uniforms
 from impact.risk.effects import BASELINE, good_outcome
 from impact.store.results import WEIGHTED
 
 PURPOSE_WEIGHING = 14  # spawn-key purpose of the SMAA weight draws
 SMAA_DRAWS = 20_000  # accepted weight vectors: the acceptability's MC error is at most 0.0035 (0.5/√N)
 MAX_TRIES = 200  # rounds of draws before a nearly empty feasible set is reported as such
-WEIGHING_COLUMNS = ("option", "objective", "statistic", "value", "mc_se", "rank", "unit", "n")
+WEIGHING_COLUMNS = ("option", "objective", "statistic", "value", "low", "high", "mc_se", "rank", "unit", "level", "n")
 
 
 def swing_values(P: np.ndarray) -> np.ndarray:
@@ -149,8 +153,47 @@ def smaa(values: np.ndarray, low: np.ndarray, high: np.ndarray, rng: np.random.G
     return Smaa(b, np.sqrt(b * (1 - b) / n), central, n)
 
 
-def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
-    """Costs, weighted values, cost-effectiveness and SMAA acceptabilities of every choice (see module doc)."""
+def member_costs(case, draws: np.ndarray, seed: int) -> np.ndarray:
+    """Each member's drawn cost of doing nothing (0) and of every option: (M, 1 + options).
+
+    A known cost is the same in every member; an uncertain one is its prior's ``ppf`` of the member's
+    uniform from the stream ``(draw, PURPOSE_COSTS, crc32(option))`` (:func:`impact.ensemble.sample.cost_uniforms`).
+    NaN columns for options without a cost (none declared).
+    """
+    draws = np.asarray(draws)
+    cost = dict(case.weighing.option_costs)
+    cols = [np.zeros(len(draws))]
+    for o in case.options:
+        prior = cost.get(o.name)
+        cols.append(np.full(len(draws), np.nan) if prior is None else
+                    np.asarray(prior.ppf(cost_uniforms(seed, draws, o.name)), float))
+    return np.column_stack(cols)
+
+
+def weighing_tables(case, summaries: dict, seed: int, draws: np.ndarray) -> dict[str, pd.DataFrame]:
+    """``sensitivity/weighing.csv`` (:func:`weighing_table`) and, with a declared budget, ``sensitivity/budget.csv``
+    (the best affordable sets of options, :mod:`impact.decision.budget`, on the same gains and cost draws)."""
+    t = weighing_table(case, summaries, seed, draws)
+    out = {"sensitivity/weighing.csv": t}
+    wg = case.weighing
+    if wg.budget is not None:
+        gain = t[t.statistic == "expected_gain"].set_index("option").value
+        names = [o.name for o in case.options]
+        ok = np.all([np.isfinite(good_outcome(case, o, summaries[c])) for o in case.objectives
+                     for c in [BASELINE, *names]], axis=0)
+        C = member_costs(case, np.asarray(draws)[ok], seed)[:, 1:]
+        out["sensitivity/budget.csv"] = budget_table(names, [o.interventions for o in case.options],
+                                                     gain.reindex(names).to_numpy(float), C, wg.budget, wg.cost_unit,
+                                                     case.risk.confidence)
+    return out
+
+
+def weighing_table(case, summaries: dict, seed: int, draws: np.ndarray) -> pd.DataFrame:
+    """Costs, weighted values, cost-effectiveness and SMAA acceptabilities of every choice (see module doc).
+
+    ``draws`` (M,) are the members' draw indices, for their draws of uncertain costs; a cost's and a
+    cost-effectiveness's interval (``low``, ``high``) is over those draws, the gain held at its expectation.
+    """
     wg = case.weighing
     choices = [BASELINE, *(o.name for o in case.options)]
     objs = [o.name for o in case.objectives]
@@ -158,26 +201,30 @@ def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
     ok = np.all([np.isfinite(nb).all(axis=1) for nb in nbs], axis=0) if nbs else np.zeros(0, bool)
     n = int(ok.sum())
     P = np.column_stack([nb[ok].mean(axis=0) for nb in nbs]) if nbs else np.zeros((len(choices), 0))  # (D, J)
-    cost = dict(wg.option_costs)
-    costs = np.array([0.0] + [cost.get(c, np.nan) for c in choices[1:]])
+    C = member_costs(case, np.asarray(draws)[ok] if len(draws) == len(ok) else np.asarray(draws), seed)  # (M, D), doing nothing first
+    costs = C.mean(axis=0) if C.shape[0] else np.full(len(choices), np.nan)
+    q = (1 - case.risk.confidence) / 2
     given = {k: (lo, hi) for k, lo, hi in wg.weights}
     low = np.array([given.get(o, (0.0, 0.0))[0] for o in objs])
     high = np.array([given.get(o, (0.0, 0.0))[1] for o in objs])
     rows = []
 
-    def add(option, objective, statistic, value, se=np.nan, unit="", rank=np.nan):
-        rows.append(dict(option=option, objective=objective, statistic=statistic, value=float(value), mc_se=float(se),
-                         rank=float(rank), unit=unit, n=n))
+    def add(option, objective, statistic, value, se=np.nan, unit="", rank=np.nan, over=None):
+        # `over`: the statistic in each member's draw of the costs, for its interval (the costs' uncertainty only)
+        lo, hi = (np.nan, np.nan) if over is None or not len(over) else np.quantile(over, [q, 1 - q])
+        rows.append(dict(option=option, objective=objective, statistic=statistic, value=float(value), low=float(lo),
+                         high=float(hi), mc_se=float(se), rank=float(rank), unit=unit, level=case.risk.confidence, n=n))
 
     for d, c in enumerate(choices):
         if wg.option_costs:
-            add(c, "", "cost", costs[d], unit=wg.cost_unit)
+            add(c, "", "cost", costs[d], unit=wg.cost_unit, over=C[:, d])
         for j, o in enumerate(objs):
             add(c, o, "chance", P[d, j], unit="probability of a good outcome")
             if d and wg.option_costs:
                 gain = P[d, j] - P[0, j]
                 add(c, o, "cost_per_point", costs[d] / (100 * gain) if gain > 0 else np.nan,
-                    unit=f"{wg.cost_unit} per percentage point gained over doing nothing")
+                    unit=f"{wg.cost_unit} per percentage point gained over doing nothing",
+                    over=C[:, d] / (100 * gain) if gain > 0 else None)
     if not wg.weights:
         return pd.DataFrame(rows, columns=list(WEIGHING_COLUMNS))
     V = swing_values(P)
@@ -194,7 +241,7 @@ def weighing_table(case, summaries: dict, seed: int) -> pd.DataFrame:
             gain = (P[d] - P[0]) @ w
             add(c, WEIGHTED, "expected_gain", gain, unit="weighted chance of good outcomes over doing nothing")
             add(c, WEIGHTED, "efficiency", efficiency(gain, 1.0, costs[d]),
-                unit=f"weighted chance gained per {wg.cost_unit}")
+                unit=f"weighted chance gained per {wg.cost_unit}", over=efficiency(gain, 1.0, C[:, d]))
         if wg.uncertain:
             add(c, WEIGHTED, "acceptability", a[d], se[d], unit=f"share of {drawn} feasible weight vectors ranking it first")
             for r in range(len(choices)):

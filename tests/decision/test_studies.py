@@ -205,8 +205,8 @@ def test_assessment_writes_the_studies_table(tmp_path):
     d["studies"].append({"name": "birds", "measures": "species", "species": "bird", "error": "poisson",
                          "samples": 5, "cost": 100, "cost_unit": "dollars"})
     d["outcome_values"] = {"unit": "dollars", "objectives": {"bird spared": 1e4}}
-    d["weighing"] = {"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": 30},
-                     "weights": {"bird spared": "unknown"}}
+    d["weighing"] = {"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": {
+                     "distribution": "uniform", "low": 20, "high": 40}}, "weights": {"bird spared": "unknown"}, "budget": 35}
     res = assess(load_case(write_case(tmp_path, d)), members=150, dynamics=False, base_samples=16)
     t = res.tables["sensitivity/studies.csv"]
     assert tuple(t.columns) == STUDY_COLUMNS
@@ -223,7 +223,17 @@ def test_assessment_writes_the_studies_table(tmp_path):
     w = res.tables["sensitivity/weighing.csv"].set_index(["option", "statistic"])
     chance = {o: w.loc[(o, "chance"), "value"] for o in ("baseline", "apex only", "apex and meso")}
     assert w.loc[("apex only", "efficiency"), "value"] == pytest.approx((chance["apex only"] - chance["baseline"]) / 10)
-    assert w.loc[("apex and meso", "cost"), "value"] == 30
+    # the uncertain cost: its expected value near the prior's mean 30 (150 members, sd of the mean ≈ 0.5:
+    # margin 2, four sd), its interval inside the prior's range
+    cost = w.loc[("apex and meso", "cost")]
+    assert cost.value == pytest.approx(30, abs=2) and 20 <= cost.low < cost.value < cost.high <= 40
+    assert w.loc[("apex only", "cost"), "low"] == w.loc[("apex only", "cost"), "high"] == 10
+    # the budget: the two options share "apex removal", so the best set is one of them or none
+    b = res.tables["sensitivity/budget.csv"]
+    assert b.iloc[0].benefit == pytest.approx(max(0.0, *(w.loc[(o, "expected_gain"), "value"]
+                                                         for o in ("apex only", "apex and meso")
+                                                         if w.loc[(o, "cost"), "value"] <= 35)))
+    assert " + " not in b.options.str.cat()
     acc = w.xs("acceptability", level="statistic")
     assert acc.value.sum() == pytest.approx(1.0) and (acc.mc_se >= 0).all()
 

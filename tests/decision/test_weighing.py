@@ -95,6 +95,15 @@ def _case(weighing):
     ({"weights": {"bird spared": "maybe"}}, "weighing.weights.bird spared", "unknown"),
     ({"weights": {"nope": 1}}, "weighing.weights.nope", "unknown objective"),
     ({"source": "x"}, "weighing", "declare option_costs, weights, or both"),
+    ({"option_costs": {"apex only": 1, "apex and meso": {"distribution": "normal", "mean": 1}}},
+     "weighing.option_costs.apex and meso.distribution", "uniform"),
+    ({"option_costs": {"apex only": 1, "apex and meso": {"distribution": "uniform", "low": -1, "high": 2}}},
+     "weighing.option_costs.apex and meso", "cannot be negative"),
+    ({"option_costs": {"apex only": 1, "apex and meso": {"distribution": "uniform", "low": 3, "high": 2}}},
+     "weighing.option_costs.apex and meso.high", ""),
+    ({"option_costs": {"apex only": 1, "apex and meso": 2}, "budget": 5}, "weighing.budget", "needs option_costs and weights"),
+    ({"option_costs": {"apex only": 1, "apex and meso": 2}, "weights": {"bird spared": 1}, "budget": -5},
+     "weighing.budget", ">= 0"),
 ])
 def test_bad_weighing_names_file_and_field(tmp_path, weighing, field, words):
     f = write_case(tmp_path, _case(weighing))
@@ -106,5 +115,24 @@ def test_bad_weighing_names_file_and_field(tmp_path, weighing, field, words):
 def test_weighing_is_read(tmp_path):
     c = load_case(write_case(tmp_path, _case({"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": 20},
                                               "weights": {"bird spared": "unknown"}})))
-    assert c.weighing.option_costs == (("apex only", 10.0), ("apex and meso", 20.0))
+    assert [(o, p.describe()) for o, p in c.weighing.option_costs] == [("apex only", "10"), ("apex and meso", "20")]
+    assert not c.weighing.uncertain_costs and c.weighing.budget is None
     assert c.weighing.weights == (("bird spared", 0.0, 1.0),) and c.weighing.uncertain
+
+
+def test_uncertain_costs_are_drawn_per_member_on_their_own_stream(tmp_path):
+    # a cost prior is read with the parameters' syntax and drawn from each member's own stream: the same
+    # member gets the same cost whatever the other members, and the draws follow the prior (uniform on
+    # [10, 30]: mean 20 within 4 standard errors, sd 20/√12/√M; false-failure rate ≈ 6e-5)
+    from impact.decision.weighing import member_costs
+
+    c = load_case(write_case(tmp_path, _case({"cost_unit": "dollars", "budget": 25, "weights": {"bird spared": 1},
+                                              "option_costs": {"apex only": 10, "apex and meso":
+                                                               {"distribution": "uniform", "low": 10, "high": 30}}})))
+    assert c.weighing.uncertain_costs and c.weighing.budget == 25
+    draws = np.arange(4000)
+    C = member_costs(c, draws, 7)
+    assert (C[:, 0] == 0).all() and (C[:, 1] == 10).all()
+    assert abs(C[:, 2].mean() - 20) < 4 * 20 / np.sqrt(12 * len(draws)) and C[:, 2].min() >= 10
+    assert np.array_equal(member_costs(c, draws[::-7], 7), C[::-7])
+    assert not np.array_equal(member_costs(c, draws, 8)[:, 2], C[:, 2])
