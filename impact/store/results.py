@@ -361,6 +361,7 @@ TEXT_COLUMNS = {
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
     "informed", "verdict", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
     "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
+    "options", "interventions", "benefit_basis", "method", "benefit_unit",
 }
 
 @dataclass

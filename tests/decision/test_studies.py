@@ -275,3 +275,31 @@ def test_two_state_decision_evpi_and_a_perfect_study():
     evsi, ceiling = out["perfect"]
     assert evsi.value == pytest.approx(17.5, abs=1e-9) and ceiling.value == pytest.approx(17.5, abs=1e-9)
     assert out["useless"][0].value < 1.0 and out["useless"][0].low == 0.0
+
+
+def test_page_one_names_a_study_only_when_its_value_is_material():
+    # the rule of impact.dossier.studyline (ours, common practice with no source): valued outcomes: the study
+    # worth its cost at the lower limit of its value; otherwise one whose EVSI's lower limit is above 0 and which
+    # reaches the case's material change in a chance. The interval is always quoted.
+    import pandas as pd
+
+    from impact.dossier.studyline import best_study_sentence
+    from impact.decision.studies import STUDY_COLUMNS, VALUED_TOGETHER
+
+    def rows(*specs):
+        base = dict.fromkeys(STUDY_COLUMNS, 0.0)
+        return pd.DataFrame([{**base, "cost_unit": "$", "unit": "p", **s} for s in specs], columns=list(STUDY_COLUMNS))
+
+    per = rows(dict(study="a", objective="o", evsi=0.08, low=0.02, high=0.12, cost=5),
+               dict(study="b", objective="o", evsi=0.03, low=0.01, high=0.05, cost=1))
+    line = best_study_sentence(per, 0.05)
+    assert "“a”" in line and "+8.0\u00a0points [+2.0, +12.0]" in line and "board's call" in line
+    assert best_study_sentence(per, 0.10) == ""  # not material
+    assert best_study_sentence(per.assign(low=0.0), 0.05) == ""  # not distinguishable from none
+    valued = rows(dict(study="a", objective=VALUED_TOGETHER, evsi=900, low=300, high=1500, cost=100, enbs=800,
+                       worth_cost="yes", unit="$"),
+                  dict(study="b", objective=VALUED_TOGETHER, evsi=90, low=0, high=150, cost=10, enbs=80,
+                       worth_cost="undetermined", unit="$"))
+    line = best_study_sentence(valued, 0.05)
+    assert "“a”" in line and "900 [300, 1" in line and "“b”" not in line
+    assert best_study_sentence(valued.assign(worth_cost="undetermined"), 0.05) == ""
