@@ -136,3 +136,21 @@ def test_uncertain_costs_are_drawn_per_member_on_their_own_stream(tmp_path):
     assert abs(C[:, 2].mean() - 20) < 4 * 20 / np.sqrt(12 * len(draws)) and C[:, 2].min() >= 10
     assert np.array_equal(member_costs(c, draws[::-7], 7), C[::-7])
     assert not np.array_equal(member_costs(c, draws, 8)[:, 2], C[:, 2])
+
+
+def test_the_cost_stream_has_a_purpose_of_its_own():
+    # a new purpose is added, never an existing one shifted: every spawn-key purpose of the project is distinct
+    from impact.decision.hinges import PURPOSE_DRIVERS
+    from impact.decision.sensitivity.designs import PURPOSE_SENSITIVITY
+    from impact.decision.structurevoi import PURPOSE_STRUCTURE_VOI
+    from impact.decision.studies import PURPOSE_STUDIES
+    from impact.decision.voi import PURPOSE_VOI
+    from impact.decision.weighing import PURPOSE_WEIGHING
+    from impact.dynamics.lyapunov import PURPOSE_DYNAMICS
+    from impact.ensemble import sample
+
+    purposes = [sample.PURPOSE_PARAMETERS, sample.PURPOSE_NOISE, sample.PURPOSE_EVENTS, sample.PURPOSE_STRUCTURE,
+                PURPOSE_SENSITIVITY, PURPOSE_DYNAMICS, PURPOSE_VOI, PURPOSE_DRIVERS, PURPOSE_STUDIES, PURPOSE_WEIGHING,
+                PURPOSE_STRUCTURE_VOI, sample.PURPOSE_COSTS]
+    assert (sample.PURPOSE_PARAMETERS, sample.PURPOSE_NOISE, sample.PURPOSE_EVENTS, sample.PURPOSE_STRUCTURE) == (0, 1, 2, 3)
+    assert len(set(purposes)) == len(purposes)
