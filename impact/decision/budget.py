@@ -17,7 +17,7 @@ intervention is carried out once; "cats only" and "cats and rats" are alternativ
   options (2^20 ≈ 10^6 sets); beyond, depth-first branch and bound on options in decreasing order of
   benefit per cost, pruned by the bound of the linear (fractional) relaxation of the knapsack, which
   ignores conflicts and so never undercuts the optimum (Horowitz & Sahni 1974, J. ACM 21:277–292;
-  Martello & Toth 1990, Knapsack Problems, ch. 2). Both are exact.
+  Martello & Toth 1990, Knapsack Problems, ch. 2; both from memory). Both are exact.
 """
 
 from __future__ import annotations
