@@ -407,9 +407,7 @@ def _budget_sentence(b: pd.DataFrame | None) -> str:
             if r.chance_over_budget > 0 else "")
     joint = (" Its benefit is the sum of its options' simulated gains, assumed additive: the set was not simulated "
              "together." if r.benefit_basis.startswith("assumed") else "")
-    cost = f"expected cost {fmt_num(r.cost)}" + (f" [{fmt_num(r.cost_low)}, {fmt_num(r.cost_high)}]"
-                                                  if r.cost_low < r.cost_high else "")
-    return f"{head}, the best affordable choice by expected cost is {opts} ({cost}{over}; budget.csv).{joint}"
+    return f"{head}, the best affordable choice by expected cost is {opts} ({fmt_num(r.cost)}{over}; budget.csv).{joint}"
 
 
 def weighing_context(res: Results) -> dict | None:

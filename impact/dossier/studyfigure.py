@@ -9,7 +9,7 @@ from impact.dossier.chart import mpl_text, new_figure, png_bytes
 from impact.dossier.figures import OPTION_COLOURS
 
 PANEL_WIDTH = 1.65  # inches per study; four studies fill the text width
-HEIGHT = 1.6
+HEIGHT = 1.5
 
 
 def study_sizes_figure(sizes: pd.DataFrame, objective: str) -> bytes:
