@@ -331,9 +331,9 @@ def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Pro
             tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
             tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs, seed)
         if case.weighing is not None:
-            from impact.decision.weighing import weighing_table
+            from impact.decision.weighing import weighing_tables
 
-            tables["sensitivity/weighing.csv"] = weighing_table(case, runs, seed)
+            tables.update(weighing_tables(case, runs, seed, ens.draws))
     return StageOutput(tables, stages=("sensitivity",))
 
 
@@ -582,6 +582,7 @@ def summary_text(case: Case, folder: Path) -> str:
     """The terminal summary of a written results folder: the page-1 verdict, ending with its bottom line."""
     from impact.dossier import hinges_text, load_results
     from impact.dossier.bottomline import bottom_line, bottom_line_text
+    from impact.dossier.studyline import best_study_sentence
     from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
     from impact.dossier.verdict import reading, reading_text, thin_run
     from impact.dossier.structures_verdict import structure_reading, structure_text
@@ -638,6 +639,9 @@ def summary_text(case: Case, folder: Path) -> str:
     L.append("CAUTION: " + CAUTION)
     if not thin_run(res.manifest)[0]:  # the summary ends with the bottom line that opens page 1
         L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))
+        line = best_study_sentence((res.sensitivity or {}).get("studies"), res.manifest.judgement.material_risk)
+        if line:  # the sentence under page 1's bottom line
+            L.append(f"  {line}")
     return "\n".join(L)
 
 

@@ -155,9 +155,11 @@ def describe_case(case: Case) -> str:
         L.append(f"  candidate study “{st.name}”: {st.samples} × {st.error} of {st.measures} {st.target}, "
                  f"cost {st.cost:g} {st.cost_unit}")
     if case.weighing is not None:
-        L.append("  weighing: " + "; ".join([f"{o} costs {c:g} {case.weighing.cost_unit}" for o, c in case.weighing.option_costs]
+        L.append("  weighing: " + "; ".join([f"{o} costs {c.describe()} {case.weighing.cost_unit}" for o, c in case.weighing.option_costs]
                                             + [f"weight of “{o}” " + (f"{lo:g}" if lo == hi else f"{lo:g}–{hi:g}")
-                                               for o, lo, hi in case.weighing.weights]))
+                                               for o, lo, hi in case.weighing.weights]
+                                            + ([f"budget {case.weighing.budget:g} {case.weighing.cost_unit}"]
+                                               if case.weighing.budget is not None else [])))
     if case.calibration is not None:
         c = case.calibration
         L.append(f"calibration: sampler {c.sampler}, rejection while at least {c.min_acceptance:.0%} of draws are kept"

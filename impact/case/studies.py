@@ -18,6 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from impact.case.priors import DISTRIBUTIONS, Fixed, Prior, prior_problems
 from impact.case.reader import Reader, Table
 from impact.case.types import ParameterGroup, Quantity, Species
 
@@ -148,25 +149,55 @@ def read_outcome_values(r: Reader, raw: Any, objectives: set[str], studies: tupl
 
 @dataclass(frozen=True)
 class Weighing:
-    """Option costs and swing weights on the objectives (``[weighing]``).
+    """Option costs, swing weights on the objectives and a budget (``[weighing]``).
 
     Attributes
     ----------
-    option_costs : tuple of (option, cost)
-        Every option's cost in ``cost_unit`` (doing nothing costs 0).
+    option_costs : tuple of (option, prior)
+        Every option's cost in ``cost_unit`` (doing nothing costs 0): a known cost (:class:`Fixed`) or a
+        prior of the parameters' syntax, drawn per member (:func:`impact.ensemble.sample.cost_uniforms`).
     weights : tuple of (objective, low, high)
         Each objective's weight as a share of the whole (weights sum to 1): ``low == high`` for a declared
         weight, a range for an uncertain one, (0, 1) for ``"unknown"``. Objectives not named weigh 0.
+    budget : float or None
+        What may be spent on options together, in ``cost_unit`` (None: no budget declared).
     """
 
     cost_unit: str
-    option_costs: tuple[tuple[str, float], ...]
+    option_costs: tuple[tuple[str, Prior], ...]
     weights: tuple[tuple[str, float, float], ...]
     source: str = ""
+    budget: float | None = None
 
     @property
     def uncertain(self) -> bool:
         return any(lo < hi for _, lo, hi in self.weights)
+
+    @property
+    def uncertain_costs(self) -> bool:
+        return any(not isinstance(c, Fixed) for _, c in self.option_costs)
+
+
+def _cost(r: Reader, f: str, v: Any) -> Prior:
+    """A cost: a number >= 0, or a prior table ``{distribution = ..., ...}`` whose support is >= 0."""
+    if not isinstance(v, dict):
+        v = r.check_type(f, v, "number")
+        r.check_range(f, v, 0, None, False)
+        return Fixed(float(v))
+    t = Table(r, v, f)
+    dist = t.get("distribution", kind="str")
+    r.choice(f"{f}.distribution", dist, tuple(DISTRIBUTIONS))
+    cls, required, optional = DISTRIBUTIONS[dist]
+    args = {k: t.number(k) for k in required}
+    for k, d in optional.items():
+        args[k] = t.number(k, d)
+    t.done()
+    prior = cls(**args)
+    for g, msg in prior_problems(prior):
+        r.fail(f"{f}.{g}", msg)
+    if prior.support()[0] < 0:
+        r.fail(f, f"a cost cannot be negative: this prior reaches {prior.support()[0]:g}")
+    return prior
 
 
 def _weight(r: Reader, f: str, v: Any) -> tuple[float, float]:
@@ -187,7 +218,7 @@ def _weight(r: Reader, f: str, v: Any) -> tuple[float, float]:
 
 
 def read_weighing(r: Reader, raw: Any, options: set[str], objectives: set[str]) -> Weighing | None:
-    """``[weighing]``: ``cost_unit``, ``option_costs = {option = cost}``, ``weights = {objective = w, [lo, hi]
+    """``[weighing]``: ``cost_unit``, ``option_costs = {option = cost or prior}``, ``budget``, ``weights = {objective = w, [lo, hi]
     or "unknown"}`` (shares of the whole; absent: None)."""
     if raw is None:
         return None
@@ -202,11 +233,7 @@ def read_weighing(r: Reader, raw: Any, options: set[str], objectives: set[str]) 
     if costs and set(costs) != options:
         missing = sorted(options - set(costs))
         r.fail("weighing.option_costs", f"give every option a cost (missing: {', '.join(missing)})")
-    option_costs = []
-    for k, v in costs.items():
-        v = r.check_type(f"weighing.option_costs.{k}", v, "number")
-        r.check_range(f"weighing.option_costs.{k}", v, 0, None, False)
-        option_costs.append((k, float(v)))
+    option_costs = [(k, _cost(r, f"weighing.option_costs.{k}", v)) for k, v in costs.items()]
     raw_w = t.get("weights", {}, "any")
     if not isinstance(raw_w, dict):
         r.fail("weighing.weights", "must be a table {objective name = weight, [low, high] or \"unknown\"}")
@@ -219,8 +246,15 @@ def read_weighing(r: Reader, raw: Any, options: set[str], objectives: set[str]) 
     if weights and not (sum(w[1] for w in weights) <= 1 + 1e-9 <= sum(w[2] for w in weights) + 2e-9):
         r.fail("weighing.weights", f"weights are shares of the whole and must be able to sum to 1: the lows sum to "
                                    f"{sum(w[1] for w in weights):g}, the highs to {sum(w[2] for w in weights):g}")
+    budget = t.get("budget", None, "any")
+    if budget is not None:
+        budget = float(r.check_type("weighing.budget", budget, "number"))
+        r.check_range("weighing.budget", budget, 0, None, False)
+        if not option_costs or not weights:
+            r.fail("weighing.budget", "a budget needs option_costs and weights (the options' benefits are their "
+                                      "weighted gains over doing nothing)")
     source = t.get("source", "", "str")
     t.done()
     if not option_costs and not weights:
         r.fail("weighing", "declare option_costs, weights, or both")
-    return Weighing(unit, tuple(option_costs), tuple(weights), source)
+    return Weighing(unit, tuple(option_costs), tuple(weights), source, budget)

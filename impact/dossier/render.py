@@ -18,6 +18,7 @@ from impact.dossier.bottomline import STATUS_WORDS, run_label
 from impact.dossier.verdict import horizon_rule_text, reading, thin_run
 from impact.dossier.webfigure import dot_available, food_web_svg, web_legend
 from impact.dossier.structures_verdict import structure_reading
+from impact.dossier.studyline import best_study_sentence
 from impact.dossier.figures import ASSET_SCHEME, KIND_STYLE, OPTION_COLOURS, Assets, bands_figure
 from impact.dossier.sections import (dynamics_context, press_context, sensitivity_context, studies_context,
     weighing_context)
@@ -58,7 +59,8 @@ def report_context(res: Results, assets: Assets) -> dict:
         foodweb=assets.add("foodweb.svg", food_web_svg(m), "image/svg+xml"), web_legend=web_legend(m),
         web_drawn=dot_available(), priors=priors, thin=thin,
         interventions=m.interventions, options=options, iucn=iucn_context(res),
-        sensitivity=sensitivity_context(res, assets), studies=studies_context(res), weighing=weighing_context(res), dynamics=dynamics_context(res, assets), press=press_context(res),
+        sensitivity=sensitivity_context(res, assets), studies=studies_context(res, assets), weighing=weighing_context(res),
+        study_line=best_study_sentence((res.sensitivity or {}).get("studies"), m.judgement.material_risk), dynamics=dynamics_context(res, assets), press=press_context(res),
         calibration=calibration_context(m, res.calibration, assets.add),
         counts=counts, failed_by_option=failed_by_option, fmt_num=fmt_num, fmt_prob=fmt_prob,
         horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},

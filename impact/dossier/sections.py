@@ -330,7 +330,7 @@ def _evsi_points(r) -> str:
     return f"{fmt_points(_clean(r.evsi))} [{fmt_bare_points(_clean(r.low))}, {fmt_bare_points(_clean(r.high))}]"
 
 
-def studies_context(res: Results) -> dict | None:
+def studies_context(res: Results, assets: Assets | None = None) -> dict | None:
     """The "Which study to fund" sentences: which study is worth its cost, which has value but not enough, and
     which has no value distinguishable from none (each with its EVSI interval and cost).
 
@@ -341,7 +341,17 @@ def studies_context(res: Results) -> dict | None:
         return None
     valued = t[t.objective == VALUED_TOGETHER].sort_values("enbs", ascending=False, kind="stable")
     per = t[t.objective != VALUED_TOGETHER]
-    return dict(valued=bool(len(valued)), sentence=_studies_sentence(valued, per), n=int(t.n.min()))
+    ctx = dict(valued=bool(len(valued)), sentence=_studies_sentence(valued, per), n=int(t.n.min()), figure=None,
+               level=fmt_num(100 * float(t.level.iloc[0])))
+    sizes = res.sensitivity.get("study_sizes")
+    if assets is not None and sizes is not None and len(sizes):
+        # the valued objectives together where declared, else the objective whose best study's ceiling is highest
+        obj = VALUED_TOGETHER if len(valued) else str(per.sort_values("ceiling", ascending=False).objective.iloc[0])
+        from impact.dossier.studyfigure import study_sizes_figure
+
+        ctx["figure"] = assets.add("study-sizes.png", study_sizes_figure(sizes, obj), "image/png")
+        ctx["figure_objective"] = obj if obj == VALUED_TOGETHER else f"for “{obj}”"
+    return ctx
 
 
 def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
@@ -378,6 +388,28 @@ def _label(c: str) -> str:
     return "doing nothing" if c == "baseline" else f"“{c}”"
 
 
+def _cost_text(r) -> str:
+    """An expected cost, with the interval of its draws when it is uncertain."""
+    rng = f" [{fmt_num(r.low)}, {fmt_num(r.high)}]" if r.low < r.high else ""
+    return f"{'expected ' if rng else ''}{fmt_num(r.value)}{rng} {r.unit}"
+
+
+def _budget_sentence(b: pd.DataFrame | None) -> str:
+    """The best affordable set of options under the budget (budget.csv), with its chance of overrunning."""
+    if b is None or b.empty:
+        return ""
+    r = b.iloc[0]
+    head = f"Under the budget of {fmt_num(r.budget)} {r.cost_unit}"
+    if r.benefit_basis.startswith("doing nothing"):
+        return head + ", no affordable option gains over doing nothing (budget.csv)."
+    opts = " + ".join(f"“{o}”" for o in r.options.split(" + "))
+    over = (f"; its cost exceeds the budget in {fmt_prob(r.chance_over_budget)} of the cost draws"
+            if r.chance_over_budget > 0 else "")
+    joint = (" Its benefit is the sum of its options' simulated gains, assumed additive: the set was not simulated "
+             "together." if r.benefit_basis.startswith("assumed") else "")
+    return f"{head}, the best affordable choice by expected cost is {opts} ({fmt_num(r.cost)}{over}; budget.csv).{joint}"
+
+
 def weighing_context(res: Results) -> dict | None:
     """The weighed comparison in words: the weights, the best weighted choice, SMAA acceptabilities, the most
     cost-effective option.
@@ -410,9 +442,18 @@ def weighing_context(res: Results) -> dict | None:
     if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
         best = ranked[0][1]
         lines.append(f"Most cost-effective (weighted gain over doing nothing per unit of cost): {_label(best)}, at "
-                     f"{fmt_num(stat[(best, 'cost')].value)} {stat[(best, 'cost')].unit}.")
+                     f"{_cost_text(stat[(best, 'cost')])}.")
     elif ranked:
         lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
+    named = {ranked[0][1]} if ranked and stat[(ranked[0][1], "efficiency")].value > 0 else set()
+    uncertain_costs = [c for c in choices if (c, "cost") in stat and stat[(c, "cost")].low < stat[(c, "cost")].high
+                       and c not in named]
+    if uncertain_costs:
+        lines.append("Uncertain costs: " + "; ".join(f"{_label(c)} {_cost_text(stat[(c, 'cost')])}"
+                                                    for c in uncertain_costs) + ".")
+    budget = _budget_sentence((res.sensitivity or {}).get("budget"))
+    if budget:
+        lines.append(budget)
     unit = t[t.statistic == "cost"].unit
     return dict(sentence=" ".join(lines), uncertain=uncertain, n=int(t.n.iloc[0]),
                 unit=str(unit.iloc[0]) if len(unit) else "none declared")

@@ -19,6 +19,7 @@ PURPOSE_PARAMETERS = 0
 PURPOSE_NOISE = 1
 PURPOSE_EVENTS = 2
 PURPOSE_STRUCTURE = 3
+PURPOSE_COSTS = 16  # an option's uncertain cost (after the decision stage's purposes 7, 8, 11-15)
 
 
 def _bits(seed: int, *key: int) -> np.random.PCG64:
@@ -169,6 +170,12 @@ def first_uniforms(seed: int, draws: np.ndarray, *key: int) -> np.ndarray:
 def event_uniforms(seed: int, draws: np.ndarray, name: str) -> np.ndarray:
     """One unit-uniform per member for a chance event of the named intervention: (M,)."""
     return first_uniforms(seed, draws, PURPOSE_EVENTS, zlib.crc32(name.encode("utf-8")))
+
+
+def cost_uniforms(seed: int, draws: np.ndarray, option: str) -> np.ndarray:
+    """One unit-uniform per member for the named option's uncertain cost: (M,), from the member's stream
+    ``(i, PURPOSE_COSTS, crc32(option))`` (independent of the other options and of the declaration order)."""
+    return first_uniforms(seed, draws, PURPOSE_COSTS, zlib.crc32(option.encode("utf-8")))
 
 
 # Population-level streams of the calibration (resampling, proposals, acceptance) are keyed by a

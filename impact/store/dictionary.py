@@ -104,9 +104,25 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "(Σ weight × swing value, 0 worst .. 1 best choice per objective); expected_gain (weighted chance gained over "
         "doing nothing: benefit × chance of success); efficiency (expected_gain ÷ cost, Joseph et al. 2009); "
         "efficiency_rank (1 = most cost-effective); acceptability (SMAA share of feasible weights ranking the choice "
-        "first, Lahdelma et al. 1998); central_weight_if_first (mean weight among those)",
-        "value": "the statistic's value", "mc_se": "Monte Carlo standard error (acceptability only)",
+        "first, Lahdelma et al. 1998); rank_acceptability (SMAA share ranking the choice at the row's rank, every rank 1 .. "
+        "number of choices); central_weight_if_first (mean weight among those ranking it first)",
+        "value": "the statistic's value (costs: the expected cost; cost_per_point and efficiency at it)",
+        "low": "lower limit over the members' draws of uncertain costs (cost, cost_per_point, efficiency; the gain "
+        "held at its expectation)", "high": "upper limit (as low)", "level": _LEVEL,
+        "mc_se": "Monte Carlo standard error (acceptabilities only)",
+        "rank": "the rank of a rank_acceptability row (1 = first; blank otherwise)",
         "unit": "unit of value", "n": _N}),
+    "sensitivity/budget.csv": ("The best affordable sets of options under the declared budget ([weighing] budget), "
+                               "best first.", {
+        "rank": "1 = best (most weighted gain; ties to the cheaper set)", "options": "the options of the set "
+        "(options sharing an intervention are never combined)", "interventions": "their interventions",
+        "cost": "expected cost of the set (sum of the options' expected costs)", "cost_low": "lower limit over the "
+        "members' draws of the costs", "cost_high": "upper limit", "budget": "the declared budget",
+        "chance_over_budget": "share of the members' cost draws in which the set costs more than the budget",
+        "benefit": "expected weighted gain over doing nothing (weighing.csv expected_gain; summed over the set)",
+        "benefit_basis": "simulated (one option), assumed additive (a set never simulated together), or doing "
+        "nothing", "method": "exhaustive enumeration (up to 20 options) or branch and bound (exact)",
+        "cost_unit": "unit of the costs", "benefit_unit": "unit of benefit", "level": _LEVEL, "n": _N}),
     "sensitivity/indices.csv": ("Sobol indices of the prior screen (whole prior box, plausibility not applied).", {
         "option": "run", "metric": "output metric", "species": "species (or all)", "parameter": "parameter",
         "S1": "first-order index", "S1_conf": "its half-width", "ST": "total-order index", "ST_conf":

@@ -179,8 +179,12 @@ TABLES = {
                                  "value_scale", "enbs", "enbs_low", "enbs_high", "level", "n")),
     "sensitivity/study_sizes.csv": (("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling",
                                      "unit", "n"), ("samples", "evsi", "low", "high", "ceiling", "n")),
-    "sensitivity/weighing.csv": (("option", "objective", "statistic", "value", "mc_se", "unit", "n"),
-                                 ("value", "mc_se", "n")),
+    "sensitivity/weighing.csv": (("option", "objective", "statistic", "value", "low", "high", "mc_se", "rank", "unit",
+                                  "level", "n"), ("value", "low", "high", "mc_se", "rank", "level", "n")),
+    "sensitivity/budget.csv": (("rank", "options", "interventions", "cost", "cost_low", "cost_high", "budget",
+                                "chance_over_budget", "benefit", "benefit_basis", "method", "cost_unit", "benefit_unit",
+                                "level", "n"), ("rank", "cost", "cost_low", "cost_high", "budget", "chance_over_budget",
+                                                "benefit", "level", "n")),
     "bands.csv": (("option", "species", "time", "q05", "q25", "q50", "q75", "q95"),
                   ("time", "q05", "q25", "q50", "q75", "q95")),
     "priors.csv": (("name", "distribution", "arguments", "unit", "source", "description"), ()),
@@ -357,6 +361,7 @@ TEXT_COLUMNS = {
     "kind", "failure", "failed", "converged", "uncertain", "reason", "basis", "extinct_species", "extinct",
     "informed", "verdict", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
     "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
+    "options", "interventions", "benefit_basis", "method", "benefit_unit",
 }
 
 @dataclass

@@ -38,13 +38,40 @@ def normal_study(M: int, seed: int, samples: int, log_sd: float, mu0: float = 0.
     return evsi, ceiling
 
 
-def test_normal_normal_evsi_matches_closed_form():
-    # Raiffa & Schlaifer 1961 / Ades et al. 2004 closed form (closed_form_evsi). Mean of 4 seeds at 10,000
-    # members; the spread of one estimate was measured at sd ≈ 0.008 (5 seeds), so the mean's SE is ≈ 0.004;
-    # tolerance 0.014 (≈ 3.5 SE, false-failure rate under 0.1 % by a normal approximation), i.e. ≈ 5 % of the value.
-    for samples in (1, 4):
-        est = [normal_study(10_000, seed, samples, 1.0)[0].value for seed in range(4)]
-        assert np.mean(est) == pytest.approx(closed_form_evsi(0.2, 1.0, 1.0, samples), abs=0.014)
+def test_normal_normal_evsi_matches_closed_form_within_2_percent():
+    # Raiffa & Schlaifer 1961 / Ades et al. 2004 closed form (closed_form_evsi), checked on the regression
+    # estimator itself: θ ~ N(0.2, 1) and the study's mean measurement T = θ + ε, ε ~ N(0, 1/n), with (θ, ε) from
+    # a scrambled Sobol' sequence of 2^14 points (≥ 10,000 members; quasi-random so the prior and the noise are
+    # spread evenly and what is left is the estimator's own error). Measured over 10 scrambles: spread of one
+    # estimate 0.33 % (n = 1), 0.11 % (n = 4), 0.05 % (n = 16) of the value, mean bias ≤ 0.2 %. Margin 2 % of the
+    # closed form, over 5 spreads from the value: false-failure rate under 1e-6 per check by a normal approximation.
+    from scipy.stats import qmc
+
+    M, mu0, s0 = 2**14, 0.2, 1.0
+    for samples in (1, 4, 16):
+        u = qmc.Sobol(2, scramble=True, seed=samples).random(M)
+        theta = mu0 + s0 * norm.ppf(u[:, 0])
+        T = theta + norm.ppf(u[:, 1]) / np.sqrt(samples)
+        nb = np.column_stack([np.zeros(M), theta])
+        e, _ = sample_values_many([nb], theta[:, None], ["theta"], {"s": (T[:, None], ["theta"])}, resamples=2,
+                                  seed=samples)[0]["s"]
+        exact = closed_form_evsi(mu0, s0, 1.0, samples)
+        assert e.value == pytest.approx(exact, rel=0.02)
+
+
+def test_lognormal_study_summary_is_normal_about_the_log_truth():
+    # The study data path: a lognormal study's summary is the mean of `samples` log measurements, each
+    # N(log(scale · truth), log_sd²) (the lognormal observation model's definition), so the summary minus
+    # log(scale · truth) is N(0, log_sd²/samples). Mean within 4 standard errors and variance within 4 standard
+    # errors of its estimate (sd of a sample variance ≈ σ²·√(2/M), normal data): false-failure rate ≈ 1e-4.
+    M, samples, log_sd = 4000, 4, 0.6
+    truth = np.random.default_rng(5).lognormal(0.0, 1.0, M)
+    one = np.ones(M)
+    Z = simulate_summary(truth[:, None], "lognormal", samples, one, 2 * one, None, log_sd * one, np.arange(M), 3, 7)
+    r = Z[:, 0] - np.log(2 * truth)
+    var = log_sd**2 / samples
+    assert abs(r.mean()) < 4 * np.sqrt(var / M)
+    assert abs(r.var(ddof=1) - var) < 4 * var * np.sqrt(2 / M)
 
 
 def test_evsi_rises_to_evppi_and_falls_to_zero():
@@ -178,8 +205,8 @@ def test_assessment_writes_the_studies_table(tmp_path):
     d["studies"].append({"name": "birds", "measures": "species", "species": "bird", "error": "poisson",
                          "samples": 5, "cost": 100, "cost_unit": "dollars"})
     d["outcome_values"] = {"unit": "dollars", "objectives": {"bird spared": 1e4}}
-    d["weighing"] = {"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": 30},
-                     "weights": {"bird spared": "unknown"}}
+    d["weighing"] = {"cost_unit": "dollars", "option_costs": {"apex only": 10, "apex and meso": {
+                     "distribution": "uniform", "low": 20, "high": 40}}, "weights": {"bird spared": "unknown"}, "budget": 35}
     res = assess(load_case(write_case(tmp_path, d)), members=150, dynamics=False, base_samples=16)
     t = res.tables["sensitivity/studies.csv"]
     assert tuple(t.columns) == STUDY_COLUMNS
@@ -196,7 +223,17 @@ def test_assessment_writes_the_studies_table(tmp_path):
     w = res.tables["sensitivity/weighing.csv"].set_index(["option", "statistic"])
     chance = {o: w.loc[(o, "chance"), "value"] for o in ("baseline", "apex only", "apex and meso")}
     assert w.loc[("apex only", "efficiency"), "value"] == pytest.approx((chance["apex only"] - chance["baseline"]) / 10)
-    assert w.loc[("apex and meso", "cost"), "value"] == 30
+    # the uncertain cost: its expected value near the prior's mean 30 (150 members, sd of the mean ≈ 0.5:
+    # margin 2, four sd), its interval inside the prior's range
+    cost = w.loc[("apex and meso", "cost")]
+    assert cost.value == pytest.approx(30, abs=2) and 20 <= cost.low < cost.value < cost.high <= 40
+    assert w.loc[("apex only", "cost"), "low"] == w.loc[("apex only", "cost"), "high"] == 10
+    # the budget: the two options share "apex removal", so the best set is one of them or none
+    b = res.tables["sensitivity/budget.csv"]
+    assert b.iloc[0].benefit == pytest.approx(max(0.0, *(w.loc[(o, "expected_gain"), "value"]
+                                                         for o in ("apex only", "apex and meso")
+                                                         if w.loc[(o, "cost"), "value"] <= 35)))
+    assert " + " not in b.options.str.cat()
     acc = w.xs("acceptability", level="statistic")
     assert acc.value.sum() == pytest.approx(1.0) and (acc.mc_se >= 0).all()
 
@@ -238,3 +275,31 @@ def test_two_state_decision_evpi_and_a_perfect_study():
     evsi, ceiling = out["perfect"]
     assert evsi.value == pytest.approx(17.5, abs=1e-9) and ceiling.value == pytest.approx(17.5, abs=1e-9)
     assert out["useless"][0].value < 1.0 and out["useless"][0].low == 0.0
+
+
+def test_page_one_names_a_study_only_when_its_value_is_material():
+    # the rule of impact.dossier.studyline (ours, common practice with no source): valued outcomes: the study
+    # worth its cost at the lower limit of its value; otherwise one whose EVSI's lower limit is above 0 and which
+    # reaches the case's material change in a chance. The interval is always quoted.
+    import pandas as pd
+
+    from impact.dossier.studyline import best_study_sentence
+    from impact.decision.studies import STUDY_COLUMNS, VALUED_TOGETHER
+
+    def rows(*specs):
+        base = dict.fromkeys(STUDY_COLUMNS, 0.0)
+        return pd.DataFrame([{**base, "cost_unit": "$", "unit": "p", **s} for s in specs], columns=list(STUDY_COLUMNS))
+
+    per = rows(dict(study="a", objective="o", evsi=0.08, low=0.02, high=0.12, cost=5),
+               dict(study="b", objective="o", evsi=0.03, low=0.01, high=0.05, cost=1))
+    line = best_study_sentence(per, 0.05)
+    assert "“a”" in line and "+8.0\u00a0points [+2.0, +12.0]" in line and "board's call" in line
+    assert best_study_sentence(per, 0.10) == ""  # not material
+    assert best_study_sentence(per.assign(low=0.0), 0.05) == ""  # not distinguishable from none
+    valued = rows(dict(study="a", objective=VALUED_TOGETHER, evsi=900, low=300, high=1500, cost=100, enbs=800,
+                       worth_cost="yes", unit="$"),
+                  dict(study="b", objective=VALUED_TOGETHER, evsi=90, low=0, high=150, cost=10, enbs=80,
+                       worth_cost="undetermined", unit="$"))
+    line = best_study_sentence(valued, 0.05)
+    assert "“a”" in line and "900 [300, 1" in line and "“b”" not in line
+    assert best_study_sentence(valued.assign(worth_cost="undetermined"), 0.05) == ""
