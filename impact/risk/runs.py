@@ -15,7 +15,7 @@ from impact.risk import metrics as mx
 from impact.case import Case, Option
 from impact.engine.integrate import FAILURE_REASONS
 from impact.model import WebParams, build_web
-from impact.ensemble.sample import event_uniforms, noise_multipliers
+from impact.ensemble.sample import counting_for, event_uniforms, noise_multipliers
 from impact.engine.simulate import Run, run_option
 from impact.ensemble.draws import Ensemble, make_ensemble, run_chunk_size, plausibility_of_draws
 
@@ -30,6 +30,7 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
     n_units = int(np.ceil(case.horizon)) + 1
     noise = noise_multipliers(seed, ens.draws, ens.params.noise_sd, n_units) if with_noise else None
     event_u = {iv.name: event_uniforms(seed, ens.draws, iv.name) for iv in case.interventions}
+    counting = counting_for(case, seed, ens.draws)
     runs = {}
     options: list[Option | None] = [None, *case.options]
     for opt in options:
@@ -38,7 +39,8 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
             continue
         if progress:
             progress(f"simulating {name} on {len(ens.draws)} members")
-        runs[name] = run_option(case, web, ens.params, ens.values, ens.today, opt, noise, event_u)
+        runs[name] = run_option(case, web, ens.params, ens.values, ens.today, opt, noise, event_u,
+                                counting=counting)
     return runs
 
 
