@@ -39,6 +39,13 @@ HIGHEST_ORDER = 2.0
 # Cao et al. (2006, section IV): when a leap would hold fewer than about 10 events, exact
 # simulation is cheaper and exact
 SSA_BELOW = 10.0
+# a member whose continuous run fell to none by a jump (an eradication) from below this many times
+# its switch at the output time before is run again with counting: between two output times its
+# numbers may have passed under the switch before the jump hid them
+NEAR_SWITCH = 4.0
+# the rest of the web is integrated over steps of at least this long (time units) while a
+# species is counted: a first-order coupling, as the rates are held over each step
+COUPLING_STEP = 1.0 / 16.0
 # a step loop that never ends is a bug or an explosion: fail the member instead of hanging
 MAX_EVENTS = 200_000
 
@@ -150,6 +157,24 @@ class Counting:
         with np.errstate(invalid="ignore"):
             return ((c > 0) & (c < self.switch)).any(axis=1)
 
+    def subset(self, rows: np.ndarray) -> "Counting":
+        """The same counting for members ``rows`` (row r of the subset is row rows[r] here)."""
+        rows = np.asarray(rows)
+        return Counting(self.columns, self.per_unit, self.switch, lambda r: self.stream(int(rows[r])))
+
+    def may_go_below(self, states: np.ndarray, cummin: np.ndarray) -> np.ndarray:
+        """Members of a continuous run (states and running minima (M, T, n)) that may have had some
+        counted species between none and its switch at some time: (M,) bool. The others' runs
+        with counting are their continuous runs, to the bit."""
+        c = cummin[:, :, self.columns] * self.per_unit
+        s = states[:, :, self.columns] * self.per_unit
+        with np.errstate(invalid="ignore"):
+            near = ((c > 0) & (c < self.switch)).any(axis=(1, 2)) | ((s > 0) & (s < self.switch)).any(axis=(1, 2))
+            gone = c == 0
+            before = np.concatenate([np.full_like(c[:, :1], np.inf), c[:, :-1]], axis=1)
+            near |= (gone & (before > 0) & (before < NEAR_SWITCH * self.switch)).any(axis=(1, 2))
+        return near
+
     def whole(self, y: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """Counts of a state row ``y`` (n,), a fraction of an individual kept with its chance
         (unbiased rounding; no random number is used for a whole count): int (k,)."""
@@ -182,28 +207,32 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
     """
     from impact.engine.control import Failure
     from impact.engine.web import pack_structure, web_segment
-    from impact.model.split import numpy_split
+    from impact.model.split import scalar_split
 
-    split = numpy_split(pack_structure(web))
+    split = scalar_split(pack_structure(web))
     cols, u = counting.columns, counting.per_unit
-    cf = np.ascontiguousarray(coef_row.T)
-    state = {"y": y.copy(), "lo": y.copy(), "hi": y.copy(), "nfev": 0, "reason": 0}
+    cf = coef_row[0].tolist()
+    state = {"y": y.copy(), "lo": y.copy(), "hi": y.copy(), "nfev": 0, "reason": 0, "from": t0}
     x0 = counting.whole(y, rng)
     state["y"][cols] = x0 / u
-    gain, loss = np.empty((1, y.size)), np.empty((1, y.size))
 
     def rates(x, t):
-        yy = state["y"].copy()
-        yy[cols] = x / u
-        split(np.array([t]), yy[None, :], cf, gain, loss)
-        return gain[0, cols] * u, loss[0, cols] * u
+        yy = state["y"].tolist()
+        for j, c in enumerate(cols):
+            yy[c] = x[j] / u[j]
+        g, l = split(t, yy, cf)
+        return np.array([g[c] for c in cols]) * u, np.array([l[c] for c in cols]) * u
 
-    def flow(t, dt):
-        if state["reason"]:
+    def flow(t_end):
+        # the rest of the web moves on in steps of at least COUPLING_STEP (events between are
+        # applied to the counted species at once; rates are held over each step anyway)
+        t = state["from"]
+        if state["reason"] or t_end <= t:
             return
-        seg = web_segment(web, p, c, t, t + dt, state["y"][None, :], rtol=rtol, atol=atol,
+        seg = web_segment(web, p, c, t, t_end, state["y"][None, :], rtol=rtol, atol=atol,
                           members=np.array([member]), engine=engine, coef=None if engine == "numpy" else coef_row)
         state["nfev"] += seg.nfev
+        state["from"] = t_end
         if seg.failed[0]:
             state["reason"] = int(seg.reason[0])
             return
@@ -212,8 +241,8 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
         state["y"] = seg.y[0]
 
     def flow_then_count(t, dt, x):
-        state["y"][cols] = x / u
-        flow(t, dt)
+        if t + dt - state["from"] >= COUPLING_STEP or t + dt >= t1:
+            flow(t + dt)
         state["y"][cols] = x / u  # the counted species change by events only
 
     x, low, ok = count_events(x0, t0, t1, rates, rng, flow_then_count)

@@ -236,11 +236,42 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
     With a compiled engine each member's whole run (every segment, its controls and noise, the
     jumps between) is one compiled loop; the numpy engine steps segment by segment
     (:func:`run_option_by_segment`, the reference: both give the same numbers to the bit).
-    Arguments as :func:`run_option_by_segment`; with species counted in individuals
-    (``counting``) the run goes segment by segment.
+    Arguments as :func:`run_option_by_segment`. With species counted in individuals
+    (``counting``), the members whose continuous run comes near a switch
+    (:meth:`impact.engine.individuals.Counting.may_go_below`) are run again segment by segment
+    with their counted species as random events.
     """
-    if engine == "numpy" or counting is not None:
+    if engine == "numpy":
         return run_option_by_segment(case, web, p, values, y0, option, noise, event_u, engine, counting)
+    run = run_option_whole(case, web, p, values, y0, option, noise, event_u, engine)
+    if counting is None:
+        return run
+    rows = np.flatnonzero(counting.may_go_below(run.states, run.cummin))
+    if not rows.size:
+        return run
+    # a member that never came near its switch is the same run as the continuous one, to the bit
+    # (the segment-by-segment engine is the whole-run one step for step): only the others are redone
+    sub = run_option_by_segment(case, web, take_rows(p, rows), {k: np.asarray(v)[rows] if np.ndim(v) else v
+                                                                for k, v in values.items()},
+                                y0[rows], option, None if noise is None else noise[rows],
+                                {k: v[rows] for k, v in event_u.items()}, engine, counting.subset(rows))
+    states, cummin, cummax = run.states.copy(), run.cummin.copy(), run.cummax.copy()
+    failed, reason = run.failed.copy(), run.reason.copy()
+    states[rows], cummin[rows], cummax[rows], failed[rows], reason[rows] = (sub.states, sub.cummin, sub.cummax,
+                                                                            sub.failed, sub.reason)
+    return Run(run.times, states, cummin, cummax, failed, reason, run.nfev + sub.nfev)
+
+
+def take_rows(p: WebParams, rows: np.ndarray) -> WebParams:
+    """The parameters of members ``rows`` (every per-member array sliced on its first axis)."""
+    return WebParams(*(getattr(p, f)[rows] if isinstance(getattr(p, f), np.ndarray) and np.ndim(getattr(p, f))
+                       else getattr(p, f) for f in WebParams.__dataclass_fields__))
+
+
+def run_option_whole(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
+                     option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
+                     engine: str = DEFAULT_ENGINE) -> Run:
+    """Every member's whole run as one compiled loop (:func:`run_option` without counting)."""
     M, n = y0.shape
     times = segment_times(case, option, noise is not None)
     out_t = output_times(case)

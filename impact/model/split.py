@@ -46,9 +46,10 @@ def substitute(e: Expr, old: str, new: str) -> Expr:
 
 
 def split_lines(s: Structure, pr: Printer) -> list[str]:
-    """numpy statements computing the program and, beside it, ``g{i}`` and ``l{i}`` for every state."""
+    """Statements computing the program and, beside it, ``g{i}`` and ``l{i}`` for every state
+    (whole numpy columns, or plain numbers when ``pr`` prints for numbers)."""
     out = []
-    pos = lambda x: f"np.maximum({x}, 0.0)"  # noqa: E731
+    pos = (lambda x: f"np.maximum({x}, 0.0)") if pr.numpy else (lambda x: f"max({x}, 0.0)")  # noqa: E731
     for stmt in program(s):
         line = [f"{stmt.target} = {pr(stmt.expr)}"]
         if _is_rate(stmt.target, s.n):
@@ -109,6 +110,28 @@ def numpy_split(st: np.ndarray):
                   + "".join(f"        {x}\n" for x in body))
         scope = {"np": np, "cos_array": cos_array}
         exec(compile(source, "<impact.model.split>", "exec"), scope)  # noqa: S102 - our own generated source
+        fn = scope["split"]
+        fn.source = source
+        _cache[key] = fn
+    return _cache[key]
+
+
+def scalar_split(st: np.ndarray):
+    """``split(t, y, cf) -> (gains, losses)`` for one member in plain Python numbers (y (n,), cf (P,)
+    its coefficient row, t a number): the statements of :func:`numpy_split`, at a fraction of the
+    cost for a single member (counted members are stepped one at a time)."""
+    key = ("scalar", st.tobytes())
+    if key not in _cache:
+        import math
+
+        s = Structure.decode(st)
+        pr = Printer(s.col, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=False)
+        body = [f"k{k} = cf[{k}]" for k in used_columns(program(s), s.col)]
+        body += [f"y{i} = y[{i}]" for i in range(s.n)] + split_lines(s, pr)
+        body.append(f"return [{', '.join(f'g{i}' for i in range(s.n))}], [{', '.join(f'l{i}' for i in range(s.n))}]")
+        source = "def split(t, y, cf):\n" + "".join(f"    {x}\n" for x in body)
+        scope = {"math": math}
+        exec(compile(source, "<impact.model.split scalar>", "exec"), scope)  # noqa: S102 - our own generated source
         fn = scope["split"]
         fn.source = source
         _cache[key] = fn
