@@ -202,7 +202,7 @@ def _summaries(case: Case, runs: dict) -> dict[str, Summary]:
 
 RISK_COLUMNS = ("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n")
 # the interval each metric of risk.csv carries (see impact.risk.metrics.INTERVAL_KINDS)
-RISK_INTERVALS = {"quasi_extinction": "clopper_pearson", "outbreak": "clopper_pearson",
+RISK_INTERVALS = {"quasi_extinction": "clopper_pearson", "extinct": "clopper_pearson", "outbreak": "clopper_pearson",
                   "not_recovered": "clopper_pearson", "expected_minimum": "mean_normal",
                   "mean_abundance": "member_quantiles", "mean_change": "member_quantiles",
                   "recovery_time": "member_quantiles"}
@@ -226,6 +226,7 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
     runs = _summaries(case, runs)
     conf = case.risk.confidence
     base = runs["baseline"]
+    counted = {x.species: x.per_unit for x in case.individuals}
     rows = []
     for opt, run in runs.items():
         for j, sp in enumerate(case.species):
@@ -236,6 +237,10 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
                     k, n = mx.quasi_extinction_probability(rmin, sp.quasi_extinction)
                     lo, hi = mx.clopper_pearson(k, n, conf)
                     rows.append(_row(opt, sp.name, "quasi_extinction", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
+                    if sp.name in counted:
+                        k, n = mx.extinction_probability(rmin, counted[sp.name])
+                        lo, hi = mx.clopper_pearson(k, n, conf)
+                        rows.append(_row(opt, sp.name, "extinct", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
                     m, lo, hi = mx.expected_minimum_abundance(rmin, conf)
                     rows.append(_row(opt, sp.name, "expected_minimum", h, m, lo, hi, sp.unit, int(np.isfinite(rmin).sum()), conf))
                 if sp.outbreak is not None:
