@@ -164,3 +164,30 @@ def test_bad_individuals_tables_name_the_field(tmp_path, individuals, field, wor
     with pytest.raises(CaseError) as err:
         load_case(_case_with(tmp_path, individuals))
     assert err.value.field == field and words in str(err.value)
+
+
+def test_risk_table_reports_zero_individuals_beside_quasi_extinction(tmp_path):
+    # a fox removal that fails leaves 20 % of 40 foxes (area 20, 2 foxes/ha): counted below 30, they
+    # can die out by chance; none left is the 'extinct' row, defined once in impact.risk.metrics
+    from impact.ensemble.draws import draw_ensemble
+    from impact.risk.metrics import NONE_BELOW
+    from impact.risk.runs import risk_table, run_options, summarise
+
+    data = web_case(members=40)
+    data["case"]["horizon"] = 10.0
+    data["risk"]["horizons"] = [10.0]
+    data["interventions"][2]["end"] = 10.0
+    data["individuals"] = {"fox": {"area": 20.0, "switch_below": 30.0}}
+    case = load_case(write_case(tmp_path, data))
+    ens = draw_ensemble(case, 40, case.seed)
+    runs = summarise(case, run_options(case, ens, case.seed))
+    risk = risk_table(case, runs)
+    ext = risk[(risk.metric == "extinct")]
+    assert set(ext.species) == {"fox"} and set(ext.option) == {"baseline", "cull", "remove", "nothing"}
+    for _, row in ext.iterrows():
+        fox = case.species_names.index("fox")
+        low = runs[row.option].minimum[:, runs[row.option].slot(row.horizon), fox]
+        assert row.value == pytest.approx(np.mean(low[np.isfinite(low)] * 20.0 < NONE_BELOW))
+        q = risk[(risk.metric == "quasi_extinction") & (risk.option == row.option) & (risk.species == "fox")]
+        assert row.value <= float(q.value.iloc[0])  # none left is below any quasi-extinction level (0.05/ha = 1 fox)
+    assert float(ext[ext.option == "remove"].value.iloc[0]) > 0.0
