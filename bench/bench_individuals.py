@@ -13,6 +13,14 @@ Target (issue 24): with individuals counted, the core stage costs at most 2× th
 Only the members whose continuous run comes near a switch are run again, one at a time, with
 their counted species' births and deaths as events (the rest keep their continuous numbers); the
 ratio grows with the share of such members (here the cats left by a failed eradication).
+
+Measured 2026-12-05 on a shared 2-core machine under load, 200 members: 36 of 600 member runs
+changed by counting (the cats left by failed eradications); continuous 0.15-0.17 CPU s, counted
+1.2-1.5 CPU s: a ratio of 8-9, NOT within the 2x target. Where it goes (cProfile): about half in
+integrating the rest of the web between events (one compiled segment call per 1/16 year per
+counted member, ~0.7 ms each with its boundary checks), the rest in the per-event Python loop and
+the generated rates. Compiling the event loop with the rates (as the kernels are) is the way to the
+target; not done yet.
 """
 
 from __future__ import annotations
