@@ -137,6 +137,10 @@ def describe_case(case: Case) -> str:
         L.append(f"seasons: {sea.length:g} {case.time_unit} in {sea.parts} {sea.part_name}s; today starts a season")
     if case.carrion is not None:
         L.append(f"carrion pool: decay rate {case.carrion.decay_rate}")
+    if case.individuals:
+        L.append(f"individuals at low numbers ({len(case.individuals)}; below the switch, births and deaths are "
+                 f"random events and 'extinct' means zero individuals):")
+        L += [f"  {x.describe(case.species_by_name(x.species).unit)}" for x in case.individuals]
     L.append(f"parameters ({len(case.parameters)}, {len(case.uncertain)} uncertain):")
     for p in case.parameters:
         L.append(f"  {p.name} = {p.prior.describe()} [{p.unit or 'no unit given'}]" + (f"  source: {p.source}" if p.source else "  (no source given)"))

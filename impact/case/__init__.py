@@ -15,6 +15,7 @@ from pathlib import Path
 from impact.case.reader import (Reader, Table, check_references, read_carrion, read_intervention, read_meta,
     read_observed, read_options, read_parameters, read_risk, read_seasons, read_species, unique)
 from impact.case.effects import check_effects
+from impact.case.individuals import read_individuals
 from impact.case.structures import read_web
 from impact.case.studies import read_outcome_values, read_study, read_weighing
 from impact.case.tables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
@@ -116,6 +117,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     unique(r, studies, "name", "studies")
     outcome_values = read_outcome_values(r, top.get("outcome_values", None, "any"), {o.name for o in objectives}, studies)
     weighing = read_weighing(r, top.get("weighing", None, "any"), {o.name for o in options}, {o.name for o in objectives})
+    individuals = read_individuals(r, top.get("individuals", None, "any"), species)
     top.done()
     check_references(r, parameters)
     return Case(
@@ -124,5 +126,5 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         interventions=interventions, options=options, risk=risk, objectives=objectives, groups=groups,
         dynamics=dynamics, seasons=seasons, monitoring=monitoring, change_limits=limits, calibration=calibration,
         structures=structures,
-        studies=studies, outcome_values=outcome_values, weighing=weighing,
+        studies=studies, outcome_values=outcome_values, weighing=weighing, individuals=individuals,
     )

@@ -322,6 +322,7 @@ class Case:
     studies: tuple = ()  # candidate studies (impact.case.studies.Study)
     outcome_values: object = None  # impact.case.studies.OutcomeValues or None
     weighing: object = None  # impact.case.studies.Weighing or None
+    individuals: tuple = ()  # species counted in individuals at low numbers (impact.case.individuals)
 
     @property
     def species_names(self) -> tuple[str, ...]:

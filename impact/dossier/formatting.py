@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import math
 
-PROBABILITY_METRICS = {"quasi_extinction", "outbreak", "not_recovered"}
+PROBABILITY_METRICS = {"quasi_extinction", "extinct", "outbreak", "not_recovered"}
 
 
 def fmt_num(v) -> str:

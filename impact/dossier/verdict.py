@@ -261,6 +261,19 @@ def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species
     return out
 
 
+def _lost_by_chance(m: Manifest, risk: pd.DataFrame, option: str, species: str) -> list[str]:
+    """A species counted in individuals whose chance of falling to none (``extinct`` in risk.csv) under
+    the option reaches the material risk at its horizon: named as a loss by chance at low numbers."""
+    H, _ = species_horizon(m, species)
+    o = _one(risk, option=option, species=species, metric="extinct", horizon=H)
+    if o is None or not np.isfinite(float(o.value)) or float(o.value) + 1e-12 < m.judgement.material_risk:
+        return []
+    b = _one(risk, option="baseline", species=species, metric="extinct", horizon=H)
+    return [f"could be lost by chance at low numbers: chance of falling to zero individuals "
+            f"{by_time(H, m.time_unit)} {with_term(o.value, o.low, o.high)}"
+            + (f" (doing nothing {fmt_prob(b.value)})" if b is not None else "")]
+
+
 def _quiet_text(m: Manifest, effects: pd.DataFrame, option: str, species: str) -> str:
     H, _ = species_horizon(m, species)
     pm = _one(effects, option=option, species=species, metric="mean_abundance", horizon=H, statistic="p_material")
@@ -285,6 +298,8 @@ def option_reading(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, objec
         listing = PROTECTED_LISTING_PROBABILITY if s.role == "protected" else LISTING_PROBABILITY
         abundance, p_mat, size = _abundance_part(effects, option, sp, m, listing)
         events = _event_parts(effects, risk, option, sp, m)
+        if s.role == "protected":
+            events += _lost_by_chance(m, risk, option, sp)
         tag = ("protected, " if s.role == "protected" else "") + (
             "direct: the option acts on it" if sp in touched else "indirect: through the food web")
         if p_mat > listing or events:

@@ -14,6 +14,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from impact.case import ARRIVAL_KINDS, Case, Option
+from impact.engine.individuals import Counting, counted_segment
 from impact.engine.web import DEFAULT_ENGINE, Jumps, coefficient_columns, pack_coefficients, web_run, web_segment
 from impact.model import Controls, FoodWeb, WebParams, controlled_coefficients, segment_coefficients
 
@@ -229,16 +230,48 @@ def apply_jumps(jumps: Jumps, b: int, y: np.ndarray, carrion: int):
 
 def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
                option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
-               engine: str = DEFAULT_ENGINE) -> Run:
+               engine: str = DEFAULT_ENGINE, counting: Counting | None = None) -> Run:
     """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline).
 
     With a compiled engine each member's whole run (every segment, its controls and noise, the
     jumps between) is one compiled loop; the numpy engine steps segment by segment
     (:func:`run_option_by_segment`, the reference: both give the same numbers to the bit).
-    Arguments as :func:`run_option_by_segment`.
+    Arguments as :func:`run_option_by_segment`. With species counted in individuals
+    (``counting``), the members whose continuous run comes near a switch
+    (:meth:`impact.engine.individuals.Counting.may_go_below`) are run again segment by segment
+    with their counted species as random events.
     """
     if engine == "numpy":
-        return run_option_by_segment(case, web, p, values, y0, option, noise, event_u, engine)
+        return run_option_by_segment(case, web, p, values, y0, option, noise, event_u, engine, counting)
+    run = run_option_whole(case, web, p, values, y0, option, noise, event_u, engine)
+    if counting is None:
+        return run
+    rows = np.flatnonzero(counting.may_go_below(run.states, run.cummin))
+    if not rows.size:
+        return run
+    # a member that never came near its switch is the same run as the continuous one, to the bit
+    # (the segment-by-segment engine is the whole-run one step for step): only the others are redone
+    sub = run_option_by_segment(case, web, take_rows(p, rows), {k: np.asarray(v)[rows] if np.ndim(v) else v
+                                                                for k, v in values.items()},
+                                y0[rows], option, None if noise is None else noise[rows],
+                                {k: v[rows] for k, v in event_u.items()}, engine, counting.subset(rows))
+    states, cummin, cummax = run.states.copy(), run.cummin.copy(), run.cummax.copy()
+    failed, reason = run.failed.copy(), run.reason.copy()
+    states[rows], cummin[rows], cummax[rows], failed[rows], reason[rows] = (sub.states, sub.cummin, sub.cummax,
+                                                                            sub.failed, sub.reason)
+    return Run(run.times, states, cummin, cummax, failed, reason, run.nfev + sub.nfev)
+
+
+def take_rows(p: WebParams, rows: np.ndarray) -> WebParams:
+    """The parameters of members ``rows`` (every per-member array sliced on its first axis)."""
+    return WebParams(*(getattr(p, f)[rows] if isinstance(getattr(p, f), np.ndarray) and np.ndim(getattr(p, f))
+                       else getattr(p, f) for f in WebParams.__dataclass_fields__))
+
+
+def run_option_whole(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
+                     option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
+                     engine: str = DEFAULT_ENGINE) -> Run:
+    """Every member's whole run as one compiled loop (:func:`run_option` without counting)."""
     M, n = y0.shape
     times = segment_times(case, option, noise is not None)
     out_t = output_times(case)
@@ -262,7 +295,7 @@ def run_option(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndar
 
 def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, y0: np.ndarray,
                           option: Option | None, noise: np.ndarray | None, event_u: dict[str, np.ndarray],
-                          engine: str = DEFAULT_ENGINE) -> Run:
+                          engine: str = DEFAULT_ENGINE, counting: Counting | None = None) -> Run:
     """Integrate the ensemble over [0, horizon] under one option (``None`` is the baseline), one
     segment at a time for the whole ensemble.
 
@@ -276,6 +309,10 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
         Uniforms deciding chance events (eradication failure), shared by all options.
     engine : {"compiled", "numpy"}
         See :mod:`impact.engine.web`; both give the same numbers.
+    counting : Counting, optional
+        Species counted in individuals at low numbers: a member with one of them below its switch
+        at the start of a segment goes through that segment by random births and deaths
+        (:func:`impact.engine.individuals.counted_segment`).
     """
     M, n = y0.shape
     S = web.n_species
@@ -296,13 +333,23 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
     lo, hi = y.copy(), y.copy()
     states[:, 0], cummin[:, 0], cummax[:, 0] = y, lo, hi
     controls = segment_controls(case, option, values, times, noise, M, S)
+    streams: dict[int, np.random.Generator] = {}
     for k, c in enumerate(controls):
         t0, t1 = times[k], times[k + 1]
         active = np.flatnonzero(~failed)
+        if counting is not None and active.size:
+            low = active[counting.below(y[active])]
+            active = np.setdiff1d(active, low)
+            nfev += counted_members(web, p, c, t0, t1, y, lo, hi, h, failed, reason, low, counting, streams,
+                                    case, engine)
         if active.size:
             h0 = h[active]
+            if counting is None or engine == "numpy":
+                h0 = None if np.isnan(h0).any() else h0
+            # (with counting, members leaving a counted segment start afresh: the compiled engines
+            # choose the first step of each NaN entry alone, so no member's step depends on another's)
             seg = web_segment(web, p, c, t0, t1, y[active], rtol=case.rtol, atol=case.atol,
-                              h0=None if np.isnan(h0).any() else h0, members=active, engine=engine)
+                              h0=h0, members=active, engine=engine)
             nfev += seg.nfev
             y[active] = seg.y
             h[active] = seg.h
@@ -321,6 +368,29 @@ def run_option_by_segment(case: Case, web: FoodWeb, p: WebParams, values: dict, 
             i = slot[float(t1)]
             states[:, i], cummin[:, i], cummax[:, i] = y, lo, hi
     return Run(out_t, states, cummin, cummax, failed, reason, nfev)
+
+
+def counted_members(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y, lo, hi, h, failed, reason,
+                    rows: np.ndarray, counting: Counting, streams: dict, case: Case, engine: str) -> int:
+    """Members ``rows`` through one segment with their counted species as random events; updates
+    ``y``, ``lo``, ``hi``, ``h``, ``failed`` and ``reason`` in place. Returns the evaluations."""
+    if not rows.size:
+        return 0
+    coef = pack_coefficients(segment_coefficients(web, p, c), rows)
+    nfev = 0
+    for r, m in enumerate(rows):
+        if int(m) not in streams:
+            streams[int(m)] = counting.stream(int(m))
+        rng = streams[int(m)]
+        out, ymin, ymax, why, n = counted_segment(web, p, c, coef[r:r + 1], t0, t1, y[m], int(m), counting, rng,
+                                                  rtol=case.rtol, atol=case.atol, engine=engine)
+        nfev += n
+        y[m], h[m] = out, np.nan  # the next continuous segment chooses its first step afresh
+        lo[m] = np.minimum(lo[m], ymin)
+        hi[m] = np.maximum(hi[m], ymax)
+        if why:
+            failed[m], reason[m] = True, why
+    return nfev
 
 
 def spin_up(case: Case, web: FoodWeb, p: WebParams,

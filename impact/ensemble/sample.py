@@ -19,6 +19,7 @@ PURPOSE_PARAMETERS = 0
 PURPOSE_NOISE = 1
 PURPOSE_EVENTS = 2
 PURPOSE_STRUCTURE = 3
+PURPOSE_INDIVIDUALS = 4  # births and deaths of species counted in individuals (impact.engine.individuals)
 PURPOSE_COSTS = 16  # an option's uncertain cost (after the decision stage's purposes 7, 8, 11-15)
 
 
@@ -176,6 +177,28 @@ def cost_uniforms(seed: int, draws: np.ndarray, option: str) -> np.ndarray:
     """One unit-uniform per member for the named option's uncertain cost: (M,), from the member's stream
     ``(i, PURPOSE_COSTS, crc32(option))`` (independent of the other options and of the declaration order)."""
     return first_uniforms(seed, draws, PURPOSE_COSTS, zlib.crc32(option.encode("utf-8")))
+
+
+def individuals_stream(seed: int, draw: int) -> np.random.Generator:
+    """A fresh generator of draw index ``draw``'s births and deaths at low numbers
+    (stream ``(draw, PURPOSE_INDIVIDUALS)``): the same numbers on every call, so every option of
+    a member starts from the same stream (common random numbers)."""
+    return _generator(seed, int(draw), PURPOSE_INDIVIDUALS)
+
+
+def counting_for(case: Case, seed: int, draws: np.ndarray):
+    """The species ``case`` counts in individuals at low numbers, with each member's stream
+    (:class:`impact.engine.individuals.Counting`), or None when it counts none."""
+    from impact.engine.individuals import Counting
+
+    if not case.individuals:
+        return None
+    col = {n: i for i, n in enumerate(case.species_names)}
+    draws = np.asarray(draws)
+    return Counting(np.array([col[x.species] for x in case.individuals], np.int64),
+                    np.array([x.per_unit for x in case.individuals]),
+                    np.array([x.switch_below for x in case.individuals]),
+                    lambda row: individuals_stream(seed, int(draws[row])))
 
 
 # Population-level streams of the calibration (resampling, proposals, acceptance) are keyed by a

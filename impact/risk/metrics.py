@@ -42,6 +42,31 @@ def quasi_extinction_probability(running_min: np.ndarray, threshold: float) -> t
     return int((running_min[ok] < threshold).sum()), int(ok.sum())
 
 
+# A species counted in individuals is gone when none is left; a continuous remainder of less than
+# half an individual (between two counts) is taken as none.
+NONE_BELOW = 0.5
+
+
+def extinction_probability(running_min: np.ndarray, per_unit: float) -> tuple[int, int]:
+    """Members in which a species counted in individuals fell to none by the horizon: a
+    population of zero individuals, beside the quasi-extinction level of
+    :func:`quasi_extinction_probability`.
+
+    Parameters
+    ----------
+    running_min : ndarray (M,)
+        Minimum abundance over [0, horizon] per member; NaN marks a failed member.
+    per_unit : float
+        Individuals in one unit of abundance.
+
+    Returns
+    -------
+    (k, n) : count that fell to none, count of members assessed
+    """
+    ok = np.isfinite(running_min)
+    return int((running_min[ok] * per_unit < NONE_BELOW).sum()), int(ok.sum())
+
+
 def expected_minimum_abundance(running_min: np.ndarray, confidence: float = 0.95) -> tuple[float, float, float]:
     """Mean over members of the minimum abundance, with a normal-theory CI (McCarthy & Thompson 2001)."""
     x = running_min[np.isfinite(running_min)]

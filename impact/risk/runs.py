@@ -15,7 +15,7 @@ from impact.risk import metrics as mx
 from impact.case import Case, Option
 from impact.engine.integrate import FAILURE_REASONS
 from impact.model import WebParams, build_web
-from impact.ensemble.sample import event_uniforms, noise_multipliers
+from impact.ensemble.sample import counting_for, event_uniforms, noise_multipliers
 from impact.engine.simulate import Run, run_option
 from impact.ensemble.draws import Ensemble, make_ensemble, run_chunk_size, plausibility_of_draws
 
@@ -30,6 +30,7 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
     n_units = int(np.ceil(case.horizon)) + 1
     noise = noise_multipliers(seed, ens.draws, ens.params.noise_sd, n_units) if with_noise else None
     event_u = {iv.name: event_uniforms(seed, ens.draws, iv.name) for iv in case.interventions}
+    counting = counting_for(case, seed, ens.draws)
     runs = {}
     options: list[Option | None] = [None, *case.options]
     for opt in options:
@@ -38,7 +39,8 @@ def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None 
             continue
         if progress:
             progress(f"simulating {name} on {len(ens.draws)} members")
-        runs[name] = run_option(case, web, ens.params, ens.values, ens.today, opt, noise, event_u)
+        runs[name] = run_option(case, web, ens.params, ens.values, ens.today, opt, noise, event_u,
+                                counting=counting)
     return runs
 
 
@@ -200,7 +202,7 @@ def _summaries(case: Case, runs: dict) -> dict[str, Summary]:
 
 RISK_COLUMNS = ("option", "species", "metric", "horizon", "value", "low", "high", "interval", "level", "unit", "n")
 # the interval each metric of risk.csv carries (see impact.risk.metrics.INTERVAL_KINDS)
-RISK_INTERVALS = {"quasi_extinction": "clopper_pearson", "outbreak": "clopper_pearson",
+RISK_INTERVALS = {"quasi_extinction": "clopper_pearson", "extinct": "clopper_pearson", "outbreak": "clopper_pearson",
                   "not_recovered": "clopper_pearson", "expected_minimum": "mean_normal",
                   "mean_abundance": "member_quantiles", "mean_change": "member_quantiles",
                   "recovery_time": "member_quantiles"}
@@ -224,6 +226,7 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
     runs = _summaries(case, runs)
     conf = case.risk.confidence
     base = runs["baseline"]
+    counted = {x.species: x.per_unit for x in case.individuals}
     rows = []
     for opt, run in runs.items():
         for j, sp in enumerate(case.species):
@@ -234,6 +237,10 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
                     k, n = mx.quasi_extinction_probability(rmin, sp.quasi_extinction)
                     lo, hi = mx.clopper_pearson(k, n, conf)
                     rows.append(_row(opt, sp.name, "quasi_extinction", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
+                    if sp.name in counted:
+                        k, n = mx.extinction_probability(rmin, counted[sp.name])
+                        lo, hi = mx.clopper_pearson(k, n, conf)
+                        rows.append(_row(opt, sp.name, "extinct", h, k / n if n else np.nan, float(lo), float(hi), "probability", n, conf))
                     m, lo, hi = mx.expected_minimum_abundance(rmin, conf)
                     rows.append(_row(opt, sp.name, "expected_minimum", h, m, lo, hi, sp.unit, int(np.isfinite(rmin).sum()), conf))
                 if sp.outbreak is not None:

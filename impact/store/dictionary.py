@@ -18,7 +18,9 @@ _N = "members behind the number (failed members excluded)"
 DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
     "risk.csv": ("Per-species risk under doing nothing (baseline) and every option, per risk horizon.", {
         "option": "baseline or an option's name", "species": "species name",
-        "metric": "quasi_extinction, expected_minimum, outbreak, mean_abundance, mean_change, recovery_time, not_recovered",
+        "metric": "quasi_extinction, extinct (a species counted in individuals fell to none: zero individuals; only for "
+                  "species in [individuals]), expected_minimum, outbreak, mean_abundance, mean_change, recovery_time, "
+                  "not_recovered",
         "horizon": "risk horizon, in the case's time unit", "value": "the estimate", "low": "lower limit",
         "high": "upper limit", "interval": _CI, "level": _LEVEL, "unit": "unit of value", "n": _N}),
     "effects.csv": ("Paired effects of each option against doing nothing, member by member on the same draws.", {

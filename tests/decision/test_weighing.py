@@ -151,6 +151,6 @@ def test_the_cost_stream_has_a_purpose_of_its_own():
 
     purposes = [sample.PURPOSE_PARAMETERS, sample.PURPOSE_NOISE, sample.PURPOSE_EVENTS, sample.PURPOSE_STRUCTURE,
                 PURPOSE_SENSITIVITY, PURPOSE_DYNAMICS, PURPOSE_VOI, PURPOSE_DRIVERS, PURPOSE_STUDIES, PURPOSE_WEIGHING,
-                PURPOSE_STRUCTURE_VOI, sample.PURPOSE_COSTS]
+                PURPOSE_STRUCTURE_VOI, sample.PURPOSE_COSTS, sample.PURPOSE_INDIVIDUALS]
     assert (sample.PURPOSE_PARAMETERS, sample.PURPOSE_NOISE, sample.PURPOSE_EVENTS, sample.PURPOSE_STRUCTURE) == (0, 1, 2, 3)
     assert len(set(purposes)) == len(purposes)

@@ -209,3 +209,19 @@ def test_an_index_is_printed_to_two_places_and_never_as_minus_zero():
 
     assert fmt_index(-0.001) == "0.00" and fmt_index(0.256) == "0.26" and fmt_index(-0.03) == "-0.03"
     assert fmt_index(float("nan")) == "n/a"
+
+
+@pytest.mark.parametrize("chance, named", [(0.2, True), (0.0, False)])
+def test_a_protected_species_that_could_die_out_by_chance_is_named_as_such(meso_results, chance, named):
+    # a species counted in individuals has an 'extinct' row (zero individuals) in risk.csv; when its chance
+    # under an option reaches the material risk, page 1 names the loss as one by chance at low numbers
+    res = meso_results
+    rows = [dict(option=o, species="bird", metric="extinct", horizon=h, value=chance if o == "apex only" else 0.0,
+                 low=0.0, high=min(1.0, chance + 0.05), interval="clopper_pearson", level=0.95, unit="probability",
+                 n=150) for o in ("baseline", "apex only", "apex and meso") for h in res.manifest.horizons]
+    risk = pd.concat([res.risk, pd.DataFrame(rows)], ignore_index=True)
+    r = reading(res.manifest, risk, res.effects, res.objectives, res.comparisons)
+    bird = next(o for o in r.options if o.option == "apex only").protected[0]
+    assert ("could be lost by chance at low numbers" in bird.body) is named
+    if named:
+        assert f"{fmt_prob(chance)} [" in bird.body and "doing nothing 0" in bird.body
