@@ -98,6 +98,8 @@ def describe_case(case: Case) -> str:
             bits.append(f"births × (1 + {s.breeding_amplitude}·cos), peaking in {case.seasons.part_name} {s.breeding_peak:g}")
         if s.matures_into is not None:
             bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
+        if s.allee != "none":
+            bits.append(f"{s.allee} Allee effect (threshold {s.allee_threshold})")
         bits.append(f"initial={s.initial}")
         if not s.present:
             bits.append("absent today")

@@ -36,7 +36,7 @@ def _plain(unit: str) -> str:
 
 def _abundance_of(case: Case, item, name: str) -> "Species | None":
     """The species whose abundance unit a field is in (None for fields of other dimensions)."""
-    if isinstance(item, Species) and name in ("carrying_capacity", "initial"):
+    if isinstance(item, Species) and name in ("carrying_capacity", "initial", "allee_threshold"):
         return item
     if isinstance(item, Mutualism) and name == "half_saturation":
         return case.species_by_name(item.partner)
