@@ -35,6 +35,7 @@ import pandas as pd
 
 from impact.version import __version__
 from impact.ensemble.draws import Ensemble
+from impact.risk.eradication import eradication_tables
 from impact.risk.runs import assess_members, bands_table, failure_counts, members_table, risk_table
 from impact.risk.bystructure import member_structures, structure_tables
 from impact.ensemble.calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
@@ -557,7 +558,8 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         "priors.csv": priors_table(case),
         **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
            else calibration_tables(case, ens, cal, seed)),
-        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None)}
+        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None),
+        **eradication_tables(case, ens.values, ens.draws, runs)}
     clock.lap("tables")
     calibration = cal.record() if ensemble is None else {
         **ensemble.manifest["calibration"], "reused_from": ensemble.source or "this process"}

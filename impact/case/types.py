@@ -327,6 +327,7 @@ class Case:
     studies: tuple = ()  # candidate studies (impact.case.studies.Study)
     outcome_values: object = None  # impact.case.studies.OutcomeValues or None
     weighing: object = None  # impact.case.studies.Weighing or None
+    surveillance: tuple = ()  # impact.case.surveillance.Surveillance, one per species at most
 
     @property
     def species_names(self) -> tuple[str, ...]:
