@@ -584,6 +584,7 @@ def summary_text(case: Case, folder: Path) -> str:
     """The terminal summary of a written results folder: the page-1 verdict, ending with its bottom line."""
     from impact.dossier import hinges_text, load_results
     from impact.dossier.bottomline import bottom_line, bottom_line_text
+    from impact.dossier.eradication_reading import eradication_sentences
     from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
     from impact.dossier.verdict import reading, reading_text, thin_run
     from impact.dossier.structures_verdict import structure_reading, structure_text
@@ -637,6 +638,9 @@ def summary_text(case: Case, folder: Path) -> str:
     hinges = hinges_text(res)
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]
+    erad = eradication_sentences(res.manifest, res.eradication) if not thin_run(res.manifest)[0] else ()
+    if erad:
+        L += ["eradication (the same as page 1):", *(f"  {x}" for x in erad)]
     L.append("CAUTION: " + CAUTION)
     if not thin_run(res.manifest)[0]:  # the summary ends with the bottom line that opens page 1
         L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))

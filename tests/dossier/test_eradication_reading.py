@@ -1,0 +1,59 @@
+"""Page 1's eradication sentences agree with eradication.csv, and summary.txt says the same."""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+
+import impact
+from casefiles import decline_case, write_case
+from impact.dossier.eradication_reading import eradication_sentences, reading_horizon
+from impact.dossier.formatting import fmt_bare_prob, fmt_num, fmt_prob
+from impact.dossier.render import report_html
+from impact.store.results import load_results
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("eradication")
+    data = decline_case(120)
+    data["parameters"]["p"] = {"distribution": "uniform", "low": 0.3, "high": 0.6, "unit": "probability"}
+    data["interventions"].append({"name": "short harvest", "kind": "press-harvest", "species": "newt",
+                                  "rate": 0.3, "start": 0.0, "end": 12.0})
+    data["options"].append({"name": "short", "interventions": ["short harvest"]})
+    data["surveillance"] = [{"species": "newt", "gone_below": 1.0, "detection": "p", "arrival_rate": 0.05,
+                             "establishment": 0.5, "survey": "night count"}]
+    result = impact.assess(str(write_case(tmp, data)), seed=0, sensitivity=False, dynamics=False)
+    return impact.save(result, tmp / "out", report=False)
+
+
+def _plain(html: str) -> str:
+    return " ".join(re.sub(r"<[^>]+>", "", html).replace("&nbsp;", "\u00a0").split())
+
+
+def test_page_one_states_the_table_numbers(folder):
+    res = load_results(folder)
+    m, table = res.manifest, res.eradication
+    sentences = eradication_sentences(m, table)
+    assert len(sentences) == 2  # one per option acting on the newt; none for doing nothing
+    for option, sentence in zip(["harvest", "short"], sentences):
+        h = reading_horizon(m, option, "newt")
+        # the first risk horizon at or after the option's last intervention ends (40 and 12 -> 40, 20)
+        assert h == {"harvest": 40.0, "short": 20.0}[option]
+        row = table[(table.option == option) & np.isclose(table.horizon, h)].iloc[0]
+        assert (f"{fmt_prob(row.chance_success)} [{fmt_bare_prob(row.success_low)}, "
+                f"{fmt_bare_prob(row.success_high)}]") in sentence
+        if np.isnan(row.surveys_needed):
+            assert "No run of empty night counts" in sentence
+        else:
+            assert f"takes {fmt_num(row.surveys_needed)} empty night count" in sentence
+        last = table[(table.option == option) & np.isclose(table.horizon, 40.0)].iloc[0]
+        assert f"reinvasion by year\u00a040: {fmt_prob(last.chance_reinvaded)}" in sentence
+    page = _plain(report_html(res)[0].split('<nav class="toc">')[0])  # the cover section: page 1
+    for sentence in sentences:
+        assert " ".join(sentence.split()) in page
+    summary = " ".join((folder / "summary.txt").read_text(encoding="utf-8").split())
+    for sentence in sentences:
+        assert " ".join(sentence.split()) in summary
