@@ -1,4 +1,4 @@
-"""Page 1's sentences on eradication: for each surveyed target and each option acting on it, the chance the
+"""Page 1's sentence on eradication: for each surveyed target, under each option acting on it, the chance the
 eradication succeeds (with its interval), the empty surveys that would confirm it, and reinvasion.
 
 Read only from ``eradication.csv`` (:mod:`impact.risk.eradication`) and the manifest, rounded by
@@ -34,37 +34,43 @@ def _row(table: pd.DataFrame, option: str, species: str, h: float):
     return None if r.empty else r.iloc[0]
 
 
-def eradication_sentence(m: Manifest, table: pd.DataFrame, option: str, species: str) -> str | None:
-    """One option's eradication of one target in words (None when the option does not act on it)."""
-    h = reading_horizon(m, option, species)
-    row = None if h is None else _row(table, option, species, h)
-    if row is None:
+def _each(parts: list[str], labels: list[str]) -> str:
+    """``x under “a”`` for one option; ``x under “a”, y under “b”`` for several."""
+    return ", ".join(f"{x} under {lab}" for x, lab in zip(parts, labels)) if len(parts) > 1 else parts[0]
+
+
+def eradication_sentence(m: Manifest, table: pd.DataFrame, species: str) -> str | None:
+    """One surveyed target under every option acting on it, in one sentence (None when no option acts on it)."""
+    rows, labels = [], []
+    for o in m.options:
+        h = reading_horizon(m, o.name, species)
+        row = None if h is None else _row(table, o.name, species, h)
+        if row is not None:
+            rows.append((h, row, _row(table, o.name, species, max(m.horizons))))
+            labels.append(run_label(o.name))
+    if not rows:
         return None
-    unit, tu = str(row.unit), m.time_unit
-    p = float(row.chance_success)
-    text = (f"{run_label(option)} removes {species}: success {by_time(h, tu)} in {fmt_prob(p)} "
-            f"[{fmt_bare_prob(row.success_low)}, {fmt_bare_prob(row.success_high)}] of plausible futures "
-            f"({likelihood_term(p)}; success: below {fmt_num(row.gone_below)} {unit} and not founded again from "
-            "outside).")
-    k, survey = float(row.surveys_needed), str(row.survey)
-    level = fmt_prob(row.confidence)
-    if math.isnan(k):
-        text += (f" No run of empty {survey}s (up to 1000) from {tu} {fmt_num(h)} would declare it gone at {level} "
-                 "confidence: too few plausible futures end with it gone.")
-    else:
-        text += (f" Declaring it gone at {level} confidence takes {fmt_num(k)} empty {survey}"
-                 f"{'' if k == 1 else 's'} in a row from {tu} {fmt_num(h)} (detection {fmt_num(row.detection_mean)} "
-                 "per survey on average, itself uncertain).")
-    last = _row(table, option, species, max(m.horizons))
-    if last is not None and not math.isnan(float(last.chance_reinvaded)):
-        text += f" Once gone, reinvasion {by_time(last.horizon, tu)}: {fmt_prob(last.chance_reinvaded)}."
+    tu, first = m.time_unit, rows[0][1]
+    success = _each([f"{by_time(h, tu)} {fmt_prob(r.chance_success)} [{fmt_bare_prob(r.success_low)}, "
+                     f"{fmt_bare_prob(r.success_high)}] ({likelihood_term(float(r.chance_success))})"
+                     for h, r, _ in rows], labels)
+    surveys = _each([f"{fmt_num(r.surveys_needed)} from {tu} {fmt_num(h)}" if not math.isnan(float(r.surveys_needed))
+                     else "none up to 1000" for h, r, _ in rows], labels)
+    text = (f"Eradication of {species} (success: below {fmt_num(first.gone_below)} {first.unit} and not founded "
+            f"again from outside): chance of success {success}. Empty {first.survey}s in a row needed to declare "
+            f"it gone at {fmt_prob(first.confidence)} confidence: {surveys} (one detects {species} with chance "
+            f"{fmt_num(first.detection_mean)} on average, itself uncertain).")
+    back = [(last, lab) for (_, _, last), lab in zip(rows, labels)
+            if last is not None and not math.isnan(float(last.chance_reinvaded))]
+    if back:
+        text += (f" Once gone, reinvasion {by_time(back[0][0].horizon, tu)}: "
+                 + _each([fmt_prob(b.chance_reinvaded) for b, _ in back], [lab for _, lab in back]) + ".")
     return text
 
 
 def eradication_sentences(m: Manifest, table: pd.DataFrame | None) -> tuple[str, ...]:
-    """Every surveyed target under every option acting on it, in option then table order."""
+    """One sentence per surveyed target some option acts on, in table order."""
     if table is None or table.empty:
         return ()
-    species = list(dict.fromkeys(table.species))
-    out = (eradication_sentence(m, table, o.name, s) for o in m.options for s in species)
-    return tuple(x for x in out if x)
+    said = (eradication_sentence(m, table, species) for species in dict.fromkeys(table.species))
+    return tuple(x for x in said if x)
