@@ -15,7 +15,6 @@ import pandas as pd
 
 from impact.dossier.bottomline import run_label
 from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_num, fmt_prob
-from impact.dossier.likelihood import likelihood_term
 from impact.store.manifest import Manifest
 
 
@@ -51,20 +50,23 @@ def eradication_sentence(m: Manifest, table: pd.DataFrame, species: str) -> str 
     if not rows:
         return None
     tu, first = m.time_unit, rows[0][1]
-    success = _each([f"{by_time(h, tu)} {fmt_prob(r.chance_success)} [{fmt_bare_prob(r.success_low)}, "
-                     f"{fmt_bare_prob(r.success_high)}] ({likelihood_term(float(r.chance_success))})"
-                     for h, r, _ in rows], labels)
-    surveys = _each([f"{fmt_num(r.surveys_needed)} from {tu} {fmt_num(h)}" if not math.isnan(float(r.surveys_needed))
-                     else "none up to 1000" for h, r, _ in rows], labels)
-    text = (f"Eradication of {species} (success: below {fmt_num(first.gone_below)} {first.unit} and not founded "
-            f"again from outside): chance of success {success}. Empty {first.survey}s in a row needed to declare "
-            f"it gone at {fmt_prob(first.confidence)} confidence: {surveys} (one detects {species} with chance "
-            f"{fmt_num(first.detection_mean)} on average, itself uncertain).")
+    one = len({h for h, _, _ in rows}) == 1  # one horizon for every option: said once
+    at = (lambda h: "") if one else (lambda h: f"{by_time(h, tu)} ")
+    success = _each([f"{at(h)}{fmt_prob(r.chance_success)} [{fmt_bare_prob(r.success_low)}, "
+                     f"{fmt_bare_prob(r.success_high)}]" for h, r, _ in rows], labels)
+    surveys = _each([(f"{fmt_num(r.surveys_needed)}" + ("" if one else f" from {tu} {fmt_num(h)}"))
+                     if not math.isnan(float(r.surveys_needed)) else "none up to 1000" for h, r, _ in rows], labels)
+    h0 = rows[0][0]
+    text = (f"Eradication of {species} (gone below {fmt_num(first.gone_below)} {first.unit}, not founded again from "
+            f"outside): success{' ' + by_time(h0, tu) if one else ''} {success}; empty {first.survey}s in a row"
+            f"{f' from {tu} {fmt_num(h0)}' if one else ''} to declare it gone at {fmt_prob(first.confidence)} "
+            f"confidence: {surveys} (detection {fmt_num(first.detection_mean)} per survey on average, uncertain)")
     back = [(last, lab) for (_, _, last), lab in zip(rows, labels)
             if last is not None and not math.isnan(float(last.chance_reinvaded))]
     if back:
-        text += (f" Once gone, reinvasion {by_time(back[0][0].horizon, tu)}: "
-                 + _each([fmt_prob(b.chance_reinvaded) for b, _ in back], [lab for _, lab in back]) + ".")
+        text += (f"; once gone, reinvasion {by_time(back[0][0].horizon, tu)}: "
+                 + _each([fmt_prob(b.chance_reinvaded) for b, _ in back], [lab for _, lab in back]))
+    text += "."
     return text
 
 

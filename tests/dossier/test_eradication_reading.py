@@ -39,7 +39,7 @@ def test_page_one_states_the_table_numbers(folder):
     (sentence,) = eradication_sentences(m, table)  # one surveyed species; doing nothing is not named
     row = table.iloc[0]
     assert f"below {fmt_num(row.gone_below)} {row.unit}" in sentence
-    assert f"chance {fmt_num(table.detection_mean.iloc[0])} on average" in sentence
+    assert f"detection {fmt_num(table.detection_mean.iloc[0])} per survey on average" in sentence
     for option in ("harvest", "short"):
         h = reading_horizon(m, option, "newt")
         # the first risk horizon at or after the option's last intervention ends (40 and 12 -> 40, 20)
