@@ -60,7 +60,7 @@ def eradication_sentence(m: Manifest, table: pd.DataFrame, species: str) -> str 
     text = (f"Eradication of {species} (gone below {fmt_num(first.gone_below)} {first.unit}, not founded again from "
             f"outside): success{' ' + by_time(h0, tu) if one else ''} {success}; empty {first.survey}s in a row"
             f"{f' from {tu} {fmt_num(h0)}' if one else ''} to declare it gone at {fmt_prob(first.confidence)} "
-            f"confidence: {surveys} (detection {fmt_num(first.detection_mean)} per survey on average, uncertain)")
+            f"confidence: {surveys} (detection {fmt_num(first.detection_mean)} per survey, mean over members)")
     back = [(last, lab) for (_, _, last), lab in zip(rows, labels)
             if last is not None and not math.isnan(float(last.chance_reinvaded))]
     if back:
