@@ -33,13 +33,20 @@ def _plain(html: str) -> str:
     return " ".join(re.sub(r"<[^>]+>", "", html).replace("&nbsp;", "\u00a0").split())
 
 
+def test_the_new_tables_are_in_the_data_dictionary(folder):
+    from impact.store.dictionary import check_folder
+
+    assert (folder / "eradication.csv").is_file() and (folder / "eradication_members.csv").is_file()
+    assert check_folder(folder) == []
+
+
 def test_page_one_states_the_table_numbers(folder):
     res = load_results(folder)
     m, table = res.manifest, res.eradication
     (sentence,) = eradication_sentences(m, table)  # one surveyed species; doing nothing is not named
     row = table.iloc[0]
     assert f"below {fmt_num(row.gone_below)} {row.unit}" in sentence
-    assert f"detection {fmt_num(table.detection_mean.iloc[0])} per survey on average" in sentence
+    assert f"detection {fmt_num(table.detection_mean.iloc[0])} per survey, mean over members" in sentence
     for option in ("harvest", "short"):
         h = reading_horizon(m, option, "newt")
         # the first risk horizon at or after the option's last intervention ends (40 and 12 -> 40, 20)
