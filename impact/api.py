@@ -35,6 +35,7 @@ import pandas as pd
 
 from impact.version import __version__
 from impact.ensemble.draws import Ensemble
+from impact.risk.eradication import eradication_tables
 from impact.risk.runs import assess_members, bands_table, failure_counts, members_table, risk_table
 from impact.risk.bystructure import member_structures, structure_tables
 from impact.ensemble.calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
@@ -557,7 +558,8 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         "priors.csv": priors_table(case),
         **({k: v for k, v in ensemble.tables.items() if k.startswith("calibration/")} if ensemble is not None
            else calibration_tables(case, ens, cal, seed)),
-        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None)}
+        **structure_tables(case, runs, ens.unit, cal.generations if cal is not None else None),
+        **eradication_tables(case, ens.values, ens.draws, runs)}
     clock.lap("tables")
     calibration = cal.record() if ensemble is None else {
         **ensemble.manifest["calibration"], "reused_from": ensemble.source or "this process"}
@@ -583,6 +585,7 @@ def summary_text(case: Case, folder: Path) -> str:
     from impact.dossier import hinges_text, load_results
     from impact.dossier.bottomline import bottom_line, bottom_line_text
     from impact.dossier.studyline import best_study_sentence
+    from impact.dossier.eradication_reading import eradication_sentences
     from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_change, fmt_num, fmt_prob
     from impact.dossier.verdict import reading, reading_text, thin_run
     from impact.dossier.structures_verdict import structure_reading, structure_text
@@ -636,6 +639,9 @@ def summary_text(case: Case, folder: Path) -> str:
     hinges = hinges_text(res)
     if hinges:
         L += ["what the decision hinges on (plausible members):", hinges]
+    erad = eradication_sentences(res.manifest, res.eradication) if not thin_run(res.manifest)[0] else ()
+    if erad:
+        L += ["eradication (the same as page 1):", *(f"  {x}" for x in erad)]
     L.append("CAUTION: " + CAUTION)
     if not thin_run(res.manifest)[0]:  # the summary ends with the bottom line that opens page 1
         L.append(bottom_line_text(bottom_line(res.manifest, res.objectives, res.comparisons)))

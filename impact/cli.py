@@ -98,6 +98,8 @@ def describe_case(case: Case) -> str:
             bits.append(f"births × (1 + {s.breeding_amplitude}·cos), peaking in {case.seasons.part_name} {s.breeding_peak:g}")
         if s.matures_into is not None:
             bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
+        if s.allee != "none":
+            bits.append(f"{s.allee} Allee effect (threshold {s.allee_threshold})")
         bits.append(f"initial={s.initial}")
         if not s.present:
             bits.append("absent today")
@@ -179,6 +181,10 @@ def describe_case(case: Case) -> str:
         what = f" ({iv.sterile_density} sterile × competitiveness {iv.competitiveness})" if iv.kind == "sterile-release" else ""
         L.append(f"  {iv.name}: {iv.kind} of {iv.species}{what} {when}")
     L.append("options: " + "; ".join(f"{o.name} = {' + '.join(o.interventions)}" for o in case.options))
+    for v in case.surveillance:
+        L.append(f"surveillance of {v.species}: gone below {v.gone_below:g} {case.species_by_name(v.species).unit}; "
+                 f"one {v.survey} detects it with chance {v.detection}; declared at {v.confidence:.0%} confidence; "
+                 f"arrivals from outside {v.arrival_rate}/{case.time_unit}, each founding with chance {v.establishment}")
     L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
              f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")
     L.append(f"objectives ({len(case.objectives)}):" if case.objectives else

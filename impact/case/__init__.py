@@ -18,6 +18,7 @@ from impact.case.effects import check_effects
 from impact.case.individuals import read_individuals
 from impact.case.structures import read_web
 from impact.case.studies import read_outcome_values, read_study, read_weighing
+from impact.case.surveillance import Surveillance, read_surveillance
 from impact.case.tables import (read_calibration, read_change_limit, read_dynamics, read_group, read_monitoring,
     read_objective)
 from impact.case.types import (ARRIVAL_KINDS, CARRION, CalibrationTable, Carrion, Case, ChangeLimit, Competition,
@@ -34,7 +35,7 @@ __all__ = ["ARRIVAL_KINDS", "CARRION", "CalibrationTable", "Carrion", "Case", "C
            "INTERACTION_KINDS", "INTERVENTION_KINDS", "Intervention", "KIND_ALIASES", "MEASURES",
            "MonitoringSeries", "Mutualism", "OTHER_FOOD", "Objective", "Observation", "Option", "Parameter",
            "ParameterGroup", "Quantity", "REQUIREMENTS", "RESPONSES", "ROLES", "Risk", "SAMPLERS",
-           "SERIES_COLUMNS", "SERIES_KINDS", "SPAN_KINDS", "Seasons", "Species", "schedule_text", "load_case",
+           "SERIES_COLUMNS", "SERIES_KINDS", "SPAN_KINDS", "Seasons", "Species", "Surveillance", "schedule_text", "load_case",
            "parse_case", "unused_parameters"]
 
 
@@ -71,7 +72,7 @@ def unused_parameters(case: Case) -> tuple[str, ...]:
     """
     used = set()
     for item in (*case.species, *case.feeding, *case.competition, *case.mutualism, *case.interventions,
-                 *((case.carrion,) if case.carrion is not None else ()), *case.monitoring):
+                 *((case.carrion,) if case.carrion is not None else ()), *case.monitoring, *case.surveillance):
         for f in item.__dataclass_fields__.values():
             v = getattr(item, f.name)
             if "Quantity" in str(f.type) and isinstance(v, str):
@@ -118,6 +119,9 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     outcome_values = read_outcome_values(r, top.get("outcome_values", None, "any"), {o.name for o in objectives}, studies)
     weighing = read_weighing(r, top.get("weighing", None, "any"), {o.name for o in options}, {o.name for o in objectives})
     individuals = read_individuals(r, top.get("individuals", None, "any"), species)
+    surveillance = tuple(read_surveillance(r, i, raw, species, risk.confidence)
+                         for i, raw in enumerate(top.get("surveillance", [], "list")))
+    unique(r, surveillance, "species", "surveillance")
     top.done()
     check_references(r, parameters)
     return Case(
@@ -127,4 +131,5 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
         dynamics=dynamics, seasons=seasons, monitoring=monitoring, change_limits=limits, calibration=calibration,
         structures=structures,
         studies=studies, outcome_values=outcome_values, weighing=weighing, individuals=individuals,
+        surveillance=surveillance,
     )

@@ -8,7 +8,7 @@ import math
 from pathlib import Path
 from typing import Any
 
-from impact.case.types import (ARRIVAL_KINDS, CARRION, DEFAULT_MATERIAL_CHANGE, DEFAULT_MATERIAL_RISK,
+from impact.case.types import (ALLEE_FORMS, ARRIVAL_KINDS, CARRION, DEFAULT_MATERIAL_CHANGE, DEFAULT_MATERIAL_RISK,
     DEFAULT_MIN_MEMBERS, DEPENDENCES, GROWTH_FORMS, INTERACTION_KINDS, INTERVENTION_KINDS, KIND_ALIASES,
     OTHER_FOOD, RESPONSES, ROLES, SPAN_KINDS, Carrion, Competition, Feeding, Intervention, Mutualism, Observation,
     Option, Parameter, Quantity, Risk, Seasons, Species)
@@ -221,9 +221,33 @@ def read_one_species(r: Reader, i: int, raw: Any, seasons: Seasons | None) -> Sp
             r.fail(f"species.{name}.growth", "a juvenile stage (matures_into) does not breed: growth must be "
                                              "\"none\"; its numbers come from the births of the stage it matures into")
         maturation = t.quantity("maturation_rate", low=0, low_open=True)
+    allee, threshold = read_allee(r, t, name, growth, k, adult)
     t.done()
     return Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
-                   role, material, crowding, breeding, outside, amplitude, peak, adult, maturation)
+                   role, material, crowding, breeding, outside, amplitude, peak, adult, maturation, allee, threshold)
+
+
+def read_allee(r: Reader, t: Table, name: str, growth: str, k: Quantity | None, adult: str | None):
+    """A species' ``allee`` form and ``allee_threshold`` (θ of mate finding, A of a strong Allee effect)."""
+    base = f"species.{name}"
+    allee = r.choice(f"{base}.allee", t.get("allee", "none", "str"), ALLEE_FORMS)
+    if allee == "none":
+        if "allee_threshold" in t.data:
+            r.fail(f"{base}.allee_threshold", "is given without an Allee effect; set allee = \"mate-finding\" or "
+                                              "\"strong\", or remove it")
+        return allee, None
+    if adult is not None:
+        r.fail(f"{base}.allee", "a juvenile stage (matures_into) does not breed; declare the Allee effect on the "
+                                "adult stage")
+    if allee == "strong" and growth != "logistic":
+        r.fail(f"{base}.allee", "a strong Allee effect multiplies logistic growth r·N·(1 − N/K) by (N/A − 1); "
+                                f"{name!r} has growth {growth!r} (use growth = \"logistic\", or allee = "
+                                "\"mate-finding\", which acts on any births)")
+    threshold = t.quantity("allee_threshold", low=0, low_open=True)
+    if allee == "strong" and isinstance(threshold, float) and isinstance(k, float) and threshold >= k:
+        r.fail(f"{base}.allee_threshold", f"must lie below the carrying capacity ({k:g}): a strong Allee threshold "
+                                          f"A ≥ K leaves no stable population, got {threshold:g}")
+    return allee, threshold
 
 
 def read_species(r: Reader, raw: list, seasons: Seasons | None) -> tuple[Species, ...]:
@@ -600,4 +624,7 @@ def check_stages(r: Reader, species: tuple[Species, ...]):
         if s.matures_into in adults:
             r.fail(f, f"{s.matures_into!r} already has a juvenile stage; one per adult")
         adults.add(s.matures_into)
-
+        if by_name[s.matures_into].allee == "strong":
+            r.fail(f"species.{s.matures_into}.allee", "a strong Allee effect multiplies a species' own logistic "
+                                                      "growth; an adult with a juvenile stage gains by maturation "
+                                                      "instead (use allee = \"mate-finding\" on it)")

@@ -15,6 +15,9 @@ from impact.case.priors import Fixed, Prior
 Quantity = float | str  # a number, or the name of a parameter in [parameters]
 
 GROWTH_FORMS = ("logistic", "exponential", "none")
+# Allee effects in growth (impact.model.terms.mate_finding, strong_allee): births × N/(N + θ), or
+# logistic growth × (N/A − 1)
+ALLEE_FORMS = ("none", "mate-finding", "strong")
 RESPONSES = ("holling1", "holling2", "holling3", "beddington-deangelis")
 INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism", "alternative-food")
 OTHER_FOOD = "'s other food"  # a consumer's constant alternative food is named CONSUMER + this
@@ -88,6 +91,8 @@ class Species:
     breeding_peak: float | None = None  # the season part where a sinusoidal breeding season peaks
     matures_into: str | None = None  # this species is the juvenile stage of that one
     maturation_rate: Quantity = 0.0
+    allee: str = "none"  # an Allee effect in growth: one of ALLEE_FORMS
+    allee_threshold: Quantity | None = None  # θ (mate finding) or A (strong), in the species' unit
 
 
 @dataclass(frozen=True)
@@ -323,6 +328,7 @@ class Case:
     outcome_values: object = None  # impact.case.studies.OutcomeValues or None
     weighing: object = None  # impact.case.studies.Weighing or None
     individuals: tuple = ()  # species counted in individuals at low numbers (impact.case.individuals)
+    surveillance: tuple = ()  # impact.case.surveillance.Surveillance, one per species at most
 
     @property
     def species_names(self) -> tuple[str, ...]:

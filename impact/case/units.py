@@ -13,7 +13,7 @@ from impact.case import Case, Intervention, Mutualism, Species
 
 # Dimension of every numeric field with respect to time: a rate (per time unit), a duration, or
 # neither. Used to compare the time word in a parameter's declared unit with the case's time unit.
-PER_TIME_FIELDS = ("growth_rate", "mortality", "rate", "decay_rate", "maturation_rate", "attack_rate",
+PER_TIME_FIELDS = ("growth_rate", "mortality", "rate", "decay_rate", "maturation_rate", "attack_rate", "arrival_rate",
                    "crowding_mortality")
 TIME_FIELDS = ("handling_time",)
 _TIME_WORDS = {"second": "second", "minute": "minute", "hour": "hour", "day": "day", "week": "week",
@@ -36,7 +36,7 @@ def _plain(unit: str) -> str:
 
 def _abundance_of(case: Case, item, name: str) -> "Species | None":
     """The species whose abundance unit a field is in (None for fields of other dimensions)."""
-    if isinstance(item, Species) and name in ("carrying_capacity", "initial"):
+    if isinstance(item, Species) and name in ("carrying_capacity", "initial", "allee_threshold"):
         return item
     if isinstance(item, Mutualism) and name == "half_saturation":
         return case.species_by_name(item.partner)
@@ -61,6 +61,7 @@ def unit_warnings(case: Case) -> tuple[str, ...]:
     items += [(f"interactions (competition on {c.species})", c) for c in case.competition]
     items += [(f"interactions (mutualism of {u.beneficiary})", u) for u in case.mutualism]
     items += [(f"interventions.{iv.name}", iv) for iv in case.interventions]
+    items += [(f"surveillance.{v.species}", v) for v in case.surveillance]
     if case.carrion is not None:
         items.append(("carrion", case.carrion))
     out, seen = [], set()

@@ -15,6 +15,7 @@ from impact.dossier.formatting import fmt_num, fmt_prob
 from impact.store.outfolder import INVENTORY, REPORT_HASH
 from impact.store.results import Results, load_results, write_file_atomic
 from impact.dossier.bottomline import STATUS_WORDS, run_label
+from impact.dossier.eradication_reading import eradication_sentences
 from impact.dossier.verdict import horizon_rule_text, reading, thin_run
 from impact.dossier.webfigure import dot_available, food_web_svg, web_legend
 from impact.dossier.structures_verdict import structure_reading
@@ -66,6 +67,7 @@ def report_context(res: Results, assets: Assets) -> dict:
         horizons=[fmt_num(h) for h in m.horizons], kind_verbs={k: v[2] for k, v in KIND_STYLE.items()},
         command=" ".join(m.command), packages=m.packages,
         assumptions=m.assumptions, plausibility=m.plausibility,
+        eradication=eradication_sentences(m, res.eradication),
     )
 
 

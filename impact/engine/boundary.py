@@ -96,22 +96,23 @@ def structure_sizes(st) -> dict[str, int]:
         raise bad(f"header {st[:HEADER].tolist()} is not a web's (species ≥ 1, counts ≥ 0, flags 0 or 1)")
     if n != S + carrion:
         raise bad(f"declares {n} state columns for {S} species and carrion flag {carrion}")
-    length = HEADER + 4 * L + 2 * Cc + 2 * U + 2 * O + 4 * S
+    length = HEADER + 4 * L + 2 * Cc + 2 * U + 2 * O + 5 * S
     if st.shape[0] != length:
         raise bad(f"has {st.shape[0]} entries; its header calls for {length}")
     at = HEADER
     parts = {}
     for name, size in (("consumer", L), ("resource", L), ("power", L), ("type1", L), ("pairs", 2 * (Cc + U + O)),
-                       ("interference", S), ("sterile", S), ("adult", S), ("wave", S)):
+                       ("interference", S), ("sterile", S), ("adult", S), ("wave", S), ("allee", S)):
         parts[name] = st[at:at + size]
         at += size
     ranges = {"consumer": (0, S - 1), "resource": (-1, n - 1), "power": (1, 2), "type1": (0, 1),
-              "pairs": (0, S - 1), "interference": (0, 1), "sterile": (0, 1), "adult": (-1, S - 1), "wave": (0, 1)}
+              "pairs": (0, S - 1), "interference": (0, 1), "sterile": (0, 1), "adult": (-1, S - 1), "wave": (0, 1),
+              "allee": (0, 2)}
     for name, (lo, hi) in ranges.items():
         values = parts[name]
         if values.size and (values.min() < lo or values.max() > hi):
             raise bad(f"{name} entries must lie in [{lo}, {hi}] for this web, found {values.min()}..{values.max()}")
-    return {"S": S, "n": n, "L": L, "P": 12 * S + 4 * L + Cc + 2 * U + O + 1}
+    return {"S": S, "n": n, "L": L, "P": 12 * S + 4 * L + Cc + 2 * U + O + 1 + S}
 
 
 def check_kernel_arrays(entry: str, st, **arrays) -> None:

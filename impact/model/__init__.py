@@ -67,6 +67,7 @@ class FoodWeb:
     sterile: tuple[int, ...] = ()  # species that sterile releases may act on
     stages: tuple[tuple[int, int], ...] = ()  # (juvenile, adult): the adult's births are born as juveniles
     wave: tuple[int, ...] = ()  # species whose births follow a sinusoidal breeding season
+    allee: tuple[tuple[int, str], ...] = ()  # (species, kind): an Allee effect (impact.model.terms.ALLEE_KINDS)
 
     @property
     def n_species(self) -> int:
@@ -109,6 +110,9 @@ class WebParams:
     amp, omega, phase : ndarray (M, S)
         Amplitude A, angular frequency ω = 2π/season length and phase ω·t_peak of a sinusoidal
         breeding season (births × (1 + A cos(ω t − ω t_peak))); zeros elsewhere.
+    allee : ndarray (M, S)
+        Allee threshold of each species with an Allee effect (θ of mate finding, A of a strong
+        Allee effect; zeros elsewhere).
     """
 
     r: np.ndarray
@@ -131,10 +135,11 @@ class WebParams:
     amp: np.ndarray | None = None
     omega: np.ndarray | None = None
     phase: np.ndarray | None = None
+    allee: np.ndarray | None = None
 
     def __post_init__(self):
         for name, fill in (("quad", 0.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
-                           ("phase", 0.0)):
+                           ("phase", 0.0), ("allee", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
         if self.obH is None:
@@ -189,6 +194,7 @@ def build_web(case: Case) -> FoodWeb:
         sterile=tuple(sterile),
         stages=tuple((col[s.name], col[s.matures_into]) for s in case.species if s.matures_into is not None),
         wave=tuple(i for i, s in enumerate(case.species) if s.breeding_amplitude is not None),
+        allee=tuple((i, s.allee) for i, s in enumerate(case.species) if s.allee != "none"),
     )
 
 
@@ -248,6 +254,7 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         omega=col([omega if s.breeding_amplitude is not None else 0.0 for s in sp]),
         phase=col([omega * case.seasons.peak_time(s.breeding_peak) if s.breeding_amplitude is not None else 0.0
                    for s in sp]),
+        allee=col([s.allee_threshold if s.allee != "none" else 0.0 for s in sp]),
     )
 
 
@@ -282,6 +289,8 @@ class SegmentCoefficients:
     a, ah, e : ndarray (M, L)
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
+    allee : ndarray (M, S)
+        Allee threshold (θ or A; 0 without an Allee effect), appended after decay.
     """
 
     scale: np.ndarray
@@ -305,6 +314,7 @@ class SegmentCoefficients:
     H: np.ndarray
     obH: np.ndarray
     decay: np.ndarray
+    allee: np.ndarray
 
 
 # The coefficients a segment's controls change; the others depend on the parameters alone, so a
@@ -330,7 +340,7 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         **controlled_coefficients(web, p, c), rpos=np.maximum(p.r, 0.0), quad=p.quad, gamma=p.gamma,
         mat=p.mat, omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
-        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay)
+        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay, allee=p.allee)
 
 
 def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, out: np.ndarray | None = None
@@ -341,7 +351,7 @@ def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, o
     ``out`` (m, P), optional, receives them (a caller packing many segments fills one array).
     """
     fields = [getattr(co, f) for f in SegmentCoefficients.__dataclass_fields__]
-    fields[-1] = fields[-1][:, None]  # decay is one number per member
+    fields = [f[:, None] if f.ndim == 1 else f for f in fields]  # decay is one number per member
     if rows is not None:
         fields = [np.take(f, rows, axis=0) for f in fields]
     if out is None:
@@ -492,6 +502,13 @@ def equations(case: Case) -> list[str]:
                      f"(t_peak the middle of the peak {case.seasons.part_name})")
     if sterile:
         lines.append("S = sterile density × competitiveness while a sterile release acts (Knipling 1955)")
+    for s in case.species:
+        if s.allee == "mate-finding":
+            lines.append(f"mate finding: births of {s.name} × {s.name}/({s.name} + θ), θ = {s.allee_threshold} "
+                         "(Boukal & Berec 2002)")
+        elif s.allee == "strong":
+            lines.append(f"strong Allee effect: the logistic growth of {s.name} × ({s.name}/A − 1), "
+                         f"A = {s.allee_threshold} (Courchamp, Berec & Gascoigne 2008)")
     if juvenile:
         lines.append("life stages: an adult's births are born into its juvenile stage, which matures into the "
                      "adult at rate μ (de Roos & Persson 2013)")

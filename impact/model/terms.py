@@ -29,10 +29,12 @@ The structure table (int64, :func:`pack_structure`) and the coefficient rows are
 here (:class:`Structure`): header entries by the named positions ``HEAD_*``, then per feeding link
 consumer, resource (−1: a constant alternative food), power and type-I flag (L each), competition
 pairs (2·Cc), facultative mutualism pairs (2·U), obligate mutualism pairs (2·O), and per species
-an interference flag, a sterile-release flag, the adult a juvenile matures into (−1: none) and a
-sinusoidal-breeding flag (S each). Coefficient rows: the per-species blocks of
+an interference flag, a sterile-release flag, the adult a juvenile matures into (−1: none), a
+sinusoidal-breeding flag and an Allee-effect kind (:data:`ALLEE_KINDS`; S each, appended last so the
+entries before it keep their places). Coefficient rows: the per-species blocks of
 :data:`SPECIES_COEFFICIENTS` (S each), the per-link blocks of :data:`LINK_COEFFICIENTS` (L each),
-then alpha (Cc), beta, H (U each), obH (O), decay (1).
+then alpha (Cc), beta, H (U each), obH (O), decay (1), then the appended per-species blocks of
+:data:`APPENDED_COEFFICIENTS` (S each: the Allee threshold).
 """
 
 from __future__ import annotations
@@ -52,6 +54,10 @@ SPECIES_COEFFICIENTS = ("scale", "rpos", "lin", "dens", "inflow", "quad", "gamma
                         "omega", "phase")
 LINK_COEFFICIENTS = ("a", "ah", "e", "food")
 RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deangelis": 1}
+# per-species blocks appended after decay (the columns before them keep their places)
+APPENDED_COEFFICIENTS = ("allee",)
+# the Allee-effect kind of a species in the structure table: its code is the position here
+ALLEE_KINDS = ("none", "mate-finding", "strong")
 
 
 # --------------------------------------------------------------------------------------------
@@ -72,6 +78,8 @@ def pack_structure(web) -> np.ndarray:
     per_species = [int(i in web.interference) for i in range(S)] + [int(i in web.sterile) for i in range(S)]
     adult = dict(web.stages)
     per_species += [adult.get(i, -1) for i in range(S)] + [int(i in web.wave) for i in range(S)]
+    allee = dict(web.allee)
+    per_species += [ALLEE_KINDS.index(allee.get(i, "none")) for i in range(S)]
     return np.array(head + cols + pairs + per_species, dtype=np.int64)
 
 
@@ -90,6 +98,8 @@ class Structure:
     interfere, sterile, wave : tuple of bool (S each)
     adult : tuple of int (S,)
         The adult stage a juvenile matures into, −1 for none.
+    allee : tuple of int (S,)
+        Allee-effect kind of each species, an index into :data:`ALLEE_KINDS` (0: none).
     offset : dict of str -> int
         First column of each coefficient block in a member's row.
     """
@@ -114,6 +124,7 @@ class Structure:
     sterile: tuple
     adult: tuple
     wave: tuple
+    allee: tuple
     offset: dict = field(compare=False)
 
     @staticmethod
@@ -134,16 +145,17 @@ class Structure:
 
         consumer, resource, power, type1 = take(L), take(L), take(L), take(L)
         competition, mutualism, obligate = pairs(Cc), pairs(U), pairs(O)
-        interfere, sterile, adult, wave = take(S), take(S), take(S), take(S)
+        interfere, sterile, adult, wave, allee = take(S), take(S), take(S), take(S), take(S)
         offset, col = {}, 0
         for name, width in ([(b, S) for b in SPECIES_COEFFICIENTS] + [(b, L) for b in LINK_COEFFICIENTS]
-                            + [("alpha", Cc), ("beta", U), ("H", U), ("obH", O), ("decay", 1)]):
+                            + [("alpha", Cc), ("beta", U), ("H", U), ("obH", O), ("decay", 1)]
+                            + [(b, S) for b in APPENDED_COEFFICIENTS]):
             offset[name] = col
             col += width
         offset["width"] = col
         return Structure(S, n, bool(carrion), L, Cc, U, bool(logistic), bool(crowding), O, consumer, resource,
                          power, type1, competition, mutualism, obligate, tuple(map(bool, interfere)),
-                         tuple(map(bool, sterile)), adult, tuple(map(bool, wave)), offset)
+                         tuple(map(bool, sterile)), adult, tuple(map(bool, wave)), allee, offset)
 
     def col(self, block: str, k: int = 0) -> int:
         """Column of entry ``k`` of coefficient block ``block`` in a member's row."""
@@ -247,6 +259,13 @@ def sterile_release(s: Structure) -> list[Let]:
             for i in range(s.S) if s.sterile[i]]
 
 
+def mate_finding(s: Structure) -> list[Let]:
+    """Births × N/(N + θ): the chance of finding a mate at density N, θ the density at which half the
+    females are mated (Dennis 1989; the mate-finding Allee effect of Boukal & Berec 2002 and
+    Courchamp, Berec & Gascoigne 2008). A weak Allee effect alone; with mortality, a strong one."""
+    return [update(f"o{i}", "*", y(i) / (y(i) + c("allee", i))) for i in range(s.S) if s.allee[i] == 1]
+
+
 def life_stages(s: Structure) -> list[Let]:
     """An adult's births are born as juveniles, which mature into the adult at rate μ
     (de Roos & Persson 2013)."""
@@ -266,6 +285,13 @@ def logistic(s: Structure) -> list[Let]:
     body = [let(f"cr{i}", y(i)) for i in range(s.S)]
     body += [update(f"cr{i}", "+", c("alpha", k) * y(j)) for k, (i, j) in enumerate(s.competition)]
     return body + [update(f"o{i}", "-", Prod(c("dens", i), y(i), Var(f"cr{i}"))) for i in range(s.S)]
+
+
+def strong_allee(s: Structure) -> list[Let]:
+    """Logistic growth × (N/A − 1): r N (1 − N/K)(N/A − 1) alone, a strong Allee effect with
+    threshold A (equilibria 0 and K stable, A unstable; Lewis & Kareiva 1993, Courchamp, Berec &
+    Gascoigne 2008)."""
+    return [update(f"o{i}", "*", y(i) / c("allee", i) - 1.0) for i in range(s.S) if s.allee[i] == 2]
 
 
 def crowding(s: Structure) -> list[Let]:
@@ -297,8 +323,8 @@ def carrion(s: Structure) -> list[Let]:
     return body
 
 
-TERMS = (births, feeding, controls, sinusoidal_breeding, sterile_release, life_stages, logistic, crowding,
-         linear, eaten, carrion)
+TERMS = (births, feeding, controls, sinusoidal_breeding, sterile_release, mate_finding, life_stages, logistic,
+         strong_allee, crowding, linear, eaten, carrion)
 
 
 def terms_used(s: Structure) -> tuple[str, ...]:

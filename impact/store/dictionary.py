@@ -52,6 +52,31 @@ DICTIONARY: dict[str, tuple[str, dict[str, str]]] = {
         "species": "species", "minimum": "lowest abundance over the period", "final": "abundance at the horizon",
         "mean": "time-mean abundance over the period", "failed": "True when the member's run failed numerically",
         "failure": "why it failed (ok when it did not)"}),
+    "eradication.csv": ("Cases with [[surveillance]]: whether each surveyed target is gone under doing nothing and "
+                        "every option, per risk horizon, the chance it comes back, and the empty surveys needed to "
+                        "declare it gone (impact.risk.eradication).", {
+        "option": "baseline or an option's name", "species": "the surveyed species", "horizon": "risk horizon",
+        "gone_below": "abundance below which the species counts as gone (the case's gone_below)",
+        "unit": "the species' unit", "chance_gone": "share of members whose running minimum fell below gone_below by "
+        "the horizon", "gone_low": "lower limit of chance_gone", "gone_high": "upper limit of chance_gone",
+        "chance_reinvaded": "among members gone by the horizon, mean chance that an arrival founded a population "
+        "again since: 1 − exp(−arrival_rate × establishment × time since gone) (empty when none is gone)",
+        "chance_success": "mean over members of the chance the species is gone and not founded again by the horizon",
+        "success_low": "lower limit of chance_success", "success_high": "upper limit of chance_success",
+        "interval": _CI, "level": _LEVEL, "n": _N,
+        "detection_mean": "mean over members of the chance one survey detects the species when present",
+        "confidence": "chance of absence at which eradication may be declared (the case's confidence)",
+        "surveys_needed": "fewest empty surveys after which the chance of absence, Σ a/(Σ a + Σ (1 − a)(1 − p)^k) "
+        "over members (a = chance_success of the member, p its detection), reaches confidence; empty when out of "
+        "reach within 1000 surveys", "absence_reached": "the chance of absence after surveys_needed empty surveys",
+        "survey": "what one survey is (the case's survey)"}),
+    "eradication_members.csv": ("Cases with [[surveillance]]: per member, when each surveyed target went and its "
+                                "surveillance values.", {
+        "member": "draw index of the member", "option": "baseline or option", "species": "the surveyed species",
+        "gone_at": "first output time at which the abundance was below gone_below (the horizon when it dipped "
+        "between output times); empty when not gone within the assessment", "detection": "the member's chance one "
+        "survey detects the species", "arrival_rate": "the member's arrivals from outside per time unit",
+        "establishment": "the member's chance that one arrival founds a population"}),
     "parameters.csv": ("The kept members' parameter values.", {
         "member": "draw index of the member", "*": "one column per uncertain parameter, in its own unit; with "
         "structural doubts also structure (the web the member belongs to)"}),

@@ -147,7 +147,15 @@ def read_manifest(results: Path) -> Manifest:
 VALUED_TOGETHER = "valued objectives together"
 WEIGHTED = "weighted objectives"
 
+# columns of eradication.csv and eradication_members.csv (written by impact.risk.eradication; meanings in
+# impact.store.dictionary)
+ERADICATION_COLUMNS = ("option", "species", "horizon", "gone_below", "unit", "chance_gone", "gone_low", "gone_high",
+                       "chance_reinvaded", "chance_success", "success_low", "success_high", "interval", "level", "n",
+                       "detection_mean", "confidence", "surveys_needed", "absence_reached", "survey")
+ERADICATION_MEMBER_COLUMNS = ("member", "option", "species", "gone_at", "detection", "arrival_rate", "establishment")
 TABLES = {
+    "eradication.csv": (ERADICATION_COLUMNS, tuple(c for c in ERADICATION_COLUMNS
+                                                   if c not in ("option", "species", "unit", "interval", "survey"))),
     "calibration/posterior.csv": (("parameter", "prior_q05", "prior_q50", "prior_q95", "posterior_q05",
                                    "posterior_q50", "posterior_q95", "contraction", "informed"),
                                   ("prior_q05", "prior_q50", "prior_q95", "posterior_q05", "posterior_q50",
@@ -362,6 +370,7 @@ TEXT_COLUMNS = {
     "informed", "verdict", "intervention", "pressed", "press", "predicted", "structure", "choices", "doubt", "choice", "absent", "evidence",
     "study", "measures", "target", "error", "distinguishable", "ceiling_of", "cost_unit", "worth_cost", "declared",
     "options", "interventions", "benefit_basis", "method", "benefit_unit",
+    "survey",
 }
 
 @dataclass
@@ -385,6 +394,7 @@ class Results:
     press: pd.DataFrame | None = None  # press_signs.csv (None in folders written before it existed)
     press_record: dict | None = None  # press_signs.json
     structures: dict | None = None  # by file stem: weights, choices, risk, effects, ... (cases with structural doubts)
+    eradication: pd.DataFrame | None = None  # eradication.csv (cases with [[surveillance]] only)
 
 
 def read_table(path: Path) -> pd.DataFrame:
@@ -446,7 +456,8 @@ def load_results(path) -> Results:
                    read_table(path / "priors.csv"), read_table(path / "effects.csv"),
                    read_table(path / "objectives.csv"), read_table(path / "comparisons.csv"),
                    read_stage(path / "sensitivity"), read_stage(path / "dynamics"), read_stage(path / "calibration"),
-                   press, record, read_stage(path / "structures"))
+                   press, record, read_stage(path / "structures"),
+                   read_table(path / "eradication.csv") if (path / "eradication.csv").is_file() else None)
 
 
 def risk_row(risk: pd.DataFrame, option: str, species: str, metric: str, horizon: float):

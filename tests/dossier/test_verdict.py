@@ -125,6 +125,11 @@ def _printed_forms(folder: Path) -> set[str]:
                 forms.update({fmt_prob(v), fmt_bare_prob(v), fmt_points(v), fmt_bare_points(v), fmt_change(v)})
                 if col == "bound":  # a requirement's bound is a size, printed unsigned
                     forms.add(fmt_points(v).lstrip("+"))
+    if (folder / "eradication.csv").exists():  # a case with [[surveillance]] states its eradication on page 1
+        df = pd.read_csv(folder / "eradication.csv")
+        for v in df[["chance_success", "success_low", "success_high", "chance_reinvaded", "confidence"]].to_numpy(
+                float).ravel():
+            forms.update({fmt_prob(v), fmt_bare_prob(v)})
     for name in ("weights", "choices"):  # a case with structural doubts quotes the webs' weights too
         path = folder / "structures" / f"{name}.csv"
         if path.exists():

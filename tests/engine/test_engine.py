@@ -122,11 +122,13 @@ def test_a_run_continued_from_its_step_sizes_equals_the_run_in_one_call(tmp_path
 RESPONSES = ("holling1", "holling2", "holling3")
 
 
-def random_web(seed: int, members: int, new_terms: bool = False):
+def random_web(seed: int, members: int, new_terms: bool = False, allee: bool = False):
     """An invented web: 3-5 species, random feeding links (every response), carrion, competition
     and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
     ``new_terms`` adds an obligate partner, predator interference, crowding mortality, sterile
-    releases, an alternative food, a juvenile stage and a sinusoidal breeding season."""
+    releases, an alternative food, a juvenile stage and a sinusoidal breeding season; ``allee`` a
+    strong Allee effect on species 0 and mate finding on the last species (terms the table engine
+    does not know)."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -146,7 +148,8 @@ def random_web(seed: int, members: int, new_terms: bool = False):
                   obligate=((1, S - 1), (1, 2)) if new_terms else (), interference=(S - 1,) if new_terms else (),
                   crowding=new_terms, sterile=(0, 2) if new_terms else (),
                   stages=((2, 1),) if new_terms else (),  # species 2 is the juvenile stage of species 1
-                  wave=(0,) if new_terms else ())  # species 0 breeds in a sinusoidal season
+                  wave=(0,) if new_terms else (),  # species 0 breeds in a sinusoidal season
+                  allee=((0, "strong"), (S - 1, "mate-finding")) if allee else ())
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -164,13 +167,15 @@ def random_web(seed: int, members: int, new_terms: bool = False):
         p = replace(p, quad=u(0.0, 0.01, S), obH=u(1.0, 10.0, 2), gamma=u(0.0, 0.5, S), food=food,
                     mat=u(0.2, 2.0, S), amp=u(0.0, 1.0, S), omega=u(3.0, 7.0, S), phase=u(0.0, 6.0, S))
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
+    if allee:  # thresholds below most starting densities, so most members persist
+        p = replace(p, allee=np.concatenate([u(2.0, 10.0, 1), np.zeros((M, S - 2)), u(1.0, 10.0, 1)], axis=1))
     return web, p, c
 
 
-# each seed is a web structure of its own, compiled once per machine (about 3 s each)
-@pytest.mark.parametrize("seed, new_terms", [(seed, seed >= 6) for seed in range(9)])
-def test_random_webs_match_the_numpy_reference(seed, new_terms):
-    web, p, c = random_web(seed, 16, new_terms)
+# each seed is a web structure of its own, compiled once per machine (about 3 s each); seed 9 adds Allee terms
+@pytest.mark.parametrize("seed, new_terms, allee", [(seed, seed >= 6, seed == 9) for seed in range(10)])
+def test_random_webs_match_the_numpy_reference(seed, new_terms, allee):
+    web, p, c = random_web(seed, 16, new_terms, allee)
     kw = dict(rtol=1e-8, atol=1e-10)
     ref = web_segment(web, p, c, 0.0, 15.0, p.initial, engine="numpy", **kw)
     assert (~ref.failed).sum() >= 8  # most members run through, so the comparison means something
@@ -276,9 +281,9 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay (the
-        # kernel's column order, model.SegmentCoefficients)
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 9])\n"
+        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay, allee
+        # (the kernel's column order, model.SegmentCoefficients)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 10])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

@@ -38,7 +38,8 @@ def _web_with(tmp_path, response):
 def _web_with_new_terms(tmp_path, response):
     """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
     Beddington–DeAngelis fox with an alternative food, sterile releases on the hare and a juvenile
-    stage (leverets) of the hare; the moth breeds in a sinusoidal season."""
+    stage (leverets) of the hare; the moth breeds in a sinusoidal season and needs mates (a
+    mate-finding Allee effect), the flower has a strong Allee effect."""
     data = web_case()
     data["interactions"][0]["response"] = response
     data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
@@ -47,9 +48,10 @@ def _web_with_new_terms(tmp_path, response):
     data["seasons"] = {"length": 1.0, "parts": 12, "part_name": "month"}
     data["species"] += [
         {"name": "moth", "growth": "logistic", "growth_rate": 1.5, "carrying_capacity": 80.0, "initial": 30.0,
-         "quasi_extinction": 1.0, "crowding_mortality": 0.002, "breeding_season": {"amplitude": 0.7, "peak": 7}},
+         "quasi_extinction": 1.0, "crowding_mortality": 0.002, "breeding_season": {"amplitude": 0.7, "peak": 7},
+         "allee": "mate-finding", "allee_threshold": 10.0},
         {"name": "flower", "growth": "logistic", "growth_rate": 0.8, "carrying_capacity": 300.0, "mortality": 0.1,
-         "initial": 100.0, "quasi_extinction": 1.0}]
+         "initial": 100.0, "quasi_extinction": 1.0, "allee": "strong", "allee_threshold": 40.0}]
     data["interactions"] += [
         {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "moth", "half_saturation": 20.0},
         {"kind": "mutualism", "dependence": "obligate", "beneficiary": "flower", "partner": "beetle", "half_saturation": 3.0},
@@ -241,10 +243,10 @@ def test_every_terms_derivative_equals_the_complex_step_derivative(tmp_path, res
 def test_coefficient_rows_follow_the_declared_layout():
     """The blocks of SegmentCoefficients are the blocks the declared terms read, in the same order."""
     from impact.model import SegmentCoefficients
-    from impact.model.terms import LINK_COEFFICIENTS, SPECIES_COEFFICIENTS
+    from impact.model.terms import APPENDED_COEFFICIENTS, LINK_COEFFICIENTS, SPECIES_COEFFICIENTS
 
     assert tuple(SegmentCoefficients.__dataclass_fields__) == (
-        SPECIES_COEFFICIENTS + LINK_COEFFICIENTS + ("alpha", "beta", "H", "obH", "decay"))
+        SPECIES_COEFFICIENTS + LINK_COEFFICIENTS + ("alpha", "beta", "H", "obH", "decay") + APPENDED_COEFFICIENTS)
 
 
 def test_a_new_term_is_one_declaration(tmp_path, monkeypatch):
