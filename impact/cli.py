@@ -185,7 +185,7 @@ def describe_case(case: Case) -> str:
         L.append(f"surveillance of {v.species}: gone below {v.gone_below:g} {case.species_by_name(v.species).unit}; "
                  f"one {v.survey} detects it with chance {v.detection}; declared at {v.confidence:.0%} confidence; "
                  f"arrivals from outside {v.arrival_rate}/{case.time_unit}, each founding with chance {v.establishment}")
-    L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.horizons)} {case.time_unit}; "
+    L.append(f"risk horizons: {', '.join(f'{h:g}' for h in case.risk.times)} {case.time_unit}; "
              f"recovery to {case.risk.recovery_fraction:.0%} of baseline; {case.risk.confidence:.0%} intervals")
     L.append(f"objectives ({len(case.objectives)}):" if case.objectives else
              "objectives: none declared (the verdict reports effects on every species, with no objective judged)")

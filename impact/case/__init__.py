@@ -104,7 +104,7 @@ def parse_case(data: dict, path: Path, sha256: str = "") -> Case:
     options = read_options(r, top.get("options", [], "list"), {iv.name for iv in interventions})
     risk = read_risk(r, top.get("risk", {}), horizon)
     dynamics = read_dynamics(r, top.get("dynamics", None, "any"), [s.name for s in species])
-    objectives = tuple(read_objective(r, i, raw, species, horizon, risk.horizons)
+    objectives = tuple(read_objective(r, i, raw, species, horizon, risk.times)
                        for i, raw in enumerate(top.get("objectives", [], "list")))
     unique(r, objectives, "name", "objectives")
     uncertain = {p.name for p in parameters if p.uncertain}

@@ -35,7 +35,7 @@ def read_group(r: Reader, i: int, raw: Any, uncertain: set[str]) -> ParameterGro
 
 
 def read_objective(r: Reader, i: int, raw: Any, species: tuple[Species, ...], horizon: float,
-                    risk_horizons: tuple[float, ...]) -> Objective:
+                    risk_times: tuple[float, ...]) -> Objective:
     """One ``[[objectives]]`` entry: species, measure, horizon, event level and requirement."""
     t = Table(r, raw, f"objectives[{i}]")
     name = t.get("name", kind="str")
@@ -45,7 +45,7 @@ def read_objective(r: Reader, i: int, raw: Any, species: tuple[Species, ...], ho
     if sp not in by_name:
         r.fail(f"{base}.species", f"unknown species {sp!r}; declared species: {', '.join(sorted(by_name))}")
     measure = r.choice(f"{base}.measure", t.get("measure", kind="str"), MEASURES)
-    allowed_h = sorted(set(risk_horizons) | {horizon})
+    allowed_h = sorted(set(risk_times) | {horizon})
     h = t.number("horizon", horizon)
     match = [a for a in allowed_h if abs(h - a) <= 1e-9 * max(1.0, a)]
     if not match:

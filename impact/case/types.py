@@ -26,7 +26,7 @@ DEPENDENCES = ("facultative", "obligate")
 # what the assessment wants for a species: options are meant to remove or reduce a target,
 # to spare a protected species; every other species is watched for side effects
 ROLES = ("target", "protected", "other")
-# what an objective looks at, per member, by its horizon
+# what an objective looks at, per member, by its time
 MEASURES = ("abundance", "quasi_extinction", "outbreak")
 # what counts as met: a chance of the objective's event, or a paired change of that chance
 REQUIREMENTS = ("chance_at_least", "chance_at_most", "increase_at_most", "decrease_at_least")
@@ -244,9 +244,9 @@ class Option:
 class Objective:
     """What an option should achieve for one species, judged on the members' outcomes.
 
-    The objective's *event* is, per member: the abundance at ``horizon`` lying below (or
+    The objective's *event* is, per member: the abundance at ``time`` lying below (or
     above) ``level`` for ``measure = "abundance"``; falling below the species'
-    quasi-extinction level by ``horizon``; exceeding its outbreak level by ``horizon``.
+    quasi-extinction level by ``time``; exceeding its outbreak level by ``time``.
     ``requirement`` says what counts as met: the event's chance under the option at least /
     at most ``bound``, or its paired change against the baseline (option minus baseline, on
     the same members) at most / at least ``bound``.
@@ -255,7 +255,7 @@ class Objective:
     name: str
     species: str
     measure: str
-    horizon: float
+    time: float
     requirement: str
     bound: float
     level: float | None = None
@@ -279,7 +279,7 @@ class ParameterGroup:
 
 @dataclass(frozen=True)
 class Risk:
-    horizons: tuple[float, ...]
+    times: tuple[float, ...]
     recovery_fraction: float
     confidence: float
     material_change: float = DEFAULT_MATERIAL_CHANGE

@@ -18,7 +18,7 @@ from impact.dossier.formatting import by_time, fmt_bare_prob, fmt_num, fmt_prob
 from impact.store.manifest import Manifest
 
 
-def reading_horizon(m: Manifest, option: str, species: str) -> float | None:
+def reading_risk_time(m: Manifest, option: str, species: str) -> float | None:
     """The horizon page 1 judges ``option``'s eradication of ``species`` at; None when it does not act on it."""
     names = next((o.interventions for o in m.options if o.name == option), ())
     ends = [iv.end for iv in m.interventions if iv.name in names and iv.species == species]
@@ -42,7 +42,7 @@ def eradication_sentence(m: Manifest, table: pd.DataFrame, species: str) -> str 
     """One surveyed target under every option acting on it, in one sentence (None when no option acts on it)."""
     rows, labels = [], []
     for o in m.options:
-        h = reading_horizon(m, o.name, species)
+        h = reading_risk_time(m, o.name, species)
         row = None if h is None else _row(table, o.name, species, h)
         if row is not None:
             rows.append((h, row, _row(table, o.name, species, max(m.horizons))))

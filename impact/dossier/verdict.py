@@ -15,7 +15,7 @@ quasi-extinction or outbreak chance changes by at least the case's ``material_ri
 
 Horizon rule (stated once in the page's reading box): a species is read at the horizon of the
 objective that concerns it (the longest, if several), any other species at the case's last
-horizon (:func:`species_horizon`). A sentence quotes another horizon only when the change is
+horizon (:func:`species_risk_time`). A sentence quotes another horizon only when the change is
 material there and not at the species' horizon, and then says so. A run with fewer plausible
 members than ``min_members`` gets no verdict at all.
 """
@@ -140,7 +140,7 @@ def _risk_pair(risk: pd.DataFrame, option: str, species: str, metric: str, h: fl
     return f"{fmt_prob(b.value)} → {fmt_prob(o.value)}"
 
 
-def species_horizon(m: Manifest, species: str) -> tuple[float, str]:
+def species_risk_time(m: Manifest, species: str) -> tuple[float, str]:
     """The horizon page 1 reads a species at (the one horizon rule), and its name in words.
 
     The rule: a species an objective concerns is read at that objective's horizon (the longest, if
@@ -158,7 +158,7 @@ def species_horizon(m: Manifest, species: str) -> tuple[float, str]:
 def horizon_rule_text(m: Manifest) -> str:
     """The horizon rule in one sentence, with the horizon each species an objective concerns is read at."""
     named = list(dict.fromkeys(o.species for o in m.objectives))
-    own = ", ".join(f"{sp} {by_time(species_horizon(m, sp)[0], m.time_unit)}" for sp in named)
+    own = ", ".join(f"{sp} {by_time(species_risk_time(m, sp)[0], m.time_unit)}" for sp in named)
     last = by_time(max(m.horizons), m.time_unit)
     if not named:
         return f"Horizon: every species is read at the case's last horizon ({last}) unless a sentence says why not."
@@ -168,7 +168,7 @@ def horizon_rule_text(m: Manifest) -> str:
 
 def target_line(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, option: str, species: str) -> Item:
     """The outcome for a target species: its quasi-extinction chance and its change in abundance."""
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     unit = m.time_unit
     parts = []
     q = _one(risk, option=option, species=species, metric="quasi_extinction", horizon=H)
@@ -186,7 +186,7 @@ def target_line(m: Manifest, risk: pd.DataFrame, effects: pd.DataFrame, option: 
 
 def introduced_item(m: Manifest, risk: pd.DataFrame, option: str, species: str) -> Item:
     """A species absent today that the option brings in: where it stands at its horizon."""
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     r = _one(risk, option=option, species=species, metric="mean_abundance", horizon=H)
     body = "absent without the option, so no paired change exists"
     if r is not None:
@@ -214,7 +214,7 @@ def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: Manifes
     pm = _material_chance(effects, option, species)
     if pm.empty:  # absent without the option: no paired relative change exists
         return "", 0.0, 0.0
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     e = _pick(effects, option=option, species=species, metric="mean_abundance")
     at = _one(pm, horizon=H)
     med = _one(e, horizon=H, statistic="median_change")
@@ -239,7 +239,7 @@ def _abundance_part(effects: pd.DataFrame, option: str, species: str, m: Manifes
 def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species: str, m: Manifest) -> list[str]:
     """Quasi-extinction and outbreak chances that move by at least the material risk, at the species' horizon
     (another horizon only where the move is material there and not at the species' horizon, saying so)."""
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     out = []
     for metric, name in EVENT_NAMES.items():
         d = _pick(effects, option=option, species=species, metric=metric, statistic="difference")
@@ -264,7 +264,7 @@ def _event_parts(effects: pd.DataFrame, risk: pd.DataFrame, option: str, species
 def _lost_by_chance(m: Manifest, risk: pd.DataFrame, option: str, species: str) -> list[str]:
     """A species counted in individuals whose chance of falling to none (``extinct`` in risk.csv) under
     the option reaches the material risk at its horizon: named as a loss by chance at low numbers."""
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     o = _one(risk, option=option, species=species, metric="extinct", horizon=H)
     if o is None or not np.isfinite(float(o.value)) or float(o.value) + 1e-12 < m.judgement.material_risk:
         return []
@@ -275,7 +275,7 @@ def _lost_by_chance(m: Manifest, risk: pd.DataFrame, option: str, species: str) 
 
 
 def _quiet_text(m: Manifest, effects: pd.DataFrame, option: str, species: str) -> str:
-    H, _ = species_horizon(m, species)
+    H, _ = species_risk_time(m, species)
     pm = _one(effects, option=option, species=species, metric="mean_abundance", horizon=H, statistic="p_material")
     return "" if pm is None or pm.n <= 0 else f"{with_term(pm.value, pm.low, pm.high)} {by_time(H, m.time_unit)}"
 

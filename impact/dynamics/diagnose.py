@@ -15,7 +15,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from impact.dynamics import regimes as rg
-from impact.dynamics.lyapunov import DynamicsSettings, lyapunov_flow, predictability_horizon, slowest_rate
+from impact.dynamics.lyapunov import DynamicsSettings, lyapunov_flow, predictability_time, slowest_rate
 from impact.engine.jacobian import WebTangent
 from impact.model import Controls, FoodWeb, WebParams
 from impact.dynamics.timescales import ALIGN_FRACTION, WindowPlan, leading_real_part, plan_windows, time_scales
@@ -202,7 +202,7 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
     Returns
     -------
     dict with ndarrays (M,): regime, period, lyapunov, lyapunov_se, envelope_rate, reason (str),
-    horizon, extinct (bool), extinct_species (str), window (time diagnosed), transient, failed
+    predictability_time, extinct (bool), extinct_species (str), window (time diagnosed), transient, failed
     (bool), failure (int8 integrator code), capped (bool: own needs beyond the cap); amplitude and
     final (M, n_state); sections (list of the last sub-window's section values per member); nfev.
     """
@@ -239,7 +239,7 @@ def diagnose_web(web: FoodWeb, p: WebParams, c: Controls, y0: np.ndarray, s: Dyn
         out["extinct"] = lost.any(axis=1)
         out["extinct_species"] = np.array([";".join(names[g]) for g in lost], dtype=object)
     out.pop("gone", None)
-    out["horizon"] = predictability_horizon(out["lyapunov"], s.delta0, s.tolerance)
+    out["predictability_time"] = predictability_time(out["lyapunov"], s.delta0, s.tolerance)
     out["nfev"] = nfev
     return out
 

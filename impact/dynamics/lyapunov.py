@@ -128,7 +128,7 @@ class Diagnosis:
 # small pure estimators
 
 
-def predictability_horizon(lyap, delta0: float, tolerance: float) -> np.ndarray:
+def predictability_time(lyap, delta0: float, tolerance: float) -> np.ndarray:
     """Time for an error δ0 to grow to Δ at rate λ, ln(Δ/δ0)/λ (Lorenz 1969); inf for λ ≤ 0."""
     lyap = np.asarray(lyap, float)
     with np.errstate(divide="ignore", invalid="ignore"):

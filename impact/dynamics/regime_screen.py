@@ -200,12 +200,12 @@ def regime_frame(case: Case, name: str, sel: np.ndarray, failed_run: np.ndarray,
     """regimes.csv rows of one option."""
     regime = np.where(failed_run, "failed", out["regime"])
     frame = pd.DataFrame({"option": name, "member": sel, "regime": regime, "period": out["period"],
-                          "lyapunov": out["lyapunov"], "lyapunov_se": out["lyapunov_se"], "horizon_time": out["horizon"],
+                          "lyapunov": out["lyapunov"], "lyapunov_se": out["lyapunov_se"], "horizon_time": out["predictability_time"],
                           "extinct": out["extinct"], "extinct_species": out["extinct_species"],
                           "verdict": [verdict_text(r, e) for r, e in zip(regime, out["extinct_species"])],
                           "reason": out["reason"],
                           "envelope_rate": out["envelope_rate"], "window": out["window"],
-                          "shortfall": rg.predictability_shortfall(out["horizon"], H)})
+                          "shortfall": rg.predictability_shortfall(out["predictability_time"], H)})
     for j, sp in enumerate(case.species):
         frame[f"amplitude_{sp.name}"] = out["amplitude"][:, j]
     return frame

@@ -425,12 +425,12 @@ def share_interval(count, n, confidence: float = 0.95) -> tuple[np.ndarray, np.n
     return np.clip(centre - half, 0, 1), np.clip(centre + half, 0, 1)
 
 
-def predictability_shortfall(horizon_time, assessment_horizon: float) -> np.ndarray:
+def predictability_shortfall(predictability_time, assessment_horizon: float) -> np.ndarray:
     """How much shorter the predictability horizon is than the assessment horizon: (M,) ≥ 0.
 
     Zero where the projection stays predictable over the whole assessment (λ ≤ 0, or a
     horizon at least as long as the assessment); NaN where the horizon is unknown. Only members
     with a positive shortfall deserve a warning.
     """
-    h = np.asarray(horizon_time, float)
+    h = np.asarray(predictability_time, float)
     return np.where(np.isnan(h), np.nan, np.maximum(assessment_horizon - h, 0.0))

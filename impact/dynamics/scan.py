@@ -135,7 +135,7 @@ def _scan_rows(parameter, v, out, i, keep_sections, species):
             for x in sec] or [dict(parameter=parameter, value=float(v), section_value=np.nan, regime=reg, period=per, lyapunov=lam)]
     pt = dict(parameter=parameter, value=float(v), regime=reg, period=per, lyapunov=lam,
               lyapunov_se=float(out["lyapunov_se"][i]), envelope_rate=float(out["envelope_rate"][i]),
-              reason=out["reason"][i], horizon=float(out["horizon"][i]), window=float(out["window"][i]),
+              reason=out["reason"][i], horizon=float(out["predictability_time"][i]), window=float(out["window"][i]),
               n_section=int(out["sections"][i].size), failed=bool(out["failed"][i]),
               failure=FAILURE_REASONS.get(int(out["failure"][i]), ""),
               **{f"amplitude_{sp}": float(out["amplitude"][i, j]) for j, sp in enumerate(species)})

@@ -52,7 +52,7 @@ def output_times(case: Case) -> np.ndarray:
     """Recorded times, shared by every option so runs pair point by point: (T,)."""
     H = case.horizon
     ts = set(np.round(np.arange(0.0, H + 1e-12, case.output_step), 12).tolist())
-    ts.update(case.risk.horizons)
+    ts.update(case.risk.times)
     ts.update((0.0, H))
     return np.array(sorted(t for t in ts if 0.0 <= t <= H))
 

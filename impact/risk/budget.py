@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from impact.ensemble.draws import run_chunk_size
-from impact.risk.runs import summary_horizons
+from impact.risk.runs import summary_times
 from impact.case import Case
 from impact.errors import CaseError, SettingError
 
@@ -131,7 +131,7 @@ def estimate(case: Case, members: int, workers: int = 1, out: Path | None = None
     n = S + int(case.carrion is not None)
     runs = 1 + len(case.options)
     T = int(math.floor(case.horizon / case.output_step + 1e-9)) + 1
-    H = len(summary_horizons(case))
+    H = len(summary_times(case))
     D = len(case.uncertain) + (case.structures is not None)  # and the uniform that picks the structure
     # Summary per run: trajectory (T, n) float32, min and max (H, n), mean (H, S), recovery (S,),
     # final (n,), failed and reason; per member: unit draws, parameter values and today's state.

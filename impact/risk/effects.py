@@ -102,7 +102,7 @@ def effects_table(case: Case, summaries: dict) -> pd.DataFrame:
         touched = case.touched(opt)
         for j, sp in enumerate(case.species):
             target = sp.role == "target"
-            for h in case.risk.horizons:
+            for h in case.risk.times:
                 k = run.slot(h)
                 key = dict(option=opt.name, species=sp.name, role=sp.role, direct=sp.name in touched, horizon=h,
                            threshold=np.nan)
@@ -146,7 +146,7 @@ class Outcome:
 def objective_outcome(case: Case, obj: Objective, summary) -> Outcome:
     """The per-member score and event of ``obj`` in one run's summary (the one definition used everywhere)."""
     j = case.species_names.index(obj.species)
-    k = summary.slot(obj.horizon)
+    k = summary.slot(obj.time)
     sp = case.species_by_name(obj.species)
     if obj.measure == "abundance":
         score, level, below = summary.state[:, k, j], obj.level, obj.below
@@ -165,7 +165,7 @@ def objective_outcome(case: Case, obj: Objective, summary) -> Outcome:
 def event_text(case: Case, obj: Objective) -> str:
     """Plain words for the objective's event, e.g. ``"rat abundance below 30 rats/ha in year 10"``."""
     sp = case.species_by_name(obj.species)
-    h = f"{case.time_unit} {obj.horizon:g}"
+    h = f"{case.time_unit} {obj.time:g}"
     if obj.measure == "abundance":
         return f"{sp.name} abundance {'below' if obj.below else 'above'} {obj.level:g} {sp.unit} in {h}"
     if obj.measure == "quasi_extinction":
@@ -185,7 +185,7 @@ def judge(requirement: str, bound: float, low: float, high: float) -> str:
 def _objective_row(case: Case, obj: Objective, option: str, summaries: dict) -> dict:
     conf = case.risk.confidence
     run = objective_outcome(case, obj, summaries[option])
-    key = dict(objective=obj.name, option=option, species=obj.species, measure=obj.measure, horizon=obj.horizon,
+    key = dict(objective=obj.name, option=option, species=obj.species, measure=obj.measure, horizon=obj.time,
                event=event_text(case, obj), requirement=obj.requirement, bound=obj.bound)
     if obj.requirement.startswith("chance"):
         ok = np.isfinite(run.score)

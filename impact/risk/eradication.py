@@ -178,7 +178,7 @@ def eradication_tables(case: Case, values: dict, draws: np.ndarray, runs: dict) 
             members.append(pd.DataFrame({"member": draws, "option": opt, "species": sv.species,
                                          "gone_at": np.where(np.isfinite(when), when, np.nan), "detection": p,
                                          "arrival_rate": lam, "establishment": eps}))
-            for h in case.risk.horizons:
+            for h in case.risk.times:
                 rows.append(_row(case, opt, sv, sp.unit, h, when[ok], p[ok], lam[ok], eps[ok]))
     return {"eradication.csv": pd.DataFrame(rows, columns=list(ERADICATION_COLUMNS)),
             "eradication_members.csv": pd.concat(members, ignore_index=True)[list(ERADICATION_MEMBER_COLUMNS)]}

@@ -97,14 +97,14 @@ class Summary:
 PER_MEMBER = ("trajectory", "minimum", "maximum", "mean", "state", "recovery", "final", "failed", "reason")
 
 
-def summary_horizons(case: Case) -> np.ndarray:
-    return np.array(sorted(set(case.risk.horizons) | {case.horizon}), float)
+def summary_times(case: Case) -> np.ndarray:
+    return np.array(sorted(set(case.risk.times) | {case.horizon}), float)
 
 
 def summarise(case: Case, runs: dict[str, Run]) -> dict[str, Summary]:
     """Reduce full runs to the per-member summaries the tables are built from (pure)."""
     base = runs["baseline"]
-    at = summary_horizons(case)
+    at = summary_times(case)
     S = len(case.species)
     out = {}
     for name, run in runs.items():
@@ -230,7 +230,7 @@ def risk_table(case: Case, runs: dict) -> pd.DataFrame:
     rows = []
     for opt, run in runs.items():
         for j, sp in enumerate(case.species):
-            for h in case.risk.horizons:
+            for h in case.risk.times:
                 k_h = run.slot(h)
                 rmin = run.minimum[:, k_h, j]
                 if sp.present:

@@ -142,7 +142,7 @@ def test_objectives_and_roles_are_frozen_with_their_defaults(tmp_path):
 
     case = load_case(write_case(tmp_path, mesopredator_case()))
     (obj,) = case.objectives
-    assert (obj.species, obj.measure, obj.horizon, obj.requirement, obj.bound, obj.level, obj.below) == \
+    assert (obj.species, obj.measure, obj.time, obj.requirement, obj.bound, obj.level, obj.below) == \
         ("bird", "abundance", 40.0, "chance_at_least", 0.8, 60.0, False)
     assert obj.event_is_good
     assert [s.role for s in case.species] == ["protected", "other", "target"]

@@ -9,7 +9,7 @@ import pytest
 
 import impact
 from casefiles import decline_case, write_case
-from impact.dossier.eradication_reading import eradication_sentences, reading_horizon
+from impact.dossier.eradication_reading import eradication_sentences, reading_risk_time
 from impact.dossier.formatting import fmt_bare_prob, fmt_num, fmt_prob
 from impact.dossier.render import report_html
 from impact.store.results import load_results
@@ -48,7 +48,7 @@ def test_page_one_states_the_table_numbers(folder):
     assert f"below {fmt_num(row.gone_below)} {row.unit}" in sentence
     assert f"detection {fmt_num(table.detection_mean.iloc[0])} per survey, mean over members" in sentence
     for option in ("harvest", "short"):
-        h = reading_horizon(m, option, "newt")
+        h = reading_risk_time(m, option, "newt")
         # the first risk horizon at or after the option's last intervention ends (40 and 12 -> 40, 20)
         assert h == {"harvest": 40.0, "short": 20.0}[option]
         row = table[(table.option == option) & np.isclose(table.horizon, h)].iloc[0]

@@ -22,7 +22,7 @@ CASE_PATH = Path(__file__).parents[2] / "casework" / "predator_prey.toml"
 CASE = load_case(CASE_PATH)
 OPTIONS = ["baseline", *[o.name for o in CASE.options]]
 SPECIES = list(CASE.species_names)
-HORIZONS = list(CASE.risk.horizons)
+HORIZONS = list(CASE.risk.times)
 HOSTILE = '<img src="file:///etc/passwd">'
 
 

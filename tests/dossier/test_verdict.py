@@ -85,14 +85,14 @@ def test_every_bullet_reads_a_species_at_the_one_horizon_rule(meso_results):
     """The horizon rule: a species an objective concerns at that objective's horizon, the others at the
     case's last horizon; a bullet quoting any other horizon says why (common practice, no source)."""
     from impact.dossier.formatting import fmt_num
-    from impact.dossier.verdict import species_horizon
+    from impact.dossier.verdict import species_risk_time
 
     m = meso_results.manifest
     r = _reading(meso_results)
     for o in r.options:
         for x in (*o.protected, *o.targets, *o.side_effects):
             sp = x.head.split(" (")[0]
-            h = fmt_num(species_horizon(m, sp)[0])
+            h = fmt_num(species_risk_time(m, sp)[0])
             quoted = set(re.findall(r"(?:by year|over years 0–)\u00a0?(\d[\d.]*)", x.body))
             assert h in quoted, (sp, x.body)
             if quoted - {h}:

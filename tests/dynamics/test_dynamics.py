@@ -13,7 +13,7 @@ from impact.case import load_case
 from impact.cli import main
 from impact.dynamics.diagnose import diagnose_web, evidence, run_subwindows
 from impact.dynamics.lyapunov import (DynamicsSettings, _hermite_max, logistic_map_scan, lyapunov_flow,
-    predictability_horizon, refine_transitions)
+    predictability_time, refine_transitions)
 from impact.dynamics.scan import nominal_values, scan_web, transitions
 from impact.dynamics.regimes import Rules, classify, detect_period
 from impact.dynamics.timescales import WindowPlan
@@ -146,7 +146,7 @@ def test_detect_period_damped_maxima_do_not_repeat():
 @pytest.mark.parametrize("lam,expected", [(0.1, np.log(10.0) / 0.1), (0.0, np.inf), (-0.2, np.inf)])
 def test_predictability_horizon(lam, expected):
     # Lorenz (1969): errors grow as δ0 e^{λt}, so δ0 reaches Δ at t = ln(Δ/δ0)/λ.
-    assert predictability_horizon(np.array([lam]), 0.05, 0.5)[0] == pytest.approx(expected)
+    assert predictability_time(np.array([lam]), 0.05, 0.5)[0] == pytest.approx(expected)
 
 
 # Hastings & Powell (1991, Ecology 72:896–903), nondimensional food chain with f_i(u) = a_i u/(1 + b_i u):
