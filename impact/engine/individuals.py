@@ -27,6 +27,7 @@ numbers), so a member's numbers never depend on its batch, worker count or execu
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Callable
 
@@ -64,12 +65,27 @@ def leap_size(x: np.ndarray, up: np.ndarray, down: np.ndarray, eps: float = TAU_
     up, down : ndarray (k,)
         Birth and death propensities (events per time unit).
     """
-    bound = np.maximum(eps * x / HIGHEST_ORDER, 1.0)
-    mu = np.abs(up - down)
-    var = up + down
-    with np.errstate(divide="ignore"):
-        tau = np.minimum(np.where(mu > 0, bound / mu, np.inf), np.where(var > 0, bound * bound / var, np.inf))
-    return float(tau.min()) if tau.size else np.inf
+    # plain floats: k is a handful, and this runs once per event (the same operations as elementwise numpy)
+    tau = math.inf
+    for xi, u, d in zip(x.tolist(), up.tolist(), down.tolist()):
+        bound = max(eps * xi / HIGHEST_ORDER, 1.0)
+        mu, var = abs(u - d), u + d
+        if mu > 0:
+            tau = min(tau, bound / mu)
+        if var > 0:
+            tau = min(tau, bound * bound / var)
+    return tau
+
+
+def chosen_event(propensities: list[float], r: float) -> int:
+    """The direct method's choice (Gillespie 1977): the first event whose running sum of
+    propensities exceeds ``r`` (the last one if rounding leaves ``r`` at the very end)."""
+    total = 0.0
+    for j, a in enumerate(propensities):
+        total += a
+        if total > r:
+            return j
+    return len(propensities) - 1
 
 
 def count_events(x: np.ndarray, t: float, t_end: float, rates: Rates, rng: np.random.Generator,
@@ -111,8 +127,7 @@ def count_events(x: np.ndarray, t: float, t_end: float, rates: Rates, rng: np.ra
                     flow(t, t_end - t, x)
                 return x, low, True
             r = rng.random() * a0
-            cum = np.cumsum(np.concatenate([up, down]))
-            j = min(int(np.searchsorted(cum, r, side="right")), cum.size - 1)
+            j = chosen_event(up.tolist() + down.tolist(), r)
             k = up.size
             x[j % k] += 1 if j < k else -1
             step = dt
@@ -206,7 +221,7 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
         (0: none) and right-hand-side evaluations.
     """
     from impact.engine.control import Failure
-    from impact.engine.web import pack_structure, web_segment
+    from impact.engine.web import MemberSegments, pack_structure, web_segment
     from impact.model.split import scalar_split
 
     split = scalar_split(pack_structure(web))
@@ -223,14 +238,20 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
         g, l = split(t, yy, cf)
         return np.array([g[c] for c in cols]) * u, np.array([l[c] for c in cols]) * u
 
+    if engine == "numpy":
+        def segment(t, t_end, y_now):
+            return web_segment(web, p, c, t, t_end, y_now[None, :], rtol=rtol, atol=atol, members=np.array([member]),
+                               engine=engine)
+    else:  # one member's many short segments: its arrays are checked once, not at every step
+        segment = MemberSegments(web, coef_row, y.size, rtol=rtol, atol=atol, engine=engine)
+
     def flow(t_end):
         # the rest of the web moves on in steps of at least COUPLING_STEP (events between are
         # applied to the counted species at once; rates are held over each step anyway)
         t = state["from"]
         if state["reason"] or t_end <= t:
             return
-        seg = web_segment(web, p, c, t, t_end, state["y"][None, :], rtol=rtol, atol=atol,
-                          members=np.array([member]), engine=engine, coef=None if engine == "numpy" else coef_row)
+        seg = segment(t, t_end, state["y"])
         state["nfev"] += seg.nfev
         state["from"] = t_end
         if seg.failed[0]:

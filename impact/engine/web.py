@@ -23,7 +23,7 @@ from impact.engine.boundary import check_kernel_arrays
 from impact.engine.control import MIN_RTOL, Failure
 
 __all__ = ["ENGINES", "LANE_ENGINE", "DEFAULT_ENGINE", "pack_structure", "pack_coefficients", "coefficient_columns",
-           "compiled_kernel", "tolerance", "web_segment", "Jumps", "RunResult", "web_run", "no_jumps"]
+           "compiled_kernel", "tolerance", "web_segment", "MemberSegments", "Jumps", "RunResult", "web_run", "no_jumps"]
 
 ENGINES = ("compiled", "numpy")
 # Blocks of members stepped together (impact.engine.lanes): selectable, the same numbers as "compiled"
@@ -133,6 +133,54 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
     nfev = compiled_kernel(st, engine).segment(st, coef, y0, h, float(t0), float(t1), rtol, atol,
                           int(max_steps), float(blowup), y_out, ymin, ymax, h_out, reason, nsteps)
     return SegmentResult(y_out, ymin, ymax, h_out, reason != 0, reason, int(nfev), nsteps)
+
+
+class MemberSegments:
+    """Many short segments of one member under one coefficient row, through the compiled kernel
+    with its arrays checked once at the boundary and reused: the same numbers as
+    :func:`web_segment` with ``h0=None``, without its per-call packing and checks (a member counted
+    in individuals at low numbers moves the rest of its web in many short steps).
+
+    Parameters
+    ----------
+    coef_row : ndarray (1, P)
+        The member's coefficient row (:func:`pack_coefficients`).
+    n : int
+        State columns.
+    engine : {"compiled", "lanes"}
+    """
+
+    def __init__(self, web: FoodWeb, coef_row: np.ndarray, n: int, *, rtol, atol, engine: str = DEFAULT_ENGINE,
+                 max_steps: int = 100_000, blowup: float = 1e12):
+        if engine not in ("compiled", LANE_ENGINE):
+            raise ValueError(f"engine must be 'compiled' or 'lanes' for member segments, got {engine!r}")
+        self.st = pack_structure(web)
+        self.coef = np.ascontiguousarray(coef_row, dtype=float)
+        self.rtol, self.atol = tolerance(rtol, n, "rtol"), tolerance(atol, n, "atol")
+        self.y0, self.y_out, self.ymin, self.ymax = (np.zeros((1, n)) for _ in range(4))
+        self.h, self.h_out = np.full(1, np.nan), np.full(1, np.nan)
+        self.reason, self.nsteps = np.zeros(1, np.int8), np.zeros(1, np.int64)
+        self.limits = (int(max_steps), float(blowup))
+        # every call refills these same arrays in place, so their shapes, types and layout stay as checked
+        check_kernel_arrays("segment", self.st, coef=self.coef, y0=self.y0, h0=self.h, rtol=self.rtol,
+                            atol=self.atol, y_out=self.y_out, ymin=self.ymin, ymax=self.ymax, h_out=self.h_out,
+                            reason=self.reason, nsteps=self.nsteps)
+        self.kernel = compiled_kernel(self.st, engine)
+
+    def __call__(self, t0: float, t1: float, y: np.ndarray) -> SegmentResult:
+        """The member from state ``y`` (n,) ≥ 0 at ``t0`` to ``t1`` > ``t0``."""
+        if not t1 > t0:
+            raise ValueError(f"a member segment needs t1 > t0, got {t0} to {t1}")
+        self.y0[0] = y
+        if np.any(self.y0 < 0):
+            raise ValueError("y0 has negative entries")
+        self.ymin[:], self.ymax[:], self.y_out[:] = self.y0, self.y0, np.nan
+        self.h[:], self.h_out[:], self.reason[:], self.nsteps[:] = np.nan, np.nan, 0, 0
+        nfev = self.kernel.segment(self.st, self.coef, self.y0, self.h, float(t0), float(t1), self.rtol, self.atol,
+                                   *self.limits, self.y_out, self.ymin, self.ymax, self.h_out, self.reason,
+                                   self.nsteps)
+        return SegmentResult(self.y_out.copy(), self.ymin.copy(), self.ymax.copy(), self.h_out.copy(),
+                             self.reason != 0, self.reason.copy(), int(nfev), self.nsteps.copy())
 
 
 @dataclass(frozen=True)

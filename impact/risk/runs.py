@@ -23,14 +23,17 @@ Progress = Callable[[str], None]
 
 
 def run_options(case: Case, ens: Ensemble, seed: int, progress: Progress | None = None,
-                only: tuple[str, ...] | None = None) -> dict[str, Run]:
-    """Baseline and every option (or those named in ``only``) on the same draws, noise and chance events (paired)."""
+                only: tuple[str, ...] | None = None, individuals: bool = True) -> dict[str, Run]:
+    """Baseline and every option (or those named in ``only``) on the same draws, noise and chance events (paired).
+
+    ``individuals=False`` runs every species continuously, even one the case counts in individuals
+    at low numbers (a screen of the parameters alone)."""
     web = build_web(case)
     with_noise = bool((ens.params.noise_sd > 0).any())
     n_units = int(np.ceil(case.horizon)) + 1
     noise = noise_multipliers(seed, ens.draws, ens.params.noise_sd, n_units) if with_noise else None
     event_u = {iv.name: event_uniforms(seed, ens.draws, iv.name) for iv in case.interventions}
-    counting = counting_for(case, seed, ens.draws)
+    counting = counting_for(case, seed, ens.draws) if individuals else None
     runs = {}
     options: list[Option | None] = [None, *case.options]
     for opt in options:
@@ -333,7 +336,7 @@ class DesignRuns:
 
 
 def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray | None = None,
-                    noise: bool = True, progress: Progress | None = None) -> DesignRuns:
+                    noise: bool = True, progress: Progress | None = None, individuals: bool = True) -> DesignRuns:
     """Spin up and run baseline plus every option on given unit-hypercube points.
 
     Parameters
@@ -345,6 +348,9 @@ def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray |
         stream 0, so differences between points come from the parameters alone.
     noise : bool
         Whether declared environmental noise is applied.
+    individuals : bool
+        Whether species declared in ``[individuals.SPECIES]`` are counted at low numbers (births and
+        deaths as chance events); False runs them continuously.
     """
     web = build_web(case)
     N = unit.shape[0]
@@ -355,7 +361,7 @@ def evaluate_points(case: Case, unit: np.ndarray, seed: int, draws: np.ndarray |
     if not noise:
         p = WebParams(*(getattr(p, f) if f != "noise_sd" else np.zeros_like(p.noise_sd) for f in WebParams.__dataclass_fields__))
     ens = Ensemble(draws, unit, values, p, start, {})
-    runs = run_options(case, ens, seed, progress=progress)
+    runs = run_options(case, ens, seed, progress=progress, individuals=individuals)
     return DesignRuns(values, verdict, runs)
 
 

@@ -126,7 +126,10 @@ def design_chunk(task: DesignTask) -> dict[str, np.ndarray]:
     """
     from impact.risk.runs import evaluate_points
 
-    dr = evaluate_points(task.case, task.unit, task.seed, draws=point_streams(task.unit), noise=False)
+    # the skeleton is deterministic in its parameters: no environmental noise, and every species
+    # continuous (births and deaths at low numbers are chance, not a parameter to apportion)
+    dr = evaluate_points(task.case, task.unit, task.seed, draws=point_streams(task.unit), noise=False,
+                         individuals=False)
     Y, f = point_metrics(task.case, dr)
     return {"Y": Y, "failed_options": np.array(list(f), dtype=str), "failed_counts": np.array(list(f.values()), int)}
 
@@ -135,7 +138,8 @@ def design_chunk(task: DesignTask) -> dict[str, np.ndarray]:
 class FoodWebModel:
     """The case as a model of unit rows: spin-up, paired options, per-point metrics.
 
-    Deterministic skeleton: environmental noise is off; each point draws its own chance events
+    Deterministic skeleton: environmental noise is off, species counted in individuals at low
+    numbers run continuously; each point draws its own chance events
     from a stream named by its coordinates (:func:`point_streams`), so an event probability shows
     its influence like any other parameter.
     ``fixed`` holds unit coordinates of parameters not varied (screened out); ``varied`` the
