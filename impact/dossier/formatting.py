@@ -26,6 +26,18 @@ def fmt_num(v) -> str:
     return f"{v:.3g}"
 
 
+def fmt_amount(v) -> str:
+    """An amount of money or value as printed: 3 significant digits, thousands separated
+    (20,600 rather than 20600); small amounts as :func:`fmt_num`."""
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return str(v)
+    if not math.isfinite(v) or abs(v) < 1000:
+        return fmt_num(v)
+    return f"{float(f'{v:.3g}'):,.0f}"
+
+
 def fmt_index(v) -> str:
     """A share of variance (a sensitivity index) as printed: two decimals, never "-0.00"."""
     v = float(v)

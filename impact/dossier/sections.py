@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from impact.dossier.cautions import share_text
-from impact.dossier.formatting import fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
+from impact.dossier.formatting import fmt_amount, fmt_bare_points, fmt_bare_prob, fmt_index, fmt_num, fmt_points, fmt_prob
 from impact.store.results import Results
 from impact.store.results import VALUED_TOGETHER, WEIGHTED
 from impact.dossier.figures import Assets, distribution_figure, regime_figure, scan_figure
@@ -358,9 +358,10 @@ def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
     """Which study is worth its cost, which is not, and which has no value distinguishable from none."""
     if len(valued):
         unit = str(valued.unit.iloc[0])
-        worth = [f"“{r.study}” (its information worth {fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] {unit} "
-                 f"against a cost of {fmt_num(r.cost)})" for r in valued.itertuples() if r.worth_cost == "yes"]
-        short = [f"“{r.study}” ({fmt_num(r.evsi)} [{fmt_num(r.low)}, {fmt_num(r.high)}] against {fmt_num(r.cost)})"
+        worth = [f"“{r.study}” (its information worth {fmt_amount(r.evsi)} [{fmt_amount(r.low)}, {fmt_amount(r.high)}] "
+                 f"{unit} against a cost of {fmt_amount(r.cost)})" for r in valued.itertuples() if r.worth_cost == "yes"]
+        short = [f"“{r.study}” ({fmt_amount(r.evsi)} [{fmt_amount(r.low)}, {fmt_amount(r.high)}] against "
+                 f"{fmt_amount(r.cost)})"
                  for r in valued.itertuples() if r.worth_cost != "yes" and _detected(r)]
         flat = [f"“{r.study}”" for r in valued.itertuples() if not _detected(r)]
         out = ("Worth its cost even at the lower limit of its value, counting each good outcome at the value the case "
@@ -373,7 +374,7 @@ def _studies_sentence(valued: pd.DataFrame, per: pd.DataFrame) -> str:
                     + "; on these members their data are not shown to change the choice.")
         return out
     flat = [f"“{s}”" for s, g in per.groupby("study", sort=False) if not any(_detected(r) for r in g.itertuples())]
-    seen = [f"“{r.study}” (cost {fmt_num(r.cost)} {r.cost_unit}) for “{r.objective}”: {_evsi_points(r)}"
+    seen = [f"“{r.study}” (cost {fmt_amount(r.cost)} {r.cost_unit}) for “{r.objective}”: {_evsi_points(r)}"
             for r in per.itertuples() if _detected(r)]
     out = ("The case declares no value of its outcomes in money or a common unit, so a study's value (in points of "
            "the chance of a good outcome) and its cost stand side by side; no study is called worth its cost.")
@@ -399,7 +400,7 @@ def _budget_sentence(b: pd.DataFrame | None) -> str:
     if b is None or b.empty:
         return ""
     r = b.iloc[0]
-    head = f"Under the budget of {fmt_num(r.budget)} {r.cost_unit}"
+    head = f"Under the budget of {fmt_amount(r.budget)} {r.cost_unit}"
     if r.benefit_basis.startswith("doing nothing"):
         return head + ", no affordable option gains over doing nothing (budget.csv)."
     opts = " + ".join(f"“{o}”" for o in r.options.split(" + "))
@@ -407,7 +408,7 @@ def _budget_sentence(b: pd.DataFrame | None) -> str:
             if r.chance_over_budget > 0 else "")
     joint = (" Its benefit is the sum of its options' simulated gains, assumed additive: the set was not simulated "
              "together." if r.benefit_basis.startswith("assumed") else "")
-    return f"{head}, the best affordable choice by expected cost is {opts} ({fmt_num(r.cost)}{over}; budget.csv).{joint}"
+    return f"{head}, the best affordable choice by expected cost is {opts} ({fmt_amount(r.cost)}{over}; budget.csv).{joint}"
 
 
 def weighing_context(res: Results) -> dict | None:

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import pandas as pd
 
-from impact.dossier.formatting import fmt_bare_points, fmt_num, fmt_points
+from impact.dossier.formatting import fmt_amount, fmt_bare_points, fmt_points
 from impact.store.results import VALUED_TOGETHER
 
 
@@ -27,8 +27,8 @@ def best_study_sentence(studies: pd.DataFrame | None, material_risk: float) -> s
     valued = studies[(studies.objective == VALUED_TOGETHER) & (studies.worth_cost == "yes")]
     if len(valued):
         r = valued.sort_values("enbs", ascending=False, kind="stable").iloc[0]
-        return (f"Study worth funding: “{r.study}”, its information worth {fmt_num(r.evsi)} [{fmt_num(r.low)}, "
-                f"{fmt_num(r.high)}] {r.unit} to the choice against a cost of {fmt_num(r.cost)} (a model's estimate; "
+        return (f"Study worth funding: “{r.study}”, its information worth {fmt_amount(r.evsi)} [{fmt_amount(r.low)}, "
+                f"{fmt_amount(r.high)}] {r.unit} to the choice against a cost of {fmt_amount(r.cost)} (a model's estimate; "
                 f"sensitivity/studies.csv).")
     if (studies.objective == VALUED_TOGETHER).any():
         return ""  # values declared and no study is shown worth its cost: page 1 names none
@@ -39,4 +39,4 @@ def best_study_sentence(studies: pd.DataFrame | None, material_risk: float) -> s
     return (f"Study with the most material value: “{r.study}” would raise the chance of a good outcome for "
             f"“{r.objective}” by {fmt_points(r.evsi)} [{fmt_bare_points(r.low)}, {fmt_bare_points(r.high)}] in "
             f"expectation (sensitivity/studies.csv); the case puts no value on its outcomes, so whether that is worth "
-            f"its cost of {fmt_num(r.cost)} {r.cost_unit} is the board's call.")
+            f"its cost of {fmt_amount(r.cost)} {r.cost_unit} is the board's call.")

@@ -85,3 +85,15 @@ def test_predictability_axis_stops_at_the_horizon_and_an_empty_panel_says_so():
     texts = [t.get_text() for a in empty.axes for t in a.texts]
     assert any("No member has a predictability horizon" in t for t in texts)
     assert any("No member has a finite Lyapunov exponent" in t for t in texts)
+
+
+def test_amounts_of_money_print_with_three_significant_digits_and_thousands_separated():
+    """Page 1's study sentence and the study and budget paragraphs print amounts like this (the
+    project's own convention, common practice in reports, no source): the interval's ends are rounded
+    like the estimate, never more precise."""
+    from impact.dossier.formatting import fmt_amount
+
+    assert [fmt_amount(v) for v in (20600, 11895, 27058, 6000, 750_000, 1_234_567)] == \
+        ["20,600", "11,900", "27,100", "6,000", "750,000", "1,230,000"]
+    assert [fmt_amount(v) for v in (999.4, 12.345, 0.0, -25_400)] == ["999", "12.3", "0", "-25,400"]
+    assert fmt_amount(float("nan")) == "n/a" and fmt_amount(float("inf")) == "∞"
