@@ -243,3 +243,21 @@ def test_predator_dilution_on_a_juvenile_stage_is_allowed_the_breeding_forms_are
     with pytest.raises(CaseError) as err:
         load_case(write_case(tmp_path, one_species_case([adult, young])))
     assert err.value.field == "species.juvenile crab.allee"
+
+
+def test_predator_dilution_in_the_equations_and_the_command_line(tmp_path, capsys):
+    """The manifest's equations and ``impact check`` name the form; a refused key exits with 2 and
+    the field's name, without a traceback (the project's rule for bad input)."""
+    from impact.cli import main
+    from impact.model import equations
+
+    path = write_case(tmp_path, _diluted(30.0))
+    assert any("predator dilution" in line and "Gascoigne & Lipcius 2004" in line
+               for line in equations(load_case(path)))
+    assert main(["check", str(path)]) == 0
+    assert "predator-dilution Allee effect" in capsys.readouterr().out
+    data = _diluted(30.0)
+    data["species"][0]["dilution_rate"] = -2.0
+    assert main(["check", str(write_case(tmp_path, data))]) == 2
+    err = capsys.readouterr().err
+    assert "species.snail.dilution_rate" in err and "Traceback" not in err
