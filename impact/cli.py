@@ -98,7 +98,9 @@ def describe_case(case: Case) -> str:
             bits.append(f"births × (1 + {s.breeding_amplitude}·cos), peaking in {case.seasons.part_name} {s.breeding_peak:g}")
         if s.matures_into is not None:
             bits.append(f"juvenile stage of {s.matures_into} (matures at {s.maturation_rate}/{case.time_unit})")
-        if s.allee != "none":
+        if s.allee == "predator-dilution":
+            bits.append(f"predator-dilution Allee effect (losses {s.dilution_rate}·N/(N + {s.allee_threshold}))")
+        elif s.allee != "none":
             bits.append(f"{s.allee} Allee effect (threshold {s.allee_threshold})")
         bits.append(f"initial={s.initial}")
         if not s.present:

@@ -221,21 +221,31 @@ def read_one_species(r: Reader, i: int, raw: Any, seasons: Seasons | None) -> Sp
             r.fail(f"species.{name}.growth", "a juvenile stage (matures_into) does not breed: growth must be "
                                              "\"none\"; its numbers come from the births of the stage it matures into")
         maturation = t.quantity("maturation_rate", low=0, low_open=True)
-    allee, threshold = read_allee(r, t, name, growth, k, adult)
+    allee, threshold, dilution = read_allee(r, t, name, growth, k, adult)
     t.done()
     return Species(name, growth, gr, k, mortality, initial, present, noise, qe, outbreak, gen, unit, cy, desc,
-                   role, material, crowding, breeding, outside, amplitude, peak, adult, maturation, allee, threshold)
+                   role, material, crowding, breeding, outside, amplitude, peak, adult, maturation, allee, threshold,
+                   dilution)
 
 
 def read_allee(r: Reader, t: Table, name: str, growth: str, k: Quantity | None, adult: str | None):
-    """A species' ``allee`` form and ``allee_threshold`` (θ of mate finding, A of a strong Allee effect)."""
+    """A species' ``allee`` form, ``allee_threshold`` (θ of mate finding, A of a strong Allee effect, h
+    of predator dilution) and ``dilution_rate`` (D of predator dilution, else None)."""
     base = f"species.{name}"
     allee = r.choice(f"{base}.allee", t.get("allee", "none", "str"), ALLEE_FORMS)
+    if "dilution_rate" in t.data and allee != "predator-dilution":
+        r.fail(f"{base}.dilution_rate", f"is given with allee = {allee!r}; it is the most a generalist predator "
+                                        "removes per time unit under allee = \"predator-dilution\" (set that, or "
+                                        "remove it)")
     if allee == "none":
         if "allee_threshold" in t.data:
-            r.fail(f"{base}.allee_threshold", "is given without an Allee effect; set allee = \"mate-finding\" or "
-                                              "\"strong\", or remove it")
-        return allee, None
+            r.fail(f"{base}.allee_threshold", "is given without an Allee effect; set allee = \"mate-finding\", "
+                                              "\"strong\" or \"predator-dilution\", or remove it")
+        return allee, None, None
+    if allee == "predator-dilution":
+        # a loss to predation, not a change in breeding: it acts on any growth form, a juvenile
+        # stage included (juveniles are eaten too; only the breeding forms need an adult)
+        return allee, t.quantity("allee_threshold", low=0, low_open=True), t.quantity("dilution_rate", low=0)
     if adult is not None:
         r.fail(f"{base}.allee", "a juvenile stage (matures_into) does not breed; declare the Allee effect on the "
                                 "adult stage")
@@ -247,7 +257,7 @@ def read_allee(r: Reader, t: Table, name: str, growth: str, k: Quantity | None, 
     if allee == "strong" and isinstance(threshold, float) and isinstance(k, float) and threshold >= k:
         r.fail(f"{base}.allee_threshold", f"must lie below the carrying capacity ({k:g}): a strong Allee threshold "
                                           f"A ≥ K leaves no stable population, got {threshold:g}")
-    return allee, threshold
+    return allee, threshold, None
 
 
 def read_species(r: Reader, raw: list, seasons: Seasons | None) -> tuple[Species, ...]:

@@ -15,9 +15,9 @@ from impact.case.priors import Fixed, Prior
 Quantity = float | str  # a number, or the name of a parameter in [parameters]
 
 GROWTH_FORMS = ("logistic", "exponential", "none")
-# Allee effects in growth (impact.model.terms.mate_finding, strong_allee): births × N/(N + θ), or
-# logistic growth × (N/A − 1)
-ALLEE_FORMS = ("none", "mate-finding", "strong")
+# Allee effects (impact.model.terms.mate_finding, strong_allee, predator_dilution): births × N/(N + θ),
+# logistic growth × (N/A − 1), or a loss D·N/(N + h) to a generalist predator with a saturating response
+ALLEE_FORMS = ("none", "mate-finding", "strong", "predator-dilution")
 RESPONSES = ("holling1", "holling2", "holling3", "beddington-deangelis")
 INTERACTION_KINDS = ("predation", "scavenging", "competition", "mutualism", "alternative-food")
 OTHER_FOOD = "'s other food"  # a consumer's constant alternative food is named CONSUMER + this
@@ -92,7 +92,8 @@ class Species:
     matures_into: str | None = None  # this species is the juvenile stage of that one
     maturation_rate: Quantity = 0.0
     allee: str = "none"  # an Allee effect in growth: one of ALLEE_FORMS
-    allee_threshold: Quantity | None = None  # θ (mate finding) or A (strong), in the species' unit
+    allee_threshold: Quantity | None = None  # θ (mate finding), A (strong) or h (predator dilution), species' unit
+    dilution_rate: Quantity | None = None  # D of predator dilution: most removals per time unit, species' unit
 
 
 @dataclass(frozen=True)

@@ -14,7 +14,7 @@ from impact.case import Case, Intervention, Mutualism, Species
 # Dimension of every numeric field with respect to time: a rate (per time unit), a duration, or
 # neither. Used to compare the time word in a parameter's declared unit with the case's time unit.
 PER_TIME_FIELDS = ("growth_rate", "mortality", "rate", "decay_rate", "maturation_rate", "attack_rate", "arrival_rate",
-                   "crowding_mortality")
+                   "crowding_mortality", "dilution_rate")
 TIME_FIELDS = ("handling_time",)
 _TIME_WORDS = {"second": "second", "minute": "minute", "hour": "hour", "day": "day", "week": "week",
                "month": "month", "year": "year", "yr": "year", "annum": "year", "decade": "decade"}

@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from impact.model.terms import ALLEE_KINDS, APPENDED_COEFFICIENTS, LINK_COEFFICIENTS, SPECIES_COEFFICIENTS
+
 F8, I8, I1 = np.dtype(np.float64), np.dtype(np.int64), np.dtype(np.int8)
 
 # entry point -> argument -> (dtype, shape)
@@ -107,12 +109,14 @@ def structure_sizes(st) -> dict[str, int]:
         at += size
     ranges = {"consumer": (0, S - 1), "resource": (-1, n - 1), "power": (1, 2), "type1": (0, 1),
               "pairs": (0, S - 1), "interference": (0, 1), "sterile": (0, 1), "adult": (-1, S - 1), "wave": (0, 1),
-              "allee": (0, 2)}
+              "allee": (0, len(ALLEE_KINDS) - 1)}
     for name, (lo, hi) in ranges.items():
         values = parts[name]
         if values.size and (values.min() < lo or values.max() > hi):
             raise bad(f"{name} entries must lie in [{lo}, {hi}] for this web, found {values.min()}..{values.max()}")
-    return {"S": S, "n": n, "L": L, "P": 12 * S + 4 * L + Cc + 2 * U + O + 1 + S}
+    return {"S": S, "n": n, "L": L,
+            "P": len(SPECIES_COEFFICIENTS) * S + len(LINK_COEFFICIENTS) * L + Cc + 2 * U + O + 1
+            + len(APPENDED_COEFFICIENTS) * S}
 
 
 def check_kernel_arrays(entry: str, st, **arrays) -> None:

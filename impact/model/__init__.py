@@ -112,7 +112,10 @@ class WebParams:
         breeding season (births × (1 + A cos(ω t − ω t_peak))); zeros elsewhere.
     allee : ndarray (M, S)
         Allee threshold of each species with an Allee effect (θ of mate finding, A of a strong
-        Allee effect; zeros elsewhere).
+        Allee effect, h of predator dilution; zeros elsewhere).
+    dilution : ndarray (M, S)
+        Most removals per time unit D by the generalist predator of a predator-dilution Allee
+        effect (zeros elsewhere).
     """
 
     r: np.ndarray
@@ -136,10 +139,11 @@ class WebParams:
     omega: np.ndarray | None = None
     phase: np.ndarray | None = None
     allee: np.ndarray | None = None
+    dilution: np.ndarray | None = None
 
     def __post_init__(self):
         for name, fill in (("quad", 0.0), ("gamma", 0.0), ("mat", 0.0), ("amp", 0.0), ("omega", 0.0),
-                           ("phase", 0.0), ("allee", 0.0)):
+                           ("phase", 0.0), ("allee", 0.0), ("dilution", 0.0)):
             if getattr(self, name) is None:
                 object.__setattr__(self, name, np.full(self.r.shape, fill))
         if self.obH is None:
@@ -255,6 +259,7 @@ def web_params(case: Case, values: dict[str, np.ndarray], members: int) -> WebPa
         phase=col([omega * case.seasons.peak_time(s.breeding_peak) if s.breeding_amplitude is not None else 0.0
                    for s in sp]),
         allee=col([s.allee_threshold if s.allee != "none" else 0.0 for s in sp]),
+        dilution=col([s.dilution_rate if s.allee == "predator-dilution" else 0.0 for s in sp]),
     )
 
 
@@ -290,7 +295,9 @@ class SegmentCoefficients:
         Attack rate, attack rate × handling time, efficiency per feeding link.
     alpha : ndarray (M, Cc); beta, H : ndarray (M, U); decay : ndarray (M,)
     allee : ndarray (M, S)
-        Allee threshold (θ or A; 0 without an Allee effect), appended after decay.
+        Allee threshold (θ, A or h; 0 without an Allee effect), appended after decay.
+    dilution : ndarray (M, S)
+        Predator-dilution removal rate D (0 elsewhere), appended after allee.
     """
 
     scale: np.ndarray
@@ -315,6 +322,7 @@ class SegmentCoefficients:
     obH: np.ndarray
     decay: np.ndarray
     allee: np.ndarray
+    dilution: np.ndarray
 
 
 # The coefficients a segment's controls change; the others depend on the parameters alone, so a
@@ -340,7 +348,8 @@ def segment_coefficients(web: FoodWeb, p: WebParams, c: Controls) -> SegmentCoef
     return SegmentCoefficients(
         **controlled_coefficients(web, p, c), rpos=np.maximum(p.r, 0.0), quad=p.quad, gamma=p.gamma,
         mat=p.mat, omega=p.omega, phase=p.phase, a=p.a, ah=p.a * p.h, e=p.e, food=p.food,
-        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay, allee=p.allee)
+        alpha=p.alpha, beta=p.beta, H=p.H, obH=p.obH, decay=p.decay, allee=p.allee,
+        dilution=p.dilution)
 
 
 def pack_coefficients(co: SegmentCoefficients, rows: np.ndarray | None = None, out: np.ndarray | None = None
@@ -509,6 +518,10 @@ def equations(case: Case) -> list[str]:
         elif s.allee == "strong":
             lines.append(f"strong Allee effect: the logistic growth of {s.name} × ({s.name}/A − 1), "
                          f"A = {s.allee_threshold} (Courchamp, Berec & Gascoigne 2008)")
+        elif s.allee == "predator-dilution":
+            lines.append(f"predator dilution: {s.name} loses D·{s.name}/({s.name} + h) to a generalist predator "
+                         f"with a saturating response, D = {s.dilution_rate}, h = {s.allee_threshold} "
+                         "(Gascoigne & Lipcius 2004)")
     if juvenile:
         lines.append("life stages: an adult's births are born into its juvenile stage, which matures into the "
                      "adult at rate μ (de Roos & Persson 2013)")

@@ -34,7 +34,7 @@ sinusoidal-breeding flag and an Allee-effect kind (:data:`ALLEE_KINDS`; S each, 
 entries before it keep their places). Coefficient rows: the per-species blocks of
 :data:`SPECIES_COEFFICIENTS` (S each), the per-link blocks of :data:`LINK_COEFFICIENTS` (L each),
 then alpha (Cc), beta, H (U each), obH (O), decay (1), then the appended per-species blocks of
-:data:`APPENDED_COEFFICIENTS` (S each: the Allee threshold).
+:data:`APPENDED_COEFFICIENTS` (S each: the Allee threshold, then the predator-dilution rate).
 """
 
 from __future__ import annotations
@@ -55,9 +55,9 @@ SPECIES_COEFFICIENTS = ("scale", "rpos", "lin", "dens", "inflow", "quad", "gamma
 LINK_COEFFICIENTS = ("a", "ah", "e", "food")
 RESPONSE_POWER = {"holling1": 1, "holling2": 1, "holling3": 2, "beddington-deangelis": 1}
 # per-species blocks appended after decay (the columns before them keep their places)
-APPENDED_COEFFICIENTS = ("allee",)
+APPENDED_COEFFICIENTS = ("allee", "dilution")
 # the Allee-effect kind of a species in the structure table: its code is the position here
-ALLEE_KINDS = ("none", "mate-finding", "strong")
+ALLEE_KINDS = ("none", "mate-finding", "strong", "predator-dilution")
 
 
 # --------------------------------------------------------------------------------------------
@@ -294,6 +294,18 @@ def strong_allee(s: Structure) -> list[Let]:
     return [update(f"o{i}", "*", y(i) / c("allee", i) - 1.0) for i in range(s.S) if s.allee[i] == 2]
 
 
+def predator_dilution(s: Structure) -> list[Let]:
+    """Losses D N/(N + h) to a generalist predator that is not a species of the web, whose type II
+    response saturates: D the most it removes per time unit, h the half-saturation density. The
+    per-capita risk D/(N + h) falls as N grows, so predation alone makes an Allee effect
+    (predation-driven, or predator-dilution, Allee effect: Gascoigne & Lipcius 2004, Mar Ecol Prog
+    Ser 269:49–59; Courchamp, Berec & Gascoigne 2008, ch. 2); with logistic growth r N (1 − N/K)
+    it is strong when r (1 − N/K)(N + h) = D has two positive roots, the lower one the threshold.
+    A loss, not a multiplier of births: it acts on any growth form and on a juvenile stage."""
+    return [update(f"o{i}", "-", saturating(c("dilution", i), y(i), c("allee", i), Tangent(i)))
+            for i in range(s.S) if s.allee[i] == 3]
+
+
 def crowding(s: Structure) -> list[Let]:
     """Crowding (density-dependent) mortality μ N²."""
     if not s.crowding:
@@ -324,7 +336,7 @@ def carrion(s: Structure) -> list[Let]:
 
 
 TERMS = (births, feeding, controls, sinusoidal_breeding, sterile_release, mate_finding, life_stages, logistic,
-         strong_allee, crowding, linear, eaten, carrion)
+         strong_allee, predator_dilution, crowding, linear, eaten, carrion)
 
 
 def terms_used(s: Structure) -> tuple[str, ...]:

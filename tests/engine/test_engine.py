@@ -127,8 +127,8 @@ def random_web(seed: int, members: int, new_terms: bool = False, allee: bool = F
     and mutualism, with random parameters and controls; returns ``(web, params, controls)``.
     ``new_terms`` adds an obligate partner, predator interference, crowding mortality, sterile
     releases, an alternative food, a juvenile stage and a sinusoidal breeding season; ``allee`` a
-    strong Allee effect on species 0 and mate finding on the last species (terms the table engine
-    does not know)."""
+    strong Allee effect on species 0, predator dilution on species 1 and mate finding on the last
+    species."""
     rng = np.random.default_rng(np.random.SeedSequence(seed))
     S = int(rng.integers(3, 6))
     logistic = np.arange(S) < 2  # two basal species keep the web bounded
@@ -149,7 +149,7 @@ def random_web(seed: int, members: int, new_terms: bool = False, allee: bool = F
                   crowding=new_terms, sterile=(0, 2) if new_terms else (),
                   stages=((2, 1),) if new_terms else (),  # species 2 is the juvenile stage of species 1
                   wave=(0,) if new_terms else (),  # species 0 breeds in a sinusoidal season
-                  allee=((0, "strong"), (S - 1, "mate-finding")) if allee else ())
+                  allee=((0, "strong"), (1, "predator-dilution"), (S - 1, "mate-finding")) if allee else ())
     L, M = len(web.links), members
 
     def u(lo, hi, *shape):
@@ -168,7 +168,9 @@ def random_web(seed: int, members: int, new_terms: bool = False, allee: bool = F
                     mat=u(0.2, 2.0, S), amp=u(0.0, 1.0, S), omega=u(3.0, 7.0, S), phase=u(0.0, 6.0, S))
         c = replace(c, sterile=u(0.0, 50.0, S) * (u(0, 1, S) > 0.3))  # some members without releases
     if allee:  # thresholds below most starting densities, so most members persist
-        p = replace(p, allee=np.concatenate([u(2.0, 10.0, 1), np.zeros((M, S - 2)), u(1.0, 10.0, 1)], axis=1))
+        strong, mates, half = u(2.0, 10.0, 1), u(1.0, 10.0, 1), u(5.0, 30.0, 1)
+        p = replace(p, allee=np.concatenate([strong, half, np.zeros((M, S - 3)), mates], axis=1),
+                    dilution=np.concatenate([np.zeros((M, 1)), u(0.5, 5.0, 1), np.zeros((M, S - 2))], axis=1))
     return web, p, c
 
 
@@ -281,9 +283,9 @@ def test_generated_kernel_is_written_once_per_structure_and_loaded_from_disk(tmp
         "    st = np.array(%s, dtype=np.int64)\n"
         "    y0 = np.ones((1, 1)); out = np.full((1, 1), np.nan); lo = y0.copy(); hi = y0.copy()\n"
         "    h = np.full(1, np.nan); reason = np.zeros(1, np.int8); n = np.zeros(1, np.int64)\n"
-        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay, allee
-        # (the kernel's column order, model.SegmentCoefficients)
-        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 10])\n"
+        # scale, rpos, lin, dens, inflow, quad, gamma, sterile, mat, amp, omega, phase, decay, allee,
+        # dilution (the kernel's column order, model.SegmentCoefficients)
+        "    coef = np.array([[1.0, 1.0, 0.0, 0.1] + [0.0] * 11])\n"
         "    m.segment(st, coef, y0, np.full(1, np.nan), 0.0, 1.0, np.full(1, 1e-6), np.full(1, 1e-9),\n"
         "              1000, 1e12, out, lo, hi, h, reason, n)\n"
         "    print(sum(m.segment.stats.cache_hits.values()), sum(m.segment.stats.cache_misses.values()))\n"

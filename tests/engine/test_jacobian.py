@@ -39,7 +39,9 @@ def _web_with_new_terms(tmp_path, response):
     """The web of :func:`_web_with` plus an obligate pair (flower on moth), crowding mortality, a
     Beddington–DeAngelis fox with an alternative food, sterile releases on the hare and a juvenile
     stage (leverets) of the hare; the moth breeds in a sinusoidal season and needs mates (a
-    mate-finding Allee effect), the flower has a strong Allee effect."""
+    mate-finding Allee effect), the flower has a strong Allee effect and the leverets are diluted
+    prey of a generalist predator outside the web (a predator-dilution Allee effect on a juvenile
+    stage)."""
     data = web_case()
     data["interactions"][0]["response"] = response
     data["interactions"][1]["response"] = "beddington-deangelis"  # fox on hare
@@ -63,7 +65,8 @@ def _web_with_new_terms(tmp_path, response):
     data["interventions"].append({"name": "sterile hares", "kind": "sterile-release", "species": "hare",
                                   "sterile_density": 30.0})
     data["species"].append({"name": "leveret", "growth": "none", "mortality": 0.3, "initial": 20.0, "quasi_extinction": 1.0,
-                            "matures_into": "hare", "maturation_rate": 0.8})
+                            "matures_into": "hare", "maturation_rate": 0.8, "allee": "predator-dilution",
+                            "allee_threshold": 15.0, "dilution_rate": 4.0})
     data["interactions"].append({"kind": "predation", "predator": "fox", "prey": "leveret", "response": "beddington-deangelis",
                                  "interference": 0.2, "attack_rate": 0.05, "handling_time": 0.1, "efficiency": 0.1})
     case = load_case(write_case(tmp_path, data))
