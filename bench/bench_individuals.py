@@ -14,13 +14,15 @@ Only the members whose continuous run comes near a switch are run again, one at 
 their counted species' births and deaths as events (the rest keep their continuous numbers); the
 ratio grows with the share of such members (here the cats left by a failed eradication).
 
-Measured 2026-12-05 on a shared 2-core machine under load, 200 members: 36 of 600 member runs
-changed by counting (the cats left by failed eradications); continuous 0.15-0.17 CPU s, counted
-1.2-1.5 CPU s: a ratio of 8-9, NOT within the 2x target. Where it goes (cProfile): about half in
-integrating the rest of the web between events (one compiled segment call per 1/16 year per
-counted member, ~0.7 ms each with its boundary checks), the rest in the per-event Python loop and
-the generated rates. Compiling the event loop with the rates (as the kernels are) is the way to the
-target; not done yet.
+Measured 2026-12-05 (2-core machine, 200 members), after the demo's cats came to be removed by
+effort over years 2-8 (so most members' cats pass through the counted range on the way to none):
+402 of 600 member runs changed by counting; continuous 0.15 CPU s, counted 4.97 CPU s: a ratio of
+about 34, NOT within the 2x target. Earlier the same day, with the cats removed by a one-off cut,
+36 of 600 runs were counted and the ratio was 8-9. Per counted member run about 12 ms: the
+per-event Python loop (one evaluation of the web's generated terms per birth or death, about 30 us)
+and one compiled segment call per 1/16 time unit (its arrays are now checked once per segment, not
+per call). What stands in the way of the target: the event loop and the rates run in Python;
+compiling them with the kernels generated from the declared terms is the way to it, not done yet.
 """
 
 from __future__ import annotations
