@@ -38,7 +38,8 @@ from impact.ensemble.draws import Ensemble
 from impact.risk.eradication import eradication_tables
 from impact.risk.runs import assess_members, bands_table, failure_counts, members_table, risk_table
 from impact.risk.bystructure import member_structures, structure_tables
-from impact.ensemble.calibrate import (Calibration, build_ensemble, calibration_from_record, calibration_tables,
+from impact.ensemble.posterior import calibration_tables
+from impact.ensemble.calibrate import (Calibration, build_ensemble, calibration_from_record,
     ensemble_from_arrays)
 from impact.case import Case, schedule_text
 from impact.case import load_case as _read_case

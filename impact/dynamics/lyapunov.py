@@ -340,7 +340,7 @@ def lyapunov_flow(fun, jac, y0, *, transient: float, window: float, sample_dt: f
 def _compiled_flow(jvp, y, members, section, *, transient, window, sample_dt, rtol, atol, t0, max_steps,
                    blowup) -> Diagnosis:
     """:func:`lyapunov_flow` by the compiled tangent flow, one kernel call for every member."""
-    from impact.engine.flow import tangent_flow
+    from impact.engine.tangent import tangent_flow
 
     n = y.shape[1]
     r = tangent_flow(jvp.structure, jvp.coefficient_rows(members), y, t0=t0, transient=transient, window=window,

@@ -16,7 +16,7 @@ import numpy as np
 
 def compile_flow(st: np.ndarray, n_coef: int):
     """Compile (or load) the generated tangent flow of ``st`` by one call on a dummy member."""
-    from impact.engine.flow import tangent_flow
+    from impact.engine.tangent import tangent_flow
 
     n = int(st[1])
     tangent_flow(st, np.zeros((1, n_coef)), np.ones((1, n)), t0=0.0, transient=0.5,

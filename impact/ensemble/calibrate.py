@@ -50,8 +50,6 @@ from impact.ensemble.observe import (distance, has_data, log_likelihood, record_
 from impact.ensemble.sample import calibration_generator, draw_uniforms, parameter_values
 from impact.engine.web import no_jumps, pack_coefficients, web_run
 from impact.model import Controls, segment_coefficients
-# the results tables live in impact.ensemble.posterior; these names stay importable from here
-from impact.ensemble.posterior import calibration_tables, posterior_table  # noqa: F401
 
 # SMC settings (the values of the papers cited in the module docstring; common practice)
 KEEP = 0.5            # share of particles kept per tolerance step, and ESS target per temperature step

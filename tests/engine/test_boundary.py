@@ -137,7 +137,7 @@ PROBE = textwrap.dedent("""
     sys.path[:0] = [{tests!r}, {engine!r}]
     from test_engine import random_web
     from impact.engine.boundary import KernelArgumentError
-    from impact.engine import flow
+    from impact.engine import tangent
     from impact.engine.web import no_jumps, pack_coefficients, pack_structure, web_run, web_segment
     from impact.engine.jacobian import WebTangent
     from impact.model import segment_coefficients
@@ -156,10 +156,10 @@ PROBE = textwrap.dedent("""
                                    1, rtol=1e-6, atol=1e-9),
         "web_run coef": lambda: web_run(web, coef[None, :, ::2], np.array([0.0, 1.0]), p.initial, no_jumps(1, 3),
                                         np.array([-1, 0]), 1, rtol=1e-6, atol=1e-9),
-        "tangent_flow": lambda: flow.tangent_flow(pack_structure(web), coef, p.initial, t0=0.0, transient=0.0,
+        "tangent_flow": lambda: tangent.tangent_flow(pack_structure(web), coef, p.initial, t0=0.0, transient=0.0,
                                                   window=1.0, hmax=0.1, section=np.full(3, n + 5), rtol=np.full(n, 1e-6),
                                                   atol=np.full(n, 1e-9)),
-        "tangent_flow y0": lambda: flow.tangent_flow(pack_structure(web), coef, narrow, t0=0.0, transient=0.0,
+        "tangent_flow y0": lambda: tangent.tangent_flow(pack_structure(web), coef, narrow, t0=0.0, transient=0.0,
                                                      window=1.0, hmax=0.1, section=np.zeros(3, np.int64),
                                                      rtol=np.full(n - 1, 1e-6), atol=np.full(n - 1, 1e-9)),
         "lanes": lambda: web_segment(*plain, 0.0, 1.0, plain[1].initial[:, :-1], rtol=1e-6, atol=1e-9, engine="lanes"),

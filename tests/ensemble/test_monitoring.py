@@ -211,7 +211,7 @@ def test_monitoring_data_move_the_posterior_towards_the_truth(tmp_path):
     assert gens[-1]["temperature"] == 1.0 and all(g["ess"] > 0 for g in gens)
     # the invented counts rise by about 20 % a year near 200 of 500: fast growth rates are ruled out,
     # while the harvest rate q (not acting before today) stays at its prior
-    from impact.ensemble.calibrate import posterior_table
+    from impact.ensemble.posterior import posterior_table
 
     table = posterior_table(case, ens).set_index("parameter")
     assert np.quantile(ens.values["r"], 0.95) < 0.6 < table.loc["r", "prior_q95"]
