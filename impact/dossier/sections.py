@@ -389,10 +389,13 @@ def _label(c: str) -> str:
     return "doing nothing" if c == "baseline" else f"“{c}”"
 
 
-def _cost_text(r) -> str:
-    """An expected cost, with the interval of its draws when it is uncertain."""
-    rng = f" [{fmt_num(r.low)}, {fmt_num(r.high)}]" if r.low < r.high else ""
-    return f"{'expected ' if rng else ''}{fmt_num(r.value)}{rng} {r.unit}"
+def _cost_text(r, noun: bool = False) -> str:
+    """An expected cost, with the interval of its draws when it is uncertain; ``noun``: as "an
+    expected cost of …" (or "a cost of …" when it is certain)."""
+    rng = f" [{fmt_amount(r.low)}, {fmt_amount(r.high)}]" if r.low < r.high else ""
+    if noun:
+        return f"{'an expected cost' if rng else 'a cost'} of {fmt_amount(r.value)}{rng} {r.unit}"
+    return f"{'expected ' if rng else ''}{fmt_amount(r.value)}{rng} {r.unit}"
 
 
 def _budget_sentence(b: pd.DataFrame | None) -> str:
@@ -443,7 +446,7 @@ def weighing_context(res: Results) -> dict | None:
     if ranked and stat[(ranked[0][1], "efficiency")].value > 0:
         best = ranked[0][1]
         lines.append(f"Most cost-effective (weighted gain over doing nothing per unit of cost): {_label(best)}, at "
-                     f"{_cost_text(stat[(best, 'cost')])}.")
+                     f"{_cost_text(stat[(best, 'cost')], noun=True)}.")
     elif ranked:
         lines.append("No option gains over doing nothing in weighted chance of good outcomes, so none is cost-effective.")
     named = {ranked[0][1]} if ranked and stat[(ranked[0][1], "efficiency")].value > 0 else set()

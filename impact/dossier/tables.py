@@ -17,6 +17,8 @@ from impact.dossier.verdict import with_term
 
 RISK_METRICS = (
     ("quasi_extinction", "Quasi-extinction probability"),
+    # only for a species counted in individuals at low numbers: a population of zero, by chance or removal
+    ("extinct", "Probability that none is left (counted in individuals)"),
     ("expected_minimum", "Expected minimum abundance"),
     ("mean_change", "Paired change in mean abundance"),
     ("outbreak", "Outbreak probability"),
