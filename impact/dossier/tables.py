@@ -3,7 +3,6 @@ formatted from the saved numbers."""
 
 from __future__ import annotations
 
-import numpy as np
 import pandas as pd
 
 from impact.dossier.bottomline import run_label
