@@ -142,3 +142,29 @@ def mesopredator_case(members: int = 200) -> dict:
                         "above": 60.0, "chance_at_least": 0.8}],
         "risk": {"horizons": [20.0, 40.0], "min_members": 100},
     })
+
+
+def field_resolves(node, rest: str) -> bool:
+    """Whether the dotted field path ``rest`` names something in ``node``: list entries are named
+    ``[i]``, by their ``name``, or (limits on change) by their ``species``; the last component may be
+    a key missing from an existing table (a required key that is absent)."""
+    if rest == "":
+        return True
+    if isinstance(node, dict):
+        for k in node:
+            if isinstance(k, str) and (rest == k or any(rest.startswith(k + sep) and
+                                                        field_resolves(node[k], rest[len(k) + (sep == "."):])
+                                                        for sep in (".", "["))):
+                return True
+        return "." not in rest and "[" not in rest
+    if isinstance(node, list):
+        if rest.startswith("["):
+            i, _, after = rest[1:].partition("]")
+            return i.isdigit() and int(i) < len(node) and field_resolves(node[int(i)], after.removeprefix("."))
+        for item in node:
+            for by in ("name", "species"):
+                name = item.get(by) if isinstance(item, dict) else None
+                if isinstance(name, str) and (rest == name or (rest.startswith(name + ".")
+                                                              and field_resolves(item, rest[len(name) + 1:]))):
+                    return True
+    return False

@@ -18,7 +18,7 @@ import tomllib
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from casefiles import decline_case, to_toml, web_case
+from casefiles import decline_case, field_resolves, to_toml, web_case
 from impact.case import Case, load_case, parse_case
 from impact.errors import CaseError
 
@@ -52,43 +52,12 @@ def _get(node, path):
     return node
 
 
-def _resolves(node, rest: str) -> bool:
-    """Whether the dotted field path ``rest`` names something in ``node``.
-
-    List entries are named ``[i]`` or, for entries that have a ``name``, by that name; the
-    last component may be missing from a table (a required key that is absent).
-    """
-    if rest == "":
-        return True
-    if isinstance(node, dict):
-        for k in node:
-            if not isinstance(k, str):
-                continue
-            if rest == k:
-                return True
-            for sep in (".", "["):
-                if rest.startswith(k + sep) and _resolves(node[k], rest[len(k) + (sep == "."):]):
-                    return True
-        return "." not in rest and "[" not in rest  # a missing key of an existing table
-    if isinstance(node, list):
-        if rest.startswith("["):
-            i, _, after = rest[1:].partition("]")
-            if i.isdigit() and int(i) < len(node):
-                return _resolves(node[int(i)], after.removeprefix("."))
-        for item in node:
-            name = item.get("name") if isinstance(item, dict) else None
-            if isinstance(name, str) and (rest == name or (rest.startswith(name + ".")
-                                                          and _resolves(item, rest[len(name) + 1:]))):
-                return True
-    return False
-
-
 def _read(data: dict):
     try:
         return parse_case(data, "case.toml", "")
     except CaseError as err:
         assert err.file == "case.toml"
-        assert err.field and _resolves(data, err.field), f"field path {err.field!r} names nothing in the case"
+        assert err.field and field_resolves(data, err.field), f"field path {err.field!r} names nothing in the case"
         assert err.message
         return err
 

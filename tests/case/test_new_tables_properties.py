@@ -26,7 +26,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from casefiles import mesopredator_case, web_case, write_case  # noqa: E402
+from casefiles import field_resolves, mesopredator_case, web_case, write_case  # noqa: E402
 from test_case_properties import VALUES, _get, _paths  # noqa: E402
 
 from impact.case import (DEPENDENCES, GROWTH_FORMS, INTERACTION_KINDS, INTERVENTION_KINDS, KIND_ALIASES,  # noqa: E402
@@ -168,38 +168,12 @@ def _check_like_the_command_line(case: Case):
         assert len(segment_times(case, option, with_noise=False)) < 1_000_000
 
 
-def _resolves(node, rest: str) -> bool:
-    """Whether the dotted field path ``rest`` names something in ``node``: list entries are named
-    ``[i]``, by their ``name``, or (limits on change) by their ``species``; the last component may be
-    a key missing from an existing table (a required key that is absent)."""
-    if rest == "":
-        return True
-    if isinstance(node, dict):
-        for k in node:
-            if isinstance(k, str) and (rest == k or any(rest.startswith(k + sep) and
-                                                        _resolves(node[k], rest[len(k) + (sep == "."):])
-                                                        for sep in (".", "["))):
-                return True
-        return "." not in rest and "[" not in rest
-    if isinstance(node, list):
-        if rest.startswith("["):
-            i, _, after = rest[1:].partition("]")
-            return i.isdigit() and int(i) < len(node) and _resolves(node[int(i)], after.removeprefix("."))
-        for item in node:
-            for by in ("name", "species"):
-                name = item.get(by) if isinstance(item, dict) else None
-                if isinstance(name, str) and (rest == name or (rest.startswith(name + ".")
-                                                              and _resolves(item, rest[len(name) + 1:]))):
-                    return True
-    return False
-
-
 def _read(data: dict):
     try:
         case = parse_case(data, "case.toml", "")
     except CaseError as err:
         assert err.file == "case.toml"
-        assert err.field and _resolves(data, err.field), f"field path {err.field!r} names nothing in the case"
+        assert err.field and field_resolves(data, err.field), f"field path {err.field!r} names nothing in the case"
         assert err.message
         return err
     _check_like_the_command_line(case)

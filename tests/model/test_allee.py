@@ -103,9 +103,8 @@ BAD = [
 ]
 
 
-@pytest.mark.parametrize("desc, edit, field, words", BAD, ids=[b[0] for b in BAD])
-def test_bad_allee_keys_name_the_field(tmp_path, desc, edit, field, words):
-    data = _strong(30.0)
+def _refused(tmp_path, data: dict, edit: dict, field: str, words: str):
+    """The case ``data`` with its first species' keys edited (None removes a key) is refused naming ``field``."""
     sp = data["species"][0]
     for k, v in edit.items():
         if v is None:
@@ -116,6 +115,11 @@ def test_bad_allee_keys_name_the_field(tmp_path, desc, edit, field, words):
         load_case(write_case(tmp_path, data))
     assert err.value.field == field
     assert words in err.value.message
+
+
+@pytest.mark.parametrize("desc, edit, field, words", BAD, ids=[b[0] for b in BAD])
+def test_bad_allee_keys_name_the_field(tmp_path, desc, edit, field, words):
+    _refused(tmp_path, _strong(30.0), edit, field, words)
 
 
 # --- predator dilution (impact.model.terms.predator_dilution) ----------------------------------------
@@ -216,17 +220,7 @@ BAD_DILUTION = [
 
 @pytest.mark.parametrize("desc, edit, field, words", BAD_DILUTION, ids=[b[0] for b in BAD_DILUTION])
 def test_bad_predator_dilution_keys_name_the_field(tmp_path, desc, edit, field, words):
-    data = _diluted(30.0)
-    sp = data["species"][0]
-    for k, v in edit.items():
-        if v is None:
-            sp.pop(k)
-        else:
-            sp[k] = v
-    with pytest.raises(CaseError) as err:
-        load_case(write_case(tmp_path, data))
-    assert err.value.field == field
-    assert words in err.value.message
+    _refused(tmp_path, _diluted(30.0), edit, field, words)
 
 
 def test_predator_dilution_on_a_juvenile_stage_is_allowed_the_breeding_forms_are_not(tmp_path):
