@@ -45,6 +45,11 @@ CONTRACTS: dict[str, dict[str, tuple[np.dtype, tuple]]] = {
         "high": (F8, ("m", "n")), "acc": (F8, ("m", "n")), "sec_vals": (F8, ("m", "C")),
         "sec_count": (I8, ("m",)), "reason": (I1, ("m",)), "nsteps": (I8, ("m",)),
     },
+    "counted_run": {
+        "coef": (F8, ("m", "P")), "y": (F8, ("m", "n")), "cols": (I8, ("k",)), "per_unit": (F8, ("k",)),
+        "x0": (I8, ("m", "k")), "rtol": (F8, ("n",)), "atol": (F8, ("n",)), "out": (F8, ("m", "n")),
+        "lo": (F8, ("m", "n")), "hi": (F8, ("m", "n")),
+    },
     "batch_jvp": {
         "coef": (F8, ("m", "P")), "y": (F8, ("m", "n")), "v": (F8, ("m", "n")), "out": (F8, ("m", "n")),
         "jv": (F8, ("m", "n")),
@@ -54,7 +59,7 @@ CONTRACTS: dict[str, dict[str, tuple[np.dtype, tuple]]] = {
 
 # arrays the compiled code writes into
 WRITTEN = {"y_out", "ymin", "ymax", "h_out", "reason", "nsteps", "states", "cummin", "cummax", "lg", "low", "high",
-            "acc", "sec_vals", "sec_count", "out", "jv"}
+            "acc", "sec_vals", "sec_count", "out", "jv", "lo", "hi"}
 
 
 class KernelArgumentError(ValueError):
@@ -125,7 +130,8 @@ def check_kernel_arrays(entry: str, st, **arrays) -> None:
     Parameters
     ----------
     entry : str
-        A key of :data:`CONTRACTS`: ``"segment"``, ``"run_members"``, ``"flow_batch"`` or ``"batch_jvp"``.
+        A key of :data:`CONTRACTS`: ``"segment"``, ``"run_members"``, ``"flow_batch"``, ``"counted_run"`` or
+        ``"batch_jvp"``.
     st : int64 ndarray
         The structure table passed with them (checked by :func:`structure_sizes`).
     **arrays : ndarray
@@ -173,6 +179,14 @@ def _check_values(entry: str, sizes: dict, arrays: dict) -> None:
 
     if entry == "flow_batch":
         within("section", 0, sizes["n"] - 1)
+    if entry == "counted_run":
+        within("cols", 0, sizes["n"] - 1)
+        within("x0", 0, np.iinfo(np.int64).max)
+        y = arrays["y"]
+        if not (np.isfinite(y).all() and (y >= 0).all()):
+            raise KernelArgumentError(entry, "y", "must be finite and non-negative")
+        if not (np.isfinite(arrays["per_unit"]).all() and (arrays["per_unit"] > 0).all()):
+            raise KernelArgumentError(entry, "per_unit", "must be finite and positive")
     if entry != "run_members":
         return
     if sizes["G"] not in (1, sizes["K"]):

@@ -66,3 +66,16 @@ class DormandPrince54:
 
 # The controller's exponent -1/(q+1) for the embedded order q.
 ERROR_EXPONENT = -1.0 / (DormandPrince54.error_estimator_order + 1)
+
+
+def template(jit: str):
+    """Mark a function as source for the generated modules, compiled there with the decorator named
+    ``jit`` (``"kernel_jit"`` or ``"kernel_inline"``) around the module's own right-hand side.
+
+    The function is returned unchanged (plain Python: here it has no right-hand side to call);
+    :func:`impact.engine.generate.template_source` prints it with its decorator.
+    """
+    def mark(fn):
+        fn.jit = jit
+        return fn
+    return mark

@@ -23,6 +23,12 @@ stays zero (every rate of a species is proportional to it, except arrivals); abo
 continuous engine takes the species back. Random numbers come from each member's own stream
 (built by :mod:`impact.ensemble.sample`), the same stream for every option (common random
 numbers), so a member's numbers never depend on its batch, worker count or executor.
+
+The compiled engines run this loop compiled (:func:`counted_run`, in a kernel generated for each
+web structure beside the state kernel: :func:`count_module_source`), with the rates of the split
+generated from the declared terms and numba's draws from the member's own numpy Generator, which
+are numpy's to the bit. :func:`count_events` and :func:`reference_counted_segment` are the
+reference in Python (and the numpy engine's counting); tests hold the two to the bit.
 """
 
 from __future__ import annotations
@@ -32,6 +38,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
+
+from impact.engine.control import template
 
 # Cao, Gillespie & Petzold (2006): the error-control parameter ε; they use 0.03 in their examples
 TAU_EPSILON = 0.03
@@ -54,43 +62,84 @@ Rates = Callable[[np.ndarray, float], tuple[np.ndarray, np.ndarray]]
 Flow = Callable[[float, float, np.ndarray], None]
 
 
-def leap_size(x: np.ndarray, up: np.ndarray, down: np.ndarray, eps: float = TAU_EPSILON) -> float:
+# The four helpers below run as they are in the reference loop (:func:`count_events`) and are
+# compiled, from this same source, into the counting kernel (:func:`count_module_source`).
+@template("kernel_inline")
+def leap_size(x, up, down, eps=TAU_EPSILON):
     """The largest leap whose expected change and standard deviation of every count stay below
     max(ε x / g, 1) (Cao, Gillespie & Petzold 2006, eq. 33). inf when nothing happens.
 
     Parameters
     ----------
-    x : ndarray (k,)
+    x : int ndarray (k,)
         Counts.
     up, down : ndarray (k,)
         Birth and death propensities (events per time unit).
     """
-    # plain floats: k is a handful, and this runs once per event (the same operations as elementwise numpy)
     tau = math.inf
-    for xi, u, d in zip(x.tolist(), up.tolist(), down.tolist()):
-        bound = max(eps * xi / HIGHEST_ORDER, 1.0)
-        mu, var = abs(u - d), u + d
+    for j in range(x.shape[0]):
+        bound = max(eps * x[j] / HIGHEST_ORDER, 1.0)
+        mu = abs(up[j] - down[j])
+        var = up[j] + down[j]
         if mu > 0:
             tau = min(tau, bound / mu)
         if var > 0:
             tau = min(tau, bound * bound / var)
-    return tau
+    return float(tau)
 
 
-def chosen_event(propensities: list[float], r: float) -> int:
-    """The direct method's choice (Gillespie 1977): the first event whose running sum of
-    propensities exceeds ``r`` (the last one if rounding leaves ``r`` at the very end)."""
+@template("kernel_inline")
+def total_rate(up, down):
+    """a0, the sum of every propensity: the births' sum plus the deaths' sum, each summed in order."""
+    su = 0.0
+    for j in range(up.shape[0]):
+        su += up[j]
+    sd = 0.0
+    for j in range(down.shape[0]):
+        sd += down[j]
+    return float(su + sd)
+
+
+@template("kernel_inline")
+def chosen_event(up, down, r):
+    """The direct method's choice (Gillespie 1977): the first event, births then deaths, whose
+    running sum of propensities exceeds ``r`` (the last one if rounding leaves ``r`` at the very
+    end). Births of species j are event j, deaths event k + j."""
+    k = up.shape[0]
     total = 0.0
-    for j, a in enumerate(propensities):
-        total += a
+    for j in range(k):
+        total += up[j]
         if total > r:
             return j
-    return len(propensities) - 1
+    for j in range(k):
+        total += down[j]
+        if total > r:
+            return k + j
+    return 2 * k - 1
+
+
+@template("kernel_inline")
+def leap(x, up, down, tau, rng, new):
+    """A leap of ``tau`` from counts ``x`` (k,): Poisson births, then Poisson deaths, drawn species
+    by species, into ``new`` (k,); halved and drawn again while a count would go below none.
+    Returns the leap taken."""
+    k = x.shape[0]
+    while True:
+        for j in range(k):
+            new[j] = x[j] + rng.poisson(up[j] * tau)
+        negative = False
+        for j in range(k):
+            new[j] -= rng.poisson(down[j] * tau)
+            negative = negative or new[j] < 0
+        if not negative:
+            return tau
+        tau *= 0.5
 
 
 def count_events(x: np.ndarray, t: float, t_end: float, rates: Rates, rng: np.random.Generator,
                  flow: Flow | None = None, eps: float = TAU_EPSILON) -> tuple[np.ndarray, np.ndarray, bool]:
-    """Births and deaths of counted species from ``t`` to ``t_end``, exact or by leaps.
+    """Births and deaths of counted species from ``t`` to ``t_end``, exact or by leaps (the
+    reference loop; the compiled engines run :func:`counted_run`, the same steps compiled).
 
     Parameters
     ----------
@@ -113,7 +162,7 @@ def count_events(x: np.ndarray, t: float, t_end: float, rates: Rates, rng: np.ra
         if t >= t_end:
             return x, low, True
         up, down = rates(x, t)
-        a0 = float(up.sum() + down.sum())
+        a0 = total_rate(up, down)
         if a0 <= 0.0:
             if flow is not None:
                 flow(t, t_end - t, x)
@@ -127,17 +176,14 @@ def count_events(x: np.ndarray, t: float, t_end: float, rates: Rates, rng: np.ra
                     flow(t, t_end - t, x)
                 return x, low, True
             r = rng.random() * a0
-            j = chosen_event(up.tolist() + down.tolist(), r)
+            j = chosen_event(up, down, r)
             k = up.size
             x[j % k] += 1 if j < k else -1
             step = dt
         else:
-            while True:
-                new = x + rng.poisson(up * tau) - rng.poisson(down * tau)
-                if (new >= 0).all():
-                    break
-                tau *= 0.5
-            x, step = new, tau
+            new = np.empty_like(x)
+            step = leap(x, up, down, tau, rng, new)
+            x = new
         if flow is not None:
             flow(t, step, x_before)
         t += step
@@ -202,6 +248,162 @@ class Counting:
         return out
 
 
+# The counting kernel's own functions, compiled (in this order) after the state kernel's step loop.
+COUNT_FUNCTIONS = ("leap_size", "total_rate", "chosen_event", "leap", "couple", "counted_run")
+
+
+@template("kernel_jit")
+def couple(st, coef, t_from, t_end, cur, lo, hi, rtol, atol, max_steps, blowup, y0, y_out, ymin, ymax, h, h_out,
+           reason, nsteps):
+    """The rest of the web of one member from ``t_from`` to ``t_end`` > ``t_from`` with its state
+    in ``cur`` (n,), through the step loop's ``segment`` with a first step chosen afresh (as
+    :class:`impact.engine.web.MemberSegments`); ``cur``, ``lo`` and ``hi`` are updated unless it
+    fails. ``y0`` to ``nsteps`` are ``segment``'s one-member arrays. Returns (failure code, evaluations)."""
+    n = cur.shape[0]
+    for j in range(n):
+        if cur[j] < 0:
+            raise ValueError("y0 has negative entries")
+        y0[0, j] = cur[j]
+        ymin[0, j] = cur[j]
+        ymax[0, j] = cur[j]
+        y_out[0, j] = math.nan
+    h[0] = math.nan
+    h_out[0] = math.nan
+    reason[0] = 0
+    nsteps[0] = 0
+    nfev = segment(st, coef, y0, h, t_from, t_end, rtol, atol, max_steps, blowup, y_out, ymin, ymax, h_out, reason,
+                   nsteps)
+    code = int(reason[0])
+    if code == 0:
+        for j in range(n):
+            lo[j] = nmin(lo[j], ymin[0, j])
+            hi[j] = nmax(hi[j], ymax[0, j])
+            cur[j] = y_out[0, j]
+    return code, nfev
+
+
+@template("kernel_jit")
+def counted_run(st, coef, t0, t1, y, cols, per_unit, x0, rng, eps, rtol, atol, max_steps, blowup, out, lo, hi):
+    """:func:`counted_segment`'s loop compiled: :func:`count_events` with the rates of the
+    generated split (``web_split``) and the rest of the web moved by :func:`couple` in steps of at
+    least :data:`COUPLING_STEP`, every operation and random draw in the reference's order.
+
+    ``coef`` (1, P) the member's row, ``y`` (n,) its state at ``t0``, ``cols`` (k,) the counted
+    columns, ``per_unit`` (k,) individuals per unit, ``x0`` (k,) int64 counts at ``t0``, ``rng`` the
+    member's numpy Generator (advanced in place). Fills ``out``, ``lo``, ``hi`` (n,) as
+    :func:`counted_segment` returns them; returns (failure code, evaluations).
+    """
+    n = y.shape[0]
+    k = cols.shape[0]
+    cf = coef[0]
+    y0 = np.empty((1, n))
+    y_out = np.empty((1, n))
+    ymin = np.empty((1, n))
+    ymax = np.empty((1, n))
+    h = np.empty(1)
+    h_out = np.empty(1)
+    reason = np.zeros(1, np.int8)
+    nsteps = np.zeros(1, np.int64)
+    gain, loss, yy = np.empty(n), np.empty(n), np.empty(n)
+    up, down = np.empty(k), np.empty(k)
+    x, before, new, low = x0.copy(), x0.copy(), x0.copy(), x0.copy()
+    for j in range(n):
+        out[j] = y[j]
+        lo[j] = y[j]
+        hi[j] = y[j]
+    for j in range(k):
+        out[cols[j]] = x[j] / per_unit[j]
+    t = t0
+    t_from = t0
+    code = 0
+    nfev = 0
+    ok = False
+    for _ in range(MAX_EVENTS):
+        if t >= t1:
+            ok = True
+            break
+        for j in range(n):
+            yy[j] = out[j]
+        for j in range(k):
+            yy[cols[j]] = x[j] / per_unit[j]
+        web_split(st, cf, t, yy, gain, loss)
+        for j in range(k):
+            up[j] = gain[cols[j]] * per_unit[j]
+            down[j] = loss[cols[j]] * per_unit[j]
+        a0 = total_rate(up, down)
+        for j in range(k):
+            before[j] = x[j]
+        step = t1 - t
+        last = False
+        if a0 <= 0.0:
+            last = True
+        else:
+            tau = min(leap_size(x, up, down, eps), t1 - t)
+            if tau * a0 < SSA_BELOW:
+                dt = rng.exponential(1.0 / a0)
+                if t + dt >= t1:
+                    last = True
+                else:
+                    e = chosen_event(up, down, rng.random() * a0)
+                    if e < k:
+                        x[e] += 1
+                    else:
+                        x[e - k] -= 1
+                    step = dt
+            else:
+                step = leap(x, up, down, tau, rng, new)
+                for j in range(k):
+                    x[j] = new[j]
+        # the rest of the web moves on in steps of at least COUPLING_STEP, seeing the counts held
+        # over [t, t + step] (as reference_counted_segment's flow)
+        for j in range(k):
+            out[cols[j]] = before[j] / per_unit[j]
+        t_end = t + step
+        if (t_end - t_from >= COUPLING_STEP or t_end >= t1) and code == 0 and t_end > t_from:
+            code, e = couple(st, coef, t_from, t_end, out, lo, hi, rtol, atol, max_steps, blowup, y0, y_out, ymin,
+                             ymax, h, h_out, reason, nsteps)
+            nfev += e
+            t_from = t_end
+        if last:
+            ok = True
+            break
+        t = t_end
+        for j in range(k):
+            low[j] = min(low[j], x[j])
+    for j in range(k):
+        c = cols[j]
+        out[c] = x[j] / per_unit[j]
+        lo[c] = nmin(y[c], low[j] / per_unit[j])
+        hi[c] = nmax(y[c], out[c])
+    if code == 0 and not ok:
+        code = TOO_MANY
+    return code, nfev
+
+
+def count_module_source(st: np.ndarray) -> str:
+    """Source of the counting kernel for structure ``st``: the state kernel's module
+    (:func:`impact.engine.generate.module_source`), the split of :mod:`impact.model.split` as
+    ``web_split(st, cf, t, y, gain_out, loss_out)``, and the functions of :data:`COUNT_FUNCTIONS`."""
+    from impact.engine.generate import module_source, template_source
+    from impact.model.split import scalar_split_body
+
+    n = int(st[1])
+    body = scalar_split_body(st, timed_guard=False)
+    body += [f"gain_out[{i}] = g{i}" for i in range(n)] + [f"loss_out[{i}] = l{i}" for i in range(n)]
+    split = "@kernel_jit\ndef web_split(st, cf, t, y, gain_out, loss_out):\n" + "".join(f"    {b}\n" for b in body)
+    parts = [module_source(st), "from impact.engine.individuals import COUPLING_STEP, HIGHEST_ORDER, MAX_EVENTS, "
+             "SSA_BELOW, TAU_EPSILON", "", split]
+    parts += [template_source(globals()[name], n) for name in COUNT_FUNCTIONS]
+    return "\n".join(parts) + "\n"
+
+
+def counting_kernel(st: np.ndarray):
+    """The compiled counting kernel of structure ``st`` (written and compiled on first use)."""
+    from impact.engine.generate import generated
+
+    return generated(st, "count", count_module_source)
+
+
 def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np.ndarray, member: int,
                     counting: Counting, rng: np.random.Generator, *, rtol, atol, engine: str):
     """One member over one segment with its counted species as random events.
@@ -220,6 +422,22 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
     (y, ymin, ymax, reason, nfev) : state at ``t1`` (n,), running extremes (n,), failure code
         (0: none) and right-hand-side evaluations.
     """
+    from impact.engine.web import pack_structure
+
+    if engine == "numpy":
+        return reference_counted_segment(web, p, c, coef_row, t0, t1, y, member, counting, rng, rtol=rtol, atol=atol,
+                                         engine=engine)
+    out, lo, hi, reason, nfev = compiled_counted_members(pack_structure(web), coef_row, t0, t1, y[None, :], counting,
+                                                         [rng], rtol=rtol, atol=atol)
+    return out[0], lo[0], hi[0], int(reason[0]), nfev
+
+
+def reference_counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np.ndarray, member: int,
+                              counting: Counting, rng: np.random.Generator, *, rtol, atol, engine: str):
+    """:func:`counted_segment` in Python: :func:`count_events` with the rates of
+    :func:`impact.model.split.scalar_split` and the rest of the web moved by the engine ``engine``
+    (the numpy engine's counting, and the reference the compiled counting is tested against).
+    Arguments and returns as :func:`counted_segment`."""
     from impact.engine.control import Failure
     from impact.engine.web import MemberSegments, pack_structure, web_segment
     from impact.model.split import scalar_split
@@ -262,9 +480,11 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
         state["y"] = seg.y[0]
 
     def flow_then_count(t, dt, x):
+        # the rest of the web sees the counts held over [t, t + dt] (between events the counted
+        # species change by events only)
+        state["y"][cols] = x / u
         if t + dt - state["from"] >= COUPLING_STEP or t + dt >= t1:
             flow(t + dt)
-        state["y"][cols] = x / u  # the counted species change by events only
 
     x, low, ok = count_events(x0, t0, t1, rates, rng, flow_then_count)
     out = state["y"]
@@ -274,3 +494,54 @@ def counted_segment(web, p, c, coef_row: np.ndarray, t0: float, t1: float, y: np
     hi[cols] = np.maximum(y[cols], out[cols])  # (the highest count between is not kept)
     reason = state["reason"] or (0 if ok else int(Failure.TOO_MANY_STEPS))
     return out, lo, hi, reason, state["nfev"]
+
+
+def compiled_counted_members(st: np.ndarray, coef: np.ndarray, t0: float, t1: float, y: np.ndarray,
+                             counting: Counting, rngs: list, *, rtol, atol, max_steps: int = 100_000,
+                             blowup: float = 1e12):
+    """Members through one segment with their counted species as random events, through the
+    compiled counting kernel (:func:`counted_run`): for each member the numbers of
+    :func:`reference_counted_segment`, from the same random draws. The arrays are checked once for
+    all of them at the boundary.
+
+    Parameters
+    ----------
+    st : int64 ndarray
+        Structure table (:func:`impact.engine.web.pack_structure`).
+    coef : ndarray (m, P)
+        The members' coefficient rows for the segment.
+    y : ndarray (m, n)
+        States at ``t0``.
+    rngs : list of numpy.random.Generator (m,)
+        Each member's own stream, advanced in place.
+
+    Returns
+    -------
+    (y, ymin, ymax, reason, nfev) : states at ``t1`` (m, n), running extremes (m, n), failure
+        codes (m,) int and right-hand-side evaluations.
+    """
+    from impact.engine.boundary import check_kernel_arrays
+    from impact.engine.web import tolerance
+
+    m, n = y.shape
+    y = np.ascontiguousarray(y, dtype=float)
+    coef = np.ascontiguousarray(coef, dtype=float)
+    rtol, atol = tolerance(rtol, n, "rtol"), tolerance(atol, n, "atol")
+    if len(rngs) != m:
+        raise ValueError(f"{len(rngs)} random streams for {m} members")
+    x0 = np.array([counting.whole(y[r], rngs[r]) for r in range(m)], dtype=np.int64).reshape(m, counting.columns.size)
+    cols = np.ascontiguousarray(counting.columns, dtype=np.int64)
+    per_unit = np.ascontiguousarray(counting.per_unit, dtype=float)
+    out, lo, hi = np.empty((m, n)), np.empty((m, n)), np.empty((m, n))
+    reason = np.zeros(m, dtype=np.int64)
+    check_kernel_arrays("counted_run", st, coef=coef, y=y, cols=cols, per_unit=per_unit, x0=x0, rtol=rtol,
+                        atol=atol, out=out, lo=lo, hi=hi)  # (boundary into compiled code: rows of these go in)
+    kernel = counting_kernel(st)
+    nfev = 0
+    for r in range(m):
+        code, e = kernel.counted_run(st, coef[r:r + 1], float(t0), float(t1), y[r], cols, per_unit, x0[r], rngs[r],
+                                     float(TAU_EPSILON), rtol, atol, int(max_steps), float(blowup), out[r], lo[r],
+                                     hi[r])
+        reason[r] = code
+        nfev += int(e)
+    return out, lo, hi, reason, nfev

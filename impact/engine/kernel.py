@@ -20,7 +20,7 @@ import numba
 import numpy as np
 
 from impact.engine.control import (ERROR_EXPONENT, MAX_FACTOR, MIN_FACTOR, MIN_STEP_ULPS, SAFETY, DormandPrince54,
-    Failure)
+    Failure, template)
 
 from impact.model.terms import HEAD_S, HEADER
 
@@ -46,19 +46,6 @@ kernel_jit = numba.njit(cache=True, nogil=True, error_model="numpy")
 # Pieces of the step loop are inlined into it at numba's level: as separate functions they cost
 # about a sixth of the kernel's speed (measured with bench/bench_engine.py).
 kernel_inline = numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
-
-
-def template(jit: str):
-    """Mark a function as source for the generated modules, compiled there with the decorator named
-    ``jit`` (``"kernel_jit"`` or ``"kernel_inline"``) around the module's own right-hand side.
-
-    The function is returned unchanged (plain Python: here it has no right-hand side to call);
-    :func:`impact.engine.generate.template_source` prints it with its decorator.
-    """
-    def mark(fn):
-        fn.jit = jit
-        return fn
-    return mark
 
 
 @kernel_jit

@@ -14,8 +14,9 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from impact.case import ARRIVAL_KINDS, Case, Option
-from impact.engine.individuals import Counting, counted_segment
-from impact.engine.web import DEFAULT_ENGINE, Jumps, coefficient_columns, pack_coefficients, web_run, web_segment
+from impact.engine.individuals import Counting, compiled_counted_members, counted_segment
+from impact.engine.web import (DEFAULT_ENGINE, Jumps, coefficient_columns, pack_coefficients, pack_structure, web_run,
+    web_segment)
 from impact.model import Controls, FoodWeb, WebParams, controlled_coefficients, segment_coefficients
 
 REASON_IMPLAUSIBLE = {"extinct": "a species present today fell below its quasi-extinction level during spin-up",
@@ -377,19 +378,24 @@ def counted_members(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: floa
     if not rows.size:
         return 0
     coef = pack_coefficients(segment_coefficients(web, p, c), rows)
-    nfev = 0
-    for r, m in enumerate(rows):
+    for m in rows:
         if int(m) not in streams:
             streams[int(m)] = counting.stream(int(m))
-        rng = streams[int(m)]
-        out, ymin, ymax, why, n = counted_segment(web, p, c, coef[r:r + 1], t0, t1, y[m], int(m), counting, rng,
-                                                  rtol=case.rtol, atol=case.atol, engine=engine)
-        nfev += n
-        y[m], h[m] = out, np.nan  # the next continuous segment chooses its first step afresh
-        lo[m] = np.minimum(lo[m], ymin)
-        hi[m] = np.maximum(hi[m], ymax)
-        if why:
-            failed[m], reason[m] = True, why
+    rngs = [streams[int(m)] for m in rows]
+    if engine == "numpy":
+        parts = [counted_segment(web, p, c, coef[r:r + 1], t0, t1, y[m], int(m), counting, rngs[r],
+                                 rtol=case.rtol, atol=case.atol, engine=engine) for r, m in enumerate(rows)]
+        out, ymin, ymax = (np.array([part[i] for part in parts]) for i in range(3))
+        why = np.array([part[3] for part in parts])
+        nfev = sum(part[4] for part in parts)
+    else:
+        out, ymin, ymax, why, nfev = compiled_counted_members(pack_structure(web), coef, t0, t1, y[rows], counting,
+                                                              rngs, rtol=case.rtol, atol=case.atol)
+    y[rows], h[rows] = out, np.nan  # the next continuous segment chooses its first step afresh
+    lo[rows] = np.minimum(lo[rows], ymin)
+    hi[rows] = np.maximum(hi[rows], ymax)
+    bad = why != 0
+    failed[rows[bad]], reason[rows[bad]] = True, why[bad]
     return nfev
 
 

@@ -45,16 +45,18 @@ def substitute(e: Expr, old: str, new: str) -> Expr:
     return type(e)(**kwargs)
 
 
-def split_lines(s: Structure, pr: Printer) -> list[str]:
+def split_lines(s: Structure, pr: Printer, timed_guard: bool = True) -> list[str]:
     """Statements computing the program and, beside it, ``g{i}`` and ``l{i}`` for every state
-    (whole numpy columns, or plain numbers when ``pr`` prints for numbers)."""
+    (whole numpy columns, or plain numbers when ``pr`` prints for numbers). With ``timed_guard``
+    the seasonal statements run only when ``t is not None`` (None: the season mean); without it
+    they always run (compiled code, which is always given a time)."""
     out = []
     pos = (lambda x: f"np.maximum({x}, 0.0)") if pr.numpy else (lambda x: f"max({x}, 0.0)")  # noqa: E731
     for stmt in program(s):
         line = [f"{stmt.target} = {pr(stmt.expr)}"]
         if _is_rate(stmt.target, s.n):
             line += _split(stmt, s.n, pr, pos)
-        out += ["if t is not None:"] + [f"    {x}" for x in line] if stmt.timed else line
+        out += ["if t is not None:"] + [f"    {x}" for x in line] if stmt.timed and timed_guard else line
     return out
 
 
@@ -116,19 +118,28 @@ def numpy_split(st: np.ndarray):
     return _cache[key]
 
 
+def scalar_split_body(st: np.ndarray, timed_guard: bool = True) -> list[str]:
+    """Statements of one member's split in plain numbers: read ``cf`` (P,) and ``y`` (n,) at time
+    ``t``, leave the gains and losses in ``g{i}``, ``l{i}``. The body of :func:`scalar_split`, and
+    of the compiled split beside the kernels (:mod:`impact.engine.individuals`)."""
+    s = Structure.decode(st)
+    pr = Printer(s.col, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=False)
+    body = [f"k{k} = cf[{k}]" for k in used_columns(program(s), s.col)]
+    return body + [f"y{i} = y[{i}]" for i in range(s.n)] + split_lines(s, pr, timed_guard)
+
+
 def scalar_split(st: np.ndarray):
     """``split(t, y, cf) -> (gains, losses)`` for one member in plain Python numbers (y (n,), cf (P,)
     its coefficient row, t a number): the statements of :func:`numpy_split`, at a fraction of the
-    cost for a single member (counted members are stepped one at a time)."""
+    cost for a single member (the reference for counted members, which the compiled engines run
+    with the same statements compiled)."""
     key = ("scalar", st.tobytes())
     if key not in _cache:
         import math
 
-        s = Structure.decode(st)
-        pr = Printer(s.col, lambda k: f"k{k}", lambda i: f"y{i}", lambda i: f"v{i}", numpy=False)
-        body = [f"k{k} = cf[{k}]" for k in used_columns(program(s), s.col)]
-        body += [f"y{i} = y[{i}]" for i in range(s.n)] + split_lines(s, pr)
-        body.append(f"return [{', '.join(f'g{i}' for i in range(s.n))}], [{', '.join(f'l{i}' for i in range(s.n))}]")
+        n = int(st[1])
+        body = scalar_split_body(st)
+        body.append(f"return [{', '.join(f'g{i}' for i in range(n))}], [{', '.join(f'l{i}' for i in range(n))}]")
         source = "def split(t, y, cf):\n" + "".join(f"    {x}\n" for x in body)
         scope = {"math": math}
         exec(compile(source, "<impact.model.split scalar>", "exec"), scope)  # noqa: S102 - our own generated source

@@ -50,6 +50,9 @@ def valid_arguments(m: int = 3):
                            lg=f(m), low=f(m, n), high=f(m, n), acc=f(m, n), sec_vals=f(m, 8), sec_count=i8(m),
                            reason=i1(m), nsteps=i8(m)),
         "batch_jvp": dict(coef=coef, y=y, v=f(m, n), out=f(m, n), jv=f(m, n)),
+        "counted_run": dict(coef=coef, y=y, cols=np.array([0, 1], np.int64), per_unit=np.full(2, 10.0),
+                            x0=np.full((m, 2), 3, np.int64), rtol=f(n), atol=f(n), out=f(m, n), lo=f(m, n),
+                            hi=f(m, n)),
     }
     return web, st, args
 
@@ -65,8 +68,8 @@ def test_the_structure_gives_the_coefficient_width_pack_coefficients_writes():
             assert sizes["n"] == web.n_state
 
 
-# arguments that set a free size (segments K, jumps E, output slots T, section capacity C)
-BINDS = {"times", "jump_kind", "states", "sec_vals"}
+# arguments that set a free size (segments K, jumps E, output slots T, section capacity C, counted species k)
+BINDS = {"times", "jump_kind", "states", "sec_vals", "cols"}
 
 
 @pytest.mark.parametrize("entry", sorted(CONTRACTS))
@@ -105,6 +108,10 @@ def test_valid_arrays_pass_and_every_damaged_argument_is_named(entry):
     ("run_members", "jump_start", lambda n: np.array([0, 0, 1, 2, 3], np.int64), r"\[0, 2\]"),
     ("run_members", "slot_of", lambda n: np.array([-1, 0, -1, 2], np.int64), r"\[-1, 1\]"),
     ("run_members", "coef", lambda n: None, "1 or 3 segments"),
+    ("counted_run", "cols", lambda n: np.array([0, n], np.int64), r"\[0, "),
+    ("counted_run", "x0", lambda n: np.array([[3, -1]] * 3, np.int64), r"\[0, "),
+    ("counted_run", "y", lambda n: -np.ones((3, n)), "non-negative"),
+    ("counted_run", "per_unit", lambda n: np.array([10.0, 0.0]), "positive"),
 ])
 def test_index_arrays_out_of_range_are_refused(entry, name, value, message):
     web, st, all_args = valid_arguments()
@@ -140,6 +147,7 @@ PROBE = textwrap.dedent("""
     from impact.engine import tangent
     from impact.engine.web import no_jumps, pack_coefficients, pack_structure, web_run, web_segment
     from impact.engine.jacobian import WebTangent
+    from impact.engine.individuals import Counting, compiled_counted_members
     from impact.model import segment_coefficients
 
     web, p, c = random_web(6, 3, new_terms=True)  # (the arrays are refused before a kernel is compiled)
@@ -148,6 +156,7 @@ PROBE = textwrap.dedent("""
     n = web.n_state
     narrow = np.ascontiguousarray(p.initial[:, :-1])   # one state column too few: read past the end
     coef = pack_coefficients(segment_coefficients(web, p, c))
+    counting = Counting(np.array([0]), np.array([10.0]), np.array([50.0]), np.random.default_rng)
     probes = {{
         "web_segment": lambda: web_segment(web, p, c, 0.0, 1.0, narrow, rtol=1e-6, atol=1e-9),
         "web_segment coef": lambda: web_segment(web, p, c, 0.0, 1.0, p.initial, rtol=1e-6, atol=1e-9,
@@ -164,6 +173,9 @@ PROBE = textwrap.dedent("""
                                                      rtol=np.full(n - 1, 1e-6), atol=np.full(n - 1, 1e-9)),
         "lanes": lambda: web_segment(*plain, 0.0, 1.0, plain[1].initial[:, :-1], rtol=1e-6, atol=1e-9, engine="lanes"),
         "batch_jvp": lambda: WebTangent(*plain)(None, plain[1].initial[:, :-1], plain[1].initial[:, :-1], np.arange(3)),
+        "counted_run": lambda: compiled_counted_members(pack_structure(web), coef, 0.0, 1.0, narrow, counting,
+                                                        [np.random.default_rng(r) for r in range(3)], rtol=1e-6,
+                                                        atol=1e-9),
     }}
     for name, call in probes.items():
         try:
@@ -183,8 +195,8 @@ def test_wrong_shapes_at_every_dispatch_are_refused_not_a_crash(tmp_path):
                          text=True, timeout=300, cwd=tmp_path)
     assert run.returncode == 0, (run.returncode, run.stderr[-2000:])
     lines = run.stdout.splitlines()
-    assert len(lines) == 8 and all("refused:" in line for line in lines), run.stdout
+    assert len(lines) == 9 and all("refused:" in line for line in lines), run.stdout
     assert "y0" in lines[0] and "coef" in lines[1] and "section" in lines[4] and "segment: y0" in lines[6]
-    assert "batch_jvp: y" in lines[7]
+    assert "batch_jvp: y" in lines[7] and "counted_run: y" in lines[8]
     # every compiled entry point is reached through its dispatch, and refuses there
     assert {line.split("refused: ")[1].split(":")[0] for line in lines} == set(CONTRACTS)

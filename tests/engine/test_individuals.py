@@ -191,3 +191,44 @@ def test_risk_table_reports_zero_individuals_beside_quasi_extinction(tmp_path):
         q = risk[(risk.metric == "quasi_extinction") & (risk.option == row.option) & (risk.species == "fox")]
         assert row.value <= float(q.value.iloc[0])  # none left is below any quasi-extinction level (0.05/ha = 1 fox)
     assert float(ext[ext.option == "remove"].value.iloc[0]) > 0.0
+
+
+@pytest.mark.parametrize("area,switch", [(20.0, 30.0), (2000.0, 6000.0)])
+def test_compiled_counting_repeats_the_reference_loop_to_the_bit(tmp_path, monkeypatch, area, switch):
+    # the compiled counting kernel (impact.engine.individuals.counted_run) runs the reference loop's
+    # operations and random draws in its order: every counted member's numbers are the same as
+    # those of reference_counted_segment (the Python loop, with the compiled segments), to the bit;
+    # a few dozen foxes go event by event, thousands by leaps
+    import impact.engine.simulate as simulate
+    from impact.engine.individuals import compiled_counted_members, reference_counted_segment
+    from impact.ensemble.draws import draw_ensemble
+    from impact.risk.runs import run_options
+
+    data = web_case(members=40)
+    data["case"]["horizon"] = 10.0
+    data["risk"]["horizons"] = [10.0]
+    data["interventions"][2]["end"] = 10.0
+    data["individuals"] = {"fox": {"area": area, "switch_below": switch}}
+    case = load_case(write_case(tmp_path, data))
+    ens = draw_ensemble(case, 40, case.seed)
+    counted = []
+
+    def compiled(st, coef, t0, t1, y, counting, rngs, **tol):
+        counted.append(len(rngs))
+        return compiled_counted_members(st, coef, t0, t1, y, counting, rngs, **tol)
+
+    monkeypatch.setattr(simulate, "compiled_counted_members", compiled)
+    fast = run_options(case, ens, case.seed)
+    web = build_web(case)
+
+    def reference(st, coef, t0, t1, y, counting, rngs, *, rtol, atol):
+        parts = [reference_counted_segment(web, None, None, coef[r:r + 1], t0, t1, y[r], r, counting, rngs[r],
+                                           rtol=rtol, atol=atol, engine="compiled") for r in range(len(rngs))]
+        return (*(np.array([part[i] for part in parts]) for i in range(4)), sum(part[4] for part in parts))
+
+    monkeypatch.setattr(simulate, "compiled_counted_members", reference)
+    slow = run_options(case, ens, case.seed)
+    assert sum(counted) > 20  # the comparison covers many counted member-segments
+    for name, run in fast.items():
+        for field in ("states", "cummin", "cummax", "reason"):
+            assert np.array_equal(getattr(run, field), getattr(slow[name], field), equal_nan=True), (name, field)
