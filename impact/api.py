@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import platform
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from importlib import metadata
@@ -397,7 +398,9 @@ def calibrate(case: Case | str | Path, members: int | None = None, seed: int | N
     members = members if members is not None else case.members
     seed = seed if seed is not None else case.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
-    ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
+    _compile_aside(case, flow=False, lanes=members >= LANES_ASIDE_MEMBERS)
+    with _helpers_ended():
+        ens, cal = build_ensemble(case, members, seed, progress=progress, executor=executor)
     tables = {"parameters.csv": parameters_table(case, ens),
               "priors.csv": priors_table(case), **calibration_tables(case, ens, cal, seed)}
     manifest = run_header(case, command or ["python", "impact.api.calibrate"], ("calibrate",),
@@ -511,21 +514,42 @@ def assess(case: Case | str | Path, settings: AssessSettings | None = None, *, m
     settings = replace(settings or AssessSettings(), **{k: v for k, v in overrides.items() if v is not None})
     executor = executor or InProcess()
     settings = settings.resolved(case, ensemble)
-    if settings.dynamics:
-        _compile_flow_aside(case)
-    try:
+    _compile_aside(case, flow=settings.dynamics, lanes=settings.members >= LANES_ASIDE_MEMBERS)
+    with _helpers_ended():
         return _assessment(case, settings, progress, executor, store, block, chunk, command, ensemble)
-    finally:
-        if settings.dynamics:  # a run that ended before its regime screen leaves no helper behind
-            from impact.engine.generate import stop_compiling
-
-            stop_compiling()
 
 
-def _compile_flow_aside(case: Case):
-    """Have the regime screen's compiled tangent flow compiled in a helper process from the start
-    of the run, when it is not cached (:func:`impact.engine.generate.compile_flow_aside`)."""
-    from impact.engine.generate import compile_flow_aside
+@contextmanager
+def _helpers_ended():
+    """End the compile helpers of :func:`_compile_aside` with the run: all of them when it fails or
+    is stopped; on success those whose work only this run needed (the block engine's helper, whose
+    work serves later runs, finishes it)."""
+    from impact.engine.generate import stop_compiling
+
+    try:
+        yield
+    except BaseException:
+        stop_compiling()
+        raise
+    stop_compiling(keep=("lanes",))
+
+
+# From this many members a run has the block engine (impact.engine.lanes) compiled aside for the
+# runs after it, when the kernel cache lacks it: its machine code serves every later run of the
+# structure, and a small run would not repay the processor time
+LANES_ASIDE_MEMBERS = 500
+
+
+def _compile_aside(case: Case, flow: bool, lanes: bool):
+    """Have kernels compiled in low-priority helper processes from the start of the run, when they
+    are not cached (:func:`impact.engine.generate.compile_aside`): the regime screen's tangent flow
+    (``flow``), which the run waits for when it comes to it, and the block engine (``lanes``),
+    which this run uses only if it is ready in time (the engine "auto" of :mod:`impact.engine.web`)
+    and which is left to finish for later runs."""
+    if not (flow or lanes):
+        return
+    from impact.engine.generate import compile_aside, compile_flow_aside
+    from impact.engine.lanes import lanes_ready
     from impact.engine.web import pack_coefficients, pack_structure
     from impact.model import Controls, build_web, segment_coefficients, web_params
     from impact.dynamics.scan import nominal_values
@@ -533,7 +557,11 @@ def _compile_flow_aside(case: Case):
     web = build_web(case)  # every web has a compiled J·v (impact.model.terms)
     p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
     n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
-    compile_flow_aside(pack_structure(web), n_coef)
+    st = pack_structure(web)
+    if flow:
+        compile_flow_aside(st, n_coef)
+    if lanes and not lanes_ready(st):
+        compile_aside(st, "lanes", n_coef)
 
 
 def _assessment(case: Case, settings: AssessSettings, progress, executor, store, block, chunk, command,

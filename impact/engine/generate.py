@@ -44,6 +44,9 @@ def batch_jvp(st, coef, t, y, v, out, jv):
 """
 _loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
 _loading = threading.Lock()
+# what a run writes to a helper's standard input when the helper may outlive it
+KEEP_GOING = b"finish\n"
+_stems: dict[tuple[str, bytes], str] = {}  # (prefix, structure bytes) -> file stem of its module
 # Seconds a run waits for a compile helper before ending it and compiling itself (a compilation
 # takes 5-15 s on a 2-core machine; the margin covers a loaded one).
 HELPER_WAIT = 300.0
@@ -228,15 +231,32 @@ def _load(st: np.ndarray, prefix: str, make_source):
                     helper.wait()
                     if not isinstance(exc, subprocess.TimeoutExpired):
                         raise
+                finally:
+                    release(helper)
             _loaded[memo] = _write_and_import(st, prefix, make_source, folder)
     return _loaded[memo]
 
 
+def kernel_cached(st: np.ndarray, prefix: str, make_source, entries: tuple[str, ...]) -> bool:
+    """Whether the module ``make_source(st)`` writes (file prefix ``prefix``) has machine code in the
+    kernel cache for every function named in ``entries``."""
+    memo = (prefix, st.tobytes())
+    if memo not in _stems:  # printing a module's source takes milliseconds; a run asks at every call
+        source = make_source(st)
+        _stems[memo] = prefix + "_" + hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
+    stem = _stems[memo]
+    folder = cache_dir() / "__pycache__"
+    return all(any(folder.glob(f"{stem}.{entry}-*.nbi")) for entry in entries)
+
+
+def loaded(st: np.ndarray, prefix: str) -> bool:
+    """Whether this process has the module of prefix ``prefix`` for structure ``st`` at hand."""
+    return (str(cache_dir()), prefix, st.tobytes()) in _loaded
+
+
 def flow_cached(st: np.ndarray) -> bool:
     """Whether the tangent flow of structure ``st`` has machine code in the kernel cache."""
-    source = flow_module_source(st)
-    stem = "flow_" + hashlib.sha256((source + numba.__version__).encode()).hexdigest()[:20]
-    return any((cache_dir() / "__pycache__").glob(f"{stem}.flow_batch-*.nbi"))
+    return kernel_cached(st, "flow", flow_module_source, ("flow_batch",))
 
 
 def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
@@ -255,26 +275,51 @@ def compile_flow_aside(st: np.ndarray, n_coef: int) -> bool:
     n_coef : int
         Coefficient columns of the web (the width of its packed coefficient rows).
     """
-    memo = (str(cache_dir()), "flow", st.tobytes())
-    if memo in _loaded or memo in _compiling or flow_cached(st):
+    if flow_cached(st):
         return False
-    cmd = [sys.executable, "-m", "impact.engine.precompile", ",".join(str(int(x)) for x in st), str(int(n_coef))]
-    try:
-        _compiling[memo] = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+    return compile_aside(st, "flow", n_coef)
+
+
+def compile_aside(st: np.ndarray, prefix: str, n_coef: int) -> bool:
+    """Start a low-priority helper process compiling the module of prefix ``prefix`` ("flow" or
+    "lanes") for structure ``st`` (see :func:`compile_flow_aside`), unless this process has it or
+    a helper is at it. Returns whether one was started."""
+    memo = (str(cache_dir()), prefix, st.tobytes())
+    if memo in _loaded or (memo in _compiling and _compiling[memo].poll() is None):
+        return False
+    cmd = [sys.executable, "-m", "impact.engine.precompile", prefix, ",".join(str(int(x)) for x in st),
+           str(int(n_coef))]
+    try:  # (its standard input tells it whether to outlive this process: impact.engine.precompile)
+        _compiling[memo] = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.DEVNULL,
                                             stderr=subprocess.DEVNULL)
     except OSError:  # no interpreter to start (an embedded Python): the run compiles it when needed
         return False
     return True
 
 
-def stop_compiling():
-    """End the helpers :func:`compile_flow_aside` started that nobody waited for (a run that ends early)."""
+def stop_compiling(keep: tuple[str, ...] = ()):
+    """End the helpers :func:`compile_aside` started that nobody waited for (a run that ends early),
+    except those of the prefixes in ``keep``, told to finish their work for later runs even after
+    this process ends (a helper not told so ends with this process, however it ends)."""
     with _loading:
-        while _compiling:
-            _, helper = _compiling.popitem()
+        for memo in list(_compiling):
+            helper = _compiling.pop(memo)
+            if memo[1] in keep and helper.poll() is None:
+                release(helper)
+                continue
             if helper.poll() is None:
                 helper.kill()
             helper.wait()
+            release(helper)
+
+
+def release(helper: subprocess.Popen):
+    """Tell a helper of :func:`compile_aside` that it may outlive this process, and let go of it."""
+    try:
+        helper.stdin.write(KEEP_GOING)
+        helper.stdin.close()
+    except (OSError, ValueError):  # it has ended already (a closed pipe)
+        pass
 
 
 def _write_and_import(st: np.ndarray, prefix: str, make_source, folder: Path):

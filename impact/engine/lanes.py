@@ -14,6 +14,8 @@ and machine like the scalar kernels (:func:`impact.engine.generate.generated`).
 from __future__ import annotations
 
 import inspect
+import math
+import time
 
 import numpy as np
 
@@ -78,3 +80,31 @@ def specialised_lanes(st: np.ndarray):
     """The generated lane module of structure ``st`` (``segment`` and ``run_members`` with the
     scalar kernel's arguments and numbers), written and compiled on first use."""
     return generate.generated(st, "lanes", module_source)
+
+
+# (kernel cache folder, structure) whose block engine is at hand (once true, it stays so)
+_ready: set[tuple[str, bytes]] = set()
+# the entry points a run calls (impact.engine.web.web_run and web_segment)
+ENTRIES = ("run_members", "segment")
+
+
+# seconds between two looks into the kernel cache for a block engine not yet there (a look lists
+# a folder; a run asks at every call of the engine)
+LOOK_EVERY = 2.0
+_looked: dict[tuple[str, bytes], float] = {}
+
+
+def lanes_ready(st: np.ndarray) -> bool:
+    """Whether the block engine of structure ``st`` can be had without compiling it: this process
+    has it, or the kernel cache holds its machine code for both entry points (looked for at most
+    every :data:`LOOK_EVERY` seconds)."""
+    key = (str(generate.cache_dir()), st.tobytes())
+    if key in _ready:
+        return True
+    now = time.monotonic()
+    if generate.loaded(st, "lanes") or (now - _looked.get(key, -math.inf) >= LOOK_EVERY and
+                                        generate.kernel_cached(st, "lanes", module_source, ENTRIES)):
+        _ready.add(key)
+        return True
+    _looked[key] = now
+    return False

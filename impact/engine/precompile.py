@@ -1,15 +1,17 @@
-"""The helper process of :func:`impact.engine.generate.compile_flow_aside`.
+"""The helper process of :func:`impact.engine.generate.compile_aside`.
 
-``python -m impact.engine.precompile ST P`` compiles the tangent flow of structure table ``ST``
-(comma-separated integers) for coefficient rows of ``P`` columns by running it once on one
-member with zero coefficients: the arguments have the types of a real run's (the numbers do not
-matter), so numba's disk cache then holds the machine code a run loads.
+``python -m impact.engine.precompile KIND ST P`` compiles the generated module of kind ``KIND``
+(``flow``: the tangent flow; ``lanes``: the block engine's ``run_members`` and ``segment``) of
+structure table ``ST`` (comma-separated integers) for coefficient rows of ``P`` columns, by running
+it once on one member with zero coefficients: the arguments have the types of a real run's (the
+numbers do not matter), so numba's disk cache then holds the machine code a run loads.
 """
 
 from __future__ import annotations
 
 import os
 import sys
+import threading
 
 import numpy as np
 
@@ -24,13 +26,45 @@ def compile_flow(st: np.ndarray, n_coef: int):
                  atol=np.full(n, 1e-9), max_steps=100)
 
 
+def compile_lanes(st: np.ndarray, n_coef: int):
+    """Compile (or load) the block engine of ``st``: one whole run and one segment of a dummy
+    member, with the argument types :func:`impact.engine.web.web_run` and
+    :func:`impact.engine.web.web_segment` pass."""
+    from impact.engine.lanes import specialised_lanes
+
+    n = int(st[1])
+    module = specialised_lanes(st)
+    tol = (np.full(n, 1e-6), np.full(n, 1e-9))
+    y0, f1, i1, i8 = np.ones((1, n)), (lambda *s: np.zeros(s)), np.zeros(1, np.int8), np.zeros(1, np.int64)
+    module.run_members(st, f1(1, 1, n_coef), np.array([0.0, 0.5]), y0, np.full(1, np.nan), np.zeros(3, np.int64),
+                       np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), f1(1, 0), f1(1, 0), *tol, 100, 1e12,
+                       np.array([0, 1], np.int64), f1(1, 2, n), f1(1, 2, n), f1(1, 2, n), i1.copy(), f1(1))
+    module.segment(st, f1(1, n_coef), y0, np.full(1, np.nan), 0.0, 0.5, *tol, 100, 1e12, f1(1, n), f1(1, n),
+                   f1(1, n), f1(1), i1.copy(), i8)
+
+
+def watch_parent():
+    """End this helper when the run that started it ends without saying it may go on.
+
+    The run holds the other end of this process's standard input: it writes
+    :data:`impact.engine.generate.KEEP_GOING` before it lets go of a helper whose work serves later
+    runs; a run killed or ended by a signal closes the pipe without it, and the helper goes too.
+    """
+    from impact.engine.generate import KEEP_GOING
+
+    if sys.stdin.buffer.read() != KEEP_GOING:
+        os._exit(3)
+
+
 def main(argv: list[str]) -> int:
     try:
         os.nice(10)  # the run this serves comes first
     except OSError:  # pragma: no cover - not permitted here
         pass
-    st = np.array([int(x) for x in argv[0].split(",")], dtype=np.int64)
-    compile_flow(st, int(argv[1]))
+    threading.Thread(target=watch_parent, name="parent-watch", daemon=True).start()
+    kind = argv[0]
+    st = np.array([int(x) for x in argv[1].split(",")], dtype=np.int64)
+    {"flow": compile_flow, "lanes": compile_lanes}[kind](st, int(argv[2]))
     return 0
 
 

@@ -28,7 +28,12 @@ __all__ = ["ENGINES", "LANE_ENGINE", "DEFAULT_ENGINE", "pack_structure", "pack_c
 ENGINES = ("compiled", "numpy")
 # Blocks of members stepped together (impact.engine.lanes): selectable, the same numbers as "compiled"
 LANE_ENGINE = "lanes"
-DEFAULT_ENGINE = "compiled"
+# The block engine when its machine code is at hand (loaded, or in the kernel cache), else the
+# scalar kernel: the same numbers either way, so a run may change between them at any call. Its
+# first compilation costs about twice the scalar kernel's, so a run never waits for it: a large
+# run has it compiled aside for later ones (impact.engine.generate.compile_aside).
+AUTO_ENGINE = "auto"
+DEFAULT_ENGINE = AUTO_ENGINE
 
 
 def coefficient_columns(co: SegmentCoefficients) -> dict[str, slice]:
@@ -48,6 +53,7 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     ``engine="lanes"`` gives the block kernel (:mod:`impact.engine.lanes`), the same numbers.
     numba is imported (and cached machine code loaded or compiled) on first use only.
     """
+    engine = ready_engine(st, engine)
     if engine == LANE_ENGINE:
         from impact.engine.lanes import specialised_lanes
 
@@ -55,6 +61,15 @@ def compiled_kernel(st: np.ndarray, engine: str = DEFAULT_ENGINE):
     from impact.engine.generate import specialised
 
     return specialised(st)
+
+
+def ready_engine(st: np.ndarray, engine: str) -> str:
+    """``engine``, with :data:`AUTO_ENGINE` made "lanes" or "compiled" for structure ``st``."""
+    if engine != AUTO_ENGINE:
+        return engine
+    from impact.engine.lanes import lanes_ready
+
+    return LANE_ENGINE if lanes_ready(st) else "compiled"
 
 
 def tolerance(value, n: int, name: str) -> np.ndarray:
@@ -107,8 +122,8 @@ def web_segment(web: FoodWeb, p: WebParams, c: Controls, t0: float, t1: float, y
         return integrate_segment(WebRHS(web, p, c), t0, t1, y0, rtol=rtol, atol=atol, h0=h0,
                                  members=members, nonnegative=True, max_steps=max_steps,
                                  blowup=blowup)
-    if engine not in (*ENGINES, LANE_ENGINE):
-        raise ValueError(f"engine must be one of {(*ENGINES, LANE_ENGINE)}, got {engine!r}")
+    if engine not in (*ENGINES, LANE_ENGINE, AUTO_ENGINE):
+        raise ValueError(f"engine must be one of {(*ENGINES, LANE_ENGINE, AUTO_ENGINE)}, got {engine!r}")
 
     if np.any(y0 < 0):
         raise ValueError("y0 has negative entries")
@@ -152,8 +167,8 @@ class MemberSegments:
 
     def __init__(self, web: FoodWeb, coef_row: np.ndarray, n: int, *, rtol, atol, engine: str = DEFAULT_ENGINE,
                  max_steps: int = 100_000, blowup: float = 1e12):
-        if engine not in ("compiled", LANE_ENGINE):
-            raise ValueError(f"engine must be 'compiled' or 'lanes' for member segments, got {engine!r}")
+        if engine not in ("compiled", LANE_ENGINE, AUTO_ENGINE):
+            raise ValueError(f"engine must be 'compiled', 'lanes' or 'auto' for member segments, got {engine!r}")
         self.st = pack_structure(web)
         self.coef = np.ascontiguousarray(coef_row, dtype=float)
         self.rtol, self.atol = tolerance(rtol, n, "rtol"), tolerance(atol, n, "atol")
@@ -250,8 +265,8 @@ def web_run(web: FoodWeb, coef: np.ndarray, times: np.ndarray, y0: np.ndarray, j
     RunResult
         The same numbers as :func:`web_segment` called segment by segment with the jumps between.
     """
-    if engine not in ("compiled", LANE_ENGINE):
-        raise ValueError(f"engine must be 'compiled' or 'lanes' for a whole run, got {engine!r}")
+    if engine not in ("compiled", LANE_ENGINE, AUTO_ENGINE):
+        raise ValueError(f"engine must be 'compiled', 'lanes' or 'auto' for a whole run, got {engine!r}")
     y0 = np.ascontiguousarray(y0, dtype=float)
     M, n = y0.shape
     if coef.shape[0] not in (1, len(times) - 1) or coef.shape[1] != M:

@@ -8,6 +8,7 @@ numbers never depend on which members share its block (checked exactly: lanes ne
 from __future__ import annotations
 
 import sys
+import time
 from dataclasses import replace
 from pathlib import Path
 
@@ -94,3 +95,29 @@ def test_every_newer_term_gives_the_scalar_kernels_numbers():
         assert np.array_equal(getattr(got, f), getattr(ref, f)), f
     for f in ("y", "ymin", "ymax", "h"):
         np.testing.assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-12, atol=0.0, equal_nan=True)
+
+
+def test_the_auto_engine_takes_the_block_engine_once_a_helper_has_compiled_it(tmp_path, monkeypatch):
+    # "auto" never compiles the block engine itself: it runs the scalar kernel until a helper
+    # process (impact.engine.generate.compile_aside) has put the block engine's machine code in the
+    # kernel cache, then loads it from there (a cache hit, no compilation in this process)
+    from impact.engine import lanes
+    from impact.engine.generate import compile_aside
+    from impact.engine.web import pack_coefficients, pack_structure, ready_engine
+    from impact.model import segment_coefficients
+
+    monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path / "kernels"))
+    monkeypatch.setattr(lanes, "LOOK_EVERY", 0.0)
+    web, p, c = random_web(3, 4)
+    st = pack_structure(web)
+    assert ready_engine(st, "auto") == "compiled" and ready_engine(st, "lanes") == "lanes"
+    assert compile_aside(st, "lanes", pack_coefficients(segment_coefficients(web, p, c)).shape[1])
+    deadline = time.monotonic() + 600.0
+    while not lanes.lanes_ready(st) and time.monotonic() < deadline:
+        time.sleep(0.5)
+    assert ready_engine(st, "auto") == "lanes"
+    got = web_segment(web, p, c, 0.0, 2.0, p.initial, rtol=1e-6, atol=1e-9, engine="auto")
+    ref = web_segment(web, p, c, 0.0, 2.0, p.initial, rtol=1e-6, atol=1e-9, engine="numpy")
+    np.testing.assert_allclose(got.y, ref.y, rtol=1e-9, atol=1e-12)
+    stats = lanes.specialised_lanes(st).segment.stats
+    assert sum(stats.cache_hits.values()) == 1 and not sum(stats.cache_misses.values())
