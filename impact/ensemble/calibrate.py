@@ -129,6 +129,9 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
     late_min : ndarray (M, n_state)
         Minimum over [-spinup/2, 0].
     failed : ndarray (M,) bool
+    step : ndarray (M,)
+        The step size each member would go on with (NaN where it failed): small where its web is
+        stiff, a forecast of the work a nearby member's spin-up takes.
     """
     web = build_web(case)
     y = p.initial.copy()
@@ -137,7 +140,7 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
     recorded = np.full((M, R, n), np.nan)
     if case.spinup <= 0:
         recorded[:] = y[:, None, :]
-        return recorded, y.copy(), ~np.isfinite(y).all(axis=1)
+        return recorded, y.copy(), ~np.isfinite(y).all(axis=1), np.full(M, np.nan)
     half = -0.5 * case.spinup
     bounds = np.array(sorted({-case.spinup, half, *times.tolist()}))
     coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(M, web.n_species)))
@@ -159,31 +162,47 @@ def spin_up_recorded(case: Case, p: WebParams, times: np.ndarray):
     first, second = runs
     recorded = np.where(np.isnan(second.states[:, :R]), first.states[:, :R], second.states[:, :R])
     failed = (first.reason != 0) | (second.reason != 0)
-    return recorded, second.cummin[:, R], failed
+    return recorded, second.cummin[:, R], failed, np.where(failed, np.nan, second.h)
 
 
 @dataclass(frozen=True)
 class EvalTask:
-    """Unit-hypercube rows to spin up and weigh against the data (one chunk of a batch)."""
+    """Unit-hypercube rows to spin up and weigh against the data (one chunk of a batch).
+
+    ``forecast`` (n,), optional: each row's expected step size (the ``step`` of a nearby row's last
+    evaluation). Rows are then spun up in its order, so that the block engine's blocks hold rows of
+    like stiffness (a block runs as long as its slowest row); the results are the same in any order.
+    """
 
     case: Case
     unit: np.ndarray
+    forecast: np.ndarray | None = None
 
 
 def evaluate_chunk(task: EvalTask) -> dict[str, np.ndarray]:
-    """Spin up rows and return their log-likelihood, constraint distance and recorded states (a worker's function)."""
+    """Spin up rows and return their log-likelihood, constraint distance, recorded states and last
+    step sizes, in row order (a worker's function)."""
     case, unit = task.case, task.unit
+    order = None if task.forecast is None else np.argsort(task.forecast, kind="stable")
+    if order is not None:
+        unit = unit[order]
     values = parameter_values(case, unit)
     p = web_params(case, values, unit.shape[0])
     times = record_times(case)
-    recorded, late_min, failed = spin_up_recorded(case, p, times)
+    recorded, late_min, failed, step = spin_up_recorded(case, p, times)
     d = distance(case, recorded, times, late_min, failed)
     ll = log_likelihood(case, values, recorded, times) if case.monitoring else np.zeros(unit.shape[0])
-    return {"loglik": np.where(d["failed"], -np.inf, ll), "recorded": recorded, **d}
+    ev = {"loglik": np.where(d["failed"], -np.inf, ll), "recorded": recorded, "step": step, **d}
+    if order is None:
+        return ev
+    back = np.empty_like(order)
+    back[order] = np.arange(order.size)
+    return {k: v[back] for k, v in ev.items()}
 
 
-def evaluate(case: Case, unit: np.ndarray, executor=None) -> dict[str, np.ndarray]:
-    """Evaluate a batch of rows, split among the executor's workers; results in row order."""
+def evaluate(case: Case, unit: np.ndarray, executor=None, forecast: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """Evaluate a batch of rows, split among the executor's workers; results in row order.
+    ``forecast`` (M,), optional: as :class:`EvalTask`'s, for the whole batch."""
     from impact.run.execute import InProcess
 
     executor = executor or InProcess()
@@ -192,8 +211,9 @@ def evaluate(case: Case, unit: np.ndarray, executor=None) -> dict[str, np.ndarra
     # least (each chunk has a fixed cost) and EVAL_CHUNK at most (a long chunk would hold up an interrupt)
     size = min(EVAL_CHUNK, max(64, int(np.ceil(M / (EVAL_CHUNKS_PER_WORKER * max(executor.workers, 1))))))
     starts = list(range(0, M, size))
+    tasks = [EvalTask(case, unit[a:a + size], None if forecast is None else forecast[a:a + size]) for a in starts]
     parts: dict[int, dict] = {}
-    for i, res in executor.map(evaluate_chunk, [EvalTask(case, unit[a:a + size]) for a in starts]):
+    for i, res in executor.map(evaluate_chunk, tasks):
         parts[i] = res
     return {k: np.concatenate([parts[i][k] for i in range(len(starts))]) for k in parts[0]}
 
@@ -288,7 +308,7 @@ def move_chunk(task: MoveTask) -> tuple[np.ndarray, dict, int]:
     accepted = 0
     for inc, log_u in zip(task.increments, task.log_u):
         prop = sub.z + inc
-        ev = evaluate_chunk(EvalTask(task.case, _unit(prop)))
+        ev = evaluate_chunk(EvalTask(task.case, _unit(prop), sub.ev["step"]))  # a proposal's work is its particle's
         ok = _accept(sub.z, sub.ev, prop, ev, task.eps, task.beta, log_u)
         sub.replace(ok, prop, ev)
         accepted += int(ok.sum())
@@ -341,7 +361,7 @@ def _move(case, pop: _Population, eps: float, beta: float, rng, executor, budget
     if not n or n > budget_left:
         return pop, 0.0, 0, 1 if n else 0, 0
     prop = sub.z + rng.standard_normal((n, D)) @ chol.T
-    ev = evaluate(case, _unit(prop), executor)
+    ev = evaluate(case, _unit(prop), executor, forecast=sub.ev["step"])
     ok = _accept(sub.z, sub.ev, prop, ev, eps, beta, np.log(rng.random(n)))
     sub.replace(ok, prop, ev)
     accepted, a = int(ok.sum()), ok.mean()

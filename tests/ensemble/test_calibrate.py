@@ -133,7 +133,7 @@ def test_logistic_counts_follow_the_tools_own_model():
     # test a different model): its spin-up record at the monitoring times, to 1e-6 relative
     case = _logistic_case(None, 0)
     values = parameter_values(case, np.array([[0.3, 0.7]]))
-    recorded, _, _ = spin_up_recorded(case, web_params(case, values, 1), record_times(case))
+    recorded, _, _, _ = spin_up_recorded(case, web_params(case, values, 1), record_times(case))
     r, K = values["r"][0], values["K"][0]
     e = np.exp(r * (TIMES + SPINUP))
     np.testing.assert_allclose(np.ravel(recorded), K * START * e / (K + START * (e - 1.0)), rtol=1e-6)
@@ -182,6 +182,24 @@ def test_the_move_chunks_do_not_change_any_member(monkeypatch):
         threads.close()
     assert cal_whole.sampler == "smc" and cal_cut.simulations == cal_whole.simulations
     assert np.array_equal(whole.unit, cut.unit) and np.array_equal(whole.today, cut.today)
+
+
+def test_rows_spun_up_in_the_forecasts_order_give_the_same_evaluation():
+    """The sampler spins rows up in the order of their forecast step sizes (rows of like stiffness
+    share the block engine's blocks); each row's evaluation is the same, bit for bit, in any order
+    (on the scalar kernel here; the block engine's numbers do not depend on which members share a
+    block: tests/engine/test_lanes.py)."""
+    from impact.ensemble.calibrate import EvalTask, evaluate_chunk
+
+    case, _, _ = _conjugate_case(3, members=40)
+    unit = np.random.default_rng(5).random((40, len(case.parameters)))
+    plain = evaluate_chunk(EvalTask(case, unit))
+    assert np.isfinite(plain["step"]).all() and plain["step"].std() > 0  # a forecast that reorders the rows
+    for forecast in (plain["step"], -plain["step"], np.random.default_rng(6).random(40)):
+        ordered = evaluate_chunk(EvalTask(case, unit, forecast))
+        assert set(ordered) == set(plain)
+        for k, v in plain.items():
+            assert np.array_equal(ordered[k], v, equal_nan=True), k
 
 
 # ---- the constraint path (tolerance to 0) against a closed form ------------------------------------
