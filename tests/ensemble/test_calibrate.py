@@ -187,8 +187,8 @@ def test_the_move_chunks_do_not_change_any_member(monkeypatch):
 def test_rows_spun_up_in_the_forecasts_order_give_the_same_evaluation():
     """The sampler spins rows up in the order of their forecast step sizes (rows of like stiffness
     share the block engine's blocks); each row's evaluation is the same, bit for bit, in any order
-    (on the scalar kernel here; the block engine's numbers do not depend on which members share a
-    block: tests/engine/test_lanes.py)."""
+    (on the engine "auto" takes; that the block engine's numbers do not depend on which members
+    share a block is tests/engine/test_lanes.py's)."""
     from impact.ensemble.calibrate import EvalTask, evaluate_chunk
 
     case, _, _ = _conjugate_case(3, members=40)
