@@ -91,21 +91,26 @@ def equilibrium(web: FoodWeb, p: WebParams, c: Controls, y: np.ndarray) -> tuple
     eye = np.eye(n)
     ok = np.zeros(M, bool)
     for _ in range(NEWTON_ITERATIONS):
+        # a member that has converged stays where it is (and so converged): only the others are
+        # evaluated again, member by member as before
+        rows = np.flatnonzero(~ok)
+        xa, pa = x[rows], present[rows]
         with np.errstate(all="ignore"):
-            f = fun(t, x, idx)
-            J = jacobian(web, p, c, x, idx)
-            J = np.where(present[:, :, None] & present[:, None, :], J, eye)  # absent: x_i stays 0
-            f = np.where(present, f, 0.0)
+            f = fun(t[rows], xa, idx[rows])
+            J = jacobian(web, p, c, xa, idx[rows])
+            J = np.where(pa[:, :, None] & pa[:, None, :], J, eye)  # absent: x_i stays 0
+            f = np.where(pa, f, 0.0)
             scale = np.abs(J).sum(axis=2).max(axis=1) + 1e-300
-            ok = (np.abs(f) <= NEWTON_RESIDUAL * scale[:, None] * (np.abs(x) + 1.0)).all(axis=1)
-            if ok.all():
+            done = (np.abs(f) <= NEWTON_RESIDUAL * scale[:, None] * (np.abs(xa) + 1.0)).all(axis=1)
+            ok[rows] = done
+            if done.all():
                 break
             good = np.isfinite(J).all(axis=(1, 2)) & np.isfinite(f).all(axis=1) & (np.abs(np.linalg.det(J)) > 0)
-            step = np.zeros_like(x)
+            step = np.zeros_like(xa)
             step[good] = np.linalg.solve(J[good], f[good][:, :, None])[:, :, 0]
-            ratio = np.abs(step) / (NEWTON_MAX_MOVE * np.where(x > 0, x, np.inf))
-            damp = 1.0 / np.maximum(1.0, np.nanmax(np.where(present, ratio, 0.0), axis=1))
-            x = np.where(present & ~ok[:, None], x - damp[:, None] * step, x)
+            ratio = np.abs(step) / (NEWTON_MAX_MOVE * np.where(xa > 0, xa, np.inf))
+            damp = 1.0 / np.maximum(1.0, np.nanmax(np.where(pa, ratio, 0.0), axis=1))
+            x[rows] = np.where(pa & ~done[:, None], xa - damp[:, None] * step, xa)
     with np.errstate(all="ignore"):
         f = np.where(present, fun(t, x, idx), 0.0)
         J = jacobian(web, p, c, x, idx)
