@@ -249,7 +249,8 @@ class Counting:
 
 
 # The counting kernel's own functions, compiled (in this order) after the state kernel's step loop.
-COUNT_FUNCTIONS = ("leap_size", "total_rate", "chosen_event", "leap", "couple", "counted_run")
+COUNT_FUNCTIONS = ("leap_size", "total_rate", "chosen_event", "leap", "couple", "counted_rates", "next_events",
+                   "counted_run")
 
 
 @template("kernel_jit")
@@ -280,6 +281,46 @@ def couple(st, coef, t_from, t_end, cur, lo, hi, rtol, atol, max_steps, blowup, 
             hi[j] = nmax(hi[j], ymax[0, j])
             cur[j] = y_out[0, j]
     return code, nfev
+
+
+@template("kernel_inline")
+def counted_rates(st, cf, t, cur, x, cols, per_unit, yy, gain, loss, up, down):
+    """Birth and death propensities ``up``, ``down`` (k,) of the counted species at counts ``x``
+    with the rest of the web at ``cur`` (n,): the generated split (``web_split``) in individuals."""
+    for j in range(cur.shape[0]):
+        yy[j] = cur[j]
+    for j in range(cols.shape[0]):
+        yy[cols[j]] = x[j] / per_unit[j]
+    web_split(st, cf, t, yy, gain, loss)
+    for j in range(cols.shape[0]):
+        up[j] = gain[cols[j]] * per_unit[j]
+        down[j] = loss[cols[j]] * per_unit[j]
+
+
+@template("kernel_inline")
+def next_events(x, up, down, t, t1, eps, rng, new):
+    """The events of one step of :func:`count_events` from counts ``x`` (k,) at ``t``, applied to
+    ``x``: one by exact simulation or a leap. Returns the step and whether it reaches ``t1`` with
+    no event (the last)."""
+    k = x.shape[0]
+    a0 = total_rate(up, down)
+    if a0 <= 0.0:
+        return t1 - t, True
+    tau = min(leap_size(x, up, down, eps), t1 - t)
+    if tau * a0 < SSA_BELOW:
+        dt = rng.exponential(1.0 / a0)
+        if t + dt >= t1:
+            return t1 - t, True
+        e = chosen_event(up, down, rng.random() * a0)
+        if e < k:
+            x[e] += 1
+        else:
+            x[e - k] -= 1
+        return dt, False
+    step = leap(x, up, down, tau, rng, new)
+    for j in range(k):
+        x[j] = new[j]
+    return step, False
 
 
 @template("kernel_jit")
@@ -322,38 +363,10 @@ def counted_run(st, coef, t0, t1, y, cols, per_unit, x0, rng, eps, rtol, atol, m
         if t >= t1:
             ok = True
             break
-        for j in range(n):
-            yy[j] = out[j]
-        for j in range(k):
-            yy[cols[j]] = x[j] / per_unit[j]
-        web_split(st, cf, t, yy, gain, loss)
-        for j in range(k):
-            up[j] = gain[cols[j]] * per_unit[j]
-            down[j] = loss[cols[j]] * per_unit[j]
-        a0 = total_rate(up, down)
+        counted_rates(st, cf, t, out, x, cols, per_unit, yy, gain, loss, up, down)
         for j in range(k):
             before[j] = x[j]
-        step = t1 - t
-        last = False
-        if a0 <= 0.0:
-            last = True
-        else:
-            tau = min(leap_size(x, up, down, eps), t1 - t)
-            if tau * a0 < SSA_BELOW:
-                dt = rng.exponential(1.0 / a0)
-                if t + dt >= t1:
-                    last = True
-                else:
-                    e = chosen_event(up, down, rng.random() * a0)
-                    if e < k:
-                        x[e] += 1
-                    else:
-                        x[e - k] -= 1
-                    step = dt
-            else:
-                step = leap(x, up, down, tau, rng, new)
-                for j in range(k):
-                    x[j] = new[j]
+        step, last = next_events(x, up, down, t, t1, eps, rng, new)
         # the rest of the web moves on in steps of at least COUPLING_STEP, seeing the counts held
         # over [t, t + step] (as reference_counted_segment's flow)
         for j in range(k):
