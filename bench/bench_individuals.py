@@ -14,15 +14,15 @@ Only the members whose continuous run comes near a switch are run again, one at 
 their counted species' births and deaths as events (the rest keep their continuous numbers); the
 ratio grows with the share of such members (here the cats left by a failed eradication).
 
-Measured 2026-12-05 (2-core machine, 200 members), after the demo's cats came to be removed by
-effort over years 2-8 (so most members' cats pass through the counted range on the way to none):
-402 of 600 member runs changed by counting; continuous 0.15 CPU s, counted 4.97 CPU s: a ratio of
-about 34, NOT within the 2x target. Earlier the same day, with the cats removed by a one-off cut,
-36 of 600 runs were counted and the ratio was 8-9. Per counted member run about 12 ms: the
-per-event Python loop (one evaluation of the web's generated terms per birth or death, about 30 us)
-and one compiled segment call per 1/16 time unit (its arrays are now checked once per segment, not
-per call). What stands in the way of the target: the event loop and the rates run in Python;
-compiling them with the kernels generated from the declared terms is the way to it, not done yet.
+Measured 2026-12-05 (2-core machine, 200 members), with the demo's cats removed by effort over
+years 2-8 (so most members' cats pass through the counted range on the way to none): 402 of 600
+member runs changed by counting. With the counting loop in Python: continuous 0.15 CPU s, counted
+4.97 CPU s, a ratio of about 34. With the loop compiled beside the kernels (the same numbers):
+continuous 0.12-0.17 CPU s, counted 0.37-0.47 CPU s, a ratio of 2.7-3.2 (on a loaded machine), NOT
+within the 2x target. What stands in the way: a counted member's rerun goes segment by segment
+(each segment's coefficients packed in Python, one compiled call per member and segment, the
+continuous members of the rerun through their own segment calls), where the continuous run is
+one compiled call for the whole horizon; a whole-run counting kernel would remove that.
 """
 
 from __future__ import annotations
