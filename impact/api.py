@@ -534,6 +534,14 @@ def _helpers_ended():
     stop_compiling(keep=("lanes",))
 
 
+def _engine_at_hand(case: Case) -> str:
+    """The engine "auto" takes now for the case's web (:func:`impact.engine.web.ready_engine`)."""
+    from impact.engine.web import AUTO_ENGINE, pack_structure, ready_engine
+    from impact.model import build_web
+
+    return ready_engine(pack_structure(build_web(case)), AUTO_ENGINE)
+
+
 # From this many members a run has the block engine (impact.engine.lanes) compiled aside for the
 # runs after it, when the kernel cache lacks it: its machine code serves every later run of the
 # structure, and a small run would not repay the processor time
@@ -569,6 +577,7 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
     """:func:`assess` once its settings are resolved."""
     members, seed = settings.members, settings.seed
     started, t0 = datetime.now(timezone.utc), time.monotonic()
+    engine_at_start = _engine_at_hand(case)
     if ensemble is not None:
         ens, cal = ensemble.ensemble, ensemble.calibration
     else:
@@ -602,8 +611,10 @@ def _assessment(case: Case, settings: AssessSettings, progress, executor, store,
         out = out.merged(dynamics_stage(case, ens, runs, seed, progress, executor))
         clock.lap("dynamics")
     tables, records, stages = out.tables, out.records, list(out.stages)
+    engine_at_end = _engine_at_hand(case)
     execution = {**executor.describe(), "chunks_reused": getattr(store, "reused", 0),
-                 "chunks_computed": getattr(store, "saved", 0), "stage_seconds": clock.seconds}
+                 "chunks_computed": getattr(store, "saved", 0), "stage_seconds": clock.seconds,
+                 "engine": engine_at_start if engine_at_start == engine_at_end else f"{engine_at_start}, then {engine_at_end}"}
     manifest = manifest_for(case, ens, failure_counts(runs), seed, command or ["python", "impact.api.assess"], started,
                             time.monotonic() - t0, tuple(stages), sensitivity, execution, calibration)
     return Assessment(case, ens, manifest, tables, records, calibration=cal)
