@@ -166,9 +166,16 @@ def main(argv=None) -> int:
     ap.add_argument("--members", type=int, default=2000)
     ap.add_argument("--case", default=str(DEMO))
     args = ap.parse_args(argv)
-    case = load_case(args.case)
+    measure(args.case, args.members)
+    return 0
+
+
+def measure(case_path: str, members: int) -> dict:
+    """Print the engines' member-step rates, the scalar limit and the compilation costs; return the
+    rates (member-steps per CPU second by engine)."""
+    case = load_case(case_path)
     st = pack_structure(build_web(case))
-    rates = member_step_rates(case, args.members)
+    rates = member_step_rates(case, members)
     for e in (*ENGINES, "lanes, sorted"):
         print(f"{e:13s} engine {rates[e] / 1e6:6.2f} million member-steps per CPU second"
               f"  ({rates[e] / rates['numpy']:5.1f}x numpy, {rates[e] / rates['compiled']:4.2f}x compiled)")
@@ -180,7 +187,7 @@ def main(argv=None) -> int:
           f"{rates['compiled'] / limit:.0%} of it, lanes engine {rates['lanes'] / limit:.0%}")
     for label, seconds in compile_costs(int(st[0])):
         print(f"{label:34s} {seconds:6.2f} s (wall, after imports)")
-    return 0
+    return rates
 
 
 if __name__ == "__main__":
