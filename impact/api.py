@@ -556,16 +556,14 @@ def _compile_aside(case: Case, flow: bool, lanes: bool):
     and which is left to finish for later runs."""
     if not (flow or lanes):
         return
+    from impact.engine.boundary import structure_sizes
     from impact.engine.generate import compile_aside, compile_flow_aside
     from impact.engine.lanes import lanes_ready
-    from impact.engine.web import pack_coefficients, pack_structure
-    from impact.model import Controls, build_web, segment_coefficients, web_params
-    from impact.dynamics.scan import nominal_values
+    from impact.engine.web import pack_structure
+    from impact.model import build_web
 
-    web = build_web(case)  # every web has a compiled J·v (impact.model.terms)
-    p = web_params(case, {k: np.array([v]) for k, v in nominal_values(case).items()}, 1)
-    n_coef = pack_coefficients(segment_coefficients(web, p, Controls.neutral(1, web.n_species))).shape[1]
-    st = pack_structure(web)
+    st = pack_structure(build_web(case))  # every web has a compiled J·v (impact.model.terms)
+    n_coef = structure_sizes(st)["P"]  # the width of its coefficient rows, read from the structure
     if flow:
         compile_flow_aside(st, n_coef)
     if lanes and not lanes_ready(st):
