@@ -11,9 +11,12 @@ Prints, each measured in this same run (minimum of ``--repeat`` runs, the machin
    imports included, the way a user meets them);
 2. a process with the same imports typesetting a one-page document instead (the floor: imports and
    WeasyPrint's fixed cost), and the report's ratio to it;
-3. in-process, the stages of the report: figures and tables (the template context), the HTML,
-   WeasyPrint's layout and its PDF writing, and WeasyPrint's share (layout + writing) of the in-process
-   report and of the report process; pages and PDF size.
+3. in-process, the stages of the report: figures and tables (the template context; of it, matplotlib
+   rasterizing the figures), the HTML, WeasyPrint's layout and its PDF writing (of it, subsetting the
+   fonts), their total against the 3 s target, and WeasyPrint's share (layout + writing) of the
+   in-process report and of the report process; pages and PDF size;
+4. what the per-horizon risk and effects tables cost WeasyPrint (the same document typeset without
+   them), and what stands in the way of the target.
 
 Measured 2026-12-05 on the shared 2-core machine (load 6-11, so read CPU seconds, not wall), one run
 each, the demo's saved results: with the tighter print style, 16 pages: the report process 8.1 CPU s
@@ -21,6 +24,17 @@ each, the demo's saved results: with the tighter print style, 16 pages: the repo
 writing 1.18 s: WeasyPrint 65 % of the in-process report's CPU, 50 % of the process's. Before (20
 pages, the same content): 1.98 / 2.58 / 1.21 s, WeasyPrint 64 %. Fewer pages did not make WeasyPrint
 cheaper: its cost follows the boxes laid out (the same tables and paragraphs), not the pages.
+
+Later the same day (load 2-3, 17 pages; the tree before and after, alternately, three processes each,
+minimum of 5 in each): the in-process report 5.6-5.7 -> 5.5 CPU s, still 2.5 s above the 3 s target:
+figures, tables and HTML 1.56-1.61 -> 1.36-1.42 s (each figure drawn at its printed size; matplotlib
+rasterizing 1.0 -> 0.7 s), WeasyPrint layout 2.5-2.6 s and PDF writing 1.0 s unchanged (subsetting the
+fonts with fontTools 0.4 s of it; with the HarfBuzz-subset library loaded, under 0.01 s and the writing
+0.65 s); the PDF 533 -> 467 KiB. The four per-horizon tables cost WeasyPrint 1.2 s of its 3.4 s. The report process: 7.3 CPU s, its
+one-page floor (imports, WeasyPrint's fixed cost) 1.9 s. What else was tried, WeasyPrint's layout +
+writing in CPU s: the intervals' no-break spans (600 of the 1,046 spans) as no-break spaces -0.25 s (not
+done: the PDF's copied text would change); the fonts embedded whole -0.3 s for a PDF 2.5 times larger
+(not done); no table-of-contents leaders, no running title, rows free to break across pages: no change.
 """
 
 from __future__ import annotations
@@ -168,6 +182,11 @@ def main(argv=None) -> int:
     lean = min(r["without per-horizon tables"] for r in runs)
     print(f"  WeasyPrint without the {runs[0]['per-horizon tables']} per-horizon risk and effects tables  CPU {lean:6.2f} s "
           f"(they cost {weasy - lean:.2f} s of its {weasy:.2f} s; a measurement, the report keeps them)")
+    raster, fonts = (min(r[k] for r in runs) for k in ("rasterizing", "font subsetting"))
+    print(f"  in the way of 3 s: WeasyPrint's cost per box laid out and painted ({weasy:.2f} s, of it the per-horizon "
+          f"tables {weasy - lean:.2f} s); matplotlib's per-figure cost ({cpu['figures, tables and HTML']:.2f} s with the "
+          f"tables and HTML, {raster:.2f} s rasterizing); subsetting the fonts ({fonts:.2f} s"
+          + (", done by fontTools; the HarfBuzz-subset library, when installed, does it in under 0.01 s)" if "fontTools" in subsetter() else ")"))
     return 0
 
 
