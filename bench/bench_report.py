@@ -30,11 +30,12 @@ minimum of 5 in each): the in-process report 5.6-5.7 -> 5.5 CPU s, still 2.5 s a
 figures, tables and HTML 1.56-1.61 -> 1.36-1.42 s (each figure drawn at its printed size; matplotlib
 rasterizing 1.0 -> 0.7 s), WeasyPrint layout 2.5-2.6 s and PDF writing 1.0 s unchanged (subsetting the
 fonts with fontTools 0.4 s of it; with the HarfBuzz-subset library loaded, under 0.01 s and the writing
-0.65 s); the PDF 533 -> 467 KiB. The four per-horizon tables cost WeasyPrint 1.2 s of its 3.4 s. The report process: 7.3 CPU s, its
-one-page floor (imports, WeasyPrint's fixed cost) 1.9 s. What else was tried, WeasyPrint's layout +
-writing in CPU s: the intervals' no-break spans (600 of the 1,046 spans) as no-break spaces -0.25 s (not
-done: the PDF's copied text would change); the fonts embedded whole -0.3 s for a PDF 2.5 times larger
-(not done); no table-of-contents leaders, no running title, rows free to break across pages: no change.
+0.65 s); the PDF 533 -> 467 KiB. The four per-horizon tables cost WeasyPrint 1.2 s of its 3.4 s.
+The report process: 7.3 CPU s, its one-page floor (imports, WeasyPrint's fixed cost) 1.9 s. What else
+was tried, WeasyPrint's layout + writing in CPU s: the intervals' no-break spans (600 of the 1,046
+spans) as no-break spaces -0.25 s (not done: the PDF's copied text would change); the fonts embedded
+whole -0.3 s for a PDF 2.5 times larger (not done); no table-of-contents leaders, no running title,
+rows free to break across pages, separate table borders: no change beyond the noise.
 """
 
 from __future__ import annotations
@@ -180,13 +181,16 @@ def main(argv=None) -> int:
           f"({weasy:.2f} of {total:.2f} s); of the report process's CPU {weasy / rep[1]:6.1%}")
     print(f"  {runs[0]['pages']} pages, {runs[0]['bytes'] / 1024:.0f} KiB; fonts subset by {subsetter()}")
     lean = min(r["without per-horizon tables"] for r in runs)
-    print(f"  WeasyPrint without the {runs[0]['per-horizon tables']} per-horizon risk and effects tables  CPU {lean:6.2f} s "
+    n_tables = runs[0]["per-horizon tables"]
+    print(f"  WeasyPrint without the {n_tables} per-horizon risk and effects tables  CPU {lean:6.2f} s "
           f"(they cost {weasy - lean:.2f} s of its {weasy:.2f} s; a measurement, the report keeps them)")
     raster, fonts = (min(r[k] for r in runs) for k in ("rasterizing", "font subsetting"))
-    print(f"  in the way of 3 s: WeasyPrint's cost per box laid out and painted ({weasy:.2f} s, of it the per-horizon "
-          f"tables {weasy - lean:.2f} s); matplotlib's per-figure cost ({cpu['figures, tables and HTML']:.2f} s with the "
-          f"tables and HTML, {raster:.2f} s rasterizing); subsetting the fonts ({fonts:.2f} s"
-          + (", done by fontTools; the HarfBuzz-subset library, when installed, does it in under 0.01 s)" if "fontTools" in subsetter() else ")"))
+    by = subsetter()
+    hb = ", done by fontTools; the HarfBuzz-subset library, when installed, does it in under 0.01 s" if "fontTools" in by else ""
+    print(f"  in the way of 3 s: WeasyPrint's cost per box laid out and painted ({weasy:.2f} s, of it the "
+          f"per-horizon tables {weasy - lean:.2f} s); matplotlib's per-figure cost "
+          f"({cpu['figures, tables and HTML']:.2f} s with the tables and HTML, {raster:.2f} s rasterizing); "
+          f"subsetting the fonts ({fonts:.2f} s{hb})")
     return 0
 
 
