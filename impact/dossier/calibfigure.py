@@ -33,7 +33,7 @@ def predictive_figure(pred: pd.DataFrame, species: str, unit: str, time_unit: st
     ax.tick_params(labelsize=7)
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=6.5, loc="best", frameon=False)
-    return png_bytes(fig)
+    return png_bytes(fig, "sens")
 
 
 def posterior_figure(post: pd.DataFrame) -> bytes:
@@ -59,7 +59,7 @@ def posterior_figure(post: pd.DataFrame) -> bytes:
     ax.tick_params(axis="x", labelsize=7)
     ax.axvline(0, color=PRIOR_COLOUR, linewidth=0.5)
     ax.axvline(1, color=PRIOR_COLOUR, linewidth=0.5)
-    return png_bytes(fig)
+    return png_bytes(fig, "sens")
 
 
 def calibration_context(manifest: Manifest, tables: dict | None, add) -> dict | None:

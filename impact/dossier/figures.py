@@ -36,7 +36,7 @@ BAND_WIDTH = 6.6
 
 def bands_figure(res: Results, option: str, colour: str) -> bytes:
     """Median and 50 %/90 % bands per species, baseline and option on shared axes (PNG)."""
-    return png_bytes(bands_drawing(res, option, colour), tight=False)
+    return png_bytes(bands_drawing(res, option, colour), "bands")
 
 
 def bands_drawing(res: Results, option: str, colour: str):
@@ -131,7 +131,7 @@ def regime_figure(shares: pd.DataFrame) -> bytes:
     ax.set_xlabel("share of members", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, ncol=5, loc="upper center", bbox_to_anchor=(0.5, -0.25), frameon=False)
-    return png_bytes(fig)
+    return png_bytes(fig, "dyn")
 
 
 HORIZON_BINS = 20
@@ -147,7 +147,7 @@ def _empty_panel(ax, sentence: str) -> None:
 
 def distribution_figure(regimes: pd.DataFrame, unit: str, horizon: float) -> bytes:
     """Histograms of the largest Lyapunov exponent and of the predictability horizon, per option (PNG)."""
-    return png_bytes(distribution_drawing(regimes, unit, horizon))
+    return png_bytes(distribution_drawing(regimes, unit, horizon), "dyn")
 
 
 def distribution_drawing(regimes: pd.DataFrame, unit: str, horizon: float):
@@ -216,7 +216,7 @@ def scan_figure(scan: pd.DataFrame, parameter: str) -> bytes:
     ax.set_ylabel("section value", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, markerscale=4)
-    return png_bytes(fig)
+    return png_bytes(fig, "dyn")
 
 
 

@@ -44,7 +44,7 @@ def study_sizes_figure(sizes: pd.DataFrame, objective: str) -> bytes:
         ax.tick_params(labelsize=6)
         ax.set_ylim(bottom=0)
     axes[0].set_ylabel(mpl_text(f"EVSI ({unit})" if len(unit) < 20 else "EVSI"), fontsize=7)
-    return png_bytes(fig)
+    return png_bytes(fig, "sens")
 
 
 def _wrap(name: str, width: int = 22) -> str:

@@ -376,6 +376,26 @@ def test_figures_are_opaque_png(results):
     assert {Image.open(__import__("io").BytesIO(b)).mode for b, _ in images.values()} == {"RGB"}
 
 
+def test_figures_are_drawn_at_the_resolution_they_are_printed(staged):
+    """Each figure has PNG_DPI pixels per inch of the width report.css prints its class at (a figure drawn
+    larger costs its drawing and the PDF writer's compression for pixels the page throws away; 150 dpi at
+    print size is common practice, no source)."""
+    from PIL import Image
+
+    from impact.dossier.chart import MM, PNG_DPI, SHOWN_WIDTH
+
+    css = (Path(__file__).parents[2] / "templates" / "report.css").read_text()
+    for cls, inches in SHOWN_WIDTH.items():  # the widths chart.py assumes are the stylesheet's
+        assert re.search(rf"img\.{cls}[^{{]*\{{ width: {round(inches / MM)}mm; }}", css), cls
+    html, assets = report_html(load_results(staged))
+    shown = re.findall(rf'<img class="(\w+)" src="{ASSET_SCHEME}([^"]+\.png)"', html)
+    # (the staged folder draws the band and dynamics classes; calibration and study figures are "sens")
+    assert {"bands", "dyn"} <= {cls for cls, _ in shown} <= set(SHOWN_WIDTH), shown
+    for cls, name in shown:
+        width = Image.open(__import__("io").BytesIO(assets.files[name][0])).width
+        assert abs(width - PNG_DPI * SHOWN_WIDTH[cls]) <= 1, (name, width)
+
+
 @pytest.mark.parametrize("top", [None, 9e5])
 def test_band_panels_keep_their_labels_inside_the_figure(results, top):
     # the band panels have fixed margins: six-digit tick labels (the widest matplotlib writes without an
