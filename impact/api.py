@@ -328,10 +328,10 @@ def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Pro
     if case.objectives:
         tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
         if case.studies:
-            from impact.decision.studies import studies_table, study_sizes_table
+            from impact.decision.studies import study_tables
 
-            tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
-            tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs, seed)
+            tables["sensitivity/studies.csv"], tables["sensitivity/study_sizes.csv"] = study_tables(
+                case, ens.values, ens.today, ens.draws, runs, seed)
         if case.weighing is not None:
             from impact.decision.weighing import weighing_tables
 
