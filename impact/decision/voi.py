@@ -308,7 +308,8 @@ def _rule_gains(nb, X, S, W, splits, refit):
     gram = sum(g for g, _ in moments)
     rhs = sum(r for _, r in moments)
     # every row's sums of the net benefits per fold: the choice made now (best weighted mean of the training folds)
-    fold_sums = [weighted_sums(W[:, f], nb[f]) for f in folds]
+    Wf = [W[:, f] for f in folds]
+    fold_sums = [weighted_sums(w, nb[f]) for w, f in zip(Wf, folds)]
     all_sums = sum(fold_sums)
     gain = np.zeros((len(splits), W.shape[0]))
     sq = (nb**2).sum(axis=0)
@@ -320,22 +321,39 @@ def _rule_gains(nb, X, S, W, splits, refit):
             break  # one member: nothing to learn from
         G, b = gram - g_k, rhs - r_k
         train = np.concatenate([folds[j] for j in range(len(folds)) if j != k])
+        Xt, nbt, Wt, Xf, nbf = X[train], nb[train], None if refit else W[:, train], X[f], nb[f]
         c = (M - f.size) / M
         fold_eig = None if eig is None else (eig[0] / np.sqrt(c), eig[1] / c)
+        now_all = (all_sums - fold_sums[k]).T  # (D, R)
+        cols_f = np.arange(f.size)
         for j, cols in enumerate(splits):
             # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
-            lam = smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nb[f][:, cols] ** 2).sum()),
+            lam = smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()),
                                    M - f.size)
             if refit:
                 coef, _ = ridge_solve(G + lam * S, b[:, :, cols])  # (R, K, D)
             else:
-                coef = newton_coefficients(G[0] + lam * S, lam * S, X[train], nb[train][:, cols], W[:, train])
-            chosen = weighted_fitted(coef, X[f]).argmax(axis=1)  # (R, m_k)
-            now = (all_sums - fold_sums[k])[:, cols].argmax(axis=1)
-            y = nb[f][:, cols]
-            got = np.take_along_axis(y.T[None], chosen[:, None, :], axis=1)[:, 0]  # (R, m_k)
-            gain[j] += (W[:, f] * (got - y[:, now].T)).sum(axis=1)
+                coef = newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt)
+            chosen = first_maximum(weighted_fitted(coef, Xf))  # (R, m_k)
+            now = first_maximum(now_all[cols].T[:, :, None])[:, 0]  # (R,)
+            y = nbf[:, cols]
+            got = y.T[chosen, cols_f]  # (R, m_k)
+            gain[j] += (Wf[k] * (got - y[:, now].T)).sum(axis=1)
     return gain / W.sum(axis=1)
+
+
+def first_maximum(F: np.ndarray) -> np.ndarray:
+    """``F.argmax(axis=1)`` of ``F`` (R, D, m) -> (R, m), by D − 1 comparisons of (R, m) slices: the first of
+    tied maxima, as argmax (argmax along a short middle axis walks the array with a stride)."""
+    if F.shape[1] == 1 or np.isnan(F).any():
+        return F.argmax(axis=1)
+    best = F[:, 0]
+    idx = np.zeros(best.shape, np.intp)
+    for d in range(1, F.shape[1]):
+        better = F[:, d] > best
+        idx[better] = d
+        best = np.where(better, F[:, d], best)
+    return idx
 
 
 # Newton steps of the resampled fits: each shrinks a resample's distance to its exact refit by about the
