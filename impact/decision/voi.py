@@ -326,15 +326,20 @@ def _rule_gains(nb, X, S, W, splits, refit):
         fold_eig = None if eig is None else (eig[0] / np.sqrt(c), eig[1] / c)
         now_all = (all_sums - fold_sums[k]).T  # (D, R)
         cols_f = np.arange(f.size)
+        # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
+        lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
+                for cols in splits]
+        if refit:
+            coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
+        elif REFIT_STEPS == 1:
+            fitted = weighted_fitted(_newton_step_splits(G[0], S, lams, Xt, nbt, Wt, splits), Xf)  # every choice set's
+            at = np.cumsum([0] + [nb[:, cols].shape[1] for cols in splits])
+            coefs = None
+        else:
+            coefs = [newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt) for lam, cols in zip(lams, splits)]
         for j, cols in enumerate(splits):
-            # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
-            lam = smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()),
-                                   M - f.size)
-            if refit:
-                coef, _ = ridge_solve(G + lam * S, b[:, :, cols])  # (R, K, D)
-            else:
-                coef = newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt)
-            chosen = first_maximum(weighted_fitted(coef, Xf))  # (R, m_k)
+            F = weighted_fitted(coefs[j], Xf) if coefs is not None else fitted[:, at[j]:at[j + 1]]
+            chosen = first_maximum(F)  # (R, m_k)
             now = first_maximum(now_all[cols].T[:, :, None])[:, 0]  # (R,)
             y = nbf[:, cols]
             got = y.T[chosen, cols_f]  # (R, m_k)
@@ -389,6 +394,35 @@ def newton_coefficients(A: np.ndarray, P: np.ndarray, Xt: np.ndarray, Yt: np.nda
         resid = Yt[None] - Xt @ coef  # (R, m, D)
         grad = np.einsum("mk,rmd->rkd", Xt, Wt[:, :, None] * resid, optimize=True) - Pr @ coef
         coef = coef + _solve_many(Ar, grad)
+    return coef
+
+
+def _newton_step_splits(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: np.ndarray, Yt: np.ndarray,
+                        Wt: np.ndarray, splits: list[slice]) -> np.ndarray:
+    """:func:`newton_coefficients` (one step) of every choice set in ``splits`` at once, the choice set ``j`` with
+    matrix ``G + lams[j]·S`` (K, K) and penalty ``lams[j]·S``: (R, K, ΣD_j), the sets' columns side by side.
+
+    The sets differ in their smoothing weight, so each has its own fit and factorisation, but the resamples'
+    weighted sums of every set's ``x_i e_i'`` are one (R x m) by (m x K·ΣD_j) product."""
+    K = G.shape[0]
+    R, m = Wt.shape
+    eye = np.eye(K)
+    fits = []
+    for lam, cols in zip(lams, splits):
+        A = G + lam * S
+        ridge = 1e-10 * np.trace(A) / K  # the tiny ridge of ridge_solve, as in newton_coefficients
+        Ar = A + ridge * eye
+        fits.append((Ar, lam * S + ridge * eye, np.linalg.solve(Ar, Xt.T @ Yt[:, cols])))
+    coef0 = np.hstack([c for _, _, c in fits])  # (K, ΣD_j)
+    e = np.hstack([Yt[:, cols] for cols in splits]) - Xt @ coef0
+    D = coef0.shape[1]
+    grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * D)).reshape(R, K, D)
+    coef = np.empty_like(grad)
+    at = 0
+    for Ar, Pr, c0 in fits:
+        d = c0.shape[1]
+        coef[:, :, at:at + d] = c0[None] + _solve_many(Ar, grad[:, :, at:at + d] - (Pr @ c0)[None])
+        at += d
     return coef
 
 
