@@ -316,6 +316,9 @@ def _rule_gains(nb, X, S, W, splits, refit):
     # the smoothing weight's eigensystem from the design on all members (it holds no outcome, so the folds
     # stay apart), scaled to a fold's share of them: a training gram of c·X'X has s/c and U'L⁻¹/√c
     eig = penalty_eigensystem(gram[0], S)
+    # choice sets of one width side by side (objectives under the same options): every fold's sets at once
+    width = nb.shape[1] // len(splits)
+    width *= all(c == slice(j * width, (j + 1) * width) for j, c in enumerate(splits)) and width * len(splits) == nb.shape[1]
     for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
             break  # one member: nothing to learn from
@@ -329,6 +332,9 @@ def _rule_gains(nb, X, S, W, splits, refit):
         # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
         lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
                 for cols in splits]
+        if width and not refit and REFIT_STEPS == 1:
+            gain += _fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width).T
+            continue
         if refit:
             coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
         elif REFIT_STEPS == 1:
@@ -345,6 +351,60 @@ def _rule_gains(nb, X, S, W, splits, refit):
             got = y.T[chosen, cols_f]  # (R, m_k)
             gain[j] += (Wf[k] * (got - y[:, now].T)).sum(axis=1)
     return gain / W.sum(axis=1)
+
+
+def _fold_gains_equal_sets(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: np.ndarray, Yt: np.ndarray,
+                           Wt: np.ndarray, Xf: np.ndarray, Yf: np.ndarray, wf: np.ndarray, sums: np.ndarray,
+                           D: int) -> np.ndarray:
+    """One fold's gains (R, J) of J choice sets of D columns each, side by side in ``Yt`` (m_t, J·D) and ``Yf``
+    (m_f, J·D), each set with its smoothing weight ``lams[j]``: the one-step fits of :func:`_newton_step_splits`
+    and the scoring of :func:`_rule_gains`, every set in the same array operations.
+
+    ``Xt``, ``Wt`` are the training members' design (m_t, K) and weights (R, m_t); ``Xf``, ``wf`` the fold's
+    (m_f, K), (R, m_f); ``sums`` (R, J·D) every row's sums of the net benefits over the training members.
+    """
+    K = G.shape[0]
+    R, m = Wt.shape
+    J = len(lams)
+    lam = np.asarray(lams, float)[:, None, None]
+    A = G[None] + lam * S[None]
+    ridge = (1e-10 * np.trace(A, axis1=1, axis2=2) / K)[:, None, None]  # the tiny ridge of ridge_solve
+    eye = np.eye(K)[None]
+    Ar, Pr = A + ridge * eye, lam * S[None] + ridge * eye
+    coef0 = np.linalg.solve(Ar, (Xt.T @ Yt).reshape(K, J, D).transpose(1, 0, 2))  # (J, K, D)
+    c0 = coef0.transpose(1, 0, 2).reshape(K, J * D)
+    e = Yt - Xt @ c0
+    grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * J * D)).reshape(R, K, J, D)
+    grad -= (Pr @ coef0).transpose(1, 0, 2)[None]
+    step = np.linalg.solve(Ar, grad.transpose(2, 1, 0, 3).reshape(J, K, R * D)).reshape(J, K, R, D)
+    coef = c0.reshape(K, J, D)[None] + step.transpose(2, 1, 0, 3)  # (R, K, J, D)
+    mf = Xf.shape[0]
+    # every resample's fitted values as one product: (R·J·D, K) by (K, m_f)
+    fitted = (coef.transpose(0, 2, 3, 1).reshape(R * J * D, K) @ Xf.T).reshape(R, J, D, mf)
+    yT = np.ascontiguousarray(Yf.T).reshape(J, D, mf)
+    got = chosen_values(fitted, yT, nan=bool(np.isnan(coef).any()))  # (R, J, m_f)
+    now = sums.reshape(R, J, D).argmax(axis=2)[:, :, None]  # the choice made now, in each set
+    y_now = yT[:, 0]
+    for d in range(1, D):
+        y_now = np.where(now == d, yT[:, d], y_now)
+    return (wf[:, None, :] * (got - y_now)).sum(axis=2)
+
+
+def chosen_values(F: np.ndarray, y: np.ndarray, nan: bool | None = None) -> np.ndarray:
+    """``y[j, d*, i]`` at ``d* = F[r, j, :, i].argmax()`` for fitted values ``F`` (R, J, D, m) and outcomes ``y``
+    (J, D, m): (R, J, m), the first of tied maxima as argmax, by D − 1 comparisons and selections. ``nan``: whether
+    ``F`` may hold NaN (None: look), where argmax's rule (the first NaN) is kept by argmax itself."""
+    R, J, D, m = F.shape
+    if np.isnan(F).any() if nan is None else nan:
+        idx = F.argmax(axis=2)
+        return y[np.arange(J)[None, :, None], idx, np.arange(m)[None, None, :]]
+    best, got = F[:, :, 0], np.broadcast_to(y[:, 0], (R, J, m))
+    for d in range(1, D):
+        better = F[:, :, d] > best
+        got = np.where(better, y[:, d], got)
+        if d < D - 1:
+            best = np.maximum(best, F[:, :, d])
+    return got
 
 
 def first_maximum(F: np.ndarray) -> np.ndarray:
