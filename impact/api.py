@@ -324,14 +324,17 @@ def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Pro
         return StageOutput()
     if progress:
         progress("sensitivity and value of information on the plausible members")
+    from impact.decision.voi import shared_gains
+
     tables = {"sensitivity/drivers.csv": drivers_table(case, ens.values, runs, seed)}
     if case.objectives:
-        tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
-        if case.studies:
-            from impact.decision.studies import study_tables
+        with shared_gains():  # the studies' ceilings are EVPPIs of information.csv: computed once
+            tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+            if case.studies:
+                from impact.decision.studies import study_tables
 
-            tables["sensitivity/studies.csv"], tables["sensitivity/study_sizes.csv"] = study_tables(
-                case, ens.values, ens.today, ens.draws, runs, seed)
+                tables["sensitivity/studies.csv"], tables["sensitivity/study_sizes.csv"] = study_tables(
+                    case, ens.values, ens.today, ens.draws, runs, seed)
         if case.weighing is not None:
             from impact.decision.weighing import weighing_tables
 

@@ -53,7 +53,9 @@ resample by resample. Pure functions, arrays in and out.
 from __future__ import annotations
 
 import contextlib
+import contextvars
 import functools
+import hashlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -293,8 +295,51 @@ def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
         REFIT_STEPS Newton steps with that fit's matrix (:func:`newton_coefficients`): row 0 is the same
         either way, the other rows agree to within the bootstrap's own Monte Carlo error (tested).
     """
+    shared = _SHARED.get()
     with one_blas_thread():
-        return _rule_gains(nb, X, S, W, splits, refit)
+        if refit or shared is None or not any(W is w for w in shared["weights"].values()):
+            return _rule_gains(nb, X, S, W, splits, refit)
+        return _shared_rule_gains(shared["gains"], nb, X, S, W, splits or [slice(0, nb.shape[1])])
+
+
+# Within shared_gains(): the weights of member_weights by (M, resamples, seed), and the gains already computed
+_SHARED: contextvars.ContextVar = contextvars.ContextVar("impact_decision_shared_gains", default=None)
+
+
+@contextlib.contextmanager
+def shared_gains():
+    """A context in which each choice set's gains (:func:`rule_gains`) on the same design, members, weights and net
+    benefits are computed once: the information, studies and study-size tables ask for the same EVPI and EVPPIs.
+
+    Within it, :func:`member_weights` hands every caller with the same (M, resamples, seed) the same read-only
+    array, which is how the gains know their weights without reading them; other weights are never shared.
+    A choice set computed beside others gives the numbers it gives alone (the design's sums are shared, each
+    set's fit is its own), so the tables do not depend on which table asked first.
+    """
+    token = _SHARED.set({"weights": {}, "gains": {}})
+    try:
+        yield
+    finally:
+        _SHARED.reset(token)
+
+
+def _digest(a: np.ndarray) -> tuple:
+    a = np.ascontiguousarray(a)
+    return a.shape, a.dtype.str, hashlib.blake2b(a.view(np.uint8).ravel(), digest_size=16).digest()
+
+
+def _shared_rule_gains(book: dict, nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
+                       splits: list[slice]) -> np.ndarray:
+    """:func:`_rule_gains` (Newton step) of the choice sets not yet in ``book``, computed together; all from ``book``."""
+    design = (id(W), _digest(X), _digest(S))
+    keys = [design + (_digest(nb[:, cols]),) for cols in splits]
+    todo = list(dict.fromkeys(k for k in keys if k not in book))
+    if todo:
+        first = {k: keys.index(k) for k in todo}
+        sub, sub_splits = choice_sets([nb[:, splits[first[k]]] for k in todo])
+        for k, row in zip(todo, _rule_gains(sub, X, S, W, sub_splits, False)):
+            book[k] = row
+    return np.stack([book[k] for k in keys])
 
 
 def _rule_gains(nb, X, S, W, splits, refit):
@@ -503,9 +548,16 @@ def member_weights(M: int, resamples: int, seed: int) -> np.ndarray:
     """Row 0 all ones (the members as drawn: the estimate), then the bootstrap resamples as member counts
     (resamples + 1, M), from the value-of-information stream: every caller with the same seed and M
     resamples the same members, so values computed apart can be capped resample by resample."""
+    shared = _SHARED.get()
+    if shared is not None and (M, resamples, seed) in shared["weights"]:
+        return shared["weights"][(M, resamples, seed)]
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
     rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
-    return np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    W = np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    if shared is not None:
+        W.flags.writeable = False
+        shared["weights"][(M, resamples, seed)] = W
+    return W
 
 
 def information_values(nb: np.ndarray, X: np.ndarray, names: list[str], groups: dict[str, list[str]] | None = None,
