@@ -296,3 +296,32 @@ def test_a_dummy_parameter_on_a_demo_sized_ensemble_is_never_most_worth_measurin
         text = hinges_text(SimpleNamespace(sensitivity={"information": info}))
         assert "most worth measuring is dummy" not in text
         assert ("most worth measuring" in text) <= any(e.low > 0 for k, e in r.items() if k != "all parameters")
+
+
+def test_gains_shared_between_tables_are_the_numbers_computed_apart():
+    # within shared_gains() a choice set's gains are computed once and reused (the studies' ceilings are the
+    # EVPPIs of information.csv); a set computed beside another must give the numbers it gives alone, so the
+    # values inside the context equal those outside it, whichever call came first (an identity, to the bit)
+    rng = np.random.default_rng(9)
+    M = 300
+    x = rng.random((M, 3))
+    a = (rng.random((M, 3)) < np.column_stack([x[:, 0], 1 - x[:, 0], 0.5 + 0 * x[:, 1]])).astype(float)
+    b = (rng.random((M, 3)) < np.column_stack([0.4 + 0.2 * x[:, 1], 0.5 + 0 * x[:, 1], x[:, 2]])).astype(float)
+    names = ["u", "v", "w"]
+    apart = [information_values(a, x, names, resamples=30, seed=5), information_values(b, x, names, resamples=30, seed=5)]
+    with voi.shared_gains():
+        both = voi.information_values_many([a, b], x, names, resamples=30, seed=5)
+        again = information_values(b, x, names, resamples=30, seed=5)
+    assert both == apart and again == apart[1]
+
+
+def test_the_chosen_outcome_is_that_of_the_first_maximum():
+    # chosen_values replaces argmax and a gather; ties (equal fitted values) must go to the first, as argmax
+    rng = np.random.default_rng(1)
+    F = rng.integers(0, 3, size=(7, 2, 4, 50)).astype(float)  # many ties
+    y = rng.random((2, 4, 50))
+    want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
+    assert np.array_equal(voi.chosen_values(F, y), want)
+    F[0, 0, 2, 3] = np.nan  # argmax's rule for NaN: the first NaN wins
+    want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
+    assert np.array_equal(voi.chosen_values(F, y), want)
