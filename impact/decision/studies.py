@@ -38,6 +38,7 @@ import zlib
 
 import numpy as np
 import pandas as pd
+from numpy.random.bit_generator import ISeedSequence
 
 from impact.risk.effects import BASELINE, good_outcome
 from impact.model import resolve
@@ -49,6 +50,74 @@ PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
 
 def _stream(seed: int, draw: int, key: int) -> np.random.Generator:
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(int(draw), PURPOSE_STUDIES, key))))
+
+
+class _Words(ISeedSequence):
+    """A seed sequence whose state words are already known (:func:`stream_words`): hashing them is the cost."""
+
+    def __init__(self, words: np.ndarray):
+        self.words = words
+
+    def generate_state(self, n_words, dtype=np.uint32):
+        if n_words != 4 or np.dtype(dtype) != np.uint64:
+            raise ValueError("holds PCG64's four 64-bit seed words only")
+        return self.words
+
+
+# numpy's SeedSequence constants (numpy/random/bit_generator.pyx; O'Neill's seed_seq_fe design)
+_INIT_A, _MULT_A, _INIT_B, _MULT_B = 0x43B0D7E5, 0x931E8875, 0x8B51F9DD, 0x58F38DED
+_MIX_L, _MIX_R, _POOL = 0xCA01F9DD, 0x4973F715, 4
+_U32 = 0xFFFFFFFF
+
+
+def _uint32_words(n: int) -> list[int]:
+    out = [n & _U32]
+    while n > _U32:
+        n >>= 32
+        out.append(n & _U32)
+    return out
+
+
+def stream_words(seed: int, draws: np.ndarray, key: int) -> np.ndarray | None:
+    """PCG64's seed words (M, 4) of every member's stream ``SeedSequence(seed, spawn_key=(draw, PURPOSE_STUDIES,
+    key))``, computed for all members at once as numpy's SeedSequence computes them one at a time (the same
+    words: tested against it); None when a draw index needs more than one 32-bit word."""
+    draws = np.asarray(draws)
+    if draws.size and (draws.min() < 0 or draws.max() > _U32):
+        return None
+    run = _uint32_words(int(seed))
+    run += [0] * max(0, _POOL - len(run))
+    entropy = [np.full(draws.size, w, np.uint64) for w in run]
+    entropy += [draws.astype(np.uint64)] + [np.full(draws.size, w, np.uint64) for w in
+                                            _uint32_words(PURPOSE_STUDIES) + _uint32_words(int(key))]
+    h = [_INIT_A]
+
+    def hashmix(v):  # (uint64 arrays holding uint32 values: products wrap by masking)
+        v = v ^ h[0]
+        h[0] = (h[0] * _MULT_A) & _U32
+        v = (v * h[0]) & _U32
+        return v ^ (v >> 16)
+
+    def mix(x, y):
+        r = (_MIX_L * x - _MIX_R * y) & _U32
+        return r ^ (r >> 16)
+
+    pool = [hashmix(entropy[i]) for i in range(_POOL)]
+    for src in range(_POOL):
+        for dst in range(_POOL):
+            if src != dst:
+                pool[dst] = mix(pool[dst], hashmix(pool[src]))
+    for src in range(_POOL, len(entropy)):
+        for dst in range(_POOL):
+            pool[dst] = mix(pool[dst], hashmix(entropy[src]))
+    hb, state = _INIT_B, []
+    for i in range(8):
+        v = pool[i % _POOL] ^ hb
+        hb = (hb * _MULT_B) & _U32
+        v = (v * hb) & _U32
+        state.append(v ^ (v >> 16))
+    # little-endian pairs of 32-bit words, as SeedSequence.generate_state(4, np.uint64) makes them
+    return np.stack([state[2 * j] | (state[2 * j + 1] << np.uint64(32)) for j in range(4)], axis=1)
 
 
 def study_key(name: str) -> int:
@@ -103,8 +172,9 @@ def simulate_summaries(truth: np.ndarray, error: str, sizes, detection: np.ndarr
     shared = np.full((M, k * top), np.nan) if prefix else None  # each member's draws at the largest size
     nbinom = error == "negative-binomial"
     counts = {} if prefix else {n: np.zeros((M, k, n)) for n in sizes}
+    words = stream_words(seed, draws, key)  # every member's seed words at once (hashing them one by one costs most)
     for i in np.flatnonzero(ok):
-        rng = _stream(seed, draws[i], key)
+        rng = _stream(seed, draws[i], key) if words is None else np.random.Generator(np.random.PCG64(_Words(words[i])))
         if error == "lognormal":
             shared[i] = rng.standard_normal(k * top)
             continue
@@ -115,7 +185,9 @@ def simulate_summaries(truth: np.ndarray, error: str, sizes, detection: np.ndarr
         start = rng.bit_generator.state
         for n in sizes:
             rng.bit_generator.state = start
-            if nbinom:  # row by row, the draws a (k, n) array of gamma scales would take (scalar scales cost less)
+            if nbinom and k == 1:  # the draws a (1, n) array of gamma scales would take (a scalar scale costs less)
+                mu = rng.gamma(dispersion[i], float(mean[0, 0] / dispersion[i]), size=(1, n))
+            elif nbinom:  # row by row, likewise
                 mu = np.stack([rng.gamma(dispersion[i], float(m), size=n) for m in mean[:, 0] / dispersion[i]])
             else:
                 mu = np.broadcast_to(mean, (k, n))

@@ -10,7 +10,8 @@ from scipy.stats import norm
 from casefiles import mesopredator_case, write_case
 from impact.case import load_case
 from impact.errors import CaseError
-from impact.decision.studies import _stream, sample_values_many, simulate_summaries, simulate_summary, worth_cost
+from impact.decision.studies import (PURPOSE_STUDIES, _stream, sample_values_many, simulate_summaries,
+    simulate_summary, stream_words, worth_cost)
 
 
 def closed_form_evsi(mu0: float, s0: float, sd: float, n: float) -> float:
@@ -155,6 +156,20 @@ def test_every_size_at_once_gives_the_numbers_of_one_size_at_a_time(error, k):
     got = simulate_summaries(truth, error, sizes, *args)
     for n in sizes:
         assert np.array_equal(got[n], _one_size_reference(truth, error, n, *args), equal_nan=True)
+
+
+def test_members_seed_words_are_those_of_numpys_seed_sequence():
+    # the members' streams are seeded from words computed for all members at once; they must be the words
+    # numpy's SeedSequence(seed, spawn_key=(draw, PURPOSE_STUDIES, key)).generate_state(4, uint64) gives (the
+    # definition of the stream), for seeds of one to five 32-bit words and draws and keys at their limits
+    rng = np.random.default_rng(2)
+    draws = np.r_[0, 1, 2**32 - 1, rng.integers(0, 2**32, 20)]
+    for seed in (0, 2026, 2**32, 2**100 + 3, 2**130 + 5):
+        for key in (0, 2**32 - 1, 123456789):
+            want = np.stack([np.random.SeedSequence(seed, spawn_key=(int(d), PURPOSE_STUDIES, key)).generate_state(4, np.uint64)
+                             for d in draws])
+            assert np.array_equal(stream_words(seed, draws, key), want)
+    assert stream_words(1, np.array([2**32]), 1) is None  # a draw of two words: each member's own SeedSequence
 
 
 def test_worth_cost_words():
