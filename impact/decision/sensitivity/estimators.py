@@ -104,7 +104,8 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     by Jansen's estimator (ibid., (f)), second order by Saltelli 2002, each over the output variance
     of A and B; half-widths are ``z * sd`` over bootstrap resamples of the base samples. These are
     SALib's ``sobol.analyze`` estimates (same draws from ``rng``; point values identical, half-widths
-    to rounding), without its loop over parameters.
+    to rounding), without its loop over parameters: a resample's means are sums over the base samples
+    weighted by how often the resample drew each (one product for every parameter and resample).
 
     Parameters
     ----------
@@ -135,12 +136,15 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     var = _output_variance(A, B)
     S1, ST = _first_total(A, B, ABt, var, -1)
     Ar, Br = A[draws], B[draws]
-    A3, B3, var_r = Ar[..., None], Br[..., None], _output_variance(Ar, Br)[:, None]
-    S1r, STr = np.empty((resamples, D)), np.empty((resamples, D))
+    spread = np.ptp(np.r_[Ar, Br])
+    moves = spread != 0.0
+    # a resample's means are its count-weighted sums over the base samples: one (R x N) by (N x D) product of
+    # each base sample's terms, instead of gathering (N, R, D) stacks (the same sums in another order)
+    C = _resample_counts(draws)
+    var_r = _counted_variance(C, A, B, spread)[:, None]
+    S1r = _share(C @ (B[:, None] * (AB - A[:, None])) / N, var_r)
+    STr = _share(0.5 * (C @ (A[:, None] - AB) ** 2) / N, var_r)
     per = max(1, SALTELLI_CHUNK // (N * resamples))  # parameters per stack, so memory stays bounded
-    for c in _column_chunks(np.arange(D), per):
-        S1r[:, c], STr[:, c] = _first_total(A3, B3, AB[:, c][draws], var_r, 0)
-    moves = np.ptp(np.r_[Ar, Br]) != 0.0
     out = {"S1": S1, "ST": ST, "S1_conf": z * S1r.std(axis=0, ddof=1) if moves else np.zeros(D),
            "ST_conf": z * STr.std(axis=0, ddof=1) if moves else np.zeros(D)}
     if second_order:
@@ -150,13 +154,30 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
             out["S2"][j, k] = _closed_second(A, B, BAt[j], ABt[k], var, -1) - S1[j] - S1[k]
             BAj = BA[:, [j]][draws]
             for c in _column_chunks(k, per):
-                reps = _closed_second(A3, B3, BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
+                reps = _closed_second(Ar[..., None], Br[..., None], BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
                 out["S2_conf"][j, c] = z * reps.std(axis=0, ddof=1)
     return out
 
 
 EPS = np.finfo(float).eps
 SALTELLI_CHUNK = 1 << 21  # resampled values per stack (16 MB of floats), whatever N and D
+
+
+def _resample_counts(draws: np.ndarray) -> np.ndarray:
+    """How often each base sample is drawn in each resample: draws (N, R) of indices -> counts (R, N)."""
+    N, R = draws.shape
+    return np.bincount((draws.T + N * np.arange(R)[:, None]).ravel(), minlength=R * N).reshape(R, N).astype(float)
+
+
+def _counted_variance(C: np.ndarray, A: np.ndarray, B: np.ndarray, spread: float) -> np.ndarray:
+    """:func:`_output_variance` of each resample's A and B outputs from its counts ``C`` (R, N): (R,), 0 when the
+    resampled outputs' ``spread`` (their range over every resample) is nil. The outputs are standardised (mean 0,
+    variance 1), so the one-pass form's cancellation costs nothing that matters."""
+    if spread <= EPS:
+        return np.zeros(C.shape[0])
+    n = 2.0 * C.shape[1]
+    mean = (C @ (A + B)) / n
+    return (C @ (A * A + B * B)) / n - mean * mean
 
 
 def _column_chunks(cols: np.ndarray, per: int) -> list[np.ndarray]:
