@@ -364,6 +364,12 @@ def _rule_gains(nb, X, S, W, splits, refit):
     # choice sets of one width side by side (objectives under the same options): every fold's sets at once
     width = nb.shape[1] // len(splits)
     width *= all(c == slice(j * width, (j + 1) * width) for j, c in enumerate(splits)) and width * len(splits) == nb.shape[1]
+    # for a small design, every row's weighted sums x x' and x y' per fold (R·m·(K² + K·D) products once) give each
+    # fold's Newton gradient from its training sums, instead of R·m·K·D products of its residuals per fold
+    K = X.shape[1]
+    sums_f = ([_weighted_moments(w, X[f], nb[f]) for w, f in zip(Wf, folds)]
+              if width and not refit and REFIT_STEPS == 1 and K < MOMENTS_BELOW * nb.shape[1] else None)
+    sums_all = None if sums_f is None else (sum(a for a, _ in sums_f), sum(b for _, b in sums_f))
     for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
             break  # one member: nothing to learn from
@@ -378,7 +384,8 @@ def _rule_gains(nb, X, S, W, splits, refit):
         lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
                 for cols in splits]
         if width and not refit and REFIT_STEPS == 1:
-            gain += _fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width).T
+            trained = None if sums_f is None else (sums_all[0] - sums_f[k][0], sums_all[1] - sums_f[k][1])
+            gain += _fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width, trained).T
             continue
         if refit:
             coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
@@ -400,13 +407,15 @@ def _rule_gains(nb, X, S, W, splits, refit):
 
 def _fold_gains_equal_sets(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: np.ndarray, Yt: np.ndarray,
                            Wt: np.ndarray, Xf: np.ndarray, Yf: np.ndarray, wf: np.ndarray, sums: np.ndarray,
-                           D: int) -> np.ndarray:
+                           D: int, trained: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """One fold's gains (R, J) of J choice sets of D columns each, side by side in ``Yt`` (m_t, J·D) and ``Yf``
     (m_f, J·D), each set with its smoothing weight ``lams[j]``: the one-step fits of :func:`_newton_step_splits`
     and the scoring of :func:`_rule_gains`, every set in the same array operations.
 
     ``Xt``, ``Wt`` are the training members' design (m_t, K) and weights (R, m_t); ``Xf``, ``wf`` the fold's
-    (m_f, K), (R, m_f); ``sums`` (R, J·D) every row's sums of the net benefits over the training members.
+    (m_f, K), (R, m_f); ``sums`` (R, J·D) every row's sums of the net benefits over the training members;
+    ``trained`` (optional) every row's weighted sums over the training members of ``x x'`` (R, K, K) and ``x y'``
+    (R, K, J·D), from which the gradient is taken instead of from the residuals (the same step, other sums).
     """
     K = G.shape[0]
     R, m = Wt.shape
@@ -418,8 +427,12 @@ def _fold_gains_equal_sets(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: 
     Ar, Pr = A + ridge * eye, lam * S[None] + ridge * eye
     coef0 = np.linalg.solve(Ar, (Xt.T @ Yt).reshape(K, J, D).transpose(1, 0, 2))  # (J, K, D)
     c0 = coef0.transpose(1, 0, 2).reshape(K, J * D)
-    e = Yt - Xt @ c0
-    grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * J * D)).reshape(R, K, J, D)
+    if trained is None:
+        e = Yt - Xt @ c0
+        grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * J * D)).reshape(R, K, J, D)
+    else:  # Σ w x (y − x'c0)' = Σ w x y' − (Σ w x x') c0
+        xx, xy = trained
+        grad = (xy - (xx.reshape(R * K, K) @ c0).reshape(R, K, J * D)).reshape(R, K, J, D)
     grad -= (Pr @ coef0).transpose(1, 0, 2)[None]
     step = np.linalg.solve(Ar, grad.transpose(2, 1, 0, 3).reshape(J, K, R * D)).reshape(J, K, R, D)
     coef = c0.reshape(K, J, D)[None] + step.transpose(2, 1, 0, 3)  # (R, K, J, D)
@@ -433,6 +446,21 @@ def _fold_gains_equal_sets(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: 
     for d in range(1, D):
         y_now = np.where(now == d, yT[:, d], y_now)
     return (wf[:, None, :] * (got - y_now)).sum(axis=2)
+
+
+# the gradient from per-fold sums of x x' and x y' (K² + K·D per member, once) costs less than from each fold's
+# residuals (K·D per training member, per fold: 4 K·D per member over 5 folds) while K < 3 D
+MOMENTS_BELOW = 3
+
+
+def _weighted_moments(w: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every row's weighted sums ``Σ w x x'`` (R, K, K) and ``Σ w x y'`` (R, K, D) over the members ``X`` (m, K),
+    ``Y`` (m, D), weights ``w`` (R, m)."""
+    m, K = X.shape
+    D = Y.shape[1]
+    XY = np.hstack([X, Y])
+    s = (w @ (X[:, :, None] * XY[:, None, :]).reshape(m, K * (K + D))).reshape(-1, K, K + D)
+    return s[:, :, :K], s[:, :, K:]
 
 
 def chosen_values(F: np.ndarray, y: np.ndarray, nan: bool | None = None) -> np.ndarray:
