@@ -42,7 +42,7 @@ from numpy.random.bit_generator import ISeedSequence
 
 from impact.risk.effects import BASELINE, good_outcome
 from impact.model import resolve
-from impact.decision.voi import Estimate, choice_sets, member_weights, penalised_design, rule_gains
+from impact.decision.voi import Estimate, choice_sets, estimates, member_weights, penalised_design, rule_gains
 from impact.store.results import VALUED_TOGETHER
 
 PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
@@ -225,11 +225,6 @@ def study_summary(case, study, values: dict, today: np.ndarray, draws: np.ndarra
     return study_summaries(case, study, [study.samples], values, today, draws, seed)[study.samples]
 
 
-def _estimate(reps: np.ndarray, confidence: float) -> Estimate:
-    a = (1 - confidence) / 2
-    return Estimate(float(reps[0]), float(np.quantile(reps[1:], a)), float(np.quantile(reps[1:], 1 - a)))
-
-
 def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
                        studies: dict[str, tuple[np.ndarray, list[str] | None]], *, resamples: int = 200,
                        confidence: float = 0.95, seed: int = 0) -> list[dict[str, tuple[Estimate, Estimate]]]:
@@ -257,21 +252,23 @@ def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
     W = member_weights(M, resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
     col = {n: j for j, n in enumerate(names)}
-    ceilings: dict[tuple, np.ndarray] = {}
-    out: list[dict] = [{} for _ in splits]
+    ceilings: dict[tuple | None, np.ndarray] = {None: top}
+    values, caps = {}, {}
     for key, (Z, informs) in studies.items():
-        if informs is None:
-            ceiling = top
-        else:
-            k = tuple(informs)
-            if k not in ceilings:
-                gains = rule_gains(nb, *penalised_design(X[:, [col[m] for m in k]]), W, splits)
-                ceilings[k] = np.minimum(np.maximum(gains, 0.0), top)
-            ceiling = ceilings[k]
+        k = None if informs is None else tuple(informs)
+        if k not in ceilings:
+            gains = rule_gains(nb, *penalised_design(X[:, [col[m] for m in k]]), W, splits)
+            ceilings[k] = np.minimum(np.maximum(gains, 0.0), top)
         Z = np.asarray(Z, float).reshape(M, -1)
-        v = np.minimum(np.maximum(rule_gains(nb, *penalised_design(Z), W, splits), 0.0), ceiling)
-        for o, row, cap in zip(out, v, ceiling):
-            o[key] = (_estimate(row, confidence), _estimate(cap, confidence))
+        values[key] = np.minimum(np.maximum(rule_gains(nb, *penalised_design(Z), W, splits), 0.0), ceilings[k])
+        caps[key] = k
+    # every estimate's limits in one call per choice set (the numbers of one call each)
+    ceiling_keys = list(ceilings)
+    out: list[dict] = []
+    for j in range(len(splits)):
+        evsi = estimates(np.stack([values[key][j] for key in values]), confidence) if values else []
+        cap = dict(zip(ceiling_keys, estimates(np.stack([ceilings[k][j] for k in ceiling_keys]), confidence)))
+        out.append({key: (e, cap[caps[key]]) for key, e in zip(values, evsi)})
     return out
 
 

@@ -255,9 +255,13 @@ class Estimate:
     high: float
 
 
-def _bootstrap(value: float, reps: np.ndarray, confidence: float) -> Estimate:
+def estimates(rows: np.ndarray, confidence: float) -> list[Estimate]:
+    """An :class:`Estimate` of each row of ``rows`` (n, 1 + R): the value in column 0, the percentile limits of
+    the R resamples after it (each row's own ``np.quantile``, every row's in one call)."""
+    rows = np.asarray(rows, float).reshape(-1, np.shape(rows)[-1])
     a = (1 - confidence) / 2
-    return Estimate(value, float(np.quantile(reps, a)), float(np.quantile(reps, 1 - a)))
+    lim = np.quantile(rows[:, 1:], [a, 1 - a], axis=1)
+    return [Estimate(float(v), float(lo), float(hi)) for v, lo, hi in zip(rows[:, 0], lim[0], lim[1])]
 
 
 def bootstrap_counts(rng: np.random.Generator, M: int, resamples: int) -> np.ndarray:
@@ -619,12 +623,12 @@ def information_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[st
     X = np.asarray(X, float).reshape(nb.shape[0], -1)
     W = member_weights(nb.shape[0], resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
-    out = [{"all parameters": _bootstrap(float(t[0]), t[1:], confidence)} for t in top]
+    values = {"all parameters": top}
     col = {n: j for j, n in enumerate(names)}
     for key, members in ({n: [n] for n in names} | dict(groups or {})).items():
         # the basis is built once on all members; a resample weighs its rows by how often it drew them
-        v = np.minimum(np.maximum(rule_gains(nb, *penalised_design(X[:, [col[m] for m in members]]), W, splits),
-                                  0.0), top)
-        for o, row in zip(out, v):
-            o[key] = _bootstrap(float(row[0]), row[1:], confidence)
-    return out
+        values[key] = np.minimum(np.maximum(rule_gains(nb, *penalised_design(X[:, [col[m] for m in members]]), W,
+                                                       splits), 0.0), top)
+    keys = list(values)
+    rows = np.stack([values[k] for k in keys], axis=1)  # (choice sets, keys, 1 + R)
+    return [dict(zip(keys, estimates(r, confidence))) for r in rows]
