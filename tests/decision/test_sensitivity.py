@@ -204,6 +204,21 @@ def test_given_data_estimator_is_the_same_in_any_batch_of_parameters(monkeypatch
     np.testing.assert_array_equal(estimators.rbd_first_order(X, y, np.random.default_rng(5)), whole)
 
 
+def test_outputs_on_the_same_points_share_their_resamples_without_changing_numbers():
+    # given_data_first_order reuses the sort orders and resamples of the last set of points (they depend on the
+    # points and the stream alone); each output must still get the numbers of its own fresh stream, to the bit
+    from impact.decision.sensitivity.designs import salib_seed
+
+    X, y = _rbd_data(200, 4, seed=8)
+    for out in (y, y**2, np.where(y > y.mean(), 1.0, 0.0), y):
+        want = estimators.rbd_first_order(X, out, np.random.default_rng(salib_seed(3, 4)))
+        got = estimators.given_data_first_order(X, out, list("abcd"), seed=3)
+        assert all(np.array_equal(g, w, equal_nan=True) for g, w in zip(got, want))
+    other = X[::-1].copy()  # other points: a plan of their own
+    want = estimators.rbd_first_order(other, y, np.random.default_rng(salib_seed(3, 4)))
+    assert all(np.array_equal(g, w) for g, w in zip(estimators.given_data_first_order(other, y, list("abcd"), 3), want))
+
+
 def test_given_data_first_order_of_the_ishigami_function():
     # S1 from the closed-form partial variances (Ishigami & Homma 1990; Saltelli et al. 2008, Table 4.2) on
     # 2,000 uniform points. Margin 1.25 x the 95 % bootstrap half-width: over 1,000 data seeds the

@@ -7,6 +7,7 @@ SALib stays the reference: the tests compare these estimates with ``sobol.analyz
 
 from __future__ import annotations
 
+import hashlib
 import warnings
 from dataclasses import dataclass
 from typing import Callable, Sequence
@@ -305,8 +306,9 @@ RBD_RESAMPLES = 100
 RBD_CHUNK = 1 << 21  # resampled values per FFT batch: bounds memory (~50 MB) whatever N and D
 
 
-def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, harmonics: int = RBD_HARMONICS,
-                    resamples: int = RBD_RESAMPLES, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator | None, *, harmonics: int = RBD_HARMONICS,
+                    resamples: int = RBD_RESAMPLES, confidence: float = 0.95,
+                    plan: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """First-order indices of every column of ``X`` from given data, with bootstrap half-widths.
 
     The random-balance estimator on given data (Tarantola, Gatelli & Mara 2006; Plischke 2010, EASI):
@@ -326,6 +328,8 @@ def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, h
         Finite outputs.
     rng : numpy.random.Generator
         Stream of the resamples; ``D * resamples`` draws of ``n // 2`` indices, input by input.
+    plan : tuple, optional
+        :func:`rbd_plan` of ``X`` and ``rng`` made already (then ``rng`` is not read).
 
     Returns
     -------
@@ -334,22 +338,36 @@ def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, h
     from scipy.stats import norm
 
     X, y = np.asarray(X, float), np.asarray(y, float)
+    order, resampled = plan if plan is not None else rbd_plan(X, rng, resamples)
+    D = X.shape[1]
+    S1 = _spectral_share(y[order.T], harmonics)  # (D,)
+    reps = np.empty((D, resamples))
+    per_input = max(1, RBD_CHUNK // max(resampled[0].size, 1))
+    for lo in range(0, D, per_input):
+        j = np.arange(lo, min(D, lo + per_input))
+        reps[j] = _spectral_share(y[resampled[j]], harmonics)
+    conf = norm.ppf(0.5 + confidence / 2.0) * reps.std(axis=1, ddof=1)
+    return S1, conf
+
+
+def rbd_plan(X: np.ndarray, rng: np.random.Generator, resamples: int = RBD_RESAMPLES) -> tuple[np.ndarray, np.ndarray]:
+    """What :func:`rbd_first_order` reads the outputs through, which depends on the inputs and the stream alone
+    (so outputs on the same points share it): each input's sort order (n, D), and the point indices (D, R, n // 2)
+    of each resample sorted by each input; ``rng`` draws ``D * resamples`` resamples of ``n // 2`` indices."""
     n, D = X.shape
     m = n // 2
     order = np.argsort(X, axis=0, kind="stable")  # (n, D)
     rank = np.empty_like(order)
     np.put_along_axis(rank, order, np.arange(n)[:, None], axis=0)
     draws = rng.integers(0, n, size=(D, resamples, m))
-    S1 = _spectral_share(y[order.T], harmonics)  # (D,)
-    reps = np.empty((D, resamples))
+    resampled = np.empty((D, resamples, m), order.dtype)
     per_input = max(1, RBD_CHUNK // max(resamples * m, 1))
     for lo in range(0, D, per_input):
         j = np.arange(lo, min(D, lo + per_input))
         # a resample sorted by input j is the sorted ranks of its points, read back through `order`
         sorted_ranks = np.sort(rank[draws[j], j[:, None, None]], axis=-1)
-        reps[j] = _spectral_share(y[order[sorted_ranks, j[:, None, None]]], harmonics)
-    conf = norm.ppf(0.5 + confidence / 2.0) * reps.std(axis=1, ddof=1)
-    return S1, conf
+        resampled[j] = order[sorted_ranks, j[:, None, None]]
+    return order, resampled
 
 
 def _spectral_share(ys: np.ndarray, harmonics: int) -> np.ndarray:
@@ -386,6 +404,16 @@ def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], s
     D = X.shape[1]
     if y.size < 64 or np.ptp(y) == 0:
         return np.full(D, np.nan), np.full(D, np.nan)
-    # the stream SALib drew from when it computed these rows (salib_seed is itself on the SeedSequence path)
-    rng = np.random.default_rng(salib_seed(seed, 4))
-    return rbd_first_order(X, y, rng)
+    # the stream SALib drew from when it computed these rows (salib_seed is itself on the SeedSequence path);
+    # outputs on the same points share their sort orders and resamples (the same draws: the same stream)
+    key = (X.shape, hashlib.blake2b(np.ascontiguousarray(X).view(np.uint8).ravel(), digest_size=16).digest(),
+           salib_seed(seed, 4), RBD_RESAMPLES, RBD_CHUNK)
+    plan = _RBD_PLANS.get(key)
+    if plan is None:
+        plan = rbd_plan(X, np.random.default_rng(salib_seed(seed, 4)))
+        _RBD_PLANS.clear()  # one set of points at a time: the stage asks for its outputs one after another
+        _RBD_PLANS[key] = plan
+    return rbd_first_order(X, y, None, plan=plan)
+
+
+_RBD_PLANS: dict = {}  # the last set of points' rbd_plan, by a digest of the points and the stream
