@@ -1,9 +1,31 @@
-"""Cost of the main-effect and value-of-information tables on the plausible members, against the
-former resample-by-resample loops.
+"""The decision stage on the demo: where its time goes, the whole stage against its 1 s target (issue 26),
+and the cost of the main-effect and value-of-information tables against the former loops.
 
 Usage::
 
-    python bench/bench_decision.py [--case PATH] [--members M] [--repeats R]
+    python bench/bench_decision.py [--case PATH] [--calibrated DIR | --prior] [--members M] [--repeats R]
+                                   [--workers W] [--newton] [--loops]
+
+By default (issue 26) it builds the case's ensemble as ``impact assess`` does (``--calibrated DIR``: the
+members of an ``impact calibrate`` folder; ``--prior``: prior draws), runs the options once, then prints
+the decision stage's split, CPU seconds of each part computed alone in this process (minimum of R):
+press signs, drivers.csv, information.csv, studies.csv + study_sizes.csv (which reuse information.csv's
+gains), weighing, the prior screen's simulations (the engine's runs of its design points) and its
+analysis; their total; and the whole stage as ``impact assess`` runs it (api.decision_stage with W worker
+threads: the screen's simulations on the workers beside the rest), wall and CPU seconds, against the
+1 s target. On a machine shared with other work read the CPU seconds: wall time there is whatever
+share of the cores the process got.
+
+Measured 2026-12-05 on the shared 2-core AMD EPYC (load 2-4 from other work), the demo calibrated
+(1,000 members, 13 parameters, 3 objectives, 4 studies), CPU s, before (commit 874b15e) -> after:
+press signs 0.22 -> 0.21 (impact/dynamics, not changed); drivers 0.08 -> 0.08; information.csv
+0.36 -> 0.24; studies.csv + study_sizes.csv 2.1 -> 0.37; weighing 0.02 -> 0.02; prior screen:
+simulations 1.05 -> 1.05 (the engine's runs: 1,920 points x spin-up and 3 options), analysis 0.30 ->
+0.12. The stage 4.1 -> 2.2 CPU s; whole stage 1.46 s wall at best (load ~2.3), 2.4 CPU s with its
+threads; in the demo's manifest (execution.stage_seconds.sensitivity) 5.4 s -> 2.9-3.9 s, loaded.
+Target <= 1 s wall: not met. What stands in the way: the screen's simulations alone are 1.05 CPU s
+(0.5 s on two free cores), and press signs 0.2 s; with the rest (0.75 s) the stage is ~2.1 CPU s, so at
+least ~1.05 s wall on two free cores even when every part overlaps.
 
 Both tables reuse the members already run. Prints, from one run: the core stage (draws + paired
 option runs) once, then each table in CPU seconds (``time.process_time``, minimum of R) as computed
