@@ -51,7 +51,7 @@ The batched solves of the every-parameter design (101 resamples x 91 x 91, per f
 eigendecomposition per design now lead the profile.
 
 Since 2026-12-05 the resamples' fits are one Newton step from the fit on the members as drawn
-(voi.newton_coefficients) instead of each resample's own normal equations and solve. ``--stage`` (the
+(onestep.newton_coefficients) instead of each resample's own normal equations and solve. ``--stage`` (the
 default part of this script's output now) times what the decision stage computes on the kept members
 (api.hinges_stage: drivers, value of information, studies and their sizes, weighing), CPU seconds,
 with the Newton step and with the exact refits (``rule_gains(refit=True)``, the former path), and the

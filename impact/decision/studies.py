@@ -326,8 +326,6 @@ def study_tables(case, values: dict, today: np.ndarray, draws: np.ndarray, summa
     """:func:`studies_table` and :func:`study_sizes_table` together (the same numbers), computing what they
     share once: each study's data at every size, the declared size's value, and the choice's EVPI and
     ceilings."""
-    from dataclasses import replace
-
     choices = [BASELINE, *(o.name for o in case.options)]
     names = [p.name for p in case.uncertain]
     X = np.column_stack([values[n] for n in names])

@@ -60,6 +60,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from impact.decision import onestep
+from impact.decision.onestep import weighted_sums
+
 SPLINE_DEGREE = 3
 # interior knots per parameter: enough to follow a threshold-like response, few enough for
 # ~100 members per basis function at 1,000 members (common practice, no source)
@@ -72,10 +75,6 @@ FOLDS = 5
 # penalty in the metric of the design: from almost unpenalised to a constant fit
 SMOOTHING_GRID = np.logspace(-4.0, 6.0, 41)
 BATCH_VALUES = 1 << 21  # values held at once by the weighted sums (16 MB of floats), whatever M
-# columns per matrix product: a threaded BLAS splits wider products across cores, which on a shared
-# 2-core machine cost several times the CPU of one core doing them (measured: 100 x 1,000 x 190
-# products, 7 CPU ms whole against 1.1 ms in blocks of 8)
-BLAS_COLUMNS = 8
 
 
 @functools.lru_cache(maxsize=1)
@@ -201,15 +200,6 @@ def member_slices(M: int, width: int) -> list[slice]:
     return [slice(lo, lo + step) for lo in range(0, M, step)]
 
 
-def weighted_sums(W: np.ndarray, A: np.ndarray) -> np.ndarray:
-    """``W @ A``: sums (R, c) of the columns of ``A`` (m, c) under each row of member weights ``W`` (R, m),
-    in blocks of BLAS_COLUMNS columns."""
-    out = np.empty((W.shape[0], A.shape[1]))
-    for c in range(0, A.shape[1], BLAS_COLUMNS):
-        out[:, c:c + BLAS_COLUMNS] = W @ A[:, c:c + BLAS_COLUMNS]
-    return out
-
-
 def weighted_normal_equations(W: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``X' diag(w) X`` (R, K, K) and ``X' diag(w) Y`` (R, K, D) for each row ``w`` of member weights ``W`` (R, M).
 
@@ -296,8 +286,9 @@ def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
     refit : bool
         True: every row's fits solved exactly from its own weighted normal equations (R, K, K), the
         reference. False (default): each row's coefficients from the fit on the members as drawn by
-        REFIT_STEPS Newton steps with that fit's matrix (:func:`newton_coefficients`): row 0 is the same
-        either way, the other rows agree to within the bootstrap's own Monte Carlo error (tested).
+        ``onestep.REFIT_STEPS`` Newton steps with that fit's matrix
+        (:func:`impact.decision.onestep.newton_coefficients`): row 0 is the same either way, the other rows
+        agree to within the bootstrap's own Monte Carlo error (tested).
     """
     shared = _SHARED.get()
     with one_blas_thread():
@@ -371,8 +362,8 @@ def _rule_gains(nb, X, S, W, splits, refit):
     # for a small design, every row's weighted sums x x' and x y' per fold (R·m·(K² + K·D) products once) give each
     # fold's Newton gradient from its training sums, instead of R·m·K·D products of its residuals per fold
     K = X.shape[1]
-    sums_f = ([_weighted_moments(w, X[f], nb[f]) for w, f in zip(Wf, folds)]
-              if width and not refit and REFIT_STEPS == 1 and K < MOMENTS_BELOW * nb.shape[1] else None)
+    sums_f = ([onestep.weighted_moments(w, X[f], nb[f]) for w, f in zip(Wf, folds)]
+              if width and not refit and onestep.REFIT_STEPS == 1 and K < onestep.MOMENTS_BELOW * nb.shape[1] else None)
     sums_all = None if sums_f is None else (sum(a for a, _ in sums_f), sum(b for _, b in sums_f))
     for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
@@ -387,186 +378,26 @@ def _rule_gains(nb, X, S, W, splits, refit):
         # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
         lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
                 for cols in splits]
-        if width and not refit and REFIT_STEPS == 1:
+        if width and not refit and onestep.REFIT_STEPS == 1:
             trained = None if sums_f is None else (sums_all[0] - sums_f[k][0], sums_all[1] - sums_f[k][1])
-            gain += _fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width, trained).T
+            gain += onestep.fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width, trained).T
             continue
         if refit:
             coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
-        elif REFIT_STEPS == 1:
-            fitted = weighted_fitted(_newton_step_splits(G[0], S, lams, Xt, nbt, Wt, splits), Xf)  # every choice set's
+        elif onestep.REFIT_STEPS == 1:
+            fitted = weighted_fitted(onestep.newton_step_splits(G[0], S, lams, Xt, nbt, Wt, splits), Xf)  # every choice set's
             at = np.cumsum([0] + [nb[:, cols].shape[1] for cols in splits])
             coefs = None
         else:
-            coefs = [newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt) for lam, cols in zip(lams, splits)]
+            coefs = [onestep.newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt) for lam, cols in zip(lams, splits)]
         for j, cols in enumerate(splits):
             F = weighted_fitted(coefs[j], Xf) if coefs is not None else fitted[:, at[j]:at[j + 1]]
-            chosen = first_maximum(F)  # (R, m_k)
-            now = first_maximum(now_all[cols].T[:, :, None])[:, 0]  # (R,)
+            chosen = onestep.first_maximum(F)  # (R, m_k)
+            now = onestep.first_maximum(now_all[cols].T[:, :, None])[:, 0]  # (R,)
             y = nbf[:, cols]
             got = y.T[chosen, cols_f]  # (R, m_k)
             gain[j] += (Wf[k] * (got - y[:, now].T)).sum(axis=1)
     return gain / W.sum(axis=1)
-
-
-def _fold_gains_equal_sets(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: np.ndarray, Yt: np.ndarray,
-                           Wt: np.ndarray, Xf: np.ndarray, Yf: np.ndarray, wf: np.ndarray, sums: np.ndarray,
-                           D: int, trained: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
-    """One fold's gains (R, J) of J choice sets of D columns each, side by side in ``Yt`` (m_t, J·D) and ``Yf``
-    (m_f, J·D), each set with its smoothing weight ``lams[j]``: the one-step fits of :func:`_newton_step_splits`
-    and the scoring of :func:`_rule_gains`, every set in the same array operations.
-
-    ``Xt``, ``Wt`` are the training members' design (m_t, K) and weights (R, m_t); ``Xf``, ``wf`` the fold's
-    (m_f, K), (R, m_f); ``sums`` (R, J·D) every row's sums of the net benefits over the training members;
-    ``trained`` (optional) every row's weighted sums over the training members of ``x x'`` (R, K, K) and ``x y'``
-    (R, K, J·D), from which the gradient is taken instead of from the residuals (the same step, other sums).
-    """
-    K = G.shape[0]
-    R, m = Wt.shape
-    J = len(lams)
-    lam = np.asarray(lams, float)[:, None, None]
-    A = G[None] + lam * S[None]
-    ridge = (1e-10 * np.trace(A, axis1=1, axis2=2) / K)[:, None, None]  # the tiny ridge of ridge_solve
-    eye = np.eye(K)[None]
-    Ar, Pr = A + ridge * eye, lam * S[None] + ridge * eye
-    coef0 = np.linalg.solve(Ar, (Xt.T @ Yt).reshape(K, J, D).transpose(1, 0, 2))  # (J, K, D)
-    c0 = coef0.transpose(1, 0, 2).reshape(K, J * D)
-    if trained is None:
-        e = Yt - Xt @ c0
-        grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * J * D)).reshape(R, K, J, D)
-    else:  # Σ w x (y − x'c0)' = Σ w x y' − (Σ w x x') c0
-        xx, xy = trained
-        grad = (xy - (xx.reshape(R * K, K) @ c0).reshape(R, K, J * D)).reshape(R, K, J, D)
-    grad -= (Pr @ coef0).transpose(1, 0, 2)[None]
-    step = np.linalg.solve(Ar, grad.transpose(2, 1, 0, 3).reshape(J, K, R * D)).reshape(J, K, R, D)
-    coef = c0.reshape(K, J, D)[None] + step.transpose(2, 1, 0, 3)  # (R, K, J, D)
-    mf = Xf.shape[0]
-    # every resample's fitted values as one product: (R·J·D, K) by (K, m_f)
-    fitted = (coef.transpose(0, 2, 3, 1).reshape(R * J * D, K) @ Xf.T).reshape(R, J, D, mf)
-    yT = np.ascontiguousarray(Yf.T).reshape(J, D, mf)
-    got = chosen_values(fitted, yT, nan=bool(np.isnan(coef).any()))  # (R, J, m_f)
-    now = sums.reshape(R, J, D).argmax(axis=2)[:, :, None]  # the choice made now, in each set
-    y_now = yT[:, 0]
-    for d in range(1, D):
-        y_now = np.where(now == d, yT[:, d], y_now)
-    return (wf[:, None, :] * (got - y_now)).sum(axis=2)
-
-
-# the gradient from per-fold sums of x x' and x y' (K² + K·D per member, once) costs less than from each fold's
-# residuals (K·D per training member, per fold: 4 K·D per member over 5 folds) while K < 3 D
-MOMENTS_BELOW = 3
-
-
-def _weighted_moments(w: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Every row's weighted sums ``Σ w x x'`` (R, K, K) and ``Σ w x y'`` (R, K, D) over the members ``X`` (m, K),
-    ``Y`` (m, D), weights ``w`` (R, m)."""
-    m, K = X.shape
-    D = Y.shape[1]
-    XY = np.hstack([X, Y])
-    s = (w @ (X[:, :, None] * XY[:, None, :]).reshape(m, K * (K + D))).reshape(-1, K, K + D)
-    return s[:, :, :K], s[:, :, K:]
-
-
-def chosen_values(F: np.ndarray, y: np.ndarray, nan: bool | None = None) -> np.ndarray:
-    """``y[j, d*, i]`` at ``d* = F[r, j, :, i].argmax()`` for fitted values ``F`` (R, J, D, m) and outcomes ``y``
-    (J, D, m): (R, J, m), the first of tied maxima as argmax, by D − 1 comparisons and selections. ``nan``: whether
-    ``F`` may hold NaN (None: look), where argmax's rule (the first NaN) is kept by argmax itself."""
-    R, J, D, m = F.shape
-    if np.isnan(F).any() if nan is None else nan:
-        idx = F.argmax(axis=2)
-        return y[np.arange(J)[None, :, None], idx, np.arange(m)[None, None, :]]
-    best, got = F[:, :, 0], np.broadcast_to(y[:, 0], (R, J, m))
-    for d in range(1, D):
-        better = F[:, :, d] > best
-        got = np.where(better, y[:, d], got)
-        if d < D - 1:
-            best = np.maximum(best, F[:, :, d])
-    return got
-
-
-def first_maximum(F: np.ndarray) -> np.ndarray:
-    """``F.argmax(axis=1)`` of ``F`` (R, D, m) -> (R, m), by D − 1 comparisons of (R, m) slices: the first of
-    tied maxima, as argmax (argmax along a short middle axis walks the array with a stride)."""
-    if F.shape[1] == 1 or np.isnan(F).any():
-        return F.argmax(axis=1)
-    best = F[:, 0]
-    idx = np.zeros(best.shape, np.intp)
-    for d in range(1, F.shape[1]):
-        better = F[:, d] > best
-        idx[better] = d
-        best = np.where(better, F[:, d], best)
-    return idx
-
-
-# Newton steps of the resampled fits: each shrinks a resample's distance to its exact refit by about the
-# relative size of its change of design, ~sqrt(K/M) (measured on the demo and in tests/decision/test_voi.py)
-REFIT_STEPS = 1
-
-
-def newton_coefficients(A: np.ndarray, P: np.ndarray, Xt: np.ndarray, Yt: np.ndarray, Wt: np.ndarray,
-                        steps: int | None = None) -> np.ndarray:
-    """Coefficients (R, K, D) of the penalised fits of ``Yt`` (m, D) on ``Xt`` (m, K) under each row of member
-    weights ``Wt`` (R, m), by Newton steps from the fit under unit weights with that fit's matrix
-    ``A = Xt'Xt + P`` (K, K), penalty ``P`` (K, K).
-
-    A resample's fit solves ``(Xt' diag(w) Xt + P) β = Xt' diag(w) Yt``; one step from β is
-    ``β + A⁻¹ (Xt' diag(w) (Yt − Xt β) − P β)``, which needs each resample's residuals (m, D) but never its
-    (K, K) normal matrix: R·m·K·D products per step instead of R·m·K² and R solves of (K, K). Starting from
-    the unit-weight fit, the first step is the one-step (linearised) bootstrap; each further step shrinks
-    the distance to the exact refit by the factor ``‖A⁻¹ Xt' diag(w − 1) Xt‖``.
-    """
-    steps = REFIT_STEPS if steps is None else steps
-    K = A.shape[0]
-    ridge = 1e-10 * np.trace(A) / K  # the tiny ridge of ridge_solve, so row 0 equals its fit
-    Ar = A + ridge * np.eye(K)
-    Pr = P + ridge * np.eye(K)
-    coef0 = np.linalg.solve(Ar, Xt.T @ Yt)  # (K, D)
-    R, m, D = Wt.shape[0], Xt.shape[0], Yt.shape[1]
-    # first step: residuals shared by every resample, so the weighted sums are one matrix product
-    e = Yt - Xt @ coef0
-    grad = weighted_sums(Wt, (Xt[:, :, None] * e[:, None, :]).reshape(m, K * D)).reshape(R, K, D)
-    grad -= (Pr @ coef0)[None]
-    coef = coef0[None] + _solve_many(Ar, grad)
-    for _ in range(steps - 1):
-        resid = Yt[None] - Xt @ coef  # (R, m, D)
-        grad = np.einsum("mk,rmd->rkd", Xt, Wt[:, :, None] * resid, optimize=True) - Pr @ coef
-        coef = coef + _solve_many(Ar, grad)
-    return coef
-
-
-def _newton_step_splits(G: np.ndarray, S: np.ndarray, lams: list[float], Xt: np.ndarray, Yt: np.ndarray,
-                        Wt: np.ndarray, splits: list[slice]) -> np.ndarray:
-    """:func:`newton_coefficients` (one step) of every choice set in ``splits`` at once, the choice set ``j`` with
-    matrix ``G + lams[j]·S`` (K, K) and penalty ``lams[j]·S``: (R, K, ΣD_j), the sets' columns side by side.
-
-    The sets differ in their smoothing weight, so each has its own fit and factorisation, but the resamples'
-    weighted sums of every set's ``x_i e_i'`` are one (R x m) by (m x K·ΣD_j) product."""
-    K = G.shape[0]
-    R, m = Wt.shape
-    eye = np.eye(K)
-    fits = []
-    for lam, cols in zip(lams, splits):
-        A = G + lam * S
-        ridge = 1e-10 * np.trace(A) / K  # the tiny ridge of ridge_solve, as in newton_coefficients
-        Ar = A + ridge * eye
-        fits.append((Ar, lam * S + ridge * eye, np.linalg.solve(Ar, Xt.T @ Yt[:, cols])))
-    coef0 = np.hstack([c for _, _, c in fits])  # (K, ΣD_j)
-    e = np.hstack([Yt[:, cols] for cols in splits]) - Xt @ coef0
-    D = coef0.shape[1]
-    grad = (Wt @ (Xt[:, :, None] * e[:, None, :]).reshape(m, K * D)).reshape(R, K, D)
-    coef = np.empty_like(grad)
-    at = 0
-    for Ar, Pr, c0 in fits:
-        d = c0.shape[1]
-        coef[:, :, at:at + d] = c0[None] + _solve_many(Ar, grad[:, :, at:at + d] - (Pr @ c0)[None])
-        at += d
-    return coef
-
-
-def _solve_many(A: np.ndarray, B: np.ndarray) -> np.ndarray:
-    """``A⁻¹ B[r]`` for every r: A (K, K), B (R, K, D) -> (R, K, D), one factorisation."""
-    R, K, D = B.shape
-    return np.linalg.solve(A, np.moveaxis(B, 0, 1).reshape(K, R * D)).reshape(K, R, D).swapaxes(0, 1)
 
 
 def choice_sets(nbs: list[np.ndarray]) -> tuple[np.ndarray, list[slice]]:

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+import impact.decision.onestep as onestep
 import impact.decision.voi as voi
 from impact.decision.voi import information_values, penalised_design
 
@@ -217,7 +218,7 @@ def test_resamples_as_member_weights_equal_the_fits_on_gathered_rows(monkeypatch
 
 def test_newton_step_resamples_match_the_exact_refits_within_the_bootstrap_error():
     # the bootstrap's resamples are computed by a Newton step from the fit on the members as drawn instead
-    # of refitting each (voi.newton_coefficients); on a fixed synthetic problem (1,000 members, 200
+    # of refitting each (onestep.newton_coefficients); on a fixed synthetic problem (1,000 members, 200
     # resamples, a one-parameter design and the additive every-parameter design of EVPI) the two
     # estimators' replicate distributions must agree to within the bootstrap's own Monte Carlo error:
     # row 0 (the estimate) identical to rounding; means within 0.25 sd (the MC standard error of a mean of
@@ -321,10 +322,10 @@ def test_the_chosen_outcome_is_that_of_the_first_maximum():
     F = rng.integers(0, 3, size=(7, 2, 4, 50)).astype(float)  # many ties
     y = rng.random((2, 4, 50))
     want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
-    assert np.array_equal(voi.chosen_values(F, y), want)
+    assert np.array_equal(onestep.chosen_values(F, y), want)
     F[0, 0, 2, 3] = np.nan  # argmax's rule for NaN: the first NaN wins
     want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
-    assert np.array_equal(voi.chosen_values(F, y), want)
+    assert np.array_equal(onestep.chosen_values(F, y), want)
 
 
 def test_the_gradient_from_training_sums_scores_as_the_gradient_from_residuals(monkeypatch):
@@ -339,7 +340,7 @@ def test_the_gradient_from_training_sums_scores_as_the_gradient_from_residuals(m
     nb, splits = voi.choice_sets(sets)
     X, S = penalised_design(x[:, [0]])
     W = voi.member_weights(M, 60, 3)
-    assert X.shape[1] < voi.MOMENTS_BELOW * nb.shape[1]  # the sums' path is the one taken
+    assert X.shape[1] < onestep.MOMENTS_BELOW * nb.shape[1]  # the sums' path is the one taken
     sums = voi.rule_gains(nb, X, S, W, splits)
-    monkeypatch.setattr(voi, "MOMENTS_BELOW", 0)
+    monkeypatch.setattr(onestep, "MOMENTS_BELOW", 0)
     np.testing.assert_array_equal(sums, voi.rule_gains(nb, X, S, W, splits))
