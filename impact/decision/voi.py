@@ -309,7 +309,9 @@ def shared_gains():
     Within it, :func:`member_weights` hands every caller with the same (M, resamples, seed) the same read-only
     array, which is how the gains know their weights without reading them; other weights are never shared.
     A choice set computed beside others gives the numbers it gives alone (the design's sums are shared, each
-    set's fit is its own), so the tables do not depend on which table asked first.
+    set's fit is its own), so the tables do not depend on which table asked first. (The shared products
+    round differently from one set's alone; that can change a resample's choice only where two decisions'
+    fitted values tie to rounding: not once on the demo, tests/decision/test_voi.py.)
     """
     token = _SHARED.set({"weights": {}, "gains": {}})
     try:
