@@ -83,6 +83,18 @@ def weighted_moments(w: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.nd
     return s[:, :, :K], s[:, :, K:]
 
 
+def training_sums(Wf: list[np.ndarray], X: np.ndarray, Y: np.ndarray, folds: list[np.ndarray]) -> list[tuple]:
+    """Every row's weighted sums of ``x x'`` (R, K, K) and ``x y'`` (R, K, D) over each fold's training members
+    (all folds but its own), from :func:`weighted_moments` of each fold under its weights ``Wf[k]`` (R, m_k).
+
+    For a small design these give each fold's Newton gradient (R·M·(K² + K·D) products once) instead of the
+    products of its residuals (R·m_t·K·D per fold).
+    """
+    per_fold = [weighted_moments(w, X[f], Y[f]) for w, f in zip(Wf, folds)]
+    xx, xy = sum(a for a, _ in per_fold), sum(b for _, b in per_fold)
+    return [(xx - a, xy - b) for a, b in per_fold]
+
+
 def chosen_values(F: np.ndarray, y: np.ndarray, nan: bool | None = None) -> np.ndarray:
     """``y[j, d*, i]`` at ``d* = F[r, j, :, i].argmax()`` for fitted values ``F`` (R, J, D, m) and outcomes ``y``
     (J, D, m): (R, J, m), the first of tied maxima as argmax, by D − 1 comparisons and selections. ``nan``: whether

@@ -361,12 +361,8 @@ def _rule_gains(nb, X, S, W, splits, refit):
     # choice sets of one width side by side (objectives under the same options): every fold's sets at once
     width = nb.shape[1] // len(splits)
     width *= all(c == slice(j * width, (j + 1) * width) for j, c in enumerate(splits)) and width * len(splits) == nb.shape[1]
-    # for a small design, every row's weighted sums x x' and x y' per fold (R·m·(K² + K·D) products once) give each
-    # fold's Newton gradient from its training sums, instead of R·m·K·D products of its residuals per fold
-    K = X.shape[1]
-    sums_f = ([onestep.weighted_moments(w, X[f], nb[f]) for w, f in zip(Wf, folds)]
-              if width and not refit and onestep.REFIT_STEPS == 1 and K < onestep.MOMENTS_BELOW * nb.shape[1] else None)
-    sums_all = None if sums_f is None else (sum(a for a, _ in sums_f), sum(b for _, b in sums_f))
+    small = width and not refit and onestep.REFIT_STEPS == 1 and X.shape[1] < onestep.MOMENTS_BELOW * nb.shape[1]
+    trained = onestep.training_sums(Wf, X, nb, folds) if small else None
     for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
             break  # one member: nothing to learn from
@@ -381,8 +377,8 @@ def _rule_gains(nb, X, S, W, splits, refit):
         lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
                 for cols in splits]
         if width and not refit and onestep.REFIT_STEPS == 1:
-            trained = None if sums_f is None else (sums_all[0] - sums_f[k][0], sums_all[1] - sums_f[k][1])
-            gain += onestep.fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width, trained).T
+            gain += onestep.fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width,
+                                                  None if trained is None else trained[k]).T
             continue
         if refit:
             coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
