@@ -325,14 +325,17 @@ def hinges_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress: Pro
         return StageOutput()
     if progress:
         progress("sensitivity and value of information on the plausible members")
+    from impact.decision.voi import shared_gains
+
     tables = {"sensitivity/drivers.csv": drivers_table(case, ens.values, runs, seed)}
     if case.objectives:
-        tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
-        if case.studies:
-            from impact.decision.studies import studies_table, study_sizes_table
+        with shared_gains():  # the studies' ceilings are EVPPIs of information.csv: computed once
+            tables["sensitivity/information.csv"] = information_table(case, ens.values, runs, seed)
+            if case.studies:
+                from impact.decision.studies import study_tables
 
-            tables["sensitivity/studies.csv"] = studies_table(case, ens.values, ens.today, ens.draws, runs, seed)
-            tables["sensitivity/study_sizes.csv"] = study_sizes_table(case, ens.values, ens.today, ens.draws, runs, seed)
+                tables["sensitivity/studies.csv"], tables["sensitivity/study_sizes.csv"] = study_tables(
+                    case, ens.values, ens.today, ens.draws, runs, seed)
         if case.weighing is not None:
             from impact.decision.weighing import weighing_tables
 
@@ -349,13 +352,45 @@ def decision_stage(case: Case, settings: AssessSettings, seed: int, ens: Ensembl
     """
     from impact.decision.sensitivity import Settings as ScreenSettings
 
-    out = press_stage(case, ens, runs, progress).merged(hinges_stage(case, ens, runs, seed, progress))
     if len(case.uncertain) < 2:
+        out = press_stage(case, ens, runs, progress).merged(hinges_stage(case, ens, runs, seed, progress))
         return out.merged(StageOutput(entry={"skipped": f"{len(case.uncertain)} uncertain parameter(s); the Sobol "
                                                         "screen needs at least two"}))
     screen = ScreenSettings(base_samples=settings.base_samples, seed=seed, confidence=case.risk.confidence)
-    found = prior_screen(case, screen, progress, executor, store)
+    # with more than one worker the screen's simulations run on the workers while this thread computes the
+    # press signs and what the decision hinges on (neither depends on the other; the numbers are the same)
+    found = _started(prior_screen, (case, screen, progress, executor, store),
+                     parallel=getattr(executor, "workers", 1) > 1)
+    out = press_stage(case, ens, runs, progress).merged(hinges_stage(case, ens, runs, seed, progress))
+    found = found()
     return out.merged(StageOutput(found.tables, found.records, (), found.entry))
+
+
+def _started(fn: Callable, args: tuple, parallel: bool) -> Callable:
+    """``fn(*args)`` started in a thread of its own if ``parallel`` (else called when asked for); returns the call
+    that waits for its result (and raises its error)."""
+    if not parallel:
+        return lambda: fn(*args)
+    import threading
+
+    box: dict = {}
+
+    def run():
+        try:
+            box["value"] = fn(*args)
+        except BaseException as e:  # handed to the caller, who decides what it means
+            box["error"] = e
+
+    thread = threading.Thread(target=run, name="impact-prior-screen", daemon=True)
+    thread.start()
+
+    def result():
+        thread.join()
+        if "error" in box:
+            raise box["error"]
+        return box["value"]
+
+    return result
 
 
 def dynamics_stage(case: Case, ens: Ensemble, runs: dict, seed: int, progress=None, executor=None) -> StageOutput:

@@ -38,10 +38,11 @@ import zlib
 
 import numpy as np
 import pandas as pd
+from numpy.random.bit_generator import ISeedSequence
 
 from impact.risk.effects import BASELINE, good_outcome
 from impact.model import resolve
-from impact.decision.voi import Estimate, choice_sets, member_weights, penalised_design, rule_gains
+from impact.decision.voi import Estimate, choice_sets, estimates, member_weights, penalised_design, rule_gains
 from impact.store.results import VALUED_TOGETHER
 
 PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
@@ -49,6 +50,74 @@ PURPOSE_STUDIES = 13  # spawn-key purpose of the study-data streams
 
 def _stream(seed: int, draw: int, key: int) -> np.random.Generator:
     return np.random.Generator(np.random.PCG64(np.random.SeedSequence(seed, spawn_key=(int(draw), PURPOSE_STUDIES, key))))
+
+
+class _Words(ISeedSequence):
+    """A seed sequence whose state words are already known (:func:`stream_words`): hashing them is the cost."""
+
+    def __init__(self, words: np.ndarray):
+        self.words = words
+
+    def generate_state(self, n_words, dtype=np.uint32):
+        if n_words != 4 or np.dtype(dtype) != np.uint64:
+            raise ValueError("holds PCG64's four 64-bit seed words only")
+        return self.words
+
+
+# numpy's SeedSequence constants (numpy/random/bit_generator.pyx; O'Neill's seed_seq_fe design)
+_INIT_A, _MULT_A, _INIT_B, _MULT_B = 0x43B0D7E5, 0x931E8875, 0x8B51F9DD, 0x58F38DED
+_MIX_L, _MIX_R, _POOL = 0xCA01F9DD, 0x4973F715, 4
+_U32 = 0xFFFFFFFF
+
+
+def _uint32_words(n: int) -> list[int]:
+    out = [n & _U32]
+    while n > _U32:
+        n >>= 32
+        out.append(n & _U32)
+    return out
+
+
+def stream_words(seed: int, draws: np.ndarray, key: int) -> np.ndarray | None:
+    """PCG64's seed words (M, 4) of every member's stream ``SeedSequence(seed, spawn_key=(draw, PURPOSE_STUDIES,
+    key))``, computed for all members at once as numpy's SeedSequence computes them one at a time (the same
+    words: tested against it); None when a draw index needs more than one 32-bit word."""
+    draws = np.asarray(draws)
+    if draws.size and (draws.min() < 0 or draws.max() > _U32):
+        return None
+    run = _uint32_words(int(seed))
+    run += [0] * max(0, _POOL - len(run))
+    entropy = [np.full(draws.size, w, np.uint64) for w in run]
+    entropy += [draws.astype(np.uint64)] + [np.full(draws.size, w, np.uint64) for w in
+                                            _uint32_words(PURPOSE_STUDIES) + _uint32_words(int(key))]
+    h = [_INIT_A]
+
+    def hashmix(v):  # (uint64 arrays holding uint32 values: products wrap by masking)
+        v = v ^ h[0]
+        h[0] = (h[0] * _MULT_A) & _U32
+        v = (v * h[0]) & _U32
+        return v ^ (v >> 16)
+
+    def mix(x, y):
+        r = (_MIX_L * x - _MIX_R * y) & _U32
+        return r ^ (r >> 16)
+
+    pool = [hashmix(entropy[i]) for i in range(_POOL)]
+    for src in range(_POOL):
+        for dst in range(_POOL):
+            if src != dst:
+                pool[dst] = mix(pool[dst], hashmix(pool[src]))
+    for src in range(_POOL, len(entropy)):
+        for dst in range(_POOL):
+            pool[dst] = mix(pool[dst], hashmix(entropy[src]))
+    hb, state = _INIT_B, []
+    for i in range(8):
+        v = pool[i % _POOL] ^ hb
+        hb = (hb * _MULT_B) & _U32
+        v = (v * hb) & _U32
+        state.append(v ^ (v >> 16))
+    # little-endian pairs of 32-bit words, as SeedSequence.generate_state(4, np.uint64) makes them
+    return np.stack([state[2 * j] | (state[2 * j + 1] << np.uint64(32)) for j in range(4)], axis=1)
 
 
 def study_key(name: str) -> int:
@@ -79,29 +148,68 @@ def simulate_summary(truth: np.ndarray, error: str, samples: int, detection: np.
         ``log(mean count + 0.5/samples)`` for counts, the mean log value for the lognormal; NaN where
         the truth is not finite (a failed member).
     """
+    return simulate_summaries(truth, error, [samples], detection, scale, dispersion, log_sd, draws, seed, key)[samples]
+
+
+def simulate_summaries(truth: np.ndarray, error: str, sizes, detection: np.ndarray, scale: np.ndarray,
+                       dispersion: np.ndarray | None, log_sd: np.ndarray | None, draws: np.ndarray, seed: int,
+                       key: int) -> dict[int, np.ndarray]:
+    """:func:`simulate_summary` at each sample size of ``sizes``: size -> (M, k), the same numbers as one call each.
+
+    A member's data at every size start its one stream afresh, so the stream is made once per member and
+    restarted from its saved state. Where a size's draws are the first draws of the largest size's, they
+    are read from one draw of the largest: standard normals (the lognormal, any k), and Poisson counts of a
+    single measured quantity. The negative binomial draws its gamma means before its counts, so each size
+    draws anew.
+    """
     truth = np.asarray(truth, float)
     M, k = truth.shape
-    out = np.full((M, k), np.nan)
-    for i in range(M):
-        if not np.isfinite(truth[i]).all():
-            continue
-        rng = _stream(seed, draws[i], key)
+    sizes = sorted({int(n) for n in sizes})
+    top = sizes[-1]
+    out = {n: np.full((M, k), np.nan) for n in sizes}
+    ok = np.isfinite(truth).all(axis=1)
+    prefix = error == "lognormal" or (error == "poisson" and k == 1)
+    shared = np.full((M, k * top), np.nan) if prefix else None  # each member's draws at the largest size
+    nbinom = error == "negative-binomial"
+    counts = {} if prefix else {n: np.zeros((M, k, n)) for n in sizes}
+    words = stream_words(seed, draws, key)  # every member's seed words at once (hashing them one by one costs most)
+    for i in np.flatnonzero(ok):
+        rng = _stream(seed, draws[i], key) if words is None else np.random.Generator(np.random.PCG64(_Words(words[i])))
         if error == "lognormal":
-            z = rng.standard_normal((k, samples)).mean(axis=1)
-            out[i] = np.log(scale[i] * truth[i]) + log_sd[i] * z
+            shared[i] = rng.standard_normal(k * top)
             continue
-        mu = np.broadcast_to(detection[i] * scale[i] * np.maximum(truth[i], 0.0)[:, None], (k, samples))
-        if error == "negative-binomial":
-            mu = rng.gamma(dispersion[i], mu / dispersion[i])
-        out[i] = np.log(rng.poisson(mu).mean(axis=1) + 0.5 / samples)
+        mean = detection[i] * scale[i] * np.maximum(truth[i], 0.0)[:, None]
+        if prefix:
+            shared[i] = rng.poisson(np.broadcast_to(mean, (k, top))).ravel()
+            continue
+        start = rng.bit_generator.state
+        for n in sizes:
+            rng.bit_generator.state = start
+            if nbinom and k == 1:  # the draws a (1, n) array of gamma scales would take (a scalar scale costs less)
+                mu = rng.gamma(dispersion[i], float(mean[0, 0] / dispersion[i]), size=(1, n))
+            elif nbinom:  # row by row, likewise
+                mu = np.stack([rng.gamma(dispersion[i], float(m), size=n) for m in mean[:, 0] / dispersion[i]])
+            else:
+                mu = np.broadcast_to(mean, (k, n))
+            counts[n][i] = rng.poisson(mu)
+    for n in counts:
+        out[n][ok] = np.log(counts[n][ok].mean(axis=2) + 0.5 / n)
+    if prefix:
+        for n in sizes:
+            # (M, k, n) rows laid out as one call of size (k, n) lays them out, so each mean sums the same numbers
+            means = shared[:, :k * n].reshape(M, k, n).mean(axis=2)
+            if error == "lognormal":
+                out[n][ok] = np.log(scale[ok, None] * truth[ok]) + log_sd[ok, None] * means[ok]
+            else:
+                out[n][ok] = np.log(means[ok] + 0.5 / n)
     return out
 
 
-def study_summary(case, study, values: dict, today: np.ndarray, draws: np.ndarray, seed: int) -> np.ndarray:
-    """Summary (M, k) of ``study``'s simulated data for every member (:func:`simulate_summary`).
-
-    ``values`` are the members' parameter values (M,) by name, ``today`` their state today (M, n_state).
-    """
+def study_summaries(case, study, sizes, values: dict, today: np.ndarray, draws: np.ndarray,
+                    seed: int) -> dict[int, np.ndarray]:
+    """Summary (M, k) of ``study``'s simulated data for every member at each sample size of ``sizes``
+    (:func:`simulate_summaries`). ``values`` are the members' parameter values (M,) by name, ``today`` their
+    state today (M, n_state)."""
     M = len(draws)
     if study.measures == "species":
         truth = today[:, [case.species_names.index(study.target)]]
@@ -109,12 +217,12 @@ def study_summary(case, study, values: dict, today: np.ndarray, draws: np.ndarra
         truth = np.column_stack([values[p] for p in study.parameters])
     opt = {n: (None if getattr(study, n) is None else resolve(getattr(study, n), values, M))
            for n in ("detection", "scale", "dispersion", "log_sd")}
-    return simulate_summary(truth, study.error, study.samples, draws=draws, seed=seed, key=study_key(study.name), **opt)
+    return simulate_summaries(truth, study.error, sizes, draws=draws, seed=seed, key=study_key(study.name), **opt)
 
 
-def _estimate(reps: np.ndarray, confidence: float) -> Estimate:
-    a = (1 - confidence) / 2
-    return Estimate(float(reps[0]), float(np.quantile(reps[1:], a)), float(np.quantile(reps[1:], 1 - a)))
+def study_summary(case, study, values: dict, today: np.ndarray, draws: np.ndarray, seed: int) -> np.ndarray:
+    """Summary (M, k) of ``study``'s simulated data for every member (:func:`simulate_summary`) at its declared size."""
+    return study_summaries(case, study, [study.samples], values, today, draws, seed)[study.samples]
 
 
 def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
@@ -144,21 +252,23 @@ def sample_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[str],
     W = member_weights(M, resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
     col = {n: j for j, n in enumerate(names)}
-    ceilings: dict[tuple, np.ndarray] = {}
-    out: list[dict] = [{} for _ in splits]
+    ceilings: dict[tuple | None, np.ndarray] = {None: top}
+    values, caps = {}, {}
     for key, (Z, informs) in studies.items():
-        if informs is None:
-            ceiling = top
-        else:
-            k = tuple(informs)
-            if k not in ceilings:
-                gains = rule_gains(nb, *penalised_design(X[:, [col[m] for m in k]]), W, splits)
-                ceilings[k] = np.minimum(np.maximum(gains, 0.0), top)
-            ceiling = ceilings[k]
+        k = None if informs is None else tuple(informs)
+        if k not in ceilings:
+            gains = rule_gains(nb, *penalised_design(X[:, [col[m] for m in k]]), W, splits)
+            ceilings[k] = np.minimum(np.maximum(gains, 0.0), top)
         Z = np.asarray(Z, float).reshape(M, -1)
-        v = np.minimum(np.maximum(rule_gains(nb, *penalised_design(Z), W, splits), 0.0), ceiling)
-        for o, row, cap in zip(out, v, ceiling):
-            o[key] = (_estimate(row, confidence), _estimate(cap, confidence))
+        values[key] = np.minimum(np.maximum(rule_gains(nb, *penalised_design(Z), W, splits), 0.0), ceilings[k])
+        caps[key] = k
+    # every estimate's limits in one call per choice set (the numbers of one call each)
+    ceiling_keys = list(ceilings)
+    out: list[dict] = []
+    for j in range(len(splits)):
+        evsi = estimates(np.stack([values[key][j] for key in values]), confidence) if values else []
+        cap = dict(zip(ceiling_keys, estimates(np.stack([ceilings[k][j] for k in ceiling_keys]), confidence)))
+        out.append({key: (e, cap[caps[key]]) for key, e in zip(values, evsi)})
     return out
 
 
@@ -191,6 +301,71 @@ def _choice_sets(case, summaries: dict, choices: list[str]) -> list[tuple[str, n
     return sets
 
 
+SIZE_FACTORS = (0.25, 0.5, 1.0, 2.0, 4.0)  # sample sizes tried around the declared one, for "how large?"
+SIZE_COLUMNS = ("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling", "unit", "n")
+
+
+def _valued(case, X: np.ndarray, names: list[str], sets: list, data: dict, informs: dict, seed: int) -> list[dict]:
+    """:func:`sample_values_many` of the studies ``data`` (key -> (M, k)) under each choice set of ``sets``, each
+    on its members with finite net benefits and data; choice sets on the same members share one call (the
+    same numbers as one call each)."""
+    oks = [np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
+           for _, nb, _, _ in sets]
+    est: dict[int, dict] = {}
+    for mask in {ok.tobytes(): ok for ok in oks}.values():
+        same = [i for i, ok in enumerate(oks) if np.array_equal(ok, mask)]
+        many = sample_values_many([sets[i][1][mask] for i in same], X[mask], names,
+                                  {k: (z[mask], informs[k]) for k, z in data.items()},
+                                  resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)
+        est.update(zip(same, many))
+    return [est[i] for i in range(len(sets))]
+
+
+def study_tables(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict,
+                 seed: int) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """:func:`studies_table` and :func:`study_sizes_table` together (the same numbers), computing what they
+    share once: each study's data at every size, the declared size's value, and the choice's EVPI and
+    ceilings."""
+    choices = [BASELINE, *(o.name for o in case.options)]
+    names = [p.name for p in case.uncertain]
+    X = np.column_stack([values[n] for n in names])
+    data, sizes = {}, []
+    for s in case.studies:
+        ns = sorted({max(1, int(round(s.samples * f))) for f in SIZE_FACTORS})  # the declared size among them (1.0)
+        data.update({(s.name, n): z for n, z in study_summaries(case, s, ns, values, today, draws, seed).items()})
+        sizes += [(s, n) for n in ns]
+    informs = {(s.name, n): (list(s.parameters) if s.parameters else None) for s, n in sizes}
+    declared = {(s.name, s.samples): data[(s.name, s.samples)] for s in case.studies}
+    sets = _choice_sets(case, summaries, choices)
+    oks = [np.isfinite(nb).all(axis=1) for _, nb, _, _ in sets]
+    ok_all = [ok & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0) for ok in oks]
+    ok_declared = [ok & np.all([np.isfinite(z).all(axis=1) for z in declared.values()], axis=0) for ok in oks]
+    by_size = _valued(case, X, names, sets, data, informs, seed)
+    # the declared sizes are valued on their own members, which differ from those of every size only where
+    # another size's data failed (never, as a member's data fail by its truth alone)
+    by_study = (by_size if all(np.array_equal(a, b) for a, b in zip(ok_all, ok_declared))
+                else _valued(case, X, names, sets, declared, {k: informs[k] for k in declared}, seed))
+    rows = []
+    for (objective, _, scale, unit), est, ok in zip(sets, by_study, ok_declared):
+        for s in case.studies:
+            e, cap = est[(s.name, s.samples)]
+            enbs = [np.nan] * 3 if scale is None else [scale * x - s.cost for x in (e.value, e.low, e.high)]
+            rows.append(dict(study=s.name, measures=s.measures, target=s.target, error=s.error, samples=s.samples,
+                             objective=objective, evsi=e.value, low=e.low, high=e.high, distinguishable=bool(e.low > 0),
+                             ceiling=cap.value, ceiling_low=cap.low, ceiling_high=cap.high,
+                             ceiling_of="all parameters" if informs[(s.name, s.samples)] is None else s.target,
+                             cost=s.cost, cost_unit=s.cost_unit, value_scale=np.nan if scale is None else scale,
+                             enbs=enbs[0], enbs_low=enbs[1], enbs_high=enbs[2], worth_cost=worth_cost(enbs[1], enbs[2]),
+                             interval="bootstrap_percentile", level=case.risk.confidence, n=int(ok.sum()), unit=unit))
+    size_rows = []
+    for (objective, _, _, unit), est, ok in zip(sets, by_size, ok_all):
+        for s, n in sizes:
+            e, cap = est[(s.name, n)]
+            size_rows.append(dict(study=s.name, objective=objective, samples=n, declared=bool(n == s.samples),
+                                  evsi=e.value, low=e.low, high=e.high, ceiling=cap.value, unit=unit, n=int(ok.sum())))
+    return pd.DataFrame(rows, columns=list(STUDY_COLUMNS)), pd.DataFrame(size_rows, columns=list(SIZE_COLUMNS))
+
+
 def studies_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict, seed: int) -> pd.DataFrame:
     """EVSI of every candidate study under every objective (and the valued objectives together), with costs.
 
@@ -204,31 +379,7 @@ def studies_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summ
         Doing nothing (``baseline``) and every option, on the same members; an objective's net benefit
         in a member is its good outcome (:func:`impact.risk.effects.good_outcome`), as in the EVPPI.
     """
-    choices = [BASELINE, *(o.name for o in case.options)]
-    names = [p.name for p in case.uncertain]
-    X = np.column_stack([values[n] for n in names])
-    data = {s.name: study_summary(case, s, values, today, draws, seed) for s in case.studies}
-    informs = {s.name: (list(s.parameters) if s.parameters else None) for s in case.studies}
-    rows = []
-    for objective, nb, scale, unit in _choice_sets(case, summaries, choices):
-        ok = np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
-        est = sample_values_many([nb[ok]], X[ok], names, {k: (z[ok], informs[k]) for k, z in data.items()},
-                                 resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)[0]
-        for s in case.studies:
-            e, cap = est[s.name]
-            enbs = [np.nan] * 3 if scale is None else [scale * x - s.cost for x in (e.value, e.low, e.high)]
-            rows.append(dict(study=s.name, measures=s.measures, target=s.target, error=s.error, samples=s.samples,
-                             objective=objective, evsi=e.value, low=e.low, high=e.high, distinguishable=bool(e.low > 0),
-                             ceiling=cap.value, ceiling_low=cap.low, ceiling_high=cap.high,
-                             ceiling_of="all parameters" if informs[s.name] is None else s.target,
-                             cost=s.cost, cost_unit=s.cost_unit, value_scale=np.nan if scale is None else scale,
-                             enbs=enbs[0], enbs_low=enbs[1], enbs_high=enbs[2], worth_cost=worth_cost(enbs[1], enbs[2]),
-                             interval="bootstrap_percentile", level=case.risk.confidence, n=int(ok.sum()), unit=unit))
-    return pd.DataFrame(rows, columns=list(STUDY_COLUMNS))
-
-
-SIZE_FACTORS = (0.25, 0.5, 1.0, 2.0, 4.0)  # sample sizes tried around the declared one, for "how large?"
-SIZE_COLUMNS = ("study", "objective", "samples", "declared", "evsi", "low", "high", "ceiling", "unit", "n")
+    return study_tables(case, values, today, draws, summaries, seed)[0]
 
 
 def study_sizes_table(case, values: dict, today: np.ndarray, draws: np.ndarray, summaries: dict,
@@ -239,24 +390,4 @@ def study_sizes_table(case, values: dict, today: np.ndarray, draws: np.ndarray, 
     its one stream for the study (the smaller samples are the first draws of the larger ones for a single
     measured quantity), so the curve's steps are not blurred by fresh noise at each size.
     """
-    from dataclasses import replace
-
-    choices = [BASELINE, *(o.name for o in case.options)]
-    names = [p.name for p in case.uncertain]
-    X = np.column_stack([values[n] for n in names])
-    data, informs, sizes = {}, {}, []
-    for s in case.studies:
-        for n in sorted({max(1, int(round(s.samples * f))) for f in SIZE_FACTORS}):
-            data[(s.name, n)] = study_summary(case, replace(s, samples=n), values, today, draws, seed)
-            informs[(s.name, n)] = list(s.parameters) if s.parameters else None
-            sizes.append((s, n))
-    rows = []
-    for objective, nb, _, unit in _choice_sets(case, summaries, choices):
-        ok = np.isfinite(nb).all(axis=1) & np.all([np.isfinite(z).all(axis=1) for z in data.values()], axis=0)
-        est = sample_values_many([nb[ok]], X[ok], names, {k: (z[ok], informs[k]) for k, z in data.items()},
-                                 resamples=RESAMPLES, confidence=case.risk.confidence, seed=seed)[0]
-        for s, n in sizes:
-            e, cap = est[(s.name, n)]
-            rows.append(dict(study=s.name, objective=objective, samples=n, declared=bool(n == s.samples), evsi=e.value,
-                             low=e.low, high=e.high, ceiling=cap.value, unit=unit, n=int(ok.sum())))
-    return pd.DataFrame(rows, columns=list(SIZE_COLUMNS))
+    return study_tables(case, values, today, draws, summaries, seed)[1]

@@ -53,10 +53,15 @@ resample by resample. Pure functions, arrays in and out.
 from __future__ import annotations
 
 import contextlib
+import contextvars
 import functools
+import hashlib
 from dataclasses import dataclass
 
 import numpy as np
+
+from impact.decision import onestep
+from impact.decision.onestep import weighted_sums
 
 SPLINE_DEGREE = 3
 # interior knots per parameter: enough to follow a threshold-like response, few enough for
@@ -70,10 +75,6 @@ FOLDS = 5
 # penalty in the metric of the design: from almost unpenalised to a constant fit
 SMOOTHING_GRID = np.logspace(-4.0, 6.0, 41)
 BATCH_VALUES = 1 << 21  # values held at once by the weighted sums (16 MB of floats), whatever M
-# columns per matrix product: a threaded BLAS splits wider products across cores, which on a shared
-# 2-core machine cost several times the CPU of one core doing them (measured: 100 x 1,000 x 190
-# products, 7 CPU ms whole against 1.1 ms in blocks of 8)
-BLAS_COLUMNS = 8
 
 
 @functools.lru_cache(maxsize=1)
@@ -199,15 +200,6 @@ def member_slices(M: int, width: int) -> list[slice]:
     return [slice(lo, lo + step) for lo in range(0, M, step)]
 
 
-def weighted_sums(W: np.ndarray, A: np.ndarray) -> np.ndarray:
-    """``W @ A``: sums (R, c) of the columns of ``A`` (m, c) under each row of member weights ``W`` (R, m),
-    in blocks of BLAS_COLUMNS columns."""
-    out = np.empty((W.shape[0], A.shape[1]))
-    for c in range(0, A.shape[1], BLAS_COLUMNS):
-        out[:, c:c + BLAS_COLUMNS] = W @ A[:, c:c + BLAS_COLUMNS]
-    return out
-
-
 def weighted_normal_equations(W: np.ndarray, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """``X' diag(w) X`` (R, K, K) and ``X' diag(w) Y`` (R, K, D) for each row ``w`` of member weights ``W`` (R, M).
 
@@ -253,9 +245,13 @@ class Estimate:
     high: float
 
 
-def _bootstrap(value: float, reps: np.ndarray, confidence: float) -> Estimate:
+def estimates(rows: np.ndarray, confidence: float) -> list[Estimate]:
+    """An :class:`Estimate` of each row of ``rows`` (n, 1 + R): the value in column 0, the percentile limits of
+    the R resamples after it (each row's own ``np.quantile``, every row's in one call)."""
+    rows = np.asarray(rows, float).reshape(-1, np.shape(rows)[-1])
     a = (1 - confidence) / 2
-    return Estimate(value, float(np.quantile(reps, a)), float(np.quantile(reps, 1 - a)))
+    lim = np.quantile(rows[:, 1:], [a, 1 - a], axis=1)
+    return [Estimate(float(v), float(lo), float(hi)) for v, lo, hi in zip(rows[:, 0], lim[0], lim[1])]
 
 
 def bootstrap_counts(rng: np.random.Generator, M: int, resamples: int) -> np.ndarray:
@@ -290,11 +286,57 @@ def rule_gains(nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
     refit : bool
         True: every row's fits solved exactly from its own weighted normal equations (R, K, K), the
         reference. False (default): each row's coefficients from the fit on the members as drawn by
-        REFIT_STEPS Newton steps with that fit's matrix (:func:`newton_coefficients`): row 0 is the same
-        either way, the other rows agree to within the bootstrap's own Monte Carlo error (tested).
+        ``onestep.REFIT_STEPS`` Newton steps with that fit's matrix
+        (:func:`impact.decision.onestep.newton_coefficients`): row 0 is the same either way, the other rows
+        agree to within the bootstrap's own Monte Carlo error (tested).
     """
+    shared = _SHARED.get()
     with one_blas_thread():
-        return _rule_gains(nb, X, S, W, splits, refit)
+        if refit or shared is None or not any(W is w for w in shared["weights"].values()):
+            return _rule_gains(nb, X, S, W, splits, refit)
+        return _shared_rule_gains(shared["gains"], nb, X, S, W, splits or [slice(0, nb.shape[1])])
+
+
+# Within shared_gains(): the weights of member_weights by (M, resamples, seed), and the gains already computed
+_SHARED: contextvars.ContextVar = contextvars.ContextVar("impact_decision_shared_gains", default=None)
+
+
+@contextlib.contextmanager
+def shared_gains():
+    """A context in which each choice set's gains (:func:`rule_gains`) on the same design, members, weights and net
+    benefits are computed once: the information, studies and study-size tables ask for the same EVPI and EVPPIs.
+
+    Within it, :func:`member_weights` hands every caller with the same (M, resamples, seed) the same read-only
+    array, which is how the gains know their weights without reading them; other weights are never shared.
+    A choice set computed beside others gives the numbers it gives alone (the design's sums are shared, each
+    set's fit is its own), so the tables do not depend on which table asked first. (The shared products
+    round differently from one set's alone; that can change a resample's choice only where two decisions'
+    fitted values tie to rounding: not once on the demo, tests/decision/test_voi.py.)
+    """
+    token = _SHARED.set({"weights": {}, "gains": {}})
+    try:
+        yield
+    finally:
+        _SHARED.reset(token)
+
+
+def _digest(a: np.ndarray) -> tuple:
+    a = np.ascontiguousarray(a)
+    return a.shape, a.dtype.str, hashlib.blake2b(a.view(np.uint8).ravel(), digest_size=16).digest()
+
+
+def _shared_rule_gains(book: dict, nb: np.ndarray, X: np.ndarray, S: np.ndarray, W: np.ndarray,
+                       splits: list[slice]) -> np.ndarray:
+    """:func:`_rule_gains` (Newton step) of the choice sets not yet in ``book``, computed together; all from ``book``."""
+    design = (id(W), _digest(X), _digest(S))
+    keys = [design + (_digest(nb[:, cols]),) for cols in splits]
+    todo = list(dict.fromkeys(k for k in keys if k not in book))
+    if todo:
+        first = {k: keys.index(k) for k in todo}
+        sub, sub_splits = choice_sets([nb[:, splits[first[k]]] for k in todo])
+        for k, row in zip(todo, _rule_gains(sub, X, S, W, sub_splits, False)):
+            book[k] = row
+    return np.stack([book[k] for k in keys])
 
 
 def _rule_gains(nb, X, S, W, splits, refit):
@@ -308,76 +350,52 @@ def _rule_gains(nb, X, S, W, splits, refit):
     gram = sum(g for g, _ in moments)
     rhs = sum(r for _, r in moments)
     # every row's sums of the net benefits per fold: the choice made now (best weighted mean of the training folds)
-    fold_sums = [weighted_sums(W[:, f], nb[f]) for f in folds]
+    Wf = [W[:, f] for f in folds]
+    fold_sums = [weighted_sums(w, nb[f]) for w, f in zip(Wf, folds)]
     all_sums = sum(fold_sums)
     gain = np.zeros((len(splits), W.shape[0]))
     sq = (nb**2).sum(axis=0)
     # the smoothing weight's eigensystem from the design on all members (it holds no outcome, so the folds
     # stay apart), scaled to a fold's share of them: a training gram of c·X'X has s/c and U'L⁻¹/√c
     eig = penalty_eigensystem(gram[0], S)
+    # choice sets of one width side by side (objectives under the same options): every fold's sets at once
+    width = nb.shape[1] // len(splits)
+    width *= all(c == slice(j * width, (j + 1) * width) for j, c in enumerate(splits)) and width * len(splits) == nb.shape[1]
+    small = width and not refit and onestep.REFIT_STEPS == 1 and X.shape[1] < onestep.MOMENTS_BELOW * nb.shape[1]
+    trained = onestep.training_sums(Wf, X, nb, folds) if small else None
     for k, (f, (g_k, r_k)) in enumerate(zip(folds, moments)):
         if len(folds) == 1:
             break  # one member: nothing to learn from
         G, b = gram - g_k, rhs - r_k
         train = np.concatenate([folds[j] for j in range(len(folds)) if j != k])
+        Xt, nbt, Wt, Xf, nbf = X[train], nb[train], None if refit else W[:, train], X[f], nb[f]
         c = (M - f.size) / M
         fold_eig = None if eig is None else (eig[0] / np.sqrt(c), eig[1] / c)
+        now_all = (all_sums - fold_sums[k]).T  # (D, R)
+        cols_f = np.arange(f.size)
+        # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
+        lams = [smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nbf[:, cols] ** 2).sum()), M - f.size)
+                for cols in splits]
+        if width and not refit and onestep.REFIT_STEPS == 1:
+            gain += onestep.fold_gains_equal_sets(G[0], S, lams, Xt, nbt, Wt, Xf, nbf, Wf[k], now_all.T, width,
+                                                  None if trained is None else trained[k]).T
+            continue
+        if refit:
+            coefs = [ridge_solve(G + lam * S, b[:, :, cols])[0] for lam, cols in zip(lams, splits)]  # (R, K, D) each
+        elif onestep.REFIT_STEPS == 1:
+            fitted = weighted_fitted(onestep.newton_step_splits(G[0], S, lams, Xt, nbt, Wt, splits), Xf)  # every choice set's
+            at = np.cumsum([0] + [nb[:, cols].shape[1] for cols in splits])
+            coefs = None
+        else:
+            coefs = [onestep.newton_coefficients(G[0] + lam * S, lam * S, Xt, nbt[:, cols], Wt) for lam, cols in zip(lams, splits)]
         for j, cols in enumerate(splits):
-            # the smoothing weight comes from the training folds as drawn (row 0): one number the resamples reuse
-            lam = smoothing_weight(fold_eig, b[0][:, cols], float(sq[cols].sum() - (nb[f][:, cols] ** 2).sum()),
-                                   M - f.size)
-            if refit:
-                coef, _ = ridge_solve(G + lam * S, b[:, :, cols])  # (R, K, D)
-            else:
-                coef = newton_coefficients(G[0] + lam * S, lam * S, X[train], nb[train][:, cols], W[:, train])
-            chosen = weighted_fitted(coef, X[f]).argmax(axis=1)  # (R, m_k)
-            now = (all_sums - fold_sums[k])[:, cols].argmax(axis=1)
-            y = nb[f][:, cols]
-            got = np.take_along_axis(y.T[None], chosen[:, None, :], axis=1)[:, 0]  # (R, m_k)
-            gain[j] += (W[:, f] * (got - y[:, now].T)).sum(axis=1)
+            F = weighted_fitted(coefs[j], Xf) if coefs is not None else fitted[:, at[j]:at[j + 1]]
+            chosen = onestep.first_maximum(F)  # (R, m_k)
+            now = onestep.first_maximum(now_all[cols].T[:, :, None])[:, 0]  # (R,)
+            y = nbf[:, cols]
+            got = y.T[chosen, cols_f]  # (R, m_k)
+            gain[j] += (Wf[k] * (got - y[:, now].T)).sum(axis=1)
     return gain / W.sum(axis=1)
-
-
-# Newton steps of the resampled fits: each shrinks a resample's distance to its exact refit by about the
-# relative size of its change of design, ~sqrt(K/M) (measured on the demo and in tests/decision/test_voi.py)
-REFIT_STEPS = 1
-
-
-def newton_coefficients(A: np.ndarray, P: np.ndarray, Xt: np.ndarray, Yt: np.ndarray, Wt: np.ndarray,
-                        steps: int | None = None) -> np.ndarray:
-    """Coefficients (R, K, D) of the penalised fits of ``Yt`` (m, D) on ``Xt`` (m, K) under each row of member
-    weights ``Wt`` (R, m), by Newton steps from the fit under unit weights with that fit's matrix
-    ``A = Xt'Xt + P`` (K, K), penalty ``P`` (K, K).
-
-    A resample's fit solves ``(Xt' diag(w) Xt + P) β = Xt' diag(w) Yt``; one step from β is
-    ``β + A⁻¹ (Xt' diag(w) (Yt − Xt β) − P β)``, which needs each resample's residuals (m, D) but never its
-    (K, K) normal matrix: R·m·K·D products per step instead of R·m·K² and R solves of (K, K). Starting from
-    the unit-weight fit, the first step is the one-step (linearised) bootstrap; each further step shrinks
-    the distance to the exact refit by the factor ``‖A⁻¹ Xt' diag(w − 1) Xt‖``.
-    """
-    steps = REFIT_STEPS if steps is None else steps
-    K = A.shape[0]
-    ridge = 1e-10 * np.trace(A) / K  # the tiny ridge of ridge_solve, so row 0 equals its fit
-    Ar = A + ridge * np.eye(K)
-    Pr = P + ridge * np.eye(K)
-    coef0 = np.linalg.solve(Ar, Xt.T @ Yt)  # (K, D)
-    R, m, D = Wt.shape[0], Xt.shape[0], Yt.shape[1]
-    # first step: residuals shared by every resample, so the weighted sums are one matrix product
-    e = Yt - Xt @ coef0
-    grad = weighted_sums(Wt, (Xt[:, :, None] * e[:, None, :]).reshape(m, K * D)).reshape(R, K, D)
-    grad -= (Pr @ coef0)[None]
-    coef = coef0[None] + _solve_many(Ar, grad)
-    for _ in range(steps - 1):
-        resid = Yt[None] - Xt @ coef  # (R, m, D)
-        grad = np.einsum("mk,rmd->rkd", Xt, Wt[:, :, None] * resid, optimize=True) - Pr @ coef
-        coef = coef + _solve_many(Ar, grad)
-    return coef
-
-
-def _solve_many(A: np.ndarray, B: np.ndarray) -> np.ndarray:
-    """``A⁻¹ B[r]`` for every r: A (K, K), B (R, K, D) -> (R, K, D), one factorisation."""
-    R, K, D = B.shape
-    return np.linalg.solve(A, np.moveaxis(B, 0, 1).reshape(K, R * D)).reshape(K, R, D).swapaxes(0, 1)
 
 
 def choice_sets(nbs: list[np.ndarray]) -> tuple[np.ndarray, list[slice]]:
@@ -391,9 +409,16 @@ def member_weights(M: int, resamples: int, seed: int) -> np.ndarray:
     """Row 0 all ones (the members as drawn: the estimate), then the bootstrap resamples as member counts
     (resamples + 1, M), from the value-of-information stream: every caller with the same seed and M
     resamples the same members, so values computed apart can be capped resample by resample."""
+    shared = _SHARED.get()
+    if shared is not None and (M, resamples, seed) in shared["weights"]:
+        return shared["weights"][(M, resamples, seed)]
     ss = np.random.SeedSequence(seed, spawn_key=(PURPOSE_VOI,))
     rng = np.random.Generator(np.random.PCG64(ss.spawn(1)[0]))
-    return np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    W = np.vstack([np.ones((1, M)), bootstrap_counts(rng, M, resamples)])
+    if shared is not None:
+        W.flags.writeable = False
+        shared["weights"][(M, resamples, seed)] = W
+    return W
 
 
 def information_values(nb: np.ndarray, X: np.ndarray, names: list[str], groups: dict[str, list[str]] | None = None,
@@ -427,12 +452,12 @@ def information_values_many(nbs: list[np.ndarray], X: np.ndarray, names: list[st
     X = np.asarray(X, float).reshape(nb.shape[0], -1)
     W = member_weights(nb.shape[0], resamples, seed)
     top = np.maximum(rule_gains(nb, *penalised_design(X, interactions=False), W, splits), 0.0)
-    out = [{"all parameters": _bootstrap(float(t[0]), t[1:], confidence)} for t in top]
+    values = {"all parameters": top}
     col = {n: j for j, n in enumerate(names)}
     for key, members in ({n: [n] for n in names} | dict(groups or {})).items():
         # the basis is built once on all members; a resample weighs its rows by how often it drew them
-        v = np.minimum(np.maximum(rule_gains(nb, *penalised_design(X[:, [col[m] for m in members]]), W, splits),
-                                  0.0), top)
-        for o, row in zip(out, v):
-            o[key] = _bootstrap(float(row[0]), row[1:], confidence)
-    return out
+        values[key] = np.minimum(np.maximum(rule_gains(nb, *penalised_design(X[:, [col[m] for m in members]]), W,
+                                                       splits), 0.0), top)
+    keys = list(values)
+    rows = np.stack([values[k] for k in keys], axis=1)  # (choice sets, keys, 1 + R)
+    return [dict(zip(keys, estimates(r, confidence))) for r in rows]

@@ -224,3 +224,31 @@ def test_choices_tied_for_best_are_all_named(tmp_path):
     info = res.sensitivity["information"]
     assert set(info.best_choice.iloc[0].split("; ")) == {"eradicate", "eradicate twice over"}
     assert "“eradicate” and “eradicate twice over”, tied" in hinges_text(res)
+
+
+def test_the_prior_screen_beside_the_rest_gives_the_tables_of_one_after_another(tmp_path):
+    # with worker threads api.decision_stage runs the prior screen's simulations beside the press signs and what
+    # the decision hinges on; neither reads the other, so every table and record must equal the in-process
+    # stage's (one part after another), to the bit
+    from casefiles import mesopredator_case
+    from impact.api import AssessSettings, decision_stage
+    from impact.run.execute import make_executor
+
+    data = mesopredator_case(members=120)
+    data["parameters"]["meso_mortality"] = {"distribution": "uniform", "low": 0.27, "high": 0.33, "unit": "1/year",
+                                            "source": "test"}
+    data["species"][1]["mortality"] = "meso_mortality"
+    case = load_case(write_case(tmp_path, data))
+    ens = draw_ensemble(case, 120, case.seed)
+    runs = assess_members(case, ens, case.seed)
+    settings = AssessSettings(base_samples=16).resolved(case)
+    apart = decision_stage(case, settings, case.seed, ens, runs)
+    with make_executor(2) as executor:
+        beside = decision_stage(case, settings, case.seed, ens, runs, executor=executor)
+    assert "sensitivity/indices.csv" in beside.tables and apart.tables.keys() == beside.tables.keys()
+    for key, table in apart.tables.items():
+        assert table.equals(beside.tables[key]), key
+    drop = {"seconds", "seconds_total"}  # (how long it took)
+    assert ({k: v for k, v in apart.records["sensitivity/sensitivity.json"].items() if k not in drop}
+            == {k: v for k, v in beside.records["sensitivity/sensitivity.json"].items() if k not in drop})
+    assert apart.entry == beside.entry

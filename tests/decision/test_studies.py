@@ -10,7 +10,8 @@ from scipy.stats import norm
 from casefiles import mesopredator_case, write_case
 from impact.case import load_case
 from impact.errors import CaseError
-from impact.decision.studies import sample_values_many, simulate_summary, worth_cost
+from impact.decision.studies import (PURPOSE_STUDIES, _stream, sample_values_many, simulate_summaries,
+    simulate_summary, stream_words, worth_cost)
 
 
 def closed_form_evsi(mu0: float, s0: float, sd: float, n: float) -> float:
@@ -120,6 +121,55 @@ def test_study_data_are_the_members_own():
     assert np.array_equal(a, b[::-1])
     c = simulate_summary(truth[1:], "negative-binomial", 5, one[1:], one[1:], 4 * one[1:], None, np.array([11, 12]), 9, 1)
     assert np.array_equal(a[1:], c)
+
+
+def _one_size_reference(truth, error, samples, detection, scale, dispersion, log_sd, draws, seed, key):
+    """The observation model as declared, one member and one size at a time from a fresh stream (the reference)."""
+    M, k = truth.shape
+    out = np.full((M, k), np.nan)
+    for i in range(M):
+        if not np.isfinite(truth[i]).all():
+            continue
+        rng = _stream(seed, draws[i], key)
+        if error == "lognormal":
+            out[i] = np.log(scale[i] * truth[i]) + log_sd[i] * rng.standard_normal((k, samples)).mean(axis=1)
+            continue
+        mu = np.broadcast_to(detection[i] * scale[i] * np.maximum(truth[i], 0.0)[:, None], (k, samples))
+        if error == "negative-binomial":
+            mu = rng.gamma(dispersion[i], mu / dispersion[i])
+        out[i] = np.log(rng.poisson(mu).mean(axis=1) + 0.5 / samples)
+    return out
+
+
+@pytest.mark.parametrize("error", ["lognormal", "poisson", "negative-binomial"])
+@pytest.mark.parametrize("k", [1, 2])
+def test_every_size_at_once_gives_the_numbers_of_one_size_at_a_time(error, k):
+    # the sizes of study_sizes.csv are drawn together (one stream per member, shared draws where they are the
+    # first draws of the largest size); each size must equal its own fresh draw to the bit
+    rng = np.random.default_rng(8)
+    M = 60
+    truth = rng.gamma(2.0, 3.0, (M, k))
+    truth[4] = np.nan
+    args = (rng.uniform(0.2, 1, M), rng.uniform(0.5, 3, M), rng.uniform(0.5, 5, M), rng.uniform(0.1, 0.8, M),
+            rng.permutation(500)[:M], 4, 17)
+    sizes = [1, 2, 5, 10, 40, 129, 160]
+    got = simulate_summaries(truth, error, sizes, *args)
+    for n in sizes:
+        assert np.array_equal(got[n], _one_size_reference(truth, error, n, *args), equal_nan=True)
+
+
+def test_members_seed_words_are_those_of_numpys_seed_sequence():
+    # the members' streams are seeded from words computed for all members at once; they must be the words
+    # numpy's SeedSequence(seed, spawn_key=(draw, PURPOSE_STUDIES, key)).generate_state(4, uint64) gives (the
+    # definition of the stream), for seeds of one to five 32-bit words and draws and keys at their limits
+    rng = np.random.default_rng(2)
+    draws = np.r_[0, 1, 2**32 - 1, rng.integers(0, 2**32, 20)]
+    for seed in (0, 2026, 2**32, 2**100 + 3, 2**130 + 5):
+        for key in (0, 2**32 - 1, 123456789):
+            want = np.stack([np.random.SeedSequence(seed, spawn_key=(int(d), PURPOSE_STUDIES, key)).generate_state(4, np.uint64)
+                             for d in draws])
+            assert np.array_equal(stream_words(seed, draws, key), want)
+    assert stream_words(1, np.array([2**32]), 1) is None  # a draw of two words: each member's own SeedSequence
 
 
 def test_worth_cost_words():

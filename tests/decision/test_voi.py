@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+import impact.decision.onestep as onestep
 import impact.decision.voi as voi
 from impact.decision.voi import information_values, penalised_design
 
@@ -217,7 +218,7 @@ def test_resamples_as_member_weights_equal_the_fits_on_gathered_rows(monkeypatch
 
 def test_newton_step_resamples_match_the_exact_refits_within_the_bootstrap_error():
     # the bootstrap's resamples are computed by a Newton step from the fit on the members as drawn instead
-    # of refitting each (voi.newton_coefficients); on a fixed synthetic problem (1,000 members, 200
+    # of refitting each (onestep.newton_coefficients); on a fixed synthetic problem (1,000 members, 200
     # resamples, a one-parameter design and the additive every-parameter design of EVPI) the two
     # estimators' replicate distributions must agree to within the bootstrap's own Monte Carlo error:
     # row 0 (the estimate) identical to rounding; means within 0.25 sd (the MC standard error of a mean of
@@ -296,3 +297,50 @@ def test_a_dummy_parameter_on_a_demo_sized_ensemble_is_never_most_worth_measurin
         text = hinges_text(SimpleNamespace(sensitivity={"information": info}))
         assert "most worth measuring is dummy" not in text
         assert ("most worth measuring" in text) <= any(e.low > 0 for k, e in r.items() if k != "all parameters")
+
+
+def test_gains_shared_between_tables_are_the_numbers_computed_apart():
+    # within shared_gains() a choice set's gains are computed once and reused (the studies' ceilings are the
+    # EVPPIs of information.csv); a set computed beside another must give the numbers it gives alone, so the
+    # values inside the context equal those outside it, whichever call came first (an identity, to the bit)
+    rng = np.random.default_rng(9)
+    M = 300
+    x = rng.random((M, 3))
+    a = (rng.random((M, 3)) < np.column_stack([x[:, 0], 1 - x[:, 0], 0.5 + 0 * x[:, 1]])).astype(float)
+    b = (rng.random((M, 3)) < np.column_stack([0.4 + 0.2 * x[:, 1], 0.5 + 0 * x[:, 1], x[:, 2]])).astype(float)
+    names = ["u", "v", "w"]
+    apart = [information_values(a, x, names, resamples=30, seed=5), information_values(b, x, names, resamples=30, seed=5)]
+    with voi.shared_gains():
+        both = voi.information_values_many([a, b], x, names, resamples=30, seed=5)
+        again = information_values(b, x, names, resamples=30, seed=5)
+    assert both == apart and again == apart[1]
+
+
+def test_the_chosen_outcome_is_that_of_the_first_maximum():
+    # chosen_values replaces argmax and a gather; ties (equal fitted values) must go to the first, as argmax
+    rng = np.random.default_rng(1)
+    F = rng.integers(0, 3, size=(7, 2, 4, 50)).astype(float)  # many ties
+    y = rng.random((2, 4, 50))
+    want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
+    assert np.array_equal(onestep.chosen_values(F, y), want)
+    F[0, 0, 2, 3] = np.nan  # argmax's rule for NaN: the first NaN wins
+    want = np.take_along_axis(y[None], F.argmax(axis=2)[:, :, None, :], axis=2)[:, :, 0]
+    assert np.array_equal(onestep.chosen_values(F, y), want)
+
+
+def test_the_gradient_from_training_sums_scores_as_the_gradient_from_residuals(monkeypatch):
+    # for a small design the resamples' Newton gradient is taken from per-fold sums of x x' and x y' instead of each
+    # fold's residuals: the same step up to rounding, so every resample's choice and gain is the same (on this fixed
+    # problem: exactly; a tie of fitted values within rounding could flip a choice, which would show here)
+    rng = np.random.default_rng(12)
+    M = 400
+    x = rng.random((M, 2))
+    sets = [(rng.random((M, 3)) < np.column_stack([0.2 + 0.6 * x[:, 0], 0.5 + 0 * x[:, 0], 0.8 - 0.6 * x[:, 1]]))
+            .astype(float) for _ in range(4)]
+    nb, splits = voi.choice_sets(sets)
+    X, S = penalised_design(x[:, [0]])
+    W = voi.member_weights(M, 60, 3)
+    assert X.shape[1] < onestep.MOMENTS_BELOW * nb.shape[1]  # the sums' path is the one taken
+    sums = voi.rule_gains(nb, X, S, W, splits)
+    monkeypatch.setattr(onestep, "MOMENTS_BELOW", 0)
+    np.testing.assert_array_equal(sums, voi.rule_gains(nb, X, S, W, splits))

@@ -7,6 +7,8 @@ SALib stays the reference: the tests compare these estimates with ``sobol.analyz
 
 from __future__ import annotations
 
+import functools
+import hashlib
 import warnings
 from dataclasses import dataclass
 from typing import Callable, Sequence
@@ -104,7 +106,8 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     by Jansen's estimator (ibid., (f)), second order by Saltelli 2002, each over the output variance
     of A and B; half-widths are ``z * sd`` over bootstrap resamples of the base samples. These are
     SALib's ``sobol.analyze`` estimates (same draws from ``rng``; point values identical, half-widths
-    to rounding), without its loop over parameters.
+    to rounding), without its loop over parameters: a resample's means are sums over the base samples
+    weighted by how often the resample drew each (one product for every parameter and resample).
 
     Parameters
     ----------
@@ -118,8 +121,6 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     dict of ndarray: ``S1``, ``S1_conf``, ``ST``, ``ST_conf`` (D,); with second order also ``S2``,
     ``S2_conf`` (D, D), upper triangle filled, NaN elsewhere.
     """
-    from scipy.stats import norm
-
     step = 2 * D + 2 if second_order else D + 2
     y = np.asarray(y, float)
     y = (y - y.mean()) / y.std()
@@ -128,19 +129,22 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
     A, B = blocks[:, 0], blocks[:, -1]
     AB, BA = blocks[:, 1:D + 1], blocks[:, D + 1:2 * D + 1]
     draws = rng.integers(N, size=(N, resamples))
-    z = norm.ppf(0.5 + confidence / 2)
+    z = normal_quantile(0.5 + confidence / 2)
     # SALib's summation order: the point estimate sums each parameter's samples as one contiguous row
     # (AB.T, (D, N)); the resamples sum down the base samples of (N, R, columns) stacks
     ABt, BAt = AB.T.copy(), BA.T.copy()
     var = _output_variance(A, B)
     S1, ST = _first_total(A, B, ABt, var, -1)
     Ar, Br = A[draws], B[draws]
-    A3, B3, var_r = Ar[..., None], Br[..., None], _output_variance(Ar, Br)[:, None]
-    S1r, STr = np.empty((resamples, D)), np.empty((resamples, D))
+    spread = np.ptp(np.r_[Ar, Br])
+    moves = spread != 0.0
+    # a resample's means are its count-weighted sums over the base samples: one (R x N) by (N x D) product of
+    # each base sample's terms, instead of gathering (N, R, D) stacks (the same sums in another order)
+    C = _resample_counts(draws)
+    var_r = _counted_variance(C, A, B, spread)[:, None]
+    S1r = _share(C @ (B[:, None] * (AB - A[:, None])) / N, var_r)
+    STr = _share(0.5 * (C @ (A[:, None] - AB) ** 2) / N, var_r)
     per = max(1, SALTELLI_CHUNK // (N * resamples))  # parameters per stack, so memory stays bounded
-    for c in _column_chunks(np.arange(D), per):
-        S1r[:, c], STr[:, c] = _first_total(A3, B3, AB[:, c][draws], var_r, 0)
-    moves = np.ptp(np.r_[Ar, Br]) != 0.0
     out = {"S1": S1, "ST": ST, "S1_conf": z * S1r.std(axis=0, ddof=1) if moves else np.zeros(D),
            "ST_conf": z * STr.std(axis=0, ddof=1) if moves else np.zeros(D)}
     if second_order:
@@ -150,13 +154,38 @@ def saltelli_estimates(y: np.ndarray, D: int, second_order: bool, rng: np.random
             out["S2"][j, k] = _closed_second(A, B, BAt[j], ABt[k], var, -1) - S1[j] - S1[k]
             BAj = BA[:, [j]][draws]
             for c in _column_chunks(k, per):
-                reps = _closed_second(A3, B3, BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
+                reps = _closed_second(Ar[..., None], Br[..., None], BAj, AB[:, c][draws], var_r, 0) - S1r[:, j, None] - S1r[:, c]
                 out["S2_conf"][j, c] = z * reps.std(axis=0, ddof=1)
     return out
 
 
 EPS = np.finfo(float).eps
+
+
+@functools.lru_cache(maxsize=8)
+def normal_quantile(p: float) -> float:
+    """The standard normal quantile at ``p`` (scipy's ``norm.ppf``, asked once per level: each call costs ~0.1 ms)."""
+    from scipy.stats import norm
+
+    return float(norm.ppf(p))
 SALTELLI_CHUNK = 1 << 21  # resampled values per stack (16 MB of floats), whatever N and D
+
+
+def _resample_counts(draws: np.ndarray) -> np.ndarray:
+    """How often each base sample is drawn in each resample: draws (N, R) of indices -> counts (R, N)."""
+    N, R = draws.shape
+    return np.bincount((draws.T + N * np.arange(R)[:, None]).ravel(), minlength=R * N).reshape(R, N).astype(float)
+
+
+def _counted_variance(C: np.ndarray, A: np.ndarray, B: np.ndarray, spread: float) -> np.ndarray:
+    """:func:`_output_variance` of each resample's A and B outputs from its counts ``C`` (R, N): (R,), 0 when the
+    resampled outputs' ``spread`` (their range over every resample) is nil. The outputs are standardised (mean 0,
+    variance 1), so the one-pass form's cancellation costs nothing that matters."""
+    if spread <= EPS:
+        return np.zeros(C.shape[0])
+    n = 2.0 * C.shape[1]
+    mean = (C @ (A + B)) / n
+    return (C @ (A * A + B * B)) / n - mean * mean
 
 
 def _column_chunks(cols: np.ndarray, per: int) -> list[np.ndarray]:
@@ -284,8 +313,9 @@ RBD_RESAMPLES = 100
 RBD_CHUNK = 1 << 21  # resampled values per FFT batch: bounds memory (~50 MB) whatever N and D
 
 
-def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, harmonics: int = RBD_HARMONICS,
-                    resamples: int = RBD_RESAMPLES, confidence: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator | None, *, harmonics: int = RBD_HARMONICS,
+                    resamples: int = RBD_RESAMPLES, confidence: float = 0.95,
+                    plan: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """First-order indices of every column of ``X`` from given data, with bootstrap half-widths.
 
     The random-balance estimator on given data (Tarantola, Gatelli & Mara 2006; Plischke 2010, EASI):
@@ -305,30 +335,44 @@ def rbd_first_order(X: np.ndarray, y: np.ndarray, rng: np.random.Generator, *, h
         Finite outputs.
     rng : numpy.random.Generator
         Stream of the resamples; ``D * resamples`` draws of ``n // 2`` indices, input by input.
+    plan : tuple, optional
+        :func:`rbd_plan` of ``X`` and ``rng`` made already (then ``rng`` is not read).
 
     Returns
     -------
     S1, S1_conf : ndarray (D,)
     """
-    from scipy.stats import norm
-
     X, y = np.asarray(X, float), np.asarray(y, float)
+    order, resampled = plan if plan is not None else rbd_plan(X, rng, resamples)
+    D = X.shape[1]
+    S1 = _spectral_share(y[order.T], harmonics)  # (D,)
+    reps = np.empty((D, resamples))
+    per_input = max(1, RBD_CHUNK // max(resampled[0].size, 1))
+    for lo in range(0, D, per_input):
+        j = np.arange(lo, min(D, lo + per_input))
+        reps[j] = _spectral_share(y[resampled[j]], harmonics)
+    conf = normal_quantile(0.5 + confidence / 2.0) * reps.std(axis=1, ddof=1)
+    return S1, conf
+
+
+def rbd_plan(X: np.ndarray, rng: np.random.Generator, resamples: int = RBD_RESAMPLES) -> tuple[np.ndarray, np.ndarray]:
+    """What :func:`rbd_first_order` reads the outputs through, which depends on the inputs and the stream alone
+    (so outputs on the same points share it): each input's sort order (n, D), and the point indices (D, R, n // 2)
+    of each resample sorted by each input; ``rng`` draws ``D * resamples`` resamples of ``n // 2`` indices."""
     n, D = X.shape
     m = n // 2
     order = np.argsort(X, axis=0, kind="stable")  # (n, D)
     rank = np.empty_like(order)
     np.put_along_axis(rank, order, np.arange(n)[:, None], axis=0)
     draws = rng.integers(0, n, size=(D, resamples, m))
-    S1 = _spectral_share(y[order.T], harmonics)  # (D,)
-    reps = np.empty((D, resamples))
+    resampled = np.empty((D, resamples, m), order.dtype)
     per_input = max(1, RBD_CHUNK // max(resamples * m, 1))
     for lo in range(0, D, per_input):
         j = np.arange(lo, min(D, lo + per_input))
         # a resample sorted by input j is the sorted ranks of its points, read back through `order`
         sorted_ranks = np.sort(rank[draws[j], j[:, None, None]], axis=-1)
-        reps[j] = _spectral_share(y[order[sorted_ranks, j[:, None, None]]], harmonics)
-    conf = norm.ppf(0.5 + confidence / 2.0) * reps.std(axis=1, ddof=1)
-    return S1, conf
+        resampled[j] = order[sorted_ranks, j[:, None, None]]
+    return order, resampled
 
 
 def _spectral_share(ys: np.ndarray, harmonics: int) -> np.ndarray:
@@ -365,6 +409,16 @@ def given_data_first_order(X: np.ndarray, y: np.ndarray, names: Sequence[str], s
     D = X.shape[1]
     if y.size < 64 or np.ptp(y) == 0:
         return np.full(D, np.nan), np.full(D, np.nan)
-    # the stream SALib drew from when it computed these rows (salib_seed is itself on the SeedSequence path)
-    rng = np.random.default_rng(salib_seed(seed, 4))
-    return rbd_first_order(X, y, rng)
+    # the stream SALib drew from when it computed these rows (salib_seed is itself on the SeedSequence path);
+    # outputs on the same points share their sort orders and resamples (the same draws: the same stream)
+    key = (X.shape, hashlib.blake2b(np.ascontiguousarray(X).view(np.uint8).ravel(), digest_size=16).digest(),
+           salib_seed(seed, 4), RBD_RESAMPLES, RBD_CHUNK)
+    plan = _RBD_PLANS.get(key)
+    if plan is None:
+        plan = rbd_plan(X, np.random.default_rng(salib_seed(seed, 4)))
+        _RBD_PLANS.clear()  # one set of points at a time: the stage asks for its outputs one after another
+        _RBD_PLANS[key] = plan
+    return rbd_first_order(X, y, None, plan=plan)
+
+
+_RBD_PLANS: dict = {}  # the last set of points' rbd_plan, by a digest of the points and the stream
