@@ -22,6 +22,7 @@ The command-line interface is a thin shell over these functions.
 
 from __future__ import annotations
 
+import os
 import platform
 import time
 from contextlib import contextmanager
@@ -581,6 +582,9 @@ def _engine_at_hand(case: Case) -> str:
 # runs after it, when the kernel cache lacks it: its machine code serves every later run of the
 # structure, and a small run would not repay the processor time
 LANES_ASIDE_MEMBERS = 500
+# IMPACT_LANES_ASIDE=0 in the environment: no run starts that helper (e.g. a test suite, whose many
+# short runs on many webs would each leave one compiling beside the next)
+LANES_ASIDE_SWITCH = "IMPACT_LANES_ASIDE"
 
 
 def _compile_aside(case: Case, flow: bool, lanes: bool):
@@ -589,6 +593,7 @@ def _compile_aside(case: Case, flow: bool, lanes: bool):
     (``flow``), which the run waits for when it comes to it, and the block engine (``lanes``),
     which this run uses only if it is ready in time (the engine "auto" of :mod:`impact.engine.web`)
     and which is left to finish for later runs."""
+    lanes = lanes and os.environ.get(LANES_ASIDE_SWITCH, "1") != "0"
     if not (flow or lanes):
         return
     from impact.engine.boundary import structure_sizes

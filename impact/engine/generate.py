@@ -29,6 +29,7 @@ import numba
 import numpy as np
 
 from impact.engine import flow, kernel
+from impact.engine.precompile import KEEP_GOING
 from impact.model.expr import Printer, used_columns
 from impact.model.terms import Structure, program, tangent_program
 
@@ -44,8 +45,6 @@ def batch_jvp(st, coef, t, y, v, out, jv):
 """
 _loaded: dict[tuple[str, str, bytes], object] = {}  # (cache folder, kind, structure table bytes) -> module
 _loading = threading.Lock()
-# what a run writes to a helper's standard input when the helper may outlive it
-KEEP_GOING = b"finish\n"
 _stems: dict[tuple[str, bytes], str] = {}  # (prefix, structure bytes) -> file stem of its module
 # Seconds a run waits for a compile helper before ending it and compiling itself (a compilation
 # takes 5-15 s on a 2-core machine; the margin covers a loaded one).

@@ -43,15 +43,18 @@ def compile_lanes(st: np.ndarray, n_coef: int):
                    f1(1, n), f1(1), i1.copy(), i8)
 
 
+# what a run writes to its helper's standard input when the helper may outlive it
+KEEP_GOING = b"finish\n"
+
+
 def watch_parent():
     """End this helper when the run that started it ends without saying it may go on.
 
-    The run holds the other end of this process's standard input: it writes
-    :data:`impact.engine.generate.KEEP_GOING` before it lets go of a helper whose work serves later
-    runs; a run killed or ended by a signal closes the pipe without it, and the helper goes too.
+    The run holds the other end of this process's standard input: it writes :data:`KEEP_GOING`
+    before it lets go of a helper whose work serves later runs
+    (:func:`impact.engine.generate.release`); a run killed or ended by a signal closes the pipe
+    without it, and the helper goes too (before it has imported the compiler).
     """
-    from impact.engine.generate import KEEP_GOING
-
     if sys.stdin.buffer.read() != KEEP_GOING:
         os._exit(3)
 

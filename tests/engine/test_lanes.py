@@ -13,6 +13,7 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 from impact.engine.lanedriver import LANES
 from impact.engine.simulate import run_option
@@ -121,3 +122,66 @@ def test_the_auto_engine_takes_the_block_engine_once_a_helper_has_compiled_it(tm
     np.testing.assert_allclose(got.y, ref.y, rtol=1e-9, atol=1e-12)
     stats = lanes.specialised_lanes(st).segment.stats
     assert sum(stats.cache_hits.values()) == 1 and not sum(stats.cache_misses.values())
+
+
+def test_a_large_run_asks_for_the_block_engine_helper_unless_switched_off(tmp_path, monkeypatch):
+    import impact.api as api
+    from impact.engine import generate, lanes
+
+    asked = []
+    monkeypatch.setattr(generate, "compile_aside", lambda st, prefix, n_coef: asked.append(prefix) or True)
+    monkeypatch.setattr(lanes, "lanes_ready", lambda st: False)
+    case = load("web_case", tmp_path)
+    monkeypatch.setenv(api.LANES_ASIDE_SWITCH, "1")
+    api._compile_aside(case, flow=False, lanes=True)
+    assert asked == ["lanes"]
+    monkeypatch.setenv(api.LANES_ASIDE_SWITCH, "0")
+    api._compile_aside(case, flow=False, lanes=True)
+    assert asked == ["lanes"]
+
+
+KILLED_RUN = """
+import sys, time
+sys.path[:0] = [{tests!r}, {engine!r}]
+from test_engine import random_web
+from impact.engine.boundary import structure_sizes
+from impact.engine.generate import compile_aside
+from impact.engine.web import pack_structure
+web, _, _ = random_web(3, 4)
+st = pack_structure(web)
+assert compile_aside(st, "lanes", structure_sizes(st)["P"])
+print("started", flush=True)
+time.sleep(120)
+"""
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc to find the helper process")
+def test_a_compile_helper_ends_with_a_run_killed_before_it_let_go(tmp_path, monkeypatch):
+    # a helper outlives its run only when the run says so on ending well (generate.release); a run
+    # killed outright closes the helper's standard input without it, and the helper goes too
+    import os
+    import signal
+    import subprocess
+
+    from impact.engine.web import pack_structure
+    from test_reliability import _children, _running, _wait_for
+
+    here = Path(__file__).resolve().parent
+    env = {**os.environ, "IMPACT_KERNEL_CACHE": str(tmp_path / "kernels")}
+    run = subprocess.Popen([sys.executable, "-c", KILLED_RUN.format(tests=str(here.parent), engine=str(here))],
+                           stdout=subprocess.PIPE, text=True, env=env)
+    try:
+        assert run.stdout.readline().strip() == "started"
+        helpers = _children(run.pid)
+        assert helpers
+        run.send_signal(signal.SIGKILL)
+        run.wait(timeout=30)
+    finally:
+        if run.poll() is None:
+            run.kill()
+    assert _wait_for(lambda: not any(_running(h) for h in helpers), 30), helpers
+    # it went before its work was done (a helper that had ignored its run would have finished it)
+    from impact.engine import lanes
+
+    monkeypatch.setenv("IMPACT_KERNEL_CACHE", str(tmp_path / "kernels"))
+    assert not lanes.lanes_ready(pack_structure(random_web(3, 4)[0]))
