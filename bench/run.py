@@ -298,10 +298,13 @@ IN_THE_WAY = {
     "pollinator case": "its regime screen and report",
     "report": "WeasyPrint's layout and writing alone (about 3.5 s for the 17 pages; 4b names its parts)",
     "engine with SIMD": "a block runs as long as its slowest member (about 70 % of lane steps useful in member order; "
-                        "sorted by step count, section 0, it comes near 2x; calibration sorts by the last step size)",
+                        "with the members sorted by step count, section 0's 'lanes, sorted', it gains more; "
+                        "calibration sorts by each member's last step size) and each lane's step control is scalar",
     "calibration, 2 threads": "the spin-ups themselves (the compiled kernel is about 85 % of a calibration's CPU "
-                              "time); a loaded machine halves the second thread's share",
-    "decision stage": "the regressions of the value of information and the sample information per study",
+                              "time), the machine's two-thread ceiling (4a) and, inside a whole run, the later "
+                              "stages' libraries imported beside it",
+    "decision stage": "the prior screen's simulations (1,920 design points, a spin-up and every option each: about "
+                      "1 CPU s), the press signs' equilibria (0.2 s) and its threads competing for the two cores",
 }
 
 
